@@ -1,0 +1,1 @@
+"""Thin rclpy adapters around the core: teacher, recorder, learner and replay nodes."""

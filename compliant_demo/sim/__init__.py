@@ -1,0 +1,1 @@
+"""Simulation of variable-stiffness joints: mechanisms, batched integration and energy bookkeeping."""
