@@ -120,7 +120,12 @@ class AntagonisticParams(_Record):
 
     kind: Literal["antagonistic"] = "antagonistic"
     k1: PositiveFloat = Field(10.0, description="Linear spring coefficient, N*m/rad.")
-    k2: NonNegativeFloat = Field(100.0, description="Quadratic spring coefficient, N*m/rad^2.")
+    k2: PositiveFloat = Field(
+        100.0,
+        description=(
+            "Quadratic spring coefficient, N*m/rad^2 (> 0: it is what makes stiffness adjustable)."
+        ),
+    )
     pretension_offset: NonNegativeFloat = Field(
         0.0, description="Spring elongation offset d0 at equal motor and link angles, rad."
     )
