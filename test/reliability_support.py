@@ -1,0 +1,307 @@
+"""Shared machinery of the reliability, fuzz and security tests and of ``bench/bench_faults.py``.
+
+Holds the SIGKILL trial harness (a forkserver child appends deterministic chunks through the store
+API and reports each chunk after ``append_chunk`` returned; the parent kills it at a random moment
+and checks the file), the deterministic chunk generator both sides agree on, small adapters over
+the store's records, the shared hypothesis settings and a counter of fuzz cases that the benchmark
+reads after running the fuzz tests in-process.
+"""
+
+from __future__ import annotations
+
+import collections
+import contextlib
+import hashlib
+import multiprocessing
+import os
+import signal
+import sqlite3
+import threading
+import time
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from hypothesis import HealthCheck, settings
+
+__all__ = [
+    "JOINTS",
+    "CHUNK_SAMPLES",
+    "RATE_HZ",
+    "FUZZ_COUNTER",
+    "FUZZ_SETTINGS",
+    "KillTrialResult",
+    "channel",
+    "chunk_arrays",
+    "count_case",
+    "expected_samples",
+    "field",
+    "integrity",
+    "no_hang",
+    "run_kill_trials",
+    "sample_digest",
+]
+
+JOINTS = ["shoulder", "elbow"]
+CHUNK_SAMPLES = 50
+RATE_HZ = 1000.0
+CHANNELS = ("position", "velocity", "torque", "stiffness")
+
+# Counts every fuzz case a fuzz test body ran; the benchmark runs the fuzz tests in-process and
+# reads this after pytest returns.
+FUZZ_COUNTER: collections.Counter[str] = collections.Counter()
+
+# Derandomized so every run explores the same inputs (tests seed every RNG); the benchmark raises
+# the example count through the environment.
+FUZZ_SETTINGS = settings(
+    max_examples=int(os.environ.get("COMPLIANT_DEMO_FUZZ_EXAMPLES", "40")),
+    deadline=None,
+    derandomize=True,
+    database=None,
+    suppress_health_check=[
+        HealthCheck.too_slow,
+        HealthCheck.function_scoped_fixture,
+        HealthCheck.data_too_large,
+    ],
+)
+
+
+def count_case(parser: str) -> None:
+    """Record that one fuzz case of ``parser`` ran to completion."""
+    FUZZ_COUNTER[parser] += 1
+
+
+@contextlib.contextmanager
+def no_hang(seconds: float) -> Iterator[None]:
+    """Raise TimeoutError in the main thread if the body runs longer than ``seconds`` (a hang)."""
+
+    def _alarm(signum: int, frame: object) -> None:
+        raise TimeoutError(f"parser still running after {seconds} s: treated as a hang")
+
+    previous = signal.signal(signal.SIGALRM, _alarm)
+    signal.setitimer(signal.ITIMER_REAL, seconds)
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0.0)
+        signal.signal(signal.SIGALRM, previous)
+
+
+def field(record: Any, name: str) -> Any:
+    """Read ``name`` from a store record, whether it is a mapping or an object with attributes."""
+    if isinstance(record, Mapping):
+        return record[name]
+    return getattr(record, name)
+
+
+def channel(loaded: Any, name: str) -> np.ndarray | None:
+    """One channel (``t``, ``position``, ...) of a loaded demonstration as an array, or None."""
+    try:
+        value = field(loaded, name)
+    except (KeyError, AttributeError):
+        return None
+    return None if value is None else np.asarray(value)
+
+
+def sample_digest(loaded: Any) -> str:
+    """SHA-256 over the exact bytes of every channel of a loaded demonstration."""
+    digest = hashlib.sha256()
+    for name in ("t", *CHANNELS):
+        values = channel(loaded, name)
+        digest.update(name.encode())
+        if values is not None:
+            digest.update(str(values.shape).encode())
+            digest.update(np.ascontiguousarray(values, dtype="<f8").tobytes())
+    return digest.hexdigest()
+
+
+def integrity(path: str | Path) -> str:
+    """``PRAGMA integrity_check`` of a store file through plain sqlite3 (joined result rows)."""
+    connection = sqlite3.connect(str(path), timeout=10.0)
+    try:
+        rows = connection.execute("PRAGMA integrity_check").fetchall()
+    finally:
+        connection.close()
+    return "; ".join(str(row[0]) for row in rows)
+
+
+def chunk_arrays(seed: int, index: int, n_joints: int = len(JOINTS)) -> dict[str, np.ndarray]:
+    """The deterministic chunk ``index`` of trial ``seed``: ``t`` (n,) s and (n, n_joints) channels.
+
+    Values are drawn from a seeded generator so that a reader can regenerate exactly what the
+    writer appended, bit for bit.
+    """
+    rng = np.random.default_rng([seed, index])
+    start = index * CHUNK_SAMPLES
+    t = (start + np.arange(CHUNK_SAMPLES)) / RATE_HZ
+    shape = (CHUNK_SAMPLES, n_joints)
+    return {
+        "t": t,
+        "position": rng.uniform(-2.0, 2.0, shape),
+        "velocity": rng.normal(0.0, 1.0, shape),
+        "torque": rng.normal(0.0, 5.0, shape),
+        "stiffness": rng.uniform(5.0, 200.0, shape),
+    }
+
+
+def expected_samples(seed: int, n_chunks: int, n_joints: int = len(JOINTS)) -> dict[str, Any]:
+    """The first ``n_chunks`` chunks of trial ``seed`` concatenated per channel."""
+    chunks = [chunk_arrays(seed, index, n_joints) for index in range(n_chunks)]
+    if not chunks:
+        return {name: np.empty((0,) if name == "t" else (0, n_joints)) for name in ("t", *CHANNELS)}
+    return {name: np.concatenate([chunk[name] for chunk in chunks]) for name in chunks[0]}
+
+
+def _writer_main(path: str, progress_path: str, seed: int, max_chunks: int) -> None:
+    """Child of a kill trial: append chunks until killed, reporting each one after it returned.
+
+    Progress lines are written with single small ``os.write`` calls, so a line either reached
+    the file in full or not at all when SIGKILL arrives; a reported chunk has been committed.
+    """
+    from compliant_demo.store import DemoStore
+
+    fd = os.open(progress_path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
+    with DemoStore(path) as store:
+        demo_id = store.begin_demonstration(skill="cork_seat", joints=JOINTS, operator="operator_a")
+        os.write(fd, f"D {demo_id}\n".encode())
+        for index in range(max_chunks):
+            store.append_chunk(demo_id, **chunk_arrays(seed, index))
+            os.write(fd, f"C {index}\n".encode())
+    os.close(fd)
+
+
+@dataclass
+class KillTrialResult:
+    """What one SIGKILL trial found on the next open of the store."""
+
+    seed: int
+    delay_s: float
+    demo_id: str | None
+    reported_chunks: int
+    stored_chunks: int
+    integrity: str
+    status: str | None
+    exact: bool
+    problem: str | None
+
+    @property
+    def intact(self) -> bool:
+        """True when the trial kept every reported chunk exactly and the file is sound."""
+        return self.problem is None
+
+
+def _read_progress(progress_path: Path) -> tuple[str | None, int]:
+    demo_id = None
+    reported = 0
+    if not progress_path.exists():
+        return demo_id, reported
+    for line in progress_path.read_text().splitlines():
+        kind, _, value = line.partition(" ")
+        if kind == "D":
+            demo_id = value
+        elif kind == "C":
+            reported = int(value) + 1
+    return demo_id, reported
+
+
+def _wait_for_start(progress_path: Path, process: Any, timeout_s: float) -> None:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline and process.is_alive():
+        if progress_path.exists() and progress_path.stat().st_size > 0:
+            return
+        time.sleep(0.0005)
+
+
+def _verify_trial(path: Path, seed: int, demo_id: str | None, reported: int) -> KillTrialResult:
+    from compliant_demo.store import DemoStore
+
+    def result(problem: str | None, **values: Any) -> KillTrialResult:
+        base = dict(
+            seed=seed, delay_s=0.0, demo_id=demo_id, reported_chunks=reported, stored_chunks=0,
+            integrity="", status=None, exact=False,
+        )
+        base.update(values)
+        return KillTrialResult(problem=problem, **base)
+
+    if not path.exists():
+        if demo_id is not None:
+            return result("store file missing although a demonstration was begun")
+        return result(None, integrity="no file")
+    check = integrity(path)
+    if check != "ok":
+        return result(f"integrity_check: {check}", integrity=check)
+    with DemoStore(str(path)) as store:
+        if demo_id is None:
+            return result(None, integrity=check)
+        status = field(store.get_demonstration(demo_id), "status")
+        loaded = store.load_demonstration(demo_id)
+    t = channel(loaded, "t")
+    n_samples = 0 if t is None else t.shape[0]
+    stored, remainder = divmod(n_samples, CHUNK_SAMPLES)
+    values = dict(integrity=check, status=status, stored_chunks=stored)
+    if remainder:
+        return result(f"{n_samples} samples is not a whole number of chunks", **values)
+    if not reported <= stored <= reported + 1:
+        return result(f"{reported} chunks reported committed but {stored} stored", **values)
+    expected = expected_samples(seed, stored)
+    for name, want in expected.items():
+        got = channel(loaded, name)
+        if got is None or got.shape != want.shape or not np.array_equal(got, want):
+            return result(f"channel {name} differs from what was appended", **values)
+    if status != "incomplete":
+        return result(f"interrupted demonstration has status {status!r}", exact=True, **values)
+    return result(None, exact=True, **values)
+
+
+def _one_trial(
+    context: Any, start_lock: threading.Lock, folder: Path, seed: int, max_delay_s: float
+) -> KillTrialResult:
+    rng = np.random.default_rng(seed)
+    path = folder / f"trial_{seed}.sqlite"
+    progress = folder / f"trial_{seed}.progress"
+    # One trial in ten is killed counting from the fork, so some kills land while the store file
+    # and its schema are being created; the rest count from the first report (demonstration begun).
+    from_fork = rng.random() < 0.1
+    delay = float(rng.uniform(0.0, max_delay_s / (4 if from_fork else 1)))
+    with start_lock:
+        process = context.Process(
+            target=_writer_main, args=(str(path), str(progress), seed, 100_000), daemon=True
+        )
+        process.start()
+    if not from_fork:
+        _wait_for_start(progress, process, timeout_s=30.0)
+    time.sleep(delay)
+    if process.is_alive():
+        os.kill(process.pid, signal.SIGKILL)
+    process.join(30.0)
+    demo_id, reported = _read_progress(progress)
+    trial = _verify_trial(path, seed, demo_id, reported)
+    trial.delay_s = delay
+    if process.exitcode not in (-signal.SIGKILL,) and trial.problem is None:
+        trial.problem = f"writer exited with {process.exitcode} before it was killed"
+    return trial
+
+
+def run_kill_trials(
+    folder: str | Path, n_trials: int, *, parallel: int = 3, max_delay_s: float = 0.12,
+    first_seed: int = 1000,
+) -> list[KillTrialResult]:
+    """Run ``n_trials`` SIGKILL trials, ``parallel`` at a time, each in its own store file.
+
+    Writers are forked from a forkserver that has imported the store once, so a trial costs a
+    fork rather than an interpreter start-up.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    folder = Path(folder)
+    context = multiprocessing.get_context("forkserver")
+    context.set_forkserver_preload(["numpy", "compliant_demo.store", __name__])
+    start_lock = threading.Lock()
+    with ThreadPoolExecutor(max_workers=parallel) as pool:
+        futures = [
+            pool.submit(_one_trial, context, start_lock, folder, first_seed + k, max_delay_s)
+            for k in range(n_trials)
+        ]
+        return [future.result() for future in futures]

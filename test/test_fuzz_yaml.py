@@ -1,0 +1,113 @@
+"""Fuzz the YAML parsers (joint and mechanism parameters) with hypothesis.
+
+Every input, however malformed, must end in a validated record or one of our named exceptions
+(InvalidInputError), never another exception, a crash or a hang.
+"""
+
+from __future__ import annotations
+
+import math
+import tempfile
+from pathlib import Path
+
+import pytest
+import yaml
+from hypothesis import given
+from hypothesis import strategies as st
+from reliability_support import FUZZ_SETTINGS, count_case, no_hang
+
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
+from compliant_demo.models import (
+    AntagonisticParams,
+    IdealImpedanceParams,
+    JointParams,
+    load_yaml_model,
+)
+
+PARAMETER_MODELS = (JointParams, IdealImpedanceParams, AntagonisticParams)
+FIELD_NAMES = sorted({name for model in PARAMETER_MODELS for name in model.model_fields})
+
+_scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(min_value=-(10**30), max_value=10**30),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=20),
+    st.sampled_from(["ideal", "antagonistic", "shoulder", "elbow", "1e400", "-.inf", "0x1F"]),
+)
+_values = st.recursive(
+    _scalars,
+    lambda inner: (
+        st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=8), inner, max_size=4)
+    ),
+    max_leaves=12,
+)
+_mappings = st.dictionaries(
+    st.sampled_from(FIELD_NAMES) | st.text(max_size=12), _values, max_size=len(FIELD_NAMES) + 2
+)
+
+
+def _mutate(document: bytes, edits: list[tuple[int, int]]) -> bytes:
+    """Overwrite bytes of ``document`` at the given (position, byte) pairs."""
+    data = bytearray(document)
+    for position, byte in edits:
+        if data:
+            data[position % len(data)] = byte
+    return bytes(data)
+
+
+_valid_documents = st.sampled_from(
+    [yaml.safe_dump(model().model_dump()).encode() for model in PARAMETER_MODELS]
+)
+yaml_documents = st.one_of(
+    st.binary(max_size=300),
+    st.text(max_size=300).map(lambda text: text.encode("utf-8", "surrogatepass")),
+    _mappings.map(lambda mapping: yaml.safe_dump(mapping, allow_unicode=True).encode()),
+    st.builds(
+        _mutate,
+        _valid_documents,
+        st.lists(st.tuples(st.integers(0, 10_000), st.integers(0, 255)), min_size=1, max_size=6),
+    ),
+)
+
+
+def _check_parameter_yaml(document: bytes, model: type, key: str | None) -> None:
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "params.yaml"
+        path.write_bytes(document)
+        with no_hang(5.0):
+            try:
+                record = load_yaml_model(model, path, key=key)
+            except InvalidInputError as exc:
+                assert "params.yaml" in str(exc), f"error does not name the file: {exc}"
+            else:
+                assert isinstance(record, model)
+                for name, value in record.model_dump().items():
+                    if isinstance(value, float):
+                        assert math.isfinite(value), f"{name} = {value} passed validation"
+    count_case("parameter_yaml")
+
+
+@FUZZ_SETTINGS
+@given(document=yaml_documents, model=st.sampled_from(PARAMETER_MODELS), nested=st.booleans())
+def test_fuzz_parameter_yaml(document: bytes, model: type, nested: bool) -> None:
+    _check_parameter_yaml(document, model, "joint" if nested else None)
+
+
+@pytest.mark.parametrize(
+    "document, match",
+    [
+        (b"name: \xff\xfe\n", r"params\.yaml.*(utf-8|UTF-8|decode|encoding)"),
+        (b"[" * 3000 + b"]" * 3000, r"params\.yaml.*(nest|deep|recursion)"),
+        (b"inertia: 1" + b"0" * 5000 + b"\n", r"params\.yaml.*inertia"),
+    ],
+    ids=["invalid_utf8", "deep_nesting", "huge_integer"],
+)
+def test_parameter_yaml_malformed_file_is_a_named_error(
+    tmp_path: Path, document: bytes, match: str
+) -> None:
+    # Found by the fuzzer: these leaked UnicodeDecodeError, RecursionError and a bare ValueError.
+    path = tmp_path / "params.yaml"
+    path.write_bytes(document)
+    with pytest.raises(CompliantDemoError, match=match):
+        load_yaml_model(JointParams, path)
