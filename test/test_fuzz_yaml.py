@@ -99,7 +99,7 @@ def test_fuzz_parameter_yaml(document: bytes, model: type, nested: bool) -> None
     [
         (b"name: \xff\xfe\n", r"params\.yaml.*(utf-8|UTF-8|decode|encoding)"),
         (b"[" * 3000 + b"]" * 3000, r"params\.yaml.*(nest|deep|recursion)"),
-        (b"inertia: 1" + b"0" * 5000 + b"\n", r"params\.yaml.*inertia"),
+        (b"inertia: 1" + b"0" * 5000 + b"\n", r"params\.yaml.*(integer|digits)"),
     ],
     ids=["invalid_utf8", "deep_nesting", "huge_integer"],
 )
