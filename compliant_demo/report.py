@@ -151,8 +151,8 @@ def plot_demonstrations(
         ax.plot(mean_t, mean_q[:, j], color="0.0", linestyle="--", marker="o",
                 markevery=_markevery(len(mean_t)), linewidth=1.8, label="aligned mean")
         ax.set_ylabel(f"{name} angle [rad]")
+        ax.set_xlabel("time [s] (demonstrations: own time; mean: aligned time)")
         ax.legend(loc="best", fontsize="small")
-    axes[-1, 0].set_xlabel("time [s] (demonstrations: own time; mean: aligned time)")
     figure.suptitle("Demonstrations, aligned mean and spread")
     return figure
 
@@ -186,8 +186,8 @@ def plot_stiffness_estimate(
                 markevery=_markevery(len(t)), linewidth=1.0, label="estimate")
         _shade_mask(ax, t, ~excited[:, j], hatch="..", label="too little excitation")
         ax.set_ylabel(f"{name} stiffness [N*m/rad]")
+        ax.set_xlabel("time [s]")
         ax.legend(loc="best", fontsize="small")
-    axes[-1, 0].set_xlabel("time [s]")
     figure.suptitle("Stiffness estimate against the teacher's ground truth")
     return figure
 
@@ -233,8 +233,8 @@ def plot_schedule_checks(
                         label=f"flagged: {flag_name}")
     ax_k.set_ylabel("stiffness [N*m/rad]")
     ax_z.set_ylabel("damping ratio [-]")
-    ax_z.set_xlabel("time along the skill [s]")
     for ax in (ax_k, ax_z):
+        ax.set_xlabel("time along the skill [s]")
         ax.legend(loc="best", fontsize="small")
     figure.suptitle("Learned stiffness and damping ratio along the skill")
     return figure
@@ -266,8 +266,9 @@ def plot_replay_traces(
     for ax, (kind, (t, q, window)) in zip(axes.flat, traces.items(), strict=False):
         q = _as_2d(q, f"traces[{kind!r}].q")
         for j, name in enumerate(joint_names):
-            ax.plot(nominal_t, nominal_q[:, j], color="0.55", linestyle=":", marker="",
-                    linewidth=1.4, label=f"{name} unperturbed")
+            ax.plot(nominal_t, nominal_q[:, j], color="0.55", linestyle=":", marker=" x"[j % 2],
+                    markevery=_markevery(len(nominal_t)), linewidth=1.4,
+                    label=f"{name} unperturbed")
             ax.plot(t, q[:, j], color="0.0" if j == 0 else "0.3",
                     linestyle="-" if j == 0 else "--", marker="os"[j % 2],
                     markevery=_markevery(len(t)), linewidth=1.0, label=f"{name} perturbed")

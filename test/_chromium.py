@@ -10,6 +10,7 @@ and takes a full-page screenshot.
 from __future__ import annotations
 
 import base64
+import fcntl
 import json
 import os
 import select
@@ -108,16 +109,26 @@ class _Pipe:
         return json.loads(raw)
 
 
+def _above_four(fd: int) -> int:
+    if fd > 4:
+        return fd
+    moved = fcntl.fcntl(fd, fcntl.F_DUPFD_CLOEXEC, 5)
+    os.close(fd)
+    return moved
+
+
 def visit(page: Path, *, timeout: float = 60.0) -> PageVisit:
     """Load ``page`` (a local file) in headless Chromium and report what happened."""
     command_read, command_write = os.pipe()
     reply_read, reply_write = os.pipe()
+    # Keep the child's ends above 4 so the shell's redirections cannot overwrite one another.
+    command_read, reply_write = _above_four(command_read), _above_four(reply_write)
 
     with tempfile.TemporaryDirectory(prefix="chromium-profile-") as profile:
-        # The shell puts the pipe ends on fds 3 and 4, where Chromium expects them.
+        # bash (dash takes only one-digit fds) puts the pipe ends on fds 3 and 4 for Chromium.
         argv = [chromium_binary(), *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "about:blank"]
         proc = subprocess.Popen(
-            ["/bin/sh", "-c", f'exec "$@" 3<&{command_read} 4>&{reply_write}', "sh", *argv],
+            ["bash", "-c", f'exec "$@" 3<&{command_read} 4>&{reply_write}', "bash", *argv],
             stdin=subprocess.DEVNULL,
             stdout=subprocess.DEVNULL,
             stderr=subprocess.DEVNULL,
