@@ -16,6 +16,7 @@ import os
 import select
 import shutil
 import subprocess
+import sys
 import tempfile
 import time
 from dataclasses import dataclass, field
@@ -35,6 +36,10 @@ CHROMIUM_FLAGS = (
     "--remote-debugging-pipe",
 )
 
+_TRAMPOLINE = (
+    "import os, sys; os.dup2(int(sys.argv[1]), 3); os.dup2(int(sys.argv[2]), 4); "
+    "os.execvp(sys.argv[3], sys.argv[3:])"
+)
 _IMAGES_JS = """JSON.stringify(Array.from(document.images).map(img => ({
   figure: img.closest('figure') ? img.closest('figure').id : null,
   complete: img.complete, width: img.naturalWidth, height: img.naturalHeight,
@@ -125,10 +130,10 @@ def visit(page: Path, *, timeout: float = 60.0) -> PageVisit:
     command_read, reply_write = _above_four(command_read), _above_four(reply_write)
 
     with tempfile.TemporaryDirectory(prefix="chromium-profile-") as profile:
-        # bash (dash takes only one-digit fds) puts the pipe ends on fds 3 and 4 for Chromium.
+        # A small Python trampoline (no shell) puts the pipe ends on fds 3 and 4 for Chromium.
         argv = [chromium_binary(), *CHROMIUM_FLAGS, f"--user-data-dir={profile}", "about:blank"]
         proc = subprocess.Popen(
-            ["bash", "-c", f'exec "$@" 3<&{command_read} 4>&{reply_write}', "bash", *argv],
+            [sys.executable, "-c", _TRAMPOLINE, str(command_read), str(reply_write), *argv],
             stdin=subprocess.DEVNULL,
             stdout=subprocess.DEVNULL,
             stderr=subprocess.DEVNULL,
