@@ -55,10 +55,8 @@ def _finite_array(value: ArrayLike, name: str) -> NDArray[np.float64]:
     except (TypeError, ValueError):
         raise InvalidInputError(f"{name}: cannot convert {value!r} to a float array") from None
     if not np.all(np.isfinite(array)):
-        bad = np.argwhere(~np.isfinite(array))[0]
-        raise InvalidInputError(
-            f"{name}: non-finite value {array[tuple(bad)]!r} at index {tuple(int(i) for i in bad)}"
-        )
+        bad = tuple(int(i) for i in np.argwhere(~np.isfinite(array))[0])
+        raise InvalidInputError(f"{name}: non-finite value {float(array[bad])!r} at index {bad}")
     return array
 
 
@@ -106,8 +104,9 @@ def _ranges(value: ArrayLike, n_joints: int, name: str) -> NDArray[np.float64]:
                                 f"{array.shape}")
     if np.any(array[:, 0] > array[:, 1]):
         j = int(np.argmax(array[:, 0] > array[:, 1]))
-        raise InvalidInputError(f"{name}: low {array[j, 0]!r} above high {array[j, 1]!r} for "
-                                f"joint {j}")
+        raise InvalidInputError(
+            f"{name}: low {float(array[j, 0])!r} above high {float(array[j, 1])!r} for joint {j}"
+        )
     return array
 
 
@@ -350,8 +349,9 @@ class DMP:
                     "Use formulation='goal_robust' for such motions.",
                     stacklevel=2,
                 )
-            amplitude = np.where(degenerate, 1.0, amplitude)
-            scale = np.where(degenerate, 1.0, (goal - start) / amplitude)
+            scale = np.where(degenerate, 1.0, (goal - start) / np.where(degenerate, 1.0, amplitude))
+            # Amplitude 0 marks a joint whose forcing is applied unscaled at rollout.
+            amplitude = np.where(degenerate, 0.0, amplitude)
             target = inertial - k_gain * to_goal
         else:
             amplitude = np.ones(demos.shape[2])
@@ -386,7 +386,9 @@ class DMP:
         shape = ((psi_normalised @ self.weights.T) * x[:, np.newaxis])[:, np.newaxis, :]
         span = np.atleast_2d(goal - start)[np.newaxis]
         if self.formulation == "classic":
-            return (shape * (span / self.amplitude)).reshape(n_samples, -1)
+            unscaled = self.amplitude == 0.0
+            ratio = np.where(unscaled, 1.0, span / np.where(unscaled, 1.0, self.amplitude))
+            return (shape * ratio).reshape(n_samples, -1)
         k_gain = self.alpha_z * self.beta_z
         return (k_gain * (shape - span * x[:, np.newaxis, np.newaxis])).reshape(n_samples, -1)
 
@@ -487,7 +489,9 @@ class Skill(BaseModel):
     duration_s: float = Field(..., gt=0, description="Demonstrated duration, s.")
     start: list[float] = Field(..., description="Demonstrated start per joint, rad.")
     goal: list[float] = Field(..., description="Demonstrated goal per joint, rad.")
-    amplitude: list[float] = Field(..., description="Reference g - y0 per joint (classic), rad.")
+    amplitude: list[float] = Field(
+        ..., description="Reference g - y0 per joint (classic; 0 = forcing not scaled), rad."
+    )
     weights: list[list[float]] = Field(..., description="Forcing weights (n_joints, n_basis).")
     stiffness_log_weights: list[list[float]] = Field(
         ..., description="ln stiffness weights (n_joints, n_basis), ln(N*m/rad)."
@@ -604,8 +608,8 @@ class Skill(BaseModel):
         if np.any(outside):
             j = int(np.argmax(outside))
             raise InvalidInputError(
-                f"{name}: {value[j]!r} rad for joint {self.joints[j]!r} is outside its limits "
-                f"[{limits[j, 0]}, {limits[j, 1]}] rad"
+                f"{name}: {float(value[j])!r} rad for joint {self.joints[j]!r} is outside its "
+                f"limits [{limits[j, 0]}, {limits[j, 1]}] rad"
             )
 
     def _damping(
@@ -637,7 +641,7 @@ def _log_profile(
     if np.any(values <= 0):
         index = tuple(int(i) for i in np.argwhere(values <= 0)[0])
         raise InvalidInputError(
-            f"stiffness/damping: values must be positive, got {values[index]!r} at {index}"
+            f"stiffness/damping: values must be positive, got {float(values[index])!r} at {index}"
         )
     log_values = np.log(values)
     ones = np.ones(psi.shape[0])
