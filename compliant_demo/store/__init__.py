@@ -1,0 +1,32 @@
+"""The demonstration store: demonstrations, skills and replay results in one SQLite file.
+
+``DemoStore`` is the Python API for scripts and nodes; ``compliant_demo.store.io`` and
+``compliant_demo.store.bags`` import and export CSV, NPZ and ROS 2 bag files. The file layout is
+documented in the README ("Demonstration store") so that other languages can read it.
+"""
+
+from compliant_demo.store._schema import SCHEMA_VERSION
+from compliant_demo.store.core import DemoStore
+from compliant_demo.store.records import (
+    CampaignInfo,
+    Demonstration,
+    DemonstrationInfo,
+    MergeConflict,
+    MergeReport,
+    ReplayResult,
+    ReplayResultInfo,
+    SkillRecord,
+)
+
+__all__ = [
+    "SCHEMA_VERSION",
+    "DemoStore",
+    "Demonstration",
+    "DemonstrationInfo",
+    "SkillRecord",
+    "CampaignInfo",
+    "ReplayResultInfo",
+    "ReplayResult",
+    "MergeConflict",
+    "MergeReport",
+]

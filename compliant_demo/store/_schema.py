@@ -1,0 +1,397 @@
+"""Schema of the demonstration store: table definitions, the version table, registered migrations,
+and the low-level sample reads and summary updates that both the store and the migrations need.
+
+A store records every schema version it went through in ``schema_migrations``; its version is the
+largest one. Migrations run in one transaction each, so a failed migration leaves the file at its
+old version.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import time
+from collections.abc import Callable
+
+import numpy as np
+
+from compliant_demo.exceptions import SchemaVersionError, StoreCorruptError, StoreReadOnlyError
+from compliant_demo.store._codec import CHANNELS, from_blobs
+
+__all__ = [
+    "SCHEMA_VERSION",
+    "MIGRATIONS",
+    "DEMONSTRATION_COLUMNS",
+    "ensure_schema",
+    "schema_version",
+    "read_samples",
+    "refresh_summary",
+]
+
+SCHEMA_VERSION = 2
+
+# Version 2 layout. A later version adds its own statements and a migration; these stay as the
+# record of what version 2 was.
+_TABLES: dict[str, str] = {
+    "schema_migrations": """
+        CREATE TABLE schema_migrations (
+            version INTEGER PRIMARY KEY,
+            applied_at REAL NOT NULL,
+            description TEXT NOT NULL
+        )""",
+    "writers": """
+        CREATE TABLE writers (
+            token TEXT PRIMARY KEY,
+            pid INTEGER NOT NULL,
+            hostname TEXT NOT NULL,
+            process_start REAL,
+            started_at REAL NOT NULL,
+            heartbeat_at REAL NOT NULL
+        )""",
+    "demonstrations": """
+        CREATE TABLE demonstrations (
+            id TEXT PRIMARY KEY,
+            skill TEXT NOT NULL,
+            operator TEXT NOT NULL DEFAULT '',
+            tags TEXT NOT NULL DEFAULT '[]',
+            notes TEXT NOT NULL DEFAULT '',
+            source TEXT NOT NULL CHECK (source IN ('recorded', 'imported', 'simulated')),
+            joints TEXT NOT NULL,
+            n_joints INTEGER NOT NULL CHECK (n_joints > 0),
+            nominal_rate_hz REAL NOT NULL CHECK (nominal_rate_hz > 0),
+            start_time REAL NOT NULL,
+            status TEXT NOT NULL
+                CHECK (status IN ('recording', 'complete', 'incomplete', 'rejected')),
+            status_reason TEXT,
+            has_stiffness INTEGER NOT NULL,
+            n_samples INTEGER NOT NULL DEFAULT 0,
+            t_first REAL,
+            t_last REAL,
+            duration_s REAL NOT NULL DEFAULT 0,
+            mean_rate_hz REAL,
+            range_of_motion REAL,
+            peak_abs_torque REAL,
+            stiffness_min REAL,
+            stiffness_max REAL,
+            range_of_motion_json TEXT NOT NULL DEFAULT '{}',
+            peak_abs_torque_json TEXT NOT NULL DEFAULT '{}',
+            stiffness_min_json TEXT NOT NULL DEFAULT '{}',
+            stiffness_max_json TEXT NOT NULL DEFAULT '{}',
+            flags TEXT NOT NULL DEFAULT '{}',
+            writer_token TEXT,
+            created_at REAL NOT NULL,
+            updated_at REAL NOT NULL
+        )""",
+    "demonstration_tags": """
+        CREATE TABLE demonstration_tags (
+            demo_id TEXT NOT NULL REFERENCES demonstrations(id) ON DELETE CASCADE,
+            tag TEXT NOT NULL,
+            PRIMARY KEY (tag, demo_id)
+        ) WITHOUT ROWID""",
+    "chunks": """
+        CREATE TABLE chunks (
+            demo_id TEXT NOT NULL REFERENCES demonstrations(id) ON DELETE CASCADE,
+            seq INTEGER NOT NULL,
+            n INTEGER NOT NULL CHECK (n > 0),
+            t_first REAL NOT NULL,
+            t_last REAL NOT NULL,
+            t BLOB NOT NULL,
+            position BLOB NOT NULL,
+            velocity BLOB NOT NULL,
+            torque BLOB NOT NULL,
+            stiffness BLOB,
+            UNIQUE (demo_id, seq)
+        )""",
+    "skills": """
+        CREATE TABLE skills (
+            id TEXT PRIMARY KEY,
+            name TEXT NOT NULL,
+            version INTEGER NOT NULL CHECK (version > 0),
+            payload TEXT NOT NULL,
+            parameters TEXT NOT NULL,
+            created REAL NOT NULL,
+            UNIQUE (name, version)
+        )""",
+    "skill_demonstrations": """
+        CREATE TABLE skill_demonstrations (
+            skill_id TEXT NOT NULL REFERENCES skills(id) ON DELETE CASCADE,
+            position INTEGER NOT NULL,
+            demo_id TEXT NOT NULL,
+            PRIMARY KEY (skill_id, position)
+        )""",
+    "campaigns": """
+        CREATE TABLE campaigns (
+            id TEXT PRIMARY KEY,
+            skill_id TEXT NOT NULL REFERENCES skills(id),
+            config TEXT NOT NULL,
+            created REAL NOT NULL
+        )""",
+    "replay_results": """
+        CREATE TABLE replay_results (
+            id TEXT PRIMARY KEY,
+            skill_id TEXT NOT NULL REFERENCES skills(id),
+            campaign_id TEXT REFERENCES campaigns(id),
+            scenario_index INTEGER,
+            status TEXT NOT NULL,
+            reason TEXT,
+            metrics TEXT NOT NULL,
+            parameters TEXT NOT NULL,
+            created REAL NOT NULL,
+            UNIQUE (campaign_id, scenario_index)
+        )""",
+    "replay_traces": """
+        CREATE TABLE replay_traces (
+            result_id TEXT NOT NULL REFERENCES replay_results(id) ON DELETE CASCADE,
+            channel TEXT NOT NULL,
+            shape TEXT NOT NULL,
+            data BLOB NOT NULL,
+            PRIMARY KEY (result_id, channel)
+        )""",
+}
+
+# Every column a caller may filter or sort on with ``where`` / ``order_by``.
+DEMONSTRATION_COLUMNS: tuple[str, ...] = (
+    "id", "skill", "operator", "tags", "notes", "source", "joints", "n_joints",
+    "nominal_rate_hz", "start_time", "status", "status_reason", "has_stiffness", "n_samples",
+    "t_first", "t_last", "duration_s", "mean_rate_hz", "range_of_motion", "peak_abs_torque",
+    "stiffness_min", "stiffness_max", "range_of_motion_json", "peak_abs_torque_json",
+    "stiffness_min_json", "stiffness_max_json", "flags", "writer_token", "created_at",
+    "updated_at",
+)  # fmt: skip
+
+_INDEXES: tuple[str, ...] = (
+    "CREATE INDEX idx_demonstrations_skill ON demonstrations (skill, start_time)",
+    "CREATE INDEX idx_demonstrations_operator ON demonstrations (operator, start_time)",
+    "CREATE INDEX idx_demonstrations_status ON demonstrations (status, start_time)",
+    "CREATE INDEX idx_demonstrations_start ON demonstrations (start_time)",
+    "CREATE INDEX idx_demonstrations_duration ON demonstrations (duration_s)",
+    "CREATE INDEX idx_demonstration_tags_demo ON demonstration_tags (demo_id)",
+    "CREATE INDEX idx_skill_demonstrations_demo ON skill_demonstrations (demo_id)",
+    "CREATE INDEX idx_replay_results_skill ON replay_results (skill_id, created)",
+    "CREATE INDEX idx_replay_results_campaign ON replay_results (campaign_id, scenario_index)",
+)
+
+
+def _record_version(conn: sqlite3.Connection, version: int, description: str) -> None:
+    conn.execute(
+        "INSERT INTO schema_migrations (version, applied_at, description) VALUES (?, ?, ?)",
+        (version, time.time(), description),
+    )
+
+
+def _create_latest(conn: sqlite3.Connection) -> None:
+    for ddl in _TABLES.values():
+        conn.execute(ddl)
+    for ddl in _INDEXES:
+        conn.execute(ddl)
+    _record_version(conn, SCHEMA_VERSION, "created")
+
+
+def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
+    """Version 1 kept tags only as JSON, had no summaries, chunk time bounds, writer leases,
+    status reasons, skills or replay results, and no CHECK constraints; rebuild both tables."""
+    conn.execute("ALTER TABLE demonstrations RENAME TO demonstrations_v1")
+    conn.execute("ALTER TABLE chunks RENAME TO chunks_v1")
+    for name, ddl in _TABLES.items():
+        if name != "schema_migrations":
+            conn.execute(ddl)
+    conn.execute(
+        """INSERT INTO demonstrations (
+               id, skill, operator, tags, notes, source, joints, n_joints, nominal_rate_hz,
+               start_time, status, has_stiffness, n_samples, duration_s, created_at, updated_at)
+           SELECT id, skill, coalesce(operator, ''), coalesce(tags, '[]'), coalesce(notes, ''),
+               coalesce(source, 'recorded'), joints, json_array_length(joints),
+               coalesce(nominal_rate_hz, 1000.0), coalesce(start_time, created_at), status,
+               has_stiffness, coalesce(n_samples, 0), coalesce(duration_s, 0), created_at,
+               created_at
+           FROM demonstrations_v1"""
+    )
+    conn.execute(
+        """INSERT INTO demonstration_tags (demo_id, tag)
+           SELECT DISTINCT d.id, j.value FROM demonstrations d, json_each(d.tags) j"""
+    )
+    chunk_rows = conn.execute(
+        "SELECT demo_id, seq, n, t, position, velocity, torque, stiffness FROM chunks_v1"
+    )
+    for demo_id, seq, n, t, *channels in chunk_rows:
+        times = from_blobs([t], None)
+        conn.execute(
+            """INSERT INTO chunks (demo_id, seq, n, t_first, t_last, t, position, velocity,
+                   torque, stiffness) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+            (demo_id, seq, n, float(times[0]), float(times[-1]), t, *channels),
+        )
+    conn.execute("DROP TABLE chunks_v1")
+    conn.execute("DROP TABLE demonstrations_v1")
+    for ddl in _INDEXES:
+        conn.execute(ddl)
+    for (demo_id,) in conn.execute("SELECT id FROM demonstrations").fetchall():
+        refresh_summary(conn, demo_id)
+
+
+# from-version -> (description, migration to from-version + 1)
+MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
+    1: ("summaries, tag index, writer leases, skills and replay results", _migrate_1_to_2),
+}
+
+
+def schema_version(conn: sqlite3.Connection) -> int | None:
+    """The store's schema version, or None for an empty database."""
+    tables = {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    if "schema_migrations" not in tables:
+        if tables:
+            raise StoreCorruptError(
+                f"not a demonstration store: no schema_migrations table (tables: "
+                f"{', '.join(sorted(tables))})"
+            )
+        return None
+    (version,) = conn.execute("SELECT max(version) FROM schema_migrations").fetchone()
+    if version is None:
+        raise StoreCorruptError("schema_migrations table is empty")
+    return int(version)
+
+
+def ensure_schema(conn: sqlite3.Connection, *, writable: bool, label: str) -> int:
+    """Create the schema in an empty store or migrate an older one; return the final version.
+
+    Raises
+    ------
+    SchemaVersionError
+        The store is newer than this code, or older and opened read-only.
+    """
+    version = schema_version(conn)
+    if version is not None and version > SCHEMA_VERSION:
+        raise SchemaVersionError(
+            f"{label}: schema version {version} is newer than this compliant_demo supports "
+            f"({SCHEMA_VERSION}); upgrade compliant_demo to open it"
+        )
+    if version == SCHEMA_VERSION:
+        return version
+    if not writable:
+        if version is None:
+            raise StoreReadOnlyError(f"{label}: empty file opened read-only, cannot create schema")
+        raise SchemaVersionError(
+            f"{label}: schema version {version} is older than {SCHEMA_VERSION}; open it writable "
+            f"once to migrate"
+        )
+    if version is None:
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            if schema_version(conn) is None:  # another process may have created it meanwhile
+                _create_latest(conn)
+            conn.execute("COMMIT")
+        except BaseException:
+            conn.execute("ROLLBACK")
+            raise
+        return SCHEMA_VERSION
+    return _migrate(conn, version, label)
+
+
+def _migrate(conn: sqlite3.Connection, version: int, label: str) -> int:
+    # Rebuilding tables needs foreign keys off; the pragma is ignored inside a transaction.
+    conn.execute("PRAGMA foreign_keys = OFF")
+    try:
+        while version < SCHEMA_VERSION:
+            if version not in MIGRATIONS:
+                raise SchemaVersionError(f"{label}: no migration registered from version {version}")
+            description, migration = MIGRATIONS[version]
+            conn.execute("BEGIN IMMEDIATE")
+            try:
+                if schema_version(conn) == version:
+                    migration(conn)
+                    _record_version(conn, version + 1, description)
+                    problems = conn.execute("PRAGMA foreign_key_check").fetchall()
+                    if problems:
+                        raise StoreCorruptError(
+                            f"{label}: migration to version {version + 1} leaves dangling "
+                            f"references: {problems[:3]}"
+                        )
+                conn.execute("COMMIT")
+            except BaseException:
+                conn.execute("ROLLBACK")
+                raise
+            version = schema_version(conn) or version
+    finally:
+        conn.execute("PRAGMA foreign_keys = ON")
+    return version
+
+
+def read_samples(
+    conn: sqlite3.Connection, demo_id: str, n_joints: int, has_stiffness: bool
+) -> tuple[np.ndarray, dict[str, np.ndarray | None]]:
+    """All samples of one demonstration: ``t`` (n,) and channel arrays (n, n_joints).
+
+    One SELECT over the demonstration's chunks; each channel is one join of blobs and one
+    ``np.frombuffer``, so the arrays are read-only views of fresh memory.
+    """
+    rows = conn.execute(
+        "SELECT t, position, velocity, torque, stiffness FROM chunks WHERE demo_id = ? "
+        "ORDER BY seq",
+        (demo_id,),
+    ).fetchall()
+    if not rows:
+        empty = np.empty((0, n_joints))
+        return np.empty(0), {
+            name: (empty if name != "stiffness" or has_stiffness else None) for name in CHANNELS
+        }
+    columns = list(zip(*rows, strict=True))
+    t = from_blobs(columns[0], None)
+    arrays: dict[str, np.ndarray | None] = {}
+    for name, blobs in zip(CHANNELS, columns[1:], strict=True):
+        arrays[name] = (
+            from_blobs(blobs, n_joints) if (name != "stiffness" or has_stiffness) else None
+        )
+    return t, arrays
+
+
+def _per_joint(joints: list[str], values: np.ndarray) -> str:
+    return json.dumps({name: float(v) for name, v in zip(joints, values, strict=True)})
+
+
+def refresh_summary(conn: sqlite3.Connection, demo_id: str) -> None:
+    """Recompute the summary columns of one demonstration from its stored samples."""
+    row = conn.execute(
+        "SELECT joints, n_joints, has_stiffness FROM demonstrations WHERE id = ?", (demo_id,)
+    ).fetchone()
+    joints_json, n_joints, has_stiffness = row
+    joints = json.loads(joints_json)
+    t, arrays = read_samples(conn, demo_id, n_joints, bool(has_stiffness))
+    summary: dict[str, object] = {
+        "n_samples": int(t.size),
+        "t_first": float(t[0]) if t.size else None,
+        "t_last": float(t[-1]) if t.size else None,
+        "duration_s": float(t[-1] - t[0]) if t.size else 0.0,
+        "mean_rate_hz": float((t.size - 1) / (t[-1] - t[0])) if t.size > 1 else None,
+        "range_of_motion": None,
+        "peak_abs_torque": None,
+        "stiffness_min": None,
+        "stiffness_max": None,
+        "range_of_motion_json": "{}",
+        "peak_abs_torque_json": "{}",
+        "stiffness_min_json": "{}",
+        "stiffness_max_json": "{}",
+    }
+    if t.size:
+        position, torque = arrays["position"], arrays["torque"]
+        assert position is not None and torque is not None
+        rom = position.max(axis=0) - position.min(axis=0)
+        peak = np.abs(torque).max(axis=0)
+        summary.update(
+            range_of_motion=float(rom.max()),
+            peak_abs_torque=float(peak.max()),
+            range_of_motion_json=_per_joint(joints, rom),
+            peak_abs_torque_json=_per_joint(joints, peak),
+        )
+        stiffness = arrays["stiffness"]
+        if stiffness is not None:
+            low, high = stiffness.min(axis=0), stiffness.max(axis=0)
+            summary.update(
+                stiffness_min=float(low.min()),
+                stiffness_max=float(high.max()),
+                stiffness_min_json=_per_joint(joints, low),
+                stiffness_max_json=_per_joint(joints, high),
+            )
+    assignments = ", ".join(f"{name} = ?" for name in summary)
+    conn.execute(
+        f"UPDATE demonstrations SET {assignments}, updated_at = ? WHERE id = ?",
+        (*summary.values(), time.time(), demo_id),
+    )

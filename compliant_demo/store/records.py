@@ -1,0 +1,237 @@
+"""Records the demonstration store hands back: demonstration metadata and samples, skills, replay
+results and the outcome of a merge. Plain frozen dataclasses, cheap to build by the thousand."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+from typing import Any
+
+import numpy as np
+
+__all__ = [
+    "DEMO_SOURCES",
+    "DEMO_STATUSES",
+    "DemonstrationInfo",
+    "Demonstration",
+    "SkillRecord",
+    "CampaignInfo",
+    "ReplayResultInfo",
+    "ReplayResult",
+    "MergeConflict",
+    "MergeReport",
+]
+
+DEMO_SOURCES: tuple[str, ...] = ("recorded", "imported", "simulated")
+DEMO_STATUSES: tuple[str, ...] = ("recording", "complete", "incomplete", "rejected")
+
+
+@dataclass(frozen=True, slots=True)
+class DemonstrationInfo:
+    """Metadata and summary of one demonstration (no samples).
+
+    Attributes
+    ----------
+    id : str
+        UUID4 string; stable across stores, so merged stores never clash.
+    skill, operator, notes : str
+    tags : tuple of str
+    source : {"recorded", "imported", "simulated"}
+    joints : tuple of str
+        Joint names, in the column order of every sample array.
+    nominal_rate_hz : float
+        Rate the recorder aimed for, Hz.
+    start_time : float
+        Absolute start, Unix time, s. Sample times are relative to it.
+    status : {"recording", "complete", "incomplete", "rejected"}
+    status_reason : str or None
+        Why the status was set (rejections, recovery of a dead writer).
+    has_stiffness : bool
+        Whether the stiffness channel is stored.
+    n_samples : int
+    duration_s : float
+        ``t[-1] - t[0]``, s (0 for fewer than two samples).
+    mean_rate_hz : float or None
+        ``(n_samples - 1) / duration_s``, Hz.
+    range_of_motion : dict of str to float
+        Per joint ``max(q) - min(q)``, rad. Filled when the demonstration is finished.
+    peak_abs_torque : dict of str to float
+        Per joint ``max(|tau|)``, N*m.
+    stiffness_min, stiffness_max : dict of str to float
+        Per joint extreme stiffness, N*m/rad (empty without stiffness).
+    flags : dict of str to int
+        Counters of recording trouble, e.g. ``{"drops": 3, "gaps": 1}``.
+    created_at, updated_at : float
+        Unix time, s.
+    """
+
+    id: str
+    skill: str
+    operator: str
+    tags: tuple[str, ...]
+    notes: str
+    source: str
+    joints: tuple[str, ...]
+    nominal_rate_hz: float
+    start_time: float
+    status: str
+    status_reason: str | None
+    has_stiffness: bool
+    n_samples: int
+    duration_s: float
+    mean_rate_hz: float | None
+    range_of_motion: dict[str, float] = field(default_factory=dict)
+    peak_abs_torque: dict[str, float] = field(default_factory=dict)
+    stiffness_min: dict[str, float] = field(default_factory=dict)
+    stiffness_max: dict[str, float] = field(default_factory=dict)
+    flags: dict[str, int] = field(default_factory=dict)
+    created_at: float = 0.0
+    updated_at: float = 0.0
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict (tuples become lists)."""
+        data = asdict(self)
+        data["tags"] = list(self.tags)
+        data["joints"] = list(self.joints)
+        return data
+
+
+@dataclass(frozen=True, slots=True)
+class Demonstration:
+    """Samples of one demonstration with its metadata.
+
+    Attributes
+    ----------
+    info : DemonstrationInfo
+    t : (n_samples,) array, s
+        Relative to ``info.start_time``, strictly increasing.
+    position : (n_samples, n_joints) array, rad
+    velocity : (n_samples, n_joints) array, rad/s
+    torque : (n_samples, n_joints) array, N*m
+    stiffness : (n_samples, n_joints) array, N*m/rad, or None when not recorded
+    joints : tuple of str
+        Column names of the sample arrays (a subset of ``info.joints`` when asked for).
+    """
+
+    info: DemonstrationInfo
+    t: np.ndarray
+    position: np.ndarray
+    velocity: np.ndarray
+    torque: np.ndarray
+    stiffness: np.ndarray | None
+    joints: tuple[str, ...]
+
+    @property
+    def id(self) -> str:
+        """The demonstration's UUID."""
+        return self.info.id
+
+
+@dataclass(frozen=True, slots=True)
+class SkillRecord:
+    """One saved version of a learned skill, with its provenance.
+
+    Attributes
+    ----------
+    id : str
+        UUID4 of this version.
+    name : str
+    version : int
+        1 for the first save of ``name``, then increasing by one.
+    payload : dict
+        The skill itself (its layout belongs to the learner); numpy arrays round-trip exactly.
+    demonstration_ids : tuple of str
+        Demonstrations the skill was learned from.
+    parameters : dict
+        Learning parameters used.
+    created : float
+        Unix time, s.
+    """
+
+    id: str
+    name: str
+    version: int
+    payload: dict[str, Any]
+    demonstration_ids: tuple[str, ...]
+    parameters: dict[str, Any]
+    created: float
+
+
+@dataclass(frozen=True, slots=True)
+class CampaignInfo:
+    """A replay campaign: one skill version replayed over a configured set of scenarios."""
+
+    id: str
+    skill_id: str
+    config: dict[str, Any]
+    created: float
+
+
+@dataclass(frozen=True, slots=True)
+class ReplayResultInfo:
+    """Metrics of one replay, without its trace arrays.
+
+    Attributes
+    ----------
+    id, skill_id : str
+    campaign_id : str or None
+    scenario_index : int or None
+    status : str
+        ``"ok"`` or a short word chosen by the replay code (e.g. ``"unstable"``).
+    reason : str or None
+    metrics, parameters : dict
+    trace_channels : tuple of str
+        Names of the stored trace arrays.
+    created : float
+        Unix time, s.
+    """
+
+    id: str
+    skill_id: str
+    campaign_id: str | None
+    scenario_index: int | None
+    status: str
+    reason: str | None
+    metrics: dict[str, Any]
+    parameters: dict[str, Any]
+    trace_channels: tuple[str, ...]
+    created: float
+
+
+@dataclass(frozen=True, slots=True)
+class ReplayResult:
+    """A replay result with its trace arrays (float64, shapes as saved)."""
+
+    info: ReplayResultInfo
+    trace: dict[str, np.ndarray]
+
+
+@dataclass(frozen=True, slots=True)
+class MergeConflict:
+    """A demonstration present in both stores with different content."""
+
+    id: str
+    reason: str
+
+
+@dataclass(slots=True)
+class MergeReport:
+    """What :meth:`DemoStore.merge_from` did.
+
+    Attributes
+    ----------
+    added : list of str
+        Ids copied into this store.
+    skipped_duplicates : list of str
+        Ids already here with identical metadata and samples.
+    conflicts : list of MergeConflict
+        Ids already here with different content, or still recording in the other store;
+        nothing was changed for them.
+    """
+
+    added: list[str] = field(default_factory=list)
+    skipped_duplicates: list[str] = field(default_factory=list)
+    conflicts: list[MergeConflict] = field(default_factory=list)
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict."""
+        return asdict(self)
