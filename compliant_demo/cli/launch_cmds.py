@@ -1,0 +1,88 @@
+"""``compliant-demo launch FILE [name:=value ...]``: start the nodes an XML launch file declares.
+
+For machines without the ROS 2 launch packages: each declared node runs as its own process with
+the declared name, namespace and parameters. Ctrl-C (SIGINT) or SIGTERM is passed on to every
+node; the command returns once all have ended, with the first non-zero exit status.
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+from compliant_demo.launch_file import (
+    LaunchDescription,
+    parse_launch_arguments,
+    read_launch_file,
+    start_nodes,
+)
+
+__all__ = ["register"]
+
+_GRACE_S = 10.0
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add the ``launch`` subcommand."""
+    parser = subparsers.add_parser(
+        "launch",
+        help="start the nodes an XML launch file declares",
+        description=(
+            "Start every <node> of one of our *.launch.xml files as a process with its declared "
+            "parameters, for machines without the ROS 2 launch packages."
+        ),
+    )
+    parser.add_argument("launch_file", type=Path, help="a *.launch.xml file")
+    parser.add_argument(
+        "arguments", nargs="*", metavar="NAME:=VALUE", help="values for the file's <arg> entries"
+    )
+    parser.add_argument(
+        "--print",
+        dest="print_only",
+        action="store_true",
+        help="print each node's command line and exit without starting anything",
+    )
+    parser.set_defaults(handler=_run)
+
+
+def _run(args: argparse.Namespace) -> int:
+    description = read_launch_file(args.launch_file, parse_launch_arguments(args.arguments))
+    if args.print_only:
+        for node in description.nodes:
+            print(subprocess.list2cmdline(node.command_line()))
+        return 0
+    return _supervise(description)
+
+
+def _supervise(description: LaunchDescription) -> int:
+    processes = start_nodes(description)
+    signal_times: list[float] = []
+
+    def forward(signum: int, _frame: object) -> None:
+        signal_times.append(time.monotonic())
+        for process in processes:
+            if process.poll() is None:
+                process.send_signal(signum)
+
+    previous = {s: signal.signal(s, forward) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        while any(p.poll() is None for p in processes):
+            time.sleep(0.1)
+            # A node that ignores the forwarded signal for the grace period is killed.
+            if signal_times and time.monotonic() - signal_times[0] > _GRACE_S:
+                for process in processes:
+                    if process.poll() is None:
+                        process.kill()
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+    for node, process in zip(description.nodes, processes, strict=True):
+        if process.returncode:
+            name = node.name or node.executable
+            print(f"node {name} exited with {process.returncode}", file=sys.stderr)
+    return next((abs(p.returncode) for p in processes if p.returncode), 0)
+

@@ -1,0 +1,199 @@
+"""Recorder node: joint states (and an optional stiffness reference) into the store."""
+
+from __future__ import annotations
+
+import time
+
+from diagnostic_msgs.msg import DiagnosticArray
+from rclpy.node import Node
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Float64MultiArray
+from std_srvs.srv import Trigger
+
+from compliant_demo.cli.common import default_store_path
+from compliant_demo.ingest import (
+    ChunkWriter,
+    DemonstrationRequest,
+    MotionTrigger,
+    RecordingSession,
+    SampleChecker,
+)
+from compliant_demo.nodes._common import declare, diagnostic_array, recorded_qos, run_node
+from compliant_demo.nodes._common import stamp_seconds as _seconds
+
+__all__ = ["RecorderNode", "main"]
+
+
+class RecorderNode(Node):
+    """Subscribes to ``joint_states``; serves ``start``, ``stop``, ``discard``; ``diagnostics``."""
+
+    def __init__(self) -> None:
+        super().__init__("recorder")
+        p = self._declare_parameters()
+        writer = ChunkWriter(
+            open_store=lambda: _open_store(p["store_path"]),
+            make_estimator=_estimator_factory(p),
+            flush_interval_s=p["flush_interval_s"],
+        )
+        writer.start()
+        trigger = None
+        if p["auto_start"]:
+            trigger = MotionTrigger(
+                p["auto_start_speed"], p["auto_stop_speed"], p["auto_stop_hold_s"]
+            )
+        self.session = RecordingSession(
+            writer,
+            SampleChecker(p["joints"], p["nominal_rate_hz"], p["gap_factor"]),
+            self._request(),
+            buffer_capacity=p["buffer_capacity"],
+            trigger=trigger,
+        )
+        qos = recorded_qos(p["queue_depth"])
+        self.create_subscription(JointState, "joint_states", self._on_joint_state, qos)
+        self.create_subscription(
+            Float64MultiArray, "stiffness_reference", self._on_reference, qos
+        )
+        self.create_service(Trigger, "start", self._on_start)
+        self.create_service(Trigger, "stop", self._on_stop)
+        self.create_service(Trigger, "discard", self._on_discard)
+        self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
+        self._last_health = time.monotonic()
+        self.create_timer(p["diagnostics_period_s"], self._publish_diagnostics)
+        self.get_logger().info(
+            f"recording joints {p['joints']} into {p['store_path'] or default_store_path()}"
+        )
+
+    def _declare_parameters(self) -> dict:
+        d = declare
+        return {
+            "store_path": d(self, "store_path", "", "Store file; empty = the default store."),
+            "joints": d(self, "joints", ["shoulder", "elbow"], "Joint names in stored order."),
+            "skill": d(self, "skill", "cork_seat", "Skill name of new demos.", read_only=False),
+            "operator": d(self, "operator", "operator_a", "Who demonstrates.", read_only=False),
+            "tags": d(self, "tags", [], "Tags of new demonstrations.", read_only=False),
+            "notes": d(self, "notes", "", "Free-text notes of new demos.", read_only=False),
+            "nominal_rate_hz": d(self, "nominal_rate_hz", 1000.0, "Expected rate, Hz.",
+                                 low=1.0, high=20000.0),
+            "gap_factor": d(self, "gap_factor", 1.5,
+                            "A stamp step above this many nominal periods is a gap.",
+                            low=1.05, high=100.0),
+            "flush_interval_s": d(self, "flush_interval_s", 0.1,
+                                  "Longest time a sample waits before it is written, s.",
+                                  low=0.01, high=0.2),
+            "buffer_capacity": d(self, "buffer_capacity", 200000,
+                                 "Most samples held in memory between flushes.",
+                                 low=1000, high=10000000),
+            "queue_depth": d(self, "queue_depth", 5000,
+                             "History depth of the reliable joint_states subscription.",
+                             low=10, high=100000),
+            "stiffness_source": d(self, "stiffness_source", "estimate",
+                                  "Stored stiffness: estimate, reference (topic) or none."),
+            "estimator_window_s": d(self, "estimator_window_s", 0.5,
+                                    "Sliding estimation window, s.", low=0.01, high=10.0),
+            "estimator_noise_variance_ratio": d(
+                self, "estimator_noise_variance_ratio", 1.0,
+                "Torque-noise over angle-noise variance ratio for TLS, (N*m/rad)^2.",
+                low=1e-12, high=1e12),
+            "estimator_band_low_hz": d(self, "estimator_band_low_hz", 0.0,
+                                       "Band-pass low edge, Hz (0 and 0 = no band-pass).",
+                                       low=0.0, high=5000.0),
+            "estimator_band_high_hz": d(self, "estimator_band_high_hz", 0.0,
+                                        "Band-pass high edge, Hz.", low=0.0, high=5000.0),
+            "estimator_min_excitation_rad": d(
+                self, "estimator_min_excitation_rad", 1e-3,
+                "Least angle excitation in a window for an estimate, rad.",
+                low=0.0, high=1.0),
+            "auto_start": d(self, "auto_start", False, "Start and stop on motion."),
+            "auto_start_speed": d(self, "auto_start_speed", 0.05,
+                                  "Speed that starts a demonstration, rad/s.",
+                                  low=1e-6, high=100.0),
+            "auto_stop_speed": d(self, "auto_stop_speed", 0.02,
+                                 "Speed below which joints count as still, rad/s.",
+                                 low=1e-6, high=100.0),
+            "auto_stop_hold_s": d(self, "auto_stop_hold_s", 1.0,
+                                  "Stillness that stops a demonstration, s.",
+                                  low=0.01, high=60.0),
+            "diagnostics_period_s": d(self, "diagnostics_period_s", 1.0,
+                                      "Diagnostics period, s.", low=0.05, high=60.0),
+        }
+
+    def _request(self) -> DemonstrationRequest:
+        value = self.get_parameter
+        return DemonstrationRequest(
+            skill=value("skill").value,
+            joints=tuple(value("joints").value),
+            operator=value("operator").value,
+            tags=tuple(value("tags").value),
+            notes=value("notes").value,
+            nominal_rate_hz=value("nominal_rate_hz").value,
+            stiffness_source=value("stiffness_source").value,
+        )
+
+    def _on_joint_state(self, msg: JointState) -> None:
+        self.session.ingest(
+            _seconds(msg.header.stamp), msg.name, msg.position, msg.velocity, msg.effort
+        )
+
+    def _on_reference(self, msg: Float64MultiArray) -> None:
+        self.session.set_reference(msg.data)
+
+    def _on_start(self, _request: Trigger.Request, response: Trigger.Response):
+        self.session.configure(self._request())
+        response.success, response.message = self.session.start()
+        self.get_logger().info(f"start: {response.message}")
+        return response
+
+    def _on_stop(self, _request: Trigger.Request, response: Trigger.Response):
+        response.success, response.message = self.session.stop("complete")
+        self.get_logger().info(f"stop: {response.message}")
+        return response
+
+    def _on_discard(self, _request: Trigger.Request, response: Trigger.Response):
+        response.success, response.message = self.session.stop("rejected", discarded=1)
+        self.get_logger().info(f"discard: {response.message}")
+        return response
+
+    def _publish_diagnostics(self) -> None:
+        now = time.monotonic()
+        level, message, values = self.session.health(now - self._last_health)
+        self._last_health = now
+        self._diagnostics.publish(diagnostic_array(self, "recorder", level, message, values))
+
+    def close(self) -> None:
+        """Finish an open demonstration as incomplete and close the store."""
+        was_recording = self.session.recording
+        if not self.session.shutdown():
+            self.get_logger().error("store writer did not finish within its timeout")
+        elif was_recording:
+            self.get_logger().info("open demonstration finished as incomplete (interrupted)")
+
+
+def _open_store(path: str):
+    from compliant_demo.store import DemoStore
+
+    return DemoStore(path or default_store_path())
+
+
+def _estimator_factory(p: dict):
+    if p["stiffness_source"] != "estimate":
+        return None
+    from compliant_demo.estimation import SlidingStiffnessEstimator
+
+    band = (p["estimator_band_low_hz"], p["estimator_band_high_hz"])
+    return lambda n_joints: SlidingStiffnessEstimator(
+        n_joints,
+        window_s=p["estimator_window_s"],
+        rate_hz=p["nominal_rate_hz"],
+        noise_variance_ratio=p["estimator_noise_variance_ratio"],
+        band_hz=band if band[1] > band[0] else None,
+        min_excitation_rad=p["estimator_min_excitation_rad"],
+    )
+
+
+def main(args: list[str] | None = None) -> int:
+    """Run the recorder node until Ctrl-C or shutdown; returns the exit status."""
+    return run_node(RecorderNode, args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
