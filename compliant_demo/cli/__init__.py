@@ -17,7 +17,9 @@ from compliant_demo.exceptions import CompliantDemoError
 
 __all__ = ["main", "build_parser"]
 
-_COMMAND_MODULES: tuple[str, ...] = ()
+_COMMAND_MODULES: tuple[str, ...] = (
+    "compliant_demo.cli.launch_cmds",
+)
 
 
 def build_parser() -> argparse.ArgumentParser:
