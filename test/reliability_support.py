@@ -42,6 +42,7 @@ __all__ = [
     "no_hang",
     "run_kill_trials",
     "sample_digest",
+    "write_demo",
 ]
 
 JOINTS = ["shoulder", "elbow"]
@@ -235,8 +236,8 @@ def _verify_trial(path: Path, seed: int, demo_id: str | None, reported: int) -> 
     with DemoStore(str(path)) as store:
         if demo_id is None:
             return result(None, integrity=check)
-        status = field(store.get_demonstration(demo_id), "status")
         loaded = store.load_demonstration(demo_id)
+    status = loaded.info.status
     t = channel(loaded, "t")
     n_samples = 0 if t is None else t.shape[0]
     stored, remainder = divmod(n_samples, CHUNK_SAMPLES)
@@ -253,6 +254,20 @@ def _verify_trial(path: Path, seed: int, demo_id: str | None, reported: int) -> 
     if status != "incomplete":
         return result(f"interrupted demonstration has status {status!r}", exact=True, **values)
     return result(None, exact=True, **values)
+
+
+def write_demo(
+    store: Any, seed: int, n_chunks: int, *, finish: str | None = "complete", **meta: Any
+) -> str:
+    """Begin a demonstration, append ``n_chunks`` chunks of trial ``seed``; return its id."""
+    meta.setdefault("skill", "cork_seat")
+    meta.setdefault("operator", "operator_a")
+    demo_id = store.begin_demonstration(joints=JOINTS, **meta)
+    for index in range(n_chunks):
+        store.append_chunk(demo_id, **chunk_arrays(seed, index))
+    if finish is not None:
+        store.finish_demonstration(demo_id, finish)
+    return demo_id
 
 
 def _one_trial(
