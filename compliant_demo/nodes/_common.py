@@ -28,6 +28,7 @@ __all__ = [
     "to_stamp",
     "float_array",
     "diagnostic_array",
+    "open_store",
     "run_node",
 ]
 
@@ -112,6 +113,14 @@ def diagnostic_array(
     status.values = [KeyValue(key=key, value=value) for key, value in values.items()]
     array.status = [status]
     return array
+
+
+def open_store(path: str, read_only: bool = False) -> Any:
+    """The demonstration store at ``path`` (empty: the default store), as a context manager."""
+    from compliant_demo.cli.common import default_store_path
+    from compliant_demo.store import DemoStore
+
+    return DemoStore(path or default_store_path(), read_only=read_only)
 
 
 def _executor() -> Any:

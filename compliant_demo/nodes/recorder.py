@@ -18,7 +18,13 @@ from compliant_demo.ingest import (
     RecordingSession,
     SampleChecker,
 )
-from compliant_demo.nodes._common import declare, diagnostic_array, recorded_qos, run_node
+from compliant_demo.nodes._common import (
+    declare,
+    diagnostic_array,
+    open_store,
+    recorded_qos,
+    run_node,
+)
 from compliant_demo.nodes._common import stamp_seconds as _seconds
 
 __all__ = ["RecorderNode", "main"]
@@ -31,7 +37,7 @@ class RecorderNode(Node):
         super().__init__("recorder")
         p = self._declare_parameters()
         writer = ChunkWriter(
-            open_store=lambda: _open_store(p["store_path"]),
+            open_store=lambda: open_store(p["store_path"]),
             make_estimator=_estimator_factory(p),
             flush_interval_s=p["flush_interval_s"],
         )
@@ -166,12 +172,6 @@ class RecorderNode(Node):
             self.get_logger().error("store writer did not finish within its timeout")
         elif was_recording:
             self.get_logger().info("open demonstration finished as incomplete (interrupted)")
-
-
-def _open_store(path: str):
-    from compliant_demo.store import DemoStore
-
-    return DemoStore(path or default_store_path())
 
 
 def _estimator_factory(p: dict):

@@ -1,0 +1,104 @@
+"""Learner node: a ``fit`` service learns a skill from the demonstrations its parameters select."""
+
+from __future__ import annotations
+
+from rclpy.node import Node
+from std_srvs.srv import Trigger
+
+from compliant_demo.exceptions import CompliantDemoError
+from compliant_demo.nodes._common import declare, open_store, run_node
+from compliant_demo.runtime import LearnRequest, learn_from_store, matching_demonstrations
+
+__all__ = ["LearnerNode", "main"]
+
+
+class LearnerNode(Node):
+    """Serves ``fit`` (std_srvs/Trigger); can also fit once on its own when enough demos exist."""
+
+    def __init__(self) -> None:
+        super().__init__("learner")
+        d = declare
+        self._store_path = d(self, "store_path", "", "Store file; empty = the default store.")
+        d(self, "skill", "cork_seat", "Skill to select and save under.", read_only=False)
+        d(self, "joints", ["shoulder", "elbow"], "Joints to learn, in order.", read_only=False)
+        d(self, "tags", [], "Select demonstrations carrying all these tags.", read_only=False)
+        d(self, "operator", "", "Select one operator's demonstrations; empty = any.",
+          read_only=False)
+        d(self, "min_demonstrations", 2, "Least number of matching complete demonstrations.",
+          low=1, high=10000, read_only=False)
+        d(self, "n_basis", 30, "Basis functions per joint.", low=2, high=1000, read_only=False)
+        d(self, "alignment", "dtw", "Time alignment: dtw, resample or none.", read_only=False)
+        d(self, "stiffness_source", "auto", "Stiffness profile: auto, recorded or variability.",
+          read_only=False)
+        d(self, "stiffness_min", 5.0, "Target joint's lowest stiffness, N*m/rad.",
+          low=1e-3, high=1e5, read_only=False)
+        d(self, "stiffness_max", 200.0, "Target joint's highest stiffness, N*m/rad.",
+          low=1e-3, high=1e5, read_only=False)
+        d(self, "fit_when_available", 0,
+          "Fit once by itself as soon as this many demonstrations match (0 = only on request).",
+          low=0, high=10000)
+        d(self, "poll_period_s", 1.0, "How often to look for demonstrations, s.",
+          low=0.05, high=60.0)
+        d(self, "exit_after_fit", False, "End the node after the automatic fit.")
+        self.create_service(Trigger, "fit", self._on_fit)
+        self.done = False
+        self.exit_status = 0
+        self._wait_for = self.get_parameter("fit_when_available").value
+        if self._wait_for:
+            self._poll = self.create_timer(
+                self.get_parameter("poll_period_s").value, self._on_poll
+            )
+
+    def _request(self) -> LearnRequest:
+        value = self.get_parameter
+        return LearnRequest(
+            skill=value("skill").value,
+            joints=tuple(value("joints").value),
+            tags=tuple(value("tags").value),
+            operator=value("operator").value,
+            min_demonstrations=value("min_demonstrations").value,
+            options={
+                "n_basis": value("n_basis").value,
+                "alignment": value("alignment").value,
+                "stiffness_source": value("stiffness_source").value,
+                "stiffness_range": (value("stiffness_min").value, value("stiffness_max").value),
+            },
+        )
+
+    def _fit(self) -> tuple[bool, str]:
+        try:
+            with open_store(self._store_path) as store:
+                outcome = learn_from_store(store, self._request())
+        except CompliantDemoError as exc:
+            self.get_logger().error(f"fit refused: {exc}")
+            return False, str(exc)
+        self.get_logger().info(outcome.report)
+        return True, f"saved {outcome.name!r} version {outcome.version} ({outcome.skill_id})"
+
+    def _on_fit(self, _request: Trigger.Request, response: Trigger.Response):
+        response.success, response.message = self._fit()
+        return response
+
+    def _on_poll(self) -> None:
+        try:
+            with open_store(self._store_path, read_only=True) as store:
+                available = len(matching_demonstrations(store, self._request()))
+        except CompliantDemoError as exc:
+            self.get_logger().warn(f"cannot query the store yet: {exc}", throttle_duration_sec=5)
+            return
+        if available < self._wait_for:
+            return
+        self._poll.cancel()
+        success, message = self._fit()
+        if self.get_parameter("exit_after_fit").value:
+            self.exit_status = 0 if success else 1
+            self.done = True
+
+
+def main(args: list[str] | None = None) -> int:
+    """Run the learner node until Ctrl-C, shutdown, or the end of an automatic fit."""
+    return run_node(LearnerNode, args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
