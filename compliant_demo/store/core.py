@@ -57,6 +57,10 @@ _INFO_COLUMNS = (
     "peak_abs_torque_json, stiffness_min_json, stiffness_max_json, flags, created_at, updated_at"
 )
 _FINAL_STATUSES = ("complete", "incomplete", "rejected")
+_BEGIN_KEYWORDS = frozenset(
+    ("skill", "joints", "operator", "tags", "notes", "source", "nominal_rate_hz", "start_time",
+     "with_stiffness", "demo_id")
+)  # fmt: skip
 _RESULT_COLUMNS = (
     "r.id, r.skill_id, r.campaign_id, r.scenario_index, r.status, r.reason, r.metrics, "
     "r.parameters, r.created, (SELECT json_group_array(channel) FROM "
@@ -595,7 +599,7 @@ class DemoStore:
         (``with_stiffness`` defaults to whether ``stiffness`` is given).
         """
         begin_kwargs.setdefault("with_stiffness", stiffness is not None)
-        unknown = set(begin_kwargs) - set(self._begin.__code__.co_varnames[2:12])
+        unknown = set(begin_kwargs) - _BEGIN_KEYWORDS
         if unknown:
             raise TypeError(f"add_demonstration() got unexpected keyword(s): {sorted(unknown)}")
         _choice("status", status, _FINAL_STATUSES)
@@ -875,6 +879,23 @@ class DemoStore:
                 raise StoreError(
                     f"demonstration {demo_id!r} is provenance of skill(s) {used}; "
                     "pass force=True to delete it anyway"
+                )
+            conn.execute("DELETE FROM demonstrations WHERE id = ?", (demo_id,))
+        self._meta_cache.pop(demo_id, None)
+
+    def discard_recording(self, demo_id: str) -> None:
+        """Delete a demonstration that this store object began and that is still recording
+        (an import or recording that failed half-way); any other demonstration is refused."""
+        with self._transaction() as conn:
+            row = conn.execute(
+                "SELECT status, writer_token FROM demonstrations WHERE id = ?", (demo_id,)
+            ).fetchone()
+            if row is None:
+                raise NotFoundError(f"demonstration {demo_id!r} not found in {self._label}")
+            if row[0] != "recording" or row[1] is None or row[1] != self._lease_token:
+                raise StoreError(
+                    f"demonstration {demo_id!r} ({row[0]!r}) is not being recorded by this store "
+                    "object: refusing to discard it"
                 )
             conn.execute("DELETE FROM demonstrations WHERE id = ?", (demo_id,))
         self._meta_cache.pop(demo_id, None)
