@@ -22,7 +22,7 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, model_validator
-from scipy.signal import lfilter
+from scipy.signal import lfilter, savgol_filter
 
 from compliant_demo import __version__
 from compliant_demo.exceptions import InvalidInputError
@@ -30,6 +30,8 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = [
     "DMP",
     "DampingPolicy",
+    "FitMethod",
+    "Formulation",
     "Provenance",
     "Rollout",
     "Skill",
@@ -81,6 +83,33 @@ def _uniform_step(times: NDArray[np.float64]) -> float | None:
     steps = np.diff(times)
     mean_step = (times[-1] - times[0]) / steps.size
     return float(mean_step) if np.ptp(steps) <= 1e-9 * mean_step else None
+
+
+def _derivatives(
+    times: NDArray[np.float64], demos: NDArray[np.float64], smoothing_window: int | None
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Velocity and acceleration of (d, n, j) positions along axis 1, rad/s and rad/s^2.
+
+    Central differences by default; with ``smoothing_window`` a cubic Savitzky-Golay filter
+    (Savitzky and Golay, Analytical Chemistry 36(8), 1964), which keeps the plateaus and steps
+    of a warped time axis out of the acceleration the forcing term is fitted to.
+    """
+    step = _uniform_step(times)
+    if smoothing_window is None:
+        velocity = np.gradient(demos, times if step is None else step, axis=1)
+        return velocity, np.gradient(velocity, times if step is None else step, axis=1)
+    if (isinstance(smoothing_window, bool) or not isinstance(smoothing_window, int | np.integer)
+            or smoothing_window < 5 or smoothing_window % 2 == 0
+            or smoothing_window > times.size):
+        raise InvalidInputError(
+            f"smoothing_window: need an odd sample count from 5 to {times.size}, got "
+            f"{smoothing_window!r}"
+        )
+    if step is None:
+        raise InvalidInputError("smoothing_window: needs uniformly sampled t, got uneven steps")
+    window = int(smoothing_window)
+    velocity = savgol_filter(demos, window, 3, deriv=1, delta=step, axis=1)
+    return velocity, savgol_filter(demos, window, 3, deriv=2, delta=step, axis=1)
 
 
 def _per_joint(value: ArrayLike | None, n_joints: int, name: str) -> NDArray[np.float64] | None:
@@ -288,6 +317,7 @@ class DMP:
         *,
         method: FitMethod = "lwr",
         regularisation: float = 1e-8,
+        smoothing_window: int | None = None,
     ) -> DMP:
         """Learn the forcing weights from time-aligned demonstrations.
 
@@ -297,13 +327,15 @@ class DMP:
         position : (n_samples, n_joints) or (n_demos, n_samples, n_joints) array, rad
         method : "lwr" (locally weighted regression) or "ridge" (regularised global least squares)
         regularisation : ridge factor relative to the mean diagonal of the Gram matrix, 1
+        smoothing_window : odd sample count of a cubic Savitzky-Golay filter for the velocity and
+            acceleration targets (uniform t only); None for central differences
 
         Returns
         -------
         self, with ``weights`` (n_joints, n_basis) and ``amplitude`` (n_joints,) rad set
         """
         times, demos, x, psi = self._prepare(t, position, method)
-        self._fit_on_basis(times, demos, x, psi, method, regularisation)
+        self._fit_on_basis(times, demos, x, psi, method, regularisation, smoothing_window)
         return self
 
     def _prepare(
@@ -329,11 +361,10 @@ class DMP:
         psi: NDArray[np.float64],
         method: FitMethod,
         regularisation: float,
+        smoothing_window: int | None = None,
     ) -> None:
         tau = times[-1] - times[0]
-        spacing = _uniform_step(times)
-        velocity = np.gradient(demos, times if spacing is None else spacing, axis=1)
-        acceleration = np.gradient(velocity, times if spacing is None else spacing, axis=1)
+        velocity, acceleration = _derivatives(times, demos, smoothing_window)
         start, goal = demos[:, 0, :], demos[:, -1, :]
         to_goal = goal[:, np.newaxis, :] - demos
         k_gain, d_gain = self.alpha_z * self.beta_z, self.alpha_z
@@ -697,6 +728,7 @@ def fit_skill(
     target_inertia: ArrayLike | None = None,
     position_limits: ArrayLike | None = None,
     regularisation: float = 1e-8,
+    smoothing_window: int | None = None,
     name: str = "skill",
     provenance: dict[str, Any] | None = None,
 ) -> Skill:
@@ -719,6 +751,9 @@ def fit_skill(
     target_inertia : (n_joints,) kg*m^2, stored for the ratio policy
     position_limits : (low, high) or (n_joints, 2), rad; goals outside are refused at rollout
     regularisation : ridge factor relative to the Gram matrix's mean diagonal, 1
+    smoothing_window : odd sample count of the Savitzky-Golay derivative filter (uniform t
+        only), for demonstrations with jagged timing such as DTW-warped ones; None for central
+        differences
     name : skill name
     provenance : extra provenance fields (demonstration_ids, alignment, stiffness_source, ...)
 
@@ -735,7 +770,7 @@ def fit_skill(
             f"joints: {len(joint_names)} names {joint_names!r} for {n_joints} position columns"
         )
     policy = DampingPolicy() if damping_policy is None else damping_policy
-    dmp._fit_on_basis(times, demos, x, psi, method, regularisation)
+    dmp._fit_on_basis(times, demos, x, psi, method, regularisation, smoothing_window)
 
     extra = dict(provenance or {})
     if stiffness is None:

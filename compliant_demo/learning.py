@@ -1,0 +1,292 @@
+"""Learn a skill from several demonstrations: normalise, align in time, choose the stiffness, fit.
+
+:func:`learn_skill` accepts demonstrations loaded from the store, alignment inputs or plain
+arrays, keeps the requested joints, warps the demonstrations onto one time axis (banded DTW from
+:mod:`compliant_demo.alignment`, or plain resampling in normalised time), takes the stiffness
+schedule from the recorded stiffness channel or derives it from the spread of the demonstrations
+(:func:`compliant_demo.estimation.stiffness_from_variability`), and fits a
+:class:`~compliant_demo.primitives.Skill` whose provenance records all of it. :func:`save_skill`
+and :func:`load_skill` keep skills, versioned, in the demonstration store.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, Literal, Protocol
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from pydantic import ValidationError
+
+from compliant_demo.alignment import DemoArrays, align_demonstrations
+from compliant_demo.estimation import stiffness_from_variability
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.primitives import (
+    DampingPolicy,
+    FitMethod,
+    Formulation,
+    Skill,
+    _finite_array,
+    _ranges,
+    _time_axis,
+    fit_skill,
+)
+
+__all__ = ["learn_skill", "save_skill", "load_skill"]
+
+StiffnessSource = Literal["auto", "recorded", "variability"]
+AlignmentMethod = Literal["dtw", "resample", "none"]
+
+
+class _SkillStore(Protocol):
+    def save_skill(self, name: str, payload: Mapping[str, Any], *,
+                   demonstration_ids: Sequence[str], parameters: Mapping[str, Any]) -> Any: ...
+
+    def load_skill(self, name: str, version: int | None = None) -> Any: ...
+
+
+@dataclass(frozen=True)
+class _Demo:
+    t: NDArray[np.float64]
+    position: NDArray[np.float64]
+    stiffness: NDArray[np.float64] | None
+    demo_id: str | None
+
+
+def _fields(item: object, label: str) -> tuple[Any, Any, Any, Any, Any]:
+    """(t, position, stiffness, joint names, id) of one input, whatever its form."""
+    if isinstance(item, DemoArrays):
+        return item.t, item.position, item.channels.get("stiffness"), item.joint_names, None
+    if isinstance(item, Mapping):
+        if "t" not in item or "position" not in item:
+            raise InvalidInputError(f"{label}: a mapping needs keys 't' and 'position', got "
+                                    f"{sorted(item)}")
+        return (item["t"], item["position"], item.get("stiffness"), item.get("joints"),
+                item.get("id"))
+    if isinstance(item, tuple):
+        if len(item) not in (2, 3):
+            raise InvalidInputError(f"{label}: expected (t, position) or (t, position, "
+                                    f"stiffness), got a tuple of {len(item)} items")
+        return item[0], item[1], item[2] if len(item) == 3 else None, None, None
+    if hasattr(item, "t") and hasattr(item, "position"):
+        # compliant_demo.store.Demonstration, or anything shaped like it.
+        return (item.t, item.position, getattr(item, "stiffness", None),
+                getattr(item, "joints", None), getattr(item, "id", None))
+    raise InvalidInputError(f"{label}: expected a Demonstration, DemoArrays, mapping or tuple, "
+                            f"got {type(item).__name__}")
+
+
+def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
+    label = f"demos[{index}]"
+    t, position, stiffness, names, demo_id = _fields(item, label)
+    times = _time_axis(t, f"{label}.t")
+    q = _finite_array(position, f"{label}.position")
+    if q.ndim == 1:
+        q = q[:, np.newaxis]
+    k = None if stiffness is None else _finite_array(stiffness, f"{label}.stiffness")
+    if k is not None and k.ndim == 1:
+        k = k[:, np.newaxis]
+    for name, array in (("position", q), ("stiffness", k)):
+        if array is not None and (array.ndim != 2 or array.shape[0] != times.size):
+            raise InvalidInputError(f"{label}.{name}: expected ({times.size}, n_joints), got "
+                                    f"shape {array.shape}")
+    if names is None:
+        if q.shape[1] != len(joints):
+            raise InvalidInputError(f"{label}.position: {q.shape[1]} columns for joints "
+                                    f"{list(joints)!r}")
+    else:
+        names = list(names)
+        missing = [name for name in joints if name not in names]
+        if missing:
+            raise InvalidInputError(f"{label}.joints: {names!r} lacks {missing[0]!r}; all "
+                                    f"demonstrations need the joints {list(joints)!r}")
+        columns = [names.index(name) for name in joints]
+        q = q[:, columns]
+        k = None if k is None else k[:, columns]
+    if k is not None and k.shape != q.shape:
+        raise InvalidInputError(f"{label}.stiffness: shape {k.shape} does not match position "
+                                f"{q.shape}")
+    return _Demo(times - times[0], q, k, None if demo_id is None else str(demo_id))
+
+
+def _align(
+    demos: list[_Demo], alignment: AlignmentMethod, band: float | None, n_samples: int | None
+) -> tuple[NDArray, NDArray, NDArray | None, NDArray, dict[str, Any]]:
+    """Common time (n,), positions (d, n, j), stiffness (d, n, j) or None, variance (n, j)."""
+    with_stiffness = all(d.stiffness is not None for d in demos)
+    durations = [float(d.t[-1]) for d in demos]
+    summary: dict[str, Any] = {"method": alignment, "durations_s": durations}
+    if alignment == "dtw" and len(demos) > 1:
+        aligned = align_demonstrations(
+            [DemoArrays(d.t, d.position, {"stiffness": d.stiffness} if with_stiffness else {})
+             for d in demos],
+            band=band, n_out=n_samples,
+        )
+        summary.update(band=band, reference_index=aligned.reference_index,
+                       dtw_costs=aligned.dtw_costs.tolist(), n_samples=aligned.time.size)
+        stiffness = aligned.warped_channels["stiffness"] if with_stiffness else None
+        return aligned.time, aligned.warped_position, stiffness, aligned.variance, summary
+    if alignment == "none":
+        for index, demo in enumerate(demos[1:], start=1):
+            if demo.t.shape != demos[0].t.shape or not np.allclose(demo.t, demos[0].t):
+                raise InvalidInputError(
+                    f"demos[{index}].t: differs from demos[0].t; alignment='none' needs "
+                    "demonstrations on one time base (use 'dtw' or 'resample')"
+                )
+        time = demos[0].t
+        positions = np.stack([d.position for d in demos])
+        stiffness = np.stack([d.stiffness for d in demos]) if with_stiffness else None
+    elif alignment in ("resample", "dtw"):
+        # Normalised-time resampling; also the DTW path for a single demonstration.
+        count = int(np.median([d.t.size for d in demos])) if n_samples is None else n_samples
+        phase = np.linspace(0.0, 1.0, count)
+        time = phase * float(np.mean(durations))
+
+        def resampled(demo: _Demo, values: NDArray) -> NDArray:
+            demo_phase = demo.t / demo.t[-1]
+            return np.column_stack([np.interp(phase, demo_phase, column) for column in values.T])
+
+        positions = np.stack([resampled(d, d.position) for d in demos])
+        stiffness = (np.stack([resampled(d, d.stiffness) for d in demos if d.stiffness is not None])
+                     if with_stiffness else None)
+        summary.update(n_samples=count)
+    else:
+        raise InvalidInputError(
+            f"alignment: expected 'dtw', 'resample' or 'none', got {alignment!r}"
+        )
+    variance = (positions.var(axis=0, ddof=1) if len(demos) > 1
+                else np.full(positions.shape[1:], np.nan))
+    return time, positions, stiffness, variance, summary
+
+
+def learn_skill(
+    demos: Sequence[object],
+    *,
+    joints: Sequence[str],
+    stiffness_source: StiffnessSource = "auto",
+    stiffness_range: ArrayLike | None = None,
+    alignment: AlignmentMethod = "dtw",
+    band: float | None = 0.1,
+    n_samples: int | None = None,
+    n_basis: int = 50,
+    method: FitMethod = "lwr",
+    formulation: Formulation = "classic",
+    damping_policy: DampingPolicy | None = None,
+    target_inertia: ArrayLike | None = None,
+    position_limits: ArrayLike | None = None,
+    variance_floor: float | None = None,
+    smoothing_window: int | None = None,
+    name: str = "skill",
+) -> Skill:
+    """Learn a skill from demonstrations.
+
+    Parameters
+    ----------
+    demos : sequence of demonstrations, each one of
+        ``compliant_demo.store.Demonstration`` (or any object with ``t``, ``position`` and
+        optional ``stiffness``, ``joints``, ``id``), ``compliant_demo.alignment.DemoArrays``
+        (stiffness in ``channels["stiffness"]``), a mapping with keys ``t``, ``position`` and
+        optional ``stiffness``, ``joints``, ``id``, or a tuple ``(t, position[, stiffness])``.
+        t : (n_i,) s; position : (n_i, n_joints_i) rad; stiffness : (n_i, n_joints_i) N*m/rad.
+    joints : joint names to learn, in output column order. Named demonstrations are reduced to
+        these columns; unnamed ones must have exactly these columns.
+    stiffness_source : "recorded" (every demonstration's stiffness channel), "variability"
+        (stiff where the aligned demonstrations agree; needs >= 2 demonstrations and
+        ``stiffness_range``), or "auto" (recorded when all have it, else variability)
+    stiffness_range : (k_min, k_max) or (n_joints, 2), N*m/rad; the target joint's range
+    alignment : "dtw" (banded DTW onto the median-duration demonstration), "resample" (linear
+        resampling in normalised time) or "none" (demonstrations already share one time base)
+    band : Sakoe-Chiba band of the DTW, fraction of the sequence length
+    n_samples : samples of the common time axis (default: the reference's / median count)
+    n_basis, method, formulation, damping_policy, target_inertia, position_limits :
+        as in :func:`compliant_demo.primitives.fit_skill`
+    variance_floor : rad^2, passed to ``stiffness_from_variability``
+    smoothing_window : odd sample count of the Savitzky-Golay derivative filter of
+        :func:`~compliant_demo.primitives.fit_skill`. Default: about 3 % of the samples after DTW
+        alignment (whose warped time has plateaus and steps), none otherwise
+    name : skill name
+
+    Returns
+    -------
+    Skill whose provenance lists the demonstration ids, the alignment summary (method, band,
+    reference, DTW costs, durations) and the stiffness source.
+    """
+    if len(demos) == 0:
+        raise InvalidInputError("demos: need at least one demonstration, got 0")
+    if stiffness_source not in ("auto", "recorded", "variability"):
+        raise InvalidInputError(f"stiffness_source: expected 'auto', 'recorded' or "
+                                f"'variability', got {stiffness_source!r}")
+    joint_names = list(joints)
+    normalised = [_normalise_demo(item, index, joint_names) for index, item in enumerate(demos)]
+    missing = [i for i, d in enumerate(normalised) if d.stiffness is None]
+    source = stiffness_source
+    if source == "auto":
+        source = "recorded" if not missing else "variability"
+    if source == "recorded" and missing:
+        raise InvalidInputError(f"demos[{missing[0]}].stiffness: not recorded; use "
+                                "stiffness_source='variability'")
+    if source == "variability":
+        if len(normalised) < 2:
+            raise InvalidInputError(
+                f"demos: stiffness_source='variability' needs at least 2 demonstrations, got "
+                f"{len(normalised)}"
+            )
+        if stiffness_range is None:
+            raise InvalidInputError("stiffness_range: stiffness from variability needs the "
+                                    "target joint's (k_min, k_max), got None")
+
+    time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
+    if source == "variability":
+        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range")
+        profile = stiffness_from_variability(variance, k_range[:, 0], k_range[:, 1],
+                                             n_demos=len(normalised),
+                                             variance_floor=variance_floor)
+        stiffness = np.broadcast_to(profile, positions.shape)
+    else:
+        stiffness = recorded
+    if smoothing_window is None and summary.get("dtw_costs") is not None:
+        smoothing_window = max(5, 2 * int(0.015 * time.size) + 1)
+        summary["smoothing_window"] = smoothing_window
+    ids = [d.demo_id for d in normalised if d.demo_id is not None]
+    return fit_skill(
+        time, positions, stiffness, joints=joint_names, n_basis=n_basis, method=method,
+        formulation=formulation, stiffness_range=stiffness_range, damping_policy=damping_policy,
+        target_inertia=target_inertia, position_limits=position_limits,
+        smoothing_window=smoothing_window, name=name,
+        provenance={"demonstration_ids": ids, "alignment": summary, "stiffness_source": source},
+    )
+
+
+def save_skill(
+    store: _SkillStore, skill: Skill, *, parameters: Mapping[str, Any] | None = None
+) -> Any:
+    """Save ``skill`` as a new version of ``skill.name`` in the store; returns the store's record.
+
+    The learning parameters default to the skill's basis count, method, formulation, stiffness
+    source and alignment method.
+    """
+    used = {
+        "n_basis": skill.n_basis, "method": skill.method, "formulation": skill.formulation,
+        "stiffness_source": skill.provenance.stiffness_source,
+        "alignment": skill.provenance.alignment.get("method", "none"),
+    }
+    return store.save_skill(
+        skill.name,
+        payload=skill.model_dump(mode="json"),
+        demonstration_ids=skill.provenance.demonstration_ids,
+        parameters=used if parameters is None else dict(parameters),
+    )
+
+
+def load_skill(store: _SkillStore, name: str, version: int | None = None) -> Skill:
+    """Load skill ``name`` at ``version`` (latest when omitted) from the store."""
+    record = store.load_skill(name, version)
+    try:
+        return Skill.model_validate(record.payload)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        field = ".".join(str(part) for part in first["loc"]) or "payload"
+        raise InvalidInputError(
+            f"skill {name!r} version {record.version}: field {field!r}: {first['msg']}"
+        ) from None
