@@ -19,6 +19,7 @@ __all__ = ["main", "build_parser"]
 
 _COMMAND_MODULES: tuple[str, ...] = (
     "compliant_demo.cli.launch_cmds",
+    "compliant_demo.cli.store_cmds",
 )
 
 

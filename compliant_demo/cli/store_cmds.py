@@ -1,0 +1,299 @@
+"""Store subcommands of ``compliant-demo``: list, show, import, export, merge, delete, mark,
+skills and verify. Demonstrations are named by their UUID or any unique prefix of it."""
+
+from __future__ import annotations
+
+import argparse
+from collections.abc import Callable
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from compliant_demo.cli.common import (
+    add_json_option,
+    add_store_option,
+    emit_json,
+    emit_table,
+    store_path_of,
+)
+from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.store import DemoStore
+from compliant_demo.store.bags import STORAGES, export_bag, import_bag
+from compliant_demo.store.io import export_csv, export_npz, import_csv, import_npz
+
+__all__ = ["register", "resolve_demo_id"]
+
+_LIST_COLUMNS = ("id", "skill", "operator", "status", "start", "duration_s", "n_samples", "tags")
+_FORMATS = ("csv", "npz", "bag")
+
+
+def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
+    return DemoStore(store_path_of(args), read_only=not write, create=write)
+
+
+def resolve_demo_id(store: DemoStore, prefix: str) -> str:
+    """The full id of the one demonstration whose id starts with ``prefix``."""
+    if len(prefix) < 4:
+        raise InvalidInputError(f"demonstration id {prefix!r} is too short: give 4+ characters")
+    matches = [
+        info.id
+        for info in store.find_demonstrations(
+            where="id LIKE ? ESCAPE '\\'",
+            where_args=[prefix.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_") + "%"],
+            limit=2,
+        )
+    ]
+    if not matches:
+        raise NotFoundError(f"no demonstration id starts with {prefix!r}")
+    if len(matches) > 1:
+        raise InvalidInputError(f"demonstration id prefix {prefix!r} is ambiguous")
+    return matches[0]
+
+
+def _iso(unix_s: float) -> str:
+    return datetime.fromtimestamp(unix_s, tz=UTC).strftime("%Y-%m-%d %H:%M:%SZ")
+
+
+def _when(text: str) -> float:
+    try:
+        moment = datetime.fromisoformat(text)
+    except ValueError:
+        raise InvalidInputError(f"time {text!r} is not ISO 8601 (e.g. 2026-05-01T14:00)") from None
+    return (moment if moment.tzinfo else moment.replace(tzinfo=UTC)).timestamp()
+
+
+def _cmd_list(args: argparse.Namespace) -> int:
+    with _open(args, write=False) as store:
+        infos = list(
+            store.find_demonstrations(
+                skill=args.skill,
+                operator=args.operator,
+                tag=args.tag or None,
+                status=args.status or None,
+                started_after=None if args.since is None else _when(args.since),
+                started_before=None if args.until is None else _when(args.until),
+                min_duration_s=args.min_duration,
+                where=args.where,
+                where_args=args.arg if args.where is not None else None,
+                order_by=args.order_by,
+                limit=args.limit,
+            )  # fmt: skip
+        )
+    if args.json:
+        emit_json([info.to_dict() for info in infos])
+        return 0
+    rows = [{**info.to_dict(), "id": info.id[:8], "start": _iso(info.start_time)} for info in infos]
+    emit_table(rows, _LIST_COLUMNS)
+    return 0
+
+
+def _cmd_show(args: argparse.Namespace) -> int:
+    with _open(args, write=False) as store:
+        info = store.get_info(resolve_demo_id(store, args.demo))
+    if args.json:
+        emit_json(info.to_dict())
+        return 0
+    data = info.to_dict()
+    per_joint = ("range_of_motion", "peak_abs_torque", "stiffness_min", "stiffness_max")
+    emit_table(
+        [{"field": key, "value": value} for key, value in data.items() if key not in per_joint]
+        + [{"field": "start (UTC)", "value": _iso(info.start_time)}],
+        ("field", "value"),
+    )
+    print()
+    emit_table(
+        [{"joint": joint, **{k: data[k].get(joint) for k in per_joint}} for joint in info.joints],
+        ("joint", *per_joint),
+    )
+    return 0
+
+
+def _format_of(path: Path, given: str | None) -> str:
+    if given is not None:
+        return given
+    if path.is_dir() or path.suffix == ".mcap" or path.suffix == ".db3":
+        return "bag"
+    if path.suffix in (".csv", ".npz"):
+        return path.suffix[1:]
+    raise InvalidInputError(f"cannot tell the format of {str(path)!r}: give --format")
+
+
+def _cmd_import(args: argparse.Namespace) -> int:
+    meta: dict[str, Any] = {
+        "skill": args.skill, "operator": args.operator, "notes": args.notes,
+        "tags": args.tag or None,
+    }  # fmt: skip
+    importers: dict[str, Callable[..., str]] = {
+        "csv": lambda store, path: import_csv(store, path, keep_id=not args.new_id, **meta),
+        "npz": lambda store, path: import_npz(store, path, keep_id=not args.new_id, **meta),
+        "bag": lambda store, path: import_bag(
+            store, path, joint_topic=args.joint_topic, stiffness_topic=args.stiffness_topic,
+            joints=args.joints.split(",") if args.joints else None, skip_bad=args.skip_bad,
+            **{"skill": args.skill or "", **{k: v for k, v in meta.items() if k != "skill" and v}},
+        ),
+    }  # fmt: skip
+    added = []
+    with _open(args, write=True) as store:
+        for path in args.paths:
+            added.append(store.get_info(importers[_format_of(path, args.format)](store, path)))
+    if args.json:
+        emit_json([info.to_dict() for info in added])
+    else:
+        emit_table([{**i.to_dict(), "start": _iso(i.start_time)} for i in added], _LIST_COLUMNS)
+    return 0
+
+
+def _cmd_export(args: argparse.Namespace) -> int:
+    written = []
+    with _open(args, write=False) as store:
+        ids = [resolve_demo_id(store, prefix) for prefix in args.demos]
+        if len(ids) > 1 and not args.out.is_dir():
+            raise InvalidInputError(f"--out {str(args.out)!r} must be a directory for many ids")
+        for demo_id in ids:
+            target = args.out / f"{demo_id}.{args.format}" if args.out.is_dir() else args.out
+            if args.format == "bag":
+                target = target.with_suffix("") if target.suffix == ".bag" else target
+                export_bag(store, demo_id, target, storage=args.storage)
+            else:
+                {"csv": export_csv, "npz": export_npz}[args.format](store, demo_id, target)
+            written.append({"id": demo_id, "path": str(target)})
+    if args.json:
+        emit_json(written)
+    else:
+        emit_table(written, ("id", "path"))
+    return 0
+
+
+def _cmd_merge(args: argparse.Namespace) -> int:
+    with _open(args, write=True) as store:
+        report = store.merge_from(args.other)
+    if args.json:
+        emit_json(report.to_dict())
+        return 0
+    print(
+        f"added {len(report.added)}, skipped {len(report.skipped_duplicates)} duplicate(s), "
+        f"{len(report.conflicts)} conflict(s)"
+    )
+    if report.conflicts:
+        emit_table([{"id": c.id, "reason": c.reason} for c in report.conflicts], ("id", "reason"))
+    return 1 if report.conflicts else 0
+
+
+def _cmd_delete(args: argparse.Namespace) -> int:
+    with _open(args, write=True) as store:
+        ids = [resolve_demo_id(store, prefix) for prefix in args.demos]
+        for demo_id in ids:
+            store.delete_demonstration(demo_id, force=args.force)
+    if args.json:
+        emit_json({"deleted": ids})
+    else:
+        print("\n".join(f"deleted {demo_id}" for demo_id in ids))
+    return 0
+
+
+def _cmd_mark(args: argparse.Namespace) -> int:
+    with _open(args, write=True) as store:
+        info = store.mark_status(resolve_demo_id(store, args.demo), args.status, args.reason)
+    if args.json:
+        emit_json(info.to_dict())
+    else:
+        print(f"{info.id} is now {info.status}")
+    return 0
+
+
+def _cmd_skills(args: argparse.Namespace) -> int:
+    with _open(args, write=False) as store:
+        records = store.list_skills()
+    rows = [
+        {"id": r.id, "name": r.name, "version": r.version, "created": _iso(r.created),
+         "demonstrations": len(r.demonstration_ids), "parameters": r.parameters}
+        for r in records
+    ]  # fmt: skip
+    if args.json:
+        emit_json(rows)
+    else:
+        emit_table(
+            [{**row, "id": row["id"][:8]} for row in rows],
+            ("id", "name", "version", "created", "demonstrations"),
+        )
+    return 0
+
+
+def _cmd_verify(args: argparse.Namespace) -> int:
+    with _open(args, write=False) as store:
+        problems = store.integrity_check()
+        version = store.schema_version
+    ok = problems == ["ok"]
+    if args.json:
+        emit_json({"ok": ok, "schema_version": version, "problems": [] if ok else problems})
+    else:
+        print(f"schema version {version}: " + ("ok" if ok else "; ".join(problems)))
+    return 0 if ok else 1
+
+
+def _sub(
+    subparsers: Any, name: str, handler: Callable[[argparse.Namespace], int], help_text: str
+) -> argparse.ArgumentParser:
+    parser = subparsers.add_parser(name, help=help_text, description=help_text)
+    add_store_option(parser)
+    add_json_option(parser)
+    parser.set_defaults(handler=handler)
+    return parser
+
+
+def register(subparsers: Any) -> None:
+    """Add the store subcommands to the ``compliant-demo`` parser."""
+    p = _sub(subparsers, "list", _cmd_list, "list demonstrations matching filters")
+    p.add_argument("--skill")
+    p.add_argument("--operator")
+    p.add_argument("--tag", action="append", help="required tag (repeat for several)")
+    p.add_argument("--status", action="append", choices=("recording", "complete", "incomplete",
+                                                          "rejected"))  # fmt: skip
+    p.add_argument("--since", help="started at or after this ISO 8601 time (UTC if no zone)")
+    p.add_argument("--until", help="started before this ISO 8601 time")
+    p.add_argument("--min-duration", type=float, metavar="SECONDS")
+    p.add_argument("--where", help="extra read-only SQL condition on demonstration columns")
+    p.add_argument("--arg", action="append", default=[], help="a parameter of --where (repeat)")
+    p.add_argument("--order-by", help="column [asc|desc], or -column (default start_time)")
+    p.add_argument("--limit", type=int)
+
+    p = _sub(subparsers, "show", _cmd_show, "show one demonstration's metadata and summary")
+    p.add_argument("demo", help="demonstration id or unique prefix")
+
+    p = _sub(subparsers, "import", _cmd_import, "import demonstrations from CSV, NPZ or ROS 2 bags")
+    p.add_argument("paths", nargs="+", type=Path)
+    p.add_argument("--format", choices=_FORMATS, help="default: from the file name")
+    p.add_argument("--skill", help="skill name (needed for bags, overrides file metadata)")
+    p.add_argument("--operator")
+    p.add_argument("--notes")
+    p.add_argument("--tag", action="append")
+    p.add_argument("--new-id", action="store_true", help="give imports fresh ids")
+    p.add_argument("--joint-topic", default="/joint_states")
+    p.add_argument("--stiffness-topic", help="Float64MultiArray stiffness topic in the bag")
+    p.add_argument("--joints", help="comma-separated joints to import from a bag")
+    p.add_argument(
+        "--skip-bad",
+        action="store_true",
+        help="drop non-finite or non-increasing bag samples (counted in flags)",
+    )
+
+    p = _sub(subparsers, "export", _cmd_export, "export demonstrations as CSV, NPZ or ROS 2 bags")
+    p.add_argument("demos", nargs="+", help="demonstration ids or unique prefixes")
+    p.add_argument("--format", choices=_FORMATS, required=True)
+    p.add_argument("--out", type=Path, required=True, help="file (one id) or existing directory")
+    p.add_argument("--storage", choices=tuple(STORAGES), default="sqlite3", help="bag storage")
+
+    p = _sub(subparsers, "merge", _cmd_merge, "copy demonstrations from another store file")
+    p.add_argument("other", type=Path)
+
+    p = _sub(subparsers, "delete", _cmd_delete, "delete finished demonstrations")
+    p.add_argument("demos", nargs="+")
+    p.add_argument("--force", action="store_true", help="also when a saved skill names it")
+
+    p = _sub(subparsers, "mark", _cmd_mark, "set a finished demonstration's status")
+    p.add_argument("demo")
+    p.add_argument("status", choices=("complete", "incomplete", "rejected"))
+    p.add_argument("--reason")
+
+    _sub(subparsers, "skills", _cmd_skills, "list saved skill versions")
+    _sub(subparsers, "verify", _cmd_verify, "check the store file's integrity")
