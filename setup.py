@@ -40,6 +40,7 @@ setup(
         "rosbags>=0.10,<0.12",
         "matplotlib>=3.8,<4",
         "tqdm>=4.66,<5",
+        "psutil>=5.9,<8",
         "numba>=0.61,<1",
     ],
     extras_require={
