@@ -73,7 +73,12 @@ def _check_file(path: Path) -> None:
 
 
 def connect(
-    path: str | os.PathLike[str], *, read_only: bool, busy_timeout_s: float, create: bool
+    path: str | os.PathLike[str],
+    *,
+    read_only: bool,
+    busy_timeout_s: float,
+    create: bool,
+    durable: bool = True,
 ) -> tuple[sqlite3.Connection, Path | None]:
     """Open (or create, mode 0o640) a store file; returns the connection and the resolved path."""
     if not busy_timeout_s >= 0:
@@ -101,7 +106,7 @@ def connect(
             )
     try:
         with translated(str(path)):
-            _configure(conn, writable=not read_only)
+            _configure(conn, writable=not read_only, durable=durable)
     except BaseException:
         conn.close()
         raise
@@ -118,15 +123,15 @@ def _create_file(path: Path) -> None:
         os.close(fd)
 
 
-def _configure(conn: sqlite3.Connection, *, writable: bool) -> None:
+def _configure(conn: sqlite3.Connection, *, writable: bool, durable: bool) -> None:
     (page_count,) = conn.execute("PRAGMA page_count").fetchone()
     if writable and page_count == 0:
         conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")
     conn.execute("PRAGMA foreign_keys = ON")
     if writable:
         conn.execute("PRAGMA journal_mode = WAL")
-        # FULL: a committed chunk survives power loss too, not just a crash of the writer.
-        conn.execute("PRAGMA synchronous = FULL")
+        # FULL: a committed chunk survives power loss too; NORMAL only a crash of the writer.
+        conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
 
 
 def parse_order_by(order_by: str | None, allowed: Sequence[str], default: str) -> str:
