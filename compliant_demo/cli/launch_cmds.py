@@ -2,7 +2,8 @@
 
 For machines without the ROS 2 launch packages: each declared node runs as its own process with
 the declared name, namespace and parameters. Ctrl-C (SIGINT) or SIGTERM is passed on to every
-node; the command returns once all have ended, with the first non-zero exit status.
+node, as is SIGINT when the node named by ``--until`` ends; the command returns once all have
+ended, with the first non-zero exit status (a node ignoring the signal for 10 s is killed).
 """
 
 from __future__ import annotations
@@ -46,6 +47,12 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         action="store_true",
         help="print each node's command line and exit without starting anything",
     )
+    parser.add_argument(
+        "--until",
+        metavar="NODE",
+        default=None,
+        help="when the node with this name ends, stop the others (SIGINT) and return",
+    )
     parser.set_defaults(handler=_run)
 
 
@@ -55,10 +62,13 @@ def _run(args: argparse.Namespace) -> int:
         for node in description.nodes:
             print(subprocess.list2cmdline(node.command_line()))
         return 0
-    return _supervise(description)
+    until = None
+    if args.until is not None:
+        until = description.nodes.index(description.node(args.until))
+    return _supervise(description, until)
 
 
-def _supervise(description: LaunchDescription) -> int:
+def _supervise(description: LaunchDescription, until: int | None) -> int:
     processes = start_nodes(description)
     signal_times: list[float] = []
 
@@ -72,6 +82,8 @@ def _supervise(description: LaunchDescription) -> int:
     try:
         while any(p.poll() is None for p in processes):
             time.sleep(0.1)
+            if until is not None and processes[until].poll() is not None and not signal_times:
+                forward(signal.SIGINT, None)
             # A node that ignores the forwarded signal for the grace period is killed.
             if signal_times and time.monotonic() - signal_times[0] > _GRACE_S:
                 for process in processes:

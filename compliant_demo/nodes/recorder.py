@@ -164,6 +164,8 @@ class RecorderNode(Node):
         level, message, values = self.session.health(now - self._last_health)
         self._last_health = now
         self._diagnostics.publish(diagnostic_array(self, "recorder", level, message, values))
+        if level == "error":
+            self.get_logger().error(message, throttle_duration_sec=10.0)
 
     def close(self) -> None:
         """Finish an open demonstration as incomplete and close the store."""

@@ -1,0 +1,167 @@
+"""Teacher node: a simulated operator guides the joints; publishes joint states and stiffness."""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+from rclpy.node import Node
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Float64MultiArray
+from std_srvs.srv import Trigger
+
+from compliant_demo.models import load_yaml_model, model_from_mapping
+from compliant_demo.nodes._common import declare, float_array, recorded_qos, run_node, to_stamp
+from compliant_demo.runtime import TeachingSession
+from compliant_demo.teaching import TeachingScenario, cork_seat_scenario
+
+__all__ = ["TeacherNode", "main"]
+
+
+class TeacherNode(Node):
+    """Publishes ``joint_states`` and ``stiffness_truth`` in real time, demo after demo.
+
+    With ``control_recorder`` it calls the recorder's ``start`` and ``stop`` services around
+    each demonstration, and ends (``exit_when_done``) after the last one was stopped.
+    """
+
+    def __init__(self) -> None:
+        super().__init__("teacher")
+        d = declare
+        scenario_file = d(self, "scenario_file", "", "Teaching scenario YAML; empty = cork_seat.")
+        n_demos = d(self, "n_demonstrations", 3, "Demonstrations to run.", low=1, high=10000)
+        seed = d(self, "seed", 1, "Seed of demo 0; demo i uses seed + i.", low=0, high=2**31 - 1)
+        d(self, "operator", "", "Operator name; empty = the scenario's.")
+        d(self, "rate_hz", 0.0, "Sample rate, Hz; 0 = the scenario's.", low=0.0, high=20000.0)
+        d(self, "duration_s", 0.0, "Nominal demo duration, s; 0 = the scenario's.",
+          low=0.0, high=3600.0)
+        period = d(self, "publish_period_s", 0.01, "Publishing timer period (samples due are "
+                   "sent in one go), s.", low=0.001, high=0.1)
+        self._pause_s = d(self, "pause_s", 0.5, "Pause between demonstrations, s.",
+                          low=0.0, high=600.0)
+        self._settle_s = d(self, "settle_s", 0.5, "Wait after the last sample before stopping "
+                           "the recorder, s.", low=0.0, high=60.0)
+        self._control = d(self, "control_recorder", True, "Call the recorder's start/stop.")
+        self._subscribers = d(self, "wait_for_subscribers", 1, "Joint-state subscribers to wait "
+                              "for before the first demonstration.", low=0, high=100)
+        self._exit_when_done = d(self, "exit_when_done", True, "End after the last demo.")
+        self._truth_path = d(self, "truth_path", "", "Optional .npz for sample counts and "
+                             "ground-truth stiffness per demonstration.")
+        depth = d(self, "queue_depth", 5000, "History depth of the reliable publishers.",
+                  low=10, high=100000)
+        self.session = TeachingSession(self._scenario(scenario_file), n_demos, seed)
+        self._joints = list(self.session.scenario.joint_names)
+        qos = recorded_qos(depth)  # reliable: every published sample is meant to be recorded
+        self._joint_states = self.create_publisher(JointState, "joint_states", qos)
+        self._truth = self.create_publisher(Float64MultiArray, "stiffness_truth", qos)
+        self._start = self.create_client(Trigger, "start")
+        self._stop = self.create_client(Trigger, "stop")
+        self.done = False
+        self.exit_status = 0
+        self._state = "waiting"
+        self._pending = None
+        self._state_since = time.monotonic()
+        self._demo_start_wall = 0.0
+        self.create_timer(period, self._tick)
+
+    def _scenario(self, scenario_file: str) -> TeachingScenario:
+        value = self.get_parameter
+        changes = {
+            key: value(key).value
+            for key in ("operator", "rate_hz", "duration_s")
+            if value(key).value
+        }
+        if not scenario_file:
+            return cork_seat_scenario(**changes)
+        base = load_yaml_model(TeachingScenario, scenario_file).model_dump()
+        return model_from_mapping(TeachingScenario, {**base, **changes}, source=scenario_file)
+
+    def _enter(self, state: str) -> None:
+        self._state = state
+        self._state_since = time.monotonic()
+
+    def _tick(self) -> None:
+        elapsed = time.monotonic() - self._state_since
+        if self._state == "waiting":
+            ready = self._joint_states.get_subscription_count() >= self._subscribers
+            if ready and (not self._control or self._start.service_is_ready()):
+                self._begin_demonstration()
+        elif self._state == "starting" and self._pending.done():
+            result = self._pending.result()
+            if not result.success:
+                self._fail(f"recorder refused to start: {result.message}")
+                return
+            self._enter("publishing")
+            self._demo_start_wall = time.time()
+        elif self._state == "publishing":
+            self._publish_due(elapsed)
+        elif self._state == "settling" and elapsed >= self._settle_s:
+            self._end_demonstration()
+        elif self._state == "stopping" and self._pending.done():
+            result = self._pending.result()
+            self.get_logger().info(f"recorder: {result.message}")
+            self._after_demonstration()
+        elif self._state == "pausing" and elapsed >= self._pause_s:
+            self._begin_demonstration()
+
+    def _begin_demonstration(self) -> None:
+        index = self.session.next_demonstration()
+        self.get_logger().info(
+            f"demonstration {index + 1}/{self.session.n_demonstrations} "
+            f"({self.session.current_samples} samples)"
+        )
+        if self._control:
+            self._pending = self._start.call_async(Trigger.Request())
+            self._enter("starting")
+        else:
+            self._enter("publishing")
+            self._demo_start_wall = time.time()
+
+    def _publish_due(self, elapsed: float) -> None:
+        for t, position, velocity, torque, stiffness in self.session.due(elapsed):
+            message = JointState()
+            message.header.stamp = to_stamp(self._demo_start_wall + t)
+            message.name = self._joints
+            message.position = position
+            message.velocity = velocity
+            message.effort = torque
+            self._joint_states.publish(message)
+            self._truth.publish(float_array(stiffness))
+        if self.session.current_finished:
+            self.get_logger().info(f"published {self.session.current_published} samples")
+            self._enter("settling")
+
+    def _end_demonstration(self) -> None:
+        if self._control:
+            self._pending = self._stop.call_async(Trigger.Request())
+            self._enter("stopping")
+        else:
+            self._after_demonstration()
+
+    def _after_demonstration(self) -> None:
+        if not self.session.all_finished:
+            self._enter("pausing")
+            return
+        if self._truth_path:
+            self.session.save_truth(Path(self._truth_path))
+        self.get_logger().info(
+            f"all {self.session.n_demonstrations} demonstrations published "
+            f"({self.session.published_counts} samples)"
+        )
+        self._enter("done")
+        self.done = self._exit_when_done
+
+    def _fail(self, reason: str) -> None:
+        self.get_logger().error(reason)
+        self.exit_status = 1
+        self._enter("done")
+        self.done = True
+
+
+def main(args: list[str] | None = None) -> int:
+    """Run the teacher node until its demonstrations are done, Ctrl-C or shutdown."""
+    return run_node(TeacherNode, args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
