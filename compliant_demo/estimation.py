@@ -70,9 +70,11 @@ class StiffnessSeries:
     excitation : (n_samples, n_joints) array, rad
         Standard deviation of the (band-passed) deflection over the window.
     deflection : (n_samples, n_joints) array, rad
-        The regressor: minus the (band-passed) joint angle.
+        The regressor: minus the (band-passed) joint angle (half-sample means with damping).
     torque : (n_samples, n_joints) array, N*m
-        The regressand: the (band-passed) interaction torque.
+        The regressand: the (band-passed) interaction torque (half-sample means with damping).
+    deflection_rate : (n_samples, n_joints) array, rad/s
+        The nuisance regressor (zero when damping is not modelled).
     """
 
     t: np.ndarray
@@ -82,74 +84,77 @@ class StiffnessSeries:
     excitation: np.ndarray
     deflection: np.ndarray
     torque: np.ndarray
+    deflection_rate: np.ndarray
 
 
-def _moments(n, sx, sy, sxx, syy, sxy):
-    """Sample means and (n-1)-normalised second moments from plain sums (broadcasts)."""
-    mean_x = sx / n
-    mean_y = sy / n
-    m_xx = np.maximum((sxx - sx * mean_x) / (n - 1), 0.0)
-    m_yy = np.maximum((syy - sy * mean_y) / (n - 1), 0.0)
-    m_xy = (sxy - sx * mean_y) / (n - 1)
-    return mean_x, mean_y, m_xx, m_yy, m_xy
+# Order of the running sums: first moments, then the products named by the pairs.
+_PAIRS = ((0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2))
 
 
-def _deming_from_sums(n, sx, sy, sxx, syy, sxy, ratio, n_effective):
-    """Deming slope, intercept, slope std and deflection std from sums; arrays broadcast.
+def _terms(channels: np.ndarray) -> np.ndarray:
+    """Per-sample summands (x, y, v, xx, yy, vv, xy, xv, yv) of channels stacked on axis 1."""
+    products = [channels[:, a] * channels[:, b] for a, b in _PAIRS]
+    return np.concatenate([channels, np.stack(products, axis=1)], axis=1)
 
-    ``ratio`` is var(torque noise) / var(deflection noise). The slope std follows Fuller (1987),
+
+def _fit_from_sums(sums, n, ratio, n_effective, method: str, with_rate: bool):
+    """Slope, intercept, slope std and deflection std from running sums; arrays broadcast.
+
+    ``sums`` holds (x, y, v, xx, yy, vv, xy, xv, yv) over ``n`` samples. With ``with_rate`` the
+    deflection rate v enters as an error-free nuisance regressor and is partialled out of the
+    second moments first (Frisch-Waugh-Lovell; Fuller 1987, section 2.2, from memory). ``ratio``
+    is var(torque noise) / var(deflection noise). The Deming slope std follows Fuller (1987),
     Theorem 1.3.1 (from memory), with ``n_effective`` independent samples in place of n.
     """
-    mean_x, mean_y, m_xx, m_yy, m_xy = _moments(n, sx, sy, sxx, syy, sxy)
+    sx, sy, sv, sxx, syy, svv, sxy, sxv, syv = sums
     with np.errstate(divide="ignore", invalid="ignore"):
-        spread = m_yy - ratio * m_xx
-        root = np.sqrt(spread * spread + 4.0 * ratio * m_xy * m_xy)
-        slope = (spread + root) / (2.0 * m_xy)
-        intercept = mean_y - slope * mean_x
-        sigma_uu = (
-            (n - 1)
-            / np.maximum(n - 2, 1)
-            * (m_yy - 2.0 * slope * m_xy + slope * slope * m_xx)
-            / (ratio + slope * slope)
-        )
-        sigma_uu = np.maximum(sigma_uu, 0.0)
-        sigma_vv = (ratio + slope * slope) * sigma_uu
-        true_xx = m_xy / slope
-        variance = (sigma_vv / true_xx + ratio * sigma_uu * sigma_uu / true_xx**2) / (
-            np.maximum(n_effective, 2.0) - 1.0
-        )
+        dof = n - 1.0
+        mean_x, mean_y, mean_v = sx / n, sy / n, sv / n
+        m_xx = (sxx - sx * mean_x) / dof
+        m_yy = (syy - sy * mean_y) / dof
+        m_xy = (sxy - sx * mean_y) / dof
+        excitation = np.sqrt(np.maximum(m_xx, 0.0))
+        n_params = 2
+        if with_rate:
+            m_vv = (svv - sv * mean_v) / dof
+            m_xv = (sxv - sx * mean_v) / dof
+            m_yv = (syv - sy * mean_v) / dof
+            m_xx = m_xx - m_xv * m_xv / m_vv
+            m_yy = m_yy - m_yv * m_yv / m_vv
+            m_xy = m_xy - m_xv * m_yv / m_vv
+            n_params = 3
+        m_xx = np.maximum(m_xx, 0.0)
+        m_yy = np.maximum(m_yy, 0.0)
+        df_scale = dof / np.maximum(n - n_params, 1.0)
+        samples = np.maximum(n_effective, 2.0) - 1.0
+        if method == "tls":
+            spread = m_yy - ratio * m_xx
+            root = np.sqrt(spread * spread + 4.0 * ratio * m_xy * m_xy)
+            slope = (spread + root) / (2.0 * m_xy)
+            sigma_uu = (m_yy - 2.0 * slope * m_xy + slope * slope * m_xx) / (ratio + slope * slope)
+            sigma_uu = np.maximum(sigma_uu * df_scale, 0.0)
+            sigma_vv = (ratio + slope * slope) * sigma_uu
+            true_xx = m_xy / slope
+            variance = (sigma_vv / true_xx + ratio * sigma_uu * sigma_uu / true_xx**2) / samples
+        else:
+            slope = m_xy / m_xx
+            variance = np.maximum(m_yy - slope * m_xy, 0.0) * df_scale / (m_xx * samples)
         std = np.sqrt(np.abs(variance))
-    return slope, intercept, std, np.sqrt(m_xx)
-
-
-def _ols_from_sums(n, sx, sy, sxx, syy, sxy, n_effective):
-    """OLS slope of y on x, intercept, slope std (classical formula) and deflection std."""
-    mean_x, mean_y, m_xx, m_yy, m_xy = _moments(n, sx, sy, sxx, syy, sxy)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        slope = m_xy / m_xx
         intercept = mean_y - slope * mean_x
-        residual = np.maximum(m_yy - slope * m_xy, 0.0) * (n - 1) / np.maximum(n - 2, 1)
-        std = np.sqrt(residual / (m_xx * (np.maximum(n_effective, 2.0) - 1.0)))
-    return slope, intercept, std, np.sqrt(m_xx)
+        if with_rate:
+            intercept = intercept - (m_yv - slope * m_xv) / m_vv * mean_v
+    return slope, intercept, std, excitation
 
 
-def _pair(deflection: object, torque: object) -> tuple[np.ndarray, np.ndarray]:
-    """Validate a deflection/torque pair of equal 1-D length with at least 3 finite samples."""
-    x = np.asarray(deflection, dtype=float)
-    y = np.asarray(torque, dtype=float)
-    if x.ndim != 1 or y.shape != x.shape:
-        raise InvalidInputError(
-            f"deflection and torque must be 1-D of equal length, got shapes {x.shape} and {y.shape}"
-        )
-    if x.size < 3:
-        raise InvalidInputError(f"deflection: need at least 3 samples, got {x.size}")
-    for name, values in (("deflection", x), ("torque", y)):
-        if not np.isfinite(values).all():
-            index = int(np.flatnonzero(~np.isfinite(values))[0])
-            raise InvalidInputError(f"{name}[{index}] = {values[index]} is not finite")
-    if np.ptp(x) == 0:
-        raise InvalidInputError(f"deflection is constant ({x[0]} rad): the slope is undefined")
-    return x, y
+def _finite_1d(name: str, values: object, size: int | None = None) -> np.ndarray:
+    arr = np.asarray(values, dtype=float)
+    if arr.ndim != 1 or (size is not None and arr.size != size):
+        expected = "a 1-D array" if size is None else f"{size} samples like deflection"
+        raise InvalidInputError(f"{name}: expected {expected}, got shape {arr.shape}")
+    if not np.isfinite(arr).all():
+        index = int(np.flatnonzero(~np.isfinite(arr))[0])
+        raise InvalidInputError(f"{name}[{index}] = {arr[index]} is not finite")
+    return arr
 
 
 def _check_ratio(noise_variance_ratio: float) -> float:
@@ -161,11 +166,31 @@ def _check_ratio(noise_variance_ratio: float) -> float:
     return ratio
 
 
-def _sums(x: np.ndarray, y: np.ndarray) -> tuple[float, ...]:
-    return (x.size, x.sum(), y.sum(), x @ x, y @ y, x @ y)
+def _fit_arrays(
+    deflection: object, torque: object, deflection_rate: object | None, ratio: float, method: str
+) -> StiffnessFit:
+    """Validate the samples and fit one straight line (with the rate partialled out if given)."""
+    x = _finite_1d("deflection", deflection)
+    y = _finite_1d("torque", torque, x.size)
+    with_rate = deflection_rate is not None
+    v = _finite_1d("deflection_rate", deflection_rate, x.size) if with_rate else np.zeros_like(x)
+    if x.size < 3 + with_rate:
+        raise InvalidInputError(f"deflection: need at least {3 + with_rate} samples, got {x.size}")
+    if np.ptp(x) == 0:
+        raise InvalidInputError(f"deflection is constant ({x[0]} rad): the slope is undefined")
+    if with_rate and np.ptp(v) == 0:
+        raise InvalidInputError(f"deflection_rate is constant ({v[0]} rad/s): drop it or vary it")
+    sums = _terms(np.stack([x, y, v], axis=1)[:, :, None]).sum(axis=0)[:, 0]
+    slope, intercept, std, spread = _fit_from_sums(sums, x.size, ratio, x.size, method, with_rate)
+    return StiffnessFit(float(slope), float(intercept), float(std), x.size, float(spread))
 
 
-def tls_fit(deflection: object, torque: object, noise_variance_ratio: float) -> StiffnessFit:
+def tls_fit(
+    deflection: object,
+    torque: object,
+    noise_variance_ratio: float,
+    deflection_rate: object | None = None,
+) -> StiffnessFit:
     """Deming (total least squares) fit of torque against deflection.
 
     Parameters
@@ -174,6 +199,9 @@ def tls_fit(deflection: object, torque: object, noise_variance_ratio: float) -> 
     torque : (n,) array, N*m
     noise_variance_ratio : float, (N*m/rad)^2
         var(torque noise) / var(deflection noise), from the sensor specification.
+    deflection_rate : (n,) array, rad/s, optional
+        Taken as an error-free second regressor (torque = K x + D v + c) and partialled out, so
+        that a damping term in quadrature does not leak into the stiffness.
 
     Returns
     -------
@@ -187,20 +215,21 @@ def tls_fit(deflection: object, torque: object, noise_variance_ratio: float) -> 
     Models, 1987, eq. 1.3.7):
     ``b = (m_yy - r m_xx + sqrt((m_yy - r m_xx)^2 + 4 r m_xy^2)) / (2 m_xy)``.
     """
-    x, y = _pair(deflection, torque)
     ratio = _check_ratio(noise_variance_ratio)
-    sums = _sums(x, y)
-    slope, intercept, std, spread = _deming_from_sums(*sums, ratio, x.size)
-    return StiffnessFit(float(slope), float(intercept), float(std), x.size, float(spread))
+    return _fit_arrays(deflection, torque, deflection_rate, ratio, "tls")
 
 
-def ols_fit(deflection: object, torque: object) -> StiffnessFit:
+def ols_fit(
+    deflection: object, torque: object, deflection_rate: object | None = None
+) -> StiffnessFit:
     """Ordinary least squares fit of torque against deflection (noise on torque only).
 
     Parameters
     ----------
     deflection : (n,) array, rad
     torque : (n,) array, N*m
+    deflection_rate : (n,) array, rad/s, optional
+        Second regressor, as for :func:`tls_fit`.
 
     Returns
     -------
@@ -208,9 +237,7 @@ def ols_fit(deflection: object, torque: object) -> StiffnessFit:
         With noise on the deflection too, its stiffness is attenuated by
         var(x) / (var(x) + var(noise)) (Fuller 1987, section 1.1).
     """
-    x, y = _pair(deflection, torque)
-    slope, intercept, std, spread = _ols_from_sums(*_sums(x, y), x.size)
-    return StiffnessFit(float(slope), float(intercept), float(std), x.size, float(spread))
+    return _fit_arrays(deflection, torque, deflection_rate, 1.0, "ols")
 
 
 def design_band_pass(band_hz: tuple[float, float], rate_hz: float, order: int = 2) -> np.ndarray:
@@ -284,6 +311,7 @@ class SlidingStiffnessEstimator:
         min_excitation_rad: float = 1e-4,
         method: str = "tls",
         order: int = 2,
+        model_damping: bool = True,
     ) -> None:
         if not isinstance(n_joints, int | np.integer) or n_joints < 1:
             raise InvalidInputError(f"n_joints must be a positive integer, got {n_joints!r}")
@@ -310,6 +338,7 @@ class SlidingStiffnessEstimator:
         self.min_excitation_rad = float(min_excitation_rad)
         self.noise_variance_ratio = ratio.copy()
         self.band_hz = band_hz
+        self.model_damping = bool(model_damping)
         if band_hz is None:
             self._sos = None
             self.n_effective = float(window)
@@ -320,32 +349,44 @@ class SlidingStiffnessEstimator:
 
     def reset(self) -> None:
         """Forget all samples and filter state (start of a new demonstration)."""
-        shape = (self.window, self.n_joints)
-        self._buffer_x = np.zeros(shape)
-        self._buffer_y = np.zeros(shape)
+        self._buffer = np.zeros((self.window, 3, self.n_joints))
         self._count = 0
         self._since_refresh = 0
-        self._sums = np.zeros((5, self.n_joints))
-        self._zi_x: np.ndarray | None = None
-        self._zi_y: np.ndarray | None = None
+        self._sums = np.zeros((9, self.n_joints))
+        self._last: np.ndarray | None = None
+        self._zi: np.ndarray | None = None
 
     @property
     def samples_seen(self) -> int:
         """Samples received since construction or the last :meth:`reset`."""
         return self._count
 
-    def _filter(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def _filter(self, xy: np.ndarray) -> np.ndarray:
+        """Band-pass (n, 2, n_joints) deflection and torque with filter state kept across calls."""
         if self._sos is None:
-            return x, y
-        if self._zi_x is None or self._zi_y is None:
+            return xy
+        if self._zi is None:
             # Start in the steady state of the first sample, as if the signals had held that
             # value before: a band-pass then outputs zero instead of a start-up step response.
-            unit = signal.sosfilt_zi(self._sos)[:, :, None]
-            self._zi_x = unit * x[0][None, None, :]
-            self._zi_y = unit * y[0][None, None, :]
-        x, self._zi_x = signal.sosfilt(self._sos, x, axis=0, zi=self._zi_x)
-        y, self._zi_y = signal.sosfilt(self._sos, y, axis=0, zi=self._zi_y)
-        return x, y
+            self._zi = signal.sosfilt_zi(self._sos)[:, :, None, None] * xy[0][None, None]
+        filtered, self._zi = signal.sosfilt(self._sos, xy, axis=0, zi=self._zi)
+        return filtered
+
+    def _channels(self, filtered: np.ndarray) -> np.ndarray:
+        """Regression channels (x, y, v) per sample, (n, 3, n_joints).
+
+        With damping modelled, x and y are averaged over consecutive samples and v is their
+        difference over the step: all three refer to the same half-sample instant, so the
+        derivative adds no phase error of its own.
+        """
+        if not self.model_damping:
+            return np.concatenate([filtered, np.zeros_like(filtered[:, :1])], axis=1)
+        first = filtered[:1] if self._last is None else self._last
+        previous = np.concatenate([first, filtered])
+        self._last = filtered[-1:].copy()
+        mid = 0.5 * (previous[1:] + previous[:-1])
+        rate = (previous[1:, :1] - previous[:-1, :1]) * self.rate_hz
+        return np.concatenate([mid, rate], axis=1)
 
     def update(self, position: object, torque: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Add samples and return the window estimate after each of them.
@@ -365,7 +406,7 @@ class SlidingStiffnessEstimator:
             NaN where not excited.
         excited : (n, n_joints) bool array
         """
-        stiffness, std, excited, _, _, _ = self._update(position, torque)
+        stiffness, std, excited, _, _ = self._update(position, torque)
         return stiffness, std, excited
 
     def _update(self, position: object, torque: object):
@@ -380,55 +421,37 @@ class SlidingStiffnessEstimator:
             if not np.isfinite(values).all():
                 row, col = np.argwhere(~np.isfinite(values))[0]
                 raise InvalidInputError(f"{name}[{row}, {col}] = {values[row, col]} is not finite")
-        x, y = self._filter(-q, tau)
-        n_new = x.shape[0]
-        window = self.window
-        positions = (self._count + np.arange(n_new)) % window
-        leaving_x = self._buffer_x[positions]
-        leaving_y = self._buffer_y[positions]
-        # Samples that leave the window inside this chunk were written earlier in this chunk.
+        channels = self._channels(self._filter(np.stack([-q, tau], axis=1)))
+        n_new, window = channels.shape[0], self.window
+        slots = (self._count + np.arange(n_new)) % window
+        leaving = self._buffer[slots]
+        # Samples that leave the window inside this chunk arrived earlier in this chunk.
         if n_new > window:
-            leaving_x[window:] = x[:-window]
-            leaving_y[window:] = y[:-window]
-        mask = (self._count + np.arange(n_new) >= window)[:, None]
-        leaving_x = np.where(mask, leaving_x, 0.0)
-        leaving_y = np.where(mask, leaving_y, 0.0)
-        increments = np.stack(
-            [
-                x - leaving_x,
-                y - leaving_y,
-                x * x - leaving_x * leaving_x,
-                y * y - leaving_y * leaving_y,
-                x * y - leaving_x * leaving_y,
-            ]
-        )
-        running = self._sums[:, None, :] + np.cumsum(increments, axis=1)
-        self._buffer_x[positions[-window:]] = x[-window:]
-        self._buffer_y[positions[-window:]] = y[-window:]
+            leaving[window:] = channels[:-window]
+        leaving[self._count + np.arange(n_new) < window] = 0.0
+        running = self._sums + np.cumsum(_terms(channels) - _terms(leaving), axis=0)
+        self._buffer[slots[-window:]] = channels[-window:]
         self._count += n_new
         self._since_refresh += n_new
         if self._since_refresh >= window and self._count >= window:
-            bx, by = self._buffer_x, self._buffer_y
-            self._sums = np.stack(
-                [bx.sum(0), by.sum(0), (bx * bx).sum(0), (by * by).sum(0), (bx * by).sum(0)]
-            )
+            self._sums = _terms(self._buffer).sum(axis=0)
             self._since_refresh = 0
         else:
-            self._sums = running[:, -1, :]
+            self._sums = running[-1]
         n_in = np.minimum(self._count - n_new + np.arange(1, n_new + 1), window)[:, None]
         n_in = n_in.astype(float)
-        n_eff = np.minimum(n_in, self.n_effective)
-        if self.method == "tls":
-            slope, _, std, spread = _deming_from_sums(
-                n_in, *running, self.noise_variance_ratio, n_eff
-            )
-        else:
-            slope, _, std, spread = _ols_from_sums(n_in, *running, n_eff)
+        slope, _, std, spread = _fit_from_sums(
+            np.moveaxis(running, 1, 0),
+            n_in,
+            self.noise_variance_ratio,
+            np.minimum(n_in, self.n_effective),
+            self.method,
+            self.model_damping,
+        )
         excited = (n_in >= window) & (spread >= self.min_excitation_rad) & np.isfinite(slope)
-        excited = np.broadcast_to(excited, slope.shape)
         stiffness = np.where(excited, slope, np.nan)
         std = np.where(excited, std, np.nan)
-        return stiffness, std, excited, spread, x, y
+        return stiffness, std, excited, spread, channels
 
 
 def estimate_stiffness_series(
@@ -442,6 +465,7 @@ def estimate_stiffness_series(
     min_excitation_rad: float = 1e-4,
     method: str = "tls",
     order: int = 2,
+    model_damping: bool = True,
 ) -> StiffnessSeries:
     """Offline sliding-window stiffness over a whole demonstration.
 
@@ -451,7 +475,7 @@ def estimate_stiffness_series(
         Strictly increasing, equally spaced within 1 % (the rate is taken from the mean step).
     position : (n_samples, n_joints) array, rad
     torque : (n_samples, n_joints) array, N*m
-    window_s, noise_variance_ratio, band_hz, min_excitation_rad, method, order
+    window_s, noise_variance_ratio, band_hz, min_excitation_rad, method, order, model_damping
         As for :class:`SlidingStiffnessEstimator`.
 
     Returns
@@ -493,6 +517,7 @@ def estimate_stiffness_series(
         min_excitation_rad=min_excitation_rad,
         method=method,
         order=order,
+        model_damping=model_damping,
     )
     # Chunks of one window let the estimator refresh its sums exactly as it does online.
     parts = [
@@ -501,10 +526,12 @@ def estimate_stiffness_series(
         )
         for start in range(0, q.shape[0], estimator.window)
     ]
-    stiffness, std, excited, spread, x, y = (
+    stiffness, std, excited, spread, channels = (
         np.concatenate(column) for column in zip(*parts, strict=True)
     )
-    return StiffnessSeries(times, stiffness, std, excited, spread, x, y)
+    return StiffnessSeries(
+        times, stiffness, std, excited, spread, channels[:, 0], channels[:, 1], channels[:, 2]
+    )
 
 
 def stiffness_from_variability(

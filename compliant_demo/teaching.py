@@ -1,0 +1,466 @@
+"""Simulated kinesthetic teaching: an operator's hand guides the joints while the robot dithers.
+
+The operator is modelled per joint as a spring-damper of stiffness K_h(t) and damping D_h pulling
+the link toward the trajectory the operator intends; the robot, in gravity-compensated teaching
+mode, superimposes a small seeded dither torque. The joint torque channel reports the interaction
+torque between hand and link, with sensor noise, so that band-passing both channels around the
+dither exposes the hand's stiffness, which is known here as ground truth. Scenarios are pydantic
+records; one seed fixes a demonstration, including its natural variation from the nominal task,
+and :class:`TeachingStream` hands the same samples out in chunks for the teacher node.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import JointParams
+
+__all__ = [
+    "Waypoint",
+    "TeachingScenario",
+    "TeachingRecord",
+    "TeachingChunk",
+    "cork_seat_scenario",
+    "simulate_teaching",
+    "teaching_series",
+    "TeachingStream",
+    "windowed_truth",
+]
+
+
+class Waypoint(BaseModel):
+    """A point the operator passes: when, where and how stiffly they hold each joint."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    time_fraction: float = Field(ge=0, le=1, description="Time as a fraction of the duration.")
+    position: tuple[float, ...] = Field(description="Intended joint angles, rad, one per joint.")
+    hand_stiffness: tuple[float, ...] = Field(
+        description="Hand stiffness at this point, N*m/rad, one per joint."
+    )
+
+
+def _default_joints() -> tuple[JointParams, ...]:
+    return (
+        JointParams(name="shoulder", inertia=0.08, viscous_damping=0.05),
+        JointParams(name="elbow", inertia=0.03, viscous_damping=0.03),
+    )
+
+
+def _cork_seat_waypoints() -> tuple[Waypoint, ...]:
+    # Soft approach, stiffen above the bottle, stiff press that seats the cork, soft retreat.
+    return (
+        Waypoint(time_fraction=0.0, position=(0.0, 0.3), hand_stiffness=(6.0, 4.0)),
+        Waypoint(time_fraction=0.35, position=(0.5, 0.9), hand_stiffness=(6.0, 4.0)),
+        Waypoint(time_fraction=0.45, position=(0.5, 0.9), hand_stiffness=(40.0, 30.0)),
+        Waypoint(time_fraction=0.65, position=(0.56, 1.05), hand_stiffness=(40.0, 30.0)),
+        Waypoint(time_fraction=0.72, position=(0.56, 1.05), hand_stiffness=(6.0, 4.0)),
+        Waypoint(time_fraction=1.0, position=(0.15, 0.45), hand_stiffness=(6.0, 4.0)),
+    )
+
+
+class TeachingScenario(BaseModel):
+    """Everything that defines a simulated teaching session; defaults give the cork_seat task."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    skill: str = Field("cork_seat", min_length=1, description="Skill name.")
+    operator: str = Field("operator_a", min_length=1, description="Operator name.")
+    joints: tuple[JointParams, ...] = Field(
+        default_factory=_default_joints, min_length=1, description="Joints being guided."
+    )
+    duration_s: float = Field(6.0, gt=0, allow_inf_nan=False, description="Nominal duration, s.")
+    rate_hz: float = Field(1000.0, gt=0, le=20000, description="Sample rate, Hz.")
+    substeps: int = Field(2, ge=1, le=50, description="Integrator steps per sample.")
+    waypoints: tuple[Waypoint, ...] = Field(
+        default_factory=_cork_seat_waypoints,
+        min_length=2,
+        description="Task waypoints; the first at fraction 0, the last at 1, increasing.",
+    )
+    hand_damping: tuple[float, ...] = Field(
+        (0.3, 0.2), description="Hand damping per joint, N*m*s/rad."
+    )
+    dither_amplitude: float = Field(
+        0.5, ge=0, allow_inf_nan=False, description="Dither torque amplitude per joint, N*m."
+    )
+    dither_frequency_hz: float = Field(
+        8.0, gt=0, allow_inf_nan=False, description="Centre frequency of the dither, Hz."
+    )
+    position_noise_std: float = Field(
+        2e-5, ge=0, allow_inf_nan=False, description="Joint angle sensor noise, rad."
+    )
+    velocity_noise_std: float = Field(
+        2e-3, ge=0, allow_inf_nan=False, description="Joint velocity sensor noise, rad/s."
+    )
+    torque_noise_std: float = Field(
+        0.005, ge=0, allow_inf_nan=False, description="Interaction torque sensor noise, N*m."
+    )
+    timing_variation: float = Field(
+        0.06, ge=0, lt=0.5, description="Relative std of duration and segment timing between demos."
+    )
+    amplitude_variation: float = Field(
+        0.02, ge=0, allow_inf_nan=False, description="Std of waypoint offsets between demos, rad."
+    )
+    stiffness_variation: float = Field(
+        0.1, ge=0, lt=0.5, description="Relative std of the hand stiffness between demos."
+    )
+
+    @model_validator(mode="after")
+    def _consistent(self) -> TeachingScenario:
+        n_joints = len(self.joints)
+        names = [joint.name for joint in self.joints]
+        if len(set(names)) != n_joints:
+            raise ValueError(f"joint names must be distinct, got {names}")
+        if len(self.hand_damping) != n_joints or min(self.hand_damping) < 0:
+            raise ValueError(
+                f"hand_damping = {list(self.hand_damping)} needs {n_joints} non-negative values"
+            )
+        fractions = [w.time_fraction for w in self.waypoints]
+        if (
+            fractions[0] != 0
+            or fractions[-1] != 1
+            or any(b <= a for a, b in zip(fractions, fractions[1:], strict=False))
+        ):
+            raise ValueError(f"waypoint time fractions must increase from 0 to 1, got {fractions}")
+        for index, waypoint in enumerate(self.waypoints):
+            if len(waypoint.position) != n_joints or len(waypoint.hand_stiffness) != n_joints:
+                raise ValueError(
+                    f"waypoints[{index}] gives {len(waypoint.position)} positions and "
+                    f"{len(waypoint.hand_stiffness)} stiffnesses for {n_joints} joints"
+                )
+            if min(waypoint.hand_stiffness) <= 0:
+                raise ValueError(
+                    f"waypoints[{index}].hand_stiffness = {list(waypoint.hand_stiffness)} "
+                    "must be positive"
+                )
+        if self.dither_frequency_hz * 3 > self.rate_hz / 2:
+            raise ValueError(
+                f"dither_frequency_hz = {self.dither_frequency_hz} is too close to the Nyquist "
+                f"frequency of rate_hz = {self.rate_hz}"
+            )
+        return self
+
+    @property
+    def joint_names(self) -> tuple[str, ...]:
+        """Joint names in column order."""
+        return tuple(joint.name for joint in self.joints)
+
+    @property
+    def noise_variance_ratio(self) -> float:
+        """var(torque noise) / var(angle noise), (N*m/rad)^2, for the TLS estimator."""
+        return (self.torque_noise_std / max(self.position_noise_std, 1e-12)) ** 2
+
+    def estimator_settings(self) -> dict[str, object]:
+        """Keyword arguments for the sliding-window estimator that suit this scenario.
+
+        A band of 0.75 to 1.4 times the dither frequency, a window of four dither periods, the
+        sensor noise-variance ratio and a minimum excitation of ten times the angle noise.
+        """
+        f = self.dither_frequency_hz
+        return {
+            "window_s": 4.0 / f,
+            "band_hz": (0.75 * f, 1.4 * f),
+            "noise_variance_ratio": self.noise_variance_ratio,
+            "min_excitation_rad": max(10 * self.position_noise_std, 1e-5),
+        }
+
+
+def cork_seat_scenario(**changes: object) -> TeachingScenario:
+    """The demo scenario (two-joint bench arm seating a cork) with optional field changes."""
+    from compliant_demo.models import model_from_mapping
+
+    return model_from_mapping(TeachingScenario, dict(changes), source="cork_seat_scenario")
+
+
+@dataclass(frozen=True)
+class TeachingRecord:
+    """One simulated demonstration: what the sensors saw and the ground truth behind it.
+
+    Attributes
+    ----------
+    t : (n_samples,) array, s
+    position : (n_samples, n_joints) array, rad, measured (with noise)
+    velocity : (n_samples, n_joints) array, rad/s, measured (with noise)
+    torque : (n_samples, n_joints) array, N*m
+        Measured interaction torque of the hand on the link (with noise).
+    hand_stiffness_truth : (n_samples, n_joints) array, N*m/rad
+    hand_damping : (n_joints,) array, N*m*s/rad
+    intended_position : (n_samples, n_joints) array, rad
+        The trajectory the operator's hand pulls toward.
+    dither_torque : (n_samples, n_joints) array, N*m
+    joint_names : tuple of str
+    seed : int
+    skill, operator : str
+    """
+
+    t: np.ndarray
+    position: np.ndarray
+    velocity: np.ndarray
+    torque: np.ndarray
+    hand_stiffness_truth: np.ndarray
+    hand_damping: np.ndarray
+    intended_position: np.ndarray
+    dither_torque: np.ndarray
+    joint_names: tuple[str, ...]
+    seed: int
+    skill: str
+    operator: str
+
+    @property
+    def n_samples(self) -> int:
+        """Number of samples."""
+        return int(self.t.size)
+
+
+@dataclass(frozen=True)
+class TeachingChunk:
+    """Consecutive samples of one demonstration as handed to the teacher node.
+
+    Attributes
+    ----------
+    start_index : int
+        Index of the first sample in the demonstration.
+    t, position, velocity, torque, hand_stiffness_truth
+        Slices of the :class:`TeachingRecord` arrays, same units.
+    last : bool
+        True for the chunk that ends the demonstration.
+    """
+
+    start_index: int
+    t: np.ndarray
+    position: np.ndarray
+    velocity: np.ndarray
+    torque: np.ndarray
+    hand_stiffness_truth: np.ndarray
+    last: bool
+
+
+def _min_jerk_blend(s: np.ndarray) -> np.ndarray:
+    """Minimum-jerk blend 10 s^3 - 15 s^4 + 6 s^5 on [0, 1] (Flash and Hogan, 1985)."""
+    return s**3 * (10 - 15 * s + 6 * s * s)
+
+
+def _through_waypoints(t: np.ndarray, times: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Minimum-jerk segments between consecutive waypoint values, (n_samples, n_joints)."""
+    segment = np.clip(np.searchsorted(times, t, side="right") - 1, 0, len(times) - 2)
+    start, end = times[segment], times[segment + 1]
+    blend = _min_jerk_blend(np.clip((t - start) / (end - start), 0.0, 1.0))[:, None]
+    return values[segment] + blend * (values[segment + 1] - values[segment])
+
+
+def _demo_variation(
+    scenario: TeachingScenario, rng: np.random.Generator
+) -> tuple[float, np.ndarray, np.ndarray, np.ndarray]:
+    """Draw one demonstration's duration, waypoint times, positions and stiffness."""
+    fractions = np.array([w.time_fraction for w in scenario.waypoints])
+    positions = np.array([w.position for w in scenario.waypoints])
+    stiffness = np.array([w.hand_stiffness for w in scenario.waypoints])
+    spread = scenario.timing_variation
+    duration = scenario.duration_s * float(np.clip(1 + spread * rng.normal(), 0.5, 1.5))
+    widths = np.diff(fractions) * np.clip(1 + spread * rng.normal(size=fractions.size - 1), 0.3, 3)
+    times = duration * np.concatenate([[0.0], np.cumsum(widths) / widths.sum()])
+    positions = positions + scenario.amplitude_variation * rng.normal(size=positions.shape)
+    scale = np.clip(1 + scenario.stiffness_variation * rng.normal(size=stiffness.shape), 0.3, 3)
+    return duration, times, positions, stiffness * scale
+
+
+def _dither(scenario: TeachingScenario, rng: np.random.Generator, times: np.ndarray) -> np.ndarray:
+    """Three-tone dither per joint with seeded phases at ``times`` (any shape), N*m.
+
+    Returns an array of shape ``times.shape + (n_joints,)`` whose peak is at most the amplitude.
+    """
+    frequencies = scenario.dither_frequency_hz * np.array([0.9, 1.0, 1.15])
+    phases = rng.uniform(0, 2 * math.pi, size=(3, len(scenario.joints)))
+    angle = 2 * math.pi * times[..., None, None] * frequencies[:, None] + phases
+    return scenario.dither_amplitude / 3.0 * np.sin(angle).sum(axis=-2)
+
+
+def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
+    """Simulate one kinesthetic demonstration.
+
+    Parameters
+    ----------
+    scenario : TeachingScenario
+    seed : int
+        Fixes the demonstration's variation from the nominal task, the dither phases and the
+        sensor noise.
+
+    Returns
+    -------
+    TeachingRecord
+
+    Notes
+    -----
+    Per joint, with the robot's gravity compensation cancelling the link's weight:
+    ``I q'' = tau_h + tau_d - b q' - f_c tanh(q'/v_s) + tau_stop`` and
+    ``tau_h = K_h(t) (q_h - q) + D_h (q_h' - q')``, integrated by semi-implicit Euler with
+    ``scenario.substeps`` steps per sample. The intended trajectory ``q_h`` and ``K_h`` follow
+    minimum-jerk segments between waypoints. The reported torque is ``tau_h`` at the sample plus
+    noise; the relation between the true torque and the true state holds exactly at every sample.
+    """
+    if not isinstance(seed, int | np.integer) or seed < 0:
+        raise InvalidInputError(f"seed must be a non-negative integer, got {seed!r}")
+    rng = np.random.default_rng(int(seed))
+    duration, times, positions, stiffness = _demo_variation(scenario, rng)
+    n_samples = int(round(duration * scenario.rate_hz)) + 1
+    t = np.arange(n_samples) / scenario.rate_hz
+    dt = 1.0 / (scenario.rate_hz * scenario.substeps)
+    dither = _dither(scenario, rng, t[:, None] + dt * np.arange(scenario.substeps))
+    intended = _through_waypoints(t, times, positions)
+    hand_k = _through_waypoints(t, times, stiffness)
+    intended_velocity = np.gradient(intended, t, axis=0)
+    joints = scenario.joints
+    inertia = np.array([j.inertia for j in joints])
+    bearing = np.array([j.viscous_damping for j in joints])
+    coulomb = np.array([j.coulomb_friction for j in joints])
+    smoothing = np.array([j.friction_smoothing_velocity for j in joints])
+    lower = np.array([j.lower_limit for j in joints])
+    upper = np.array([j.upper_limit for j in joints])
+    stop_k = np.array([j.limit_stiffness for j in joints])
+    stop_d = np.array([j.limit_damping for j in joints])
+    hand_d = np.array(scenario.hand_damping)
+
+    q = intended[0].copy()
+    dq = np.zeros(len(joints))
+    true_q = np.empty_like(intended)
+    true_dq = np.empty_like(intended)
+    true_tau = np.empty_like(intended)
+    for k in range(n_samples):
+        target, target_v, k_h = intended[k], intended_velocity[k], hand_k[k]
+        true_q[k], true_dq[k] = q, dq
+        true_tau[k] = k_h * (target - q) + hand_d * (target_v - dq)
+        for sub in range(scenario.substeps):
+            tau_h = k_h * (target - q) + hand_d * (target_v - dq)
+            over = np.maximum(q - upper, 0) + np.minimum(q - lower, 0)
+            stop = -stop_k * over - np.where(over != 0, stop_d * dq, 0.0)
+            accel = (
+                tau_h + dither[k, sub] - bearing * dq - coulomb * np.tanh(dq / smoothing) + stop
+            ) / inertia
+            dq = dq + dt * accel
+            q = q + dt * dq
+    shape = intended.shape
+    return TeachingRecord(
+        t=t,
+        position=true_q + scenario.position_noise_std * rng.normal(size=shape),
+        velocity=true_dq + scenario.velocity_noise_std * rng.normal(size=shape),
+        torque=true_tau + scenario.torque_noise_std * rng.normal(size=shape),
+        hand_stiffness_truth=hand_k,
+        hand_damping=hand_d,
+        intended_position=intended,
+        dither_torque=dither[:, 0],
+        joint_names=scenario.joint_names,
+        seed=int(seed),
+        skill=scenario.skill,
+        operator=scenario.operator,
+    )
+
+
+def teaching_series(scenario: TeachingScenario, n_demos: int, seed: int) -> list[TeachingRecord]:
+    """``n_demos`` demonstrations with natural variation; demo i is ``simulate_teaching(seed+i)``.
+
+    Parameters
+    ----------
+    scenario : TeachingScenario
+    n_demos : int, at least 1
+    seed : int
+        Seed of the first demonstration.
+    """
+    if not isinstance(n_demos, int | np.integer) or n_demos < 1:
+        raise InvalidInputError(f"n_demos must be a positive integer, got {n_demos!r}")
+    return [simulate_teaching(scenario, int(seed) + index) for index in range(n_demos)]
+
+
+class TeachingStream:
+    """One simulated demonstration handed out in consecutive chunks, in time order.
+
+    Parameters
+    ----------
+    scenario : TeachingScenario
+    seed : int
+        As for :func:`simulate_teaching`; the chunks concatenate to exactly that record.
+    chunk_size : int
+        Samples per chunk (the last chunk may be shorter).
+
+    Notes
+    -----
+    The teacher node publishes chunk samples at ``scenario.rate_hz``; it needs no arithmetic of
+    its own beyond pacing. ``record`` holds the full demonstration including the ground truth.
+    """
+
+    def __init__(self, scenario: TeachingScenario, seed: int, chunk_size: int = 10) -> None:
+        if not isinstance(chunk_size, int | np.integer) or chunk_size < 1:
+            raise InvalidInputError(f"chunk_size must be a positive integer, got {chunk_size!r}")
+        self.scenario = scenario
+        self.record = simulate_teaching(scenario, seed)
+        self.chunk_size = int(chunk_size)
+        self._next = 0
+
+    @property
+    def n_samples(self) -> int:
+        """Samples in the demonstration."""
+        return self.record.n_samples
+
+    @property
+    def remaining(self) -> int:
+        """Samples not yet handed out."""
+        return self.n_samples - self._next
+
+    def __iter__(self) -> Iterator[TeachingChunk]:
+        return self
+
+    def __next__(self) -> TeachingChunk:
+        if self._next >= self.n_samples:
+            raise StopIteration
+        start, stop = self._next, min(self._next + self.chunk_size, self.n_samples)
+        self._next = stop
+        record = self.record
+        return TeachingChunk(
+            start_index=start,
+            t=record.t[start:stop],
+            position=record.position[start:stop],
+            velocity=record.velocity[start:stop],
+            torque=record.torque[start:stop],
+            hand_stiffness_truth=record.hand_stiffness_truth[start:stop],
+            last=stop == self.n_samples,
+        )
+
+
+def windowed_truth(truth: object, window: int) -> tuple[np.ndarray, np.ndarray]:
+    """Ground truth as a sliding-window estimator sees it: mean and spread over each window.
+
+    Parameters
+    ----------
+    truth : (n_samples, n_joints) array, N*m/rad
+        ``TeachingRecord.hand_stiffness_truth``.
+    window : int
+        Estimator window in samples (``SlidingStiffnessEstimator.window``).
+
+    Returns
+    -------
+    mean : (n_samples, n_joints) array, N*m/rad
+        Mean over samples k - window + 1 .. k; NaN for the first window - 1 samples.
+    variation : (n_samples, n_joints) array, dimensionless
+        max / min - 1 over the same samples (inf where the window is incomplete): windows where
+        this is small are those over which a constant stiffness is a fair model.
+    """
+    values = np.asarray(truth, dtype=float)
+    if (
+        values.ndim != 2
+        or not isinstance(window, int | np.integer)
+        or not 1 <= window <= len(values)
+    ):
+        raise InvalidInputError(
+            f"window = {window!r} must be between 1 and the {len(values)} samples of a 2-D truth"
+        )
+    views = np.lib.stride_tricks.sliding_window_view(values, int(window), axis=0)
+    mean = np.full_like(values, np.nan)
+    variation = np.full_like(values, np.inf)
+    mean[window - 1 :] = views.mean(axis=-1)
+    variation[window - 1 :] = views.max(axis=-1) / views.min(axis=-1) - 1.0
+    return mean, variation
