@@ -106,16 +106,24 @@ def validate_joints(joints: object) -> tuple[str, ...]:
     return names
 
 
-def validate_flags(flags: object) -> dict[str, int]:
-    """Flag counters: a mapping of names to non-negative integers."""
+def validate_flags(flags: object) -> dict[str, int | float | str | bool]:
+    """Flags: a mapping of names to counts (non-negative int) or short notes (str, bool, float)."""
     if not isinstance(flags, Mapping):
         raise InvalidInputError(f"flags must be a mapping of name to count, got {flags!r}")
-    checked: dict[str, int] = {}
-    for key, count in flags.items():
+    checked: dict[str, int | float | str | bool] = {}
+    for key, value in flags.items():
         validate_text("flag name", key, allow_empty=False)
-        if isinstance(count, bool) or not isinstance(count, (int, np.integer)) or count < 0:
-            raise InvalidInputError(f"flag {key!r} must be a non-negative integer, got {count!r}")
-        checked[key] = int(count)
+        if isinstance(value, (bool, np.bool_, str)):
+            checked[key] = value if isinstance(value, str) else bool(value)
+        elif isinstance(value, (int, np.integer)) and value >= 0:
+            checked[key] = int(value)
+        elif isinstance(value, (float, np.floating)) and np.isfinite(value):
+            checked[key] = float(value)
+        else:
+            raise InvalidInputError(
+                f"flag {key!r} must be a non-negative count, a finite number, a string or a bool, "
+                f"got {value!r}"
+            )
     return checked
 
 

@@ -343,8 +343,13 @@ def read_samples(
     return t, arrays
 
 
+def _finite_or_none(value: float) -> float | None:
+    # A range can overflow for finite samples near the float64 limits; SQL and JSON get NULL.
+    return float(value) if np.isfinite(value) else None
+
+
 def _per_joint(joints: list[str], values: np.ndarray) -> str:
-    return json.dumps({name: float(v) for name, v in zip(joints, values, strict=True)})
+    return json.dumps({name: _finite_or_none(v) for name, v in zip(joints, values, strict=True)})
 
 
 def refresh_summary(conn: sqlite3.Connection, demo_id: str) -> None:
@@ -360,7 +365,7 @@ def refresh_summary(conn: sqlite3.Connection, demo_id: str) -> None:
         "t_first": float(t[0]) if t.size else None,
         "t_last": float(t[-1]) if t.size else None,
         "duration_s": float(t[-1] - t[0]) if t.size else 0.0,
-        "mean_rate_hz": float((t.size - 1) / (t[-1] - t[0])) if t.size > 1 else None,
+        "mean_rate_hz": _finite_or_none((t.size - 1) / (t[-1] - t[0])) if t.size > 1 else None,
         "range_of_motion": None,
         "peak_abs_torque": None,
         "stiffness_min": None,
@@ -373,10 +378,11 @@ def refresh_summary(conn: sqlite3.Connection, demo_id: str) -> None:
     if t.size:
         position, torque = arrays["position"], arrays["torque"]
         assert position is not None and torque is not None
-        rom = position.max(axis=0) - position.min(axis=0)
+        with np.errstate(over="ignore"):
+            rom = position.max(axis=0) - position.min(axis=0)
         peak = np.abs(torque).max(axis=0)
         summary.update(
-            range_of_motion=float(rom.max()),
+            range_of_motion=_finite_or_none(rom.max()),
             peak_abs_torque=float(peak.max()),
             range_of_motion_json=_per_joint(joints, rom),
             peak_abs_torque_json=_per_joint(joints, peak),

@@ -521,7 +521,7 @@ class DemoStore:
         return int(total)
 
     def finish_demonstration(
-        self, demo_id: str, status: str = "complete", flags: Mapping[str, int] | None = None
+        self, demo_id: str, status: str = "complete", flags: Mapping[str, Any] | None = None
     ) -> DemonstrationInfo:
         """End a recording: set its final status, merge ``flags``, compute the summary columns.
 
@@ -543,7 +543,7 @@ class DemoStore:
             self._finish(conn, demo_id, status, checked)
         return self.get_info(demo_id)
 
-    def _finish(self, conn: Any, demo_id: str, status: str, flags: dict[str, int] | None) -> None:
+    def _finish(self, conn: Any, demo_id: str, status: str, flags: dict[str, Any] | None) -> None:
         if flags:
             self._merge_flags(conn, demo_id, flags)
         (n_samples,) = conn.execute(
@@ -570,7 +570,7 @@ class DemoStore:
             raise NotFoundError(f"demonstration {demo_id!r} not found in {self._label}")
         return str(row[0])
 
-    def _merge_flags(self, conn: Any, demo_id: str, flags: dict[str, int]) -> None:
+    def _merge_flags(self, conn: Any, demo_id: str, flags: dict[str, Any]) -> None:
         (text,) = conn.execute(
             "SELECT flags FROM demonstrations WHERE id = ?", (demo_id,)
         ).fetchone()
@@ -580,7 +580,7 @@ class DemoStore:
             (json.dumps(merged, sort_keys=True), time.time(), demo_id),
         )
 
-    def update_flags(self, demo_id: str, flags: Mapping[str, int]) -> dict[str, int]:
+    def update_flags(self, demo_id: str, flags: Mapping[str, Any]) -> dict[str, Any]:
         """Merge counters into a demonstration's flags (a key's new value replaces the old one,
         so send cumulative counts); returns the merged flags."""
         checked = _codec.validate_flags(flags)
@@ -598,7 +598,7 @@ class DemoStore:
         torque: np.ndarray,
         stiffness: np.ndarray | None = None,
         status: str = "complete",
-        flags: Mapping[str, int] | None = None,
+        flags: Mapping[str, Any] | None = None,
         **begin_kwargs: Any,
     ) -> str:
         """Store a whole demonstration in one transaction; returns its UUID.

@@ -58,8 +58,8 @@ class DemonstrationInfo:
         Per joint ``max(|tau|)``, N*m.
     stiffness_min, stiffness_max : dict of str to float
         Per joint extreme stiffness, N*m/rad (empty without stiffness).
-    flags : dict of str to int
-        Counters of recording trouble, e.g. ``{"drops": 3, "gaps": 1}``.
+    flags : dict
+        Counters of recording trouble, e.g. ``{"drops": 3, "gaps": 1}``, and short notes.
     created_at, updated_at : float
         Unix time, s.
     """
@@ -83,7 +83,7 @@ class DemonstrationInfo:
     peak_abs_torque: dict[str, float] = field(default_factory=dict)
     stiffness_min: dict[str, float] = field(default_factory=dict)
     stiffness_max: dict[str, float] = field(default_factory=dict)
-    flags: dict[str, int] = field(default_factory=dict)
+    flags: dict[str, Any] = field(default_factory=dict)
     created_at: float = 0.0
     updated_at: float = 0.0
 
