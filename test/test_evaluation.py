@@ -1,0 +1,267 @@
+"""Schedule checks before replay and outcome metrics after it, against closed forms."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from compliant_demo.evaluation import FLAG_KINDS, check_schedule, outcome_metrics
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, JointParams
+from compliant_demo.primitives import DampingPolicy, Rollout, fit_skill
+from compliant_demo.sim import GRAVITY, simulate
+
+SHOULDER = JointParams(name="shoulder", inertia=0.08, viscous_damping=0.02)
+ELBOW = JointParams(name="elbow", inertia=0.03, viscous_damping=0.01)
+IDEAL = IdealImpedanceParams(stiffness_min=5.0, stiffness_max=300.0, damping_max=20.0)
+SPRINGS = AntagonisticParams(k1=5.0, k2=100.0, stiffness_min=10.0, stiffness_max=300.0)
+
+
+def _static_rollout(t, stiffness, damping=None, position=0.0, joints=("elbow",)) -> Rollout:
+    """Rollout holding still: no acceleration, so only gravity and extra deflection load it."""
+    n = t.size
+    k = np.asarray(stiffness, dtype=float).reshape(n, -1)
+    zeros = np.zeros_like(k)
+    return Rollout(t, np.full_like(k, position), zeros, zeros, k,
+                   zeros + 1.0 if damping is None else np.asarray(damping).reshape(n, -1),
+                   tuple(joints), float(t[-1]))
+
+
+def _cork_skill(zeta: float = 0.7):
+    t = np.linspace(0.0, 2.0, 1001)
+    s = t / 2.0
+    q = np.column_stack([0.2 + 0.6 * (10 * s**3 - 15 * s**4 + 6 * s**5),
+                         -0.3 + 0.4 * np.sin(np.pi * s) ** 2 + 0.5 * s])
+    bump = np.exp(-0.5 * ((s - 0.5) / 0.12) ** 2)
+    k = np.column_stack([20 + 200 * bump, 15 + 150 * bump])
+    return fit_skill(t, q, k, joints=["shoulder", "elbow"], stiffness_range=(10.0, 250.0),
+                     target_inertia=[SHOULDER.inertia, ELBOW.inertia],
+                     damping_policy=DampingPolicy(kind="ratio", zeta=zeta), name="cork_seat")
+
+
+def test_ratio_policy_on_ideal_mechanism_is_well_damped():
+    rollout = _cork_skill(0.7).rollout()
+    report = check_schedule(rollout, [SHOULDER, ELBOW], IDEAL)
+    inertia = np.array([SHOULDER.inertia, ELBOW.inertia])
+    viscous = np.array([SHOULDER.viscous_damping, ELBOW.viscous_damping])
+    # zeta = d / (2 sqrt(k I)) of m q'' + d q' + k q = 0 (common practice), with the joint's own
+    # viscous friction added to the commanded damping.
+    expected = 0.7 + viscous / (2 * np.sqrt(rollout.stiffness * inertia))
+    np.testing.assert_allclose(report.damping_ratio, expected, rtol=1e-12)
+    assert report.ok and report.summary["ok"]
+    assert report.summary["damping_controllable"] == [True, True]
+    assert set(report.summary["stretch_counts"]) == set(FLAG_KINDS)
+
+
+def test_teacher_stiffness_on_spring_mechanism_is_flagged_under_damped():
+    rollout = _cork_skill(0.7).rollout()
+    report = check_schedule(rollout, [SHOULDER, ELBOW], SPRINGS)
+    inertia = np.array([SHOULDER.inertia, ELBOW.inertia])
+    viscous = np.array([SHOULDER.viscous_damping, ELBOW.viscous_damping])
+    realisable = np.clip(rollout.stiffness, 10.0, 300.0)
+    # Antagonistic springs have no damping of their own: only bearing friction is left.
+    np.testing.assert_allclose(report.damping_ratio, viscous / (2 * np.sqrt(realisable * inertia)))
+    under = [s for s in report.stretches if s.kind == "under_damped"]
+    assert {s.joint for s in under} == {"shoulder", "elbow"}
+    for stretch in under:
+        assert stretch.t_start == 0.0 and stretch.t_end == pytest.approx(rollout.t[-1])
+        j = rollout.joints.index(stretch.joint)
+        assert stretch.worst == pytest.approx(report.damping_ratio[:, j].min())
+    assert report.summary["damping_controllable"] == [False, False]
+    assert not report.ok
+
+
+def test_under_damped_flag_predicts_oscillation_in_simulation():
+    rollout = _cork_skill(0.7).rollout(dt=1e-3)
+    joints = [SHOULDER, ELBOW]
+    overshoot = {}
+    for label, mechanism in (("ideal", IDEAL), ("springs", SPRINGS)):
+        flagged = check_schedule(rollout, joints, mechanism).summary["stretch_counts"]
+        hold = np.repeat(rollout.position[-1:], 1500, axis=0)
+        equilibrium = np.vstack([rollout.position, hold])
+        stiffness = np.vstack([rollout.stiffness, np.repeat(rollout.stiffness[-1:], 1500, 0)])
+        damping = np.vstack([rollout.damping, np.repeat(rollout.damping[-1:], 1500, 0)])
+        result = simulate(joints, mechanism, equilibrium, stiffness,
+                          damping if label == "ideal" else None, q0=rollout.position[0], dt=1e-3)
+        late = result.q[-500:, 0, :]
+        overshoot[label] = (np.abs(late - rollout.position[-1]).max(), flagged["under_damped"])
+    # Second-order response: 1 s after the motion, zeta = 0.7 has settled while zeta << 1 still
+    # rings (decay envelope exp(-zeta*omega_n*t), common practice).
+    assert overshoot["ideal"][1] == 0 and overshoot["springs"][1] == 2
+    assert overshoot["springs"][0] > 5 * overshoot["ideal"][0]
+
+
+def test_energy_injected_by_raising_stiffness_while_deflected():
+    t = np.linspace(0.0, 1.0, 2001)
+    stiffness = 10.0 + 100.0 * t
+    report = check_schedule(_static_rollout(t, stiffness), [ELBOW], IDEAL,
+                            extra_deflection=0.1, energy_budget=0.2)
+    # Spring energy 1/2 K x^2 at fixed x = 0.1 rad rises by 1/2 (K1 - K0) x^2 = 0.5 J
+    # (Ferraguti, Secchi, Fantuzzi, ICRA 2013: power 1/2 dK/dt x^2).
+    assert report.summary["injected_energy_J"][0] == pytest.approx(0.5, rel=1e-3)
+    empty = [s for s in report.stretches if s.kind == "energy_tank_empty"]
+    assert len(empty) == 1
+    # Tank of 0.2 J runs dry when 1/2 * 100 t * 0.01 = 0.2, i.e. t = 0.4 s.
+    assert empty[0].t_start == pytest.approx(0.4, abs=1e-3)
+    assert empty[0].worst == pytest.approx(-0.3, rel=1e-3)
+
+
+def test_gravity_load_deflection_gives_closed_form_injection():
+    arm = JointParams(name="elbow", inertia=0.03, gravity_mass=0.5, com_distance=0.2)
+    t = np.linspace(0.0, 1.0, 4001)
+    stiffness = 20.0 + 80.0 * t
+    report = check_schedule(_static_rollout(t, stiffness, position=np.pi / 2), [arm], IDEAL,
+                            energy_budget=10.0)
+    mgl = 0.5 * GRAVITY * 0.2
+    np.testing.assert_allclose(report.deflection[:, 0], mgl / stiffness)
+    # Holding torque m g l at q - q_g = pi/2: x = mgl/K, so the injected energy is
+    # int 1/2 K' (mgl/K)^2 dt = 1/2 (mgl)^2 (1/K0 - 1/K1) (closed form).
+    expected = 0.5 * mgl**2 * (1 / 20.0 - 1 / 100.0)
+    assert report.summary["injected_energy_J"][0] == pytest.approx(expected, rel=1e-3)
+
+
+def test_tank_refills_when_stiffness_falls():
+    t = np.linspace(0.0, 2.0, 2001)
+    stiffness = np.where(t < 1.0, 10.0 + 100.0 * t, 110.0 - 100.0 * (t - 1.0))
+    report = check_schedule(_static_rollout(t, stiffness), [ELBOW], IDEAL,
+                            extra_deflection=0.1, energy_budget=1.0)
+    # Reference: the tank recursion level = min(budget, level - p dt) written as a loop.
+    dt = np.diff(t, prepend=t[0])
+    level, expected = 1.0, []
+    for p, step in zip(report.injection_power[:, 0], dt, strict=True):
+        level = min(1.0, level - p * step)
+        expected.append(level)
+    np.testing.assert_allclose(report.tank_energy[:, 0], expected, atol=1e-12)
+    assert report.tank_energy[1000, 0] == pytest.approx(0.5, rel=1e-2)
+    assert report.tank_energy[-1, 0] == pytest.approx(1.0)
+
+
+def test_rate_and_range_limits_of_both_mechanisms():
+    t = np.linspace(0.0, 1.0, 1001)
+    stiffness = np.where(t < 0.5, 50.0, 50.0 + 5000.0 * (t - 0.5))
+    rollout = _static_rollout(t, np.minimum(stiffness, 400.0), damping=np.full(t.size, 25.0))
+    ideal = check_schedule(rollout, [ELBOW], IDEAL)
+    kinds = {s.kind for s in ideal.stretches}
+    assert {"stiffness_rate", "stiffness_range", "damping_range"} <= kinds
+    rate = next(s for s in ideal.stretches if s.kind == "stiffness_rate")
+    assert rate.worst == pytest.approx(5000.0, rel=1e-6)
+    assert rate.t_start == pytest.approx(0.5, abs=2e-3)
+    over = next(s for s in ideal.stretches if s.kind == "stiffness_range")
+    assert over.t_start == pytest.approx(0.55, abs=2e-3) and over.worst == 400.0
+    # Antagonistic: |dK/dt| <= 2 k2 (|theta1'| + |theta2'|) = 4 k2 v_max = 4000 N*m/rad/s
+    # (from K = 2 k1 + 2 k2 (theta1 - theta2 + 2 d0), Migliore et al., ICRA 2005).
+    springs = check_schedule(rollout, [ELBOW], SPRINGS)
+    assert springs.summary["stiffness_rate_limit"] == [4000.0]
+    assert "damping_range" not in {s.kind for s in springs.stretches}
+
+
+def test_position_and_torque_limits_flagged():
+    t = np.linspace(0.0, 1.0, 101)
+    weak = JointParams(name="elbow", lower_limit=-1.0, upper_limit=1.0, torque_limit=1.0)
+    rollout = _static_rollout(t, np.full(t.size, 50.0), position=1.2)
+    report = check_schedule(rollout, [weak], IDEAL, extra_deflection=0.05)
+    kinds = {s.kind for s in report.stretches}
+    assert "position_range" in kinds
+    heavy = JointParams(name="elbow", gravity_mass=2.0, com_distance=0.3, torque_limit=1.0)
+    loaded = check_schedule(_static_rollout(t, np.full(t.size, 50.0), position=0.5), [heavy],
+                            IDEAL)
+    torque = next(s for s in loaded.stretches if s.kind == "torque_limit")
+    assert torque.worst == pytest.approx(2.0 * GRAVITY * 0.3 * np.sin(0.5))
+
+
+def test_check_schedule_bad_input():
+    rollout = _cork_skill().rollout()
+    with pytest.raises(InvalidInputError, match=r"joints: 1 JointParams for rollout joints"):
+        check_schedule(rollout, [SHOULDER], IDEAL)
+    with pytest.raises(InvalidInputError, match=r"joints: JointParams name 'elbow' where"):
+        check_schedule(rollout, [ELBOW, SHOULDER], IDEAL)
+    with pytest.raises(InvalidInputError, match=r"mechanism: 3 mechanisms for 2 joints"):
+        check_schedule(rollout, [SHOULDER, ELBOW], [IDEAL, IDEAL, SPRINGS])
+    with pytest.raises(InvalidInputError, match=r"energy_budget: must be >= 0 J, got -1"):
+        check_schedule(rollout, [SHOULDER, ELBOW], IDEAL, energy_budget=-1.0)
+    with pytest.raises(InvalidInputError, match=r"min_damping_ratio: must be positive, got 0"):
+        check_schedule(rollout, [SHOULDER, ELBOW], IDEAL, min_damping_ratio=0.0)
+
+
+# --- outcome metrics ---------------------------------------------------------------------------
+
+
+def _decay_case():
+    t = np.linspace(0.0, 4.0, 4001)
+    nominal = np.column_stack([np.zeros_like(t), 0.5 * np.ones_like(t)])
+    deviation = np.where(t >= 1.2, 0.3 * np.exp(-(t - 1.2) / 0.25), 0.0)
+    q = nominal + np.column_stack([deviation, -0.5 * deviation])
+    tau_ext = np.column_stack([np.where((t >= 1.0) & (t < 1.2), 3.0, 0.0), np.zeros_like(t)])
+    tau_mech = np.column_stack([np.sin(t), -2.5 * np.cos(t)])
+    return t, q, nominal, tau_ext, tau_mech
+
+
+def test_recovery_time_of_exponential_decay():
+    t, q, nominal, tau_ext, tau_mech = _decay_case()
+    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
+                              perturbation_onsets=[1.0], perturbation_ends=[1.2],
+                              recovery_band=0.01)
+    # First-order decay 0.3 exp(-s/0.25) enters the 0.01 rad band at s = 0.25 ln(30) (closed form).
+    assert metrics["recovery_time_s"][0] == pytest.approx(0.25 * np.log(30.0), abs=1e-3)
+    assert metrics["recovered"] == [True]
+    assert metrics["recovery_band_rad"] == 0.01
+    np.testing.assert_allclose(metrics["peak_deviation_rad"], [0.3, 0.15])
+    assert metrics["peak_deviation_time_s"] == pytest.approx(1.2)
+    np.testing.assert_allclose(metrics["goal_error_rad"],
+                               [0.3 * np.exp(-2.8 / 0.25), 0.15 * np.exp(-2.8 / 0.25)])
+    np.testing.assert_allclose(metrics["peak_interaction_torque_Nm"], [3.0, 0.0])
+    np.testing.assert_allclose(metrics["peak_mechanism_torque_Nm"], [1.0, 2.5], rtol=1e-6)
+    assert metrics["limit_violations"] == {} and metrics["n_limit_violations"] == 0
+
+
+def test_not_recovered_before_next_perturbation():
+    t, q, nominal, tau_ext, tau_mech = _decay_case()
+    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
+                              perturbation_onsets=[1.0, 1.5], perturbation_ends=[1.2, 1.5],
+                              recovery_band=0.01)
+    assert metrics["recovery_time_s"][0] is None and metrics["recovered"] == [False, True]
+    # Second window starts at 1.5 s, deviation 0.3 exp(-0.3/0.25) then decays to the band.
+    assert metrics["recovery_time_s"][1] == pytest.approx(0.25 * np.log(30.0) - 0.3, abs=1e-3)
+
+
+def test_energy_and_limit_violations():
+    t, q, nominal, tau_ext, tau_mech = _decay_case()
+    joints = [JointParams(name="shoulder", upper_limit=0.2, torque_limit=5.0),
+              JointParams(name="elbow", torque_limit=2.0)]
+    energy = {"stiffness_injection": np.array([0.01, 0.02]), "dissipated": np.array([0.3, 0.1])}
+    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
+                              energy=energy, joints=joints)
+    assert metrics["energy_injected_J"] == pytest.approx(0.03)
+    assert metrics["energy_J"]["dissipated"] == [0.3, 0.1]
+    position = metrics["limit_violations"]["position"]
+    above = int(np.sum(q[:, 0] > 0.2))
+    assert position["samples"] == [above, 0]
+    assert position["worst_excess"][0] == pytest.approx(0.1)
+    torque = metrics["limit_violations"]["torque"]
+    assert torque["samples"][0] == 0
+    assert torque["samples"][1] == int(np.sum(np.abs(tau_mech[:, 1]) > 2.0))
+    assert metrics["n_limit_violations"] == above + torque["samples"][1]
+
+
+def test_outcome_metrics_bad_input():
+    t, q, nominal, tau_ext, tau_mech = _decay_case()
+    with pytest.raises(InvalidInputError, match=r"q_nominal: expected shape \(4001, 2\)"):
+        outcome_metrics(t, q, nominal[:, :1], tau_ext, tau_mech, goal=[0, 0])
+    with pytest.raises(InvalidInputError, match=r"goal: expected shape \(2,\), got \(3,\)"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0, 0])
+    with pytest.raises(InvalidInputError, match=r"perturbation_ends: need one end at or after"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0],
+                        perturbation_onsets=[1.0], perturbation_ends=[0.5])
+    with pytest.raises(InvalidInputError, match=r"perturbation_onsets: must be sorted"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0],
+                        perturbation_onsets=[2.0, 1.0])
+    with pytest.raises(InvalidInputError, match=r"recovery_band: must be positive"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0], recovery_band=0.0)
+    bad = q.copy()
+    bad[5, 1] = np.nan
+    with pytest.raises(InvalidInputError, match=r"q: non-finite value nan at index \(5, 1\)"):
+        outcome_metrics(t, bad, nominal, tau_ext, tau_mech, goal=[0, 0])
+    with pytest.raises(InvalidInputError, match=r"t: time must be strictly increasing"):
+        outcome_metrics(t[::-1], q, nominal, tau_ext, tau_mech, goal=[0, 0])
+    with pytest.raises(InvalidInputError, match=r"joints: 1 JointParams for 2 columns"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0], joints=[SHOULDER])
