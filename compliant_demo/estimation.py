@@ -66,7 +66,7 @@ class StiffnessSeries:
     stiffness_std : (n_samples, n_joints) array, N*m/rad
         NaN where ``excited`` is False.
     excited : (n_samples, n_joints) bool array
-        Full window and deflection standard deviation at least ``min_excitation_rad``.
+        Full window, band-pass settled and deflection std at least ``min_excitation_rad``.
     excitation : (n_samples, n_joints) array, rad
         Standard deviation of the (band-passed) deflection over the window.
     deflection : (n_samples, n_joints) array, rad
@@ -285,6 +285,12 @@ class SlidingStiffnessEstimator:
     method : {"tls", "ols"}
     order : int
         Butterworth order of the band-pass edges.
+    model_damping : bool
+        Fit torque = K x + D dx/dt + c with the rate partialled out (default), so that the hand's
+        damping, in quadrature at the dither, cannot leak into K through the window ends.
+    settle_s : float, s, optional
+        Time after the first sample before any window counts as excited, for the band-pass to
+        settle on the slow motion; default two periods of the band's lower edge (0 without band).
 
     Notes
     -----
@@ -312,6 +318,7 @@ class SlidingStiffnessEstimator:
         method: str = "tls",
         order: int = 2,
         model_damping: bool = True,
+        settle_s: float | None = None,
     ) -> None:
         if not isinstance(n_joints, int | np.integer) or n_joints < 1:
             raise InvalidInputError(f"n_joints must be a positive integer, got {n_joints!r}")
@@ -339,6 +346,11 @@ class SlidingStiffnessEstimator:
         self.noise_variance_ratio = ratio.copy()
         self.band_hz = band_hz
         self.model_damping = bool(model_damping)
+        if settle_s is None:
+            settle_s = 0.0 if band_hz is None else 2.0 / band_hz[0]
+        if not (math.isfinite(settle_s) and settle_s >= 0):
+            raise InvalidInputError(f"settle_s must be non-negative, got {settle_s!r}")
+        self.settle = round(settle_s * rate_hz)
         if band_hz is None:
             self._sos = None
             self.n_effective = float(window)
@@ -448,7 +460,12 @@ class SlidingStiffnessEstimator:
             self.method,
             self.model_damping,
         )
-        excited = (n_in >= window) & (spread >= self.min_excitation_rad) & np.isfinite(slope)
+        seen = (self._count - n_new + np.arange(1, n_new + 1))[:, None]
+        excited = (
+            (seen >= window + self.settle)
+            & (spread >= self.min_excitation_rad)
+            & np.isfinite(slope)
+        )
         stiffness = np.where(excited, slope, np.nan)
         std = np.where(excited, std, np.nan)
         return stiffness, std, excited, spread, channels
@@ -466,6 +483,7 @@ def estimate_stiffness_series(
     method: str = "tls",
     order: int = 2,
     model_damping: bool = True,
+    settle_s: float | None = None,
 ) -> StiffnessSeries:
     """Offline sliding-window stiffness over a whole demonstration.
 
@@ -475,7 +493,8 @@ def estimate_stiffness_series(
         Strictly increasing, equally spaced within 1 % (the rate is taken from the mean step).
     position : (n_samples, n_joints) array, rad
     torque : (n_samples, n_joints) array, N*m
-    window_s, noise_variance_ratio, band_hz, min_excitation_rad, method, order, model_damping
+    window_s, noise_variance_ratio, band_hz, min_excitation_rad, method, order, model_damping,
+    settle_s
         As for :class:`SlidingStiffnessEstimator`.
 
     Returns
@@ -518,6 +537,7 @@ def estimate_stiffness_series(
         method=method,
         order=order,
         model_damping=model_damping,
+        settle_s=settle_s,
     )
     # Chunks of one window let the estimator refresh its sums exactly as it does online.
     parts = [

@@ -1,0 +1,328 @@
+"""Tests of the stiffness estimators: TLS/OLS fits, sliding window, batch series, variability."""
+
+import numpy as np
+import odrpack
+import pytest
+
+from compliant_demo.estimation import (
+    SlidingStiffnessEstimator,
+    estimate_stiffness_series,
+    ols_fit,
+    stiffness_from_variability,
+    tls_fit,
+)
+from compliant_demo.exceptions import InvalidInputError
+
+
+def _noisy_line(seed, n=2000, stiffness=40.0, intercept=0.3, x_std=0.01, u_std=0.005, e_std=0.1):
+    rng = np.random.default_rng(seed)
+    true_x = rng.normal(0, x_std, n)
+    x = true_x + rng.normal(0, u_std, n)
+    y = stiffness * true_x + intercept + rng.normal(0, e_std, n)
+    return x, y, (e_std / u_std) ** 2
+
+
+def test_noise_free_line_is_exact_for_both_methods():
+    x = np.linspace(-0.02, 0.03, 50)
+    y = 25.0 * x - 0.4
+    for fit in (tls_fit(x, y, 100.0), ols_fit(x, y)):
+        assert fit.stiffness == pytest.approx(25.0, rel=1e-12)
+        assert fit.intercept == pytest.approx(-0.4, rel=1e-10)
+        assert fit.stiffness_std < 1e-6 * 25.0  # zero up to rounding of the moments
+        assert fit.n == 50
+        assert fit.excitation == pytest.approx(np.std(x, ddof=1), rel=1e-12)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_tls_agrees_with_odrpack(seed):
+    x, y, ratio = _noisy_line(seed)
+    fit = tls_fit(x, y, ratio)
+    # Reference: odrpack (ODRPACK95 wrapper) orthogonal distance regression with weights equal
+    # to inverse noise variances: weight_x / weight_y = ratio reproduces Deming regression.
+    result = odrpack.odr_fit(
+        lambda xs, beta: beta[0] * xs + beta[1],
+        x,
+        y,
+        np.array([1.0, 0.0]),
+        weight_x=ratio,
+        weight_y=1.0,
+        sstol=1e-14,
+        partol=1e-14,
+    )
+    assert fit.stiffness == pytest.approx(result.beta[0], rel=1e-6)
+    assert fit.intercept == pytest.approx(result.beta[1], rel=1e-6, abs=1e-8)
+
+
+def test_tls_with_rate_agrees_with_odrpack_two_regressors():
+    rng = np.random.default_rng(11)
+    n = 1500
+    true_x = rng.normal(0, 0.01, n)
+    v = rng.normal(0, 0.2, n)
+    x = true_x + rng.normal(0, 0.004, n)
+    y = 30 * true_x + 0.5 * v + 0.1 + rng.normal(0, 0.08, n)
+    ratio = (0.08 / 0.004) ** 2
+    fit = tls_fit(x, y, ratio, deflection_rate=v)
+    # Reference: odrpack with the rate as a second explanatory variable whose weight is huge
+    # (an error-free regressor), the model Fuller (1987, section 2.2) treats by partialling out.
+    result = odrpack.odr_fit(
+        lambda xs, beta: beta[0] * xs[0] + beta[1] * xs[1] + beta[2],
+        np.vstack([x, v]),
+        y,
+        np.array([1.0, 0.0, 0.0]),
+        weight_x=np.array([ratio, 1e12]),
+        weight_y=1.0,
+        sstol=1e-14,
+        partol=1e-14,
+    )
+    assert fit.stiffness == pytest.approx(result.beta[0], rel=1e-5)
+    assert fit.intercept == pytest.approx(result.beta[2], rel=1e-4, abs=1e-6)
+
+
+def test_ols_attenuation_and_tls_consistency_monte_carlo():
+    # Fuller, Measurement Error Models (1987), section 1.1: with noise u on x, the OLS slope
+    # tends to K * var(x) / (var(x) + var(u)); the Deming/TLS slope is consistent for K.
+    stiffness, x_std, u_std = 40.0, 0.01, 0.005
+    attenuation = x_std**2 / (x_std**2 + u_std**2)
+    ols, tls = [], []
+    for seed in range(200):
+        x, y, ratio = _noisy_line(seed, n=1000, stiffness=stiffness, x_std=x_std, u_std=u_std)
+        ols.append(ols_fit(x, y).stiffness)
+        tls.append(tls_fit(x, y, ratio).stiffness)
+    assert np.mean(ols) == pytest.approx(stiffness * attenuation, rel=0.02)
+    assert np.mean(tls) == pytest.approx(stiffness, rel=0.02)
+    # The reported standard deviation matches the Monte Carlo spread within 20 %.
+    x, y, ratio = _noisy_line(999, n=1000, stiffness=stiffness, x_std=x_std, u_std=u_std)
+    assert tls_fit(x, y, ratio).stiffness_std == pytest.approx(np.std(tls), rel=0.2)
+
+
+def test_rate_regressor_removes_quadrature_damping_bias():
+    # torque = K x + D dx/dt over a window that is not a whole number of periods: the damping
+    # term correlates with x through the window ends and biases a one-regressor fit.
+    t = np.arange(0, 0.40625, 0.001)  # 3.25 periods: x starts at zero and ends at a peak
+    x = 0.002 * np.sin(2 * np.pi * 8 * t)
+    v = np.gradient(x, t)
+    y = 6.0 * x + 0.3 * v
+    assert abs(ols_fit(x, y).stiffness - 6.0) > 0.1
+    assert ols_fit(x, y, deflection_rate=v).stiffness == pytest.approx(6.0, rel=1e-9)
+    assert tls_fit(x, y, 1e5, deflection_rate=v).stiffness == pytest.approx(6.0, rel=1e-9)
+
+
+def _dithered_spring(seed, n=4000, rate=1000.0, stiffness=None):
+    """A hand spring-damper about a slow trajectory, excited by a dither, with sensor noise."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / rate
+    k = np.full(n, 20.0) if stiffness is None else stiffness
+    intended = 0.3 * np.sin(2 * np.pi * 0.2 * t)
+    response = 0.002 * np.sin(2 * np.pi * 8 * t + rng.uniform(0, 6))
+    q = intended - response
+    dq = np.gradient(q, t)
+    tau = k * (intended - q) + 0.2 * (np.gradient(intended, t) - dq)
+    q_meas = q + rng.normal(0, 2e-5, n)
+    tau_meas = tau + rng.normal(0, 0.005, n)
+    return t, np.column_stack([q_meas, q_meas]), np.column_stack([tau_meas, 2 * tau_meas])
+
+
+SETTINGS = dict(window_s=0.5, noise_variance_ratio=(0.005 / 2e-5) ** 2, band_hz=(6.0, 11.0))
+
+
+def test_sliding_equals_batch_for_any_chunking():
+    t, q, tau = _dithered_spring(3)
+    series = estimate_stiffness_series(t, q, tau, **SETTINGS)
+    estimator = SlidingStiffnessEstimator(2, rate_hz=1000.0, **SETTINGS)
+    rng = np.random.default_rng(4)
+    outputs, start = [], 0
+    while start < len(t):
+        stop = min(len(t), start + int(rng.integers(1, 700)))
+        outputs.append(estimator.update(q[start:stop], tau[start:stop]))
+        start = stop
+    stiffness = np.concatenate([o[0] for o in outputs])
+    std = np.concatenate([o[1] for o in outputs])
+    excited = np.concatenate([o[2] for o in outputs])
+    np.testing.assert_array_equal(excited, series.excited)
+    np.testing.assert_allclose(stiffness, series.stiffness, rtol=1e-9, equal_nan=True)
+    np.testing.assert_allclose(std, series.stiffness_std, rtol=1e-7, equal_nan=True)
+    assert estimator.samples_seen == len(t)
+
+
+@pytest.mark.parametrize("k", [832, 1234, 3999])
+def test_series_equals_direct_fit_on_each_window(k):
+    t, q, tau = _dithered_spring(5)
+    series = estimate_stiffness_series(t, q, tau, **SETTINGS)
+    window = slice(k - 499, k + 1)
+    for joint in range(2):
+        fit = tls_fit(
+            series.deflection[window, joint],
+            series.torque[window, joint],
+            SETTINGS["noise_variance_ratio"],
+            deflection_rate=series.deflection_rate[window, joint],
+        )
+        assert series.stiffness[k, joint] == pytest.approx(fit.stiffness, rel=1e-9)
+        assert series.excitation[k, joint] == pytest.approx(fit.excitation, rel=1e-9)
+
+
+def test_series_recovers_constant_hand_stiffness():
+    t, q, tau = _dithered_spring(6)
+    series = estimate_stiffness_series(t, q, tau, **SETTINGS)
+    # Excited from one window plus the settling time (2 / 6 Hz) on, never before.
+    first = 499 + 333
+    assert series.excited[first:].all() and not series.excited[:first].any()
+    # Closed form: the torque channel of joint 1 is twice that of joint 0, so 40 and 20 N*m/rad.
+    # Stated bound: 3 % once the band-pass has settled on the slow motion (after 1 s).
+    np.testing.assert_allclose(series.stiffness[1000:, 0], 20.0, rtol=0.03)
+    np.testing.assert_allclose(series.stiffness[1000:, 1], 40.0, rtol=0.03)
+    ols = estimate_stiffness_series(t, q, tau, method="ols", **SETTINGS)
+    np.testing.assert_allclose(ols.stiffness[1000:, 0], 20.0, rtol=0.03)
+
+
+def test_unexcited_windows_are_flagged_not_estimated():
+    t = np.arange(2000) / 1000.0
+    q = np.column_stack([0.2 * np.sin(2 * np.pi * 0.2 * t)])
+    tau = 5.0 * (0.1 - q)
+    series = estimate_stiffness_series(t, q, tau, min_excitation_rad=1e-4, **SETTINGS)
+    assert not series.excited.any()
+    assert np.isnan(series.stiffness).all() and np.isnan(series.stiffness_std).all()
+
+
+def test_first_window_is_never_excited():
+    t, q, tau = _dithered_spring(7, n=800)
+    estimator = SlidingStiffnessEstimator(2, rate_hz=1000.0, settle_s=0.0, **SETTINGS)
+    stiffness, _, excited = estimator.update(q, tau)
+    assert not excited[:499].any() and excited[499:].all()
+    assert np.isnan(stiffness[:499]).all()
+    estimator.reset()
+    assert estimator.samples_seen == 0
+
+
+def test_static_spring_without_band_pass():
+    # No band-pass: torque = K (q0 - q) about a fixed equilibrium q0; the intercept absorbs q0.
+    rng = np.random.default_rng(8)
+    t = np.arange(1000) / 500.0
+    q = 0.1 + 0.01 * rng.normal(size=(1000, 1))
+    tau = 12.0 * (0.15 - q)
+    series = estimate_stiffness_series(
+        t, q, tau, window_s=0.2, noise_variance_ratio=1e4, band_hz=None, model_damping=False
+    )
+    np.testing.assert_allclose(series.stiffness[99:], 12.0, rtol=1e-9)
+
+
+def _synthetic_demos(n_demos, sigma, seed):
+    rng = np.random.default_rng(seed)
+    s = np.linspace(0, 1, sigma.shape[0])
+    mean = np.column_stack([np.sin(np.pi * s), s**2])
+    return mean[None] + sigma[None] * rng.normal(size=(n_demos, *sigma.shape))
+
+
+def test_variability_stiffness_follows_inverse_variance():
+    s = np.linspace(0, 1, 400)
+    sigma = np.column_stack([0.01 + 0.05 * s, 0.03 + 0.025 * np.cos(2 * np.pi * s)])
+    demos = _synthetic_demos(30, sigma, seed=9)
+    variance = demos.var(axis=0, ddof=1)
+    k = stiffness_from_variability(variance, [5.0, 2.0], [50.0, 30.0], n_demos=30)
+    assert k.shape == (400, 2)
+    np.testing.assert_allclose(k.min(axis=0), [5.0, 2.0])
+    np.testing.assert_allclose(k.max(axis=0), [50.0, 30.0])
+    # Calinon, Sardellitti, Caldwell (IROS 2010): stiffness proportional to the inverse variance
+    # within the range. Against the known (true) inverse variance the correlation must exceed
+    # 0.8 per joint (stated bound; sampling noise of 30 demonstrations lowers it from 1).
+    for joint in range(2):
+        r = np.corrcoef(k[:, joint], 1 / sigma[:, joint] ** 2)[0, 1]
+        assert r > 0.8
+
+
+def test_variability_on_exact_variance_is_linear_in_precision():
+    variance = np.array([[1.0], [0.5], [0.25]])
+    k = stiffness_from_variability(variance, 10.0, 40.0, n_demos=5)
+    # precision 1, 2, 4 -> (p - 1) / 3 of the range
+    np.testing.assert_allclose(k[:, 0], [10.0, 20.0, 40.0])
+    flat = stiffness_from_variability(np.ones((4, 1)), 10.0, 40.0, n_demos=2)
+    np.testing.assert_allclose(flat, 40.0)
+
+
+# ----- bad input -----
+
+
+def test_error_nan_deflection():
+    with pytest.raises(InvalidInputError, match=r"deflection\[1\] = nan is not finite"):
+        tls_fit([0.0, np.nan, 1.0], [0.0, 1.0, 2.0], 1.0)
+
+
+def test_error_length_mismatch():
+    with pytest.raises(InvalidInputError, match="torque: expected 3 samples like deflection"):
+        ols_fit([0.0, 1.0, 2.0], [0.0, 1.0])
+
+
+def test_error_too_few_and_constant():
+    with pytest.raises(InvalidInputError, match="need at least 3 samples, got 2"):
+        ols_fit([0.0, 1.0], [0.0, 1.0])
+    with pytest.raises(InvalidInputError, match=r"deflection is constant \(0.5 rad\)"):
+        ols_fit([0.5] * 4, [0.0, 1.0, 2.0, 3.0])
+    with pytest.raises(InvalidInputError, match="deflection_rate is constant"):
+        ols_fit([0, 1, 2, 3.0], [0, 1, 2, 3.0], deflection_rate=[1.0] * 4)
+
+
+@pytest.mark.parametrize("ratio", [0.0, -1.0, float("inf")])
+def test_error_noise_variance_ratio(ratio):
+    with pytest.raises(InvalidInputError, match="noise_variance_ratio must be positive"):
+        tls_fit([0, 1, 2.0], [0, 1, 2.0], ratio)
+
+
+def test_error_estimator_settings():
+    with pytest.raises(InvalidInputError, match="window_s = 0.001 gives 1 samples"):
+        SlidingStiffnessEstimator(1, 0.001, 1000.0, 1.0)
+    with pytest.raises(InvalidInputError, match="method must be 'tls' or 'ols', got 'lsq'"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, method="lsq")
+    with pytest.raises(InvalidInputError, match=r"band_hz must satisfy .* got \(6.0, 600.0\)"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, band_hz=(6.0, 600.0))
+    with pytest.raises(InvalidInputError, match="n_joints must be a positive integer, got 0"):
+        SlidingStiffnessEstimator(0, 0.5, 1000.0, 1.0)
+    with pytest.raises(InvalidInputError, match="min_excitation_rad must be non-negative"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, min_excitation_rad=-1.0)
+    with pytest.raises(InvalidInputError, match="settle_s must be non-negative, got -0.1"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, settle_s=-0.1)
+
+
+def test_error_update_shape_and_nan():
+    estimator = SlidingStiffnessEstimator(2, 0.5, 1000.0, 1.0)
+    with pytest.raises(InvalidInputError, match=r"must be \(n, 2\) arrays of equal shape"):
+        estimator.update(np.zeros((5, 3)), np.zeros((5, 3)))
+    bad = np.zeros((5, 2))
+    bad[3, 1] = np.nan
+    with pytest.raises(InvalidInputError, match=r"torque\[3, 1\] = nan is not finite"):
+        estimator.update(np.zeros((5, 2)), bad)
+
+
+def test_error_series_time():
+    q = np.zeros((5, 1))
+    with pytest.raises(InvalidInputError, match=r"t must be strictly increasing .* t\[2\] = 0.1"):
+        estimate_stiffness_series(
+            [0, 0.1, 0.1, 0.2, 0.3], q, q, window_s=0.003, noise_variance_ratio=1.0
+        )
+    with pytest.raises(InvalidInputError, match=r"t\[1\] = nan is not finite"):
+        estimate_stiffness_series(
+            [0, np.nan, 0.2, 0.3, 0.4], q, q, window_s=0.3, noise_variance_ratio=1.0
+        )
+    with pytest.raises(InvalidInputError, match="t is not equally spaced"):
+        estimate_stiffness_series(
+            [0, 0.1, 0.2, 0.5, 0.6], q, q, window_s=0.3, noise_variance_ratio=1.0
+        )
+    with pytest.raises(InvalidInputError, match="positive duration"):
+        estimate_stiffness_series([0.0], q[:1], q[:1], window_s=0.3, noise_variance_ratio=1.0)
+
+
+def test_error_variability_inputs():
+    variance = np.ones((4, 2))
+    with pytest.raises(InvalidInputError, match="n_demos = 1: stiffness from variability needs"):
+        stiffness_from_variability(variance, 1.0, 2.0, n_demos=1)
+    bad = variance.copy()
+    bad[2, 1] = np.nan
+    with pytest.raises(InvalidInputError, match=r"variance\[2, 1\] = nan is not finite"):
+        stiffness_from_variability(bad, 1.0, 2.0, n_demos=3)
+    bad[2, 1] = -0.5
+    with pytest.raises(InvalidInputError, match=r"variance\[2, 1\] = -0.5 is negative"):
+        stiffness_from_variability(bad, 1.0, 2.0, n_demos=3)
+    with pytest.raises(InvalidInputError, match="k_min = 5.0 is above k_max = 2.0"):
+        stiffness_from_variability(variance, 5.0, 2.0, n_demos=3)
+    with pytest.raises(InvalidInputError, match="must be positive"):
+        stiffness_from_variability(variance, 0.0, 2.0, n_demos=3)
+    with pytest.raises(InvalidInputError, match="variance_floor must be positive, got -1"):
+        stiffness_from_variability(variance, 1.0, 2.0, n_demos=3, variance_floor=-1)
