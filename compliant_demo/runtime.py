@@ -3,7 +3,9 @@
 :class:`TeachingSession` hands out the samples of a series of simulated demonstrations as they
 fall due in real time and keeps the teacher's own counts and ground truth. The learner node turns
 its parameters into a :class:`LearnRequest` and calls :func:`learn_from_store`, which refuses
-clearly (NotFoundError) when fewer demonstrations than required match the query.
+clearly (NotFoundError) when fewer demonstrations than required match the query. The replay
+node steps a :class:`ReplayRun` (a skill's rollout on the simulated plant, one control period at a
+time, with limit checks that stop it safely) and stores :meth:`ReplayRun.outcome`.
 """
 
 from __future__ import annotations
@@ -14,10 +16,20 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from pydantic import BaseModel, ConfigDict, Field
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.models import (
+    IdealImpedanceParams,
+    JointParams,
+    MechanismParams,
+    load_yaml_model,
+)
 
 __all__ = [
+    "ReplayPlant",
+    "ReplayRun",
+    "load_plant",
     "TeachingSession",
     "LearnRequest",
     "LearnOutcome",
@@ -226,3 +238,230 @@ def _report(skill: Any, version: int, n_demos: int) -> str:
         k_text = "-" if k_rmse is None else f"{k_rmse:.3g} N*m/rad"
         lines.append(f"  {joint}: position RMSE {rmse:.3g} rad, stiffness RMSE {k_text}")
     return "\n".join(lines)
+
+
+class ReplayPlant(BaseModel):
+    """The simulated target: one JointParams per joint and the shared mechanism."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    joints: tuple[JointParams, ...] = Field(..., min_length=1, description="Target joints.")
+    mechanism: MechanismParams = Field(
+        default_factory=IdealImpedanceParams, description="Variable-stiffness mechanism."
+    )
+
+    def for_joints(self, names: Sequence[str]) -> list[JointParams]:
+        """The joint records for ``names``, in that order; InvalidInputError if one is missing."""
+        by_name = {joint.name: joint for joint in self.joints}
+        missing = [name for name in names if name not in by_name]
+        if missing:
+            raise InvalidInputError(
+                f"plant joints {sorted(by_name)} lack {missing} that the skill moves"
+            )
+        return [by_name[name] for name in names]
+
+
+def load_plant(path: str | Path | None) -> ReplayPlant:
+    """The plant from a YAML file ``{joints: [...], mechanism: {kind: ...}}``; None or "" gives
+    the teaching scenario's joints with the ideal variable-impedance mechanism."""
+    if path:
+        return load_yaml_model(ReplayPlant, path)
+    from compliant_demo.teaching import cork_seat_scenario
+
+    return ReplayPlant(joints=cork_seat_scenario().joints)
+
+
+_TRACE_CHANNELS = (
+    "q", "dq", "tau_mechanism", "tau_external", "stiffness_realised", "damping_realised",
+)
+
+
+class ReplayRun:
+    """A skill replayed on the simulated plant one control period at a time.
+
+    Parameters
+    ----------
+    skill : compliant_demo.primitives.Skill
+    plant : ReplayPlant
+    schedule : compliant_demo.perturbation.PerturbationSchedule or None
+    dt : float, s
+        Control period (one simulator step per period).
+    duration_s : float, s, optional
+        Movement duration; default the demonstrated one.
+    settle_s : float, s
+        Time simulated after the movement, to see it settle.
+    goal : (n_joints,) array, rad, optional
+        New goal; default the demonstrated one.
+    method : str
+        Integrator of :class:`compliant_demo.sim.Simulator`.
+    seed : int
+        Seeds sensor noise and unseeded random perturbations.
+    max_stiffness_rate : float, N*m/rad/s
+        Commanded stiffness may not change faster; a faster change stops the run.
+
+    Notes
+    -----
+    Row k of the trace is the state after step k, at t = (k + 1) * dt, under command row k of
+    the rollout, exactly as row k + 1 of :func:`compliant_demo.sim.simulate` run on the same
+    commands (same seed). The run stops safely (no further steps) at the first step whose
+    mechanism torque exceeds a joint's ``torque_limit``, whose angle leaves the joint's range, or
+    whose commanded stiffness rate exceeds ``max_stiffness_rate``.
+    """
+
+    def __init__(
+        self,
+        skill: Any,
+        plant: ReplayPlant,
+        schedule: Any = None,
+        *,
+        dt: float = 1e-3,
+        duration_s: float | None = None,
+        settle_s: float = 0.5,
+        goal: Sequence[float] | None = None,
+        method: str = "rk4",
+        seed: int = 0,
+        max_stiffness_rate: float = float("inf"),
+    ):
+        from compliant_demo.sim import Simulator
+
+        if not settle_s >= 0:
+            raise InvalidInputError(f"settle_s: must be non-negative, got {settle_s}")
+        if not max_stiffness_rate > 0:
+            raise InvalidInputError(
+                f"max_stiffness_rate: must be positive, got {max_stiffness_rate}"
+            )
+        self.skill = skill
+        self.joints = plant.for_joints(skill.joints)
+        self.mechanism = plant.mechanism
+        self.schedule = schedule
+        self.dt = float(dt)
+        self.seed = int(seed)
+        self.max_stiffness_rate = float(max_stiffness_rate)
+        duration = skill.duration_s if duration_s is None else float(duration_s)
+        self.rollout = skill.rollout(
+            goal=goal,
+            duration_s=duration,
+            dt=self.dt,
+            target_inertia=[joint.inertia for joint in self.joints],
+            horizon_s=duration + settle_s,
+        )
+        self.n_steps = len(self.rollout.t) - 1
+        self.simulator = Simulator(
+            self.joints,
+            self.mechanism,
+            n_scenarios=1,
+            dt=self.dt,
+            method=method,
+            q0=self.rollout.position[0],
+            schedules=None if schedule is None else [schedule],
+            seed=self.seed,
+            horizon_steps=self.n_steps,
+        )
+        shape = (self.n_steps, len(self.joints))
+        self._trace = {name: np.full(shape, np.nan) for name in _TRACE_CHANNELS}
+        self.steps_done = 0
+        self.stop_reason: str | None = None
+        self._limits = (
+            np.array([j.lower_limit for j in self.joints]),
+            np.array([j.upper_limit for j in self.joints]),
+            np.array([j.torque_limit for j in self.joints]),
+        )
+
+    @property
+    def finished(self) -> bool:
+        """True after the last step or a safety stop."""
+        return self.stop_reason is not None or self.steps_done >= self.n_steps
+
+    def commands(self, k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Commanded equilibrium (rad), stiffness (N*m/rad) and damping (N*m*s/rad) of step k."""
+        rollout = self.rollout
+        return rollout.position[k], rollout.stiffness[k], rollout.damping[k]
+
+    def step(self, live_torque: Sequence[float] | None = None) -> Any:
+        """Advance one control period; returns the simulator's StepState (one scenario).
+
+        Parameters
+        ----------
+        live_torque : (n_joints,) array, N*m, optional
+            Extra external torque over this step (live perturbations from a topic).
+        """
+        if self.finished:
+            raise InvalidInputError("replay already finished: no further step")
+        k = self.steps_done
+        equilibrium, stiffness, damping = self.commands(k)
+        state = self.simulator.step(equilibrium, stiffness, damping, external_torque=live_torque)
+        for name in _TRACE_CHANNELS:
+            self._trace[name][k] = getattr(state, name)[0]
+        self.steps_done = k + 1
+        self.stop_reason = self._violation(k, state)
+        return state
+
+    def _violation(self, k: int, state: Any) -> str | None:
+        lower, upper, torque_limit = self._limits
+        q, torque = state.q[0], state.tau_mechanism[0]
+        t = (k + 1) * self.dt
+        for j, joint in enumerate(self.joints):
+            if abs(torque[j]) > torque_limit[j]:
+                return (f"torque limit: {joint.name} mechanism torque {torque[j]:.3g} N*m "
+                        f"beyond {torque_limit[j]:.3g} N*m at t = {t:.3f} s")
+            if not lower[j] <= q[j] <= upper[j]:
+                return (f"joint range: {joint.name} at {q[j]:.3g} rad outside "
+                        f"[{lower[j]:.3g}, {upper[j]:.3g}] rad at t = {t:.3f} s")
+        if k > 0:
+            rate = np.abs(self.rollout.stiffness[k] - self.rollout.stiffness[k - 1]) / self.dt
+            j = int(np.argmax(rate))
+            if rate[j] > self.max_stiffness_rate:
+                return (f"stiffness rate: {self.joints[j].name} commanded at {rate[j]:.3g} "
+                        f"N*m/rad/s beyond {self.max_stiffness_rate:.3g} at t = {t:.3f} s")
+        return None
+
+    def _perturbation_windows(self) -> tuple[list[float], list[float]]:
+        if self.schedule is None:
+            return [], []
+        end_of_run = self.n_steps * self.dt
+        spans = sorted(
+            (p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_of_run))
+            for p in self.schedule.perturbations
+            if p.onset_s <= end_of_run
+        )
+        return [a for a, _ in spans], [b for _, b in spans]
+
+    def trace(self) -> dict[str, np.ndarray]:
+        """The steps done so far: t (s) and per-joint channels (see Notes of the class)."""
+        n = self.steps_done
+        rollout = self.rollout
+        trace = {"t": (np.arange(n) + 1) * self.dt}
+        trace.update({name: values[:n].copy() for name, values in self._trace.items()})
+        trace["equilibrium_commanded"] = rollout.position[:n].copy()
+        trace["stiffness_commanded"] = rollout.stiffness[:n].copy()
+        trace["damping_commanded"] = rollout.damping[:n].copy()
+        return trace
+
+    def outcome(self) -> tuple[str, str | None, dict[str, Any], dict[str, np.ndarray]]:
+        """(status, reason, metrics, trace) for the store: status "ok", "stopped" (safety stop)
+        or "aborted" (ended early without a violation)."""
+        from compliant_demo.evaluation import outcome_metrics
+
+        trace = self.trace()
+        n = self.steps_done
+        if n == 0:
+            raise InvalidInputError("replay has no step yet: nothing to evaluate")
+        onsets, ends = self._perturbation_windows()
+        metrics = outcome_metrics(
+            trace["t"],
+            trace["q"],
+            self.rollout.position[1 : n + 1],
+            trace["tau_external"],
+            trace["tau_mechanism"],
+            self.rollout.position[-1],
+            perturbation_onsets=onsets,
+            perturbation_ends=ends,
+            joints=self.joints,
+        )
+        metrics["steps"] = n
+        metrics["steps_planned"] = self.n_steps
+        if self.stop_reason is not None:
+            return "stopped", self.stop_reason, metrics, trace
+        if n < self.n_steps:
+            return "aborted", f"ended after {n} of {self.n_steps} steps", metrics, trace
+        return "ok", None, metrics, trace

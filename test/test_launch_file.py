@@ -1,0 +1,208 @@
+"""The strict launch-file reader: our launch files resolve, and everything else is a clear error."""
+
+from __future__ import annotations
+
+import ast
+import sys
+from pathlib import Path
+
+import pytest
+
+from compliant_demo.cli import main as cli_main
+from compliant_demo.exceptions import LaunchFileError
+from compliant_demo.launch_file import (
+    NODE_MODULES,
+    ParameterFile,
+    ParameterValue,
+    parse_launch_arguments,
+    read_launch_file,
+)
+
+ROOT = Path(__file__).resolve().parent.parent
+LAUNCH_FILES = sorted((ROOT / "launch").glob("*.launch.xml"))
+
+
+def _package(tmp_path: Path, launch_text: str, config: dict[str, str] | None = None) -> Path:
+    """A package tree like ours (package.xml, launch/, config/) holding one launch file."""
+    (tmp_path / "package.xml").write_text(
+        "<package format='3'><name>compliant_demo</name></package>"
+    )
+    (tmp_path / "launch").mkdir()
+    (tmp_path / "config").mkdir()
+    for name, text in (config or {}).items():
+        (tmp_path / "config" / name).write_text(text)
+    path = tmp_path / "launch" / "x.launch.xml"
+    path.write_text(launch_text)
+    return path
+
+
+_GOOD = """<launch>
+  <arg name="store" default="/tmp/a.sqlite" description="store"/>
+  <arg name="demos"/>
+  <node pkg="compliant_demo" exec="recorder_node" name="rec" namespace="bench" output="screen">
+    <param from="$(find-pkg-share compliant_demo)/config/rec.yaml"/>
+    <param name="store_path" value="$(var store)"/>
+    <param name="tags" value="['a', 'b']"/>
+  </node>
+  <node pkg="compliant_demo" exec="teacher_node" name="teacher">
+    <param name="n_demonstrations" value="$(var demos)"/>
+  </node>
+</launch>
+"""
+
+
+def test_reader_resolves_arguments_files_and_executables(tmp_path: Path) -> None:
+    path = _package(tmp_path, _GOOD, {"rec.yaml": "/**:\n  ros__parameters: {}\n"})
+    description = read_launch_file(path, {"demos": "4"})
+    assert [a.name for a in description.arguments] == ["store", "demos"]
+    assert description.values == {"store": "/tmp/a.sqlite", "demos": "4"}
+    recorder = description.node("rec")
+    assert recorder.parameters == (
+        ParameterFile(tmp_path.resolve() / "config" / "rec.yaml"),
+        ParameterValue("store_path", "/tmp/a.sqlite"),
+        ParameterValue("tags", "['a', 'b']"),
+    )
+    line = recorder.command_line({"operator": "operator_b"})
+    ros_args = line[line.index("--ros-args") :]
+    assert ros_args == [
+        "--ros-args", "-r", "__node:=rec", "-r", "__ns:=bench",
+        "--params-file", str(tmp_path.resolve() / "config" / "rec.yaml"),
+        "-p", "store_path:=/tmp/a.sqlite", "-p", "tags:=['a', 'b']",
+        "-p", "operator:=operator_b",
+    ]  # fmt: skip
+    # Either the installed console script or "python -m" the node module.
+    assert line[0].endswith("recorder_node") or line[:3] == [
+        sys.executable, "-m", "compliant_demo.nodes.recorder"
+    ]
+    assert description.node("teacher").parameter_values() == {"n_demonstrations": "4"}
+
+
+@pytest.mark.parametrize(
+    "text, arguments, match",
+    [
+        ("<launch><include file='x'/></launch>", {}, r"unsupported element <include>"),
+        ("<launch><group><node/></group></launch>", {}, r"unsupported element <group>"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node' respawn='true'/></launch>", {},
+         r"unsupported attribute\(s\) \['respawn'\]"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node'><remap from='a' to='b'/>"
+         "</node></launch>", {}, r"unsupported element <remap>"),
+        ("<launch><node pkg='compliant_demo' exec='no_such_node'/></launch>", {},
+         r"executable 'no_such_node' of package 'compliant_demo' not found"),
+        ("<launch><node pkg='other_pkg' exec='talker'/></launch>", {},
+         r"only compliant_demo nodes"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node'>"
+         "<param from='$(find-pkg-share compliant_demo)/config/missing.yaml'/></node></launch>",
+         {}, r"parameter file .*missing\.yaml does not exist"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node'>"
+         "<param name='seed' value='$(env HOME)'/></node></launch>", {},
+         r"unsupported substitution \$\(env HOME\)"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node'>"
+         "<param name='seed' value='$(var seed)'/></node></launch>", {},
+         r"\$\(var seed\) names no argument"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node'>"
+         "<param name='seed'/></node></launch>", {}, r"either from=FILE or both name and value"),
+        ("<launch><arg name='a'/><node pkg='compliant_demo' exec='teacher_node'/></launch>", {},
+         r"argument 'a' has no default"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node'/></launch>", {"b": "1"},
+         r"unknown launch argument\(s\) \['b'\]"),
+        ("<launch><arg name='a' default='1'/><arg name='a' default='2'/>"
+         "<node pkg='compliant_demo' exec='teacher_node'/></launch>", {}, r"declared twice"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node' name='n'/>"
+         "<node pkg='compliant_demo' exec='recorder_node' name='n'/></launch>", {},
+         r"node names repeat"),
+        ("<launch><node pkg='compliant_demo' exec='teacher_node' output='tty'/></launch>", {},
+         r"output='tty'"),
+        ("<launch></launch>", {}, r"declares no <node>"),
+        ("<launch><node pkg='compliant_demo'/></launch>", {}, r"non-empty 'exec' attribute"),
+        ("<launchfile/>", {}, r"unsupported element <launchfile>"),
+        ("<launch><node", {}, r"not well-formed XML"),
+    ],
+)
+def test_reader_refuses_what_it_does_not_support(
+    tmp_path: Path, text: str, arguments: dict, match: str
+) -> None:
+    path = _package(tmp_path, text)
+    with pytest.raises(LaunchFileError, match=match):
+        read_launch_file(path, arguments)
+
+
+def test_reader_refuses_a_missing_file(tmp_path: Path) -> None:
+    with pytest.raises(LaunchFileError, match=r"cannot read launch file"):
+        read_launch_file(tmp_path / "absent.launch.xml")
+
+
+def test_unknown_node_name_is_an_error(tmp_path: Path) -> None:
+    path = _package(tmp_path, _GOOD, {"rec.yaml": "/**:\n  ros__parameters: {}\n"})
+    with pytest.raises(LaunchFileError, match=r"no node named 'replay'"):
+        read_launch_file(path, {"demos": "1"}).node("replay")
+
+
+@pytest.mark.parametrize(
+    "items, expected",
+    [([], {}), (["a:=1", "store:=/tmp/x:y.sqlite", "empty:="], {"a": "1",
+      "store": "/tmp/x:y.sqlite", "empty": ""})],
+)
+def test_launch_arguments_parse(items: list[str], expected: dict) -> None:
+    assert parse_launch_arguments(items) == expected
+
+
+@pytest.mark.parametrize("item", ["a=1", ":=1", "1a:=2"])
+def test_launch_arguments_refuse_bad_items(item: str) -> None:
+    with pytest.raises(LaunchFileError, match="expected NAME:=VALUE"):
+        parse_launch_arguments([item])
+
+
+# -- Our own launch files ----------------------------------------------------------------------
+
+
+def test_every_expected_launch_file_exists() -> None:
+    names = {path.name for path in LAUNCH_FILES}
+    assert {"record.launch.xml", "learn.launch.xml", "replay.launch.xml",
+            "pipeline.launch.xml"} <= names
+
+
+@pytest.mark.parametrize("path", LAUNCH_FILES, ids=lambda p: p.name)
+def test_our_launch_files_name_existing_executables_and_parameter_files(path: Path) -> None:
+    """Reading resolves every executable and parameter file; a missing one raises."""
+    description = read_launch_file(path)
+    assert description.nodes
+    for node in description.nodes:
+        assert node.package == "compliant_demo"
+        assert node.executable in NODE_MODULES
+        for parameter in node.parameters:
+            if isinstance(parameter, ParameterFile):
+                assert parameter.path.is_file()
+                assert parameter.path.parent == ROOT / "config"
+
+
+def test_node_modules_match_the_console_scripts_of_setup_py() -> None:
+    tree = ast.parse((ROOT / "setup.py").read_text())
+    scripts = {}
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Constant) and isinstance(node.value, str) and "=" in node.value:
+            name, _, target = (part.strip() for part in node.value.partition("="))
+            if name.endswith("_node"):
+                scripts[name] = target.removesuffix(":main")
+    assert scripts == NODE_MODULES
+
+
+def test_launch_command_prints_the_node_command_lines(capsys) -> None:
+    status = cli_main(
+        ["launch", str(ROOT / "launch" / "record.launch.xml"), "demos:=2", "--print"]
+    )
+    lines = capsys.readouterr().out.splitlines()
+    assert status == 0 and len(lines) == 2
+    assert "__node:=recorder" in lines[0] and "__node:=teacher" in lines[1]
+    assert "n_demonstrations:=2" in lines[1]
+
+
+def test_launch_command_reports_a_bad_file_as_a_user_error(tmp_path: Path, capsys) -> None:
+    path = _package(tmp_path, "<launch><node pkg='compliant_demo' exec='nope'/></launch>")
+    assert cli_main(["launch", str(path)]) == 2
+    assert "executable 'nope'" in capsys.readouterr().err
+
+
+def test_launch_command_refuses_an_unknown_until_node(capsys) -> None:
+    path = ROOT / "launch" / "record.launch.xml"
+    assert cli_main(["launch", str(path), "--until", "ghost"]) == 2
+    assert "no node named 'ghost'" in capsys.readouterr().err
