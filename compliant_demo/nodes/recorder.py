@@ -1,4 +1,14 @@
-"""Recorder node: joint states (and an optional stiffness reference) into the store."""
+"""Recorder node: joint states (and an optional stiffness reference) into the store.
+
+Topics: subscribes ``joint_states`` (sensor_msgs/JointState: position rad, velocity rad/s, effort
+N*m; header stamps in s) and ``stiffness_reference`` (std_msgs/Float64MultiArray, one value per
+joint in ``joints`` order, N*m/rad); publishes ``diagnostics`` (diagnostic_msgs/DiagnosticArray,
+keys: the counters of :class:`compliant_demo.ingest.IngestCounters`, rate_hz, buffer_fill,
+recording, demonstration_id, store_write_errors, reference_rejected). Services (std_srvs/Trigger):
+``start``, ``stop``, ``discard``. The message checks, counters, bounded buffer and background
+writer live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received,
+accepted, stored_samples and every non-zero anomaly counter.
+"""
 
 from __future__ import annotations
 
