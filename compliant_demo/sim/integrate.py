@@ -1,0 +1,767 @@
+"""Batched fixed-step simulation of variable-stiffness joints with energy bookkeeping.
+
+All scenarios and joints advance together: the state is one ``(rows, n_joints, n_scenarios)``
+array (angle, velocity, actuator states, then three work integrals), and each step is a fixed
+sequence of in-place numpy operations on it, with no Python loop over scenarios. Commands are
+held constant over a step (zero-order hold, as a digital controller applies them). Work
+integrals are integrated by the same method as the state, so the energy balance closes to the
+method's accuracy; :class:`Simulator` steps one command at a time for a real-time replay node,
+:func:`simulate` runs whole command arrays and records at a decimation.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import JointParams
+from compliant_demo.perturbation import PerturbationSchedule
+from compliant_demo.sim.mechanisms import MechanismLike, make_mechanism
+from compliant_demo.sim.schedule import compile_schedules
+from compliant_demo.sim.stability import METHODS, check_step_stability
+
+__all__ = ["GRAVITY", "EnergyTraces", "SimResult", "StepState", "Simulator", "simulate"]
+
+GRAVITY = 9.80665  # standard gravity, m/s^2 (ISO 80000-3)
+_CHUNK_STEPS = 256
+# rows of the three work integrals after the dynamic rows, and of the torque groups they
+# integrate: mechanism springs, passive (friction, mechanism damping, end stops), perturbations
+_SPRING, _PASSIVE, _EXTERNAL = range(3)
+_N_WORK = 3
+_min, _max = np.minimum.reduce, np.maximum.reduce  # skip ndarray.min's Python-level wrapper
+
+
+@dataclass(frozen=True)
+class EnergyTraces:
+    """Energy terms per recorded sample, scenario and joint, J: ``(n_rec, n_scen, n_joints)``.
+
+    Attributes
+    ----------
+    kinetic : 1/2 * I * dq^2
+    spring_potential : energy in the mechanism's springs
+    gravity_potential : m*g*l*(1 - cos(q - gravity_offset))
+    end_stop_potential : energy in compressed end stops
+    actuator_work : work done by the actuators on the mechanism since the start
+    perturbation_work : work done on the link by perturbations (torques, walls, impulses, holds)
+    dissipated : energy removed by friction, mechanism damping and end-stop damping (>= 0)
+    stiffness_injection : integral of 1/2 * dK/dt * deflection^2 with K the stiffness the
+        actuators are set to and the deflection from the equilibrium they are set to
+    initial_total : (n_scen, n_joints) kinetic plus potentials at t = 0, before perturbations
+    """
+
+    kinetic: np.ndarray
+    spring_potential: np.ndarray
+    gravity_potential: np.ndarray
+    end_stop_potential: np.ndarray
+    actuator_work: np.ndarray
+    perturbation_work: np.ndarray
+    dissipated: np.ndarray
+    stiffness_injection: np.ndarray
+    initial_total: np.ndarray
+
+    def total(self) -> np.ndarray:
+        """Kinetic plus all potential energy, (n_rec, n_scen, n_joints), J."""
+        return (
+            self.kinetic + self.spring_potential + self.gravity_potential + self.end_stop_potential
+        )
+
+    def balance_residual(self) -> np.ndarray:
+        """Energy change minus net work in, (n_rec, n_scen, n_joints), J; zero up to the method."""
+        net_in = self.actuator_work + self.perturbation_work - self.dissipated
+        return self.total() - self.initial_total - net_in
+
+    def final(self) -> dict[str, np.ndarray]:
+        """Each term at the last sample, (n_scen, n_joints), J."""
+        names = (
+            "kinetic", "spring_potential", "gravity_potential", "end_stop_potential",
+            "actuator_work", "perturbation_work", "dissipated", "stiffness_injection",
+        )
+        return {name: getattr(self, name)[-1] for name in names}
+
+
+@dataclass(frozen=True)
+class SimResult:
+    """Recorded traces of a batch; per-sample arrays are ``(n_rec, n_scen, n_joints)``.
+
+    Attributes
+    ----------
+    t : (n_rec,) array, s; sample times, every ``decimation`` steps from 0 to the end
+    q, dq : rad, rad/s; true link angle and velocity
+    q_measured : rad; angle through the encoder quantisation
+    tau_mechanism : N*m; torque the mechanism puts on the link (springs plus its damping)
+    tau_measured : N*m; tau_mechanism plus seeded torque-sensor noise
+    tau_external : N*m; perturbation torque on the link (torques, walls, hold reaction)
+    stiffness_realised : N*m/rad; mechanism stiffness at the state
+    damping_realised : N*m*s/rad; mechanism damping (zero for the antagonistic springs)
+    actuators : (n_rec, 2, n_scen, n_joints); ideal: realised stiffness and damping;
+        antagonistic: motor angles theta1, theta2 (rad)
+    equilibrium_realised : rad; link angle the actuators are set to
+    commands_clamped : bool; the command in force at the sample was clamped
+    clamp_counts : {"stiffness" | "damping" | "equilibrium": (n_scen, n_joints) int}; steps
+        whose command was clamped, over the whole run
+    held : bool; the link is blocked by a hold
+    in_contact : bool; an end stop or wall is compressed
+    energy : :class:`EnergyTraces`
+    dt : integration step, s; decimation : steps per sample; method : integrator name
+    joint_names : names of the joints
+    """
+
+    t: np.ndarray
+    q: np.ndarray
+    dq: np.ndarray
+    q_measured: np.ndarray
+    tau_mechanism: np.ndarray
+    tau_measured: np.ndarray
+    tau_external: np.ndarray
+    stiffness_realised: np.ndarray
+    damping_realised: np.ndarray
+    actuators: np.ndarray
+    equilibrium_realised: np.ndarray
+    commands_clamped: np.ndarray
+    clamp_counts: dict[str, np.ndarray]
+    held: np.ndarray
+    in_contact: np.ndarray
+    energy: EnergyTraces
+    dt: float
+    decimation: int
+    method: str
+    joint_names: tuple[str, ...]
+
+    @property
+    def n_scenarios(self) -> int:
+        return self.q.shape[1]
+
+
+@dataclass(frozen=True)
+class StepState:
+    """State after one :meth:`Simulator.step`; arrays ``(n_scen, n_joints)``, units as SimResult."""
+
+    t: float
+    q: np.ndarray
+    dq: np.ndarray
+    q_measured: np.ndarray
+    tau_mechanism: np.ndarray
+    tau_measured: np.ndarray
+    tau_external: np.ndarray
+    stiffness_realised: np.ndarray
+    damping_realised: np.ndarray
+    commands_clamped: np.ndarray
+    held: np.ndarray
+
+
+# channels recorded per sample, (J, S) each, in the order of _observe's dictionary
+_CHANNELS = (
+    "q", "dq", "q_measured", "tau_mechanism", "tau_measured", "tau_external",
+    "stiffness_realised", "damping_realised", "equilibrium_realised", "commands_clamped",
+    "held", "in_contact", "kinetic", "spring_potential", "gravity_potential",
+    "end_stop_potential", "actuator_work", "perturbation_work", "dissipated",
+    "stiffness_injection",
+)
+_BOOLEAN = ("commands_clamped", "held", "in_contact")
+
+
+def _column(joints: Sequence[JointParams], value) -> np.ndarray:
+    return np.array([[float(value(j))] for j in joints])
+
+
+def _per_scenario(name: str, value, n_scen: int, n_joints: int) -> np.ndarray:
+    """(J, S) array from None, a scalar, (n_joints,) or (n_scen, n_joints)."""
+    arr = np.asarray(0.0 if value is None else value, dtype=float)
+    if arr.ndim == 0 or arr.shape == (n_joints,):
+        arr = np.broadcast_to(arr, (n_scen, n_joints))
+    if arr.shape != (n_scen, n_joints):
+        raise InvalidInputError(
+            f"{name}: shape {arr.shape}, expected ({n_joints},) or ({n_scen}, {n_joints})"
+        )
+    _check_finite(name, arr)
+    return np.ascontiguousarray(arr.T)
+
+
+def _check_finite(name: str, arr: np.ndarray, minimum: float | None = None) -> None:
+    bad = ~np.isfinite(arr)
+    if bad.any():
+        index = tuple(int(i) for i in np.argwhere(bad)[0])
+        raise InvalidInputError(f"{name}[{index}] = {arr[index]}: values must be finite")
+    if minimum is not None and (arr < minimum).any():
+        index = tuple(int(i) for i in np.argwhere(arr < minimum)[0])
+        raise InvalidInputError(f"{name}[{index}] = {arr[index]}: must be >= {minimum}")
+
+
+def _commands(name: str, value, n_joints: int, minimum: float | None = None) -> np.ndarray:
+    try:
+        arr = np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"{name}: not a numeric array") from None
+    if arr.ndim not in (2, 3) or arr.shape[-1] != n_joints or arr.shape[0] < 1:
+        raise InvalidInputError(
+            f"{name}: shape {arr.shape}, expected (n_steps, {n_joints}) or "
+            f"(n_steps, n_scenarios, {n_joints}) with n_steps >= 1"
+        )
+    _check_finite(name, arr, minimum)
+    return arr
+
+
+def _chunk_commands(arr: np.ndarray | None, k0: int, k1: int) -> np.ndarray | None:
+    """(C, J, S') view of steps [k0, k1) from (n, J) or (n, S, J) commands."""
+    if arr is None:
+        return None
+    part = arr[k0:k1]
+    return part[:, :, None] if part.ndim == 2 else part.transpose(0, 2, 1)
+
+
+class Simulator:
+    """A batch of scenarios of the same joints and mechanism, advanced one step at a time.
+
+    Parameters
+    ----------
+    joints : joint parameters, one per joint
+    mechanism : mechanism record shared by the joints, or one per joint (same kind)
+    n_scenarios : scenarios in the batch
+    dt : integration step, s
+    method : "rk4" (default), "symplectic_euler" (fast) or "explicit_euler" (comparison only)
+    q0, dq0 : initial angle, rad, and velocity, rad/s: None (angle: the equilibrium of the
+        first command; velocity: 0), a scalar, (n_joints,) or (n_scenarios, n_joints)
+    schedules : one perturbation schedule per scenario, or None
+    seed : seeds torque-sensor noise and random torques without their own seed
+    check_stability : refuse a step above the largest stable one (UnstableStepError)
+    horizon_steps : steps the run will last (caps open-ended perturbations); None: unbounded
+
+    Notes
+    -----
+    Actuator states start at the targets of the first command, so a run starts in steady state.
+    """
+
+    def __init__(
+        self,
+        joints: Sequence[JointParams],
+        mechanism: MechanismLike | Sequence[MechanismLike],
+        n_scenarios: int = 1,
+        dt: float = 1e-3,
+        method: str = "rk4",
+        q0=None,
+        dq0=None,
+        schedules: Sequence[PerturbationSchedule] | None = None,
+        seed: int | None = None,
+        check_stability: bool = True,
+        horizon_steps: int | None = None,
+    ) -> None:
+        joints = list(joints)
+        if not joints or not all(isinstance(j, JointParams) for j in joints):
+            raise InvalidInputError("joints: expected a non-empty sequence of JointParams")
+        if method not in METHODS:
+            raise InvalidInputError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
+        if not isinstance(n_scenarios, int) or n_scenarios < 1:
+            raise InvalidInputError(f"n_scenarios = {n_scenarios!r}: expected an integer >= 1")
+        if schedules is not None and len(schedules) != n_scenarios:
+            raise InvalidInputError(
+                f"schedules: {len(schedules)} given for n_scenarios = {n_scenarios}"
+            )
+        if not (isinstance(dt, float | int) and math.isfinite(dt) and dt > 0):
+            raise InvalidInputError(f"dt = {dt!r}: expected a positive, finite step in s")
+        self.joints = joints
+        self.dt = float(dt)
+        self.method = method
+        self.n_scenarios = n_scenarios
+        n_joints = len(joints)
+        self._kernel = make_mechanism(mechanism, n_joints)
+        self._perturb = compile_schedules(
+            schedules,
+            n_scenarios,
+            [j.inertia for j in joints],
+            self.dt,
+            horizon_steps if horizon_steps is not None else 2**62,
+            seed,
+        )
+        if check_stability:
+            wall_k, wall_b = self._perturb.wall_stiffness()
+            check_step_stability(joints, mechanism, self.dt, method, wall_k, wall_b)
+        self._rng = np.random.default_rng(seed)
+        self._setup_joints(joints)
+        self._setup_state(n_joints, n_scenarios, q0, dq0)
+        self._setup_events()
+
+    # ----------------------------------------------------------------- set-up
+    def _setup_joints(self, joints: Sequence[JointParams]) -> None:
+        self._inertia = _column(joints, lambda j: j.inertia)
+        self._neg_viscous = _column(joints, lambda j: -j.viscous_damping)
+        self._neg_coulomb = _column(joints, lambda j: -j.coulomb_friction)
+        self._inv_smoothing = _column(joints, lambda j: 1.0 / j.friction_smoothing_velocity)
+        self._has_coulomb = bool(np.any(self._neg_coulomb))
+        self._mgl = _column(joints, lambda j: j.gravity_mass * GRAVITY * j.com_distance)
+        self._gravity_offset = _column(joints, lambda j: j.gravity_offset)
+        self._has_gravity = bool(np.any(self._mgl))
+        self._lower = _column(joints, lambda j: j.lower_limit)
+        self._upper = _column(joints, lambda j: j.upper_limit)
+        # no end stop can touch while every angle lies in [highest lower, lowest upper] limit
+        self._free_band = (float(self._lower.max()), float(self._upper.min()))
+        self._k_stop = _column(joints, lambda j: j.limit_stiffness)
+        self._b_stop = _column(joints, lambda j: j.limit_damping)
+        self._noise = _column(joints, lambda j: j.torque_noise_std)
+        self._resolution = _column(joints, lambda j: j.encoder_resolution)
+
+    def _setup_state(self, n_joints: int, n_scen: int, q0, dq0) -> None:
+        n_act = self._kernel.n_actuators
+        self._n_dyn = 2 + n_act
+        rows = self._n_dyn + _N_WORK
+        shape = (n_joints, n_scen)
+        self._kernel.expand(n_scen)
+        self._inv_inertia_full = np.broadcast_to(1.0 / self._inertia, shape).copy()
+        self._neg_viscous_full = np.broadcast_to(self._neg_viscous, shape).copy()
+        self._y = np.zeros((rows, *shape))
+        self._q0 = None if q0 is None else _per_scenario("q0", q0, n_scen, n_joints)
+        self._y[1] = _per_scenario("dq0", dq0, n_scen, n_joints)
+        self._stages = np.zeros((4, rows, *shape))
+        self._stage_state = np.zeros((self._n_dyn, *shape))
+        self._acc = np.zeros((rows, *shape))
+        self._torques = np.zeros((_N_WORK, *shape))
+        self._mech_damping = np.zeros(shape)
+        self._scratch = np.zeros(shape)
+        self._free = np.ones(shape)
+        self._any_held = False
+        self._jumps = np.zeros(shape)  # perturbation work done in jumps (impulses, hold onsets)
+        self._injection = np.zeros(shape)
+        self._set_k = np.zeros(shape)
+        self._step_index = 0
+        self._events_applied = -1
+        self._started = False
+
+    def _setup_events(self) -> None:
+        events: dict[int, list[tuple]] = {}
+        for s, j, step, impulse in self._perturb.impulses:
+            events.setdefault(step, []).append((1, "impulse", j, s, impulse))
+        for s, j, start, stop in self._perturb.holds:
+            events.setdefault(start, []).append((2, "hold_on", j, s))
+            events.setdefault(stop, []).append((0, "hold_off", j, s))
+        for w in self._perturb.walls:
+            events.setdefault(w.start, []).append((2, "wall_on", w))
+            events.setdefault(w.stop, []).append((0, "wall_off", w))
+        # releases first, then impulses, then new holds and walls
+        self._events = {k: sorted(v, key=lambda e: e[0]) for k, v in events.items()}
+        self._active_walls: list[dict[int, tuple]] = [
+            {} for _ in range(self._perturb.n_wall_layers)
+        ]
+        self._wall_layers: list[tuple[np.ndarray, ...]] = []
+
+    def _start(self, targets: np.ndarray) -> None:
+        """Put actuators at the first targets and the link at rest there (or at q0)."""
+        act = self._y[2 : self._n_dyn]
+        act[...] = np.broadcast_to(targets[: self._kernel.n_actuators], act.shape)
+        equilibrium = self._kernel.equilibrium(act, targets)
+        self._y[0] = equilibrium if self._q0 is None else self._q0
+        self._spring_potential0 = self._kernel.potential(self._y[0], act, targets)
+        self._stop_potential0 = self._stop_potential(self._y[0])
+        self._initial_total = (
+            0.5 * self._inertia * self._y[1] ** 2
+            + self._spring_potential0
+            + self._gravity_potential(self._y[0])
+            + self._stop_potential0
+        )
+        self._set_k = self._kernel.set_stiffness(act, targets) * np.ones_like(self._y[0])
+        self._started = True
+
+    # ----------------------------------------------------------------- model
+    def _gravity_torque(self, q: np.ndarray, out: np.ndarray) -> None:
+        np.subtract(q, self._gravity_offset, out=out)
+        np.sin(out, out=out)
+        out *= -self._mgl
+
+    def _gravity_potential(self, q: np.ndarray) -> np.ndarray:
+        return self._mgl * (1.0 - np.cos(q - self._gravity_offset))
+
+    def _stop_potential(self, q: np.ndarray) -> np.ndarray:
+        below = np.maximum(self._lower - q, 0.0)
+        above = np.maximum(q - self._upper, 0.0)
+        return 0.5 * self._k_stop * (below**2 + above**2)
+
+    def _end_stops(self, q: np.ndarray, dq: np.ndarray, out: np.ndarray) -> None:
+        """Add the torque of the stiff, damped end stops (they push, never pull) into ``out``."""
+        # two reductions decide the common case: every joint far from every stop
+        if _min(q, axis=None) >= self._free_band[0] and _max(q, axis=None) <= self._free_band[1]:
+            return
+        below = self._lower - q
+        out += np.maximum(self._k_stop * below - self._b_stop * dq, 0.0) * (below > 0)
+        above = q - self._upper
+        out -= np.maximum(self._k_stop * above + self._b_stop * dq, 0.0) * (above > 0)
+
+    def _wall_torque(self, q: np.ndarray, dq: np.ndarray, out: np.ndarray) -> None:
+        """Add wall contact torques into ``out`` (flat views; each layer's indexes unique)."""
+        q_flat, dq_flat, out_flat = q.reshape(-1), dq.reshape(-1), out.reshape(-1)
+        for index, position, side, stiffness, damping in self._wall_layers:
+            penetration = (q_flat[index] - position) * side
+            force = stiffness * penetration + damping * side * dq_flat[index]
+            np.maximum(force, 0.0, out=force)
+            force *= penetration > 0
+            out_flat[index] -= side * force
+
+    def _rhs(
+        self, y: np.ndarray, targets: np.ndarray, ext: np.ndarray | None, f: np.ndarray
+    ) -> None:
+        """State derivative ``f`` at ``y`` (rows: q, dq, actuators, three work rates)."""
+        q, dq, act = y[0], y[1], y[2 : self._n_dyn]
+        torques = self._torques
+        has_damping = self._kernel.link_torque(
+            q, dq, act, targets, torques[_SPRING], self._mech_damping
+        )
+        np.multiply(self._neg_viscous_full, dq, out=torques[_PASSIVE])
+        if has_damping:
+            torques[_PASSIVE] += self._mech_damping
+        if self._has_coulomb:
+            np.multiply(dq, self._inv_smoothing, out=self._scratch)
+            np.tanh(self._scratch, out=self._scratch)
+            self._scratch *= self._neg_coulomb
+            torques[_PASSIVE] += self._scratch
+        self._end_stops(q, dq, torques[_PASSIVE])
+        if ext is None:
+            torques[_EXTERNAL].fill(0.0)
+        else:
+            np.copyto(torques[_EXTERNAL], ext)
+        if self._wall_layers:
+            self._wall_torque(q, dq, torques[_EXTERNAL])
+        np.add(torques[0], torques[1], out=f[1])
+        f[1] += torques[2]
+        if self._has_gravity:
+            self._gravity_torque(q, self._scratch)
+            f[1] += self._scratch
+        f[1] *= self._inv_inertia_full
+        if self._any_held:
+            f[1] *= self._free
+        np.copyto(f[0], dq)
+        self._kernel.actuator_rates(act, targets, f[2 : self._n_dyn])
+        np.multiply(torques, dq, out=f[self._n_dyn :])
+
+    # ----------------------------------------------------------------- stepping
+    def _advance(self, targets: np.ndarray, ext: np.ndarray | None, have_first: bool) -> None:
+        """One step of the chosen method; ``ext`` is (3, J, S) stage torques or None."""
+        y, stages, h = self._y, self._stages, self.dt
+        e0, e1, e2 = (None, None, None) if ext is None else (ext[0], ext[1], ext[2])
+        if not have_first:
+            self._rhs(y, targets, e0, stages[0])
+        act = y[2 : self._n_dyn]
+        set_before = self._set_k
+        deflection_before = y[0] - self._kernel.equilibrium(act, targets)
+        if self.method == "rk4":
+            n, ys = self._n_dyn, self._stage_state
+            for i, (fraction, e) in enumerate(((0.5, e1), (0.5, e1), (1.0, e2))):
+                np.multiply(stages[i, :n], fraction * h, out=ys)
+                ys += y[:n]
+                self._rhs(ys, targets, e, stages[i + 1])
+            acc = self._acc
+            np.add(stages[1], stages[2], out=acc)
+            acc *= 2.0
+            acc += stages[0]
+            acc += stages[3]
+            acc *= h / 6.0
+            y += acc
+        elif self.method == "symplectic_euler":
+            np.multiply(stages[0], h, out=self._acc)
+            y[1] += self._acc[1]
+            np.multiply(y[1], h, out=self._acc[0])
+            y[0] += self._acc[0]
+            y[2:] += self._acc[2:]
+        else:
+            np.multiply(stages[0], h, out=self._acc)
+            y += self._acc
+        self._set_k = self._kernel.set_stiffness(act, targets)
+        deflection_after = y[0] - self._kernel.equilibrium(act, targets)
+        # midpoint rule for 1/2 * dK/dt * deflection^2 over the step
+        middle = 0.5 * (deflection_before + deflection_after)
+        self._injection += 0.5 * (self._set_k - set_before) * middle * middle
+        self._step_index += 1
+
+    def _apply_events(self, step: int) -> None:
+        if step == self._events_applied:
+            return
+        self._events_applied = step
+        y = self._y
+        walls_changed = False
+        for event in self._events.get(step, ()):
+            name = event[1]
+            if name == "impulse":
+                _, _, j, s, impulse = event
+                if self._free[j, s]:
+                    before = y[1, j, s]
+                    y[1, j, s] += impulse / self._inertia[j, 0]
+                    self._jumps[j, s] += 0.5 * self._inertia[j, 0] * (y[1, j, s] ** 2 - before**2)
+            elif name == "hold_on":
+                _, _, j, s = event
+                self._jumps[j, s] -= 0.5 * self._inertia[j, 0] * y[1, j, s] ** 2
+                y[1, j, s] = 0.0
+                self._free[j, s] = 0.0
+            elif name == "hold_off":
+                self._free[event[2], event[3]] = 1.0
+            else:
+                wall = event[2]
+                flat = wall.joint * self.n_scenarios + wall.scenario
+                layer = self._active_walls[wall.layer]
+                if name == "wall_on":
+                    here = y[0, wall.joint, wall.scenario] if wall.relative else 0.0
+                    surface = wall.position + here
+                    layer[flat] = (surface, wall.side, wall.stiffness, wall.damping)
+                else:
+                    layer.pop(flat, None)
+                walls_changed = True
+        self._any_held = not bool(self._free.all())
+        if walls_changed:
+            self._wall_layers = [
+                (
+                    np.fromiter(layer, dtype=np.intp),
+                    *(np.array([v[i] for v in layer.values()], dtype=float) for i in range(4)),
+                )
+                for layer in self._active_walls
+                if layer
+            ]
+
+    # ----------------------------------------------------------------- observation
+    def _observe(
+        self, targets: np.ndarray, ext: np.ndarray | None, clamped: np.ndarray
+    ) -> dict[str, np.ndarray]:
+        """Everything recorded at the current state, (J, S) arrays; leaves stage 0 in place."""
+        y, kernel = self._y, self._kernel
+        self._rhs(y, targets, ext, self._stages[0])
+        q, dq, act = y[0], y[1], y[2 : self._n_dyn]
+        torques = self._torques
+        net = torques.sum(axis=0)
+        if self._has_gravity:
+            gravity = np.empty_like(q)
+            self._gravity_torque(q, gravity)
+            net += gravity
+        held = self._free == 0.0
+        tau_mech = torques[_SPRING] + (self._mech_damping if kernel.damping_range()[1].any() else 0)
+        tau_measured = tau_mech + self._noise * self._rng.standard_normal(q.shape)
+        resolution = np.where(self._resolution > 0, self._resolution, 1.0)
+        q_measured = np.where(self._resolution > 0, np.round(q / resolution) * resolution, q)
+        spring_potential = kernel.potential(q, act, targets)
+        stop_potential = self._stop_potential(q)
+        works = y[self._n_dyn :]
+        contact = (q < self._lower) | (q > self._upper)
+        for index, position, side, _, _ in self._wall_layers:
+            contact.reshape(-1)[index] |= (q.reshape(-1)[index] - position) * side > 0
+        shape = q.shape
+        return {
+            "q": q,
+            "dq": dq,
+            "q_measured": q_measured,
+            "tau_mechanism": tau_mech,
+            "tau_measured": tau_measured,
+            "tau_external": torques[_EXTERNAL] - np.where(held, net, 0.0),
+            "stiffness_realised": kernel.stiffness(q, act, targets),
+            "damping_realised": np.broadcast_to(kernel.damping(act, targets), shape),
+            "equilibrium_realised": np.broadcast_to(kernel.equilibrium(act, targets), shape),
+            "commands_clamped": np.broadcast_to(clamped, shape),
+            "held": held,
+            "in_contact": contact,
+            "kinetic": 0.5 * self._inertia * dq * dq,
+            "spring_potential": spring_potential,
+            "gravity_potential": self._gravity_potential(q),
+            "end_stop_potential": stop_potential,
+            "actuator_work": spring_potential - self._spring_potential0 + works[_SPRING],
+            "perturbation_work": works[_EXTERNAL] + self._jumps,
+            "dissipated": -works[_PASSIVE] - (stop_potential - self._stop_potential0),
+            "stiffness_injection": self._injection,
+        }
+
+    # ----------------------------------------------------------------- public API
+    @property
+    def t(self) -> float:
+        """Simulated time, s."""
+        return self._step_index * self.dt
+
+    def _targets(self, equilibrium, stiffness, damping):
+        if damping is not None and self._kernel.damping_range()[1].max() == 0:
+            warnings.warn(
+                "damping commands are ignored: the antagonistic mechanism has no damping input",
+                stacklevel=3,
+            )
+            damping = None
+        return self._kernel.command_targets(equilibrium, stiffness, damping)
+
+    def step(self, equilibrium, stiffness, damping=None, external_torque=None) -> StepState:
+        """Advance one step under the given commands.
+
+        Parameters
+        ----------
+        equilibrium : (n_scen, n_joints) or (n_joints,) array, rad
+        stiffness : same shape, N*m/rad
+        damping : same shape, N*m*s/rad, or None (the mechanism's lowest; ignored, with a
+            warning, by mechanisms without a damping input)
+        external_torque : (n_scen, n_joints) or (n_joints,) array, N*m, held over the step, or None
+
+        Returns
+        -------
+        StepState
+            The state at the end of the step.
+        """
+        n_joints, n_scen = self._y.shape[1:]
+        cmd = [
+            None if v is None else _per_scenario(name, v, n_scen, n_joints)[None]
+            for name, v in (("equilibrium", equilibrium), ("stiffness", stiffness),
+                            ("damping", damping))
+        ]
+        for name, v in (("stiffness", cmd[1]), ("damping", cmd[2])):
+            if v is not None:
+                _check_finite(name, v, 0.0)
+        targets, flags = self._targets(*cmd)
+        clamped = np.logical_or.reduce(list(flags.values()))[0]
+        ext = np.zeros((1, 3, n_joints, n_scen))
+        touched = self._perturb.fill_torque(ext, self._step_index)
+        if external_torque is not None:
+            ext += _per_scenario("external_torque", external_torque, n_scen, n_joints)
+            touched = True
+        if not self._started:
+            self._start(targets[0])
+        self._apply_events(self._step_index)
+        self._advance(targets[0], ext[0] if touched else None, have_first=False)
+        self._apply_events(self._step_index)
+        obs = self._observe(targets[0], ext[0, 2] if touched else None, clamped)
+        return StepState(
+            t=self.t, **{k: np.array(obs[k].T) for k in StepState.__dataclass_fields__ if k != "t"}
+        )
+
+    def run(
+        self,
+        equilibrium,
+        stiffness,
+        damping=None,
+        decimation: int = 1,
+    ) -> SimResult:
+        """Run whole command arrays from the current state (see :func:`simulate`)."""
+        n_joints, n_scen = self._y.shape[1:]
+        if not isinstance(decimation, int) or isinstance(decimation, bool) or decimation < 1:
+            raise InvalidInputError(f"decimation = {decimation!r}: expected an integer >= 1")
+        commands = [
+            _commands("equilibrium", equilibrium, n_joints),
+            _commands("stiffness", stiffness, n_joints, 0.0),
+            None if damping is None else _commands("damping", damping, n_joints, 0.0),
+        ]
+        n_steps = commands[0].shape[0]
+        for name, arr in zip(("equilibrium", "stiffness", "damping"), commands, strict=True):
+            if arr is None:
+                continue
+            if arr.shape[0] != n_steps or (arr.ndim == 3 and arr.shape[1] != n_scen):
+                raise InvalidInputError(
+                    f"{name}: shape {arr.shape} does not match {n_steps} steps and "
+                    f"{n_scen} scenarios"
+                )
+        n_rec = n_steps // decimation + 1
+        # recorded joint-major like the state; turned to (n_rec, n_scen, n_joints) once at the end
+        record = {
+            name: np.zeros((n_rec, n_joints, n_scen), dtype=bool if name in _BOOLEAN else float)
+            for name in _CHANNELS
+        }
+        actuators = np.zeros((n_rec, self._kernel.n_actuators, n_joints, n_scen))
+        counts = {name: np.zeros((n_scen, n_joints), dtype=np.int64)
+                  for name in self._kernel.clamp_names}
+        ext_chunk = np.zeros((_CHUNK_STEPS, 3, n_joints, n_scen))
+        first = self._step_index
+        have_first = False
+        targets = ext = clamped = None
+        for k0 in range(0, n_steps, _CHUNK_STEPS):
+            k1 = min(k0 + _CHUNK_STEPS, n_steps)
+            chunk_targets, flags = self._targets(
+                *(_chunk_commands(arr, k0, k1) for arr in commands)
+            )
+            any_clamped = np.logical_or.reduce(list(flags.values()))
+            for name, flag in flags.items():
+                counts[name] += np.broadcast_to(flag.sum(axis=0), (n_joints, n_scen)).T
+            ext_chunk.fill(0.0)
+            touched = self._perturb.fill_torque(ext_chunk[: k1 - k0], first + k0)
+            if not self._started:
+                self._start(chunk_targets[0])
+            for c in range(k1 - k0):
+                k = k0 + c
+                targets, clamped = chunk_targets[c], any_clamped[c]
+                ext = ext_chunk[c] if touched else None
+                self._apply_events(first + k)
+                have_first = k % decimation == 0
+                if have_first:
+                    stage = None if ext is None else ext[0]
+                    self._record(record, actuators, k // decimation, targets, stage, clamped)
+                self._advance(targets, ext, have_first)
+        if n_steps % decimation == 0:
+            self._apply_events(first + n_steps)
+            stage = None if ext is None else ext[2]
+            self._record(record, actuators, n_rec - 1, targets, stage, clamped)
+        # transposed views: a copy would cost more than the run's recording itself
+        record = {name: arr.transpose(0, 2, 1) for name, arr in record.items()}
+        actuators = actuators.transpose(0, 1, 3, 2)
+        energy = EnergyTraces(
+            **{name: record[name] for name in EnergyTraces.__dataclass_fields__
+               if name != "initial_total"},
+            initial_total=np.array(self._initial_total.T),
+        )
+        return SimResult(
+            t=(first + np.arange(n_rec) * decimation) * self.dt,
+            **{name: record[name] for name in SimResult.__dataclass_fields__ if name in record},
+            actuators=actuators,
+            clamp_counts=counts,
+            energy=energy,
+            dt=self.dt,
+            decimation=decimation,
+            method=self.method,
+            joint_names=tuple(j.name for j in self.joints),
+        )
+
+    def _record(self, record, actuators, row, targets, ext, clamped) -> None:
+        obs = self._observe(targets, ext, clamped)
+        for name, value in obs.items():
+            record[name][row] = value
+        actuators[row] = self._kernel.actuator_output(self._y[2 : self._n_dyn])
+
+
+def simulate(
+    joints: Sequence[JointParams],
+    mechanism: MechanismLike | Sequence[MechanismLike],
+    equilibrium,
+    stiffness,
+    damping=None,
+    schedules: Sequence[PerturbationSchedule] | None = None,
+    q0=None,
+    dq0=None,
+    dt: float = 1e-3,
+    method: str = "rk4",
+    decimation: int = 1,
+    seed: int | None = None,
+    check_stability: bool = True,
+) -> SimResult:
+    """Simulate a batch of perturbed scenarios under zero-order-held commands.
+
+    Parameters
+    ----------
+    joints : joint parameters, one per joint
+    mechanism : mechanism record shared by the joints, or one per joint
+    equilibrium : (n_steps, n_joints) shared or (n_steps, n_scen, n_joints) array, rad;
+        row k is held over [k*dt, (k+1)*dt)
+    stiffness : same layout, N*m/rad (>= 0; clamped to the mechanism's range and reported)
+    damping : same layout, N*m*s/rad, or None (ideal mechanism: its lowest damping)
+    schedules : one :class:`PerturbationSchedule` per scenario; n_scen = len(schedules), else
+        the scenario axis of 3-D commands, else 1
+    q0, dq0 : initial angle, rad, and velocity, rad/s (see :class:`Simulator`)
+    dt : step, s; method : "rk4" | "symplectic_euler" | "explicit_euler"
+    decimation : record every ``decimation`` steps (n_rec = n_steps // decimation + 1)
+    seed : seeds sensor noise and unseeded random torques
+    check_stability : raise UnstableStepError when ``dt`` is above the largest stable step
+
+    Returns
+    -------
+    SimResult
+    """
+    n_scen = 1
+    for arr in (equilibrium, stiffness, damping):
+        if arr is not None and np.ndim(arr) == 3:
+            n_scen = np.shape(arr)[1]
+    if schedules is not None:
+        schedules = list(schedules)
+        n_scen = len(schedules)
+        if n_scen == 0:
+            raise InvalidInputError("schedules: empty; give one schedule per scenario or None")
+    n_steps = np.shape(equilibrium)[0] if np.ndim(equilibrium) >= 1 else 0
+    sim = Simulator(
+        joints, mechanism, n_scenarios=n_scen, dt=dt, method=method, q0=q0, dq0=dq0,
+        schedules=schedules, seed=seed, check_stability=check_stability, horizon_steps=n_steps,
+    )
+    return sim.run(equilibrium, stiffness, damping, decimation=decimation)

@@ -1,0 +1,372 @@
+"""Stiffness mechanisms: from (equilibrium, stiffness, damping) commands to torque on the link.
+
+Each mechanism turns commands into actuator targets (clamping what it cannot realise and saying
+so), moves its actuator states towards them (first-order lag with a rate limit), and gives the
+torque it puts on the link, its spring energy and the stiffness it realises at the current state.
+Arrays are laid out joint-major, ``(..., n_joints, n_scenarios)``, with per-joint parameters as
+``(n_joints, 1)`` columns, so every operation broadcasts along the long scenario axis. The
+antagonistic closed forms are public for tests and tools.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import AntagonisticParams, IdealImpedanceParams
+
+__all__ = [
+    "antagonistic_motor_angles",
+    "antagonistic_torque",
+    "antagonistic_stiffness",
+    "make_mechanism",
+    "Mechanism",
+    "IdealImpedance",
+    "Antagonistic",
+]
+
+MechanismLike = IdealImpedanceParams | AntagonisticParams
+
+
+def _column(records: Sequence[object], name: str) -> np.ndarray:
+    return np.array([[float(getattr(r, name))] for r in records])
+
+
+def _spring_tension(elongation: np.ndarray, k1: np.ndarray, k2: np.ndarray) -> np.ndarray:
+    taut = np.maximum(elongation, 0.0)
+    return (k1 + k2 * taut) * taut
+
+
+def antagonistic_motor_angles(
+    params: AntagonisticParams, equilibrium: np.ndarray | float, stiffness: np.ndarray | float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Closed-form inverse map from (equilibrium, stiffness) to the two motor angles.
+
+    Parameters
+    ----------
+    params : the mechanism
+    equilibrium : array, rad; commanded link equilibrium
+    stiffness : array (broadcastable), N*m/rad; commanded joint stiffness
+
+    Returns
+    -------
+    theta1, theta2 : arrays, rad; motor angles within [motor_lower, motor_upper]
+    equilibrium_clamped, stiffness_clamped : bool arrays; command changed to fit the ranges
+
+    Notes
+    -----
+    With elongations phi1 = theta1 - q + d0 and phi2 = q - theta2 + d0, equal tensions at
+    q = equilibrium need phi1 = phi2 = phi, and the joint stiffness is 2*k1 + 4*k2*phi
+    (Migliore, Brown, DeWeerth, ICRA 2005). So phi = (K - 2*k1) / (4*k2),
+    theta1 = equilibrium + phi - d0, theta2 = equilibrium - phi + d0. Stiffness is clamped to
+    [stiffness_min, stiffness_max] and to what the motor range allows; then the equilibrium is
+    clamped so both motors stay in range.
+    """
+    k = Antagonistic([params])
+    eq = np.asarray(equilibrium, dtype=float)
+    stiff = np.asarray(stiffness, dtype=float)
+    shape = np.broadcast_shapes(eq.shape, stiff.shape)
+    s1, s2, eq_flag, k_flag = k.motor_targets(
+        np.broadcast_to(eq, shape).reshape(1, -1), np.broadcast_to(stiff, shape).reshape(1, -1)
+    )
+    d0 = params.pretension_offset
+    return (
+        (s1 - d0).reshape(shape),
+        (s2 + d0).reshape(shape),
+        eq_flag.reshape(shape),
+        k_flag.reshape(shape),
+    )
+
+
+def antagonistic_torque(
+    params: AntagonisticParams, q: np.ndarray | float, theta1: np.ndarray, theta2: np.ndarray
+) -> np.ndarray:
+    """Torque of the two tension-only springs on the link, N*m (positive pulls towards theta1)."""
+    d0 = params.pretension_offset
+    t1 = _spring_tension(np.asarray(theta1) - q + d0, params.k1, params.k2)
+    t2 = _spring_tension(q - np.asarray(theta2) + d0, params.k1, params.k2)
+    return t1 - t2
+
+
+def antagonistic_stiffness(
+    params: AntagonisticParams, q: np.ndarray | float, theta1: np.ndarray, theta2: np.ndarray
+) -> np.ndarray:
+    """Joint stiffness -d(torque)/dq at the state, N*m/rad; a slack spring adds nothing."""
+    d0 = params.pretension_offset
+    total = np.zeros(np.broadcast_shapes(np.shape(q), np.shape(theta1), np.shape(theta2)))
+    for phi in (np.asarray(theta1) - q + d0, q - np.asarray(theta2) + d0):
+        total = total + np.where(phi > 0, params.k1 + 2 * params.k2 * phi, 0.0)
+    return total
+
+
+class Mechanism:
+    """Common interface of the batched mechanism kernels (internal to the simulator).
+
+    Attributes
+    ----------
+    n_actuators : actuator state rows
+    n_targets : target rows per step (actuator targets first)
+    """
+
+    n_actuators = 0
+    n_targets = 0
+    clamp_names: tuple[str, ...] = ()
+
+    def __init__(self, records: Sequence[MechanismLike]) -> None:
+        self.records = list(records)
+        self.time_constant = np.zeros((len(self.records), 1))
+        self.rate_limit = np.zeros((self.n_actuators, len(self.records), 1))
+
+    def expand(self, n_scenarios: int) -> None:
+        """Lay out the parameters the integration loop reads as full ``(J, S)`` arrays.
+
+        Same-shape operations run about twice as fast as ones broadcasting a ``(J, 1)`` column.
+        """
+        shape = (self.n_actuators, len(self.records), n_scenarios)
+        self._inv_time_constant = np.broadcast_to(1.0 / self.time_constant, shape).copy()
+        self._rate = np.broadcast_to(self.rate_limit, shape).copy()
+        self._neg_rate = -self._rate
+
+    def command_targets(
+        self, equilibrium: np.ndarray, stiffness: np.ndarray, damping: np.ndarray | None
+    ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """Targets ``(C, n_targets, J, S)`` and clamp flags ``{name: (C, J, S) bool}``.
+
+        Inputs are ``(C, J, S)`` (S may be 1 for commands shared by all scenarios).
+        """
+        raise NotImplementedError
+
+    def actuator_rates(self, act: np.ndarray, targets: np.ndarray, out: np.ndarray) -> None:
+        """First-order lag towards the targets with a rate limit, written into ``out``."""
+        np.subtract(targets[: self.n_actuators], act, out=out)
+        out *= self._inv_time_constant
+        np.minimum(out, self._rate, out=out)
+        np.maximum(out, self._neg_rate, out=out)
+
+    def link_torque(
+        self,
+        q: np.ndarray,
+        dq: np.ndarray,
+        act: np.ndarray,
+        targets: np.ndarray,
+        spring_out: np.ndarray,
+        damping_out: np.ndarray,
+    ) -> bool:
+        """Write the spring and damping torques on the link; return False if damping is zero."""
+        raise NotImplementedError
+
+    def potential(self, q: np.ndarray, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        """Energy stored in the mechanism's springs, J."""
+        raise NotImplementedError
+
+    def stiffness(self, q: np.ndarray, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        """Stiffness realised at the state, N*m/rad."""
+        raise NotImplementedError
+
+    def set_stiffness(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        """Stiffness the actuators are set to (independent of the link angle), N*m/rad."""
+        raise NotImplementedError
+
+    def damping(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        """Damping realised, N*m*s/rad."""
+        raise NotImplementedError
+
+    def equilibrium(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        """Link angle of zero spring torque the actuators are set to, rad."""
+        raise NotImplementedError
+
+    def highest_stiffness(self, torque_limit: np.ndarray) -> np.ndarray:
+        """Stiffest realisable state per joint (n_joints,), N*m/rad, for the stability check."""
+        raise NotImplementedError
+
+    def actuator_output(self, act: np.ndarray) -> np.ndarray:
+        """Actuator states as reported (``SimResult.actuators``)."""
+        return act
+
+    def damping_range(self) -> tuple[np.ndarray, np.ndarray]:
+        """Lowest and highest mechanism damping per joint, N*m*s/rad."""
+        zeros = np.zeros(len(self.records))
+        return zeros, zeros
+
+
+class IdealImpedance(Mechanism):
+    """Ideal variable impedance: realised stiffness and damping lag their clamped commands.
+
+    Targets rows: stiffness, damping, equilibrium; actuator rows: stiffness, damping.
+    """
+
+    n_actuators = 2
+    n_targets = 3
+    clamp_names = ("stiffness", "damping")
+
+    def __init__(self, records: Sequence[IdealImpedanceParams]) -> None:
+        super().__init__(records)
+        self.k_min = _column(records, "stiffness_min")
+        self.k_max = _column(records, "stiffness_max")
+        self.d_min = _column(records, "damping_min")
+        self.d_max = _column(records, "damping_max")
+        self.time_constant = _column(records, "time_constant")
+        self.rate_limit = np.stack(
+            [_column(records, "stiffness_rate_limit"), _column(records, "damping_rate_limit")]
+        )
+        self._deflection = np.empty(0)
+
+    def command_targets(self, equilibrium, stiffness, damping):
+        if damping is None:
+            damping = np.broadcast_to(self.d_min, stiffness.shape)
+        k = np.clip(stiffness, self.k_min, self.k_max)
+        d = np.clip(damping, self.d_min, self.d_max)
+        shape = np.broadcast_shapes(k.shape, d.shape, equilibrium.shape)
+        targets = np.empty((shape[0], 3, *shape[1:]))
+        targets[:, 0], targets[:, 1], targets[:, 2] = k, d, equilibrium
+        flags = {"stiffness": k != stiffness, "damping": d != damping}
+        return targets, flags
+
+    def link_torque(self, q, dq, act, targets, spring_out, damping_out):
+        np.subtract(targets[2], q, out=spring_out)
+        spring_out *= act[0]
+        np.multiply(act[1], dq, out=damping_out)
+        np.negative(damping_out, out=damping_out)
+        return True
+
+    def potential(self, q, act, targets):
+        return 0.5 * act[0] * (q - targets[2]) ** 2
+
+    def stiffness(self, q, act, targets):
+        return np.broadcast_to(act[0], np.broadcast_shapes(np.shape(q), act[0].shape)).copy()
+
+    def set_stiffness(self, act, targets):
+        return act[0].copy()
+
+    def damping(self, act, targets):
+        return act[1].copy()
+
+    def equilibrium(self, act, targets):
+        return np.broadcast_to(targets[2], act[0].shape).copy()
+
+    def highest_stiffness(self, torque_limit):
+        return self.k_max[:, 0]
+
+    def damping_range(self):
+        return self.d_min[:, 0], self.d_max[:, 0]
+
+
+class Antagonistic(Mechanism):
+    """Antagonistic pair of tension-only springs k1*phi + k2*phi^2 on two position-servoed motors.
+
+    Internally the motor rows hold s1 = theta1 + d0 and s2 = theta2 - d0, so the elongations
+    are s1 - q and q - s2 without extra operations in the integration loop.
+    """
+
+    n_actuators = 2
+    n_targets = 2
+    clamp_names = ("equilibrium", "stiffness")
+
+    def __init__(self, records: Sequence[AntagonisticParams]) -> None:
+        super().__init__(records)
+        self.k1 = _column(records, "k1")
+        self.k2 = _column(records, "k2")
+        self.d0 = _column(records, "pretension_offset")
+        self.k_min = _column(records, "stiffness_min")
+        self.k_max = _column(records, "stiffness_max")
+        self.lower = _column(records, "motor_lower")
+        self.upper = _column(records, "motor_upper")
+        self.time_constant = _column(records, "motor_time_constant")
+        speed = _column(records, "motor_speed_limit")
+        self.rate_limit = np.stack([speed, speed])
+
+    def expand(self, n_scenarios: int) -> None:
+        super().expand(n_scenarios)
+        shape = (len(self.records), n_scenarios)
+        self._k1 = np.broadcast_to(self.k1, shape).copy()
+        self._k2 = np.broadcast_to(self.k2, shape).copy()
+        self._phi1, self._phi2 = np.empty(shape), np.empty(shape)
+
+    def motor_targets(
+        self, equilibrium: np.ndarray, stiffness: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Internal motor rows (s1, s2) and clamp flags for ``(..., J, S)`` commands."""
+        k = np.clip(stiffness, self.k_min, self.k_max)
+        phi = (k - 2 * self.k1) / (4 * self.k2)
+        half_range = 0.5 * (self.upper - self.lower)
+        phi_fit = np.clip(phi, self.d0 - half_range, self.d0 + half_range)
+        stiffness_clamped = (k != stiffness) | (phi_fit != phi)
+        excess = np.abs(phi_fit - self.d0)
+        eq = np.clip(equilibrium, self.lower + excess, self.upper - excess)
+        return eq + phi_fit, eq - phi_fit, eq != equilibrium, stiffness_clamped
+
+    def command_targets(self, equilibrium, stiffness, damping):
+        s1, s2, eq_flag, k_flag = self.motor_targets(equilibrium, stiffness)
+        return np.stack([s1, s2], axis=1), {"equilibrium": eq_flag, "stiffness": k_flag}
+
+    def link_torque(self, q, dq, act, targets, spring_out, damping_out):
+        # t(p1) - t(p2) = (p1 - p2) * (k1 + k2*(p1 + p2)) for t(p) = k1*p + k2*p^2: fewer passes
+        phi1, phi2 = self._phi1, self._phi2
+        np.subtract(act[0], q, out=phi1)
+        np.maximum(phi1, 0.0, out=phi1)
+        np.subtract(q, act[1], out=phi2)
+        np.maximum(phi2, 0.0, out=phi2)
+        np.add(phi1, phi2, out=spring_out)
+        spring_out *= self._k2
+        spring_out += self._k1
+        phi1 -= phi2
+        spring_out *= phi1
+        return False
+
+    def _elongations(self, q, act):
+        return np.maximum(act[0] - q, 0.0), np.maximum(q - act[1], 0.0)
+
+    def potential(self, q, act, targets):
+        total = 0.0
+        for phi in self._elongations(q, act):
+            total = total + phi**2 * (0.5 * self.k1 + self.k2 / 3.0 * phi)
+        return total
+
+    def stiffness(self, q, act, targets):
+        total = 0.0
+        for phi in self._elongations(q, act):
+            total = total + np.where(phi > 0, self.k1 + 2 * self.k2 * phi, 0.0)
+        return total
+
+    def set_stiffness(self, act, targets):
+        return 2 * self.k1 + 2 * self.k2 * (act[0] - act[1])
+
+    def damping(self, act, targets):
+        return np.zeros_like(act[0])
+
+    def equilibrium(self, act, targets):
+        return 0.5 * (act[0] + act[1])
+
+    def actuator_output(self, act: np.ndarray) -> np.ndarray:
+        """Motor angles (theta1, theta2) from the internal rows, rad."""
+        return np.stack([act[0] - self.d0, act[1] + self.d0])
+
+    def highest_stiffness(self, torque_limit):
+        # beyond the taut range only one spring carries the load; its local stiffness at the
+        # elongation that gives torque_limit bounds it while the link torque stays in the limit
+        k1, k2 = self.k1[:, 0], self.k2[:, 0]
+        phi_limit = (-k1 + np.sqrt(k1**2 + 4 * k2 * torque_limit)) / (2 * k2)
+        return np.maximum(self.k_max[:, 0], k1 + 2 * k2 * phi_limit)
+
+
+def make_mechanism(
+    mechanism: MechanismLike | Sequence[MechanismLike], n_joints: int
+) -> Mechanism:
+    """Kernel for one mechanism record (shared by all joints) or one record per joint."""
+    records = [mechanism] * n_joints if isinstance(mechanism, MechanismLike) else list(mechanism)
+    if len(records) != n_joints:
+        raise InvalidInputError(
+            f"mechanism: got {len(records)} records for {n_joints} joints; "
+            "give one shared record or one per joint"
+        )
+    kinds = {type(r) for r in records}
+    if kinds == {IdealImpedanceParams}:
+        return IdealImpedance(records)
+    if kinds == {AntagonisticParams}:
+        return Antagonistic(records)
+    raise InvalidInputError(
+        f"mechanism: expected IdealImpedanceParams or AntagonisticParams records of one kind, "
+        f"got {sorted(k.__name__ for k in kinds)}"
+    )

@@ -1,0 +1,221 @@
+"""Perturbation schedules compiled onto the integration grid of a batch of scenarios.
+
+Torque kinds become :class:`TorqueTerm` objects (a profile over a span of steps that fills
+chunks of the stage-time torque array); walls, holds and instantaneous impulses become events at
+step indexes. The reference integrator reads the same compiled terms, so both see identical
+perturbations.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.perturbation import (
+    Impulse,
+    PerturbationSchedule,
+    RandomTorque,
+    Sinusoid,
+    TorqueStep,
+    TorqueWindow,
+    Wall,
+    random_torque_coefficients,
+    random_torque_value,
+    step_span,
+)
+
+__all__ = ["TorqueTerm", "WallSpec", "CompiledSchedules", "compile_schedules", "STAGE_OFFSETS"]
+
+# stage times of one step as fractions of the step, shared by all methods (RK4 needs all three)
+STAGE_OFFSETS = np.array([0.0, 0.5, 1.0])
+
+
+@dataclass(frozen=True)
+class TorqueTerm:
+    """A time-dependent torque on one joint of one scenario during steps [start, stop).
+
+    ``profile(t)`` gives the torque, N*m, at times ``t`` since the (snapped) onset, s.
+    """
+
+    scenario: int
+    joint: int
+    start: int
+    stop: int
+    profile: Callable[[np.ndarray], np.ndarray]
+
+
+@dataclass(frozen=True)
+class WallSpec:
+    """A wall on one joint of one scenario during steps [start, stop).
+
+    With ``relative`` the surface is ``position`` from the link angle at the start step.
+    """
+
+    scenario: int
+    joint: int
+    start: int
+    stop: int
+    position: float
+    side: int
+    stiffness: float
+    damping: float
+    layer: int
+    relative: bool = False
+
+
+@dataclass
+class CompiledSchedules:
+    """Everything a batch of schedules does, on the grid of step ``dt``.
+
+    Attributes
+    ----------
+    terms : time-dependent torques
+    walls : wall contacts, each in a layer so no two walls of a layer share a joint
+    holds : (scenario, joint, start, stop) tuples
+    impulses : (scenario, joint, step, angular impulse N*m*s) velocity jumps
+    """
+
+    dt: float
+    n_scenarios: int
+    n_joints: int
+    terms: list[TorqueTerm] = field(default_factory=list)
+    walls: list[WallSpec] = field(default_factory=list)
+    holds: list[tuple[int, int, int, int]] = field(default_factory=list)
+    impulses: list[tuple[int, int, int, float]] = field(default_factory=list)
+
+    @property
+    def n_wall_layers(self) -> int:
+        return 1 + max((w.layer for w in self.walls), default=-1)
+
+    def wall_stiffness(self) -> tuple[np.ndarray, np.ndarray]:
+        """Stiffest wall per joint and the damping of the most damped one, (n_joints,) each."""
+        k = np.zeros(self.n_joints)
+        b = np.zeros(self.n_joints)
+        for w in self.walls:
+            k[w.joint] = max(k[w.joint], w.stiffness)
+            b[w.joint] = max(b[w.joint], w.damping)
+        return k, b
+
+    def fill_torque(self, out: np.ndarray, first_step: int) -> bool:
+        """Add term torques at stage times into ``out`` ``(C, 3, n_joints, n_scenarios)``.
+
+        Returns False (leaving ``out`` untouched) when no term overlaps the chunk.
+        """
+        n_chunk = out.shape[0]
+        last = first_step + n_chunk
+        touched = False
+        for term in self.terms:
+            a, b = max(term.start, first_step), min(term.stop, last)
+            if a >= b:
+                continue
+            t = (np.arange(a, b)[:, None] - term.start + STAGE_OFFSETS) * self.dt
+            out[a - first_step : b - first_step, :, term.joint, term.scenario] += term.profile(t)
+            touched = True
+        return touched
+
+    def torque_at(self, scenario: int, t: float, step: int) -> np.ndarray:
+        """Term torques (n_joints,) of one scenario at time ``t`` inside step ``step``, N*m."""
+        total = np.zeros(self.n_joints)
+        for term in self.terms:
+            if term.scenario == scenario and term.start <= step < term.stop:
+                total[term.joint] += float(term.profile(np.array(t - term.start * self.dt)))
+        return total
+
+
+def _constant(value: float) -> Callable[[np.ndarray], np.ndarray]:
+    return lambda t: np.full(np.shape(t), value)
+
+
+def _window(value: float, ramp: float, length: float) -> Callable[[np.ndarray], np.ndarray]:
+    def profile(t: np.ndarray) -> np.ndarray:
+        if ramp == 0:
+            return np.full(np.shape(t), value)
+        edge = np.clip(np.minimum(t, length - t) / ramp, 0.0, 1.0)
+        return value * 0.5 * (1.0 - np.cos(np.pi * edge))
+
+    return profile
+
+
+def _sine(amplitude: float, frequency: float, phase: float) -> Callable[[np.ndarray], np.ndarray]:
+    return lambda t: amplitude * np.sin(2 * np.pi * frequency * t + phase)
+
+
+def compile_schedules(
+    schedules: Sequence[PerturbationSchedule] | None,
+    n_scenarios: int,
+    joint_inertia: Sequence[float],
+    dt: float,
+    n_steps: int,
+    seed: int | None,
+) -> CompiledSchedules:
+    """Compile one schedule per scenario (or none) onto the grid of ``n_steps`` steps of ``dt``.
+
+    Random torques without their own seed draw from ``seed`` and the scenario and position
+    indexes, so each scenario's draw does not depend on the batch it runs in.
+    """
+    n_joints = len(joint_inertia)
+    compiled = CompiledSchedules(dt=dt, n_scenarios=n_scenarios, n_joints=n_joints)
+    if schedules is None:
+        return compiled
+    base_seed = seed if seed is not None else int(np.random.SeedSequence().entropy % 2**63)
+    layer_count: dict[tuple[int, int], int] = {}
+    for s, schedule in enumerate(schedules):
+        for i, p in enumerate(schedule.perturbations):
+            if p.joint >= n_joints:
+                raise InvalidInputError(
+                    f"schedules[{s}].perturbations[{i}].joint = {p.joint}: only {n_joints} "
+                    "joint(s) are simulated"
+                )
+            start, stop = step_span(p, dt, n_steps)
+            if isinstance(p, Impulse):
+                signed = p.sign * p.magnitude
+                if start == stop:
+                    compiled.impulses.append((s, p.joint, start, signed))
+                else:
+                    height = signed / ((stop - start) * dt)
+                    compiled.terms.append(TorqueTerm(s, p.joint, start, stop, _constant(height)))
+            elif isinstance(p, TorqueStep):
+                profile = _constant(p.sign * p.magnitude)
+                compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
+            elif isinstance(p, TorqueWindow):
+                length = (stop - start) * dt
+                ramp = min(p.ramp_s, 0.5 * length)
+                profile = _window(p.sign * p.magnitude, ramp, length)
+                compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
+            elif isinstance(p, Sinusoid):
+                if p.frequency_hz >= 0.5 / dt:
+                    raise InvalidInputError(
+                        f"schedules[{s}].perturbations[{i}].frequency_hz = {p.frequency_hz}: "
+                        f"at or above the Nyquist frequency {0.5 / dt} Hz of the step"
+                    )
+                profile = _sine(p.sign * p.magnitude, p.frequency_hz, p.phase_rad)
+                compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
+            elif isinstance(p, RandomTorque):
+                if p.bandwidth_hz >= 0.5 / dt:
+                    raise InvalidInputError(
+                        f"schedules[{s}].perturbations[{i}].bandwidth_hz = {p.bandwidth_hz}: "
+                        f"at or above the Nyquist frequency {0.5 / dt} Hz of the step"
+                    )
+                if stop == start:
+                    continue
+                rng = np.random.default_rng(p.seed if p.seed is not None else [base_seed, s, i])
+                freqs, coefs = random_torque_coefficients(p, (stop - start) * dt, rng)
+                compiled.terms.append(
+                    TorqueTerm(
+                        s, p.joint, start, stop,
+                        lambda t, f=freqs, c=coefs: random_torque_value(f, c, t),
+                    )
+                )
+            elif isinstance(p, Wall):
+                layer = layer_count.get((s, p.joint), 0)
+                layer_count[(s, p.joint)] = layer + 1
+                compiled.walls.append(
+                    WallSpec(s, p.joint, start, stop, p.position, p.sign, p.magnitude, p.damping,
+                             layer, p.relative)
+                )
+            elif stop > start:  # a hold; a zero-length one does nothing
+                compiled.holds.append((s, p.joint, start, stop))
+    return compiled
