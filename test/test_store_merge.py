@@ -1,0 +1,85 @@
+"""Merging store files: ids kept, identical demonstrations skipped, differing ones reported."""
+
+from __future__ import annotations
+
+import sqlite3
+
+import numpy as np
+import pytest
+from store_support import JOINTS, add_demo, integrity, samples
+
+from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreCorruptError
+from compliant_demo.store import DemoStore
+
+
+def test_merge_two_stores(tmp_path):
+    bench_a, bench_b = tmp_path / "bench_a.sqlite", tmp_path / "bench_b.sqlite"
+    with DemoStore(bench_a) as a, DemoStore(bench_b) as b:
+        own = add_demo(a, seed=1, operator="operator_a", tags=["press"])
+        theirs = add_demo(b, seed=2, operator="operator_b", tags=["soft", "press"])
+        shared = add_demo(b, seed=3)
+        changed = add_demo(b, seed=4)
+        recording = b.begin_demonstration(skill="cork_seat", joints=JOINTS)  # b stays open
+        b.append_chunk(recording, **samples(5))
+
+        report = a.merge_from(bench_b)
+        assert sorted(report.added) == sorted([theirs, shared, changed])
+        assert [(c.id, c.reason) for c in report.conflicts] == [
+            (recording, "still recording in the source")
+        ]
+        a.mark_status(changed, "rejected", reason="re-judged on bench a")
+
+        again = a.merge_from(bench_b)
+        assert again.added == []
+        assert sorted(again.skipped_duplicates) == sorted([theirs, shared])
+        assert {c.id: c.reason for c in again.conflicts} == {
+            recording: "still recording in the source",
+            changed: "differs in status",
+        }
+        merged = a.load_demonstration(theirs)
+        assert merged.info.tags == ("soft", "press") and merged.info.operator == "operator_b"
+        assert [i.id for i in a.find_demonstrations(tag="soft")] == [theirs]
+        assert a.get_info(changed).status == "rejected"
+        assert a.get_info(own).status == "complete"
+        original = b.load_demonstration(theirs)
+        for name in ("t", "position", "velocity", "torque", "stiffness"):
+            assert np.array_equal(getattr(merged, name), getattr(original, name))
+        assert merged.info.range_of_motion == original.info.range_of_motion
+        assert a.integrity_check() == ["ok"]
+        assert b.get_info(recording).n_samples == 5
+    assert integrity(bench_a) == integrity(bench_b) == "ok"
+
+
+def test_same_id_with_different_samples_is_a_conflict(tmp_path):
+    first, second = tmp_path / "first.sqlite", tmp_path / "second.sqlite"
+    with DemoStore(first) as a:
+        demo_id = add_demo(a, seed=1, start_time=1.7e9)
+    with DemoStore(second) as b:
+        data = samples(200, seed=1)
+        data["torque"] = data["torque"] + 1e-9
+        b.add_demonstration(
+            **data, skill="cork_seat", joints=JOINTS, operator="operator_a", start_time=1.7e9,
+            demo_id=demo_id,
+        )  # fmt: skip
+    with DemoStore(first) as a:
+        report = a.merge_from(second)
+        assert (report.added, report.skipped_duplicates) == ([], [])
+        assert [(c.id, c.reason) for c in report.conflicts] == [(demo_id, "differs in samples")]
+        assert np.array_equal(a.load_demonstration(demo_id).torque, samples(200, seed=1)["torque"])
+
+
+def test_merge_refuses_itself_missing_and_foreign_files(tmp_path):
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        add_demo(store)
+        with pytest.raises(InvalidInputError, match="cannot merge store .* into itself"):
+            store.merge_from(path)
+        with pytest.raises(NotFoundError, match="store file '.*missing.sqlite' does not exist"):
+            store.merge_from(tmp_path / "missing.sqlite")
+        assert store.integrity_check() == ["ok"]
+    foreign = tmp_path / "foreign.sqlite"
+    sqlite3.connect(foreign).execute("CREATE TABLE x (y)").connection.commit()
+    with DemoStore(path) as store:
+        with pytest.raises(StoreCorruptError, match="no schema_migrations table"):
+            store.merge_from(foreign)
+        assert len(list(store.find_demonstrations())) == 1
