@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from scipy import signal
@@ -472,18 +473,7 @@ class SlidingStiffnessEstimator:
 
 
 def estimate_stiffness_series(
-    t: object,
-    position: object,
-    torque: object,
-    *,
-    window_s: float,
-    noise_variance_ratio: float | np.ndarray,
-    band_hz: tuple[float, float] | None = None,
-    min_excitation_rad: float = 1e-4,
-    method: str = "tls",
-    order: int = 2,
-    model_damping: bool = True,
-    settle_s: float | None = None,
+    t: object, position: object, torque: object, **settings: Any
 ) -> StiffnessSeries:
     """Offline sliding-window stiffness over a whole demonstration.
 
@@ -493,9 +483,10 @@ def estimate_stiffness_series(
         Strictly increasing, equally spaced within 1 % (the rate is taken from the mean step).
     position : (n_samples, n_joints) array, rad
     torque : (n_samples, n_joints) array, N*m
-    window_s, noise_variance_ratio, band_hz, min_excitation_rad, method, order, model_damping,
-    settle_s
-        As for :class:`SlidingStiffnessEstimator`.
+    **settings
+        Keyword arguments of :class:`SlidingStiffnessEstimator` other than ``n_joints`` and
+        ``rate_hz``: ``window_s`` and ``noise_variance_ratio`` (required), ``band_hz``,
+        ``min_excitation_rad``, ``method``, ``order``, ``model_damping``, ``settle_s``.
 
     Returns
     -------
@@ -527,18 +518,7 @@ def estimate_stiffness_series(
         )
     tau = np.asarray(torque, dtype=float)
     tau = tau[:, None] if tau.ndim == 1 else tau
-    estimator = SlidingStiffnessEstimator(
-        q.shape[1],
-        window_s,
-        1.0 / mean_step,
-        noise_variance_ratio,
-        band_hz=band_hz,
-        min_excitation_rad=min_excitation_rad,
-        method=method,
-        order=order,
-        model_damping=model_damping,
-        settle_s=settle_s,
-    )
+    estimator = SlidingStiffnessEstimator(q.shape[1], rate_hz=1.0 / mean_step, **settings)
     # Chunks of one window let the estimator refresh its sums exactly as it does online.
     parts = [
         estimator._update(

@@ -22,6 +22,14 @@ def _noisy_line(seed, n=2000, stiffness=40.0, intercept=0.3, x_std=0.01, u_std=0
     return x, y, (e_std / u_std) ** 2
 
 
+def _odr(model, x, y, n_params, weight_x):
+    start = np.zeros(n_params)
+    start[0] = 1.0
+    return odrpack.odr_fit(
+        model, x, y, start, weight_x=weight_x, weight_y=1.0, sstol=1e-14, partol=1e-14
+    )
+
+
 def test_noise_free_line_is_exact_for_both_methods():
     x = np.linspace(-0.02, 0.03, 50)
     y = 25.0 * x - 0.4
@@ -39,16 +47,7 @@ def test_tls_agrees_with_odrpack(seed):
     fit = tls_fit(x, y, ratio)
     # Reference: odrpack (ODRPACK95 wrapper) orthogonal distance regression with weights equal
     # to inverse noise variances: weight_x / weight_y = ratio reproduces Deming regression.
-    result = odrpack.odr_fit(
-        lambda xs, beta: beta[0] * xs + beta[1],
-        x,
-        y,
-        np.array([1.0, 0.0]),
-        weight_x=ratio,
-        weight_y=1.0,
-        sstol=1e-14,
-        partol=1e-14,
-    )
+    result = _odr(lambda xs, beta: beta[0] * xs + beta[1], x, y, 2, ratio)
     assert fit.stiffness == pytest.approx(result.beta[0], rel=1e-6)
     assert fit.intercept == pytest.approx(result.beta[1], rel=1e-6, abs=1e-8)
 
@@ -64,16 +63,8 @@ def test_tls_with_rate_agrees_with_odrpack_two_regressors():
     fit = tls_fit(x, y, ratio, deflection_rate=v)
     # Reference: odrpack with the rate as a second explanatory variable whose weight is huge
     # (an error-free regressor), the model Fuller (1987, section 2.2) treats by partialling out.
-    result = odrpack.odr_fit(
-        lambda xs, beta: beta[0] * xs[0] + beta[1] * xs[1] + beta[2],
-        np.vstack([x, v]),
-        y,
-        np.array([1.0, 0.0, 0.0]),
-        weight_x=np.array([ratio, 1e12]),
-        weight_y=1.0,
-        sstol=1e-14,
-        partol=1e-14,
-    )
+    model = lambda xs, beta: beta[0] * xs[0] + beta[1] * xs[1] + beta[2]  # noqa: E731
+    result = _odr(model, np.vstack([x, v]), y, 3, np.array([ratio, 1e12]))
     assert fit.stiffness == pytest.approx(result.beta[0], rel=1e-5)
     assert fit.intercept == pytest.approx(result.beta[2], rel=1e-4, abs=1e-6)
 

@@ -1,0 +1,179 @@
+"""Tests of the simulated kinesthetic teaching and of stiffness recovery from it."""
+
+import numpy as np
+import pytest
+
+from compliant_demo.estimation import SlidingStiffnessEstimator, estimate_stiffness_series
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.teaching import (
+    TeachingScenario,
+    TeachingStream,
+    cork_seat_scenario,
+    simulate_teaching,
+    teaching_series,
+    windowed_truth,
+)
+
+NOISE_FREE = dict(position_noise_std=0.0, velocity_noise_std=0.0, torque_noise_std=0.0)
+
+
+@pytest.fixture(scope="module")
+def noise_free():
+    return simulate_teaching(cork_seat_scenario(**NOISE_FREE), seed=3)
+
+
+def test_measured_torque_is_the_hand_spring_damper(noise_free):
+    # The record's torque is the model's hand torque at every sample (no noise configured):
+    # tau = K_h (q_h - q) + D_h (dq_h - dq).
+    rec = noise_free
+    dq_h = np.gradient(rec.intended_position, rec.t, axis=0)
+    expected = rec.hand_stiffness_truth * (rec.intended_position - rec.position) + (
+        rec.hand_damping * (dq_h - rec.velocity)
+    )
+    np.testing.assert_allclose(rec.torque, expected, rtol=1e-12, atol=1e-12)
+
+
+def test_link_obeys_newton_with_hand_and_dither(noise_free):
+    # I q'' = tau_h + tau_d - b q' (gravity compensated, no stops reached, no Coulomb friction);
+    # checked by finite differences of the sampled state; tolerance covers the integration
+    # scheme (semi-implicit Euler with two substeps) and the finite difference, common practice.
+    rec = noise_free
+    scenario = cork_seat_scenario(**NOISE_FREE)
+    inertia = np.array([j.inertia for j in scenario.joints])
+    bearing = np.array([j.viscous_damping for j in scenario.joints])
+    accel = np.gradient(rec.velocity, rec.t, axis=0)
+    force = rec.torque + rec.dither_torque - bearing * rec.velocity
+    residual = inertia * accel[1:-1] - force[1:-1]
+    assert np.abs(residual).max() < 0.05 * np.abs(force).max()
+
+
+def test_task_is_soft_stiff_soft(noise_free):
+    k = noise_free.hand_stiffness_truth
+    n = len(k)
+    approach, press, retreat = k[: n // 4], k[int(0.5 * n) : int(0.6 * n)], k[-n // 5 :]
+    assert (press.min(axis=0) > 4 * approach.max(axis=0)).all()
+    assert (press.min(axis=0) > 4 * retreat.max(axis=0)).all()
+    assert noise_free.joint_names == ("shoulder", "elbow")
+    assert noise_free.skill == "cork_seat" and noise_free.operator == "operator_a"
+
+
+def test_dither_is_small_and_seeded(noise_free):
+    again = simulate_teaching(cork_seat_scenario(**NOISE_FREE), seed=3)
+    other = simulate_teaching(cork_seat_scenario(**NOISE_FREE), seed=4)
+    np.testing.assert_array_equal(again.dither_torque, noise_free.dither_torque)
+    assert np.abs(noise_free.dither_torque).max() <= 0.5 + 1e-12
+    assert not np.allclose(other.dither_torque[:100], noise_free.dither_torque[:100])
+
+
+def test_series_and_stream_reproduce_single_demos():
+    scenario = cork_seat_scenario(duration_s=1.0)
+    series = teaching_series(scenario, 3, seed=10)
+    durations = [rec.t[-1] for rec in series]
+    assert len(set(durations)) == 3
+    for index, rec in enumerate(series):
+        single = simulate_teaching(scenario, 10 + index)
+        np.testing.assert_array_equal(rec.position, single.position)
+        np.testing.assert_array_equal(rec.torque, single.torque)
+    stream = TeachingStream(scenario, seed=11, chunk_size=64)
+    chunks = list(stream)
+    assert [c.last for c in chunks] == [False] * (len(chunks) - 1) + [True]
+    assert all(c.t.size == 64 for c in chunks[:-1]) and stream.remaining == 0
+    assert chunks[3].start_index == 192
+    for field in ("t", "position", "velocity", "torque", "hand_stiffness_truth"):
+        joined = np.concatenate([getattr(c, field) for c in chunks])
+        np.testing.assert_array_equal(joined, getattr(series[1], field))
+
+
+def test_sensor_noise_levels():
+    scenario = cork_seat_scenario(duration_s=1.0)
+    noisy = simulate_teaching(scenario, seed=5)
+    clean = simulate_teaching(cork_seat_scenario(duration_s=1.0, **NOISE_FREE), seed=5)
+    # Same seed draws the same motion and dither, so the difference is the sensor noise only.
+    assert np.std(noisy.position - clean.position) == pytest.approx(2e-5, rel=0.05)
+    assert np.std(noisy.torque - clean.torque) == pytest.approx(0.005, rel=0.05)
+    assert scenario.noise_variance_ratio == pytest.approx((0.005 / 2e-5) ** 2)
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_estimator_recovers_hand_stiffness(seed):
+    scenario = cork_seat_scenario()
+    rec = simulate_teaching(scenario, seed)
+    settings = scenario.estimator_settings()
+    series = estimate_stiffness_series(rec.t, rec.position, rec.torque, **settings)
+    window = round(settings["window_s"] * scenario.rate_hz)
+    truth, variation = windowed_truth(rec.hand_stiffness_truth, window)
+    steady = series.excited & (variation < 0.1)
+    # Stated bound (also used by the recorder end-to-end test): over excited windows in which
+    # the true stiffness varies by less than 10 %, the relative error against the window mean
+    # of the ground truth has a median below 5 % and a 95th percentile below 15 %.
+    assert steady.mean() > 0.4
+    error = np.abs(series.stiffness[steady] - truth[steady]) / truth[steady]
+    assert np.median(error) < 0.05
+    assert np.percentile(error, 95) < 0.15
+    # The online estimator fed from the stream in 10-sample chunks gives the same numbers.
+    estimator = SlidingStiffnessEstimator(
+        len(scenario.joints), rate_hz=scenario.rate_hz, **settings
+    )
+    online = np.concatenate(
+        [estimator.update(c.position, c.torque)[0] for c in TeachingStream(scenario, seed)]
+    )
+    np.testing.assert_allclose(online, series.stiffness, rtol=1e-8, equal_nan=True)
+
+
+def test_windowed_truth_closed_form():
+    truth = np.column_stack([np.arange(1.0, 7.0)])
+    mean, variation = windowed_truth(truth, 3)
+    np.testing.assert_allclose(mean[2:, 0], [2, 3, 4, 5])
+    np.testing.assert_allclose(variation[2:, 0], [2, 1, 2 / 3, 0.5])
+    assert np.isnan(mean[:2]).all() and np.isinf(variation[:2]).all()
+
+
+# ----- bad input -----
+
+
+def test_error_waypoint_fractions():
+    with pytest.raises(InvalidInputError, match="waypoint time fractions must increase"):
+        cork_seat_scenario(
+            waypoints=[
+                {"time_fraction": 0.0, "position": [0, 0], "hand_stiffness": [1, 1]},
+                {"time_fraction": 0.5, "position": [0, 0], "hand_stiffness": [1, 1]},
+            ]
+        )
+
+
+def test_error_waypoint_joint_count():
+    with pytest.raises(InvalidInputError, match=r"waypoints\[1\] gives 1 positions"):
+        cork_seat_scenario(
+            waypoints=[
+                {"time_fraction": 0.0, "position": [0, 0], "hand_stiffness": [1, 1]},
+                {"time_fraction": 1.0, "position": [0], "hand_stiffness": [1, 1]},
+            ]
+        )
+
+
+def test_error_duplicate_joint_names_and_damping():
+    with pytest.raises(InvalidInputError, match="joint names must be distinct"):
+        cork_seat_scenario(joints=[{"name": "elbow"}, {"name": "elbow"}])
+    with pytest.raises(InvalidInputError, match=r"hand_damping = \[0.3\] needs 2"):
+        cork_seat_scenario(hand_damping=[0.3])
+
+
+def test_error_dither_near_nyquist_and_numbers():
+    with pytest.raises(InvalidInputError, match="dither_frequency_hz = 200.0 is too close"):
+        cork_seat_scenario(dither_frequency_hz=200.0)
+    with pytest.raises(InvalidInputError, match="'duration_s' = 0"):
+        cork_seat_scenario(duration_s=0)
+    with pytest.raises(InvalidInputError, match="'duration_s' = nan"):
+        cork_seat_scenario(duration_s=float("nan"))
+
+
+def test_error_seed_count_chunk():
+    scenario = TeachingScenario(duration_s=0.2)
+    with pytest.raises(InvalidInputError, match="seed must be a non-negative integer, got -1"):
+        simulate_teaching(scenario, -1)
+    with pytest.raises(InvalidInputError, match="n_demos must be a positive integer, got 0"):
+        teaching_series(scenario, 0, seed=1)
+    with pytest.raises(InvalidInputError, match="chunk_size must be a positive integer, got 0"):
+        TeachingStream(scenario, 1, chunk_size=0)
+    with pytest.raises(InvalidInputError, match="window = 0 must be between 1"):
+        windowed_truth(np.ones((5, 1)), 0)
