@@ -181,56 +181,60 @@ def _band_limits(n: int, m: int, radius: int) -> tuple[np.ndarray, np.ndarray]:
 @numba.njit(cache=True, nogil=True)
 def _dtw_kernel(a, b, lower, upper):  # pragma: no cover - compiled; tested through dtw()
     n = a.shape[0]
+    m = b.shape[0]
     dims = a.shape[1]
     width = 0
     for i in range(n):
         width = max(width, upper[i] - lower[i] + 1)
-    acc = np.empty((n, width))
+    # Two rolling rows indexed by column + 1 (slot 0 is column -1) and one step code per band
+    # cell (0 diagonal, 1 from (i-1, j), 2 from (i, j-1)) for path recovery.
+    steps = np.empty((n, width), dtype=np.int8)
+    prev = np.full(m + 2, np.inf)
+    cur = np.full(m + 2, np.inf)
     for i in range(n):
         lo = lower[i]
-        for j in range(lo, upper[i] + 1):
+        hi = upper[i]
+        cur[lo] = np.inf
+        for j in range(lo, hi + 1):
             local = 0.0
             for d in range(dims):
                 diff = a[i, d] - b[j, d]
                 local += diff * diff
+            diag = prev[j]
+            up = prev[j + 1]
+            left = cur[j]
             if i == 0 and j == 0:
                 best = 0.0
+                code = 0
+            elif diag <= up and diag <= left:
+                best = diag
+                code = 0
+            elif up <= left:
+                best = up
+                code = 1
             else:
-                best = np.inf
-                if i > 0:
-                    plo = lower[i - 1]
-                    phi = upper[i - 1]
-                    if j - 1 >= plo and j - 1 <= phi:
-                        best = acc[i - 1, j - 1 - plo]
-                    if j >= plo and j <= phi and acc[i - 1, j - plo] < best:
-                        best = acc[i - 1, j - plo]
-                if j > lo and acc[i, j - 1 - lo] < best:
-                    best = acc[i, j - 1 - lo]
-            acc[i, j - lo] = local + best
-    m_last = b.shape[0] - 1
-    total = acc[n - 1, m_last - lower[n - 1]]
-    path = np.empty((n + b.shape[0], 2), dtype=np.int64)
+                best = left
+                code = 2
+            cur[j + 1] = local + best
+            steps[i, j - lo] = code
+        # Cells the next row may read beyond this row's band must look unreachable.
+        reach = upper[i + 1] if i + 1 < n else hi
+        for j in range(hi + 1, reach + 1):
+            cur[j + 1] = np.inf
+        prev, cur = cur, prev
+    total = prev[m]
+    path = np.empty((n + m, 2), dtype=np.int64)
     i = n - 1
-    j = m_last
+    j = m - 1
     k = 0
     path[0, 0] = i
     path[0, 1] = j
     while i > 0 or j > 0:
-        diag = np.inf
-        up = np.inf
-        left = np.inf
-        if i > 0:
-            plo = lower[i - 1]
-            if j - 1 >= plo and j - 1 <= upper[i - 1]:
-                diag = acc[i - 1, j - 1 - plo]
-            if j >= plo and j <= upper[i - 1]:
-                up = acc[i - 1, j - plo]
-        if j > lower[i]:
-            left = acc[i, j - 1 - lower[i]]
-        if diag <= up and diag <= left:
+        code = steps[i, j - lower[i]]
+        if code == 0:
             i -= 1
             j -= 1
-        elif up <= left:
+        elif code == 1:
             i -= 1
         else:
             j -= 1
