@@ -1,0 +1,211 @@
+"""ROS 2 bag import/export through rosbags, on bags this test writes with rosbags' own writer in
+both the SQLite and the MCAP storage."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from rosbags.rosbag2 import StoragePlugin, Writer
+from rosbags.typesys import Stores, get_typestore
+from store_support import JOINTS
+
+from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.store import DemoStore
+from compliant_demo.store.bags import export_bag, import_bag
+
+TYPES = get_typestore(Stores.ROS2_HUMBLE)
+JointState = TYPES.types["sensor_msgs/msg/JointState"]
+Header = TYPES.types["std_msgs/msg/Header"]
+Time = TYPES.types["builtin_interfaces/msg/Time"]
+Float64MultiArray = TYPES.types["std_msgs/msg/Float64MultiArray"]
+MultiArrayLayout = TYPES.types["std_msgs/msg/MultiArrayLayout"]
+START_NS = 1_700_000_000_000_000_000
+STORAGES = {"sqlite3": StoragePlugin.SQLITE3, "mcap": StoragePlugin.MCAP}
+
+
+def _joint_state(ns, names, position, velocity, effort):
+    return JointState(
+        header=Header(stamp=Time(sec=ns // 10**9, nanosec=ns % 10**9), frame_id=""),
+        name=list(names),
+        position=np.asarray(position, dtype=np.float64),
+        velocity=np.asarray(velocity, dtype=np.float64),
+        effort=np.asarray(effort, dtype=np.float64),
+    )
+
+
+def write_bag(path, storage, messages, *, stiffness=(), extra_topic=False):
+    """Write a bag: ``messages`` are (ns, JointState); ``stiffness`` are (ns, values)."""
+    with Writer(path, version=9, storage_plugin=STORAGES[storage]) as writer:
+        joints = writer.add_connection("/joint_states", JointState.__msgtype__, typestore=TYPES)
+        k_conn = writer.add_connection(
+            "/stiffness_reference", Float64MultiArray.__msgtype__, typestore=TYPES
+        )
+        if extra_topic:
+            writer.add_connection("/other", Float64MultiArray.__msgtype__, typestore=TYPES)
+        events = [(ns, 1, joints, msg) for ns, msg in messages]
+        events += [
+            (ns, 0, k_conn,
+             Float64MultiArray(layout=MultiArrayLayout(dim=[], data_offset=0),
+                               data=np.asarray(values, dtype=np.float64)))
+            for ns, values in stiffness
+        ]  # fmt: skip
+        for ns, _, connection, msg in sorted(events, key=lambda e: (e[0], e[1])):
+            writer.write(connection, ns, TYPES.serialize_cdr(msg, connection.msgtype))
+    return path
+
+
+def _ramp(n, names=("elbow", "shoulder", "wrist"), step_ns=1_000_000):
+    """JointState messages at 1 kHz whose joint order differs from ours (elbow first)."""
+    out = []
+    for i in range(n):
+        values = np.array([0.01 * i, -0.02 * i, 5.0])
+        ns = START_NS + i * step_ns
+        out.append((ns, _joint_state(ns, names, values, 2 * values, 3 * values)))
+    return out
+
+
+@pytest.fixture
+def store(tmp_path):
+    with DemoStore(tmp_path / "store.sqlite") as opened:
+        yield opened
+
+
+@pytest.mark.parametrize("storage", ["sqlite3", "mcap"])
+def test_import_joint_states_with_stiffness(store, tmp_path, storage):
+    stiffness = [(START_NS + 2_500_000, [40.0, 50.0]), (START_NS + 6_000_000, [150.0, 160.0])]
+    bag = write_bag(tmp_path / f"bag_{storage}", storage, _ramp(10), stiffness=stiffness)
+    demo_id = import_bag(
+        store, bag, skill="cork_seat", joints=JOINTS, stiffness_topic="/stiffness_reference",
+        operator="operator_a", tags=["from_bag"], progress=False,
+    )  # fmt: skip
+    demo = store.load_demonstration(demo_id)
+    i = np.arange(10)
+    assert demo.joints == JOINTS
+    assert demo.info.start_time == START_NS / 1e9
+    assert np.allclose(demo.t, i * 1e-3, rtol=0, atol=1e-12)
+    # shoulder is the bag's second column (-0.02 i), elbow the first (0.01 i)
+    assert np.array_equal(demo.position, np.column_stack([-0.02 * i, 0.01 * i]))
+    assert np.array_equal(demo.velocity, 2 * demo.position)
+    assert np.array_equal(demo.torque, 3 * demo.position)
+    # zero-order hold of the latest stiffness message; samples 0-2 take the first one (backfill)
+    expected_k = np.array([[40.0, 50.0]] * 6 + [[150.0, 160.0]] * 4)
+    assert np.array_equal(demo.stiffness, expected_k)
+    info = demo.info
+    assert (info.source, info.operator, info.tags) == ("imported", "operator_a", ("from_bag",))
+    assert info.flags == {"stiffness_backfilled": 3}
+
+
+@pytest.mark.parametrize("storage", ["sqlite3", "mcap"])
+def test_export_then_import_round_trips(store, tmp_path, storage):
+    t = np.arange(50) / 1000.0
+    q = np.column_stack([np.sin(t), np.cos(t)])
+    demo_id = store.add_demonstration(
+        t=t, position=q, velocity=-q, torque=2 * q, stiffness=100 + q, skill="cork_seat",
+        joints=JOINTS, start_time=1.7e9,
+    )  # fmt: skip
+    bag = export_bag(store, demo_id, tmp_path / "out", storage=storage)
+    back = store.load_demonstration(
+        import_bag(store, bag, skill="cork_seat", stiffness_topic="/stiffness", progress=False)
+    )
+    original = store.load_demonstration(demo_id)
+    # stamps go through whole nanoseconds: the round trip is exact to 1 ns
+    assert np.allclose(back.t, original.t, rtol=0, atol=1e-9)
+    for name in ("position", "velocity", "torque", "stiffness"):
+        assert np.array_equal(getattr(back, name), getattr(original, name))
+    assert back.info.flags == {}
+
+
+def test_messages_lacking_a_joint_are_skipped_and_counted(store, tmp_path):
+    messages = _ramp(6)
+    messages.insert(3, (START_NS + 2_500_000, _joint_state(START_NS + 2_500_000, ["gripper"],
+                                                           [0.0], [0.0], [0.0])))  # fmt: skip
+    bag = write_bag(tmp_path / "bag", "mcap", messages)
+    demo_id = import_bag(store, bag, skill="cork_seat", joints=["shoulder"], progress=False)
+    info = store.get_info(demo_id)
+    assert info.n_samples == 6 and info.flags == {"skipped_messages": 1}
+    assert not info.has_stiffness
+
+
+def _assert_nothing_stored(store):
+    assert list(store.find_demonstrations()) == []
+    assert store.integrity_check() == ["ok"]
+
+
+def test_bag_without_the_named_topic(store, tmp_path):
+    bag = write_bag(tmp_path / "bag", "sqlite3", _ramp(3))
+    with pytest.raises(NotFoundError, match="has no topic '/arm/joint_states' \\(topics: "
+                       "/joint_states, /stiffness_reference\\)"):  # fmt: skip
+        import_bag(store, bag, skill="cork_seat", joint_topic="/arm/joint_states")
+    with pytest.raises(NotFoundError, match="has no topic '/stiffness'"):
+        import_bag(store, bag, skill="cork_seat", stiffness_topic="/stiffness")
+    with pytest.raises(
+        InvalidInputError, match="topic '/stiffness_reference' in .* has no messages"
+    ):
+        import_bag(store, bag, skill="cork_seat", stiffness_topic="/stiffness_reference")
+    with pytest.raises(InvalidInputError, match="carries sensor_msgs/msg/JointState, not std_msgs"):
+        import_bag(store, bag, skill="cork_seat", stiffness_topic="/joint_states")
+    _assert_nothing_stored(store)
+
+
+def test_unknown_joint_names(store, tmp_path):
+    bag = write_bag(tmp_path / "bag", "mcap", _ramp(3))
+    with pytest.raises(InvalidInputError, match="joint 'hip' is in no JointState message \\(names "
+                       "seen: elbow, shoulder, wrist\\)"):  # fmt: skip
+        import_bag(store, bag, skill="cork_seat", joints=["shoulder", "hip"])
+    _assert_nothing_stored(store)
+
+
+@pytest.mark.parametrize("storage", ["sqlite3", "mcap"])
+def test_bad_samples_refused_or_skipped(store, tmp_path, storage):
+    messages = _ramp(8)
+    ns = START_NS + 4_000_000
+    messages[4] = (ns, _joint_state(ns, ["elbow", "shoulder", "wrist"], [np.nan, 0, 0], [0, 0, 0],
+                                    [0, 0, 0]))  # fmt: skip
+    late = START_NS + 6_500_000
+    messages[6] = (late, _joint_state(START_NS + 5_000_000, ["elbow", "shoulder", "wrist"],
+                                      [1, 1, 1], [1, 1, 1], [1, 1, 1]))  # fmt: skip
+    bag = write_bag(tmp_path / "bag", storage, messages)
+    with pytest.raises(InvalidInputError, match="message 4 on '/joint_states': position/velocity/"
+                       "effort not finite \\(import with skip_bad=True"):  # fmt: skip
+        import_bag(store, bag, skill="cork_seat", progress=False)
+    _assert_nothing_stored(store)
+    demo_id = import_bag(store, bag, skill="cork_seat", skip_bad=True, progress=False)
+    info = store.get_info(demo_id)
+    # sample 4 is NaN, sample 6 repeats the stamp of sample 5 (header time 5 ms)
+    assert info.flags == {"nan_messages": 1, "non_increasing": 1}
+    assert info.n_samples == 6
+
+
+def test_backwards_stamp_is_named(store, tmp_path):
+    messages = _ramp(4)
+    ns = START_NS + 3_000_000
+    messages[3] = (ns, _joint_state(START_NS + 1_000_000, ["elbow", "shoulder", "wrist"],
+                                    [1, 1, 1], [1, 1, 1], [1, 1, 1]))  # fmt: skip
+    bag = write_bag(tmp_path / "bag", "sqlite3", messages)
+    with pytest.raises(InvalidInputError, match="time stamp 1700000000001000000 ns goes backwards"):
+        import_bag(store, bag, skill="cork_seat", progress=False)
+    _assert_nothing_stored(store)
+
+
+def test_empty_effort_and_wrong_stiffness_width(store, tmp_path):
+    ns = START_NS
+    bag = write_bag(tmp_path / "no_effort", "mcap",
+                    [(ns, _joint_state(ns, JOINTS, [0, 0], [0, 0], []))])  # fmt: skip
+    with pytest.raises(InvalidInputError, match="effort has 0 values for 2 names"):
+        import_bag(store, bag, skill="cork_seat")
+    bag = write_bag(tmp_path / "wide", "mcap", _ramp(3), stiffness=[(START_NS, [1.0, 2.0, 3.0])])
+    with pytest.raises(InvalidInputError, match="data has 3 values for 2 joints"):
+        import_bag(store, bag, skill="cork_seat", joints=JOINTS,
+                   stiffness_topic="/stiffness_reference")  # fmt: skip
+    _assert_nothing_stored(store)
+
+
+def test_not_a_bag(store, tmp_path):
+    (tmp_path / "plain").mkdir()
+    with pytest.raises(InvalidInputError, match="is not a readable ROS 2 bag"):
+        import_bag(store, tmp_path / "plain", skill="cork_seat")
+    with pytest.raises(NotFoundError, match="bag '.*absent' does not exist"):
+        import_bag(store, tmp_path / "absent", skill="cork_seat")
+    with pytest.raises(InvalidInputError, match="storage must be one of sqlite3, mcap"):
+        export_bag(store, "x", tmp_path / "b", storage="zip")
+    _assert_nothing_stored(store)
