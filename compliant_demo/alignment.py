@@ -413,7 +413,9 @@ def align_demonstrations(
     Each demonstration is aligned to the reference with :func:`dtw` on joint angles. Where the
     path maps several demonstration samples to one reference sample their mean is taken. The
     warped arrays are then resampled linearly from the reference's sampling to ``n_out`` points
-    equally spaced in phase.
+    equally spaced in phase. DTW explains what it can as timing: variation along the direction of
+    motion (an offset on a joint that moves monotonically) largely turns into warping, so the
+    variance afterwards mostly reflects variation across the path and at its still parts.
     """
     if len(demonstrations) == 0:
         raise InvalidInputError("demonstrations: need at least one, got 0")

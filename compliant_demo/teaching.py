@@ -48,8 +48,8 @@ class Waypoint(BaseModel):
 
 def _default_joints() -> tuple[JointParams, ...]:
     return (
-        JointParams(name="shoulder", inertia=0.08, viscous_damping=0.05),
-        JointParams(name="elbow", inertia=0.03, viscous_damping=0.03),
+        JointParams.model_validate({"name": "shoulder", "inertia": 0.08, "viscous_damping": 0.05}),
+        JointParams.model_validate({"name": "elbow", "inertia": 0.03, "viscous_damping": 0.03}),
     )
 
 
