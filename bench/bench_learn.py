@@ -24,12 +24,9 @@ for _variable in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_variable, "1")
 
 import argparse  # noqa: E402
-import json  # noqa: E402
-import statistics  # noqa: E402
-import time  # noqa: E402
-from collections.abc import Callable  # noqa: E402
 
 import numpy as np  # noqa: E402
+from _timing import emit, median_ms  # noqa: E402
 from dtaidistance import dtw_ndim  # noqa: E402
 
 from compliant_demo.alignment import band_radius, dtw  # noqa: E402
@@ -38,20 +35,6 @@ from compliant_demo.primitives import fit_skill  # noqa: E402
 N_JOINTS = 7
 N_SAMPLES = 5000
 DURATION_S = 5.0
-
-
-def _emit(record: dict) -> None:
-    print(json.dumps(record), flush=True)
-
-
-def _median_ms(func: Callable[[], object], repeats: int) -> float:
-    func()  # warm caches and compiled kernels
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - start)
-    return 1000.0 * statistics.median(times)
 
 
 def _demonstrations(n_demos: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -119,32 +102,32 @@ def main() -> None:
                          stiffness_range=(10.0, 200.0), target_inertia=np.full(N_JOINTS, 0.05))
 
     skill = fit()
-    fit_ms = _median_ms(fit, repeats)
-    lstsq_ms = _median_ms(lambda: _stacked_lstsq(skill, t, position), repeats)
-    _emit({"bench": "learn.fit", "n_demos": 10, "n_joints": N_JOINTS, "n_samples": N_SAMPLES,
+    fit_ms = median_ms(fit, repeats)
+    lstsq_ms = median_ms(lambda: _stacked_lstsq(skill, t, position), repeats)
+    emit({"bench": "learn.fit", "n_demos": 10, "n_joints": N_JOINTS, "n_samples": N_SAMPLES,
            "n_basis": 50, "fit_ms": round(fit_ms, 2), "stacked_lstsq_ms": round(lstsq_ms, 2),
            "fit_vs_lstsq_ratio": round(fit_ms / lstsq_ms, 3)})
 
     a = np.ascontiguousarray(position[0])
     b = np.ascontiguousarray(position[1] + 0.01 * np.sin(np.arange(N_SAMPLES))[:, None])
     radius = band_radius(N_SAMPLES, N_SAMPLES, 0.1)
-    dtw_ms = _median_ms(lambda: dtw(a, b, band=0.1), repeats)
-    reference_ms = _median_ms(lambda: dtw_ndim.distance_fast(a, b, window=radius + 1), repeats)
+    dtw_ms = median_ms(lambda: dtw(a, b, band=0.1), repeats)
+    reference_ms = median_ms(lambda: dtw_ndim.distance_fast(a, b, window=radius + 1), repeats)
     ours, _ = dtw(a, b, band=0.1)
     theirs = dtw_ndim.distance_fast(a, b, window=radius + 1)
-    _emit({"bench": "learn.dtw", "n_samples": N_SAMPLES, "n_joints": N_JOINTS, "band": 0.1,
+    emit({"bench": "learn.dtw", "n_samples": N_SAMPLES, "n_joints": N_JOINTS, "band": 0.1,
            "radius": radius, "dtw_ms": round(dtw_ms, 2), "reference_ms": round(reference_ms, 2),
            "cost_relative_difference": abs(ours - theirs) / theirs})
 
-    rollout_ms = _median_ms(lambda: skill.rollout(dt=1e-3), repeats)
-    loop_ms = _median_ms(lambda: _loop_rollout(skill, 1e-3), max(1, repeats // 3))
+    rollout_ms = median_ms(lambda: skill.rollout(dt=1e-3), repeats)
+    loop_ms = median_ms(lambda: _loop_rollout(skill, 1e-3), max(1, repeats // 3))
     gap = np.abs(skill.rollout(dt=1e-3).position - _loop_rollout(skill, 1e-3)).max()
-    _emit({"bench": "learn.rollout", "duration_s": DURATION_S, "dt": 1e-3, "n_joints": N_JOINTS,
+    emit({"bench": "learn.rollout", "duration_s": DURATION_S, "dt": 1e-3, "n_joints": N_JOINTS,
            "rollout_ms": round(rollout_ms, 3), "python_loop_ms": round(loop_ms, 2),
            "rollout_vs_loop_ratio": round(rollout_ms / loop_ms, 4),
            "max_position_gap_rad": float(gap)})
 
-    _emit({"bench": "learn", "fit_ms": round(fit_ms, 2), "dtw_ms": round(dtw_ms, 2),
+    emit({"bench": "learn", "fit_ms": round(fit_ms, 2), "dtw_ms": round(dtw_ms, 2),
            "dtw_vs_reference_ratio": round(dtw_ms / reference_ms, 3),
            "rollout_ms": round(rollout_ms, 3)})
 
