@@ -47,10 +47,12 @@ __all__ = [
     "load_campaign_yaml",
     "draw_scenarios",
     "step_span",
+    "NEVER",
     "random_torque_coefficients",
     "random_torque_value",
 ]
 
+NEVER = 2**62  # step index of "never": the stop of open-ended perturbations
 _Onset = Annotated[float, Field(ge=0, allow_inf_nan=False, description="Start time, s.")]
 _Duration = Annotated[float, Field(ge=0, description="How long it acts, s (inf: to the end).")]
 _FiniteDuration = Annotated[
@@ -264,20 +266,20 @@ def load_schedules_yaml(path: str | Path) -> list[PerturbationSchedule]:
     return [schedule_from_mapping(data, where=str(path))]
 
 
-def step_span(perturbation: Perturbation, dt: float, n_steps: int) -> tuple[int, int]:
+def step_span(perturbation: Perturbation, dt: float) -> tuple[int, int]:
     """Integration steps ``[start, stop)`` during which a perturbation acts.
 
     Edges snap to the nearest step boundary (a shift of at most dt/2); a non-zero duration
-    lasts at least one step; ``stop`` is capped at ``n_steps``. An instantaneous impulse
-    returns ``(start, start)``: it is a velocity jump at the start of step ``start``.
+    lasts at least one step; an infinite one never stops (``stop`` = :data:`NEVER`). An
+    instantaneous impulse returns ``(start, start)``: a velocity jump at the start of step
+    ``start``.
     """
     start = int(round(perturbation.onset_s / dt))
     if perturbation.duration_s == 0:
         return start, start
     if math.isinf(perturbation.duration_s):
-        return start, max(start, n_steps)
-    stop = max(start + 1, int(round((perturbation.onset_s + perturbation.duration_s) / dt)))
-    return start, min(stop, max(start, n_steps))
+        return start, NEVER
+    return start, max(start + 1, int(round((perturbation.onset_s + perturbation.duration_s) / dt)))
 
 
 def random_torque_coefficients(

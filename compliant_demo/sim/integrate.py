@@ -229,7 +229,6 @@ class Simulator:
     schedules : one perturbation schedule per scenario, or None
     seed : seeds torque-sensor noise and random torques without their own seed
     check_stability : refuse a step above the largest stable one (UnstableStepError)
-    horizon_steps : steps the run will last (caps open-ended perturbations); None: unbounded
 
     Notes
     -----
@@ -248,7 +247,6 @@ class Simulator:
         schedules: Sequence[PerturbationSchedule] | None = None,
         seed: int | None = None,
         check_stability: bool = True,
-        horizon_steps: int | None = None,
     ) -> None:
         joints = list(joints)
         if not joints or not all(isinstance(j, JointParams) for j in joints):
@@ -274,7 +272,6 @@ class Simulator:
             n_scenarios,
             [j.inertia for j in joints],
             self.dt,
-            horizon_steps if horizon_steps is not None else 2**62,
             seed,
         )
         if check_stability:
@@ -759,9 +756,8 @@ def simulate(
         n_scen = len(schedules)
         if n_scen == 0:
             raise InvalidInputError("schedules: empty; give one schedule per scenario or None")
-    n_steps = np.shape(equilibrium)[0] if np.ndim(equilibrium) >= 1 else 0
     sim = Simulator(
         joints, mechanism, n_scenarios=n_scen, dt=dt, method=method, q0=q0, dq0=dq0,
-        schedules=schedules, seed=seed, check_stability=check_stability, horizon_steps=n_steps,
+        schedules=schedules, seed=seed, check_stability=check_stability,
     )
     return sim.run(equilibrium, stiffness, damping, decimation=decimation)

@@ -80,7 +80,7 @@ def reference_solve(
     d_cmd = _scenario_commands(damping, scenario)
     n_steps = eq_cmd.shape[0]
     n_scen = 1 if schedules is None else len(schedules)
-    compiled = compile_schedules(schedules, n_scen, [j.inertia for j in joints], dt, n_steps, seed)
+    compiled = compile_schedules(schedules, n_scen, [j.inertia for j in joints], dt, seed)
     inertia = np.array([j.inertia for j in joints])
     viscous = np.array([j.viscous_damping for j in joints])
     coulomb = np.array([j.coulomb_friction for j in joints])

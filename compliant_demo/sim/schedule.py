@@ -148,10 +148,9 @@ def compile_schedules(
     n_scenarios: int,
     joint_inertia: Sequence[float],
     dt: float,
-    n_steps: int,
     seed: int | None,
 ) -> CompiledSchedules:
-    """Compile one schedule per scenario (or none) onto the grid of ``n_steps`` steps of ``dt``.
+    """Compile one schedule per scenario (or none) onto the grid of steps of ``dt``.
 
     Random torques without their own seed draw from ``seed`` and the scenario and position
     indexes, so each scenario's draw does not depend on the batch it runs in.
@@ -169,7 +168,7 @@ def compile_schedules(
                     f"schedules[{s}].perturbations[{i}].joint = {p.joint}: only {n_joints} "
                     "joint(s) are simulated"
                 )
-            start, stop = step_span(p, dt, n_steps)
+            start, stop = step_span(p, dt)
             if isinstance(p, Impulse):
                 signed = p.sign * p.magnitude
                 if start == stop:
