@@ -303,9 +303,10 @@ def export_bag(
     stamps = round(demo.info.start_time * _NS) + np.round(demo.t * _NS).astype(np.int64)
     try:
         writer = Writer(Path(path), version=9, storage_plugin=STORAGES[storage])
-    except WriterError as exc:
+        writer.open()
+    except (WriterError, OSError) as exc:
         raise InvalidInputError(f"cannot write bag {str(path)!r}: {exc}") from None
-    with writer:
+    try:
         joints_conn = writer.add_connection(joint_topic, JOINT_STATE, typestore=store_types)
         stiffness_conn = (
             writer.add_connection(stiffness_topic, FLOAT64_ARRAY, typestore=store_types)
@@ -325,4 +326,6 @@ def export_bag(
                 effort=demo.torque[i].copy(),
             )
             writer.write(joints_conn, ns, store_types.serialize_cdr(msg, JOINT_STATE))
+    finally:
+        writer.close()
     return Path(path)

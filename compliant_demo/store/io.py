@@ -23,8 +23,9 @@ import os
 import sys
 import zipfile
 from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import numpy as np
 from tqdm import tqdm
@@ -44,6 +45,7 @@ __all__ = [
     "import_npz",
     "streaming_import",
     "show_progress",
+    "writing",
 ]
 
 CSV_MAGIC = "# compliant_demo demonstration"
@@ -59,6 +61,17 @@ def show_progress(progress: bool | None, size: int, threshold: int) -> bool:
     if progress is not None:
         return bool(progress)
     return size >= threshold and sys.stderr.isatty()
+
+
+@contextmanager
+def writing(path: str | os.PathLike[str], mode: str) -> Iterator[IO[Any]]:
+    """Open ``path`` for an export; an unwritable path is an InvalidInputError naming it."""
+    try:
+        handle = open(path, mode, **({} if "b" in mode else {"encoding": "utf-8", "newline": "\n"}))
+    except OSError as exc:
+        raise InvalidInputError(f"cannot write {str(path)!r}: {exc.strerror}") from None
+    with handle:
+        yield handle
 
 
 def sample_columns(demo: Demonstration) -> tuple[list[str], np.ndarray]:
@@ -83,7 +96,7 @@ def export_csv(store: DemoStore, demo_id: str, path: str | os.PathLike[str]) -> 
     demo = store.load_demonstration(demo_id)
     names, table = sample_columns(demo)
     target = Path(path)
-    with target.open("w", encoding="utf-8", newline="\n") as handle:
+    with writing(target, "w") as handle:
         handle.write(CSV_MAGIC + "\n")
         for key, value in _metadata(demo).items():
             handle.write(f"# {key}: {json.dumps(value)}\n")
@@ -276,7 +289,7 @@ def export_npz(store: DemoStore, demo_id: str, path: str | os.PathLike[str]) -> 
     if demo.stiffness is not None:
         arrays["stiffness"] = demo.stiffness
     target = Path(path)
-    with target.open("wb") as handle:
+    with writing(target, "wb") as handle:
         np.savez(handle, **arrays)
     return target
 
