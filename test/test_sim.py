@@ -310,7 +310,6 @@ def test_antagonistic_inverse_map_round_trip():
 
 def test_out_of_range_commands_are_clamped_and_reported():
     params = AntagonisticParams(motor_lower=-1.0, motor_upper=1.0)
-    n = 50
     eq = np.concatenate([_constant(0.0, 25), _constant(1.5, 25)])
     k = np.concatenate([_constant(300.0, 10), _constant(100.0, 40)])
     result = simulate([_joint(viscous_damping=0.5)], params, eq, k)
