@@ -52,6 +52,37 @@ class _Demo:
     position: NDArray[np.float64]
     stiffness: NDArray[np.float64] | None
     demo_id: str | None
+    stiffness_gap: str | None = None
+
+
+def _stiffness_channel(value: object, label: str) -> NDArray[np.float64]:
+    """Recorded stiffness as floats; NaN (no estimate) is allowed, infinities are not."""
+    try:
+        array = np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"{label}: cannot convert {value!r} to a float array") from None
+    if np.any(np.isinf(array)):
+        index = tuple(int(i) for i in np.argwhere(np.isinf(array))[0])
+        raise InvalidInputError(f"{label}: infinite value {float(array[index])!r} at index "
+                                f"{index}")
+    return array[:, np.newaxis] if array.ndim == 1 else array
+
+
+def _fill_gaps(
+    times: NDArray[np.float64], stiffness: NDArray[np.float64], joints: Sequence[str]
+) -> tuple[NDArray[np.float64] | None, str | None]:
+    """Interpolate NaN samples (no estimate) linearly in time, holding the nearest value at the
+    ends; a joint without any finite sample makes the channel unusable (returns the reason)."""
+    finite = np.isfinite(stiffness)
+    if finite.all():
+        return stiffness, None
+    empty = np.flatnonzero(~finite.any(axis=0))
+    if empty.size:
+        return None, f"joint {joints[empty[0]]!r} has no finite stiffness sample"
+    filled = stiffness.copy()
+    for j in np.flatnonzero(~finite.all(axis=0)):
+        filled[:, j] = np.interp(times, times[finite[:, j]], stiffness[finite[:, j], j])
+    return filled, None
 
 
 def _fields(item: object, label: str) -> tuple[Any, Any, Any, Any, Any]:
@@ -84,9 +115,7 @@ def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
     q = _finite_array(position, f"{label}.position")
     if q.ndim == 1:
         q = q[:, np.newaxis]
-    k = None if stiffness is None else _finite_array(stiffness, f"{label}.stiffness")
-    if k is not None and k.ndim == 1:
-        k = k[:, np.newaxis]
+    k = None if stiffness is None else _stiffness_channel(stiffness, f"{label}.stiffness")
     for name, array in (("position", q), ("stiffness", k)):
         if array is not None and (array.ndim != 2 or array.shape[0] != times.size):
             raise InvalidInputError(f"{label}.{name}: expected ({times.size}, n_joints), got "
@@ -107,7 +136,10 @@ def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
     if k is not None and k.shape != q.shape:
         raise InvalidInputError(f"{label}.stiffness: shape {k.shape} does not match position "
                                 f"{q.shape}")
-    return _Demo(times - times[0], q, k, None if demo_id is None else str(demo_id))
+    gap: str | None = "not recorded"
+    if k is not None:
+        k, gap = _fill_gaps(times, k, joints)
+    return _Demo(times - times[0], q, k, None if demo_id is None else str(demo_id), gap)
 
 
 def _align(
@@ -224,7 +256,8 @@ def learn_skill(
     if source == "auto":
         source = "recorded" if not missing else "variability"
     if source == "recorded" and missing:
-        raise InvalidInputError(f"demos[{missing[0]}].stiffness: not recorded; use "
+        reason = normalised[missing[0]].stiffness_gap
+        raise InvalidInputError(f"demos[{missing[0]}].stiffness: {reason}; use "
                                 "stiffness_source='variability'")
     if source == "variability":
         if len(normalised) < 2:

@@ -260,3 +260,36 @@ def test_bad_containers():
         learn_skill([{"time": [0, 1]}], joints=JOINTS)
     with pytest.raises(InvalidInputError, match=r"demos\[0\]: expected a Demonstration, .* str"):
         learn_skill(["cork"], joints=JOINTS)
+
+
+def test_nan_stiffness_samples_are_bridged():
+    # The recorder leaves NaN where its estimator window was not excited (start, still phases).
+    rng = np.random.default_rng(28)
+    demos = _demos(rng, 3)
+    gappy = []
+    for t, q, k in demos:
+        k = k.copy()
+        k[:60, :] = np.nan
+        k[400:420, 1] = np.nan
+        gappy.append((t, q, k))
+    bridged = learn_skill(gappy, joints=JOINTS, alignment="resample", target_inertia=[1, 1])
+    full = learn_skill(demos, joints=JOINTS, alignment="resample", target_inertia=[1, 1])
+    assert bridged.provenance.stiffness_source == "recorded"
+    # Held and interpolated across the gaps of a smooth profile: the schedule barely moves.
+    np.testing.assert_allclose(bridged.rollout().stiffness, full.rollout().stiffness, rtol=0.02)
+
+
+def test_joint_without_any_stiffness_estimate():
+    rng = np.random.default_rng(29)
+    demos = _demos(rng, 2)
+    t, q, k = demos[1]
+    k = k.copy()
+    k[:, 1] = np.nan
+    with pytest.raises(InvalidInputError,
+                       match=r"demos\[1\]\.stiffness: joint 'elbow' has no finite stiffness"):
+        learn_skill([demos[0], (t, q, k)], joints=JOINTS, stiffness_source="recorded")
+    auto = learn_skill([demos[0], (t, q, k)], joints=JOINTS, stiffness_range=RANGE,
+                       target_inertia=[1, 1])
+    assert auto.provenance.stiffness_source == "variability"
+    with pytest.raises(InvalidInputError, match=r"demos\[1\]\.stiffness: infinite value inf"):
+        learn_skill([demos[0], (t, q, np.full_like(k, np.inf))], joints=JOINTS)
