@@ -115,9 +115,9 @@ class NodeDeclaration:
             if isinstance(parameter, ParameterFile):
                 ros_args += ["--params-file", str(parameter.path)]
             else:
-                ros_args += ["-p", f"{parameter.name}:={parameter.value}"]
+                ros_args += ["-p", _override(parameter.name, parameter.value)]
         for name, value in (extra_parameters or {}).items():
-            ros_args += ["-p", f"{name}:={value}"]
+            ros_args += ["-p", _override(name, value)]
         return [*self.command, *ros_args]
 
     def parameter_values(self) -> dict[str, str]:
@@ -264,6 +264,11 @@ def start_nodes(
             process.wait()
         raise LaunchFileError(f"{description.path}: cannot start node: {exc}") from None
     return processes
+
+
+def _override(name: str, value: str) -> str:
+    """``name:=value`` for ``-p``; rcl cannot parse an empty value, so it becomes YAML ''."""
+    return f"{name}:={value if value else repr('')}"
 
 
 @dataclass

@@ -1,0 +1,182 @@
+"""Helpers for tests that run our nodes as real processes over loopback DDS.
+
+Every process (the test's own rclpy context included) gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST
+and the test module's own ROS_DOMAIN_ID, so parallel runs do not talk to each other.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Callable, Mapping, Sequence
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from compliant_demo.launch_file import read_launch_file
+
+ROOT = Path(__file__).resolve().parent.parent
+LAUNCH = ROOT / "launch"
+
+
+def ros_env(domain_id: int) -> dict[str, str]:
+    """This process's environment restricted to loopback discovery on ``domain_id``."""
+    env = dict(os.environ)
+    env["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
+    env["ROS_DOMAIN_ID"] = str(domain_id)
+    env["PYTHONPATH"] = os.pathsep.join(p for p in (str(ROOT), env.get("PYTHONPATH")) if p)
+    env["PYTHONUNBUFFERED"] = "1"
+    return env
+
+
+class Nodes:
+    """Processes started from a launch file (or a module), with their logs in one folder."""
+
+    def __init__(self, processes: list[subprocess.Popen], names: list[str], logs: list[Path]):
+        self.processes = processes
+        self.names = names
+        self.logs = logs
+
+    def __getitem__(self, name: str) -> subprocess.Popen:
+        return self.processes[self.names.index(name)]
+
+    def log(self, name: str) -> str:
+        return self.logs[self.names.index(name)].read_text(errors="replace")
+
+    def all_logs(self) -> str:
+        return "\n".join(f"--- {n} ---\n{self.log(n)}" for n in self.names)
+
+    def wait(self, name: str, timeout_s: float) -> int:
+        """Exit status of node ``name``; fails the test (with the logs) on timeout."""
+        try:
+            return self[name].wait(timeout_s)
+        except subprocess.TimeoutExpired:
+            raise AssertionError(f"{name} still running after {timeout_s} s\n"
+                                 f"{self.all_logs()}") from None
+
+    def interrupt(self, name: str, timeout_s: float = 15.0) -> int:
+        """SIGINT node ``name`` and return its exit status."""
+        self[name].send_signal(signal.SIGINT)
+        return self.wait(name, timeout_s)
+
+    def close(self) -> None:
+        """SIGINT whatever still runs, then SIGKILL what ignores it."""
+        for process in self.processes:
+            if process.poll() is None:
+                process.send_signal(signal.SIGINT)
+        deadline = time.monotonic() + 10.0
+        for process in self.processes:
+            try:
+                process.wait(max(0.1, deadline - time.monotonic()))
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
+
+
+@contextmanager
+def launched(
+    launch_file: str,
+    arguments: Mapping[str, str],
+    domain_id: int,
+    log_dir: Path,
+    extra_parameters: Mapping[str, Mapping[str, str]] | None = None,
+):
+    """Start the nodes ``launch/<launch_file>`` declares, each with the command line
+    ``compliant-demo launch`` uses (declared name, parameter files and values, then extras)."""
+    description = read_launch_file(LAUNCH / launch_file, arguments)
+    names = [node.name or node.executable for node in description.nodes]
+    logs = [log_dir / f"{name}.log" for name in names]
+    handles = [path.open("wb") for path in logs]
+    processes: list[subprocess.Popen] = []
+    try:
+        for node, handle in zip(description.nodes, handles, strict=True):
+            extra = (extra_parameters or {}).get(node.name or "")
+            processes.append(subprocess.Popen(node.command_line(extra), env=ros_env(domain_id),
+                                              stdout=handle, stderr=subprocess.STDOUT))
+        nodes = Nodes(processes, names, logs)
+        yield nodes
+    finally:
+        Nodes(processes, names[: len(processes)], logs).close()
+        for handle in handles:
+            handle.close()
+
+
+def start_module(
+    module: str, parameters: Sequence[str], domain_id: int, log: Path, name: str
+) -> Nodes:
+    """``python -m module --ros-args -p ...`` as one node."""
+    handle = log.open("wb")
+    command = [sys.executable, "-m", module, "--ros-args"]
+    for parameter in parameters:
+        command += ["-p", parameter]
+    process = subprocess.Popen(command, env=ros_env(domain_id), stdout=handle,
+                               stderr=subprocess.STDOUT)
+    handle.close()
+    return Nodes([process], [name], [log])
+
+
+def wait_for(predicate: Callable[[], Any], timeout_s: float, what: str, interval_s=0.1) -> Any:
+    """Poll ``predicate`` until it returns something truthy; fail naming ``what`` on timeout."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        value = predicate()
+        if value:
+            return value
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
+        time.sleep(interval_s)
+
+
+class TestClient:
+    """The test's own rclpy node in a private context on ``domain_id``."""
+
+    __test__ = False  # not a test class
+
+    def __init__(self, domain_id: int, name: str = "test_client"):
+        os.environ["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
+        os.environ["ROS_DOMAIN_ID"] = str(domain_id)
+        import rclpy
+        from rclpy.executors import SingleThreadedExecutor
+        from rclpy.node import Node
+
+        self.rclpy = rclpy
+        self.context = rclpy.Context()
+        rclpy.init(context=self.context)
+        self.node = Node(name, context=self.context)
+        self.executor = SingleThreadedExecutor(context=self.context)
+        self.executor.add_node(self.node)
+
+    def spin_for(self, seconds: float) -> None:
+        deadline = time.monotonic() + seconds
+        while time.monotonic() < deadline:
+            self.executor.spin_once(timeout_sec=0.02)
+
+    def spin_until(self, predicate: Callable[[], Any], timeout_s: float, what: str) -> Any:
+        deadline = time.monotonic() + timeout_s
+        while True:
+            value = predicate()
+            if value:
+                return value
+            if time.monotonic() > deadline:
+                raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
+            self.executor.spin_once(timeout_sec=0.02)
+
+    def call_trigger(self, service: str, timeout_s: float = 10.0) -> Any:
+        from std_srvs.srv import Trigger
+
+        client = self.node.create_client(Trigger, service)
+        try:
+            self.spin_until(client.service_is_ready, timeout_s, f"service {service}")
+            future = client.call_async(Trigger.Request())
+            self.spin_until(future.done, timeout_s, f"response of {service}")
+            return future.result()
+        finally:
+            self.node.destroy_client(client)
+
+    def close(self) -> None:
+        self.executor.shutdown()
+        self.node.destroy_node()
+        self.rclpy.try_shutdown(context=self.context)
