@@ -13,34 +13,19 @@ Run: ``python bench/bench_store.py [--quick]``
 from __future__ import annotations
 
 import argparse
-import json
 import sqlite3
-import statistics
 import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
+from _timing import emit, median_ms
 
 from compliant_demo.store import DemoStore
 
 JOINTS = [f"joint{i}" for i in range(1, 8)]
 RATE_HZ = 1000.0
-
-
-def _emit(record: dict) -> None:
-    print(json.dumps(record), flush=True)
-
-
-def _median_ms(func: Callable[[], object], repeats: int) -> float:
-    func()  # warm the page cache and the code paths
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - start)
-    return 1000.0 * statistics.median(times)
 
 
 def _samples(duration_s: float, seed: int) -> dict[str, np.ndarray]:
@@ -140,34 +125,34 @@ def main() -> None:
             _, elapsed = _append(tmpdir / f"append_{chunk}_{durable}.sqlite", data, chunk, durable)
             record = {"bench": "store_append", "chunk_samples": chunk, "durable": durable,
                       "wall_s": elapsed, "realtime_factor": duration_s / elapsed}  # fmt: skip
-            _emit(record)
+            emit(record)
             results[f"append_realtime_factor_chunk{chunk}_{'durable' if durable else 'normal'}"] = (
                 record["realtime_factor"]
             )
         path = tmpdir / "store.sqlite"
         demo_id, elapsed = _append(path, data, 1000, True)
         with DemoStore(path, read_only=True) as store:
-            load_ms = _median_ms(lambda: store.load_demonstration(demo_id), 15)
+            load_ms = median_ms(lambda: store.load_demonstration(demo_id), 15)
             loaded = store.load_demonstration(demo_id)
             assert np.array_equal(loaded.stiffness, data["stiffness"])
-        floor_ms = _median_ms(_floor(path, demo_id), 15)
-        rows_ms = _median_ms(_rows_baseline(tmpdir / "rows.sqlite", data), 5)
-        _emit({"bench": "store_load", "load_ms": load_ms, "floor_ms": floor_ms,
+        floor_ms = median_ms(_floor(path, demo_id), 15)
+        rows_ms = median_ms(_rows_baseline(tmpdir / "rows.sqlite", data), 5)
+        emit({"bench": "store_load", "load_ms": load_ms, "floor_ms": floor_ms,
                "rows_ms": rows_ms, "megabytes": 8 * 29 * data["t"].size / 1e6})  # fmt: skip
 
         catalogue = tmpdir / "catalogue.sqlite"
         start = time.perf_counter()
         _build_catalogue(catalogue, n_catalogue, seed=11)
-        _emit({"bench": "store_catalogue", "demonstrations": n_catalogue,
+        emit({"bench": "store_catalogue", "demonstrations": n_catalogue,
                "build_s": time.perf_counter() - start})  # fmt: skip
         with DemoStore(catalogue, read_only=True) as store:
             query = {"skill": "cork_seat", "operator": "operator_a", "tag": "stiff_press",
                      "min_duration_s": 2.0, "order_by": "-start_time"}  # fmt: skip
-            find_ms = _median_ms(lambda: list(store.find_demonstrations(**query)), 15)
+            find_ms = median_ms(lambda: list(store.find_demonstrations(**query)), 15)
             n_found = len(list(store.find_demonstrations(**query)))
-            find_all_ms = _median_ms(lambda: list(store.find_demonstrations()), 5)
-            count_ms = _median_ms(lambda: store.count_demonstrations(status="complete"), 15)
-        _emit({"bench": "store_find", "query": query, "rows": n_found, "find_ms": find_ms,
+            find_all_ms = median_ms(lambda: list(store.find_demonstrations()), 5)
+            count_ms = median_ms(lambda: store.count_demonstrations(status="complete"), 15)
+        emit({"bench": "store_find", "query": query, "rows": n_found, "find_ms": find_ms,
                "find_all_ms": find_all_ms, "count_ms": count_ms})  # fmt: skip
 
         results.update(
@@ -185,7 +170,7 @@ def main() -> None:
             find_all_ms=find_all_ms,
             catalogue_demonstrations=n_catalogue,
         )
-        _emit(results)
+        emit(results)
 
 
 if __name__ == "__main__":

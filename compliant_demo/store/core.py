@@ -64,6 +64,10 @@ _BEGIN_KEYWORDS = frozenset(
     ("skill", "joints", "operator", "tags", "notes", "source", "nominal_rate_hz", "start_time",
      "with_stiffness", "demo_id")
 )  # fmt: skip
+_FILTER_KEYWORDS = frozenset(
+    ("skill", "operator", "tag", "status", "source", "started_after", "started_before",
+     "min_duration_s", "where", "where_args")
+)  # fmt: skip
 _RESULT_COLUMNS = (
     "r.id, r.skill_id, r.campaign_id, r.scenario_index, r.status, r.reason, r.metrics, "
     "r.parameters, r.created, (SELECT json_group_array(channel) FROM "
@@ -636,20 +640,17 @@ class DemoStore:
 
     # -- queries ----------------------------------------------------------------------------
 
-    def _filters(
-        self,
-        *,
-        skill: str | None = None,
-        operator: str | None = None,
-        tag: str | Sequence[str] | None = None,
-        status: str | Sequence[str] | None = None,
-        source: str | None = None,
-        started_after: float | datetime | None = None,
-        started_before: float | datetime | None = None,
-        min_duration_s: float | None = None,
-        where: str | None = None,
-        where_args: Sequence[object] | Mapping[str, object] | None = None,
-    ) -> _sql.QueryBuilder:
+    def _filters(self, filters: Mapping[str, Any]) -> _sql.QueryBuilder:
+        """WHERE conditions for the filters of :meth:`find_demonstrations` (given by name)."""
+        unknown = set(filters) - _FILTER_KEYWORDS
+        if unknown:
+            raise TypeError(f"unknown demonstration filter(s): {sorted(unknown)}")
+        skill, operator, tag, status, source, started_after, started_before, min_duration_s = (
+            filters.get(key)
+            for key in ("skill", "operator", "tag", "status", "source", "started_after",
+                        "started_before", "min_duration_s")
+        )  # fmt: skip
+        where, where_args = filters.get("where"), filters.get("where_args")
         if where_args is not None and where is None:
             raise InvalidInputError("where_args given without where")
         if where is not None and not isinstance(where, str):
@@ -720,11 +721,8 @@ class DemoStore:
         iterator of DemonstrationInfo
             The query runs (and bad filters raise) when this is called, not when iterated.
         """
-        query = self._filters(
-            skill=skill, operator=operator, tag=tag, status=status, source=source,
-            started_after=started_after, started_before=started_before,
-            min_duration_s=min_duration_s, where=where, where_args=where_args,
-        )  # fmt: skip
+        # every keyword of this signature but order_by and limit is a filter
+        query = self._filters({k: v for k, v in locals().items() if k in _FILTER_KEYWORDS})
         order = _sql.parse_order_by(
             order_by, _schema.DEMONSTRATION_COLUMNS, "start_time ASC, id ASC"
         )
@@ -754,7 +752,7 @@ class DemoStore:
 
     def count_demonstrations(self, **filters: Any) -> int:
         """Number of demonstrations matching the filters of :meth:`find_demonstrations`."""
-        query = self._filters(**filters)
+        query = self._filters(filters)
         rows = self._guarded_query(
             f"SELECT count(*) FROM demonstrations{query.sql()}",
             query.params(),
