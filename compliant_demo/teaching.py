@@ -77,7 +77,7 @@ class TeachingScenario(BaseModel):
     )
     duration_s: float = Field(6.0, gt=0, allow_inf_nan=False, description="Nominal duration, s.")
     rate_hz: float = Field(1000.0, gt=0, le=20000, description="Sample rate, Hz.")
-    substeps: int = Field(2, ge=1, le=50, description="Integrator steps per sample.")
+    substeps: int = Field(1, ge=1, le=50, description="Runge-Kutta steps per sample.")
     waypoints: tuple[Waypoint, ...] = Field(
         default_factory=_cork_seat_waypoints,
         min_length=2,
@@ -193,6 +193,7 @@ class TeachingRecord:
     hand_damping : (n_joints,) array, N*m*s/rad
     intended_position : (n_samples, n_joints) array, rad
         The trajectory the operator's hand pulls toward.
+    intended_velocity : (n_samples, n_joints) array, rad/s
     dither_torque : (n_samples, n_joints) array, N*m
     joint_names : tuple of str
     seed : int
@@ -206,6 +207,7 @@ class TeachingRecord:
     hand_stiffness_truth: np.ndarray
     hand_damping: np.ndarray
     intended_position: np.ndarray
+    intended_velocity: np.ndarray
     dither_torque: np.ndarray
     joint_names: tuple[str, ...]
     seed: int
@@ -241,17 +243,21 @@ class TeachingChunk:
     last: bool
 
 
-def _min_jerk_blend(s: np.ndarray) -> np.ndarray:
-    """Minimum-jerk blend 10 s^3 - 15 s^4 + 6 s^5 on [0, 1] (Flash and Hogan, 1985)."""
-    return s**3 * (10 - 15 * s + 6 * s * s)
+def _min_jerk(s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Minimum-jerk blend 10 s^3 - 15 s^4 + 6 s^5 on [0, 1] and its derivative (Flash and Hogan,
+    J. Neuroscience 5(7), 1985)."""
+    return s**3 * (10 - 15 * s + 6 * s * s), 30 * s * s * (1 - s) ** 2
 
 
-def _through_waypoints(t: np.ndarray, times: np.ndarray, values: np.ndarray) -> np.ndarray:
-    """Minimum-jerk segments between consecutive waypoint values, (n_samples, n_joints)."""
+def _through_waypoints(
+    t: np.ndarray, times: np.ndarray, values: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Minimum-jerk segments through waypoint values and their time derivative, (n, n_joints)."""
     segment = np.clip(np.searchsorted(times, t, side="right") - 1, 0, len(times) - 2)
     start, end = times[segment], times[segment + 1]
-    blend = _min_jerk_blend(np.clip((t - start) / (end - start), 0.0, 1.0))[:, None]
-    return values[segment] + blend * (values[segment + 1] - values[segment])
+    blend, rate = _min_jerk(np.clip((t - start) / (end - start), 0.0, 1.0))
+    step = values[segment + 1] - values[segment]
+    return values[segment] + blend[:, None] * step, (rate / (end - start))[:, None] * step
 
 
 def _demo_variation(
@@ -299,22 +305,24 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
     -----
     Per joint, with the robot's gravity compensation cancelling the link's weight:
     ``I q'' = tau_h + tau_d - b q' - f_c tanh(q'/v_s) + tau_stop`` and
-    ``tau_h = K_h(t) (q_h - q) + D_h (q_h' - q')``, integrated by semi-implicit Euler with
-    ``scenario.substeps`` steps per sample. The intended trajectory ``q_h`` and ``K_h`` follow
-    minimum-jerk segments between waypoints. The reported torque is ``tau_h`` at the sample plus
-    noise; the relation between the true torque and the true state holds exactly at every sample.
+    ``tau_h = K_h(t) (q_h - q) + D_h (q_h' - q')``, integrated by the classical fourth-order
+    Runge-Kutta method with ``scenario.substeps`` steps per sample, so that the sampled angle and
+    velocity are consistent to O(dt^4) (a first-order scheme would shift the damping torque by
+    half a step against the angle). ``q_h`` and ``K_h`` follow minimum-jerk segments between
+    waypoints. The reported torque is ``tau_h`` at the sample plus noise.
     """
     if not isinstance(seed, int | np.integer) or seed < 0:
         raise InvalidInputError(f"seed must be a non-negative integer, got {seed!r}")
     rng = np.random.default_rng(int(seed))
     duration, times, positions, stiffness = _demo_variation(scenario, rng)
     n_samples = int(round(duration * scenario.rate_hz)) + 1
-    t = np.arange(n_samples) / scenario.rate_hz
-    dt = 1.0 / (scenario.rate_hz * scenario.substeps)
-    dither = _dither(scenario, rng, t[:, None] + dt * np.arange(scenario.substeps))
-    intended = _through_waypoints(t, times, positions)
-    hand_k = _through_waypoints(t, times, stiffness)
-    intended_velocity = np.gradient(intended, t, axis=0)
+    steps = scenario.substeps
+    dt = 1.0 / (scenario.rate_hz * steps)
+    # Inputs on a grid of half integration steps: Runge-Kutta evaluates at t, t + dt/2, t + dt.
+    fine_t = np.arange(2 * steps * (n_samples - 1) + 1) * (dt / 2)
+    intended, intended_velocity = _through_waypoints(fine_t, times, positions)
+    hand_k, _ = _through_waypoints(fine_t, times, stiffness)
+    dither = _dither(scenario, rng, fine_t)
     joints = scenario.joints
     inertia = np.array([j.inertia for j in joints])
     bearing = np.array([j.viscous_damping for j in joints])
@@ -326,34 +334,48 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
     stop_d = np.array([j.limit_damping for j in joints])
     hand_d = np.array(scenario.hand_damping)
 
+    def hand(index: int, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
+        return hand_k[index] * (intended[index] - q) + hand_d * (intended_velocity[index] - dq)
+
+    def accel(index: int, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
+        over = np.maximum(q - upper, 0) + np.minimum(q - lower, 0)
+        stop = -stop_k * over - np.where(over != 0, stop_d * dq, 0.0)
+        friction = bearing * dq + coulomb * np.tanh(dq / smoothing)
+        return (hand(index, q, dq) + dither[index] - friction + stop) / inertia
+
     q = intended[0].copy()
-    dq = np.zeros(len(joints))
-    true_q = np.empty_like(intended)
-    true_dq = np.empty_like(intended)
-    true_tau = np.empty_like(intended)
+    dq = intended_velocity[0].copy()
+    true_q = np.empty((n_samples, len(joints)))
+    true_dq = np.empty_like(true_q)
+    true_tau = np.empty_like(true_q)
+    index = 0
     for k in range(n_samples):
-        target, target_v, k_h = intended[k], intended_velocity[k], hand_k[k]
-        true_q[k], true_dq[k] = q, dq
-        true_tau[k] = k_h * (target - q) + hand_d * (target_v - dq)
-        for sub in range(scenario.substeps):
-            tau_h = k_h * (target - q) + hand_d * (target_v - dq)
-            over = np.maximum(q - upper, 0) + np.minimum(q - lower, 0)
-            stop = -stop_k * over - np.where(over != 0, stop_d * dq, 0.0)
-            accel = (
-                tau_h + dither[k, sub] - bearing * dq - coulomb * np.tanh(dq / smoothing) + stop
-            ) / inertia
-            dq = dq + dt * accel
-            q = q + dt * dq
-    shape = intended.shape
+        true_q[k], true_dq[k], true_tau[k] = q, dq, hand(index, q, dq)
+        if k == n_samples - 1:
+            break
+        for _ in range(steps):
+            k1v, k1a = dq, accel(index, q, dq)
+            k2v = dq + 0.5 * dt * k1a
+            k2a = accel(index + 1, q + 0.5 * dt * k1v, k2v)
+            k3v = dq + 0.5 * dt * k2a
+            k3a = accel(index + 1, q + 0.5 * dt * k2v, k3v)
+            k4v = dq + dt * k3a
+            k4a = accel(index + 2, q + dt * k3v, k4v)
+            q = q + dt / 6 * (k1v + 2 * k2v + 2 * k3v + k4v)
+            dq = dq + dt / 6 * (k1a + 2 * k2a + 2 * k3a + k4a)
+            index += 2
+    samples = slice(None, None, 2 * steps)
+    shape = true_q.shape
     return TeachingRecord(
-        t=t,
+        t=fine_t[samples].copy(),
         position=true_q + scenario.position_noise_std * rng.normal(size=shape),
         velocity=true_dq + scenario.velocity_noise_std * rng.normal(size=shape),
         torque=true_tau + scenario.torque_noise_std * rng.normal(size=shape),
-        hand_stiffness_truth=hand_k,
+        hand_stiffness_truth=hand_k[samples].copy(),
         hand_damping=hand_d,
-        intended_position=intended,
-        dither_torque=dither[:, 0],
+        intended_position=intended[samples].copy(),
+        intended_velocity=intended_velocity[samples].copy(),
+        dither_torque=dither[samples].copy(),
         joint_names=scenario.joint_names,
         seed=int(seed),
         skill=scenario.skill,

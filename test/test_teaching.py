@@ -26,7 +26,7 @@ def test_measured_torque_is_the_hand_spring_damper(noise_free):
     # The record's torque is the model's hand torque at every sample (no noise configured):
     # tau = K_h (q_h - q) + D_h (dq_h - dq).
     rec = noise_free
-    dq_h = np.gradient(rec.intended_position, rec.t, axis=0)
+    dq_h = rec.intended_velocity
     expected = rec.hand_stiffness_truth * (rec.intended_position - rec.position) + (
         rec.hand_damping * (dq_h - rec.velocity)
     )
@@ -110,6 +110,11 @@ def test_estimator_recovers_hand_stiffness(seed):
     error = np.abs(series.stiffness[steady] - truth[steady]) / truth[steady]
     assert np.median(error) < 0.05
     assert np.percentile(error, 95) < 0.15
+    # The reported standard deviation is of the right size: at least 90 % of the errors lie
+    # within three reported standard deviations, and the median z-score is between 0.2 and 2.
+    z = np.abs(series.stiffness[steady] - truth[steady]) / series.stiffness_std[steady]
+    assert np.mean(z < 3) > 0.9
+    assert 0.2 < np.median(z) < 2
     # The online estimator fed from the stream in 10-sample chunks gives the same numbers.
     estimator = SlidingStiffnessEstimator(
         len(scenario.joints), rate_hz=scenario.rate_hz, **settings
