@@ -15,6 +15,7 @@ import math
 from collections.abc import Iterator
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
@@ -287,6 +288,55 @@ def _dither(scenario: TeachingScenario, rng: np.random.Generator, times: np.ndar
     return scenario.dither_amplitude / 3.0 * np.sin(angle).sum(axis=-2)
 
 
+@numba.njit(cache=True, nogil=True)
+def _accel(j, index, q, dq, inputs, params):  # pragma: no cover - compiled
+    intended, intended_velocity, hand_k, dither = inputs
+    inertia, bearing, coulomb, smoothing, lower, upper, stop_k, stop_d, hand_d = params
+    hand = hand_k[index, j] * (intended[index, j] - q) + hand_d[j] * (
+        intended_velocity[index, j] - dq
+    )
+    over = max(q - upper[j], 0.0) + min(q - lower[j], 0.0)
+    stop = -stop_k[j] * over - (stop_d[j] * dq if over != 0.0 else 0.0)
+    friction = bearing[j] * dq + coulomb[j] * math.tanh(dq / smoothing[j])
+    return (hand + dither[index, j] - friction + stop) / inertia[j]
+
+
+@numba.njit(cache=True, nogil=True)
+def _integrate(inputs, params, dt, steps, n_samples):  # pragma: no cover - compiled
+    """Classical RK4 per joint on inputs sampled every dt/2; states at every sample."""
+    intended, intended_velocity, hand_k, _ = inputs
+    hand_d = params[8]
+    n_joints = intended.shape[1]
+    true_q = np.empty((n_samples, n_joints))
+    true_dq = np.empty((n_samples, n_joints))
+    true_tau = np.empty((n_samples, n_joints))
+    for j in range(n_joints):
+        q = intended[0, j]
+        dq = intended_velocity[0, j]
+        index = 0
+        for k in range(n_samples):
+            true_q[k, j] = q
+            true_dq[k, j] = dq
+            true_tau[k, j] = hand_k[index, j] * (intended[index, j] - q) + hand_d[j] * (
+                intended_velocity[index, j] - dq
+            )
+            if k == n_samples - 1:
+                break
+            for _ in range(steps):
+                k1v = dq
+                k1a = _accel(j, index, q, dq, inputs, params)
+                k2v = dq + 0.5 * dt * k1a
+                k2a = _accel(j, index + 1, q + 0.5 * dt * k1v, k2v, inputs, params)
+                k3v = dq + 0.5 * dt * k2a
+                k3a = _accel(j, index + 1, q + 0.5 * dt * k2v, k3v, inputs, params)
+                k4v = dq + dt * k3a
+                k4a = _accel(j, index + 2, q + dt * k3v, k4v, inputs, params)
+                q = q + dt / 6.0 * (k1v + 2.0 * k2v + 2.0 * k3v + k4v)
+                dq = dq + dt / 6.0 * (k1a + 2.0 * k2a + 2.0 * k3a + k4a)
+                index += 2
+    return true_q, true_dq, true_tau
+
+
 def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
     """Simulate one kinesthetic demonstration.
 
@@ -324,46 +374,21 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
     hand_k, _ = _through_waypoints(fine_t, times, stiffness)
     dither = _dither(scenario, rng, fine_t)
     joints = scenario.joints
-    inertia = np.array([j.inertia for j in joints])
-    bearing = np.array([j.viscous_damping for j in joints])
-    coulomb = np.array([j.coulomb_friction for j in joints])
-    smoothing = np.array([j.friction_smoothing_velocity for j in joints])
-    lower = np.array([j.lower_limit for j in joints])
-    upper = np.array([j.upper_limit for j in joints])
-    stop_k = np.array([j.limit_stiffness for j in joints])
-    stop_d = np.array([j.limit_damping for j in joints])
-    hand_d = np.array(scenario.hand_damping)
-
-    def hand(index: int, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
-        return hand_k[index] * (intended[index] - q) + hand_d * (intended_velocity[index] - dq)
-
-    def accel(index: int, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
-        over = np.maximum(q - upper, 0) + np.minimum(q - lower, 0)
-        stop = -stop_k * over - np.where(over != 0, stop_d * dq, 0.0)
-        friction = bearing * dq + coulomb * np.tanh(dq / smoothing)
-        return (hand(index, q, dq) + dither[index] - friction + stop) / inertia
-
-    q = intended[0].copy()
-    dq = intended_velocity[0].copy()
-    true_q = np.empty((n_samples, len(joints)))
-    true_dq = np.empty_like(true_q)
-    true_tau = np.empty_like(true_q)
-    index = 0
-    for k in range(n_samples):
-        true_q[k], true_dq[k], true_tau[k] = q, dq, hand(index, q, dq)
-        if k == n_samples - 1:
-            break
-        for _ in range(steps):
-            k1v, k1a = dq, accel(index, q, dq)
-            k2v = dq + 0.5 * dt * k1a
-            k2a = accel(index + 1, q + 0.5 * dt * k1v, k2v)
-            k3v = dq + 0.5 * dt * k2a
-            k3a = accel(index + 1, q + 0.5 * dt * k2v, k3v)
-            k4v = dq + dt * k3a
-            k4a = accel(index + 2, q + dt * k3v, k4v)
-            q = q + dt / 6 * (k1v + 2 * k2v + 2 * k3v + k4v)
-            dq = dq + dt / 6 * (k1a + 2 * k2a + 2 * k3a + k4a)
-            index += 2
+    params = tuple(
+        np.array([getattr(joint, name) for joint in joints], dtype=float)
+        for name in (
+            "inertia",
+            "viscous_damping",
+            "coulomb_friction",
+            "friction_smoothing_velocity",
+            "lower_limit",
+            "upper_limit",
+            "limit_stiffness",
+            "limit_damping",
+        )
+    ) + (np.array(scenario.hand_damping, dtype=float),)
+    inputs = (intended, intended_velocity, hand_k, dither)
+    true_q, true_dq, true_tau = _integrate(inputs, params, dt, steps, n_samples)
     samples = slice(None, None, 2 * steps)
     shape = true_q.shape
     return TeachingRecord(
@@ -372,7 +397,7 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
         velocity=true_dq + scenario.velocity_noise_std * rng.normal(size=shape),
         torque=true_tau + scenario.torque_noise_std * rng.normal(size=shape),
         hand_stiffness_truth=hand_k[samples].copy(),
-        hand_damping=hand_d,
+        hand_damping=params[-1],
         intended_position=intended[samples].copy(),
         intended_velocity=intended_velocity[samples].copy(),
         dither_torque=dither[samples].copy(),
