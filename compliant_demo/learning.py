@@ -151,7 +151,9 @@ def _align(
     summary: dict[str, Any] = {"method": alignment, "durations_s": durations}
     if alignment == "dtw" and len(demos) > 1:
         aligned = align_demonstrations(
-            [DemoArrays(d.t, d.position, {"stiffness": d.stiffness} if with_stiffness else {})
+            [DemoArrays(d.t, d.position,
+                        {"stiffness": d.stiffness} if with_stiffness and d.stiffness is not None
+                        else {})
              for d in demos],
             band=band, n_out=n_samples,
         )
@@ -168,7 +170,8 @@ def _align(
                 )
         time = demos[0].t
         positions = np.stack([d.position for d in demos])
-        stiffness = np.stack([d.stiffness for d in demos]) if with_stiffness else None
+        stiffness = (np.stack([d.stiffness for d in demos if d.stiffness is not None])
+                     if with_stiffness else None)
     elif alignment in ("resample", "dtw"):
         # Normalised-time resampling; also the DTW path for a single demonstration.
         count = int(np.median([d.t.size for d in demos])) if n_samples is None else n_samples
@@ -268,16 +271,15 @@ def learn_skill(
         if stiffness_range is None:
             raise InvalidInputError("stiffness_range: stiffness from variability needs the "
                                     "target joint's (k_min, k_max), got None")
+        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range")
 
     time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
+    stiffness: NDArray[np.float64] | None = recorded
     if source == "variability":
-        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range")
         profile = stiffness_from_variability(variance, k_range[:, 0], k_range[:, 1],
                                              n_demos=len(normalised),
                                              variance_floor=variance_floor)
         stiffness = np.broadcast_to(profile, positions.shape)
-    else:
-        stiffness = recorded
     if smoothing_window is None and summary.get("dtw_costs") is not None:
         smoothing_window = max(5, 2 * int(0.015 * time.size) + 1)
         summary["smoothing_window"] = smoothing_window

@@ -507,7 +507,7 @@ class DampingPolicy(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
     kind: Literal["ratio", "learned"] = "ratio"
-    zeta: float = Field(0.7, gt=0, allow_inf_nan=False, description="Damping ratio, 1.")
+    zeta: float = Field(default=0.7, gt=0, allow_inf_nan=False, description="Damping ratio, 1.")
 
 
 class Provenance(BaseModel):
@@ -578,7 +578,7 @@ class Skill(BaseModel):
     @model_validator(mode="after")
     def _shapes_agree(self) -> Skill:
         n_joints = len(self.joints)
-        tables = {
+        tables: dict[str, Sequence[Any]] = {
             "start": self.start, "goal": self.goal, "amplitude": self.amplitude,
             "weights": self.weights, "stiffness_log_weights": self.stiffness_log_weights,
             "stiffness_range": self.stiffness_range,
@@ -651,7 +651,7 @@ class Skill(BaseModel):
                           n_joints, "stiffness_range")
 
         n_samples = int(round(horizon / dt)) + 1
-        t = np.arange(n_samples) * dt
+        t = np.asarray(np.arange(n_samples) * dt, dtype=np.float64)
         x = self.dmp.basis.phase(t / tau)
         phi = _normalise(self.dmp.basis.activations(x))
         forcing = self.dmp.forcing(phi, x, start_arr, goal_arr)

@@ -243,20 +243,18 @@ def test_basis_count_below_two(demo, n_basis):
         _skill(demo, n_basis=n_basis)
 
 
-def test_nan_in_position(demo):
-    t, q, k = demo
-    bad = q.copy()
-    bad[17, 1] = np.nan
-    with pytest.raises(InvalidInputError, match=r"position: non-finite value nan at index \(17, 1"):
-        fit_skill(t, bad, k, joints=JOINTS)
-
-
-def test_nan_in_stiffness(demo):
-    t, q, k = demo
-    bad = k.copy()
-    bad[3, 0] = np.inf
-    with pytest.raises(InvalidInputError, match=r"stiffness: non-finite value inf at index"):
-        fit_skill(t, q, bad, joints=JOINTS)
+@pytest.mark.parametrize(
+    ("channel", "index", "value", "message"),
+    [
+        (1, (17, 1), np.nan, r"position: non-finite value nan at index \(17, 1\)"),
+        (2, (3, 0), np.inf, r"stiffness: non-finite value inf at index \(3, 0\)"),
+    ],
+)
+def test_non_finite_samples(demo, channel, index, value, message):
+    arrays = [array.copy() for array in demo]
+    arrays[channel][index] = value
+    with pytest.raises(InvalidInputError, match=message):
+        fit_skill(*arrays, joints=JOINTS)
 
 
 def test_non_increasing_time(demo):
