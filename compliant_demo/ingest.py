@@ -104,7 +104,7 @@ class SampleChecker:
         self.nominal_period_s = 1.0 / nominal_rate_hz
         self.gap_threshold_s = gap_factor / nominal_rate_hz
         self.last_stamp: float | None = None
-        self._layouts: dict[tuple[str, ...], tuple[np.ndarray | None, bool, bool]] = {}
+        self._layouts: dict[tuple[str, ...], tuple[tuple[int, ...] | None, bool, bool]] = {}
 
     def reset(self) -> None:
         """Forget the previous stamp (a new demonstration starts)."""
@@ -118,7 +118,7 @@ class SampleChecker:
         position: Sequence[float],
         velocity: Sequence[float],
         effort: Sequence[float],
-    ) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    ) -> tuple[Sequence[float], Sequence[float], Sequence[float]] | None:
         """Validate one message; return (position, velocity, effort) in joint order, or None.
 
         Parameters
@@ -132,7 +132,12 @@ class SampleChecker:
 
         Returns
         -------
-        (q, qd, tau) : three (n_joints,) arrays, or None when the message is rejected.
+        (q, qd, tau) : three (n_joints,) float sequences, or None when the message is rejected.
+
+        Notes
+        -----
+        Plain Python on purpose: at several kHz a per-message numpy call costs more than the
+        checks themselves; arrays are built once per chunk in the writer thread.
         """
         counters.received += 1
         n = len(names)
@@ -145,10 +150,17 @@ class SampleChecker:
             return None
         if unknown:
             counters.unknown_joints += 1
-        values = np.array((position, velocity, effort), dtype=float)
         if index is not None:
-            values = values[:, index]
-        if not np.isfinite(values).all() or not math.isfinite(stamp):
+            position = [position[i] for i in index]
+            velocity = [velocity[i] for i in index]
+            effort = [effort[i] for i in index]
+        isfinite = math.isfinite
+        if not (
+            isfinite(stamp)
+            and all(map(isfinite, position))
+            and all(map(isfinite, velocity))
+            and all(map(isfinite, effort))
+        ):
             counters.non_finite += 1
             return None
         if self.last_stamp is not None:
@@ -165,9 +177,9 @@ class SampleChecker:
                     0, round(step / self.nominal_period_s) - 1
                 )
         self.last_stamp = stamp
-        return values[0], values[1], values[2]
+        return position, velocity, effort
 
-    def _layout(self, names: Sequence[str]) -> tuple[np.ndarray | None, bool, bool]:
+    def _layout(self, names: Sequence[str]) -> tuple[tuple[int, ...] | None, bool, bool]:
         """Column selection for a name list (cached: publishers keep one layout)."""
         key = tuple(names)
         layout = self._layouts.get(key)
@@ -175,12 +187,9 @@ class SampleChecker:
             position_of = {name: i for i, name in enumerate(key)}
             missing = any(joint not in position_of for joint in self.joints)
             unknown = any(name not in self.joints for name in key) or len(position_of) != len(key)
-            if missing:
-                index = None
-            elif key == self.joints:
-                index = None
-            else:
-                index = np.array([position_of[joint] for joint in self.joints], dtype=np.intp)
+            index = None
+            if not missing and key != self.joints:
+                index = tuple(position_of[joint] for joint in self.joints)
             layout = (index, missing, unknown)
             if len(self._layouts) < 64:
                 self._layouts[key] = layout
@@ -206,13 +215,18 @@ class Chunk:
 
 
 class ChunkBuffer:
-    """A bounded, preallocated buffer of samples; :meth:`take` swaps it out in O(1).
+    """A bounded buffer of samples; :meth:`take` swaps it out and builds the arrays.
 
     Parameters
     ----------
     n_joints : int
     capacity : int
         Most samples held between two flushes; beyond it samples are refused (and counted).
+
+    Notes
+    -----
+    A sample is kept as the sequences the message brought (one list append under a lock); the
+    conversion to float64 arrays happens once per chunk in :meth:`take`, in the writer thread.
     """
 
     def __init__(self, n_joints: int, capacity: int):
@@ -223,60 +237,46 @@ class ChunkBuffer:
         self.n_joints = n_joints
         self.capacity = capacity
         self._lock = threading.Lock()
-        self._arrays = self._allocate()
-        self._size = 0
-
-    def _allocate(self) -> tuple[np.ndarray, np.ndarray]:
-        # One (capacity, 1 + 4 * n_joints) block per buffer: a single row write per sample.
-        block = np.empty((self.capacity, 1 + 4 * self.n_joints))
-        return block, block[:, 0]
+        self._rows: list[tuple[float, Sequence[float], Sequence[float], Sequence[float],
+                               Sequence[float]]] = []
 
     def __len__(self) -> int:
-        return self._size
+        return len(self._rows)
 
     @property
     def fill_fraction(self) -> float:
         """Fraction of the capacity in use (0 to 1)."""
-        return self._size / self.capacity
+        return len(self._rows) / self.capacity
 
     def append(
         self,
         stamp: float,
-        position: np.ndarray,
-        velocity: np.ndarray,
-        torque: np.ndarray,
-        reference: np.ndarray,
+        position: Sequence[float],
+        velocity: Sequence[float],
+        torque: Sequence[float],
+        reference: Sequence[float],
     ) -> bool:
-        """Add one sample; False when the buffer is full and the sample was not kept."""
-        j = self.n_joints
+        """Add one sample (sequences of n_joints floats); False when full and not kept."""
         with self._lock:
-            if self._size >= self.capacity:
+            if len(self._rows) >= self.capacity:
                 return False
-            row = self._arrays[0][self._size]
-            row[0] = stamp
-            row[1 : 1 + j] = position
-            row[1 + j : 1 + 2 * j] = velocity
-            row[1 + 2 * j : 1 + 3 * j] = torque
-            row[1 + 3 * j :] = reference
-            self._size += 1
+            self._rows.append((stamp, position, velocity, torque, reference))
         return True
 
     def take(self) -> Chunk | None:
-        """Remove and return everything buffered, or None when empty."""
+        """Remove and return everything buffered as arrays, or None when empty."""
         with self._lock:
-            if self._size == 0:
-                return None
-            block, size = self._arrays[0], self._size
-            self._arrays = self._allocate()
-            self._size = 0
-        j = self.n_joints
-        rows = block[:size]
+            rows, self._rows = self._rows, []
+        if not rows:
+            return None
+        t, position, velocity, torque, reference = zip(*rows, strict=True)
+        shape = (len(rows), self.n_joints)
         return Chunk(
-            t=rows[:, 0].copy(),
-            position=rows[:, 1 : 1 + j].copy(),
-            velocity=rows[:, 1 + j : 1 + 2 * j].copy(),
-            torque=rows[:, 1 + 2 * j : 1 + 3 * j].copy(),
-            reference=rows[:, 1 + 3 * j :].copy(),
+            t=np.array(t, dtype=float),
+            position=np.array(position, dtype=float).reshape(shape),
+            velocity=np.array(velocity, dtype=float).reshape(shape),
+            torque=np.array(torque, dtype=float).reshape(shape),
+            reference=np.array(reference, dtype=float).reshape(shape),
         )
 
 
@@ -305,14 +305,14 @@ class MotionTrigger:
         self.stop_hold_s = stop_hold_s
         self._still_since: float | None = None
 
-    def should_start(self, velocity: np.ndarray) -> bool:
-        """True when this sample's motion should start a demonstration."""
+    def should_start(self, velocity: Sequence[float]) -> bool:
+        """True when this sample's motion (rad/s per joint) should start a demonstration."""
         self._still_since = None
-        return bool(np.max(np.abs(velocity)) > self.start_speed)
+        return max(map(abs, velocity)) > self.start_speed
 
-    def should_stop(self, stamp: float, velocity: np.ndarray) -> bool:
+    def should_stop(self, stamp: float, velocity: Sequence[float]) -> bool:
         """True once every joint has stayed below ``stop_speed`` for ``stop_hold_s``."""
-        if np.max(np.abs(velocity)) >= self.stop_speed:
+        if max(map(abs, velocity)) >= self.stop_speed:
             self._still_since = None
             return False
         if self._still_since is None:
@@ -551,7 +551,7 @@ class RecordingSession:
         self.idle_counters = IngestCounters()
         self.current: _Demonstration | None = None
         self.last_finished: _Demonstration | None = None
-        self.reference = np.full(len(checker.joints), np.nan)
+        self.reference: tuple[float, ...] = (math.nan,) * len(checker.joints)
         self.reference_rejected = 0
         self.messages_seen = 0
         self._seen_at_last_health = 0
@@ -585,8 +585,8 @@ class RecordingSession:
 
     def set_reference(self, values: Sequence[float]) -> bool:
         """Hold an external stiffness reference, one value per joint, N*m/rad; False if refused."""
-        values = np.asarray(values, dtype=float)
-        if values.shape != self.reference.shape or not np.isfinite(values).all():
+        values = tuple(float(v) for v in values)
+        if len(values) != len(self.reference) or not all(map(math.isfinite, values)):
             self.reference_rejected += 1
             return False
         self.reference = values
@@ -659,7 +659,7 @@ class RecordingSession:
         self,
         demonstration: _Demonstration,
         stamp: float,
-        sample: tuple[np.ndarray, np.ndarray, np.ndarray],
+        sample: tuple[Sequence[float], Sequence[float], Sequence[float]],
     ) -> bool:
         if demonstration.buffer.append(stamp, *sample, self.reference):
             demonstration.counters.accepted += 1

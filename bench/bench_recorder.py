@@ -1,0 +1,278 @@
+"""Recorder benchmark over loopback DDS with real processes: sample loss, throughput, CPU.
+
+Runs the recorder node (``python -m compliant_demo.nodes.recorder``) against a publisher process
+that sends 7-joint sensor_msgs/JointState:
+
+- ``loss_1khz_7j``: fraction of published samples missing from the store after 60 s at 1 kHz
+  (``--seconds-1khz``), with ``recorder_cpu_fraction_1khz`` (recorder CPU seconds per wall
+  second over the publishing window, from psutil).
+- ``loss_5khz_7j``: the same for 20 s at 5 kHz (``--seconds-5khz``).
+- ``throughput_vs_bare_subscriber``: messages per second the recording recorder takes in while a
+  publisher floods it as fast as it can, divided by what a bare rclpy subscriber that only
+  counts (same QoS, same executor as our nodes) takes in from the same flood, measured in the
+  same run.
+
+Every process gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST and ROS_DOMAIN_ID 131-133. Prints one
+JSON object per measurement; the last line is ``{"bench": "recorder", ...}``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+if str(ROOT) not in sys.path:  # run as a plain script from a source checkout
+    sys.path.insert(0, str(ROOT))
+JOINTS = [f"joint{i}" for i in range(1, 8)]
+QUEUE_DEPTH = 5000
+
+
+def _env(domain_id: int) -> dict[str, str]:
+    env = dict(os.environ)
+    env.update(ROS_AUTOMATIC_DISCOVERY_RANGE="LOCALHOST", ROS_DOMAIN_ID=str(domain_id))
+    env["PYTHONPATH"] = os.pathsep.join(p for p in (str(ROOT), env.get("PYTHONPATH")) if p)
+    env["PYTHONUNBUFFERED"] = "1"
+    return env
+
+
+# -- child process roles ------------------------------------------------------------------------
+
+
+def _init_ros(name: str):
+    import rclpy
+    from rclpy.node import Node
+
+    rclpy.init()
+    return rclpy, Node(name)
+
+
+def _publisher_main(rate_hz: float, seconds: float, control: bool) -> None:
+    """Publish 7-joint JointState at ``rate_hz`` (0 = as fast as possible) for ``seconds``."""
+    from sensor_msgs.msg import JointState
+    from std_srvs.srv import Trigger
+
+    from compliant_demo.nodes._common import recorded_qos, to_stamp
+
+    rclpy, node = _init_ros("bench_publisher")
+    publisher = node.create_publisher(JointState, "joint_states", recorded_qos(QUEUE_DEPTH))
+    deadline = time.monotonic() + 30.0
+    while publisher.get_subscription_count() < 1 and time.monotonic() < deadline:
+        rclpy.spin_once(node, timeout_sec=0.05)
+
+    def trigger(service: str) -> None:
+        client = node.create_client(Trigger, service)
+        if not client.wait_for_service(timeout_sec=30.0):
+            raise SystemExit(f"service {service} not available")
+        future = client.call_async(Trigger.Request())
+        rclpy.spin_until_future_complete(node, future, timeout_sec=30.0)
+        print(json.dumps({"service": service, "reply": future.result().message}), flush=True)
+
+    if control:
+        trigger("start")
+    time.sleep(0.5)
+    message = JointState()
+    message.name = JOINTS
+    values = [0.0] * len(JOINTS)
+    start_wall = time.time()
+    start = time.monotonic()
+    print(json.dumps({"event": "publishing"}), flush=True)
+    sent = 0
+    period = 1.0 / rate_hz if rate_hz > 0 else 0.0
+    while True:
+        elapsed = time.monotonic() - start
+        if elapsed >= seconds:
+            break
+        due = int(elapsed / period) + 1 if period else sent + 100
+        while sent < due:
+            message.header.stamp = to_stamp(start_wall + sent * (period or 1e-6))
+            values[0] = sent * 1e-6
+            message.position = values
+            message.velocity = values
+            message.effort = values
+            publisher.publish(message)
+            sent += 1
+        if period:
+            time.sleep(min(0.0005, period))
+    wall = time.monotonic() - start
+    print(json.dumps({"event": "published", "sent": sent, "seconds": wall}), flush=True)
+    time.sleep(1.5)  # let the subscriber drain before stop
+    if control:
+        trigger("stop")
+    node.destroy_node()
+    rclpy.try_shutdown()
+
+
+def _bare_main() -> None:
+    """Count JointState messages until SIGINT; print the count."""
+    from rclpy.executors import ExternalShutdownException
+    from sensor_msgs.msg import JointState
+
+    from compliant_demo.nodes._common import _executor, recorded_qos
+
+    rclpy, node = _init_ros("bench_bare_subscriber")
+    count = [0]
+
+    def on_message(_message) -> None:
+        count[0] += 1
+
+    node.create_subscription(JointState, "joint_states", on_message, recorded_qos(QUEUE_DEPTH))
+    executor = _executor()
+    executor.add_node(node)
+    try:
+        while rclpy.ok():
+            executor.spin_once(timeout_sec=0.1)
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+    print(json.dumps({"received": count[0]}), flush=True)
+
+
+# -- orchestration ------------------------------------------------------------------------------
+
+
+def _start_recorder(store: Path, domain_id: int, log: Path) -> subprocess.Popen:
+    joints = "[" + ", ".join(JOINTS) + "]"
+    command = [
+        sys.executable, "-m", "compliant_demo.nodes.recorder", "--ros-args",
+        "-p", f"store_path:={store}", "-p", f"joints:={joints}",
+        "-p", "stiffness_source:=none", "-p", f"queue_depth:={QUEUE_DEPTH}",
+        "-p", "nominal_rate_hz:=1000.0",
+    ]  # fmt: skip
+    return subprocess.Popen(command, env=_env(domain_id), stdout=log.open("wb"),
+                            stderr=subprocess.STDOUT)
+
+
+def _run_publisher(rate_hz: float, seconds: float, domain_id: int, control: bool,
+                   watch_pid: int | None = None) -> dict:
+    import psutil
+
+    command = [sys.executable, str(Path(__file__).resolve()), "--role", "publisher",
+               "--rate", str(rate_hz), "--seconds", str(seconds)]
+    if control:
+        command.append("--control")
+    process = subprocess.Popen(command, env=_env(domain_id), stdout=subprocess.PIPE, text=True)
+    watched = psutil.Process(watch_pid) if watch_pid else None
+    result: dict = {}
+    cpu_start = wall_start = None
+    for line in process.stdout:
+        event = json.loads(line)
+        if event.get("event") == "publishing" and watched is not None:
+            times = watched.cpu_times()
+            cpu_start, wall_start = times.user + times.system, time.monotonic()
+        elif event.get("event") == "published":
+            result.update(event)
+            if watched is not None and cpu_start is not None:
+                times = watched.cpu_times()
+                cpu = times.user + times.system - cpu_start
+                result["cpu_fraction"] = cpu / (time.monotonic() - wall_start)
+    if process.wait(120) != 0:
+        raise SystemExit(f"publisher failed with {process.returncode}")
+    return result
+
+
+def _stop(process: subprocess.Popen) -> None:
+    process.send_signal(signal.SIGINT)
+    try:
+        process.wait(30)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait()
+
+
+def _stored_samples(store: Path) -> list[int]:
+    from compliant_demo.store import DemoStore
+
+    with DemoStore(store, read_only=True) as db:
+        return [info.n_samples for info in db.find_demonstrations()]
+
+
+def _loss_run(rate_hz: float, seconds: float, domain_id: int, work: Path) -> dict:
+    store = work / f"loss_{int(rate_hz)}.sqlite"
+    recorder = _start_recorder(store, domain_id, work / f"recorder_{int(rate_hz)}.log")
+    try:
+        published = _run_publisher(rate_hz, seconds, domain_id, True, recorder.pid)
+    finally:
+        _stop(recorder)
+    (stored,) = _stored_samples(store)
+    loss = 1.0 - stored / published["sent"]
+    row = {"bench": "recorder_loss", "rate_hz": rate_hz, "joints": len(JOINTS),
+           "seconds": round(published["seconds"], 2), "published": published["sent"],
+           "stored": stored, "loss": loss,
+           "recorder_cpu_fraction": round(published["cpu_fraction"], 4)}
+    print(json.dumps(row), flush=True)
+    return row
+
+
+def _flood_run(seconds: float, domain_id: int, work: Path) -> dict:
+    bare = subprocess.Popen(
+        [sys.executable, str(Path(__file__).resolve()), "--role", "bare"],
+        env=_env(domain_id + 1), stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        flood_bare = _run_publisher(0.0, seconds, domain_id + 1, False)
+        time.sleep(1.0)
+    finally:
+        bare.send_signal(signal.SIGINT)
+    bare_received = json.loads(bare.communicate(timeout=30)[0].strip().splitlines()[-1])
+    bare_rate = bare_received["received"] / flood_bare["seconds"]
+
+    store = work / "flood.sqlite"
+    recorder = _start_recorder(store, domain_id, work / "recorder_flood.log")
+    try:
+        flood_recorder = _run_publisher(0.0, seconds, domain_id, True, recorder.pid)
+    finally:
+        _stop(recorder)
+    (stored,) = _stored_samples(store)
+    recorder_rate = stored / flood_recorder["seconds"]
+    row = {"bench": "recorder_flood", "seconds": seconds,
+           "bare_published": flood_bare["sent"], "bare_received": bare_received["received"],
+           "bare_msgs_per_s": round(bare_rate), "recorder_published": flood_recorder["sent"],
+           "recorder_stored": stored, "recorder_msgs_per_s": round(recorder_rate),
+           "ratio": recorder_rate / bare_rate}
+    print(json.dumps(row), flush=True)
+    return row
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--role", choices=("bench", "publisher", "bare"), default="bench")
+    parser.add_argument("--rate", type=float, default=1000.0)
+    parser.add_argument("--seconds", type=float, default=10.0)
+    parser.add_argument("--control", action="store_true")
+    parser.add_argument("--seconds-1khz", type=float, default=60.0)
+    parser.add_argument("--seconds-5khz", type=float, default=20.0)
+    parser.add_argument("--seconds-flood", type=float, default=10.0)
+    args = parser.parse_args()
+    if args.role == "publisher":
+        _publisher_main(args.rate, args.seconds, args.control)
+        return
+    if args.role == "bare":
+        _bare_main()
+        return
+    with tempfile.TemporaryDirectory(prefix="bench_recorder_") as folder:
+        work = Path(folder)
+        slow = _loss_run(1000.0, args.seconds_1khz, 131, work)
+        fast = _loss_run(5000.0, args.seconds_5khz, 131, work)
+        flood = _flood_run(args.seconds_flood, 132, work)
+    print(json.dumps({
+        "bench": "recorder",
+        "loss_1khz_7j": slow["loss"],
+        "loss_5khz_7j": fast["loss"],
+        "throughput_vs_bare_subscriber": round(flood["ratio"], 3),
+        "recorder_cpu_fraction_1khz": slow["recorder_cpu_fraction"],
+        "seconds_1khz": slow["seconds"],
+        "seconds_5khz": fast["seconds"],
+        "bare_msgs_per_s": flood["bare_msgs_per_s"],
+        "recorder_msgs_per_s": flood["recorder_msgs_per_s"],
+    }), flush=True)
+
+
+if __name__ == "__main__":
+    main()
