@@ -16,7 +16,7 @@ from scipy.integrate import solve_ivp
 
 from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
-from compliant_demo.sim.integrate import GRAVITY
+from compliant_demo.sim.integrate import CONTACT_DAMPING_DEPTH, GRAVITY
 from compliant_demo.sim.mechanisms import antagonistic_motor_angles
 from compliant_demo.sim.schedule import compile_schedules
 
@@ -42,6 +42,11 @@ def _targets(mechanism, eq: np.ndarray, k: np.ndarray, d: np.ndarray | None) -> 
         )
     theta1, theta2, _, _ = antagonistic_motor_angles(mechanism, eq, k)
     return np.concatenate([theta1, theta2])
+
+
+def _ramp(penetration: np.ndarray) -> np.ndarray:
+    """Share of the contact damping acting at this penetration (ramps in, see contact_force)."""
+    return np.minimum(penetration / CONTACT_DAMPING_DEPTH, 1.0)
 
 
 def _tension(phi: np.ndarray, p: AntagonisticParams) -> np.ndarray:
@@ -113,13 +118,15 @@ def reference_solve(
             )
         tau = tau - viscous * dq - coulomb * np.tanh(dq / v_smooth) - mgl * np.sin(q - offset)
         below, above = lower - q, q - upper
-        tau = tau + np.where(below > 0, np.maximum(k_stop * below - b_stop * dq, 0.0), 0.0)
-        tau = tau - np.where(above > 0, np.maximum(k_stop * above + b_stop * dq, 0.0), 0.0)
+        push_up = np.maximum(k_stop * below - b_stop * dq * _ramp(below), 0)
+        push_down = np.maximum(k_stop * above + b_stop * dq * _ramp(above), 0)
+        tau = tau + np.where(below > 0, push_up, 0) - np.where(above > 0, push_down, 0)
         tau = tau + compiled.torque_at(scenario, t, k)
         for j, surface, side, k_wall, b_wall in walls:
             penetration = side * (q[j] - surface)
             if penetration > 0:
-                tau[j] -= side * max(k_wall * penetration + b_wall * side * dq[j], 0.0)
+                damping_force = b_wall * side * dq[j] * min(penetration / CONTACT_DAMPING_DEPTH, 1)
+                tau[j] -= side * max(k_wall * penetration + damping_force, 0.0)
         act_rate = np.clip((targets - act) / lag, -rate, rate)
         return np.concatenate([dq * free, tau / inertia * free, act_rate])
 
