@@ -619,7 +619,10 @@ class Skill(BaseModel):
 
         Parameters
         ----------
-        start, goal : (n_joints,) array, rad; default the demonstrated ones
+        start : (n_joints,) array, rad; default the demonstrated start
+        goal : (n_joints,) array, rad, default the demonstrated goal; or a moving goal
+            (n_samples, n_joints) sampled at the rollout's times t = 0, dt, ..., horizon_s (the
+            goal-robust form is made for this, Hoffmann et al. 2009)
         duration_s : movement duration tau, s; default the demonstrated one. The phase, and with
             it the stiffness profile, stretches with it.
         dt : sample step, s
@@ -634,11 +637,8 @@ class Skill(BaseModel):
         """
         n_joints = len(self.joints)
         start_arr = _per_joint(start, n_joints, "start")
-        goal_arr = _per_joint(goal, n_joints, "goal")
         start_arr = np.asarray(self.start) if start_arr is None else start_arr
-        goal_arr = np.asarray(self.goal) if goal_arr is None else goal_arr
         self._check_limits(start_arr, "start")
-        self._check_limits(goal_arr, "goal")
         tau = self.duration_s if duration_s is None else float(duration_s)
         if not math.isfinite(tau) or tau <= 0:
             raise InvalidInputError(f"duration_s: need a positive duration, got {duration_s!r}")
@@ -651,16 +651,43 @@ class Skill(BaseModel):
                           n_joints, "stiffness_range")
 
         n_samples = int(round(horizon / dt)) + 1
+        goal_arr = self._goal(goal, n_samples)
         t = np.asarray(np.arange(n_samples) * dt, dtype=np.float64)
         x = self.dmp.basis.phase(t / tau)
         phi = _normalise(self.dmp.basis.activations(x))
-        forcing = self.dmp.forcing(phi, x, start_arr, goal_arr)
-        position, velocity, acceleration = self.dmp.integrate(forcing, start_arr, goal_arr, dt, tau)
+        if goal_arr.ndim == 1:
+            forcing = self.dmp.forcing(phi, x, start_arr, goal_arr)
+            position, velocity, acceleration = self.dmp.integrate(forcing, start_arr, goal_arr,
+                                                                  dt, tau)
+        else:
+            # Moving goal: integrate y itself (reference 0) with the spring's pull K*g(t) moved
+            # into the input; the forcing gains follow g(t) sample by sample.
+            shaped, decaying = self.dmp._input_gains(start_arr[np.newaxis], goal_arr)
+            drive = (self.dmp._shape(phi, x) * shaped + x[:, np.newaxis] * decaying
+                     + self.dmp.alpha_z * self.dmp.beta_z * goal_arr)
+            position, velocity, acceleration = self.dmp.integrate(
+                drive, start_arr, np.zeros(n_joints), dt, tau)
         stiffness = np.clip(np.exp(phi @ np.asarray(self.stiffness_log_weights).T),
                             k_range[:, 0], k_range[:, 1])
         damping = self._damping(phi, stiffness, target_inertia)
         return Rollout(t, position, velocity, acceleration, stiffness, damping,
                        tuple(self.joints), tau)
+
+    def _goal(self, goal: ArrayLike | None, n_samples: int) -> NDArray[np.float64]:
+        """Fixed goal (n_joints,) or moving goal (n_samples, n_joints), validated, rad."""
+        n_joints = len(self.joints)
+        if goal is None:
+            return np.asarray(self.goal, dtype=float)
+        array = _finite_array(goal, "goal")
+        if array.ndim == 2:
+            if array.shape != (n_samples, n_joints):
+                raise InvalidInputError(f"goal: a moving goal needs shape ({n_samples}, "
+                                        f"{n_joints}), got {array.shape}")
+        else:
+            array = _per_joint(array, n_joints, "goal")
+            assert array is not None
+        self._check_limits(array, "goal")
+        return array
 
     def _check_limits(self, value: NDArray[np.float64], name: str) -> None:
         if self.position_limits is None:
@@ -668,10 +695,11 @@ class Skill(BaseModel):
         limits = np.asarray(self.position_limits)
         outside = (value < limits[:, 0]) | (value > limits[:, 1])
         if np.any(outside):
-            j = int(np.argmax(outside))
+            index = tuple(int(i) for i in np.argwhere(outside)[0])
+            j = index[-1]
             raise InvalidInputError(
-                f"{name}: {float(value[j])!r} rad for joint {self.joints[j]!r} is outside its "
-                f"limits [{limits[j, 0]}, {limits[j, 1]}] rad"
+                f"{name}: {float(value[index])!r} rad for joint {self.joints[j]!r} is outside "
+                f"its limits [{limits[j, 0]}, {limits[j, 1]}] rad"
             )
 
     def _damping(
