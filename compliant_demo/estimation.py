@@ -131,7 +131,10 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, with_rate: bool):
         if method == "tls":
             spread = m_yy - ratio * m_xx
             root = np.sqrt(spread * spread + 4.0 * ratio * m_xy * m_xy)
-            slope = (spread + root) / (2.0 * m_xy)
+            # Two algebraically equal forms; each avoids the cancellation of the other.
+            slope = np.where(
+                spread >= 0, (spread + root) / (2.0 * m_xy), 2.0 * ratio * m_xy / (root - spread)
+            )
             sigma_uu = (m_yy - 2.0 * slope * m_xy + slope * slope * m_xx) / (ratio + slope * slope)
             sigma_uu = np.maximum(sigma_uu * df_scale, 0.0)
             sigma_vv = (ratio + slope * slope) * sigma_uu

@@ -4,6 +4,8 @@ import numpy as np
 import pytest
 from dtaidistance import dtw as dtai_dtw
 from dtaidistance import dtw_ndim
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from compliant_demo.alignment import (
     AlignedSet,
@@ -243,3 +245,18 @@ def test_error_channel_length_and_reference():
         align_demonstrations([(t, np.zeros((5, 1)))], reference=3)
     with pytest.raises(InvalidInputError, match="demonstrations: need at least one, got 0"):
         align_demonstrations([])
+
+
+@settings(max_examples=40, deadline=None, derandomize=True)
+@given(seed=st.integers(0, 2**31 - 1), n=st.integers(2, 60), band=st.floats(0.01, 1.0))
+def test_dtw_is_symmetric_and_bounded_by_the_diagonal(seed, n, band):
+    rng = np.random.default_rng(seed)
+    a = rng.normal(size=(n, 3))
+    b = rng.normal(size=(n, 3))
+    cost, path = dtw(a, b, band=band)
+    reverse, reverse_path = dtw(b, a, band=band)
+    # Symmetric step pattern and band for equal lengths (Sakoe and Chiba 1978): same cost.
+    assert reverse == pytest.approx(cost, rel=1e-12)
+    # The diagonal is one admissible path, so the optimum cannot exceed it.
+    assert cost <= np.sqrt(np.sum((a - b) ** 2)) * (1 + 1e-12)
+    assert len(path) >= n and len(reverse_path) >= n

@@ -3,6 +3,8 @@
 import numpy as np
 import odrpack
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from compliant_demo.estimation import (
     SlidingStiffnessEstimator,
@@ -317,3 +319,25 @@ def test_error_variability_inputs():
         stiffness_from_variability(variance, 0.0, 2.0, n_demos=3)
     with pytest.raises(InvalidInputError, match="variance_floor must be positive, got -1"):
         stiffness_from_variability(variance, 1.0, 2.0, n_demos=3, variance_floor=-1)
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(
+    seed=st.integers(0, 2**31 - 1),
+    stiffness=st.floats(0.5, 500.0),
+    ratio=st.floats(1e-2, 1e6),
+    n=st.integers(5, 200),
+)
+def test_deming_closed_form_equals_svd_total_least_squares(seed, stiffness, ratio, n):
+    # Golub and Van Loan, Matrix Computations, section on total least squares: after scaling the
+    # deflection by sqrt(ratio) the TLS line is normal to the right singular vector of the
+    # centred data with the smallest singular value.
+    rng = np.random.default_rng(seed)
+    x = rng.normal(0, 0.01, n)
+    y = stiffness * x + rng.normal(0, 0.05, n)
+    fit = tls_fit(x, y, ratio)
+    scale = np.sqrt(ratio)
+    data = np.column_stack([scale * (x - x.mean()), y - y.mean()])
+    normal = np.linalg.svd(data, full_matrices=False)[2][-1]
+    svd_slope = -normal[0] * scale / normal[1]
+    assert fit.stiffness == pytest.approx(svd_slope, rel=1e-7, abs=1e-9)
