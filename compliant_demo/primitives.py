@@ -684,8 +684,9 @@ class Skill(BaseModel):
                 raise InvalidInputError(f"goal: a moving goal needs shape ({n_samples}, "
                                         f"{n_joints}), got {array.shape}")
         else:
-            array = _per_joint(array, n_joints, "goal")
-            assert array is not None
+            fixed = _per_joint(array, n_joints, "goal")
+            assert fixed is not None
+            array = fixed
         self._check_limits(array, "goal")
         return array
 
