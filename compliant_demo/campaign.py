@@ -13,28 +13,48 @@ store already holds.
 from __future__ import annotations
 
 import concurrent.futures as cf
+import json
+import math
 import multiprocessing
 import os
 import sys
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
 from tqdm import tqdm
 
+from compliant_demo.evaluation import outcome_metrics
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.perturbation import (
+    CampaignSpec,
+    Fixed,
+    LogUniform,
+    PerturbationSchedule,
+    Uniform,
+    draw_scenarios,
+)
+from compliant_demo.primitives import Rollout, Skill
+from compliant_demo.runtime import ReplayPlant
+from compliant_demo.sim import simulate
 
 __all__ = [
     "ScenarioOutcome",
     "CampaignJob",
+    "ReplayCampaign",
     "CampaignSummary",
+    "default_campaign_spec",
+    "perturbation_windows",
     "scenario_seed",
     "plan_batches",
     "run_batch",
     "run_campaign",
 ]
+
+#: Trace channels a campaign keeps per scenario (besides ``t``), each (n_rec, n_joints).
+TRACE_CHANNELS: tuple[str, ...] = ("q", "tau_external", "tau_mechanism", "stiffness_realised")
 
 
 @dataclass(frozen=True)
@@ -75,6 +95,193 @@ class CampaignJob(Protocol):
 
 
 @dataclass(frozen=True)
+class ReplayCampaign:
+    """A skill replayed on a simulated plant under seeded perturbations: a :class:`CampaignJob`.
+
+    Parameters
+    ----------
+    skill : the learned skill
+    plant : target joints (matched to the skill's joints by name) and mechanism
+    spec : distributions the perturbations are drawn from
+    n_scenarios : number of perturbed scenarios
+    seed : campaign seed; scenario i draws its schedule from ``scenario_seed(seed, i)``
+    duration_s : movement duration, s (None: the skill's demonstrated duration)
+    settle_s : time simulated after the movement, s
+    dt : integration step, s
+    decimation : steps per recorded trace sample
+    method : integrator of :func:`compliant_demo.sim.simulate`
+    stratify_kinds : scenario i gets kind ``sorted(spec.kinds)[i % n_kinds]``, so every kind has
+        an equal share whatever the batch; False draws kinds by the spec's weights
+    recovery_band : deviation from the unperturbed replay that counts as recovered, rad
+
+    Notes
+    -----
+    Each batch simulates its scenarios plus one unperturbed scenario in one vectorised call.
+    Deviation, recovery and peak deviation are measured against that unperturbed replay (so the
+    joint's own tracking lag under gravity is not blamed on the perturbation); goal error against
+    the rollout's goal. A scenario whose mechanism torque or angle leaves the joint's limits gets
+    status ``"violation"`` and the first violation as its reason.
+    """
+
+    skill: Skill
+    plant: ReplayPlant
+    spec: CampaignSpec
+    n_scenarios: int
+    seed: int = 0
+    duration_s: float | None = None
+    settle_s: float = 1.0
+    dt: float = 1e-3
+    decimation: int = 10
+    method: str = "rk4"
+    stratify_kinds: bool = True
+    recovery_band: float = 0.02
+
+    def __post_init__(self) -> None:
+        if self.n_scenarios < 1:
+            raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
+        if self.decimation < 1:
+            raise InvalidInputError(f"decimation = {self.decimation}: must be >= 1")
+        if not self.settle_s >= 0:
+            raise InvalidInputError(f"settle_s = {self.settle_s}: must be >= 0 s")
+        self.plant.for_joints(self.skill.joints)
+
+    def config(self) -> dict[str, Any]:
+        """JSON-ready description stored with the campaign."""
+        return {
+            "skill": self.skill.name,
+            "n_scenarios": self.n_scenarios,
+            "seed": self.seed,
+            "duration_s": self.duration_s,
+            "settle_s": self.settle_s,
+            "dt": self.dt,
+            "decimation": self.decimation,
+            "method": self.method,
+            "stratify_kinds": self.stratify_kinds,
+            "recovery_band": self.recovery_band,
+            "spec": self.spec.model_dump(mode="json"),
+            "plant": self.plant.model_dump(mode="json"),
+        }
+
+    def rollout(self) -> Rollout:
+        """The commanded schedule every scenario replays (movement plus settling)."""
+        joints = self.plant.for_joints(self.skill.joints)
+        duration = self.skill.duration_s if self.duration_s is None else self.duration_s
+        return self.skill.rollout(
+            duration_s=duration,
+            dt=self.dt,
+            target_inertia=[joint.inertia for joint in joints],
+            horizon_s=duration + self.settle_s,
+        )
+
+    def schedule(self, index: int) -> PerturbationSchedule:
+        """The perturbation schedule of scenario ``index``; the same whatever the batching."""
+        spec = self.spec
+        if self.stratify_kinds:
+            kinds = sorted(spec.kinds)
+            spec = spec.model_copy(update={"kinds": {kinds[index % len(kinds)]: 1.0}})
+        (drawn,) = draw_scenarios(spec, 1, scenario_seed(self.seed, index))
+        return drawn.model_copy(update={"name": f"{self.spec.name}_{index:05d}"})
+
+    def simulate_batch(
+        self, schedules: Sequence[PerturbationSchedule], seed: int
+    ) -> tuple[Rollout, Any]:
+        """Simulate ``schedules`` (one scenario each) under the rollout's commands."""
+        rollout = self.rollout()
+        n_steps = len(rollout.t) - 1
+        result = simulate(
+            self.plant.for_joints(self.skill.joints),
+            self.plant.mechanism,
+            rollout.position[:n_steps],
+            rollout.stiffness[:n_steps],
+            rollout.damping[:n_steps],
+            schedules=list(schedules),
+            q0=rollout.position[0],
+            dt=self.dt,
+            method=self.method,
+            decimation=self.decimation,
+            seed=seed,
+        )
+        return rollout, result
+
+    def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
+        """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each."""
+        schedules = [self.schedule(i) for i in indexes]
+        unperturbed = PerturbationSchedule(name="unperturbed")
+        rollout, result = self.simulate_batch(
+            [*schedules, unperturbed], scenario_seed(self.seed, batch_index)
+        )
+        joints = self.plant.for_joints(self.skill.joints)
+        nominal = result.q[:, -1, :]
+        final_energy = result.energy.final()
+        outcomes = []
+        for column, (index, schedule) in enumerate(zip(indexes, schedules, strict=True)):
+            onsets, ends = perturbation_windows(schedule, float(result.t[-1]))
+            metrics = outcome_metrics(
+                result.t,
+                result.q[:, column, :],
+                nominal,
+                result.tau_external[:, column, :],
+                result.tau_mechanism[:, column, :],
+                rollout.position[-1],
+                perturbation_onsets=onsets,
+                perturbation_ends=ends,
+                energy={name: value[column] for name, value in final_energy.items()},
+                joints=joints,
+                recovery_band=self.recovery_band,
+            )
+            metrics.update(_scalar_metrics(metrics))
+            reason = _first_violation(result.t, result.q[:, column, :],
+                                      result.tau_mechanism[:, column, :], joints)
+            trace = {"t": result.t.copy()}
+            trace.update({name: getattr(result, name)[:, column, :].copy()
+                          for name in TRACE_CHANNELS})
+            outcomes.append(ScenarioOutcome(
+                index=index,
+                kind="+".join(schedule.kinds) or "none",
+                status="ok" if reason is None else "violation",
+                reason=reason,
+                metrics=metrics,
+                parameters=schedule.model_dump(mode="json"),
+                trace=trace,
+            ))
+        return outcomes
+
+
+def _scalar_metrics(metrics: Mapping[str, Any]) -> dict[str, float | None]:
+    """One number per metric for distributions: the worst joint, the slowest recovery (None
+    when a perturbation was not recovered from, or there was none)."""
+    recovery = metrics["recovery_time_s"]
+    return {
+        "peak_deviation_max_rad": float(max(metrics["peak_deviation_rad"])),
+        "peak_interaction_torque_max_Nm": float(max(metrics["peak_interaction_torque_Nm"])),
+        "recovery_time_max_s": (
+            None if not recovery or any(r is None for r in recovery) else float(max(recovery))
+        ),
+    }
+
+
+def _first_violation(
+    t: np.ndarray, q: np.ndarray, torque: np.ndarray, joints: Sequence[Any]
+) -> str | None:
+    """The first sample whose angle or mechanism torque leaves a joint's limits, described."""
+    lower = np.array([joint.lower_limit for joint in joints])
+    upper = np.array([joint.upper_limit for joint in joints])
+    limit = np.array([joint.torque_limit for joint in joints])
+    over_torque = np.abs(torque) > limit
+    out_of_range = (q < lower) | (q > upper)
+    bad = np.argwhere(over_torque | out_of_range)
+    if bad.size == 0:
+        return None
+    k, j = (int(i) for i in bad[0])
+    name, when = joints[j].name, f"at t = {t[k]:.3f} s"
+    if over_torque[k, j]:
+        return (f"torque limit: {name} mechanism torque {torque[k, j]:.3g} N*m beyond "
+                f"{limit[j]:.3g} N*m {when}")
+    return (f"joint range: {name} at {q[k, j]:.3g} rad outside [{lower[j]:.3g}, "
+            f"{upper[j]:.3g}] rad {when}")
+
+
+@dataclass(frozen=True)
 class CampaignSummary:
     """What :func:`run_campaign` did.
 
@@ -84,7 +291,7 @@ class CampaignSummary:
     n_scenarios : scenarios in the campaign
     n_run : scenarios run and stored by this call
     n_skipped : scenarios already in the store (resume) and not run again
-    n_stopped : scenarios of this call whose replay a limit stopped
+    n_violations : scenarios of this call whose replay left a joint's torque or angle limits
     wall_s : wall time of this call, s
     backend : ``"inline"``, ``"processes"`` or ``"dask"``
     workers : worker processes used (Dask: workers of the cluster)
@@ -94,7 +301,7 @@ class CampaignSummary:
     n_scenarios: int
     n_run: int
     n_skipped: int
-    n_stopped: int
+    n_violations: int
     wall_s: float
     backend: str
     workers: int
@@ -103,6 +310,56 @@ class CampaignSummary:
     def scenarios_per_s(self) -> float:
         """Scenarios run per wall second by this call."""
         return self.n_run / self.wall_s if self.wall_s > 0 else float("nan")
+
+
+def default_campaign_spec(n_joints: int = 2) -> CampaignSpec:
+    """Perturbations sized for the cork_seat bench arm (inertia 0.03-0.08 kg*m^2, 4-40 N*m/rad).
+
+    Every kind with equal weight, on any joint, starting 0.5 to 4.5 s into the skill; windows
+    and contacts last long enough to watch the recovery. Magnitudes deflect a soft joint by a few
+    hundredths to about a tenth of a radian (invented for the demo, not taken from a standard).
+    """
+    return CampaignSpec(
+        name="cork_seat_campaign",
+        kinds={kind: 1.0 for kind in (
+            "impulse", "torque_step", "torque_window", "sinusoid", "random_torque", "wall", "hold"
+        )},
+        joints=list(range(n_joints)),
+        onset_s=Uniform(low=0.5, high=4.5),
+        duration_s={
+            "torque_step": Uniform(low=0.2, high=1.0),
+            "torque_window": Uniform(low=0.1, high=0.4),
+            "sinusoid": Uniform(low=0.5, high=1.5),
+            "random_torque": Uniform(low=0.5, high=1.5),
+            "wall": Uniform(low=0.3, high=1.5),
+            "hold": Uniform(low=0.1, high=0.6),
+        },
+        magnitude={
+            "impulse": LogUniform(low=0.005, high=0.05),
+            "torque_step": Uniform(low=0.1, high=1.0),
+            "torque_window": Uniform(low=0.2, high=1.5),
+            "sinusoid": Uniform(low=0.1, high=0.6),
+            "random_torque": Uniform(low=0.1, high=0.5),
+            "wall": LogUniform(low=100.0, high=1000.0),
+        },
+        fields={
+            "sinusoid": {"frequency_hz": Uniform(low=0.5, high=5.0)},
+            "random_torque": {"bandwidth_hz": Uniform(low=5.0, high=10.0)},
+            "wall": {"position": Uniform(low=0.02, high=0.1), "relative": Fixed(value=1.0)},
+        },
+    )
+
+
+def perturbation_windows(
+    schedule: PerturbationSchedule, end_s: float
+) -> tuple[list[float], list[float]]:
+    """Sorted ``(onsets, ends)`` of a schedule's perturbations, s, ends clipped to ``end_s``."""
+    spans = sorted(
+        (p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s))
+        for p in schedule.perturbations
+        if p.onset_s <= end_s
+    )
+    return [a for a, _ in spans], [b for _, b in spans]
 
 
 def scenario_seed(campaign_seed: int, index: int) -> int:
@@ -153,12 +410,11 @@ def _inline_results(job: CampaignJob, batches: list[tuple[int, tuple[int, ...]]]
 
 
 def _pool_context() -> multiprocessing.context.BaseContext:
-    # forkserver: workers start from a clean single-threaded server, so threads of the parent
-    # (tqdm's monitor, a Dask client, SQLite) are never duplicated mid-state by fork.
-    if "forkserver" in multiprocessing.get_all_start_methods():
-        context = multiprocessing.get_context("forkserver")
-        context.set_forkserver_preload(["compliant_demo.campaign", "numpy"])
-        return context
+    # fork: workers start with numpy, scipy and the job's modules already imported (a fresh
+    # interpreter spends seconds importing scipy.signal), and scripts need no __main__ guard.
+    # The workers only compute on their arguments; they never touch the parent's store or locks.
+    if "fork" in multiprocessing.get_all_start_methods():
+        return multiprocessing.get_context("fork")
     return multiprocessing.get_context("spawn")
 
 
@@ -175,39 +431,43 @@ def _pool_results(
                 future.cancel()
 
 
-def _dask_results(
-    job: CampaignJob, batches: list[tuple[int, tuple[int, ...]]], scheduler: str
-) -> BatchResults:
+def _dask_client(scheduler: str) -> Any:
     try:
-        from distributed import Client, as_completed
+        from distributed import Client
     except ImportError:
         raise InvalidInputError(
             f"scheduler = {scheduler!r}: Dask is not installed; "
             "install the extra with pip install 'compliant_demo[dask]'"
         ) from None
     try:
-        client = Client(scheduler, set_as_default=False, timeout="10s")
-    except (OSError, TimeoutError) as exc:
+        return Client(scheduler, set_as_default=False, timeout="10s")
+    except (OSError, TimeoutError, ValueError) as exc:
         raise InvalidInputError(
             f"scheduler = {scheduler!r}: cannot connect to the Dask scheduler ({exc})"
         ) from None
-    with client:
+
+
+def _dask_results(
+    job: CampaignJob, batches: list[tuple[int, tuple[int, ...]]], scheduler: str
+) -> BatchResults:
+    from distributed import as_completed
+
+    with _dask_client(scheduler) as client:
         # One copy of the job per worker instead of one per batch.
         (job_on_cluster,) = client.scatter([job], broadcast=True)
         futures = [
             client.submit(run_batch, job_on_cluster, b, idx, pure=False) for b, idx in batches
         ]
         try:
-            for future in as_completed(futures):
-                yield future.result()
+            with client.as_current():  # as_completed looks the client up as the current one
+                for future in as_completed(futures):
+                    yield future.result()
         finally:
             client.cancel(futures)
 
 
 def _dask_worker_count(scheduler: str) -> int:
-    from distributed import Client
-
-    with Client(scheduler, set_as_default=False, timeout="10s") as client:
+    with _dask_client(scheduler) as client:
         return len(client.scheduler_info(n_workers=-1)["workers"])
 
 
@@ -217,7 +477,7 @@ def run_campaign(
     *,
     skill_id: str,
     campaign_id: str | None = None,
-    batch_size: int = 25,
+    batch_size: int | None = None,
     workers: int | None = None,
     scheduler: str | None = None,
     progress: bool = False,
@@ -232,7 +492,8 @@ def run_campaign(
     skill_id : id of the skill the campaign replays
     campaign_id : resume this campaign (its completed scenario indexes are skipped); None starts
         a new one
-    batch_size : scenarios per batch (one vectorised simulation each)
+    batch_size : scenarios per batch (one vectorised simulation each); None picks about three
+        batches per worker, 8 to 100 scenarios each. A resumed campaign keeps its own.
     workers : local worker processes; None uses every core; 0 runs the batches in this process
     scheduler : address of a Dask scheduler (``tcp://host:port``); the batches run there
         instead of locally, through the same :func:`run_batch`
@@ -251,27 +512,35 @@ def run_campaign(
             "a Dask cluster decides its own workers"
         )
     started = time.perf_counter()
+    if scheduler is not None:
+        backend, n_workers = "dask", _dask_worker_count(scheduler)
+    elif workers == 0:
+        backend, n_workers = "inline", 0
+    else:
+        backend, n_workers = "processes", workers or os.cpu_count() or 1
     if campaign_id is None:
+        if batch_size is None:
+            batch_size = _auto_batch_size(job.n_scenarios, n_workers)
         config = dict(job.config(), batch_size=batch_size)
         campaign_id = store.create_campaign(skill_id, config)
         completed: set[int] = set()
     else:
+        batch_size = _resumable_batch_size(store, job, skill_id, campaign_id, batch_size)
         completed = set(store.completed_scenarios(campaign_id))
     batches = plan_batches(job.n_scenarios, batch_size, completed)
     to_run = sum(len(set(idx) - completed) for _, idx in batches)
 
-    if scheduler is not None:
-        backend, n_workers = "dask", _dask_worker_count(scheduler) if batches else 0
-        results = _dask_results(job, batches, scheduler)
-    elif workers == 0 or not batches:
+    if not batches:
         backend, n_workers = "inline", 0
+    if backend == "dask":
+        results = _dask_results(job, batches, scheduler)
+    elif backend == "inline":
         results = _inline_results(job, batches)
     else:
-        n_workers = min(workers or os.cpu_count() or 1, len(batches))
-        backend = "processes"
+        n_workers = min(n_workers, len(batches))
         results = _pool_results(job, batches, n_workers)
 
-    n_run = n_stopped = 0
+    n_run = n_violations = 0
     with tqdm(
         total=to_run,
         desc="campaign",
@@ -286,7 +555,7 @@ def run_campaign(
                 _store_outcomes(store, skill_id, campaign_id, fresh)
                 completed.update(o.index for o in fresh)
                 n_run += len(fresh)
-                n_stopped += sum(o.status != "ok" for o in fresh)
+                n_violations += sum(o.status != "ok" for o in fresh)
                 bar.update(len(fresh))
                 if on_batch is not None:
                     on_batch(fresh)
@@ -297,11 +566,42 @@ def run_campaign(
         n_scenarios=job.n_scenarios,
         n_run=n_run,
         n_skipped=job.n_scenarios - to_run,
-        n_stopped=n_stopped,
+        n_violations=n_violations,
         wall_s=time.perf_counter() - started,
         backend=backend,
         workers=n_workers,
     )
+
+
+def _auto_batch_size(n_scenarios: int, n_workers: int) -> int:
+    # Each batch has a fixed cost (one Python-level loop over the time steps) that a wider batch
+    # shares; about three batches per worker keeps all workers busy to the end.
+    return int(min(100, max(8, math.ceil(n_scenarios / (3 * max(n_workers, 1))))))
+
+
+def _resumable_batch_size(
+    store: Any, job: CampaignJob, skill_id: str, campaign_id: str, batch_size: int | None
+) -> int:
+    """The stored campaign's batch size, after checking it is the same skill and settings."""
+    info = store.get_campaign(campaign_id)
+    stored = dict(info.config)
+    stored_batch = int(stored.pop("batch_size"))
+    if info.skill_id != skill_id:
+        raise InvalidInputError(
+            f"campaign_id = {campaign_id!r}: replays skill {info.skill_id!r}, not {skill_id!r}"
+        )
+    if json.loads(json.dumps(job.config())) != stored:
+        changed = sorted(k for k in set(stored) | set(job.config())
+                         if json.loads(json.dumps(job.config().get(k))) != stored.get(k))
+        raise InvalidInputError(
+            f"campaign_id = {campaign_id!r}: settings {changed} differ from the stored campaign"
+        )
+    if batch_size is not None and batch_size != stored_batch:
+        raise InvalidInputError(
+            f"batch_size = {batch_size}: campaign {campaign_id!r} runs in batches of "
+            f"{stored_batch}"
+        )
+    return stored_batch
 
 
 def _store_outcomes(
