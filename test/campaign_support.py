@@ -49,7 +49,7 @@ def campaign_job(n_scenarios: int = 14, seed: int = 5, **changes) -> ReplayCampa
 
 
 def store_with_demos_and_skill(path: Path) -> str:
-    """Fill a store at ``path`` with the three demonstrations and the skill; returns the skill id."""
+    """Fill a store at ``path`` with the three demonstrations and the skill; returns its id."""
     with DemoStore(path, durable=False) as store:
         ids = []
         for record in cork_seat_records():

@@ -7,7 +7,6 @@ import math
 
 import numpy as np
 import pytest
-
 from campaign_support import (
     JOINTS,
     campaign_job,
@@ -15,6 +14,7 @@ from campaign_support import (
     stationary_skill,
     store_with_demos_and_skill,
 )
+
 from compliant_demo.campaign import (
     ReplayCampaign,
     plan_batches,

@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
+import distributed
 import pytest
-
 from campaign_support import campaign_job, store_with_demos_and_skill
+
 from compliant_demo.campaign import run_campaign
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.store import DemoStore
-
-distributed = pytest.importorskip("distributed")
 
 
 @pytest.fixture(scope="module")
