@@ -91,6 +91,13 @@ def test_under_damped_flag_predicts_oscillation_in_simulation():
     assert overshoot["springs"][0] > 5 * overshoot["ideal"][0]
 
 
+def test_one_mechanism_per_joint():
+    rollout = _cork_skill(0.7).rollout()
+    report = check_schedule(rollout, [SHOULDER, ELBOW], [IDEAL, SPRINGS])
+    assert report.summary["damping_controllable"] == [True, False]
+    assert {s.joint for s in report.stretches if s.kind == "under_damped"} == {"elbow"}
+
+
 def test_energy_injected_by_raising_stiffness_while_deflected():
     t = np.linspace(0.0, 1.0, 2001)
     stiffness = 10.0 + 100.0 * t

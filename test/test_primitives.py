@@ -4,7 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
+from compliant_demo import __version__
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.primitives import DMP, DampingPolicy, Skill, fit_skill
 
@@ -98,6 +101,23 @@ def test_classic_spatial_scaling_is_exact(demo):
     ratio = (new_goal - new_start) / (GOAL - START)
     np.testing.assert_allclose(moved.position, new_start + ratio * (base.position - START),
                                rtol=0, atol=1e-12)
+
+
+angles = st.floats(min_value=-2.0, max_value=2.0, allow_nan=False)
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(a0=angles, a1=angles, b0=angles, b1=angles)
+def test_classic_rollout_is_affine_in_start_and_goal(demo, a0, a1, b0, b1):
+    skill = _skill(demo, n_basis=20)
+    start, goal = np.array([a0, a1]), np.array([b0, b1])
+    moved = skill.rollout(start=start, goal=goal, dt=5e-3)
+    base = skill.rollout(dt=5e-3)
+    # Ijspeert et al. 2013, sec. 3.1: invariance of the classic form under the affine map
+    # y -> y0' + (g' - y0')/(g - y0) * (y - y0), checked for arbitrary starts and goals.
+    ratio = (goal - start) / (GOAL - START)
+    np.testing.assert_allclose(moved.position, start + ratio * (base.position - START),
+                               rtol=0, atol=1e-11)
 
 
 def _bump(t: np.ndarray, end_offset: float) -> np.ndarray:
@@ -227,7 +247,8 @@ def test_json_round_trip_reproduces_rollout(demo):
     text = skill.model_dump_json()
     again = Skill.model_validate_json(text)
     assert again.provenance.demonstration_ids == ["a1", "b2"]
-    assert again.provenance.package_version
+    assert again.provenance.package_version == __version__
+    assert again.provenance.n_basis == 50 and len(again.provenance.fit_rmse) == 2
     first, second = skill.rollout(goal=[0.5, 0.5]), again.rollout(goal=[0.5, 0.5])
     np.testing.assert_array_equal(first.position, second.position)
     np.testing.assert_array_equal(first.damping, second.damping)
