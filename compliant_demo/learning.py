@@ -271,7 +271,7 @@ def learn_skill(
         if stiffness_range is None:
             raise InvalidInputError("stiffness_range: stiffness from variability needs the "
                                     "target joint's (k_min, k_max), got None")
-        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range")
+        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
 
     time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
     stiffness: NDArray[np.float64] | None = recorded

@@ -123,8 +123,11 @@ def _per_joint(value: ArrayLike | None, n_joints: int, name: str) -> NDArray[np.
     return array
 
 
-def _ranges(value: ArrayLike, n_joints: int, name: str) -> NDArray[np.float64]:
-    """Broadcast a (low, high) pair or a (n_joints, 2) table and check low <= high."""
+def _ranges(
+    value: ArrayLike, n_joints: int, name: str, *, positive: bool = False
+) -> NDArray[np.float64]:
+    """Broadcast a (low, high) pair or a (n_joints, 2) table and check low <= high (and, with
+    ``positive``, low > 0)."""
     array = _finite_array(value, name)
     if array.shape == (2,):
         array = np.tile(array, (n_joints, 1))
@@ -136,6 +139,10 @@ def _ranges(value: ArrayLike, n_joints: int, name: str) -> NDArray[np.float64]:
         raise InvalidInputError(
             f"{name}: low {float(array[j, 0])!r} above high {float(array[j, 1])!r} for joint {j}"
         )
+    if positive and np.any(array[:, 0] <= 0):
+        j = int(np.argmax(array[:, 0] <= 0))
+        raise InvalidInputError(f"{name}: low {float(array[j, 0])!r} for joint {j} must be "
+                                "positive")
     return array
 
 
@@ -648,7 +655,7 @@ class Skill(BaseModel):
         if not (isinstance(dt, int | float) and math.isfinite(dt) and 0 < dt <= horizon):
             raise InvalidInputError(f"dt: need 0 < dt <= horizon ({horizon} s), got {dt!r}")
         k_range = _ranges(self.stiffness_range if stiffness_range is None else stiffness_range,
-                          n_joints, "stiffness_range")
+                          n_joints, "stiffness_range", positive=True)
 
         n_samples = int(round(horizon / dt)) + 1
         goal_arr = self._goal(goal, n_samples)
@@ -841,7 +848,7 @@ def fit_skill(
             raise InvalidInputError(
                 "stiffness_range: required when no stiffness channel is given, got None"
             )
-        k_range = _ranges(stiffness_range, n_joints, "stiffness_range")
+        k_range = _ranges(stiffness_range, n_joints, "stiffness_range", positive=True)
         log_weights = np.tile(np.log(k_range[:, 1])[:, None], (1, dmp.n_basis))
         stiffness_rmse = None
         extra.setdefault("stiffness_source", "constant")
@@ -851,10 +858,10 @@ def fit_skill(
             raise InvalidInputError(
                 f"stiffness: shape {recorded.shape} does not match position {demos.shape}"
             )
+        log_weights, fitted = _log_profile(psi, recorded, method, regularisation)
         default_range = np.stack([recorded.min(axis=(0, 1)), recorded.max(axis=(0, 1))], axis=1)
         k_range = _ranges(default_range if stiffness_range is None else stiffness_range,
-                          n_joints, "stiffness_range")
-        log_weights, fitted = _log_profile(psi, recorded, method, regularisation)
+                          n_joints, "stiffness_range", positive=True)
         residual = np.clip(np.exp(fitted), k_range[:, 0], k_range[:, 1]) - recorded
         stiffness_rmse = np.sqrt((residual**2).mean(axis=(0, 1))).tolist()
 

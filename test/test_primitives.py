@@ -209,6 +209,21 @@ def test_multi_demonstration_fit_reproduces_each(demo):
         assert np.abs(rollout.position - q).max() < 2e-3
 
 
+def test_uneven_sampling_and_smoothing(demo):
+    rng = np.random.default_rng(3)
+    t = np.sort(np.concatenate([[0.0, 1.0], rng.uniform(0.0, 1.0, 1499)]))
+    q = minimum_jerk(t, START, GOAL, 1.0)
+    skill = fit_skill(t, q, bell_stiffness(t, 1.0), joints=JOINTS, method="ridge",
+                      target_inertia=[0.05, 0.02])
+    rollout = skill.rollout(dt=1e-3)
+    # Closed-form minimum jerk (Flash and Hogan 1985) on the rollout's uniform grid.
+    reference = minimum_jerk(rollout.t, START, GOAL, 1.0)
+    assert np.abs(rollout.position - reference).max() < 5e-3
+    assert max(skill.provenance.fit_rmse) < 2e-3
+    smoothed = _skill(demo, method="ridge", smoothing_window=21)
+    assert max(smoothed.provenance.fit_rmse) < 1e-3
+
+
 def test_stiffness_profile_learned_in_log_space_and_clamped(demo):
     t, _, k = demo
     skill = _skill(demo, n_basis=50, method="ridge", stiffness_range=(15.0, 150.0))
@@ -356,6 +371,27 @@ def test_missing_stiffness_needs_range(demo):
 def test_inverted_stiffness_range(demo):
     with pytest.raises(InvalidInputError, match=r"stiffness_range: low 200\.0 above high 5\.0"):
         _skill(demo, stiffness_range=(200.0, 5.0))
+
+
+def test_non_positive_stiffness_range(demo):
+    with pytest.raises(InvalidInputError, match=r"stiffness_range: low 0\.0 for joint 0 must be"):
+        _skill(demo, stiffness_range=(0.0, 50.0))
+    with pytest.raises(InvalidInputError, match=r"stiffness_range: low -1\.0 for joint 1"):
+        _skill(demo).rollout(stiffness_range=[(1.0, 5.0), (-1.0, 5.0)])
+
+
+@pytest.mark.parametrize("window", [4, 3, 7.0, 2001])
+def test_bad_smoothing_window(demo, window):
+    with pytest.raises(InvalidInputError,
+                       match=r"smoothing_window: need an odd sample count from 5 to 1001"):
+        _skill(demo, smoothing_window=window)
+
+
+def test_smoothing_needs_uniform_time(demo):
+    t, q, k = demo
+    uneven = t + 1e-4 * np.sin(np.arange(t.size))
+    with pytest.raises(InvalidInputError, match=r"smoothing_window: needs uniformly sampled t"):
+        fit_skill(uneven, q, k, joints=JOINTS, smoothing_window=11)
 
 
 def test_unknown_method_and_formulation(demo):
