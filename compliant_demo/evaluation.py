@@ -69,7 +69,8 @@ class ScheduleReport:
     stiffness_rate : dK/dt of the commanded schedule, N*m/rad/s
     deflection : predicted spring deflection, rad (inverse dynamics along the path plus the
         assumed extra deflection)
-    injection_power : 1/2 * dK/dt * deflection^2, W (positive: energy put into the joint)
+    injection_power : 1/2 * dK/dt * deflection^2 with the realisable K, W (positive: energy put
+        into the joint)
     tank_energy : energy tank level, J (starts at the budget, never above it)
     stretches : flagged stretches, ordered by joint then time
     summary : JSON-ready dict of per-joint extremes, thresholds and counts
@@ -212,6 +213,8 @@ def check_schedule(
     if not energy_budget >= 0:
         raise InvalidInputError(f"energy_budget: must be >= 0 J, got {energy_budget!r}")
     extra = np.broadcast_to(_finite_array(extra_deflection, "extra_deflection"), (len(names),))
+    if np.any(extra < 0):
+        raise InvalidInputError(f"extra_deflection: must be >= 0 rad, got {extra.tolist()}")
 
     t = rollout.t
     limits = _mechanism_limits(mechanisms)
@@ -230,7 +233,8 @@ def check_schedule(
     d_rate = np.gradient(rollout.damping, t, axis=0)
     torque = _required_torque(params, rollout)
     deflection = np.abs(torque) / stiffness + extra
-    power = 0.5 * k_rate * deflection**2
+    # The energy follows the stiffness the mechanism realises, not the command beyond its range.
+    power = 0.5 * np.gradient(stiffness, t, axis=0) * deflection**2
     tank = _tank(t, power, energy_budget)
 
     masks = {

@@ -186,6 +186,8 @@ def test_check_schedule_bad_input():
         check_schedule(rollout, [SHOULDER, ELBOW], [IDEAL, IDEAL, SPRINGS])
     with pytest.raises(InvalidInputError, match=r"energy_budget: must be >= 0 J, got -1"):
         check_schedule(rollout, [SHOULDER, ELBOW], IDEAL, energy_budget=-1.0)
+    with pytest.raises(InvalidInputError, match=r"extra_deflection: must be >= 0 rad, got"):
+        check_schedule(rollout, [SHOULDER, ELBOW], IDEAL, extra_deflection=[0.1, -0.1])
     with pytest.raises(InvalidInputError, match=r"min_damping_ratio: must be positive, got 0"):
         check_schedule(rollout, [SHOULDER, ELBOW], IDEAL, min_damping_ratio=0.0)
 
