@@ -71,9 +71,10 @@ class StiffnessSeries:
     excitation : (n_samples, n_joints) array, rad
         Standard deviation of the (band-passed) deflection over the window.
     deflection : (n_samples, n_joints) array, rad
-        The regressor: minus the (band-passed) joint angle (half-sample means with damping).
+        The regressor: minus the (band-passed) joint angle, one sample late.
     torque : (n_samples, n_joints) array, N*m
-        The regressand: the (band-passed) interaction torque (half-sample means with damping).
+        The regressand: the (band-passed) hand torque, one sample late (with ``link_inertia``,
+        the measured torque plus the link's inertial torque).
     deflection_rate : (n_samples, n_joints) array, rad/s
         The nuisance regressor (zero when damping is not modelled).
     """
@@ -295,17 +296,27 @@ class SlidingStiffnessEstimator:
     settle_s : float, s, optional
         Time after the first sample before any window counts as excited, for the band-pass to
         settle on the slow motion; default two periods of the band's lower edge (0 without band).
+    link_inertia : float or (n_joints,) array, kg*m^2, optional
+        Give it when ``torque`` is measured on the robot side of the link (a joint torque sensor
+        between drive and link): the link's inertial torque I q'' is then added back to recover
+        the hand's torque. None (default): ``torque`` is the hand's torque on the link.
 
     Notes
     -----
     The regressor is the deflection ``-q`` and the regressand the interaction torque ``tau``
     (torque of the hand on the link), both band-passed by the same causal filter, so a hand
     modelled as ``tau = K (q_h - q) + D (dq_h - dq)`` with slow ``q_h`` gives slope K. The damping
-    part is in quadrature at the dither frequency; it does not bias OLS over whole periods and
-    biases TLS by about (D w)^2 / ratio relative (w the dither angular frequency), negligible for
-    ratios of sensor specifications (>= 1e4). The link's inertia sits on the robot side of the
-    measured torque and does not enter the regression; it only sets how far the dither moves the
-    joint. With a band-pass the filtered samples are correlated: the reported std uses
+    part is in quadrature at the dither frequency; with ``model_damping`` the deflection rate is
+    a second regressor and is partialled out; without it, the part of the damping torque that
+    correlates with x through the window ends leaks into K (about D / window_s).
+    If the torque is measured on the robot side of the link, it is the hand torque minus
+    I q'': at the dither angular frequency w the slope would be K - I w^2 (for the default
+    shoulder, 0.08 kg*m^2 at 8 Hz: about 200 N*m/rad, far more than the hand's stiffness), which
+    is why ``link_inertia`` adds I q'' back from the central second difference of the
+    band-passed angle (amplitude error (w dt)^2 / 12, 2e-4 at 8 Hz and 1 kHz). Bearing friction
+    on that side is viscous and is partialled out with the rate. All channels refer to the
+    sample before the newest, so the estimate lags the input by one sample.
+    With a band-pass the filtered samples are correlated: the reported std uses
     ``n_eff = min(n, 2 * (high - low) * window_s)`` independent samples (noise-bandwidth rule,
     common practice). Running sums are recomputed from the window buffer once per window length
     so that rounding does not accumulate.
@@ -323,6 +334,7 @@ class SlidingStiffnessEstimator:
         order: int = 2,
         model_damping: bool = True,
         settle_s: float | None = None,
+        link_inertia: float | np.ndarray | None = None,
     ) -> None:
         if not isinstance(n_joints, int | np.integer) or n_joints < 1:
             raise InvalidInputError(f"n_joints must be a positive integer, got {n_joints!r}")
@@ -350,6 +362,15 @@ class SlidingStiffnessEstimator:
         self.noise_variance_ratio = ratio.copy()
         self.band_hz = band_hz
         self.model_damping = bool(model_damping)
+        if link_inertia is None:
+            self.link_inertia: np.ndarray | None = None
+        else:
+            inertia = np.broadcast_to(np.asarray(link_inertia, dtype=float), (n_joints,))
+            if not (np.isfinite(inertia).all() and (inertia >= 0).all()):
+                raise InvalidInputError(
+                    f"link_inertia must be non-negative and finite, got {link_inertia!r}"
+                )
+            self.link_inertia = inertia.copy()
         if settle_s is None:
             settle_s = 0.0 if band_hz is None else 2.0 / band_hz[0]
         if not (math.isfinite(settle_s) and settle_s >= 0):
@@ -369,7 +390,7 @@ class SlidingStiffnessEstimator:
         self._count = 0
         self._since_refresh = 0
         self._sums = np.zeros((9, self.n_joints))
-        self._last: np.ndarray | None = None
+        self._history: np.ndarray | None = None
         self._zi: np.ndarray | None = None
 
     @property
@@ -389,20 +410,26 @@ class SlidingStiffnessEstimator:
         return filtered
 
     def _channels(self, filtered: np.ndarray) -> np.ndarray:
-        """Regression channels (x, y, v) per sample, (n, 3, n_joints).
+        """Regression channels (x, y, v) per sample, (n, 3, n_joints), one sample late.
 
-        With damping modelled, x and y are averaged over consecutive samples and v is their
-        difference over the step: all three refer to the same half-sample instant, so the
-        derivative adds no phase error of its own.
+        Each output refers to the sample before the newest one, so the deflection rate and
+        acceleration come from central differences with no phase error of their own: any
+        amplitude error of the rate stays in quadrature and is partialled out with it.
         """
+        history = self._history if self._history is not None else np.repeat(filtered[:1], 2, 0)
+        padded = np.concatenate([history, filtered])
+        self._history = padded[-2:].copy()
+        centre = padded[1:-1]
+        x_next, x_prev = padded[2:, 0], padded[:-2, 0]
+        rate = 0.5 * (x_next - x_prev) * self.rate_hz
+        torque = centre[:, 1]
+        if self.link_inertia is not None:
+            # Hand torque = measured link-side torque + I q'' and q'' = -x'' in the band.
+            accel = (x_next - 2.0 * centre[:, 0] + x_prev) * self.rate_hz**2
+            torque = torque - self.link_inertia * accel
         if not self.model_damping:
-            return np.concatenate([filtered, np.zeros_like(filtered[:, :1])], axis=1)
-        first = filtered[:1] if self._last is None else self._last
-        previous = np.concatenate([first, filtered])
-        self._last = filtered[-1:].copy()
-        mid = 0.5 * (previous[1:] + previous[:-1])
-        rate = (previous[1:, :1] - previous[:-1, :1]) * self.rate_hz
-        return np.concatenate([mid, rate], axis=1)
+            rate = np.zeros_like(rate)
+        return np.stack([centre[:, 0], torque, rate], axis=1)
 
     def update(self, position: object, torque: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Add samples and return the window estimate after each of them.
@@ -489,7 +516,8 @@ def estimate_stiffness_series(
     **settings
         Keyword arguments of :class:`SlidingStiffnessEstimator` other than ``n_joints`` and
         ``rate_hz``: ``window_s`` and ``noise_variance_ratio`` (required), ``band_hz``,
-        ``min_excitation_rad``, ``method``, ``order``, ``model_damping``, ``settle_s``.
+        ``min_excitation_rad``, ``method``, ``order``, ``model_damping``, ``settle_s``,
+        ``link_inertia``.
 
     Returns
     -------

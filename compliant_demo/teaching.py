@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import Literal
 
 import numba
 import numpy as np
@@ -86,6 +87,11 @@ class TeachingScenario(BaseModel):
     )
     hand_damping: tuple[float, ...] = Field(
         (0.3, 0.2), description="Hand damping per joint, N*m*s/rad."
+    )
+    torque_sensor: Literal["hand", "joint"] = Field(
+        "hand",
+        description="Where the torque is measured: 'hand' reports the hand's torque on the link; "
+        "'joint' a sensor between drive and link, which also carries the link's inertial torque.",
     )
     dither_amplitude: float = Field(
         0.5, ge=0, allow_inf_nan=False, description="Dither torque amplitude per joint, N*m."
@@ -161,15 +167,19 @@ class TeachingScenario(BaseModel):
         """Keyword arguments for the sliding-window estimator that suit this scenario.
 
         A band of 0.75 to 1.4 times the dither frequency, a window of four dither periods, the
-        sensor noise-variance ratio and a minimum excitation of ten times the angle noise.
+        sensor noise-variance ratio and a minimum excitation of ten times the angle noise; with
+        a joint-side torque sensor also the link inertias.
         """
         f = self.dither_frequency_hz
-        return {
+        settings: dict[str, object] = {
             "window_s": 4.0 / f,
             "band_hz": (0.75 * f, 1.4 * f),
             "noise_variance_ratio": self.noise_variance_ratio,
             "min_excitation_rad": max(10 * self.position_noise_std, 1e-5),
         }
+        if self.torque_sensor == "joint":
+            settings["link_inertia"] = [joint.inertia for joint in self.joints]
+        return settings
 
 
 def cork_seat_scenario(**changes: object) -> TeachingScenario:
@@ -189,7 +199,8 @@ class TeachingRecord:
     position : (n_samples, n_joints) array, rad, measured (with noise)
     velocity : (n_samples, n_joints) array, rad/s, measured (with noise)
     torque : (n_samples, n_joints) array, N*m
-        Measured interaction torque of the hand on the link (with noise).
+        Measured torque (with noise): the hand's torque on the link, or with a joint-side sensor
+        the hand's torque less the link's inertial torque I q''.
     hand_stiffness_truth : (n_samples, n_joints) array, N*m/rad
     hand_damping : (n_joints,) array, N*m*s/rad
     intended_position : (n_samples, n_joints) array, rad
@@ -310,6 +321,7 @@ def _integrate(inputs, params, dt, steps, n_samples):  # pragma: no cover - comp
     true_q = np.empty((n_samples, n_joints))
     true_dq = np.empty((n_samples, n_joints))
     true_tau = np.empty((n_samples, n_joints))
+    true_acc = np.empty((n_samples, n_joints))
     for j in range(n_joints):
         q = intended[0, j]
         dq = intended_velocity[0, j]
@@ -320,6 +332,7 @@ def _integrate(inputs, params, dt, steps, n_samples):  # pragma: no cover - comp
             true_tau[k, j] = hand_k[index, j] * (intended[index, j] - q) + hand_d[j] * (
                 intended_velocity[index, j] - dq
             )
+            true_acc[k, j] = _accel(j, index, q, dq, inputs, params)
             if k == n_samples - 1:
                 break
             for _ in range(steps):
@@ -334,7 +347,7 @@ def _integrate(inputs, params, dt, steps, n_samples):  # pragma: no cover - comp
                 q = q + dt / 6.0 * (k1v + 2.0 * k2v + 2.0 * k3v + k4v)
                 dq = dq + dt / 6.0 * (k1a + 2.0 * k2a + 2.0 * k3a + k4a)
                 index += 2
-    return true_q, true_dq, true_tau
+    return true_q, true_dq, true_tau, true_acc
 
 
 def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
@@ -388,7 +401,10 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
         )
     ) + (np.array(scenario.hand_damping, dtype=float),)
     inputs = (intended, intended_velocity, hand_k, dither)
-    true_q, true_dq, true_tau = _integrate(inputs, params, dt, steps, n_samples)
+    true_q, true_dq, true_tau, true_acc = _integrate(inputs, params, dt, steps, n_samples)
+    if scenario.torque_sensor == "joint":
+        # A sensor between drive and link sees the hand torque less what accelerates the link.
+        true_tau = true_tau - params[0] * true_acc
     samples = slice(None, None, 2 * steps)
     shape = true_q.shape
     return TeachingRecord(

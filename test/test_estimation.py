@@ -341,3 +341,24 @@ def test_deming_closed_form_equals_svd_total_least_squares(seed, stiffness, rati
     normal = np.linalg.svd(data, full_matrices=False)[2][-1]
     svd_slope = -normal[0] * scale / normal[1]
     assert fit.stiffness == pytest.approx(svd_slope, rel=1e-7, abs=1e-9)
+
+
+def test_link_inertia_term_closed_form():
+    # Joint-side sensor: tau_m = tau_h - I q''. For q = -A sin(w t) about a fixed hand set point
+    # and tau_h = K A sin(w t), tau_m = (K - I w^2) A sin(w t): a regression on the measured
+    # torque gives K - I w^2 (closed form); with link_inertia the estimator recovers K.
+    rate, stiffness, inertia, freq = 1000.0, 15.0, 0.05, 8.0
+    t = np.arange(3000) / rate
+    w = 2 * np.pi * freq
+    q = -0.002 * np.sin(w * t)
+    tau_m = (stiffness - inertia * w**2) * 0.002 * np.sin(w * t)
+    settings = dict(window_s=0.5, noise_variance_ratio=1e5, band_hz=(6.0, 11.0))
+    plain = estimate_stiffness_series(t, q[:, None], tau_m[:, None], **settings)
+    fixed = estimate_stiffness_series(
+        t, q[:, None], tau_m[:, None], link_inertia=inertia, **settings
+    )
+    np.testing.assert_allclose(plain.stiffness[1500:], stiffness - inertia * w**2, rtol=1e-3)
+    # Central second difference: amplitude error (w dt)^2 / 12 of I w^2 (about 0.02 N*m/rad).
+    np.testing.assert_allclose(fixed.stiffness[1500:], stiffness, atol=0.05)
+    with pytest.raises(InvalidInputError, match="link_inertia must be non-negative"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, link_inertia=-0.1)

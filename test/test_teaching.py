@@ -94,9 +94,9 @@ def test_sensor_noise_levels():
     assert scenario.noise_variance_ratio == pytest.approx((0.005 / 2e-5) ** 2)
 
 
-@pytest.mark.parametrize("seed", [1, 2])
-def test_estimator_recovers_hand_stiffness(seed):
-    scenario = cork_seat_scenario()
+@pytest.mark.parametrize(("seed", "sensor"), [(1, "hand"), (2, "hand"), (3, "joint")])
+def test_estimator_recovers_hand_stiffness(seed, sensor):
+    scenario = cork_seat_scenario(torque_sensor=sensor)
     rec = simulate_teaching(scenario, seed)
     settings = scenario.estimator_settings()
     series = estimate_stiffness_series(rec.t, rec.position, rec.torque, **settings)
@@ -123,6 +123,22 @@ def test_estimator_recovers_hand_stiffness(seed):
         [estimator.update(c.position, c.torque)[0] for c in TeachingStream(scenario, seed)]
     )
     np.testing.assert_allclose(online, series.stiffness, rtol=1e-8, equal_nan=True)
+
+
+def test_joint_side_sensor_without_inertia_is_biased_by_i_omega_squared():
+    # Closed form: a sensor between drive and link reads tau_h - I q'', so at the dither the
+    # apparent stiffness is K - I w^2 with w between the lowest and highest dither tone.
+    scenario = cork_seat_scenario(torque_sensor="joint")
+    rec = simulate_teaching(scenario, 4)
+    settings = scenario.estimator_settings()
+    settings.pop("link_inertia")
+    series = estimate_stiffness_series(rec.t, rec.position, rec.torque, **settings)
+    truth, variation = windowed_truth(rec.hand_stiffness_truth, 500)
+    steady = series.excited & (variation < 0.1)
+    for joint, params in enumerate(scenario.joints):
+        bias = np.median((series.stiffness - truth)[steady[:, joint], joint])
+        w_low, w_high = 2 * np.pi * 8.0 * np.array([0.9, 1.15])
+        assert -params.inertia * w_high**2 < bias < -params.inertia * w_low**2
 
 
 def test_windowed_truth_closed_form():
