@@ -17,11 +17,11 @@ from typing import Any, Literal, Protocol
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from pydantic import ValidationError
 
 from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.estimation import stiffness_from_variability
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import model_from_mapping
 from compliant_demo.primitives import (
     DampingPolicy,
     FitMethod,
@@ -317,11 +317,5 @@ def save_skill(
 def load_skill(store: _SkillStore, name: str, version: int | None = None) -> Skill:
     """Load skill ``name`` at ``version`` (latest when omitted) from the store."""
     record = store.load_skill(name, version)
-    try:
-        return Skill.model_validate(record.payload)
-    except ValidationError as exc:
-        first = exc.errors()[0]
-        field = ".".join(str(part) for part in first["loc"]) or "payload"
-        raise InvalidInputError(
-            f"skill {name!r} version {record.version}: field {field!r}: {first['msg']}"
-        ) from None
+    return model_from_mapping(Skill, record.payload,
+                              source=f"skill {name!r} version {record.version}")

@@ -26,6 +26,7 @@ from scipy.signal import lfilter, savgol_filter
 
 from compliant_demo import __version__
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import model_from_mapping
 
 __all__ = [
     "DMP",
@@ -876,7 +877,7 @@ def fit_skill(
     limits = None if position_limits is None else _ranges(position_limits, n_joints,
                                                           "position_limits")
     assert dmp.weights is not None and dmp.amplitude is not None
-    skill = Skill(
+    data = dict(
         name=name,
         joints=joint_names,
         formulation=formulation,
@@ -896,13 +897,14 @@ def fit_skill(
         damping_log_weights=damping_weights,
         target_inertia=None if inertia is None else inertia.tolist(),
         position_limits=None if limits is None else [(float(a), float(b)) for a, b in limits],
-        provenance=Provenance(
-            n_demonstrations=demos.shape[0],
-            n_basis=dmp.n_basis,
-            fit_rmse=_fit_rmse(dmp, times, demos, x, psi),
-            stiffness_fit_rmse=stiffness_rmse,
+        provenance={
+            "n_demonstrations": demos.shape[0],
+            "n_basis": dmp.n_basis,
+            "fit_rmse": _fit_rmse(dmp, times, demos, x, psi),
+            "stiffness_fit_rmse": stiffness_rmse,
             **extra,
-        ),
+        },
     )
+    skill = model_from_mapping(Skill, data, source="fit_skill")
     skill._dmp = dmp
     return skill

@@ -394,6 +394,13 @@ def test_smoothing_needs_uniform_time(demo):
         fit_skill(uneven, q, k, joints=JOINTS, smoothing_window=11)
 
 
+def test_bad_skill_fields(demo):
+    with pytest.raises(InvalidInputError, match=r"fit_skill: field 'name' = ''"):
+        _skill(demo, name="")
+    with pytest.raises(InvalidInputError, match=r"fit_skill: field 'provenance\.origin'"):
+        _skill(demo, provenance={"origin": "bench"})
+
+
 def test_unknown_method_and_formulation(demo):
     with pytest.raises(InvalidInputError, match=r"method: expected 'lwr' or 'ridge', got 'gp'"):
         _skill(demo, method="gp")
