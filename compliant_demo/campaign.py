@@ -162,6 +162,20 @@ class ReplayCampaign:
             "plant": self.plant.model_dump(mode="json"),
         }
 
+    @classmethod
+    def from_config(cls, skill: Skill, config: Mapping[str, Any]) -> ReplayCampaign:
+        """Rebuild the job a stored campaign ran (``config`` as :meth:`config` wrote it)."""
+        settings = {key: config[key] for key in (
+            "n_scenarios", "seed", "duration_s", "settle_s", "dt", "decimation", "method",
+            "stratify_kinds", "recovery_band")}
+        return cls(skill, ReplayPlant.model_validate(config["plant"]),
+                   CampaignSpec.model_validate(config["spec"]), **settings)
+
+    def unperturbed(self) -> tuple[np.ndarray, np.ndarray]:
+        """Time (s) and angles ((n_rec, n_joints), rad) of the replay without perturbation."""
+        _, result = self.simulate_batch([PerturbationSchedule(name="unperturbed")], self.seed)
+        return result.t, result.q[:, 0, :]
+
     def rollout(self) -> Rollout:
         """The commanded schedule every scenario replays (movement plus settling)."""
         joints = self.plant.for_joints(self.skill.joints)

@@ -36,7 +36,7 @@ def _all_figures() -> dict[str, object]:
             t, q, {"impulse": (t, q + 0.05, (0.4, 0.5)), "wall": (t, 0.9 * q, None)}, JOINTS),
         "metrics": report.plot_metric_distributions(
             {"goal_error": rng.random(30), "recovery_time": rng.random(30)}, kinds,
-            {"goal_error": "rad", "recovery_time": "s"}),
+            {"goal_error": "goal error [rad]", "recovery_time": "recovery [s]"}),
     }
 
 
@@ -92,7 +92,7 @@ def test_traces_must_not_be_empty():
 def test_metric_shape_must_match_kinds():
     with pytest.raises(InvalidInputError, match=r"metrics\['goal_error'\]: shape \(3,\)"):
         report.plot_metric_distributions({"goal_error": np.zeros(3)}, np.array(["a", "b"]),
-                                         {"goal_error": "rad"})
+                                         {"goal_error": "goal error [rad]"})
 
 
 def test_metrics_must_not_be_empty():

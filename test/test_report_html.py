@@ -32,7 +32,7 @@ def _content(extra_figures: tuple[report.ReportFigure, ...] = ()) -> report.Repo
         report.ReportFigure("metrics", "Metrics", "Distributions.",
                             report.plot_metric_distributions(
                                 {"peak_deviation": np.linspace(0, 1, 16)}, kinds,
-                                {"peak_deviation": "rad"})),
+                                {"peak_deviation": "peak deviation [rad]"})),
         *extra_figures,
     )
     table = report.ReportTable("Limit violations", ("scenario", "limit"),
