@@ -34,7 +34,7 @@ __all__ = [
 
 @dataclass(frozen=True)
 class StiffnessFit:
-    """Straight-line fit torque = stiffness * deflection + intercept.
+    """Straight-line fit torque = stiffness * deflection + intercept (+ a rate term if fitted).
 
     Attributes
     ----------
@@ -262,7 +262,8 @@ def design_band_pass(band_hz: tuple[float, float], rate_hz: float, order: int = 
     (n_sections, 6) array
         Second-order sections for :func:`scipy.signal.sosfilt`.
     """
-    low, high = (float(v) for v in band_hz)
+    values = np.asarray(band_hz, dtype=float).ravel()
+    low, high = (values[0], values[1]) if values.size == 2 else (np.nan, np.nan)
     if not (0 < low < high < rate_hz / 2):
         raise InvalidInputError(
             f"band_hz must satisfy 0 < low < high < rate_hz/2 = {rate_hz / 2}, got {band_hz!r}"
@@ -464,6 +465,10 @@ class SlidingStiffnessEstimator:
             if not np.isfinite(values).all():
                 row, col = np.argwhere(~np.isfinite(values))[0]
                 raise InvalidInputError(f"{name}[{row}, {col}] = {values[row, col]} is not finite")
+        if q.shape[0] == 0:
+            empty = np.empty((0, self.n_joints))
+            channels = np.empty((0, 3, self.n_joints))
+            return empty, empty.copy(), empty.astype(bool), empty.copy(), channels
         channels = self._channels(self._filter(np.stack([-q, tau], axis=1)))
         n_new, window = channels.shape[0], self.window
         slots = (self._count + np.arange(n_new)) % window

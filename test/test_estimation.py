@@ -362,3 +362,12 @@ def test_link_inertia_term_closed_form():
     np.testing.assert_allclose(fixed.stiffness[1500:], stiffness, atol=0.05)
     with pytest.raises(InvalidInputError, match="link_inertia must be non-negative"):
         SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, link_inertia=-0.1)
+
+
+def test_empty_chunk_changes_nothing_and_bad_band_shape():
+    estimator = SlidingStiffnessEstimator(2, 0.5, 1000.0, 1.0, band_hz=(6.0, 11.0))
+    stiffness, std, excited = estimator.update(np.empty((0, 2)), np.empty((0, 2)))
+    assert stiffness.shape == std.shape == excited.shape == (0, 2)
+    assert estimator.samples_seen == 0
+    with pytest.raises(InvalidInputError, match=r"band_hz must satisfy .* got \(1.0, 2.0, 3.0\)"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, band_hz=(1.0, 2.0, 3.0))
