@@ -148,7 +148,9 @@ def _align(
     """Common time (n,), positions (d, n, j), stiffness (d, n, j) or None, variance (n, j)."""
     with_stiffness = all(d.stiffness is not None for d in demos)
     durations = [float(d.t[-1]) for d in demos]
-    summary: dict[str, Any] = {"method": alignment, "durations_s": durations}
+    # One demonstration has nothing to be aligned with: it is only resampled onto a uniform grid.
+    method = alignment if len(demos) > 1 or alignment == "none" else "single"
+    summary: dict[str, Any] = {"method": method, "durations_s": durations}
     if alignment == "dtw" and len(demos) > 1:
         aligned = align_demonstrations(
             [DemoArrays(d.t, d.position,
@@ -249,6 +251,9 @@ def learn_skill(
     """
     if len(demos) == 0:
         raise InvalidInputError("demos: need at least one demonstration, got 0")
+    if n_samples is not None and (isinstance(n_samples, bool)
+                                  or not isinstance(n_samples, int | np.integer) or n_samples < 2):
+        raise InvalidInputError(f"n_samples: need an integer of at least 2, got {n_samples!r}")
     if stiffness_source not in ("auto", "recorded", "variability"):
         raise InvalidInputError(f"stiffness_source: expected 'auto', 'recorded' or "
                                 f"'variability', got {stiffness_source!r}")

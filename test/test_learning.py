@@ -162,6 +162,7 @@ def test_single_demonstration_with_recorded_stiffness():
     rng = np.random.default_rng(18)
     skill = learn_skill(_demos(rng, 1), joints=JOINTS, target_inertia=[0.05, 0.02])
     assert skill.provenance.n_demonstrations == 1
+    assert skill.provenance.alignment["method"] == "single"
 
 
 # --- bad input -------------------------------------------------------------------------------
@@ -243,6 +244,8 @@ def test_alignment_none_needs_common_time():
         ({"alignment": "spline"}, r"alignment: expected 'dtw', 'resample' or 'none', got 'spline'"),
         ({"stiffness_source": "guess"}, r"stiffness_source: expected .* got 'guess'"),
         ({"n_basis": 1}, r"n_basis: need an integer of at least 2, got 1"),
+        ({"n_samples": 1}, r"n_samples: need an integer of at least 2, got 1"),
+        ({"n_samples": 10, "n_basis": 20}, r"t: 10 samples are fewer than n_basis = 20"),
     ],
 )
 def test_bad_options(kwargs, message):
