@@ -21,7 +21,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.models import JointParams
+from compliant_demo.models import JointParams, model_from_mapping
 
 __all__ = [
     "Waypoint",
@@ -183,9 +183,10 @@ class TeachingScenario(BaseModel):
 
 
 def cork_seat_scenario(**changes: object) -> TeachingScenario:
-    """The demo scenario (two-joint bench arm seating a cork) with optional field changes."""
-    from compliant_demo.models import model_from_mapping
+    """The demo scenario (two-joint bench arm seating a cork) with optional field changes.
 
+    Bad field values raise InvalidInputError naming the field and the value.
+    """
     return model_from_mapping(TeachingScenario, dict(changes), source="cork_seat_scenario")
 
 
