@@ -21,7 +21,7 @@ from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, model_validator
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 from scipy.signal import lfilter, savgol_filter
 
 from compliant_demo import __version__
@@ -581,8 +581,6 @@ class Skill(BaseModel):
     )
     provenance: Provenance
 
-    _dmp: DMP | None = PrivateAttr(default=None)
-
     @model_validator(mode="after")
     def _shapes_agree(self) -> Skill:
         n_joints = len(self.joints)
@@ -603,14 +601,16 @@ class Skill(BaseModel):
 
     @property
     def dmp(self) -> DMP:
-        """The movement primitive rebuilt from the stored weights (cached)."""
-        if self._dmp is None:
-            dmp = DMP(self.n_basis, self.formulation, alpha_z=self.alpha_z, beta_z=self.beta_z,
-                      alpha_x=self.alpha_x)
-            dmp.weights = np.asarray(self.weights, dtype=float)
-            dmp.amplitude = np.asarray(self.amplitude, dtype=float)
-            self._dmp = dmp
-        return self._dmp
+        """The movement primitive built from the stored weights.
+
+        Rebuilt on each access (about 0.1 ms), so a copy with changed fields never sees stale
+        weights.
+        """
+        dmp = DMP(self.n_basis, self.formulation, alpha_z=self.alpha_z, beta_z=self.beta_z,
+                  alpha_x=self.alpha_x)
+        dmp.weights = np.asarray(self.weights, dtype=float)
+        dmp.amplitude = np.asarray(self.amplitude, dtype=float)
+        return dmp
 
     def rollout(
         self,
@@ -661,19 +661,20 @@ class Skill(BaseModel):
         n_samples = int(round(horizon / dt)) + 1
         goal_arr = self._goal(goal, n_samples)
         t = np.asarray(np.arange(n_samples) * dt, dtype=np.float64)
-        x = self.dmp.basis.phase(t / tau)
-        phi = _normalise(self.dmp.basis.activations(x))
+        dmp = self.dmp
+        x = dmp.basis.phase(t / tau)
+        phi = _normalise(dmp.basis.activations(x))
         if goal_arr.ndim == 1:
-            forcing = self.dmp.forcing(phi, x, start_arr, goal_arr)
-            position, velocity, acceleration = self.dmp.integrate(forcing, start_arr, goal_arr,
-                                                                  dt, tau)
+            forcing = dmp.forcing(phi, x, start_arr, goal_arr)
+            position, velocity, acceleration = dmp.integrate(forcing, start_arr, goal_arr, dt,
+                                                             tau)
         else:
             # Moving goal: integrate y itself (reference 0) with the spring's pull K*g(t) moved
             # into the input; the forcing gains follow g(t) sample by sample.
-            shaped, decaying = self.dmp._input_gains(start_arr[np.newaxis], goal_arr)
-            drive = (self.dmp._shape(phi, x) * shaped + x[:, np.newaxis] * decaying
-                     + self.dmp.alpha_z * self.dmp.beta_z * goal_arr)
-            position, velocity, acceleration = self.dmp.integrate(
+            shaped, decaying = dmp._input_gains(start_arr[np.newaxis], goal_arr)
+            drive = (dmp._shape(phi, x) * shaped + x[:, np.newaxis] * decaying
+                     + dmp.alpha_z * dmp.beta_z * goal_arr)
+            position, velocity, acceleration = dmp.integrate(
                 drive, start_arr, np.zeros(n_joints), dt, tau)
         stiffness = np.clip(np.exp(phi @ np.asarray(self.stiffness_log_weights).T),
                             k_range[:, 0], k_range[:, 1])
@@ -905,6 +906,4 @@ def fit_skill(
             **extra,
         },
     )
-    skill = model_from_mapping(Skill, data, source="fit_skill")
-    skill._dmp = dmp
-    return skill
+    return model_from_mapping(Skill, data, source="fit_skill")
