@@ -193,8 +193,13 @@ def contact_force(
     Kelvin-Voigt contact jumps by b*dx/dt there, which costs a fixed-step method an O(h) error
     per impact), in the spirit of Hunt and Crossley, J. Appl. Mech. 42(2), 1975. It never pulls.
     """
-    ramp = np.clip(penetration * (1.0 / CONTACT_DAMPING_DEPTH), 0.0, 1.0)
-    return np.maximum(stiffness * penetration + damping * rate * ramp, 0.0)
+    ramp = penetration * (1.0 / CONTACT_DAMPING_DEPTH)
+    np.maximum(ramp, 0.0, out=ramp)
+    np.minimum(ramp, 1.0, out=ramp)
+    ramp *= rate
+    ramp *= damping
+    ramp += stiffness * penetration
+    return np.maximum(ramp, 0.0, out=ramp)
 
 
 def _column(joints: Sequence[JointParams], value) -> np.ndarray:
@@ -318,12 +323,20 @@ class Simulator:
     def _setup_joints(self, joints: Sequence[JointParams]) -> None:
         self._inertia = _column(joints, lambda j: j.inertia)
         self._neg_viscous = _column(joints, lambda j: -j.viscous_damping)
-        self._neg_coulomb = _column(joints, lambda j: -j.coulomb_friction)
-        self._inv_smoothing = _column(joints, lambda j: 1.0 / j.friction_smoothing_velocity)
-        self._has_coulomb = bool(np.any(self._neg_coulomb))
+        # friction and gravity only on the joints that have them: tanh and sin are the most
+        # expensive operations of a step
+        self._coulomb_joints = [
+            (i, 1.0 / j.friction_smoothing_velocity, -j.coulomb_friction)
+            for i, j in enumerate(joints)
+            if j.coulomb_friction > 0
+        ]
         self._mgl = _column(joints, lambda j: j.gravity_mass * GRAVITY * j.com_distance)
         self._gravity_offset = _column(joints, lambda j: j.gravity_offset)
-        self._has_gravity = bool(np.any(self._mgl))
+        self._gravity_joints = [
+            (i, -float(self._mgl[i, 0]), j.gravity_offset)
+            for i, j in enumerate(joints)
+            if self._mgl[i, 0] > 0
+        ]
         self._lower = _column(joints, lambda j: j.lower_limit)
         self._upper = _column(joints, lambda j: j.upper_limit)
         # no end stop can touch while every angle lies in [highest lower, lowest upper] limit
@@ -340,6 +353,7 @@ class Simulator:
         shape = (n_joints, n_scen)
         self._kernel.expand(n_scen)
         self._inv_inertia_full = np.broadcast_to(1.0 / self._inertia, shape).copy()
+        self._accel_scale = self._inv_inertia_full.copy()
         self._neg_viscous_full = np.broadcast_to(self._neg_viscous, shape).copy()
         self._y = np.zeros((rows, *shape))
         self._q0 = None if q0 is None else _per_scenario("q0", q0, n_scen, n_joints)
@@ -351,7 +365,6 @@ class Simulator:
         self._mech_damping = np.zeros(shape)
         self._scratch = np.zeros(shape)
         self._free = np.ones(shape)
-        self._any_held = False
         self._jumps = np.zeros(shape)  # perturbation work done in jumps (impulses, hold onsets)
         self._injection = np.zeros(shape)
         self._set_k = np.zeros(shape)
@@ -394,10 +407,14 @@ class Simulator:
         self._started = True
 
     # ----------------------------------------------------------------- model
-    def _gravity_torque(self, q: np.ndarray, out: np.ndarray) -> None:
-        np.subtract(q, self._gravity_offset, out=out)
-        np.sin(out, out=out)
-        out *= -self._mgl
+    def _add_gravity(self, q: np.ndarray, out: np.ndarray) -> None:
+        """Add the gravity torque -m*g*l*sin(q - offset) into ``out``."""
+        for i, neg_mgl, offset in self._gravity_joints:
+            row = self._scratch[i]
+            np.subtract(q[i], offset, out=row)
+            np.sin(row, out=row)
+            row *= neg_mgl
+            out[i] += row
 
     def _gravity_potential(self, q: np.ndarray) -> np.ndarray:
         return self._mgl * (1.0 - np.cos(q - self._gravity_offset))
@@ -435,11 +452,12 @@ class Simulator:
         np.multiply(self._neg_viscous_full, dq, out=torques[_PASSIVE])
         if has_damping:
             torques[_PASSIVE] += self._mech_damping
-        if self._has_coulomb:
-            np.multiply(dq, self._inv_smoothing, out=self._scratch)
-            np.tanh(self._scratch, out=self._scratch)
-            self._scratch *= self._neg_coulomb
-            torques[_PASSIVE] += self._scratch
+        for i, inv_smoothing, neg_coulomb in self._coulomb_joints:
+            row = self._scratch[i]
+            np.multiply(dq[i], inv_smoothing, out=row)
+            np.tanh(row, out=row)
+            row *= neg_coulomb
+            torques[_PASSIVE, i] += row
         self._end_stops(q, dq, torques[_PASSIVE])
         if ext is None:
             torques[_EXTERNAL].fill(0.0)
@@ -449,12 +467,8 @@ class Simulator:
             self._wall_torque(q, dq, torques[_EXTERNAL])
         np.add(torques[0], torques[1], out=f[1])
         f[1] += torques[2]
-        if self._has_gravity:
-            self._gravity_torque(q, self._scratch)
-            f[1] += self._scratch
-        f[1] *= self._inv_inertia_full
-        if self._any_held:
-            f[1] *= self._free
+        self._add_gravity(q, f[1])
+        f[1] *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
         np.copyto(f[0], dq)
         self._kernel.actuator_rates(act, targets, f[2 : self._n_dyn])
         np.multiply(torques, dq, out=f[self._n_dyn :])
@@ -492,10 +506,16 @@ class Simulator:
             np.multiply(stages[0], h, out=self._acc)
             y += self._acc
         self._set_k = self._kernel.set_stiffness(act, targets)
-        deflection_after = y[0] - self._kernel.equilibrium(act, targets)
         # midpoint rule for 1/2 * dK/dt * deflection^2 over the step
-        middle = 0.5 * (deflection_before + deflection_after)
-        self._injection += 0.5 * (self._set_k - set_before) * middle * middle
+        middle = self._kernel.equilibrium(act, targets)
+        np.subtract(y[0], middle, out=middle)
+        middle += deflection_before
+        middle *= 0.5
+        middle *= middle
+        change = self._set_k - set_before
+        change *= middle
+        change *= 0.5
+        self._injection += change
         self._step_index += 1
 
     def _apply_events(self, step: int) -> None:
@@ -530,7 +550,7 @@ class Simulator:
                 else:
                     layer.pop(flat, None)
                 walls_changed = True
-        self._any_held = not bool(self._free.all())
+        self._accel_scale = self._inv_inertia_full * self._free
         if walls_changed:
             self._wall_layers = [
                 (
@@ -551,15 +571,16 @@ class Simulator:
         q, dq, act = y[0], y[1], y[2 : self._n_dyn]
         torques = self._torques
         net = torques.sum(axis=0)
-        if self._has_gravity:
-            gravity = np.empty_like(q)
-            self._gravity_torque(q, gravity)
-            net += gravity
+        self._add_gravity(q, net)
         held = self._free == 0.0
         tau_mech = torques[_SPRING] + (self._mech_damping if kernel.damping_range()[1].any() else 0)
-        tau_measured = tau_mech + self._noise * self._rng.standard_normal(q.shape)
-        resolution = np.where(self._resolution > 0, self._resolution, 1.0)
-        q_measured = np.where(self._resolution > 0, np.round(q / resolution) * resolution, q)
+        tau_measured = tau_mech
+        if self._noise.any():
+            tau_measured = tau_mech + self._noise * self._rng.standard_normal(q.shape)
+        q_measured = q
+        if self._resolution.any():
+            resolution = np.where(self._resolution > 0, self._resolution, 1.0)
+            q_measured = np.where(self._resolution > 0, np.round(q / resolution) * resolution, q)
         spring_potential = kernel.potential(q, act, targets)
         stop_potential = self._stop_potential(q)
         works = y[self._n_dyn :]
