@@ -274,3 +274,32 @@ def test_outcome_metrics_bad_input():
         outcome_metrics(t[::-1], q, nominal, tau_ext, tau_mech, goal=[0, 0])
     with pytest.raises(InvalidInputError, match=r"joints: 1 JointParams for 2 columns"):
         outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0], joints=[SHOULDER])
+
+
+def test_recovery_after_impulse_in_simulation_is_bracketed_by_the_envelope():
+    from compliant_demo.perturbation import Impulse, PerturbationSchedule
+
+    joint = JointParams(name="elbow", inertia=0.03, viscous_damping=0.01)
+    stiffness, zeta, impulse, band = 50.0, 0.3, 0.03, 0.002
+    omega = np.sqrt(stiffness / joint.inertia)
+    damping = 2 * zeta * np.sqrt(stiffness * joint.inertia) - joint.viscous_damping
+    n = 2000
+    schedule = PerturbationSchedule(perturbations=[Impulse(onset_s=0.5, magnitude=impulse)])
+    result = simulate([joint], IDEAL, np.full((n, 1), 0.3), np.full((n, 1), stiffness),
+                      np.full((n, 1), damping), schedules=[schedule], q0=[0.3], dt=1e-3)
+    q = result.q[:, 0, :]
+    metrics = outcome_metrics(result.t, q, np.full_like(q, 0.3), result.tau_external[:, 0, :],
+                              result.tau_mechanism[:, 0, :], goal=[0.3],
+                              perturbation_onsets=[0.5], recovery_band=band)
+    # Impulse P on m x'' + d x' + k x = 0 from rest: x = (P/m)/w_d exp(-zeta w t) sin(w_d t)
+    # (common practice). The last exit from the band lies within half a period before the
+    # envelope crosses it.
+    damped = omega * np.sqrt(1 - zeta**2)
+    amplitude = impulse / joint.inertia / damped
+    envelope_time = np.log(amplitude / band) / (zeta * omega)
+    recovery = metrics["recovery_time_s"][0]
+    assert envelope_time - np.pi / damped - 2e-3 <= recovery <= envelope_time + 2e-3
+    # Peak at w_d t = arctan(sqrt(1 - zeta^2)/zeta), where x' = 0.
+    phase = np.arctan(np.sqrt(1 - zeta**2) / zeta)
+    peak = amplitude * np.exp(-zeta * omega * phase / damped) * np.sin(phase)
+    assert metrics["peak_deviation_rad"][0] == pytest.approx(peak, rel=0.01)
