@@ -100,6 +100,9 @@ def _fields(item: object, label: str) -> tuple[Any, Any, Any, Any, Any]:
             raise InvalidInputError(f"{label}: expected (t, position) or (t, position, "
                                     f"stiffness), got a tuple of {len(item)} items")
         return item[0], item[1], item[2] if len(item) == 3 else None, None, None
+    if isinstance(item, np.ndarray | list):
+        raise InvalidInputError(f"{label}: a bare array carries no sample times; pass "
+                                "(t, position[, stiffness]) with t in s")
     if hasattr(item, "t") and hasattr(item, "position"):
         # compliant_demo.store.Demonstration, or anything shaped like it.
         return (item.t, item.position, getattr(item, "stiffness", None),

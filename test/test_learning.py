@@ -263,6 +263,8 @@ def test_bad_containers():
         learn_skill([{"time": [0, 1]}], joints=JOINTS)
     with pytest.raises(InvalidInputError, match=r"demos\[0\]: expected a Demonstration, .* str"):
         learn_skill(["cork"], joints=JOINTS)
+    with pytest.raises(InvalidInputError, match=r"demos\[1\]: a bare array carries no sample"):
+        learn_skill([(np.arange(3.0), np.zeros((3, 2))), np.zeros((3, 2))], joints=JOINTS)
 
 
 def test_nan_stiffness_samples_are_bridged():
