@@ -266,6 +266,8 @@ class Simulator:
     schedules : one perturbation schedule per scenario, or None
     seed : seeds torque-sensor noise and random torques without their own seed
     check_stability : refuse a step above the largest stable one (UnstableStepError)
+    horizon_steps : steps the run will last, if known; a perturbation that would start at or
+        after it is reported with a warning (it can never act)
 
     Notes
     -----
@@ -284,6 +286,7 @@ class Simulator:
         schedules: Sequence[PerturbationSchedule] | None = None,
         seed: int | None = None,
         check_stability: bool = True,
+        horizon_steps: int | None = None,
     ) -> None:
         joints = list(joints)
         if not joints or not all(isinstance(j, JointParams) for j in joints):
@@ -311,6 +314,9 @@ class Simulator:
             self.dt,
             seed,
         )
+        if horizon_steps is not None:
+            for late in self._perturb.starts_at_or_after(int(horizon_steps)):
+                warnings.warn(f"{late} starts after the run's {horizon_steps} steps", stacklevel=2)
         if check_stability:
             wall_k, wall_b = self._perturb.wall_stiffness()
             check_step_stability(joints, mechanism, self.dt, method, wall_k, wall_b)
@@ -808,5 +814,6 @@ def simulate(
     sim = Simulator(
         joints, mechanism, n_scenarios=n_scen, dt=dt, method=method, q0=q0, dq0=dq0,
         schedules=schedules, seed=seed, check_stability=check_stability,
+        horizon_steps=np.shape(equilibrium)[0] if np.ndim(equilibrium) >= 1 else None,
     )
     return sim.run(equilibrium, stiffness, damping, decimation=decimation)

@@ -85,6 +85,13 @@ class CompiledSchedules:
     walls: list[WallSpec] = field(default_factory=list)
     holds: list[tuple[int, int, int, int]] = field(default_factory=list)
     impulses: list[tuple[int, int, int, float]] = field(default_factory=list)
+    starts: list[tuple[int, int, int]] = field(default_factory=list)
+
+    def starts_at_or_after(self, step: int) -> list[str]:
+        """Names ``schedules[s].perturbations[i]`` of perturbations starting at or after ``step``."""
+        return [
+            f"schedules[{s}].perturbations[{i}]" for s, i, start in self.starts if start >= step
+        ]
 
     @property
     def n_wall_layers(self) -> int:
@@ -169,6 +176,7 @@ def compile_schedules(
                     "joint(s) are simulated"
                 )
             start, stop = step_span(p, dt)
+            compiled.starts.append((s, i, start))
             if isinstance(p, Impulse):
                 signed = p.sign * p.magnitude
                 if start == stop:
