@@ -88,7 +88,7 @@ class CompiledSchedules:
     starts: list[tuple[int, int, int]] = field(default_factory=list)
 
     def starts_at_or_after(self, step: int) -> list[str]:
-        """Names ``schedules[s].perturbations[i]`` of perturbations starting at or after ``step``."""
+        """Names ``schedules[s].perturbations[i]`` of those starting at or after ``step``."""
         return [
             f"schedules[{s}].perturbations[{i}]" for s, i, start in self.starts if start >= step
         ]
