@@ -1,0 +1,125 @@
+"""Options shared by the learn, replay, campaign, report and tour subcommands, and their readers.
+
+Every subcommand names a skill the same way (``--skill NAME [--version N]``), the simulated target
+the same way (``--plant FILE``), and chooses where campaigns run the same way (``--workers N`` or
+``--scheduler ADDRESS``). Values are checked here so that a bad one is one clear line.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.primitives import Skill
+from compliant_demo.runtime import ReplayPlant, load_plant
+from compliant_demo.store import DemoStore, SkillRecord
+
+__all__ = [
+    "DEFAULT_SKILL",
+    "add_skill_options",
+    "add_plant_option",
+    "add_backend_options",
+    "add_progress_option",
+    "positive_int",
+    "non_negative_int",
+    "positive_float",
+    "non_negative_float",
+    "read_plant",
+    "read_skill",
+    "show_progress",
+]
+
+DEFAULT_SKILL = "cork_seat"
+
+
+def _number(kind: type, low: float, inclusive: bool, text: str) -> float:
+    try:
+        value = kind(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if value != value or value in (float("inf"), float("-inf")):  # NaN or infinite
+        raise argparse.ArgumentTypeError(f"{text!r} is not finite")
+    if value < low or (value == low and not inclusive):
+        bound = ">=" if inclusive else ">"
+        raise argparse.ArgumentTypeError(f"{text!r} must be {bound} {low:g}")
+    return value
+
+
+def positive_int(text: str) -> int:
+    """argparse type: an integer >= 1."""
+    return int(_number(int, 1, True, text))
+
+
+def non_negative_int(text: str) -> int:
+    """argparse type: an integer >= 0."""
+    return int(_number(int, 0, True, text))
+
+
+def positive_float(text: str) -> float:
+    """argparse type: a finite number > 0."""
+    return float(_number(float, 0.0, False, text))
+
+
+def non_negative_float(text: str) -> float:
+    """argparse type: a finite number >= 0."""
+    return float(_number(float, 0.0, True, text))
+
+
+def add_skill_options(parser: argparse.ArgumentParser) -> None:
+    """``--skill NAME`` and ``--version N`` (latest when omitted)."""
+    parser.add_argument("--skill", default=DEFAULT_SKILL,
+                        help=f"skill name (default: {DEFAULT_SKILL})")
+    parser.add_argument("--version", dest="skill_version", type=positive_int, default=None,
+                        metavar="N", help="skill version (default: the latest)")
+
+
+def add_plant_option(parser: argparse.ArgumentParser) -> None:
+    """``--plant FILE``: the simulated target joints and mechanism."""
+    parser.add_argument(
+        "--plant", type=Path, default=None, metavar="FILE",
+        help="YAML with 'joints' (inertia kg*m^2, damping N*m*s/rad, limits rad, torque limit "
+             "N*m) and 'mechanism' (kind ideal or antagonistic, stiffness range N*m/rad); "
+             "default: the cork_seat bench arm on the ideal variable-impedance mechanism")
+
+
+def add_backend_options(parser: argparse.ArgumentParser) -> None:
+    """``--workers N`` or ``--scheduler ADDRESS`` (mutually exclusive)."""
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument("--workers", type=non_negative_int, default=None, metavar="N",
+                       help="local worker processes (default: every core; 0 runs in this "
+                            "process)")
+    group.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="run the batches on this Dask scheduler (tcp://host:port) instead "
+                            "(needs the 'dask' extra)")
+
+
+def add_progress_option(parser: argparse.ArgumentParser) -> None:
+    """``--quiet``: no progress bars on stderr."""
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress bars (they go to stderr, so --json stays clean)")
+
+
+def show_progress(args: argparse.Namespace) -> bool:
+    """Progress bars unless ``--quiet``."""
+    return not args.quiet and sys.stderr is not None
+
+
+def read_plant(args: argparse.Namespace) -> ReplayPlant:
+    """The plant ``--plant`` names, or the default one."""
+    if args.plant is not None and not args.plant.is_file():
+        raise InvalidInputError(f"--plant {str(args.plant)!r}: no such file")
+    return load_plant(args.plant)
+
+
+def read_skill(store: DemoStore, args: argparse.Namespace) -> tuple[SkillRecord, Skill]:
+    """The stored record and the skill of ``--skill``/``--version``."""
+    record = store.load_skill(args.skill, args.skill_version)
+    try:
+        return record, Skill.model_validate(record.payload)
+    except ValueError as exc:
+        raise InvalidInputError(
+            f"skill {args.skill!r} version {record.version}: not a skill this version reads "
+            f"({str(exc).splitlines()[0]})"
+        ) from None

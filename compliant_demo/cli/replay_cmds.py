@@ -1,0 +1,111 @@
+"""``compliant-demo replay``: run one skill once on the simulated joint, optionally perturbed."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from tqdm import tqdm
+
+from compliant_demo.cli._job_options import (
+    add_plant_option,
+    add_progress_option,
+    add_skill_options,
+    non_negative_float,
+    non_negative_int,
+    positive_float,
+    read_plant,
+    read_skill,
+    show_progress,
+)
+from compliant_demo.cli.common import (
+    add_json_option,
+    add_store_option,
+    emit_json,
+    emit_table,
+    store_path_of,
+)
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.perturbation import load_schedule_yaml
+from compliant_demo.runtime import ReplayRun
+from compliant_demo.store import DemoStore
+
+__all__ = ["register"]
+
+_SHOWN = ("goal_error_max_rad", "peak_deviation_rad", "recovery_time_s",
+          "peak_interaction_torque_Nm", "energy_injected_J", "n_limit_violations")
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:
+    """Add the ``replay`` subcommand."""
+    parser = subparsers.add_parser(
+        "replay",
+        help="replay a skill once on the simulated joint and store the outcome",
+        description=(
+            "Roll the skill out (movement, stiffness N*m/rad and damping N*m*s/rad schedule), "
+            "run it on the simulated plant step by step with the perturbations of --schedule, "
+            "stop safely at the first torque (N*m), joint range (rad) or stiffness-rate "
+            "(N*m/rad/s) violation, and store metrics and trace as a replay result. Exits 0 "
+            "only when the replay ran to its end without a violation."
+        ),
+    )
+    add_store_option(parser)
+    add_skill_options(parser)
+    add_plant_option(parser)
+    parser.add_argument("--schedule", type=Path, default=None, metavar="FILE",
+                        help="perturbation schedule YAML {name, perturbations: [{kind, joint, "
+                             "onset_s, duration_s, magnitude, sign, ...}]} (default: none)")
+    parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
+                        help="movement duration, s (default: the demonstrated one)")
+    parser.add_argument("--settle", type=non_negative_float, default=0.5, metavar="S",
+                        help="time simulated after the movement, s (default: 0.5)")
+    parser.add_argument("--dt", type=positive_float, default=1e-3, metavar="S",
+                        help="control period and integration step, s (default: 0.001)")
+    parser.add_argument("--max-stiffness-rate", type=positive_float, default=float("inf"),
+                        metavar="K_PER_S",
+                        help="stop when the commanded stiffness changes faster, N*m/rad/s "
+                             "(default: no limit beyond the mechanism's own)")
+    parser.add_argument("--seed", type=non_negative_int, default=0,
+                        help="seed of sensor noise and unseeded random torques (default: 0)")
+    add_progress_option(parser)
+    add_json_option(parser)
+    parser.set_defaults(handler=_run)
+
+
+def _run(args: argparse.Namespace) -> int:
+    plant = read_plant(args)
+    if args.schedule is not None and not args.schedule.is_file():
+        raise InvalidInputError(f"--schedule {str(args.schedule)!r}: no such file")
+    schedule = None if args.schedule is None else load_schedule_yaml(args.schedule)
+    with DemoStore(store_path_of(args), create=False) as store:
+        record, skill = read_skill(store, args)
+        run = ReplayRun(skill, plant, schedule, dt=args.dt, duration_s=args.duration,
+                        settle_s=args.settle, seed=args.seed,
+                        max_stiffness_rate=args.max_stiffness_rate)
+        with tqdm(total=run.n_steps, desc="replay", unit="step", file=sys.stderr,
+                  disable=not show_progress(args), leave=False, mininterval=0.5) as bar:
+            while not run.finished:
+                run.step()
+                bar.update(1)
+        status, reason, metrics, trace = run.outcome()
+        parameters = {
+            "skill_version": record.version,
+            "schedule": None if schedule is None else schedule.model_dump(mode="json"),
+            "plant": plant.model_dump(mode="json"),
+            "duration_s": args.duration, "settle_s": args.settle, "dt": args.dt,
+            "seed": args.seed,
+            "kind": "+".join(schedule.kinds) if schedule and schedule.kinds else "none",
+        }
+        result_id = store.save_replay_result(skill_id=record.id, metrics=metrics,
+                                             parameters=parameters, status=status,
+                                             reason=reason, trace=trace)
+    if args.json:
+        emit_json({"result_id": result_id, "skill": skill.name, "version": record.version,
+                   "status": status, "reason": reason, "metrics": metrics})
+    else:
+        print(f"replay of {skill.name} version {record.version}: {status}"
+              + (f" ({reason})" if reason else "") + f"; result {result_id}")
+        emit_table([{"metric": key, "value": metrics[key]} for key in _SHOWN],
+                   ("metric", "value"))
+    return 0 if status == "ok" else 1

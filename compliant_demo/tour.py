@@ -1,0 +1,305 @@
+"""The whole job in one call: record, learn, run a perturbation campaign, write the report.
+
+:func:`run_tour` starts the simulated teacher and the recorder as real ROS 2 processes from the
+``record.launch.xml`` launch file (their environment confines DDS to the loopback interface and
+sets the ROS domain), waits until they have recorded the cork_seat demonstrations into the store,
+stops them, then learns a skill from exactly those demonstrations, replays it in a campaign of
+perturbed scenarios over every perturbation kind, and writes the HTML report with the teacher's
+ground truth. Nothing here imports rclpy: the nodes are separate processes.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from tqdm import tqdm
+
+from compliant_demo.campaign import (
+    CampaignSummary,
+    ReplayCampaign,
+    default_campaign_spec,
+    run_campaign,
+)
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
+from compliant_demo.launch_file import read_launch_file, start_nodes
+from compliant_demo.learning import learn_skill, save_skill
+from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.runtime import load_plant
+from compliant_demo.store import DemoStore
+
+__all__ = ["TourSettings", "TourResult", "TourError", "run_tour", "package_launch_file"]
+
+SKILL = "cork_seat"
+OPERATOR = "operator_a"
+_STOP_GRACE_S = 10.0
+
+
+class TourError(CompliantDemoError, RuntimeError):
+    """A step of the tour failed (a node exited early, recording timed out)."""
+
+
+@dataclass(frozen=True)
+class TourSettings:
+    """What the tour does and where it writes.
+
+    Attributes
+    ----------
+    store : store file (created if missing)
+    out_dir : directory for the report, the PNG figures, the teacher's truth file and node logs
+    n_demonstrations : demonstrations the simulated teacher gives (about 7 s each, real time)
+    n_scenarios : perturbed scenarios of the campaign (spread evenly over every kind)
+    seed : seed of the first demonstration and of the campaign
+    domain_id : ROS_DOMAIN_ID of the node processes (0-101)
+    workers : local worker processes (None: every core; 0: in this process)
+    scheduler : Dask scheduler address instead of local workers
+    record_timeout_s : longest wait for the recording, s
+    launch_file : the recording launch file; None uses the package's ``record.launch.xml``
+    """
+
+    store: Path
+    out_dir: Path
+    n_demonstrations: int = 4
+    n_scenarios: int = 350
+    seed: int = 1
+    domain_id: int = 17
+    workers: int | None = None
+    scheduler: str | None = None
+    record_timeout_s: float = 150.0
+    launch_file: Path | None = None
+
+    def __post_init__(self) -> None:
+        if not 2 <= self.n_demonstrations <= 50:
+            raise InvalidInputError(
+                f"n_demonstrations = {self.n_demonstrations}: must be 2 to 50 (learning needs two)"
+            )
+        if self.n_scenarios < 1:
+            raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
+        if not 0 <= self.domain_id <= 101:
+            raise InvalidInputError(f"domain_id = {self.domain_id}: must be 0 to 101")
+        if not self.record_timeout_s > 0:
+            raise InvalidInputError(f"record_timeout_s = {self.record_timeout_s}: must be > 0 s")
+
+
+@dataclass(frozen=True)
+class TourResult:
+    """What the tour produced: ids in the store, the campaign, the report and step timings (s)."""
+
+    store: Path
+    demonstration_ids: tuple[str, ...]
+    skill_id: str
+    skill_version: int
+    campaign: CampaignSummary
+    report: Path
+    figures: tuple[Path, ...]
+    summary: tuple[tuple[str, str], ...]
+    timings_s: dict[str, float] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, Any]:
+        """JSON-ready form."""
+        return {
+            "store": str(self.store),
+            "demonstration_ids": list(self.demonstration_ids),
+            "skill": {"name": SKILL, "id": self.skill_id, "version": self.skill_version},
+            "campaign": {
+                "id": self.campaign.campaign_id,
+                "scenarios": self.campaign.n_scenarios,
+                "violations": self.campaign.n_violations,
+                "backend": self.campaign.backend,
+                "workers": self.campaign.workers,
+                "scenarios_per_s": self.campaign.scenarios_per_s,
+            },
+            "report": str(self.report),
+            "figures": [str(p) for p in self.figures],
+            "summary": dict(self.summary),
+            "timings_s": self.timings_s,
+        }
+
+
+def package_launch_file(name: str) -> Path:
+    """A launch file of the package: the source tree's ``launch/`` or the installed share dir."""
+    candidates = [
+        Path(__file__).resolve().parent.parent / "launch" / name,
+        Path(sys.prefix) / "share" / "compliant_demo" / "launch" / name,
+    ]
+    for candidate in candidates:
+        if candidate.is_file():
+            return candidate
+    raise InvalidInputError(
+        f"launch file {name!r} not found (looked in {[str(c.parent) for c in candidates]})"
+    )
+
+
+def node_environment(domain_id: int) -> dict[str, str]:
+    """This process's environment with DDS confined to loopback and the given ROS domain."""
+    env = dict(os.environ)
+    env["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
+    env["ROS_DOMAIN_ID"] = str(domain_id)
+    # Ship unbuffered logs so the tail in an error message is current.
+    env["PYTHONUNBUFFERED"] = "1"
+    return env
+
+
+def _new_complete(store_path: Path, before: set[str]) -> list[str]:
+    with DemoStore(store_path, read_only=True) as store:
+        infos = store.find_demonstrations(skill=SKILL, status="complete", order_by="start_time")
+        return [info.id for info in infos if info.id not in before]
+
+
+def _tail(path: Path, lines: int = 8) -> str:
+    try:
+        text = path.read_text(encoding="utf-8", errors="replace").splitlines()
+    except OSError:
+        return ""
+    return " | ".join(text[-lines:])
+
+
+def _stop(processes: list[subprocess.Popen]) -> None:
+    for process in processes:
+        if process.poll() is None:
+            process.send_signal(signal.SIGINT)
+    deadline = time.monotonic() + _STOP_GRACE_S
+    for process in processes:
+        try:
+            process.wait(timeout=max(0.1, deadline - time.monotonic()))
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait()
+
+
+def record_demonstrations(settings: TourSettings, progress: bool) -> tuple[list[str], Path]:
+    """Run teacher and recorder as processes until the demonstrations are in the store.
+
+    Returns the new demonstration ids (recording order) and the teacher's truth file.
+    """
+    settings.out_dir.mkdir(parents=True, exist_ok=True)
+    truth_path = settings.out_dir / "teacher_truth.npz"
+    truth_path.unlink(missing_ok=True)
+    with DemoStore(settings.store):  # create or migrate the file before the nodes open it
+        pass
+    before = set(_new_complete(settings.store, set()))
+    launch = settings.launch_file or package_launch_file("record.launch.xml")
+    description = read_launch_file(launch, {
+        "store": str(settings.store),
+        "demos": str(settings.n_demonstrations),
+        "seed": str(settings.seed),
+        "operator": OPERATOR,
+        "truth": str(truth_path),
+    })
+    log_path = settings.out_dir / "nodes.log"
+    with open(log_path, "w", encoding="utf-8") as log:
+        processes = start_nodes(description, env=node_environment(settings.domain_id),
+                                stdout=log, stderr=subprocess.STDOUT)
+    names = [node.name or node.executable for node in description.nodes]
+    teacher = processes[names.index("teacher")]
+    deadline = time.monotonic() + settings.record_timeout_s
+    recorded: list[str] = []
+    try:
+        with tqdm(total=settings.n_demonstrations, desc="record", unit="demo", file=sys.stderr,
+                  disable=not progress, leave=False) as bar:
+            while True:
+                recorded = _new_complete(settings.store, before)
+                bar.update(len(recorded) - bar.n)
+                teacher_done = teacher.poll() is not None
+                if len(recorded) >= settings.n_demonstrations and teacher_done:
+                    break
+                for name, process in zip(names, processes, strict=True):
+                    if process.poll() not in (None, 0):
+                        raise TourError(f"{name} node exited with {process.returncode} during "
+                                        f"recording; log {log_path}: {_tail(log_path)}")
+                if teacher_done:
+                    # The teacher stops the recorder before it exits; give the writer a moment.
+                    time.sleep(0.5)
+                    recorded = _new_complete(settings.store, before)
+                    if len(recorded) < settings.n_demonstrations:
+                        raise TourError(
+                            f"teacher finished but {len(recorded)} of "
+                            f"{settings.n_demonstrations} demonstrations are complete in "
+                            f"{settings.store}; log {log_path}: {_tail(log_path)}")
+                    break
+                if time.monotonic() > deadline:
+                    raise TourError(
+                        f"recording took longer than {settings.record_timeout_s} s "
+                        f"({len(recorded)} of {settings.n_demonstrations} demonstrations); "
+                        f"log {log_path}: {_tail(log_path)}")
+                time.sleep(0.2)
+            bar.update(len(recorded) - bar.n)
+    finally:
+        _stop(processes)
+    return recorded[: settings.n_demonstrations], truth_path
+
+
+def _timed(timings: dict[str, float], name: str, step: Callable[[], Any]) -> Any:
+    started = time.perf_counter()
+    value = step()
+    timings[name] = round(time.perf_counter() - started, 3)
+    return value
+
+
+def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
+    """Record, learn, run the campaign and write the report; see the module docstring.
+
+    Parameters
+    ----------
+    settings : TourSettings
+    progress : progress bars on stderr
+
+    Returns
+    -------
+    TourResult
+    """
+    timings: dict[str, float] = {}
+    started = time.perf_counter()
+    demo_ids, truth_path = _timed(timings, "record", lambda: record_demonstrations(
+        settings, progress))
+    plant = load_plant(None)
+    joints = [joint.name for joint in plant.joints]
+    mechanism = plant.mechanism
+    with DemoStore(settings.store, durable=False) as store:
+        def learn():
+            demos = [store.load_demonstration(i, joints=joints) for i in demo_ids]
+            skill = learn_skill(
+                demos, joints=joints, n_basis=30, name=SKILL,
+                stiffness_range=(mechanism.stiffness_min, mechanism.stiffness_max),
+                target_inertia=[joint.inertia for joint in plant.joints],
+            )
+            return skill, save_skill(store, skill)
+
+        skill, record = _timed(timings, "learn", learn)
+        job = ReplayCampaign(skill, plant, default_campaign_spec(len(joints)),
+                             settings.n_scenarios, seed=settings.seed)
+        campaign = _timed(timings, "campaign", lambda: run_campaign(
+            store, job, skill_id=record.id, workers=settings.workers,
+            scheduler=settings.scheduler, progress=progress))
+
+        def report():
+            with tqdm(total=2, desc="report", unit="step", file=sys.stderr,
+                      disable=not progress, leave=False) as bar:
+                content = collect_report_content(
+                    store, SKILL, version=record.version, campaign_id=campaign.campaign_id,
+                    plant=plant, truth=GroundTruth.from_npz(truth_path))
+                bar.update(1)
+                files = write_report(content, settings.out_dir)
+                bar.update(1)
+            return content, files
+
+        content, files = _timed(timings, "report", report)
+    timings["total"] = round(time.perf_counter() - started, 3)
+    return TourResult(
+        store=settings.store,
+        demonstration_ids=tuple(demo_ids),
+        skill_id=record.id,
+        skill_version=record.version,
+        campaign=campaign,
+        report=files.html,
+        figures=files.figures,
+        summary=content.summary,
+        timings_s=timings,
+    )
