@@ -1,0 +1,210 @@
+"""Perturbation kinds, schedules from YAML, campaigns and their compiled torque profiles."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.perturbation import (
+    NEVER,
+    PERTURBATION_KINDS,
+    CampaignSpec,
+    Choice,
+    Hold,
+    Impulse,
+    LogUniform,
+    Normal,
+    PerturbationSchedule,
+    RandomTorque,
+    TorqueStep,
+    TorqueWindow,
+    Uniform,
+    draw_scenarios,
+    load_campaign_yaml,
+    load_schedule_yaml,
+    load_schedules_yaml,
+    perturbation_from_mapping,
+    random_torque_coefficients,
+    random_torque_value,
+    step_span,
+)
+from compliant_demo.sim.schedule import compile_schedules
+
+CONFIG = Path(__file__).resolve().parent.parent / "config"
+
+
+def _write(tmp_path: Path, text: str) -> Path:
+    path = tmp_path / "schedule.yaml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_example_configs_load():
+    scenarios = load_schedules_yaml(CONFIG / "perturbations_cork_seat.yaml")
+    assert [s.name for s in scenarios][:2] == ["unperturbed", "bump_during_approach"]
+    assert {k for s in scenarios for k in s.kinds} == set(PERTURBATION_KINDS)
+    spec = load_campaign_yaml(CONFIG / "perturbations_campaign.yaml")
+    assert spec.name == "cork_seat_robustness" and len(draw_scenarios(spec, 5, 0)) == 5
+
+
+def test_schedule_yaml_round_trip(tmp_path):
+    path = _write(
+        tmp_path,
+        "name: bumps\nperturbations:\n"
+        "  - {kind: impulse, onset_s: 0.5, joint: 1, magnitude: 0.02, sign: -1}\n"
+        "  - {kind: wall, onset_s: 1.0, position: 0.3, magnitude: 400}\n",
+    )
+    schedule = load_schedule_yaml(path)
+    assert schedule.name == "bumps"
+    assert schedule.perturbations[0] == Impulse(onset_s=0.5, joint=1, magnitude=0.02, sign=-1)
+    assert schedule.perturbations[1].duration_s == math.inf
+
+
+def test_unknown_kind_in_yaml_is_named(tmp_path):
+    path = _write(tmp_path, "perturbations:\n  - {kind: shove, onset_s: 1.0}\n")
+    with pytest.raises(InvalidInputError, match=r"perturbations\[0\]\.kind = 'shove'"):
+        load_schedule_yaml(path)
+
+
+def test_negative_duration_is_named(tmp_path):
+    path = _write(tmp_path, "perturbations:\n  - {kind: hold, duration_s: -0.2}\n")
+    with pytest.raises(InvalidInputError, match=r"'duration_s' = -0\.2"):
+        load_schedule_yaml(path)
+    with pytest.raises(InvalidInputError, match=r"'duration_s' = -1"):
+        perturbation_from_mapping({"kind": "torque_window", "duration_s": -1})
+
+
+@pytest.mark.parametrize(
+    "text, match",
+    [
+        ("perturbations: 3\n", r"perturbations: expected a list"),
+        ("- 1\n- 2\n", r"expected a mapping, got list"),
+        ("perturbations:\n  - {kind: wall, magnitude: 0}\n", r"'magnitude' = 0"),
+        ("perturbations:\n  - {kind: impulse, sign: 2}\n", r"'sign' = 2"),
+        ("perturbations:\n  - {kind: sinusoid, colour: red}\n", r"'colour' = 'red'"),
+        ("perturbations:\n  - {kind: torque_window, duration_s: 0.1, ramp_s: 0.2}\n", "ramp_s"),
+        ("perturbations: [\n", r"not a readable YAML"),
+        ("a: !!python/object:os.system {}\n", r"not a readable YAML"),
+    ],
+)
+def test_bad_schedule_files_raise_named_errors(tmp_path, text, match):
+    with pytest.raises(InvalidInputError, match=match):
+        load_schedule_yaml(_write(tmp_path, text))
+
+
+def test_missing_file_is_named(tmp_path):
+    with pytest.raises(InvalidInputError, match="cannot read file"):
+        load_schedule_yaml(tmp_path / "absent.yaml")
+
+
+def test_step_span_snaps_to_the_grid():
+    dt = 1e-3
+    assert step_span(TorqueWindow(onset_s=0.1004, duration_s=0.2), dt) == (100, 300)
+    assert step_span(Impulse(onset_s=0.0996), dt) == (100, 100)
+    assert step_span(Hold(onset_s=0.2, duration_s=1e-5), dt) == (200, 201)
+    assert step_span(TorqueStep(onset_s=0.5), dt) == (500, NEVER)
+
+
+def test_random_torque_has_exact_rms_and_no_power_above_its_band():
+    p = RandomTorque(duration_s=2.0, magnitude=0.4, bandwidth_hz=5.0)
+    freqs, coefs = random_torque_coefficients(p, 2.0, np.random.default_rng(3))
+    t = np.arange(4000) * 5e-4
+    x = random_torque_value(freqs, coefs, t)
+    # Parseval over whole periods (common practice): RMS equals the set magnitude
+    assert math.sqrt(np.mean(x**2)) == pytest.approx(0.4, rel=1e-10)
+    spectrum = np.abs(np.fft.rfft(x)) ** 2
+    f = np.fft.rfftfreq(t.size, 5e-4)
+    assert spectrum[f > 5.0 + 1e-9].sum() <= 1e-20 * spectrum.sum()
+    assert freqs.max() <= 5.0
+
+
+def test_random_torque_is_seeded_per_scenario():
+    schedules = [PerturbationSchedule(perturbations=[RandomTorque()])] * 2
+    a = compile_schedules(schedules, 2, [0.05], 1e-3, seed=4)
+    b = compile_schedules(schedules, 2, [0.05], 1e-3, seed=4)
+    t = np.linspace(0, 1, 50)
+    assert np.array_equal(a.terms[0].profile(t), b.terms[0].profile(t))
+    assert not np.allclose(a.terms[0].profile(t), a.terms[1].profile(t))
+    own = PerturbationSchedule(perturbations=[RandomTorque(seed=9)])
+    c = compile_schedules([own], 1, [0.05], 1e-3, seed=1)
+    d = compile_schedules([own], 1, [0.05], 1e-3, seed=2)
+    assert np.array_equal(c.terms[0].profile(t), d.terms[0].profile(t))
+
+
+def test_window_and_pulse_profiles():
+    dt = 1e-3
+    window = TorqueWindow(onset_s=0.0, duration_s=0.3, ramp_s=0.05, magnitude=2.0, sign=-1)
+    pulse = Impulse(onset_s=0.0, duration_s=0.02, magnitude=0.03)
+    compiled = compile_schedules(
+        [PerturbationSchedule(perturbations=[window, pulse])], 1, [0.05], dt, seed=0
+    )
+    t = np.linspace(0.0, 0.3, 30001)
+    shape = compiled.terms[0].profile(t)
+    # raised-cosine edges: the area is magnitude * (duration - ramp) (integral of 1/2(1-cos))
+    assert np.trapezoid(shape, t) == pytest.approx(-2.0 * (0.3 - 0.05), rel=1e-6)
+    assert shape[0] == 0 and shape[-1] == pytest.approx(0, abs=1e-12)
+    # a pulse of duration d carries the impulse: height * d = magnitude
+    assert compiled.terms[1].profile(np.array([0.01]))[0] * 0.02 == pytest.approx(0.03)
+
+
+def test_draw_scenarios_is_deterministic_and_follows_the_spec():
+    spec = CampaignSpec(
+        kinds={"impulse": 3.0, "wall": 1.0},
+        joints=[0, 1],
+        perturbations_per_scenario=2,
+        onset_s=Uniform(low=0.5, high=1.5),
+        magnitude={"impulse": LogUniform(low=0.01, high=0.1), "wall": Choice(values=[200, 400])},
+        positive_sign_probability=0.8,
+        fields={"wall": {"position": Normal(mean=0.1, std=0.05, low=0.0, high=0.2)}},
+    )
+    first = draw_scenarios(spec, 400, seed=12)
+    assert first == draw_scenarios(spec, 400, seed=12)
+    assert first != draw_scenarios(spec, 400, seed=13)
+    items = [p for s in first for p in s.perturbations]
+    assert len(items) == 800
+    kinds = np.array([p.kind for p in items])
+    # binomial counts, 800 draws: 4-sigma bands (common practice)
+    assert abs(np.mean(kinds == "impulse") - 0.75) <= 4 * math.sqrt(0.75 * 0.25 / 800)
+    signs = np.array([p.sign for p in items])
+    assert abs(np.mean(signs == 1) - 0.8) <= 4 * math.sqrt(0.8 * 0.2 / 800)
+    onsets = np.array([p.onset_s for p in items])
+    assert onsets.min() >= 0.5 and onsets.max() <= 1.5
+    walls = [p for p in items if p.kind == "wall"]
+    assert {p.magnitude for p in walls} == {200.0, 400.0}
+    assert all(0.0 <= p.position <= 0.2 for p in walls)
+    impulses = [p.magnitude for p in items if p.kind == "impulse"]
+    assert min(impulses) >= 0.01 and max(impulses) <= 0.1
+
+
+@pytest.mark.parametrize(
+    "fields, match",
+    [
+        ({"kinds": {"shove": 1.0}}, "shove"),
+        ({"kinds": {"hold": 1.0}, "magnitude": {"hold": {"distribution": "fixed", "value": 1}}},
+         "no magnitude"),
+        ({"kinds": {"wall": 1.0}, "fields": {"wall": {"colour": {"distribution": "fixed",
+                                                                   "value": 1}}}}, "colour"),
+        ({"kinds": {"wall": 1.0}, "onset_s": {"distribution": "uniform", "low": 2, "high": 1}},
+         "low"),
+    ],
+)
+def test_bad_campaign_specs_raise_named_errors(tmp_path, fields, match):
+    import yaml
+
+    path = tmp_path / "campaign.yaml"
+    path.write_text(yaml.safe_dump({"campaign": fields}), encoding="utf-8")
+    with pytest.raises(InvalidInputError, match=match):
+        load_campaign_yaml(path)
+
+
+def test_draw_that_violates_a_kind_is_named():
+    spec = CampaignSpec(kinds={"impulse": 1.0},
+                        magnitude={"impulse": Normal(mean=0.0, std=1.0)})
+    with pytest.raises(InvalidInputError, match=r"scenario \d+, draw \d+: field 'magnitude'"):
+        draw_scenarios(spec, 50, seed=1)
+    with pytest.raises(InvalidInputError, match="n_scenarios = -1"):
+        draw_scenarios(spec, -1, seed=1)
