@@ -160,6 +160,18 @@ def _as_demo_stack(value: ArrayLike, n_samples: int, name: str) -> NDArray[np.fl
     return array
 
 
+def _channel_stack(value: ArrayLike, demos: NDArray[np.float64], name: str) -> NDArray:
+    """A per-sample channel as (n_demos, n_samples, n_joints) like ``demos``; one (n, j) profile
+    is shared by all demonstrations."""
+    array = _as_demo_stack(value, demos.shape[1], name)
+    if array.shape[0] == 1 and array.shape[2] == demos.shape[2]:
+        return np.broadcast_to(array, demos.shape)
+    if array.shape != demos.shape:
+        raise InvalidInputError(f"{name}: shape {array.shape} does not match position "
+                                f"{demos.shape}")
+    return array
+
+
 class _PhaseBasis:
     """Gaussian basis functions in the phase x = exp(-alpha_x * s), s = t / tau in [0, 1].
 
@@ -810,7 +822,8 @@ def fit_skill(
     ----------
     t : (n_samples,) array, s, strictly increasing, shared by all demonstrations
     position : (n_samples, n_joints) or (n_demos, n_samples, n_joints) array, rad
-    stiffness : same shape as position, N*m/rad, or None for a constant profile at the top of
+    stiffness : same shape as position (or one (n_samples, n_joints) profile for all
+        demonstrations), N*m/rad, or None for a constant profile at the top of
         ``stiffness_range`` (a stiff, position-controlled replay)
     joints : joint names, one per column
     n_basis : Gaussian basis functions per joint, >= 2 and <= n_samples
@@ -819,7 +832,7 @@ def fit_skill(
     stiffness_range : (k_min, k_max) or (n_joints, 2), N*m/rad; the target joint's range the
         profile is clamped to. Default: the recorded range (required without ``stiffness``)
     damping_policy : default ``DampingPolicy(kind="ratio", zeta=0.7)``
-    damping : same shape as position, N*m*s/rad; required by a learned damping policy
+    damping : like ``stiffness``, N*m*s/rad; required by a learned damping policy
     target_inertia : (n_joints,) kg*m^2, stored for the ratio policy
     position_limits : (low, high) or (n_joints, 2), rad; goals outside are refused at rollout
     regularisation : ridge factor relative to the Gram matrix's mean diagonal, 1
@@ -855,11 +868,7 @@ def fit_skill(
         stiffness_rmse = None
         extra.setdefault("stiffness_source", "constant")
     else:
-        recorded = _as_demo_stack(stiffness, times.size, "stiffness")
-        if recorded.shape != demos.shape:
-            raise InvalidInputError(
-                f"stiffness: shape {recorded.shape} does not match position {demos.shape}"
-            )
+        recorded = _channel_stack(stiffness, demos, "stiffness")
         log_weights, fitted = _log_profile(psi, recorded, method, regularisation)
         default_range = np.stack([recorded.min(axis=(0, 1)), recorded.max(axis=(0, 1))], axis=1)
         k_range = _ranges(default_range if stiffness_range is None else stiffness_range,
@@ -872,7 +881,7 @@ def fit_skill(
         if damping is None:
             raise InvalidInputError("damping: a learned damping policy needs a damping channel, "
                                     "got None")
-        recorded_damping = _as_demo_stack(damping, times.size, "damping")
+        recorded_damping = _channel_stack(damping, demos, "damping")
         damping_weights = _log_profile(psi, recorded_damping, method, regularisation)[0].tolist()
     inertia = _per_joint(target_inertia, n_joints, "target_inertia")
     limits = None if position_limits is None else _ranges(position_limits, n_joints,

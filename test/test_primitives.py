@@ -350,10 +350,13 @@ def test_joint_name_count_mismatch(demo):
         fit_skill(t, q, k, joints=["elbow"])
 
 
-def test_stiffness_shape_mismatch(demo):
+def test_stiffness_and_damping_shape_mismatch(demo):
     t, q, k = demo
     with pytest.raises(InvalidInputError, match=r"stiffness: shape \(1, 1001, 1\) does not"):
         fit_skill(t, q, k[:, :1], joints=JOINTS)
+    with pytest.raises(InvalidInputError, match=r"damping: shape \(2, 1001, 2\) does not match"):
+        fit_skill(t, np.stack([q] * 3), k, joints=JOINTS, damping=np.ones((2, 1001, 2)),
+                  damping_policy=DampingPolicy(kind="learned"))
 
 
 def test_non_positive_stiffness(demo):
