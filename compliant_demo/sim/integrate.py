@@ -95,8 +95,24 @@ class EnergyTraces:
 
 
 @dataclass(frozen=True)
-class SimResult:
+class _Channels:
+    q: np.ndarray
+    dq: np.ndarray
+    q_measured: np.ndarray
+    tau_mechanism: np.ndarray
+    tau_measured: np.ndarray
+    tau_external: np.ndarray
+    stiffness_realised: np.ndarray
+    damping_realised: np.ndarray
+    commands_clamped: np.ndarray
+    held: np.ndarray
+
+
+@dataclass(frozen=True)
+class SimResult(_Channels):
     """Recorded traces of a batch; per-sample arrays are ``(n_rec, n_scen, n_joints)``.
+
+    Per-sample arrays are transposed views of joint-major buffers (not C-contiguous).
 
     Attributes
     ----------
@@ -108,13 +124,13 @@ class SimResult:
     tau_external : N*m; perturbation torque on the link (torques, walls, hold reaction)
     stiffness_realised : N*m/rad; mechanism stiffness at the state
     damping_realised : N*m*s/rad; mechanism damping (zero for the antagonistic springs)
+    commands_clamped : bool; the command in force at the sample was clamped
+    held : bool; the link is blocked by a hold
     actuators : (n_rec, 2, n_scen, n_joints); ideal: realised stiffness and damping;
         antagonistic: motor angles theta1, theta2 (rad)
     equilibrium_realised : rad; link angle the actuators are set to
-    commands_clamped : bool; the command in force at the sample was clamped
     clamp_counts : {"stiffness" | "damping" | "equilibrium": (n_scen, n_joints) int}; steps
         whose command was clamped, over the whole run
-    held : bool; the link is blocked by a hold
     in_contact : bool; an end stop or wall is compressed
     energy : :class:`EnergyTraces`
     dt : integration step, s; decimation : steps per sample; method : integrator name
@@ -122,19 +138,9 @@ class SimResult:
     """
 
     t: np.ndarray
-    q: np.ndarray
-    dq: np.ndarray
-    q_measured: np.ndarray
-    tau_mechanism: np.ndarray
-    tau_measured: np.ndarray
-    tau_external: np.ndarray
-    stiffness_realised: np.ndarray
-    damping_realised: np.ndarray
     actuators: np.ndarray
     equilibrium_realised: np.ndarray
-    commands_clamped: np.ndarray
     clamp_counts: dict[str, np.ndarray]
-    held: np.ndarray
     in_contact: np.ndarray
     energy: EnergyTraces
     dt: float
@@ -148,20 +154,11 @@ class SimResult:
 
 
 @dataclass(frozen=True)
-class StepState:
-    """State after one :meth:`Simulator.step`; arrays ``(n_scen, n_joints)``, units as SimResult."""
+class StepState(_Channels):
+    """State after one :meth:`Simulator.step`: the channels of :class:`SimResult` as
+    ``(n_scen, n_joints)`` arrays, same units, and the time ``t`` (s) they belong to."""
 
     t: float
-    q: np.ndarray
-    dq: np.ndarray
-    q_measured: np.ndarray
-    tau_mechanism: np.ndarray
-    tau_measured: np.ndarray
-    tau_external: np.ndarray
-    stiffness_realised: np.ndarray
-    damping_realised: np.ndarray
-    commands_clamped: np.ndarray
-    held: np.ndarray
 
 
 # channels recorded per sample, (J, S) each, in the order of _observe's dictionary

@@ -150,6 +150,13 @@ def _sine(amplitude: float, frequency: float, phase: float) -> Callable[[np.ndar
     return lambda t: amplitude * np.sin(2 * np.pi * frequency * t + phase)
 
 
+def _below_nyquist(frequency_hz: float, name: str, dt: float) -> None:
+    if frequency_hz >= 0.5 / dt:
+        raise InvalidInputError(
+            f"{name} = {frequency_hz}: at or above the Nyquist frequency {0.5 / dt} Hz of the step"
+        )
+
+
 def compile_schedules(
     schedules: Sequence[PerturbationSchedule] | None,
     n_scenarios: int,
@@ -193,19 +200,13 @@ def compile_schedules(
                 profile = _window(p.sign * p.magnitude, ramp, length)
                 compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
             elif isinstance(p, Sinusoid):
-                if p.frequency_hz >= 0.5 / dt:
-                    raise InvalidInputError(
-                        f"schedules[{s}].perturbations[{i}].frequency_hz = {p.frequency_hz}: "
-                        f"at or above the Nyquist frequency {0.5 / dt} Hz of the step"
-                    )
+                where = f"schedules[{s}].perturbations[{i}]"
+                _below_nyquist(p.frequency_hz, f"{where}.frequency_hz", dt)
                 profile = _sine(p.sign * p.magnitude, p.frequency_hz, p.phase_rad)
                 compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
             elif isinstance(p, RandomTorque):
-                if p.bandwidth_hz >= 0.5 / dt:
-                    raise InvalidInputError(
-                        f"schedules[{s}].perturbations[{i}].bandwidth_hz = {p.bandwidth_hz}: "
-                        f"at or above the Nyquist frequency {0.5 / dt} Hz of the step"
-                    )
+                where = f"schedules[{s}].perturbations[{i}]"
+                _below_nyquist(p.bandwidth_hz, f"{where}.bandwidth_hz", dt)
                 if stop == start:
                     continue
                 rng = np.random.default_rng(p.seed if p.seed is not None else [base_seed, s, i])
