@@ -106,18 +106,22 @@ def _stretches(
     t: NDArray[np.float64],
     joints: Sequence[str],
     kind: str,
-    mask: NDArray[np.bool_],
     value: NDArray[np.float64],
+    severity: NDArray[np.float64],
     unit: str,
-    worst_is_max: bool,
 ) -> list[Stretch]:
+    """Stretches where ``severity > 0``; ``worst`` is ``value`` where the severity peaks."""
     found = []
     for j, name in enumerate(joints):
-        for first, last in _runs(mask[:, j]):
-            segment = value[first:last + 1, j]
-            worst = segment.max() if worst_is_max else segment.min()
+        for first, last in _runs(severity[:, j] > 0):
+            worst = value[first + int(np.argmax(severity[first:last + 1, j])), j]
             found.append(Stretch(name, kind, float(t[first]), float(t[last]), float(worst), unit))
     return found
+
+
+def _outside(value: NDArray[np.float64], low: ArrayLike, high: ArrayLike) -> NDArray[np.float64]:
+    """Distance beyond [low, high], positive outside, negative inside."""
+    return np.maximum(np.asarray(low) - value, value - np.asarray(high))
 
 
 def _mechanism_limits(
@@ -237,29 +241,32 @@ def check_schedule(
     power = 0.5 * np.gradient(stiffness, t, axis=0) * deflection**2
     tank = _tank(t, power, energy_budget)
 
-    masks = {
-        "under_damped": (ratio < min_damping_ratio, ratio, "1", False),
-        "energy_tank_empty": (tank < 0, tank, "J", False),
-        "stiffness_range": (
-            (rollout.stiffness < limits["k_min"]) | (rollout.stiffness > limits["k_max"]),
-            rollout.stiffness, "N*m/rad", True),
-        "stiffness_rate": (np.abs(k_rate) > limits["k_rate"], np.abs(k_rate), "N*m/rad/s", True),
-        "damping_range": (
-            controllable & ((rollout.damping < np.nan_to_num(limits["d_min"]))
-                            | (rollout.damping > np.nan_to_num(limits["d_max"]))),
-            rollout.damping, "N*m*s/rad", True),
-        "damping_rate": (controllable & (np.abs(d_rate) > np.nan_to_num(limits["d_rate"])),
-                         np.abs(d_rate), "N*m*s/rad/s", True),
-        "position_range": (
-            (rollout.position < [j.lower_limit for j in params])
-            | (rollout.position > [j.upper_limit for j in params]),
-            rollout.position, "rad", True),
-        "torque_limit": (np.abs(torque) > [j.torque_limit for j in params], np.abs(torque),
-                         "N*m", True),
+    # (checked value, severity: positive where the check fails, unit) per kind.
+    not_controllable = np.where(controllable, 0.0, -np.inf)
+    checks = {
+        "under_damped": (ratio, min_damping_ratio - ratio, "1"),
+        "energy_tank_empty": (tank, -tank, "J"),
+        "stiffness_range": (rollout.stiffness,
+                            _outside(rollout.stiffness, limits["k_min"], limits["k_max"]),
+                            "N*m/rad"),
+        "stiffness_rate": (np.abs(k_rate), np.abs(k_rate) - limits["k_rate"], "N*m/rad/s"),
+        "damping_range": (rollout.damping,
+                          _outside(rollout.damping, np.nan_to_num(limits["d_min"]),
+                                   np.nan_to_num(limits["d_max"])) + not_controllable,
+                          "N*m*s/rad"),
+        "damping_rate": (np.abs(d_rate),
+                         np.abs(d_rate) - np.nan_to_num(limits["d_rate"]) + not_controllable,
+                         "N*m*s/rad/s"),
+        "position_range": (rollout.position,
+                           _outside(rollout.position, [j.lower_limit for j in params],
+                                    [j.upper_limit for j in params]),
+                           "rad"),
+        "torque_limit": (np.abs(torque), np.abs(torque) - [j.torque_limit for j in params],
+                         "N*m"),
     }
     stretches: list[Stretch] = []
-    for kind, (mask, value, unit, worst_is_max) in masks.items():
-        stretches.extend(_stretches(t, names, kind, mask, value, unit, worst_is_max))
+    for kind, (value, severity, unit) in checks.items():
+        stretches.extend(_stretches(t, names, kind, value, severity, unit))
     stretches.sort(key=lambda s: (names.index(s.joint), s.t_start, FLAG_KINDS.index(s.kind)))
     dt = np.diff(t, prepend=t[0])
     summary = {

@@ -22,21 +22,39 @@ def _static_rollout(t, stiffness, damping=None, position=0.0, joints=("elbow",))
     n = t.size
     k = np.asarray(stiffness, dtype=float).reshape(n, -1)
     zeros = np.zeros_like(k)
-    return Rollout(t, np.full_like(k, position), zeros, zeros, k,
-                   zeros + 1.0 if damping is None else np.asarray(damping).reshape(n, -1),
-                   tuple(joints), float(t[-1]))
+    return Rollout(
+        t,
+        np.full_like(k, position),
+        zeros,
+        zeros,
+        k,
+        zeros + 1.0 if damping is None else np.asarray(damping).reshape(n, -1),
+        tuple(joints),
+        float(t[-1]),
+    )
 
 
 def _cork_skill(zeta: float = 0.7):
     t = np.linspace(0.0, 2.0, 1001)
     s = t / 2.0
-    q = np.column_stack([0.2 + 0.6 * (10 * s**3 - 15 * s**4 + 6 * s**5),
-                         -0.3 + 0.4 * np.sin(np.pi * s) ** 2 + 0.5 * s])
+    q = np.column_stack(
+        [
+            0.2 + 0.6 * (10 * s**3 - 15 * s**4 + 6 * s**5),
+            -0.3 + 0.4 * np.sin(np.pi * s) ** 2 + 0.5 * s,
+        ]
+    )
     bump = np.exp(-0.5 * ((s - 0.5) / 0.12) ** 2)
     k = np.column_stack([20 + 200 * bump, 15 + 150 * bump])
-    return fit_skill(t, q, k, joints=["shoulder", "elbow"], stiffness_range=(10.0, 250.0),
-                     target_inertia=[SHOULDER.inertia, ELBOW.inertia],
-                     damping_policy=DampingPolicy(kind="ratio", zeta=zeta), name="cork_seat")
+    return fit_skill(
+        t,
+        q,
+        k,
+        joints=["shoulder", "elbow"],
+        stiffness_range=(10.0, 250.0),
+        target_inertia=[SHOULDER.inertia, ELBOW.inertia],
+        damping_policy=DampingPolicy(kind="ratio", zeta=zeta),
+        name="cork_seat",
+    )
 
 
 def test_ratio_policy_on_ideal_mechanism_is_well_damped():
@@ -81,8 +99,15 @@ def test_under_damped_flag_predicts_oscillation_in_simulation():
         equilibrium = np.vstack([rollout.position, hold])
         stiffness = np.vstack([rollout.stiffness, np.repeat(rollout.stiffness[-1:], 1500, 0)])
         damping = np.vstack([rollout.damping, np.repeat(rollout.damping[-1:], 1500, 0)])
-        result = simulate(joints, mechanism, equilibrium, stiffness,
-                          damping if label == "ideal" else None, q0=rollout.position[0], dt=1e-3)
+        result = simulate(
+            joints,
+            mechanism,
+            equilibrium,
+            stiffness,
+            damping if label == "ideal" else None,
+            q0=rollout.position[0],
+            dt=1e-3,
+        )
         late = result.q[-500:, 0, :]
         overshoot[label] = (np.abs(late - rollout.position[-1]).max(), flagged["under_damped"])
     # Second-order response: 1 s after the motion, zeta = 0.7 has settled while zeta << 1 still
@@ -101,8 +126,9 @@ def test_one_mechanism_per_joint():
 def test_energy_injected_by_raising_stiffness_while_deflected():
     t = np.linspace(0.0, 1.0, 2001)
     stiffness = 10.0 + 100.0 * t
-    report = check_schedule(_static_rollout(t, stiffness), [ELBOW], IDEAL,
-                            extra_deflection=0.1, energy_budget=0.2)
+    report = check_schedule(
+        _static_rollout(t, stiffness), [ELBOW], IDEAL, extra_deflection=0.1, energy_budget=0.2
+    )
     # Spring energy 1/2 K x^2 at fixed x = 0.1 rad rises by 1/2 (K1 - K0) x^2 = 0.5 J
     # (Ferraguti, Secchi, Fantuzzi, ICRA 2013: power 1/2 dK/dt x^2).
     assert report.summary["injected_energy_J"][0] == pytest.approx(0.5, rel=1e-3)
@@ -117,8 +143,9 @@ def test_gravity_load_deflection_gives_closed_form_injection():
     arm = JointParams(name="elbow", inertia=0.03, gravity_mass=0.5, com_distance=0.2)
     t = np.linspace(0.0, 1.0, 4001)
     stiffness = 20.0 + 80.0 * t
-    report = check_schedule(_static_rollout(t, stiffness, position=np.pi / 2), [arm], IDEAL,
-                            energy_budget=10.0)
+    report = check_schedule(
+        _static_rollout(t, stiffness, position=np.pi / 2), [arm], IDEAL, energy_budget=10.0
+    )
     mgl = 0.5 * GRAVITY * 0.2
     np.testing.assert_allclose(report.deflection[:, 0], mgl / stiffness)
     # Holding torque m g l at q - q_g = pi/2: x = mgl/K, so the injected energy is
@@ -130,8 +157,9 @@ def test_gravity_load_deflection_gives_closed_form_injection():
 def test_tank_refills_when_stiffness_falls():
     t = np.linspace(0.0, 2.0, 2001)
     stiffness = np.where(t < 1.0, 10.0 + 100.0 * t, 110.0 - 100.0 * (t - 1.0))
-    report = check_schedule(_static_rollout(t, stiffness), [ELBOW], IDEAL,
-                            extra_deflection=0.1, energy_budget=1.0)
+    report = check_schedule(
+        _static_rollout(t, stiffness), [ELBOW], IDEAL, extra_deflection=0.1, energy_budget=1.0
+    )
     # Reference: the tank recursion level = min(budget, level - p dt) written as a loop.
     dt = np.diff(t, prepend=t[0])
     level, expected = 1.0, []
@@ -162,6 +190,15 @@ def test_rate_and_range_limits_of_both_mechanisms():
     assert "damping_range" not in {s.kind for s in springs.stretches}
 
 
+def test_worst_value_is_the_farthest_outside_on_either_side():
+    t = np.linspace(0.0, 1.0, 101)
+    stiffness = np.where(t < 0.5, 5.0 - 4.0 * np.sin(2 * np.pi * t), 50.0)
+    report = check_schedule(_static_rollout(t, stiffness), [ELBOW], IDEAL)
+    below = [s for s in report.stretches if s.kind == "stiffness_range"]
+    assert len(below) == 1 and below[0].worst == pytest.approx(1.0, abs=1e-3)
+    assert below[0].t_start == pytest.approx(0.01) and below[0].t_end == pytest.approx(0.49)
+
+
 def test_position_and_torque_limits_flagged():
     t = np.linspace(0.0, 1.0, 101)
     weak = JointParams(name="elbow", lower_limit=-1.0, upper_limit=1.0, torque_limit=1.0)
@@ -170,8 +207,7 @@ def test_position_and_torque_limits_flagged():
     kinds = {s.kind for s in report.stretches}
     assert "position_range" in kinds
     heavy = JointParams(name="elbow", gravity_mass=2.0, com_distance=0.3, torque_limit=1.0)
-    loaded = check_schedule(_static_rollout(t, np.full(t.size, 50.0), position=0.5), [heavy],
-                            IDEAL)
+    loaded = check_schedule(_static_rollout(t, np.full(t.size, 50.0), position=0.5), [heavy], IDEAL)
     torque = next(s for s in loaded.stretches if s.kind == "torque_limit")
     assert torque.worst == pytest.approx(2.0 * GRAVITY * 0.3 * np.sin(0.5))
 
@@ -207,17 +243,26 @@ def _decay_case():
 
 def test_recovery_time_of_exponential_decay():
     t, q, nominal, tau_ext, tau_mech = _decay_case()
-    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
-                              perturbation_onsets=[1.0], perturbation_ends=[1.2],
-                              recovery_band=0.01)
+    metrics = outcome_metrics(
+        t,
+        q,
+        nominal,
+        tau_ext,
+        tau_mech,
+        goal=[0.0, 0.5],
+        perturbation_onsets=[1.0],
+        perturbation_ends=[1.2],
+        recovery_band=0.01,
+    )
     # First-order decay 0.3 exp(-s/0.25) enters the 0.01 rad band at s = 0.25 ln(30) (closed form).
     assert metrics["recovery_time_s"][0] == pytest.approx(0.25 * np.log(30.0), abs=1e-3)
     assert metrics["recovered"] == [True]
     assert metrics["recovery_band_rad"] == 0.01
     np.testing.assert_allclose(metrics["peak_deviation_rad"], [0.3, 0.15])
     assert metrics["peak_deviation_time_s"] == pytest.approx(1.2)
-    np.testing.assert_allclose(metrics["goal_error_rad"],
-                               [0.3 * np.exp(-2.8 / 0.25), 0.15 * np.exp(-2.8 / 0.25)])
+    np.testing.assert_allclose(
+        metrics["goal_error_rad"], [0.3 * np.exp(-2.8 / 0.25), 0.15 * np.exp(-2.8 / 0.25)]
+    )
     np.testing.assert_allclose(metrics["peak_interaction_torque_Nm"], [3.0, 0.0])
     np.testing.assert_allclose(metrics["peak_mechanism_torque_Nm"], [1.0, 2.5], rtol=1e-6)
     assert metrics["limit_violations"] == {} and metrics["n_limit_violations"] == 0
@@ -225,9 +270,17 @@ def test_recovery_time_of_exponential_decay():
 
 def test_not_recovered_before_next_perturbation():
     t, q, nominal, tau_ext, tau_mech = _decay_case()
-    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
-                              perturbation_onsets=[1.0, 1.5], perturbation_ends=[1.2, 1.5],
-                              recovery_band=0.01)
+    metrics = outcome_metrics(
+        t,
+        q,
+        nominal,
+        tau_ext,
+        tau_mech,
+        goal=[0.0, 0.5],
+        perturbation_onsets=[1.0, 1.5],
+        perturbation_ends=[1.2, 1.5],
+        recovery_band=0.01,
+    )
     assert metrics["recovery_time_s"][0] is None and metrics["recovered"] == [False, True]
     # Second window starts at 1.5 s, deviation 0.3 exp(-0.3/0.25) then decays to the band.
     assert metrics["recovery_time_s"][1] == pytest.approx(0.25 * np.log(30.0) - 0.3, abs=1e-3)
@@ -235,11 +288,14 @@ def test_not_recovered_before_next_perturbation():
 
 def test_energy_and_limit_violations():
     t, q, nominal, tau_ext, tau_mech = _decay_case()
-    joints = [JointParams(name="shoulder", upper_limit=0.2, torque_limit=5.0),
-              JointParams(name="elbow", torque_limit=2.0)]
+    joints = [
+        JointParams(name="shoulder", upper_limit=0.2, torque_limit=5.0),
+        JointParams(name="elbow", torque_limit=2.0),
+    ]
     energy = {"stiffness_injection": np.array([0.01, 0.02]), "dissipated": np.array([0.3, 0.1])}
-    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
-                              energy=energy, joints=joints)
+    metrics = outcome_metrics(
+        t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5], energy=energy, joints=joints
+    )
     assert metrics["energy_injected_J"] == pytest.approx(0.03)
     assert metrics["energy_J"]["dissipated"] == [0.3, 0.1]
     position = metrics["limit_violations"]["position"]
@@ -259,11 +315,20 @@ def test_outcome_metrics_bad_input():
     with pytest.raises(InvalidInputError, match=r"goal: expected shape \(2,\), got \(3,\)"):
         outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0, 0])
     with pytest.raises(InvalidInputError, match=r"perturbation_ends: need one end at or after"):
-        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0],
-                        perturbation_onsets=[1.0], perturbation_ends=[0.5])
+        outcome_metrics(
+            t,
+            q,
+            nominal,
+            tau_ext,
+            tau_mech,
+            goal=[0, 0],
+            perturbation_onsets=[1.0],
+            perturbation_ends=[0.5],
+        )
     with pytest.raises(InvalidInputError, match=r"perturbation_onsets: must be sorted"):
-        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0],
-                        perturbation_onsets=[2.0, 1.0])
+        outcome_metrics(
+            t, q, nominal, tau_ext, tau_mech, goal=[0, 0], perturbation_onsets=[2.0, 1.0]
+        )
     with pytest.raises(InvalidInputError, match=r"recovery_band: must be positive"):
         outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0], recovery_band=0.0)
     bad = q.copy()
@@ -285,12 +350,27 @@ def test_recovery_after_impulse_in_simulation_is_bracketed_by_the_envelope():
     damping = 2 * zeta * np.sqrt(stiffness * joint.inertia) - joint.viscous_damping
     n = 2000
     schedule = PerturbationSchedule(perturbations=[Impulse(onset_s=0.5, magnitude=impulse)])
-    result = simulate([joint], IDEAL, np.full((n, 1), 0.3), np.full((n, 1), stiffness),
-                      np.full((n, 1), damping), schedules=[schedule], q0=[0.3], dt=1e-3)
+    result = simulate(
+        [joint],
+        IDEAL,
+        np.full((n, 1), 0.3),
+        np.full((n, 1), stiffness),
+        np.full((n, 1), damping),
+        schedules=[schedule],
+        q0=[0.3],
+        dt=1e-3,
+    )
     q = result.q[:, 0, :]
-    metrics = outcome_metrics(result.t, q, np.full_like(q, 0.3), result.tau_external[:, 0, :],
-                              result.tau_mechanism[:, 0, :], goal=[0.3],
-                              perturbation_onsets=[0.5], recovery_band=band)
+    metrics = outcome_metrics(
+        result.t,
+        q,
+        np.full_like(q, 0.3),
+        result.tau_external[:, 0, :],
+        result.tau_mechanism[:, 0, :],
+        goal=[0.3],
+        perturbation_onsets=[0.5],
+        recovery_band=band,
+    )
     # Impulse P on m x'' + d x' + k x = 0 from rest: x = (P/m)/w_d exp(-zeta w t) sin(w_d t)
     # (common practice). The last exit from the band lies within half a period before the
     # envelope crosses it.
