@@ -55,8 +55,10 @@ def test_bad_parameters_are_named(model, data, match):
 @pytest.mark.parametrize(
     "overrides, match",
     [
-        ({"equilibrium": np.array([[0.0], [np.nan]] + [[0.0]] * 8)},
-         r"equilibrium\[\(1, 0\)\] = nan"),
+        (
+            {"equilibrium": np.array([[0.0], [np.nan]] + [[0.0]] * 8)},
+            r"equilibrium\[\(1, 0\)\] = nan",
+        ),
         ({"stiffness": np.array([[50.0]] * 9 + [[np.inf]])}, r"stiffness\[\(9, 0\)\] = inf"),
         ({"damping": np.full((10, 1), -0.5)}, r"damping\[\(0, 0\)\] = -0\.5: must be >= 0"),
         ({"stiffness": np.full((10, 1), -1.0)}, r"stiffness\[\(0, 0\)\] = -1\.0"),
@@ -72,12 +74,18 @@ def test_bad_parameters_are_named(model, data, match):
         ({"joints": []}, r"joints: expected a non-empty"),
         ({"mechanism": [IDEAL, IDEAL]}, r"got 2 records for 1 joints"),
         ({"schedules": []}, r"schedules: empty"),
-        ({"schedules": [PerturbationSchedule(perturbations=[TorqueStep(joint=3)])]},
-         r"perturbations\[0\]\.joint = 3"),
-        ({"schedules": [PerturbationSchedule(perturbations=[Sinusoid(frequency_hz=600)])]},
-         r"frequency_hz = 600\.0: at or above the Nyquist"),
-        ({"equilibrium": np.zeros((10, 3, 1)),
-          "schedules": [PerturbationSchedule()] * 2}, r"does not match 10 steps and 2 scenarios"),
+        (
+            {"schedules": [PerturbationSchedule(perturbations=[TorqueStep(joint=3)])]},
+            r"perturbations\[0\]\.joint = 3",
+        ),
+        (
+            {"schedules": [PerturbationSchedule(perturbations=[Sinusoid(frequency_hz=600)])]},
+            r"frequency_hz = 600\.0: at or above the Nyquist",
+        ),
+        (
+            {"equilibrium": np.zeros((10, 3, 1)), "schedules": [PerturbationSchedule()] * 2},
+            r"does not match 10 steps and 2 scenarios",
+        ),
     ],
 )
 def test_bad_simulation_input_is_named(overrides, match):
@@ -112,7 +120,8 @@ def test_warnings_for_ignored_damping_and_late_perturbations():
     with pytest.warns(UserWarning, match="damping commands are ignored"):
         _run(mechanism=AntagonisticParams(), damping=np.ones((10, 1)))
     late = PerturbationSchedule(perturbations=[Wall(onset_s=5.0)])
-    with pytest.warns(UserWarning, match=r"schedules\[0\]\.perturbations\[0\] starts after"):
+    expected = r"1 perturbation\(s\) start after the run's 10 steps and never act: schedules\[0\]"
+    with pytest.warns(UserWarning, match=expected):
         _run(schedules=[late])
     with warnings.catch_warnings():
         warnings.simplefilter("error")

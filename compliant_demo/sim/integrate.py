@@ -311,9 +311,14 @@ class Simulator:
             self.dt,
             seed,
         )
-        if horizon_steps is not None:
-            for late in self._perturb.starts_at_or_after(int(horizon_steps)):
-                warnings.warn(f"{late} starts after the run's {horizon_steps} steps", stacklevel=2)
+        late = [] if horizon_steps is None else self._perturb.starts_at_or_after(horizon_steps)
+        if late:
+            shown = ", ".join(late[:3]) + (", ..." if len(late) > 3 else "")
+            warnings.warn(
+                f"{len(late)} perturbation(s) start after the run's {horizon_steps} steps and "
+                f"never act: {shown}",
+                stacklevel=2,
+            )
         if check_stability:
             wall_k, wall_b = self._perturb.wall_stiffness()
             check_step_stability(joints, mechanism, self.dt, method, wall_k, wall_b)
