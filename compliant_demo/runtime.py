@@ -439,15 +439,28 @@ class ReplayRun:
 
     def outcome(self) -> tuple[str, str | None, dict[str, Any], dict[str, np.ndarray]]:
         """(status, reason, metrics, trace) for the store: status "ok", "stopped" (safety stop)
-        or "aborted" (ended early without a violation)."""
-        from compliant_demo.evaluation import outcome_metrics
-
+        or "aborted" (ended early without a violation). Metrics always hold ``steps`` and
+        ``steps_planned``; the outcome metrics of :func:`compliant_demo.evaluation.outcome_metrics`
+        need at least two steps."""
         trace = self.trace()
         n = self.steps_done
         if n == 0:
             raise InvalidInputError("replay has no step yet: nothing to evaluate")
+        metrics: dict[str, Any] = {"steps": n, "steps_planned": self.n_steps}
+        if n >= 2:  # outcome metrics need a time span
+            metrics.update(self._metrics(trace))
+        if self.stop_reason is not None:
+            return "stopped", self.stop_reason, metrics, trace
+        if n < self.n_steps:
+            return "aborted", f"ended after {n} of {self.n_steps} steps", metrics, trace
+        return "ok", None, metrics, trace
+
+    def _metrics(self, trace: dict[str, np.ndarray]) -> dict[str, Any]:
+        from compliant_demo.evaluation import outcome_metrics
+
+        n = self.steps_done
         onsets, ends = self._perturbation_windows()
-        metrics = outcome_metrics(
+        return outcome_metrics(
             trace["t"],
             trace["q"],
             self.rollout.position[1 : n + 1],
@@ -458,10 +471,3 @@ class ReplayRun:
             perturbation_ends=ends,
             joints=self.joints,
         )
-        metrics["steps"] = n
-        metrics["steps_planned"] = self.n_steps
-        if self.stop_reason is not None:
-            return "stopped", self.stop_reason, metrics, trace
-        if n < self.n_steps:
-            return "aborted", f"ended after {n} of {self.n_steps} steps", metrics, trace
-        return "ok", None, metrics, trace

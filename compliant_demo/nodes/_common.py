@@ -12,14 +12,13 @@ from rcl_interfaces.msg import (
     FloatingPointRange,
     IntegerRange,
     ParameterDescriptor,
-    ParameterType,
 )
 from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 from std_msgs.msg import Float64MultiArray
 
-from compliant_demo.exceptions import CompliantDemoError
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 
 __all__ = [
     "declare",
@@ -28,15 +27,11 @@ __all__ = [
     "to_stamp",
     "float_array",
     "diagnostic_array",
+    "list_parameter",
     "open_store",
     "run_node",
 ]
 
-_ARRAY_TYPES = {
-    str: ParameterType.PARAMETER_STRING_ARRAY,
-    float: ParameterType.PARAMETER_DOUBLE_ARRAY,
-    int: ParameterType.PARAMETER_INTEGER_ARRAY,
-}
 _LEVELS = {
     "ok": DiagnosticStatus.OK,
     "warn": DiagnosticStatus.WARN,
@@ -53,11 +48,11 @@ def declare(
     low: float | None = None,
     high: float | None = None,
     read_only: bool = True,
-    item_type: type | None = None,
 ) -> Any:
     """Declare one parameter with a descriptor (range where given) and return its value.
 
-    ``item_type`` types an empty list default (str, float or int items).
+    An empty list default gets dynamic typing (rclpy would otherwise fix it to a byte array and
+    refuse a later list of strings or numbers); read it back with :func:`list_parameter`.
     """
     descriptor = ParameterDescriptor(description=description, read_only=read_only)
     if low is not None and high is not None:
@@ -68,8 +63,27 @@ def declare(
         else:
             descriptor.floating_point_range = [FloatingPointRange(from_value=low, to_value=high)]
     if isinstance(default, list) and not default:
-        descriptor.type = _ARRAY_TYPES[item_type or str]
+        descriptor.dynamic_typing = True
     return node.declare_parameter(name, default, descriptor).value
+
+
+def list_parameter(node: Node, name: str, item_type: type) -> list:
+    """A list parameter's value, checked to hold only ``item_type`` items (ints pass as floats).
+
+    Raises
+    ------
+    InvalidInputError
+        The value is not a list of that type; the message names the parameter and value.
+    """
+    value = node.get_parameter(name).value
+    accepted = (int, float) if item_type is float else (item_type,)
+    if not isinstance(value, list | tuple) or not all(
+        isinstance(item, accepted) and not isinstance(item, bool) for item in value
+    ):
+        raise InvalidInputError(
+            f"parameter {name}: expected a list of {item_type.__name__}, got {value!r}"
+        )
+    return [item_type(item) for item in value]
 
 
 def recorded_qos(depth: int) -> QoSProfile:

@@ -6,7 +6,7 @@ from rclpy.node import Node
 from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
-from compliant_demo.nodes._common import declare, open_store, run_node
+from compliant_demo.nodes._common import declare, list_parameter, open_store, run_node
 from compliant_demo.runtime import LearnRequest, learn_from_store, matching_demonstrations
 
 __all__ = ["LearnerNode", "main"]
@@ -53,8 +53,8 @@ class LearnerNode(Node):
         value = self.get_parameter
         return LearnRequest(
             skill=value("skill").value,
-            joints=tuple(value("joints").value),
-            tags=tuple(value("tags").value),
+            joints=tuple(list_parameter(self, "joints", str)),
+            tags=tuple(list_parameter(self, "tags", str)),
             operator=value("operator").value,
             min_demonstrations=value("min_demonstrations").value,
             options={

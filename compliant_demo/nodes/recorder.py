@@ -21,6 +21,7 @@ from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
 from compliant_demo.cli.common import default_store_path
+from compliant_demo.exceptions import CompliantDemoError
 from compliant_demo.ingest import (
     ChunkWriter,
     DemonstrationRequest,
@@ -31,6 +32,7 @@ from compliant_demo.ingest import (
 from compliant_demo.nodes._common import (
     declare,
     diagnostic_array,
+    list_parameter,
     open_store,
     recorded_qos,
     run_node,
@@ -139,7 +141,7 @@ class RecorderNode(Node):
             skill=value("skill").value,
             joints=tuple(value("joints").value),
             operator=value("operator").value,
-            tags=tuple(value("tags").value),
+            tags=tuple(list_parameter(self, "tags", str)),
             notes=value("notes").value,
             nominal_rate_hz=value("nominal_rate_hz").value,
             stiffness_source=value("stiffness_source").value,
@@ -154,8 +156,12 @@ class RecorderNode(Node):
         self.session.set_reference(msg.data)
 
     def _on_start(self, _request: Trigger.Request, response: Trigger.Response):
-        self.session.configure(self._request())
-        response.success, response.message = self.session.start()
+        try:
+            self.session.configure(self._request())
+        except CompliantDemoError as exc:
+            response.success, response.message = False, str(exc)
+        else:
+            response.success, response.message = self.session.start()
         self.get_logger().info(f"start: {response.message}")
         return response
 

@@ -10,7 +10,14 @@ from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
-from compliant_demo.nodes._common import declare, float_array, open_store, run_node, to_stamp
+from compliant_demo.nodes._common import (
+    declare,
+    float_array,
+    list_parameter,
+    open_store,
+    run_node,
+    to_stamp,
+)
 from compliant_demo.runtime import ReplayRun, load_plant
 
 __all__ = ["ReplayNode", "main"]
@@ -37,7 +44,7 @@ class ReplayNode(Node):
         d(self, "settle_s", 0.5, "Time simulated after the movement, s.", low=0.0, high=60.0,
           read_only=False)
         d(self, "goal", [], "New goal per joint, rad; empty = the demonstrated one.",
-          read_only=False, item_type=float)
+          read_only=False)
         d(self, "seed", 0, "Seed of sensor noise and random perturbations.", low=0,
           high=2**31 - 1, read_only=False)
         d(self, "method", "rk4", "Integrator: rk4, symplectic_euler or explicit_euler.",
@@ -65,7 +72,7 @@ class ReplayNode(Node):
         self.exit_status = 0
         self._run: ReplayRun | None = None
         self._skill_id = ""
-        self._parameters: dict = {}
+        self._replay_parameters: dict = {}
         self._live = None
         self._waiting_for_skill = self.get_parameter("run_when_available").value
         self._end_after_run = False
@@ -95,7 +102,7 @@ class ReplayNode(Node):
                 dt=1.0 / self._value("control_rate_hz"),
                 duration_s=self._value("duration_s") or None,
                 settle_s=self._value("settle_s"),
-                goal=list(self._value("goal")) or None,
+                goal=list_parameter(self, "goal", float) or None,
                 method=self._value("method"),
                 seed=self._value("seed"),
                 max_stiffness_rate=self._value("max_stiffness_rate"),
@@ -103,12 +110,14 @@ class ReplayNode(Node):
         except CompliantDemoError as exc:
             return False, str(exc)
         self._skill_id = record.id
-        self._parameters = {
+        self._replay_parameters = {
             key: self._value(key)
             for key in ("skill", "plant_file", "schedule_file", "control_rate_hz", "duration_s",
                         "settle_s", "seed", "method", "max_stiffness_rate", "real_time")
         }
-        self._parameters.update(skill_version=record.version, goal=list(self._value("goal")))
+        self._replay_parameters.update(
+            skill_version=record.version, goal=list_parameter(self, "goal", float)
+        )
         self._started_wall = time.monotonic()
         self._stamp_origin = time.time()
         self._live = None
@@ -171,7 +180,7 @@ class ReplayNode(Node):
         try:
             with open_store(self._store_path) as store:
                 result_id = store.save_replay_result(
-                    skill_id=self._skill_id, metrics=metrics, parameters=self._parameters,
+                    skill_id=self._skill_id, metrics=metrics, parameters=self._replay_parameters,
                     status=status, reason=reason, trace=trace,
                 )
         except CompliantDemoError as exc:
@@ -179,8 +188,9 @@ class ReplayNode(Node):
             self.exit_status = 1
         else:
             self.get_logger().info(
-                f"replay {status}: goal error {metrics['goal_error_max_rad']:.3g} rad, "
-                f"{metrics['n_limit_violations']} limit-violating samples; result {result_id}"
+                f"replay {status} after {metrics['steps']} of {metrics['steps_planned']} steps: "
+                f"goal error {metrics.get('goal_error_max_rad', float('nan')):.3g} rad; "
+                f"result {result_id}"
             )
             if status != "ok":
                 self.exit_status = 1

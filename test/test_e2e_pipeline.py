@@ -1,0 +1,217 @@
+"""End to end over loopback DDS: the nodes each launch file declares, as real processes.
+
+record.launch.xml (teacher + recorder) records demonstrations; the ``compliant-demo launch``
+command runs learn.launch.xml (learner) on them; replay.launch.xml (replay) replays the skill
+with a perturbation schedule; pipeline.launch.xml runs all four nodes on a fresh store.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env
+from numpy.lib.stride_tricks import sliding_window_view
+
+from compliant_demo.learning import load_skill
+from compliant_demo.perturbation import load_schedule_yaml
+from compliant_demo.runtime import load_plant
+from compliant_demo.sim import simulate
+from compliant_demo.store import DemoStore
+
+pytestmark = [pytest.mark.ros, pytest.mark.slow]
+
+DOMAIN_ID = 43
+N_DEMOS = 2
+SEED = 11
+
+
+@pytest.fixture(scope="module")
+def recorded(tmp_path_factory):
+    """Two demonstrations recorded by the teacher and recorder of record.launch.xml."""
+    work = tmp_path_factory.mktemp("e2e_record")
+    store, truth = work / "store.sqlite", work / "truth.npz"
+    arguments = {"store": str(store), "demos": str(N_DEMOS), "seed": str(SEED), "truth": str(truth)}
+    with launched(
+        "record.launch.xml", arguments, DOMAIN_ID, work, {"teacher": {"pause_s": "0.3"}}
+    ) as nodes:
+        assert nodes.wait("teacher", 120.0) == 0, nodes.all_logs()
+        assert nodes.interrupt("recorder") == 0, nodes.all_logs()
+    return store, np.load(truth), nodes
+
+
+def test_every_published_sample_is_stored_in_complete_demonstrations(recorded) -> None:
+    store, truth, _nodes = recorded
+    with DemoStore(store, read_only=True) as db:
+        infos = list(db.find_demonstrations(skill="cork_seat", status="complete"))
+        demos = [db.load_demonstration(info.id) for info in infos]
+    assert len(infos) == N_DEMOS
+    for index, (info, demo) in enumerate(zip(infos, demos, strict=True)):
+        count = int(truth[f"count_{index}"])
+        assert info.n_samples == count, (index, info.n_samples, count)  # teacher's own count
+        assert info.flags["received"] == count and info.flags["accepted"] == count
+        assert info.operator == "operator_a" and info.joints == ("shoulder", "elbow")
+        # Stamps relative to the first sample reproduce the teacher's sample times.
+        np.testing.assert_allclose(demo.t, truth[f"t_{index}"], atol=2e-6)
+
+
+def test_online_stiffness_matches_the_teachers_ground_truth_where_excited(recorded) -> None:
+    """Reference: the simulated teacher's hand stiffness (ground truth of the simulation).
+
+    Compared where the estimator reports an estimate (excited window) and the true stiffness
+    varied by at most 5 % over the 0.5 s window, since the sliding-window regression assumes a
+    constant stiffness within its window. Bounds: median relative error <= 5 %, 90th percentile
+    <= 15 %.
+    """
+    store, truth, _nodes = recorded
+    window = 500  # estimator_window_s 0.5 s at 1 kHz (config/recorder.yaml)
+    errors = []
+    with DemoStore(store, read_only=True) as db:
+        infos = list(db.find_demonstrations(skill="cork_seat", status="complete"))
+        for index, info in enumerate(infos):
+            estimate = db.load_demonstration(info.id).stiffness
+            true = truth[f"stiffness_{index}"]
+            windows = sliding_window_view(true, window, axis=0)
+            steady = np.zeros(true.shape, dtype=bool)
+            steady[window - 1 :] = windows.max(axis=-1) <= 1.05 * windows.min(axis=-1)
+            use = np.isfinite(estimate) & steady
+            assert use.mean() > 0.2, f"demo {index}: only {use.mean():.0%} usable samples"
+            errors.append(np.abs(estimate[use] - true[use]) / true[use])
+    errors = np.concatenate(errors)
+    assert np.median(errors) <= 0.05, np.median(errors)
+    assert np.percentile(errors, 90) <= 0.15, np.percentile(errors, 90)
+
+
+@pytest.fixture(scope="module")
+def learned(recorded):
+    """The learner of learn.launch.xml started by ``compliant-demo launch``; fits by itself."""
+    store, _truth, _nodes = recorded
+    command = [
+        sys.executable, "-c", "import sys; from compliant_demo.cli import main; "
+        "sys.exit(main(sys.argv[1:]))", "launch", str(LAUNCH / "learn.launch.xml"),
+        f"store:={store}", f"fit_when:={N_DEMOS}", "exit_after_fit:=true",
+    ]  # fmt: skip
+    result = subprocess.run(
+        command, env=ros_env(DOMAIN_ID), capture_output=True, text=True, timeout=120, cwd=ROOT
+    )
+    return store, result
+
+
+def test_learner_saves_a_skill_from_the_recorded_demonstrations(learned) -> None:
+    store, result = learned
+    assert result.returncode == 0, result.stdout + result.stderr
+    output = result.stdout + result.stderr
+    assert "skill 'cork_seat' version 1 from 2 demonstration(s)" in output
+    with DemoStore(store, read_only=True) as db:
+        record = db.load_skill("cork_seat")
+        demo_ids = {info.id for info in db.find_demonstrations(status="complete")}
+    assert record.version == 1 and set(record.demonstration_ids) == demo_ids
+
+
+def test_learner_refuses_clearly_when_too_few_demonstrations_match(learned, tmp_path: Path) -> None:
+    store, _result = learned
+    client = TestClient(DOMAIN_ID, "learner_test_client")
+    try:
+        with launched(
+            "learn.launch.xml",
+            {"store": str(store)},
+            DOMAIN_ID,
+            tmp_path,
+            {"learner": {"min_demonstrations": "5", "tags": "['bench']"}},
+        ) as nodes:
+            reply = client.call_trigger("fit", timeout_s=30.0)
+            assert not reply.success
+            assert "0 complete demonstration(s) match skill='cork_seat', tags=['bench']" in (
+                reply.message
+            ), reply.message
+            assert "need at least 5" in reply.message
+            assert nodes.interrupt("learner") == 0
+    finally:
+        client.close()
+    with DemoStore(store, read_only=True) as db:
+        assert [s.version for s in db.list_skills()] == [1]  # nothing new saved
+
+
+def test_replay_with_a_schedule_stores_metrics_and_matches_core_simulation(
+    learned, tmp_path: Path
+) -> None:
+    store, _result = learned
+    arguments = {
+        "store": str(store),
+        "auto": "true",
+        "exit_after_run": "true",
+        "real_time": "false",
+        "seed": "5",
+    }
+    with launched("replay.launch.xml", arguments, DOMAIN_ID, tmp_path) as nodes:
+        assert nodes.wait("replay", 120.0) == 0, nodes.all_logs()
+    with DemoStore(store, read_only=True) as db:
+        record = db.load_skill("cork_seat")
+        skill = load_skill(db, "cork_seat")
+        (info,) = db.find_replay_results(skill_id=record.id)
+        result = db.load_replay_result(info.id)
+    assert info.status == "ok" and info.reason is None
+    metrics = info.metrics
+    for key in (
+        "goal_error_rad",
+        "peak_deviation_rad",
+        "recovery_time_s",
+        "peak_interaction_torque_Nm",
+        "energy_injected_J",
+        "limit_violations",
+    ):
+        assert key in metrics, key
+    assert len(metrics["recovery_time_s"]) == 2  # one per scheduled perturbation
+    assert metrics["n_limit_violations"] == 0
+    # The same skill through the core simulation directly, same seed and schedule.
+    plant = load_plant(ROOT / "config" / "replay_plant.yaml")
+    schedule = load_schedule_yaml(ROOT / "config" / "replay_bumps.yaml")
+    joints = plant.for_joints(skill.joints)
+    rollout = skill.rollout(
+        dt=1e-3, target_inertia=[j.inertia for j in joints], horizon_s=skill.duration_s + 0.5
+    )
+    n = len(rollout.t) - 1
+    direct = simulate(
+        joints,
+        plant.mechanism,
+        rollout.position[:n],
+        rollout.stiffness[:n],
+        rollout.damping[:n],
+        schedules=[schedule],
+        q0=rollout.position[0],
+        dt=1e-3,
+        seed=5,
+    )
+    trace = result.trace
+    assert trace["q"].shape == (n, 2)
+    # Bound: 1e-9 rad and rad/s; both step the same integrator on the same commands, so only
+    # floating-point reassociation could separate them.
+    np.testing.assert_allclose(trace["q"], direct.q[1:, 0, :], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(trace["dq"], direct.dq[1:, 0, :], rtol=0, atol=1e-9)
+    # The perturbations were applied: the bumps moved the joint off its nominal path.
+    assert max(metrics["peak_deviation_rad"]) > 1e-3
+
+
+def test_pipeline_launch_runs_all_four_nodes_to_a_stored_replay(tmp_path: Path) -> None:
+    store = tmp_path / "store.sqlite"
+    arguments = {"store": str(store), "demos": "2", "seed": "21", "real_time": "false"}
+    with launched(
+        "pipeline.launch.xml",
+        arguments,
+        DOMAIN_ID + 1,
+        tmp_path,
+        {"teacher": {"pause_s": "0.2", "duration_s": "3.0"}},
+    ) as nodes:
+        assert nodes.names == ["recorder", "teacher", "learner", "replay"]
+        assert nodes.wait("replay", 150.0) == 0, nodes.all_logs()
+        assert nodes.wait("teacher", 10.0) == 0, nodes.all_logs()
+        assert nodes.wait("learner", 10.0) == 0, nodes.all_logs()
+        assert nodes.interrupt("recorder") == 0, nodes.all_logs()
+    with DemoStore(store, read_only=True) as db:
+        assert db.count_demonstrations(status="complete") == 2
+        (skill,) = db.list_skills()
+        (result,) = db.find_replay_results(skill_id=skill.id)
+    assert result.status == "ok"
