@@ -98,7 +98,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
     status, out, _ = _run(capsys, "merge", other, "--store", path)
     assert status == 0 and out.startswith("added 0, skipped 1 duplicate(s), 0 conflict(s)")
     status, out, _ = _run(capsys, "verify", "--store", path)
-    assert status == 0 and out.strip() == "schema version 2: ok"
+    assert status == 0 and out.strip() == "schema version 3: ok"
     status, out, _ = _run(capsys, "skills", "--store", other, "--json")
     assert [(s["name"], s["version"]) for s in json.loads(out)] == [("cork_seat", 1)]
 

@@ -180,6 +180,51 @@ def test_complete_without_samples_is_refused(store):
     assert store.finish_demonstration(demo_id, status="incomplete").n_samples == 0
 
 
+def test_nan_stiffness_means_no_estimate(store):
+    data = samples(50)
+    data["stiffness"][:10] = np.nan  # estimator not yet excited
+    data["stiffness"][:, 1] = np.nan  # never excited on the elbow
+    demo_id = store.add_demonstration(**data, skill="cork_seat", joints=JOINTS)
+    demo = store.load_demonstration(demo_id)
+    assert np.array_equal(demo.stiffness, data["stiffness"], equal_nan=True)
+    expected = data["stiffness"][10:, 0]
+    assert demo.info.stiffness_min == {"shoulder": expected.min(), "elbow": None}
+    assert demo.info.stiffness_max == {"shoulder": expected.max(), "elbow": None}
+    row = store.db.execute(
+        "SELECT stiffness_min, stiffness_max FROM demonstrations WHERE id = ?", [demo_id]
+    ).fetchone()
+    assert row == (expected.min(), expected.max())
+
+
+def test_damaged_chunk_is_store_corrupt_error(tmp_path):
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        demo_id = add_demo(store)
+        good = add_demo(store, seed=1)
+    conn = sqlite3.connect(path)
+    (blob,) = conn.execute("SELECT torque FROM chunks WHERE demo_id = ?", [demo_id]).fetchone()
+    damaged = bytearray(blob)
+    damaged[43] ^= 0x10  # one flipped bit, as bit rot would leave it
+    conn.execute("UPDATE chunks SET torque = ? WHERE demo_id = ?", [bytes(damaged), demo_id])
+    conn.commit()
+    conn.close()
+    with DemoStore(path, read_only=True) as store:
+        with pytest.raises(StoreCorruptError, match="store.sqlite.*chunk 0 of demonstration "
+                           f"'{demo_id}' fails its checksum"):  # fmt: skip
+            store.load_demonstration(demo_id)
+        assert store.load_demonstration(good).info.n_samples == 200
+
+
+def test_truncated_copy_is_store_corrupt_error(tmp_path):
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        add_demo(store, n=5000)
+    cut = tmp_path / "cut.sqlite"
+    cut.write_bytes(path.read_bytes()[:-1])
+    with pytest.raises(StoreCorruptError, match="cut.sqlite' is truncated: .* the header says"):
+        DemoStore(cut, read_only=True)
+
+
 def test_load_subset_of_joints_and_dataframe(store):
     demo_id = add_demo(store, n=50)
     full = store.load_demonstration(demo_id)
@@ -455,7 +500,7 @@ def _set(channel, index, value):
         ({"pos": _set("position", (3, 1), np.nan)}, "position\\[3, 1\\] = nan is not finite"),
         ({"vel": _set("velocity", (0, 0), np.inf)}, "velocity\\[0, 0\\] = inf is not finite"),
         ({"tau": _set("torque", (9, 0), -np.inf)}, "torque\\[9, 0\\] = -inf is not finite"),
-        ({"k": _set("stiffness", (5, 1), np.nan)}, "stiffness\\[5, 1\\] = nan is not finite"),
+        ({"k": _set("stiffness", (5, 1), np.inf)}, "stiffness\\[5, 1\\] = inf is not finite"),
         ({"t_nan": _set("t", 4, np.nan)}, "t\\[4\\] = nan is not finite"),
         ({"t_back": _set("t", 6, 0.0)}, "t goes backwards at index 6: t\\[5\\] = 1.105"),
         (

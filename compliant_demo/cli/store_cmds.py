@@ -4,6 +4,7 @@ skills and verify. Demonstrations are named by their UUID or any unique prefix o
 from __future__ import annotations
 
 import argparse
+import uuid
 from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
@@ -143,6 +144,26 @@ def _cmd_import(args: argparse.Namespace) -> int:
     return 0
 
 
+def _export_target(out: Path, demo_id: str, fmt: str) -> Path:
+    """Where to export one demonstration: ``out`` itself, or ``out/<uuid>.<fmt>`` for a folder.
+
+    The file name comes from the id only once it is a canonical UUID, so an id planted in a
+    foreign store ("../../x", "/etc/x") cannot write outside ``out``.
+    """
+    if not out.is_dir():
+        return out
+    try:
+        canonical = str(uuid.UUID(demo_id))
+    except ValueError:
+        canonical = None
+    if canonical != demo_id:
+        raise InvalidInputError(f"demonstration id {demo_id!r} is not a UUID: not exported")
+    target = out / f"{canonical}.{fmt}"
+    if not target.resolve().is_relative_to(out.resolve()):
+        raise InvalidInputError(f"export of {demo_id!r} would leave {str(out)!r}: refused")
+    return target
+
+
 def _cmd_export(args: argparse.Namespace) -> int:
     written = []
     with _open(args, write=False) as store:
@@ -150,7 +171,7 @@ def _cmd_export(args: argparse.Namespace) -> int:
         if len(ids) > 1 and not args.out.is_dir():
             raise InvalidInputError(f"--out {str(args.out)!r} must be a directory for many ids")
         for demo_id in ids:
-            target = args.out / f"{demo_id}.{args.format}" if args.out.is_dir() else args.out
+            target = _export_target(args.out, demo_id, args.format)
             if args.format == "bag":
                 target = target.with_suffix("") if target.suffix == ".bag" else target
                 export_bag(store, demo_id, target, storage=args.storage)

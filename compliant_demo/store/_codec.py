@@ -18,6 +18,7 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = [
     "SAMPLE_DTYPE",
     "CHANNELS",
+    "chunk_checksum",
     "to_blob",
     "from_blobs",
     "dumps",
@@ -31,6 +32,26 @@ __all__ = [
 SAMPLE_DTYPE = np.dtype("<f8")
 CHANNELS: tuple[str, ...] = ("position", "velocity", "torque", "stiffness")
 _ARRAY_TAG = "__ndarray__"
+
+
+_MASK64 = (1 << 64) - 1
+
+
+def chunk_checksum(blobs: Sequence[bytes | None]) -> int:
+    """Checksum of one chunk's blobs ``(t, position, velocity, torque, stiffness)``.
+
+    The sum, modulo 2**64, over channels c = 0..4 of ``(2c + 1) * S_c``, where ``S_c`` is the sum
+    modulo 2**64 of the blob read as little-endian unsigned 64-bit words (0 for an absent blob),
+    returned as a signed 64-bit integer (two's complement) for SQLite. The odd weights make every
+    single-bit flip change the sum; one pass of additions keeps loading fast.
+    """
+    total = 0
+    for index, blob in enumerate(blobs):
+        if blob:
+            words = np.frombuffer(blob, dtype="<u8")
+            total += (2 * index + 1) * int(np.add.reduce(words, dtype=np.uint64))
+    total &= _MASK64
+    return total - (1 << 64) if total >= 1 << 63 else total
 
 
 def to_blob(array: np.ndarray) -> bytes:
@@ -127,7 +148,7 @@ def validate_flags(flags: object) -> dict[str, int | float | str | bool]:
     return checked
 
 
-def _channel(name: str, value: object, n: int, n_joints: int) -> np.ndarray:
+def _channel(name: str, value: object, n: int, n_joints: int, *, allow_nan: bool) -> np.ndarray:
     try:
         array = np.asarray(value, dtype=np.float64)
     except (TypeError, ValueError) as exc:
@@ -139,12 +160,12 @@ def _channel(name: str, value: object, n: int, n_joints: int) -> np.ndarray:
             f"{name} has shape {array.shape}, expected ({n}, {n_joints}) "
             f"(n_samples from t, n_joints from the demonstration)"
         )
-    _check_finite(name, array)
+    _check_finite(name, array, allow_nan=allow_nan)
     return array
 
 
-def _check_finite(name: str, array: np.ndarray) -> None:
-    bad = ~np.isfinite(array)
+def _check_finite(name: str, array: np.ndarray, *, allow_nan: bool = False) -> None:
+    bad = np.isinf(array) if allow_nan else ~np.isfinite(array)
     if bad.any():
         index = tuple(int(i) for i in np.argwhere(bad)[0])
         raise InvalidInputError(
@@ -166,6 +187,7 @@ def validate_chunk(
     t : (n,) array, s
         Strictly increasing.
     channels : mapping of channel name to (n, n_joints) array or None
+        Finite values; stiffness may also be NaN ("no estimate"), never infinite.
     n_joints : int
     with_stiffness : bool
         Whether the demonstration stores stiffness: then it is required, otherwise refused.
@@ -203,5 +225,6 @@ def validate_chunk(
             continue
         if value is None:
             raise InvalidInputError(f"{name} is missing (None) but the demonstration stores it")
-        arrays[name] = _channel(name, value, times.size, n_joints)
+        # NaN stiffness means "no estimate for this sample" (an estimator not yet excited)
+        arrays[name] = _channel(name, value, times.size, n_joints, allow_nan=name == "stiffness")
     return times, arrays

@@ -16,7 +16,7 @@ from collections.abc import Callable
 import numpy as np
 
 from compliant_demo.exceptions import SchemaVersionError, StoreCorruptError, StoreReadOnlyError
-from compliant_demo.store._codec import CHANNELS, from_blobs
+from compliant_demo.store._codec import CHANNELS, chunk_checksum, from_blobs
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -28,10 +28,11 @@ __all__ = [
     "refresh_summary",
 ]
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
-# Version 2 layout. A later version adds its own statements and a migration; these stay as the
-# record of what version 2 was.
+# Current (version 3) layout. A migration creates a table from these statements only when its
+# layout is the current one; older layouts a migration still needs are kept beside it
+# (``_CHUNKS_V2``).
 _TABLES: dict[str, str] = {
     "schema_migrations": """
         CREATE TABLE schema_migrations (
@@ -100,6 +101,7 @@ _TABLES: dict[str, str] = {
             velocity BLOB NOT NULL,
             torque BLOB NOT NULL,
             stiffness BLOB,
+            checksum INTEGER NOT NULL,
             UNIQUE (demo_id, seq)
         )""",
     "skills": """
@@ -149,6 +151,21 @@ _TABLES: dict[str, str] = {
         )""",
 }
 
+_CHUNKS_V2 = """
+        CREATE TABLE chunks (
+            demo_id TEXT NOT NULL REFERENCES demonstrations(id) ON DELETE CASCADE,
+            seq INTEGER NOT NULL,
+            n INTEGER NOT NULL CHECK (n > 0),
+            t_first REAL NOT NULL,
+            t_last REAL NOT NULL,
+            t BLOB NOT NULL,
+            position BLOB NOT NULL,
+            velocity BLOB NOT NULL,
+            torque BLOB NOT NULL,
+            stiffness BLOB,
+            UNIQUE (demo_id, seq)
+        )"""
+
 # Every column a caller may filter or sort on with ``where`` / ``order_by``.
 DEMONSTRATION_COLUMNS: tuple[str, ...] = (
     "id", "skill", "operator", "tags", "notes", "source", "joints", "n_joints",
@@ -194,7 +211,7 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
     conn.execute("ALTER TABLE chunks RENAME TO chunks_v1")
     for name, ddl in _TABLES.items():
         if name != "schema_migrations":
-            conn.execute(ddl)
+            conn.execute(_CHUNKS_V2 if name == "chunks" else ddl)
     conn.execute(
         """INSERT INTO demonstrations (
                id, skill, operator, tags, notes, source, joints, n_joints, nominal_rate_hz,
@@ -225,12 +242,30 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
     for ddl in _INDEXES:
         conn.execute(ddl)
     for (demo_id,) in conn.execute("SELECT id FROM demonstrations").fetchall():
-        refresh_summary(conn, demo_id)
+        refresh_summary(conn, demo_id, verify=False)  # version 2 chunks carry no checksum
+
+
+def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
+    """Version 3 adds a checksum to every chunk, verified whenever samples are read."""
+    conn.execute("ALTER TABLE chunks RENAME TO chunks_v2")
+    conn.execute(_TABLES["chunks"])
+    rows = conn.execute(
+        "SELECT demo_id, seq, n, t_first, t_last, t, position, velocity, torque, stiffness "
+        "FROM chunks_v2"
+    )
+    for row in rows:
+        conn.execute(
+            "INSERT INTO chunks (demo_id, seq, n, t_first, t_last, t, position, velocity, torque, "
+            "stiffness, checksum) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (*row, chunk_checksum(row[5:])),
+        )
+    conn.execute("DROP TABLE chunks_v2")
 
 
 # from-version -> (description, migration to from-version + 1)
 MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
     1: ("summaries, tag index, writer leases, skills and replay results", _migrate_1_to_2),
+    2: ("chunk checksums", _migrate_2_to_3),
 }
 
 
@@ -316,16 +351,28 @@ def _migrate(conn: sqlite3.Connection, version: int, label: str) -> int:
 
 
 def read_samples(
-    conn: sqlite3.Connection, demo_id: str, n_joints: int, has_stiffness: bool
+    conn: sqlite3.Connection,
+    demo_id: str,
+    n_joints: int,
+    has_stiffness: bool,
+    *,
+    label: str = "store",
+    verify: bool = True,
 ) -> tuple[np.ndarray, dict[str, np.ndarray | None]]:
     """All samples of one demonstration: ``t`` (n,) and channel arrays (n, n_joints).
 
     One SELECT over the demonstration's chunks; each channel is one join of blobs and one
-    ``np.frombuffer``, so the arrays are read-only views of fresh memory.
+    ``np.frombuffer``, so the arrays are read-only views of fresh memory. Every chunk's blob
+    sizes and checksum are verified (unless ``verify`` is off, for layouts without checksums).
+
+    Raises
+    ------
+    StoreCorruptError
+        A chunk's bytes do not match its sample count or checksum.
     """
     rows = conn.execute(
-        "SELECT t, position, velocity, torque, stiffness FROM chunks WHERE demo_id = ? "
-        "ORDER BY seq",
+        "SELECT seq, n, t, position, velocity, torque, stiffness"
+        f"{', checksum' if verify else ''} FROM chunks WHERE demo_id = ? ORDER BY seq",
         (demo_id,),
     ).fetchall()
     if not rows:
@@ -333,14 +380,34 @@ def read_samples(
         return np.empty(0), {
             name: (empty if name != "stiffness" or has_stiffness else None) for name in CHANNELS
         }
+    if verify:
+        for row in rows:
+            _verify_chunk(row, n_joints, has_stiffness, demo_id, label)
     columns = list(zip(*rows, strict=True))
-    t = from_blobs(columns[0], None)
+    t = from_blobs(columns[2], None)
     arrays: dict[str, np.ndarray | None] = {}
-    for name, blobs in zip(CHANNELS, columns[1:], strict=True):
+    for name, blobs in zip(CHANNELS, columns[3:7], strict=True):
         arrays[name] = (
             from_blobs(blobs, n_joints) if (name != "stiffness" or has_stiffness) else None
         )
     return t, arrays
+
+
+def _verify_chunk(row: tuple, n_joints: int, has_stiffness: bool, demo_id: str, label: str) -> None:
+    seq, n, t, *channels, checksum = row
+    sizes = [len(t) if isinstance(t, bytes) else -1] + [
+        len(b) if isinstance(b, bytes) else (0 if b is None else -1) for b in channels
+    ]
+    expected = [8 * n] + [8 * n * n_joints] * 3 + [8 * n * n_joints if has_stiffness else 0]
+    if sizes != expected:
+        raise StoreCorruptError(
+            f"{label}: chunk {seq} of demonstration {demo_id!r} has blobs of {sizes} bytes, "
+            f"expected {expected}"
+        )
+    if chunk_checksum([t, *channels]) != checksum:
+        raise StoreCorruptError(
+            f"{label}: chunk {seq} of demonstration {demo_id!r} fails its checksum (damaged file)"
+        )
 
 
 def _finite_or_none(value: float) -> float | None:
@@ -352,14 +419,22 @@ def _per_joint(joints: list[str], values: np.ndarray) -> str:
     return json.dumps({name: _finite_or_none(v) for name, v in zip(joints, values, strict=True)})
 
 
-def refresh_summary(conn: sqlite3.Connection, demo_id: str) -> None:
-    """Recompute the summary columns of one demonstration from its stored samples."""
+def refresh_summary(
+    conn: sqlite3.Connection, demo_id: str, *, label: str = "store", verify: bool = True
+) -> None:
+    """Recompute the summary columns of one demonstration from its stored samples.
+
+    Stiffness extremes ignore NaN ("no estimate") samples; a joint without any estimate gets
+    None.
+    """
     row = conn.execute(
         "SELECT joints, n_joints, has_stiffness FROM demonstrations WHERE id = ?", (demo_id,)
     ).fetchone()
     joints_json, n_joints, has_stiffness = row
     joints = json.loads(joints_json)
-    t, arrays = read_samples(conn, demo_id, n_joints, bool(has_stiffness))
+    t, arrays = read_samples(
+        conn, demo_id, n_joints, bool(has_stiffness), label=label, verify=verify
+    )
     summary: dict[str, object] = {
         "n_samples": int(t.size),
         "t_first": float(t[0]) if t.size else None,
@@ -389,10 +464,12 @@ def refresh_summary(conn: sqlite3.Connection, demo_id: str) -> None:
         )
         stiffness = arrays["stiffness"]
         if stiffness is not None:
-            low, high = stiffness.min(axis=0), stiffness.max(axis=0)
+            estimated = ~np.isnan(stiffness)
+            low = np.where(estimated, stiffness, np.inf).min(axis=0)
+            high = np.where(estimated, stiffness, -np.inf).max(axis=0)
             summary.update(
-                stiffness_min=float(low.min()),
-                stiffness_max=float(high.max()),
+                stiffness_min=_finite_or_none(low.min()),
+                stiffness_max=_finite_or_none(high.max()),
                 stiffness_min_json=_per_joint(joints, low),
                 stiffness_max_json=_per_joint(joints, high),
             )

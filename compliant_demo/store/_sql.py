@@ -3,6 +3,7 @@ named exceptions, and building filtered queries with every value bound as a para
 
 from __future__ import annotations
 
+import json
 import os
 import sqlite3
 from collections.abc import Iterator, Mapping, Sequence
@@ -42,6 +43,9 @@ def translated(label: str) -> Iterator[None]:
     """Turn sqlite3 errors raised inside the block into our named store errors."""
     try:
         yield
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        # damaged text in the schema or in a JSON column; sqlite3 decodes text as UTF-8
+        raise StoreCorruptError(f"{label}: damaged text in the store: {exc}") from exc
     except sqlite3.Error as exc:
         name = getattr(exc, "sqlite_errorname", "") or ""
         text = str(exc)
@@ -70,6 +74,27 @@ def _check_file(path: Path) -> None:
         raise StoreCorruptError(
             f"store {str(path)!r} is not an SQLite file (starts with {header[:8]!r})"
         )
+    _check_length(path)
+
+
+def _check_length(path: Path) -> None:
+    """Refuse a file shorter than its header says (a cut copy); SQLite would read zeros."""
+    size = path.stat().st_size
+    if size == 0:
+        return
+    with path.open("rb") as handle:
+        header = handle.read(100)
+    if len(header) < 100:
+        raise StoreCorruptError(f"store {str(path)!r} is truncated: {size} bytes, no full header")
+    page_size = int.from_bytes(header[16:18], "big")
+    page_size = 65536 if page_size == 1 else page_size
+    page_count = int.from_bytes(header[28:32], "big")
+    # the page count is valid when "version-valid-for" equals the change counter (SQLite format)
+    if header[92:96] == header[24:28] and page_count * page_size > size:
+        raise StoreCorruptError(
+            f"store {str(path)!r} is truncated: {size} bytes, the header says "
+            f"{page_count} pages of {page_size} bytes"
+        )
 
 
 def connect(
@@ -96,6 +121,12 @@ def connect(
             _create_file(resolved)
         _check_file(resolved)
         mode = "ro" if read_only else "rw"
+        if not read_only and not os.access(resolved, os.W_OK):
+            raise StoreReadOnlyError(
+                f"store {str(resolved)!r} is read-only (file or file system): open it read-only"
+            )
+        if read_only and _needs_immutable(resolved):
+            mode = "ro&immutable=1"
         with translated(str(resolved)):
             conn = sqlite3.connect(
                 f"file:{quote(str(resolved.absolute()))}?mode={mode}",
@@ -111,6 +142,12 @@ def connect(
         conn.close()
         raise
     return conn, resolved
+
+
+def _needs_immutable(path: Path) -> bool:
+    """A WAL store in a folder nobody may write to (a read-only file system): SQLite cannot make
+    its shared-memory file there, so the file is opened as immutable (no locks, no WAL)."""
+    return not os.access(path.parent, os.W_OK) and not Path(f"{path}-shm").exists()
 
 
 def _create_file(path: Path) -> None:

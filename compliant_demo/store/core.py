@@ -136,6 +136,15 @@ def _timestamp(name: str, value: float | datetime) -> float:
     return value.timestamp() if isinstance(value, datetime) else _finite(name, value)
 
 
+def _texts(name: str, value: object) -> list[str]:
+    """One string or a sequence of strings, as a list."""
+    if isinstance(value, str):
+        return [value]
+    if not isinstance(value, (list, tuple)):
+        raise InvalidInputError(f"{name} must be a string or a list of strings, got {value!r}")
+    return [_codec.validate_text(name, one) for one in value]
+
+
 def _choice(name: str, value: object, allowed: Sequence[str]) -> str:
     if value not in allowed:
         raise InvalidInputError(f"{name} must be one of {', '.join(allowed)}; got {value!r}")
@@ -508,13 +517,16 @@ class DemoStore:
                 f"{last[1]!r} of demonstration {demo_id!r}"
             )
         stiffness = arrays.get("stiffness")
+        blobs = [
+            _codec.to_blob(times),
+            *(_codec.to_blob(arrays[name]) for name in ("position", "velocity", "torque")),
+            None if stiffness is None else _codec.to_blob(stiffness),
+        ]
         conn.execute(
             "INSERT INTO chunks (demo_id, seq, n, t_first, t_last, t, position, velocity, torque, "
-            "stiffness) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-            (demo_id, seq, times.size, float(times[0]), float(times[-1]), _codec.to_blob(times),
-             _codec.to_blob(arrays["position"]), _codec.to_blob(arrays["velocity"]),
-             _codec.to_blob(arrays["torque"]),
-             None if stiffness is None else _codec.to_blob(stiffness)),
+            "stiffness, checksum) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (demo_id, seq, times.size, float(times[0]), float(times[-1]), *blobs,
+             _codec.chunk_checksum(blobs)),
         )  # fmt: skip
         first = float(times[0]) if t_first is None else t_first
         total = n_samples + times.size
@@ -567,7 +579,7 @@ class DemoStore:
         self._end_recording(conn, demo_id, status, None)
 
     def _end_recording(self, conn: Any, demo_id: str, status: str, reason: str | None) -> None:
-        _schema.refresh_summary(conn, demo_id)
+        _schema.refresh_summary(conn, demo_id, label=self._label)
         conn.execute(
             "UPDATE demonstrations SET status = ?, status_reason = ?, writer_token = NULL "
             "WHERE id = ?",
@@ -660,11 +672,10 @@ class DemoStore:
             if value is not None:
                 query.add(f"{column} = {{}}", _codec.validate_text(column, value))
         if tag is not None:
-            for one in [tag] if isinstance(tag, str) else list(tag):
-                _codec.validate_text("tag", one)
+            for one in _texts("tag", tag):
                 query.add("id IN (SELECT demo_id FROM demonstration_tags WHERE tag = {})", one)
         if status is not None:
-            statuses = [status] if isinstance(status, str) else list(status)
+            statuses = _texts("status", status)
             for one in statuses:
                 _choice("status", one, DEMO_STATUSES)
             query.add(f"status IN ({', '.join('{}' for _ in statuses)})", *statuses)
@@ -732,7 +743,8 @@ class DemoStore:
                 raise InvalidInputError(f"limit must be a non-negative integer, got {limit!r}")
             sql += f" LIMIT {int(limit)}"
         rows = self._guarded_query(sql, query.params(), where)
-        return iter(_infos_from_rows(rows))
+        with _sql.translated(self._label):
+            return iter(_infos_from_rows(rows))
 
     def _guarded_query(
         self, sql: str, params: Sequence[object] | Mapping[str, object], where: str | None
@@ -792,7 +804,9 @@ class DemoStore:
         """
         with self._snapshot() as conn:
             info = self._info(conn, demo_id)
-            t, arrays = _schema.read_samples(conn, demo_id, len(info.joints), info.has_stiffness)
+            t, arrays = _schema.read_samples(
+                conn, demo_id, len(info.joints), info.has_stiffness, label=self._label
+            )
         names = info.joints
         if joints is not None:
             wanted = _codec.validate_joints(joints)

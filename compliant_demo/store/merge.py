@@ -4,8 +4,11 @@ skipped, differing ones are reported as conflicts and left as they are."""
 from __future__ import annotations
 
 import hashlib
+import json
+import uuid
 from typing import TYPE_CHECKING, Any
 
+from compliant_demo.store._schema import read_samples
 from compliant_demo.store.records import MergeConflict, MergeReport
 
 if TYPE_CHECKING:
@@ -28,6 +31,7 @@ _COPY_COLUMNS = (
 )  # fmt: skip
 _CHUNK_COLUMNS = (
     "demo_id", "seq", "n", "t_first", "t_last", "t", "position", "velocity", "torque", "stiffness",
+    "checksum",
 )  # fmt: skip
 
 
@@ -41,6 +45,13 @@ def content_digest(conn: Any, demo_id: str) -> str:
         ):
             digest.update(b"" if blob is None else blob)
     return digest.hexdigest()
+
+
+def _is_uuid(value: str) -> bool:
+    try:
+        return str(uuid.UUID(value)) == value
+    except (ValueError, TypeError, AttributeError):
+        return False
 
 
 def _identity(conn: Any, demo_id: str) -> dict[str, Any] | None:
@@ -62,6 +73,9 @@ def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
             theirs = _identity(src, demo_id)
             if theirs is None:  # deleted in the source since we listed it
                 continue
+            if not _is_uuid(demo_id):
+                report.conflicts.append(MergeConflict(demo_id, "id is not a UUID: not copied"))
+                continue
             if theirs["status"] == "recording":
                 report.conflicts.append(MergeConflict(demo_id, "still recording in the source"))
                 continue
@@ -77,6 +91,9 @@ def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
                 else:
                     report.skipped_duplicates.append(demo_id)
                 continue
+            # verifies the checksums: damaged samples are never copied
+            read_samples(src, demo_id, len(json.loads(theirs["joints"])),
+                         bool(theirs["has_stiffness"]), label=source._label)  # fmt: skip
             row = src.execute(
                 f"SELECT {', '.join(_COPY_COLUMNS)} FROM demonstrations WHERE id = ?", (demo_id,)
             ).fetchone()
