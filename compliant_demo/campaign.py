@@ -326,20 +326,23 @@ class CampaignSummary:
         return self.n_run / self.wall_s if self.wall_s > 0 else float("nan")
 
 
-def default_campaign_spec(n_joints: int = 2) -> CampaignSpec:
+def default_campaign_spec(n_joints: int = 2, movement_s: float = 6.0) -> CampaignSpec:
     """Perturbations sized for the cork_seat bench arm (inertia 0.03-0.08 kg*m^2, 4-40 N*m/rad).
 
-    Every kind with equal weight, on any joint, starting 0.5 to 4.5 s into the skill; windows
-    and contacts last long enough to watch the recovery. Magnitudes deflect a soft joint by a few
-    hundredths to about a tenth of a radian (invented for the demo, not taken from a standard).
+    Every kind with equal weight, on any joint, starting between 8 % and 75 % of the movement's
+    duration ``movement_s`` (s); windows and contacts last long enough to watch the recovery.
+    Magnitudes deflect a soft joint by a few hundredths to about a tenth of a radian (invented
+    for the demo, not taken from a standard).
     """
+    if not movement_s > 0:
+        raise InvalidInputError(f"movement_s = {movement_s}: must be > 0 s")
     return CampaignSpec(
         name="cork_seat_campaign",
         kinds={kind: 1.0 for kind in (
             "impulse", "torque_step", "torque_window", "sinusoid", "random_torque", "wall", "hold"
         )},
         joints=list(range(n_joints)),
-        onset_s=Uniform(low=0.5, high=4.5),
+        onset_s=Uniform(low=0.08 * movement_s, high=0.75 * movement_s),
         duration_s={
             "torque_step": Uniform(low=0.2, high=1.0),
             "torque_window": Uniform(low=0.1, high=0.4),

@@ -273,7 +273,7 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
             return skill, save_skill(store, skill)
 
         skill, record = _timed(timings, "learn", learn)
-        job = ReplayCampaign(skill, plant, default_campaign_spec(len(joints)),
+        job = ReplayCampaign(skill, plant, default_campaign_spec(len(joints), skill.duration_s),
                              settings.n_scenarios, seed=settings.seed)
         campaign = _timed(timings, "campaign", lambda: run_campaign(
             store, job, skill_id=record.id, workers=settings.workers,

@@ -10,7 +10,6 @@ import numpy as np
 
 from compliant_demo.campaign import ReplayCampaign, default_campaign_spec
 from compliant_demo.learning import learn_skill, save_skill
-from compliant_demo.perturbation import Uniform
 from compliant_demo.primitives import Skill, fit_skill
 from compliant_demo.runtime import ReplayPlant, load_plant
 from compliant_demo.store import DemoStore
@@ -29,10 +28,13 @@ def cork_seat_records() -> tuple:
 @functools.lru_cache(maxsize=1)
 def cork_seat_skill() -> Skill:
     """A skill learned from :func:`cork_seat_records` with the teacher's hand stiffness."""
-    demos = [{"t": r.t, "position": r.position, "stiffness": r.hand_stiffness_truth,
-              "id": f"demo-{i}"} for i, r in enumerate(cork_seat_records())]
-    return learn_skill(demos, joints=list(JOINTS), n_basis=30, stiffness_range=(5.0, 200.0),
-                       name="cork_seat")
+    demos = [
+        {"t": r.t, "position": r.position, "stiffness": r.hand_stiffness_truth, "id": f"demo-{i}"}
+        for i, r in enumerate(cork_seat_records())
+    ]
+    return learn_skill(
+        demos, joints=list(JOINTS), n_basis=30, stiffness_range=(5.0, 200.0), name="cork_seat"
+    )
 
 
 def plant() -> ReplayPlant:
@@ -42,32 +44,51 @@ def plant() -> ReplayPlant:
 
 def campaign_job(n_scenarios: int = 14, seed: int = 5, **changes) -> ReplayCampaign:
     """A short campaign of the cork_seat skill over every perturbation kind: the movement is
-    played in 1.5 s so the tests stay fast, perturbations start 0.2 to 1.2 s in."""
-    spec = default_campaign_spec().model_copy(update={"onset_s": Uniform(low=0.2, high=1.2)})
+    played in 1.5 s so the tests stay fast."""
+    spec = default_campaign_spec(movement_s=1.5)
     settings = {"duration_s": 1.5, "settle_s": 0.3, "seed": seed, **changes}
     return ReplayCampaign(cork_seat_skill(), plant(), spec, n_scenarios, **settings)
 
 
-def store_with_demos_and_skill(path: Path) -> str:
-    """Fill a store at ``path`` with the three demonstrations and the skill; returns its id."""
+def store_with_demos_and_skill(path: Path, *, with_skill: bool = True) -> str | None:
+    """Fill a store at ``path`` with the three demonstrations (stiffness channel: the teacher's
+    hand stiffness) and, unless told otherwise, the skill; returns the skill's id."""
     with DemoStore(path, durable=False) as store:
         ids = []
         for record in cork_seat_records():
-            ids.append(store.add_demonstration(
-                skill="cork_seat", operator="operator_a", joints=list(JOINTS), t=record.t,
-                position=record.position, velocity=record.velocity, torque=record.torque,
-                stiffness=record.hand_stiffness_truth, source="simulated",
-            ))
+            ids.append(
+                store.add_demonstration(
+                    skill="cork_seat",
+                    operator="operator_a",
+                    joints=list(JOINTS),
+                    t=record.t,
+                    position=record.position,
+                    velocity=record.velocity,
+                    torque=record.torque,
+                    stiffness=record.hand_stiffness_truth,
+                    source="simulated",
+                )
+            )
+        if not with_skill:
+            return None
         skill = cork_seat_skill().model_copy(deep=True)
         skill.provenance.demonstration_ids = ids
         return save_skill(store, skill).id
 
 
-def stationary_skill(stiffness: float, position: tuple[float, float] = (0.3, 0.8),
-                     duration_s: float = 2.0) -> Skill:
+def stationary_skill(
+    stiffness: float, position: tuple[float, float] = (0.3, 0.8), duration_s: float = 2.0
+) -> Skill:
     """A skill that holds one posture at a constant stiffness (start = goal)."""
     t = np.linspace(0.0, duration_s, 201)
     q = np.tile(np.asarray(position), (t.size, 1))
-    return fit_skill(t, q, np.full_like(q, stiffness), joints=list(JOINTS), n_basis=10,
-                     formulation="goal_robust",
-                     name="hold_still", target_inertia=[j.inertia for j in plant().joints])
+    return fit_skill(
+        t,
+        q,
+        np.full_like(q, stiffness),
+        joints=list(JOINTS),
+        n_basis=10,
+        formulation="goal_robust",
+        name="hold_still",
+        target_inertia=[j.inertia for j in plant().joints],
+    )

@@ -98,12 +98,12 @@ def add_backend_options(parser: argparse.ArgumentParser) -> None:
 def add_progress_option(parser: argparse.ArgumentParser) -> None:
     """``--quiet``: no progress bars on stderr."""
     parser.add_argument("--quiet", action="store_true",
-                        help="no progress bars (they go to stderr, so --json stays clean)")
+                        help="no progress bars (shown on stderr when it is a terminal)")
 
 
 def show_progress(args: argparse.Namespace) -> bool:
-    """Progress bars unless ``--quiet``."""
-    return not args.quiet and sys.stderr is not None
+    """Progress bars on a terminal, unless ``--quiet`` (logs and pipes stay clean)."""
+    return not args.quiet and sys.stderr is not None and sys.stderr.isatty()
 
 
 def read_plant(args: argparse.Namespace) -> ReplayPlant:

@@ -85,7 +85,8 @@ def _job(store: DemoStore, args: argparse.Namespace) -> tuple[str, ReplayCampaig
     if args.spec is not None and not args.spec.is_file():
         raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
     plant = read_plant(args)
-    spec = (default_campaign_spec(len(skill.joints)) if args.spec is None
+    movement_s = skill.duration_s if args.duration is None else args.duration
+    spec = (default_campaign_spec(len(skill.joints), movement_s) if args.spec is None
             else load_campaign_yaml(args.spec))
     return record.id, ReplayCampaign(skill, plant, spec, args.scenarios, seed=args.seed,
                                      duration_s=args.duration, settle_s=args.settle)

@@ -1,0 +1,226 @@
+"""The learn, replay, campaign and report subcommands: JSON output, exit codes, one-line errors,
+help texts with units and defaults."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+import yaml
+from campaign_support import store_with_demos_and_skill
+
+from compliant_demo.cli import main
+from compliant_demo.perturbation import PERTURBATION_KINDS
+from compliant_demo.store import DemoStore
+
+_SHORT = ["--duration", "1.5", "--settle", "0.3"]
+
+
+def _run(capsys, *argv) -> tuple[int, str, str]:
+    status = main([str(a) for a in argv])
+    captured = capsys.readouterr()
+    return status, captured.out, captured.err
+
+
+def _one_line_error(err: str, command: str, text: str) -> None:
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert lines[0].startswith(f"compliant-demo {command}: error: ")
+    assert text in lines[0]
+    assert "Traceback" not in err
+
+
+@pytest.fixture
+def store(tmp_path):
+    path = tmp_path / "store.sqlite"
+    store_with_demos_and_skill(path)
+    return path
+
+
+@pytest.mark.parametrize(
+    ("command", "needles"),
+    [
+        ("learn", ["N*m/rad", "kg*m^2", "default: 30", "default: cork_seat"]),
+        ("replay", ["N*m/rad/s", "default: 0.5", "rad", "Exits 0"]),
+        ("campaign", ["N*m*s", "default: 350", "default: every core", "--resume"]),
+        ("report", ["N*m/rad", "default: ./compliant_demo_report", "self-contained"]),
+        ("tour", ["loopback", "default: 4", "ROS_DOMAIN_ID", "default: 350"]),
+    ],
+)
+def test_help_explains_units_and_defaults(capsys, command, needles):
+    with pytest.raises(SystemExit) as exit_info:
+        main([command, "--help"])
+    assert exit_info.value.code == 0
+    text = " ".join(capsys.readouterr().out.split())
+    for needle in needles:
+        assert needle in text, needle
+
+
+def test_learn_saves_a_new_version_and_reports_fit_errors(tmp_path, capsys):
+    path = tmp_path / "store.sqlite"
+    store_with_demos_and_skill(path, with_skill=False)
+    status, out, err = _run(capsys, "learn", "--store", path, "--n-basis", "20", "--json")
+    assert status == 0, err
+    data = json.loads(out)
+    assert (data["skill"], data["version"], len(data["demonstration_ids"])) == ("cork_seat", 1, 3)
+    assert "shoulder: position RMSE" in data["report"]
+    with DemoStore(path, read_only=True) as store:
+        assert store.load_skill("cork_seat").id == data["skill_id"]
+    status, out, _ = _run(capsys, "learn", "--store", path)
+    assert status == 0 and "saved as cork_seat version 2" in out
+
+
+def test_learn_refuses_when_too_few_demonstrations_match(store, capsys):
+    status, out, err = _run(capsys, "learn", "--store", store, "--skill", "nothing_here")
+    assert (status, out) == (2, "")
+    _one_line_error(err, "learn", "0 complete demonstration(s) match skill='nothing_here'")
+
+
+def test_bad_option_values_are_one_line_usage_errors(store, capsys):
+    with pytest.raises(SystemExit) as exit_info:
+        main(["campaign", "--store", str(store), "--scenarios", "0"])
+    assert exit_info.value.code == 2
+    assert "'0' must be >= 1" in capsys.readouterr().err
+    with pytest.raises(SystemExit):
+        main(["replay", "--store", str(store), "--dt", "nan"])
+    assert "'nan' is not finite" in capsys.readouterr().err
+
+
+def test_replay_with_a_schedule_stores_the_result(store, tmp_path, capsys):
+    schedule = tmp_path / "bump.yaml"
+    schedule.write_text(
+        yaml.safe_dump(
+            {
+                "name": "bump",
+                "perturbations": [
+                    {
+                        "kind": "torque_window",
+                        "joint": 0,
+                        "onset_s": 0.5,
+                        "duration_s": 0.2,
+                        "magnitude": 0.5,
+                        "sign": 1,
+                    }
+                ],
+            }
+        )
+    )
+    status, out, err = _run(
+        capsys, "replay", "--store", store, "--schedule", schedule, "--quiet", "--json", *_SHORT
+    )
+    assert status == 0, err
+    data = json.loads(out)
+    assert data["status"] == "ok" and data["reason"] is None
+    assert len(data["metrics"]["recovery_time_s"]) == 1  # one perturbation, one recovery
+    with DemoStore(store, read_only=True) as opened:
+        result = opened.load_replay_result(data["result_id"])
+    assert result.info.parameters["kind"] == "torque_window"
+    assert result.trace["q"].shape[1] == 2
+
+
+def test_replay_stopped_by_a_limit_exits_non_zero(store, tmp_path, capsys):
+    plant = tmp_path / "weak.yaml"
+    plant.write_text(
+        yaml.safe_dump(
+            {
+                "joints": [
+                    {"name": "shoulder", "inertia": 0.08, "torque_limit": 0.05},
+                    {"name": "elbow", "inertia": 0.03},
+                ],
+                "mechanism": {"kind": "ideal", "stiffness_min": 5.0, "stiffness_max": 200.0},
+            }
+        )
+    )
+    status, out, err = _run(
+        capsys, "replay", "--store", store, "--plant", plant, "--quiet", *_SHORT
+    )
+    assert status == 1, err
+    assert "replay of cork_seat version 1: stopped (torque limit: shoulder" in out
+
+
+def test_replay_with_a_missing_schedule_file_is_a_one_line_error(store, tmp_path, capsys):
+    status, _, err = _run(capsys, "replay", "--store", store, "--schedule", tmp_path / "none.yaml")
+    assert status == 2
+    _one_line_error(err, "replay", "none.yaml' : no such file".replace("' :", "':"))
+
+
+def test_replay_of_an_unknown_skill_version_is_a_one_line_error(store, capsys):
+    status, _, err = _run(capsys, "replay", "--store", store, "--version", "7")
+    assert status == 2
+    _one_line_error(err, "replay", "skill 'cork_seat' has no version 7 (versions: 1)")
+
+
+def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
+    status, out, err = _run(
+        capsys,
+        "campaign",
+        "--store",
+        store,
+        "--scenarios",
+        "14",
+        "--seed",
+        "3",
+        "--workers",
+        "0",
+        "--json",
+        *_SHORT,
+    )
+    assert status == 0, err
+    data = json.loads(out)
+    assert (data["run"], data["skipped"], data["backend"]) == (14, 0, "inline")
+    assert data["per_kind"] == {
+        kind: {"scenarios": 2, "violations": 0} for kind in sorted(PERTURBATION_KINDS)
+    }
+    status, out, err = _run(
+        capsys, "campaign", "--store", store, "--resume", data["campaign_id"], "--json"
+    )
+    assert status == 0, err
+    assert (json.loads(out)["run"], json.loads(out)["skipped"]) == (0, 14)
+
+    status, out, err = _run(
+        capsys, "report", "--store", store, "--out", tmp_path / "rep", "--json", "--quiet"
+    )
+    assert status == 0, err
+    report = json.loads(out)
+    assert report["report"].endswith("rep/report.html")
+    assert [p.rsplit("/", 1)[1] for p in report["figures"]] == [
+        "demonstrations.png",
+        "stiffness_estimate.png",
+        "schedule_checks.png",
+        "replay_traces.png",
+        "campaign_metrics.png",
+    ]
+    assert report["summary"]["within limits"] == "14 of 14"
+    assert data["campaign_id"] in report["summary"]["campaign"]
+
+
+def test_resume_of_an_unknown_campaign_is_a_one_line_error(store, capsys):
+    status, _, err = _run(capsys, "campaign", "--store", store, "--resume", "no-such-id")
+    assert status == 2
+    _one_line_error(err, "campaign", "campaign 'no-such-id' not found")
+
+
+def test_campaign_with_a_bad_spec_file_is_a_one_line_error(store, tmp_path, capsys):
+    spec = tmp_path / "spec.yaml"
+    spec.write_text("campaign:\n  kinds: {earthquake: 1}\n")
+    status, _, err = _run(capsys, "campaign", "--store", store, "--spec", spec)
+    assert status == 2
+    _one_line_error(err, "campaign", "'earthquake', not a perturbation kind")
+
+
+def test_report_without_a_store_file_is_a_one_line_error(tmp_path, capsys):
+    status, _, err = _run(
+        capsys, "report", "--store", tmp_path / "absent.sqlite", "--out", tmp_path / "rep"
+    )
+    assert status == 2
+    _one_line_error(err, "report", "absent.sqlite")
+
+
+def test_report_with_a_truth_file_that_is_not_one_is_a_one_line_error(store, tmp_path, capsys):
+    truth = tmp_path / "truth.npz"
+    truth.write_bytes(b"not a zip file")
+    status, _, err = _run(
+        capsys, "report", "--store", store, "--truth", truth, "--out", tmp_path / "rep"
+    )
+    assert status == 2
+    _one_line_error(err, "report", "not a teacher truth file")
