@@ -14,7 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, cast
 
 import numpy as np
 import yaml
@@ -209,7 +209,7 @@ def perturbation_from_mapping(data: object, *, where: str = "perturbation") -> P
     """Validate one perturbation mapping; raise InvalidInputError naming the field and value."""
     model = _check_kind(data, where)
     try:
-        return model.model_validate(data)
+        return cast(Perturbation, model.model_validate(data))
     except ValidationError as exc:
         raise InvalidInputError(f"{where}: {_validation_message(exc, '')}") from None
 

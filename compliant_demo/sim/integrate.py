@@ -687,12 +687,13 @@ class Simulator:
         n_joints, n_scen = self._y.shape[1:]
         if not isinstance(decimation, int) or isinstance(decimation, bool) or decimation < 1:
             raise InvalidInputError(f"decimation = {decimation!r}: expected an integer >= 1")
-        commands = [
-            _commands("equilibrium", equilibrium, n_joints),
+        eq_arr = _commands("equilibrium", equilibrium, n_joints)
+        commands: list[np.ndarray | None] = [
+            eq_arr,
             _commands("stiffness", stiffness, n_joints, 0.0),
             None if damping is None else _commands("damping", damping, n_joints, 0.0),
         ]
-        n_steps = commands[0].shape[0]
+        n_steps = eq_arr.shape[0]
         for name, arr in zip(("equilibrium", "stiffness", "damping"), commands, strict=True):
             if arr is None:
                 continue

@@ -11,6 +11,7 @@ antagonistic closed forms are public for tests and tools.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import cast
 
 import numpy as np
 
@@ -34,7 +35,9 @@ def _column(records: Sequence[object], name: str) -> np.ndarray:
     return np.array([[float(getattr(r, name))] for r in records])
 
 
-def _spring_tension(elongation: np.ndarray, k1: np.ndarray, k2: np.ndarray) -> np.ndarray:
+def _spring_tension(
+    elongation: np.ndarray, k1: np.ndarray | float, k2: np.ndarray | float
+) -> np.ndarray:
     taut = np.maximum(elongation, 0.0)
     return (k1 + k2 * taut) * taut
 
@@ -363,9 +366,9 @@ def make_mechanism(
         )
     kinds = {type(r) for r in records}
     if kinds == {IdealImpedanceParams}:
-        return IdealImpedance(records)
+        return IdealImpedance(cast(list[IdealImpedanceParams], records))
     if kinds == {AntagonisticParams}:
-        return Antagonistic(records)
+        return Antagonistic(cast(list[AntagonisticParams], records))
     raise InvalidInputError(
         f"mechanism: expected IdealImpedanceParams or AntagonisticParams records of one kind, "
         f"got {sorted(k.__name__ for k in kinds)}"

@@ -23,9 +23,7 @@ from compliant_demo.sim.schedule import compile_schedules
 __all__ = ["reference_solve"]
 
 
-def _scenario_commands(arr, scenario: int) -> np.ndarray | None:
-    if arr is None:
-        return None
+def _scenario_commands(arr, scenario: int) -> np.ndarray:
     arr = np.asarray(arr, dtype=float)
     return arr[:, scenario, :] if arr.ndim == 3 else arr
 
@@ -82,7 +80,7 @@ def reference_solve(
     n_joints = len(joints)
     eq_cmd = _scenario_commands(equilibrium, scenario)
     k_cmd = _scenario_commands(stiffness, scenario)
-    d_cmd = _scenario_commands(damping, scenario)
+    d_cmd = None if damping is None else _scenario_commands(damping, scenario)
     n_steps = eq_cmd.shape[0]
     n_scen = 1 if schedules is None else len(schedules)
     compiled = compile_schedules(schedules, n_scen, [j.inertia for j in joints], dt, seed)
@@ -97,7 +95,7 @@ def reference_solve(
     k_stop = np.array([j.limit_stiffness for j in joints])
     b_stop = np.array([j.limit_damping for j in joints])
     ideal = isinstance(mechanism, IdealImpedanceParams)
-    if ideal:
+    if isinstance(mechanism, IdealImpedanceParams):
         lag = mechanism.time_constant
         rate = np.repeat([mechanism.stiffness_rate_limit, mechanism.damping_rate_limit], n_joints)
     else:

@@ -150,6 +150,12 @@ def _sine(amplitude: float, frequency: float, phase: float) -> Callable[[np.ndar
     return lambda t: amplitude * np.sin(2 * np.pi * frequency * t + phase)
 
 
+def _series(
+    frequencies: np.ndarray, coefficients: np.ndarray
+) -> Callable[[np.ndarray], np.ndarray]:
+    return lambda t: random_torque_value(frequencies, coefficients, t)
+
+
 def _below_nyquist(frequency_hz: float, name: str, dt: float) -> None:
     if frequency_hz >= 0.5 / dt:
         raise InvalidInputError(
@@ -173,7 +179,7 @@ def compile_schedules(
     compiled = CompiledSchedules(dt=dt, n_scenarios=n_scenarios, n_joints=n_joints)
     if schedules is None:
         return compiled
-    base_seed = seed if seed is not None else int(np.random.SeedSequence().entropy % 2**63)
+    base_seed = seed if seed is not None else int(np.random.SeedSequence().generate_state(1)[0])
     layer_count: dict[tuple[int, int], int] = {}
     for s, schedule in enumerate(schedules):
         for i, p in enumerate(schedule.perturbations):
@@ -211,12 +217,8 @@ def compile_schedules(
                     continue
                 rng = np.random.default_rng(p.seed if p.seed is not None else [base_seed, s, i])
                 freqs, coefs = random_torque_coefficients(p, (stop - start) * dt, rng)
-                compiled.terms.append(
-                    TorqueTerm(
-                        s, p.joint, start, stop,
-                        lambda t, f=freqs, c=coefs: random_torque_value(f, c, t),
-                    )
-                )
+                profile = _series(freqs, coefs)
+                compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
             elif isinstance(p, Wall):
                 layer = layer_count.get((s, p.joint), 0)
                 layer_count[(s, p.joint)] = layer + 1
