@@ -1,0 +1,84 @@
+"""The tour end to end: teacher and recorder as real ROS 2 processes on loopback, learning, a
+campaign over every perturbation kind, and the report opened in headless Chromium."""
+
+from __future__ import annotations
+
+import json
+import os
+
+import pytest
+from _chromium import visit
+
+from compliant_demo.cli import main
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.perturbation import PERTURBATION_KINDS
+from compliant_demo.store import DemoStore
+from compliant_demo.tour import TourSettings, node_environment, package_launch_file
+
+DOMAIN_ID = 47  # this file's own ROS domain (tests use 20-99)
+
+
+@pytest.mark.ros
+@pytest.mark.slow
+def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, capsys,
+                                                                     monkeypatch):
+    # The test process itself stays on loopback too, whatever it imports.
+    monkeypatch.setenv("ROS_AUTOMATIC_DISCOVERY_RANGE", "LOCALHOST")
+    monkeypatch.setenv("ROS_DOMAIN_ID", str(DOMAIN_ID))
+    store, out = tmp_path / "store.sqlite", tmp_path / "tour"
+    status = main(["tour", "--store", str(store), "--out", str(out), "--demos", "2",
+                   "--scenarios", "28", "--seed", "3", "--domain-id", str(DOMAIN_ID),
+                   "--workers", "2", "--json"])
+    captured = capsys.readouterr()
+    assert status == 0, captured.err
+    result = json.loads(captured.out)
+
+    with DemoStore(store, read_only=True) as opened:
+        demos = [opened.get_info(i) for i in result["demonstration_ids"]]
+        skill = opened.load_skill("cork_seat")
+        results = list(opened.find_replay_results(campaign_id=result["campaign"]["id"]))
+    assert [d.status for d in demos] == ["complete", "complete"]
+    assert all(d.has_stiffness and d.n_samples > 5000 for d in demos)
+    assert skill.id == result["skill"]["id"]
+    assert sorted(skill.demonstration_ids) == sorted(result["demonstration_ids"])
+    assert len(results) == 28
+    assert sorted({r.parameters["kind"] for r in results}) == sorted(PERTURBATION_KINDS)
+    assert set(result["timings_s"]) == {"record", "learn", "campaign", "report", "total"}
+
+    truth = out / "teacher_truth.npz"
+    assert truth.is_file() and (out / "nodes.log").is_file()
+    seen = visit(out / "report.html")
+    assert seen.errors == []
+    assert [i["figure"] for i in seen.images] == [
+        "fig-demonstrations", "fig-stiffness_estimate", "fig-schedule_checks",
+        "fig-replay_traces", "fig-campaign_metrics"]
+    assert all(i["complete"] and i["width"] > 300 for i in seen.images)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "estimate coverage" in page and "cork_seat version 1" in page
+    assert "ISO/TS 15066" in page and "Limit violations in the campaign" in page
+
+
+def test_node_processes_get_loopback_discovery_and_their_domain(monkeypatch):
+    monkeypatch.setenv("ROS_DOMAIN_ID", "3")
+    monkeypatch.delenv("ROS_AUTOMATIC_DISCOVERY_RANGE", raising=False)
+    env = node_environment(61)
+    assert env["ROS_AUTOMATIC_DISCOVERY_RANGE"] == "LOCALHOST"
+    assert env["ROS_DOMAIN_ID"] == "61"
+    assert os.environ["ROS_DOMAIN_ID"] == "3"  # this process's own environment is untouched
+
+
+def test_the_recording_launch_file_ships_with_the_package():
+    assert package_launch_file("record.launch.xml").name == "record.launch.xml"
+    with pytest.raises(InvalidInputError, match=r"launch file 'nope.launch.xml' not found"):
+        package_launch_file("nope.launch.xml")
+
+
+@pytest.mark.parametrize(("changes", "message"), [
+    ({"n_demonstrations": 1}, r"n_demonstrations = 1: must be 2 to 50"),
+    ({"n_scenarios": 0}, r"n_scenarios = 0: must be >= 1"),
+    ({"domain_id": 102}, r"domain_id = 102: must be 0 to 101"),
+    ({"record_timeout_s": 0.0}, r"record_timeout_s = 0.0: must be > 0 s"),
+])
+def test_bad_tour_settings_are_refused(tmp_path, changes, message):
+    with pytest.raises(InvalidInputError, match=message):
+        TourSettings(store=tmp_path / "s.sqlite", out_dir=tmp_path, **changes)
