@@ -111,3 +111,134 @@ def test_parameter_yaml_malformed_file_is_a_named_error(
     path.write_bytes(document)
     with pytest.raises(CompliantDemoError, match=match):
         load_yaml_model(JointParams, path)
+
+
+# -- perturbation schedules and campaigns --------------------------------------------------------
+
+CONFIG = Path(__file__).resolve().parent.parent / "config"
+_PERTURBATION_FILES = {
+    "schedules": CONFIG / "perturbations_cork_seat.yaml",
+    "campaign": CONFIG / "perturbations_campaign.yaml",
+}
+
+
+def _paths(tree: object, prefix: tuple = ()) -> list[tuple]:
+    """Every path (tuple of keys and indices) to a node of a parsed YAML tree."""
+    found = [prefix]
+    if isinstance(tree, dict):
+        for key, value in tree.items():
+            found += _paths(value, (*prefix, key))
+    elif isinstance(tree, list):
+        for index, value in enumerate(tree):
+            found += _paths(value, (*prefix, index))
+    return found
+
+
+def _replace(tree: object, path: tuple, value: object) -> object:
+    if not path:
+        return value
+    head, rest = path[0], path[1:]
+    if isinstance(tree, dict):
+        return {**tree, head: _replace(tree[head], rest, value)}
+    copy = list(tree)  # type: ignore[call-overload]
+    copy[head] = _replace(copy[head], rest, value)
+    return copy
+
+
+def _delete(tree: object, path: tuple) -> object:
+    if len(path) == 1:
+        if isinstance(tree, dict):
+            return {k: v for k, v in tree.items() if k != path[0]}
+        return [v for i, v in enumerate(tree) if i != path[0]]  # type: ignore[arg-type]
+    head = path[0]
+    if isinstance(tree, dict):
+        return {**tree, head: _delete(tree[head], path[1:])}
+    copy = list(tree)  # type: ignore[call-overload]
+    copy[head] = _delete(copy[head], path[1:])
+    return copy
+
+
+_leaf_junk = st.one_of(
+    _scalars,
+    st.sampled_from([-1, 0, 1e-300, 1e300, -0.0, 2**63, "impulse", "wall", "hold", "uniform",
+                     "log_uniform", "normal", "choice", "fixed", [], {}, [0, 1], {"low": 1}]),
+)  # fmt: skip
+
+
+@st.composite
+def _mutated_tree(draw: st.DrawFn, tree: object) -> object:
+    for _ in range(draw(st.integers(1, 4))):
+        path = draw(st.sampled_from(_paths(tree)))
+        action = draw(st.sampled_from(["replace", "delete", "add"]))
+        if action == "delete" and path:
+            tree = _delete(tree, path)
+        elif action == "add":
+            target = tree
+            for part in path:
+                target = target[part]  # type: ignore[index]
+            if isinstance(target, dict):
+                key = draw(st.sampled_from(["kind", "low", "high", "extra", "seed", "onset_s"]))
+                tree = _replace(tree, path, {**target, key: draw(_leaf_junk)})
+            else:
+                tree = _replace(tree, path, draw(_leaf_junk))
+        else:
+            tree = _replace(tree, path, draw(_leaf_junk))
+    return tree
+
+
+def _check_perturbation_yaml(document: bytes, which: str) -> None:
+    from compliant_demo.perturbation import (
+        CampaignSpec,
+        PerturbationSchedule,
+        draw_scenarios,
+        load_campaign_yaml,
+        load_schedules_yaml,
+    )
+
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "perturbations.yaml"
+        path.write_bytes(document)
+        with no_hang(10.0):
+            try:
+                if which == "campaign":
+                    spec = load_campaign_yaml(path)
+                    assert isinstance(spec, CampaignSpec)
+                    schedules = draw_scenarios(spec, 3, seed=7)
+                else:
+                    schedules = load_schedules_yaml(path)
+            except InvalidInputError as exc:
+                assert "perturbations.yaml" in str(exc) or which == "campaign", str(exc)
+            else:
+                assert all(isinstance(s, PerturbationSchedule) for s in schedules)
+    count_case(f"perturbation_{which}_yaml")
+
+
+@FUZZ_SETTINGS
+@given(data=st.data(), which=st.sampled_from(sorted(_PERTURBATION_FILES)), raw=st.booleans())
+def test_fuzz_perturbation_yaml(data: st.DataObject, which: str, raw: bool) -> None:
+    original = _PERTURBATION_FILES[which].read_bytes()
+    if raw:
+        document = data.draw(
+            st.builds(
+                _mutate,
+                st.just(original),
+                st.lists(st.tuples(st.integers(0, 10_000), st.integers(0, 255)), min_size=1,
+                         max_size=6),
+            )  # fmt: skip
+        )
+    else:
+        tree = data.draw(_mutated_tree(yaml.safe_load(original)))
+        document = yaml.safe_dump(tree, allow_unicode=True).encode()
+    _check_perturbation_yaml(document, which)
+
+
+@pytest.mark.parametrize("which", sorted(_PERTURBATION_FILES))
+def test_perturbation_fuzzer_starts_from_valid_files(which: str) -> None:
+    # The mutations start from files that load; otherwise the fuzz test would prove nothing.
+    from compliant_demo.perturbation import draw_scenarios, load_campaign_yaml, load_schedules_yaml
+
+    path = _PERTURBATION_FILES[which]
+    if which == "campaign":
+        assert len(draw_scenarios(load_campaign_yaml(path), 3, seed=7)) == 3
+    else:
+        assert len(load_schedules_yaml(path)) >= 3
