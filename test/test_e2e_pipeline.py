@@ -206,9 +206,9 @@ def test_pipeline_launch_runs_all_four_nodes_to_a_stored_replay(tmp_path: Path) 
         {"teacher": {"pause_s": "0.2", "duration_s": "3.0"}},
     ) as nodes:
         assert nodes.names == ["recorder", "teacher", "learner", "replay"]
-        assert nodes.wait("replay", 150.0) == 0, nodes.all_logs()
-        assert nodes.wait("teacher", 10.0) == 0, nodes.all_logs()
-        assert nodes.wait("learner", 10.0) == 0, nodes.all_logs()
+        assert nodes.wait("teacher", 60.0) == 0, nodes.all_logs()
+        assert nodes.wait("learner", 40.0) == 0, nodes.all_logs()
+        assert nodes.wait("replay", 60.0) == 0, nodes.all_logs()
         assert nodes.interrupt("recorder") == 0, nodes.all_logs()
     with DemoStore(store, read_only=True) as db:
         assert db.count_demonstrations(status="complete") == 2
