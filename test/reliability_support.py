@@ -25,6 +25,7 @@ from typing import Any
 
 import numpy as np
 from hypothesis import HealthCheck, Phase, settings
+from hypothesis import strategies as st
 
 __all__ = [
     "JOINTS",
@@ -39,6 +40,7 @@ __all__ = [
     "expected_samples",
     "field",
     "integrity",
+    "mutated_tree",
     "no_hang",
     "run_kill_trials",
     "sample_digest",
@@ -91,6 +93,64 @@ def no_hang(seconds: float) -> Iterator[None]:
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0.0)
         signal.signal(signal.SIGALRM, previous)
+
+
+def _paths(tree: object, prefix: tuple = ()) -> list[tuple]:
+    """Every path (tuple of keys and indices) to a node of a parsed YAML tree."""
+    found = [prefix]
+    if isinstance(tree, dict):
+        for key, value in tree.items():
+            found += _paths(value, (*prefix, key))
+    elif isinstance(tree, list):
+        for index, value in enumerate(tree):
+            found += _paths(value, (*prefix, index))
+    return found
+
+
+def _replace(tree: object, path: tuple, value: object) -> object:
+    if not path:
+        return value
+    head, rest = path[0], path[1:]
+    if isinstance(tree, dict):
+        return {**tree, head: _replace(tree[head], rest, value)}
+    copy = list(tree)  # type: ignore[call-overload]
+    copy[head] = _replace(copy[head], rest, value)
+    return copy
+
+
+def _delete(tree: object, path: tuple) -> object:
+    if len(path) == 1:
+        if isinstance(tree, dict):
+            return {k: v for k, v in tree.items() if k != path[0]}
+        return [v for i, v in enumerate(tree) if i != path[0]]  # type: ignore[arg-type]
+    head = path[0]
+    if isinstance(tree, dict):
+        return {**tree, head: _delete(tree[head], path[1:])}
+    copy = list(tree)  # type: ignore[call-overload]
+    copy[head] = _delete(copy[head], path[1:])
+    return copy
+
+
+@st.composite
+def mutated_tree(draw: st.DrawFn, tree: object, leaves: st.SearchStrategy) -> object:
+    """``tree`` (parsed YAML or JSON) with 1-4 nodes replaced by ``leaves``, deleted or added."""
+    for _ in range(draw(st.integers(1, 4))):
+        path = draw(st.sampled_from(_paths(tree)))
+        action = draw(st.sampled_from(["replace", "delete", "add"]))
+        if action == "delete" and path:
+            tree = _delete(tree, path)
+        elif action == "add":
+            target = tree
+            for part in path:
+                target = target[part]  # type: ignore[index]
+            if isinstance(target, dict):
+                key = draw(st.sampled_from(["kind", "low", "high", "extra", "seed", "onset_s"]))
+                tree = _replace(tree, path, {**target, key: draw(leaves)})
+            else:
+                tree = _replace(tree, path, draw(leaves))
+        else:
+            tree = _replace(tree, path, draw(leaves))
+    return tree
 
 
 def field(record: Any, name: str) -> Any:

@@ -14,7 +14,7 @@ import pytest
 import yaml
 from hypothesis import given
 from hypothesis import strategies as st
-from reliability_support import FUZZ_SETTINGS, count_case, no_hang
+from reliability_support import FUZZ_SETTINGS, count_case, mutated_tree, no_hang
 
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.models import (
@@ -122,68 +122,11 @@ _PERTURBATION_FILES = {
 }
 
 
-def _paths(tree: object, prefix: tuple = ()) -> list[tuple]:
-    """Every path (tuple of keys and indices) to a node of a parsed YAML tree."""
-    found = [prefix]
-    if isinstance(tree, dict):
-        for key, value in tree.items():
-            found += _paths(value, (*prefix, key))
-    elif isinstance(tree, list):
-        for index, value in enumerate(tree):
-            found += _paths(value, (*prefix, index))
-    return found
-
-
-def _replace(tree: object, path: tuple, value: object) -> object:
-    if not path:
-        return value
-    head, rest = path[0], path[1:]
-    if isinstance(tree, dict):
-        return {**tree, head: _replace(tree[head], rest, value)}
-    copy = list(tree)  # type: ignore[call-overload]
-    copy[head] = _replace(copy[head], rest, value)
-    return copy
-
-
-def _delete(tree: object, path: tuple) -> object:
-    if len(path) == 1:
-        if isinstance(tree, dict):
-            return {k: v for k, v in tree.items() if k != path[0]}
-        return [v for i, v in enumerate(tree) if i != path[0]]  # type: ignore[arg-type]
-    head = path[0]
-    if isinstance(tree, dict):
-        return {**tree, head: _delete(tree[head], path[1:])}
-    copy = list(tree)  # type: ignore[call-overload]
-    copy[head] = _delete(copy[head], path[1:])
-    return copy
-
-
 _leaf_junk = st.one_of(
     _scalars,
     st.sampled_from([-1, 0, 1e-300, 1e300, -0.0, 2**63, "impulse", "wall", "hold", "uniform",
                      "log_uniform", "normal", "choice", "fixed", [], {}, [0, 1], {"low": 1}]),
 )  # fmt: skip
-
-
-@st.composite
-def _mutated_tree(draw: st.DrawFn, tree: object) -> object:
-    for _ in range(draw(st.integers(1, 4))):
-        path = draw(st.sampled_from(_paths(tree)))
-        action = draw(st.sampled_from(["replace", "delete", "add"]))
-        if action == "delete" and path:
-            tree = _delete(tree, path)
-        elif action == "add":
-            target = tree
-            for part in path:
-                target = target[part]  # type: ignore[index]
-            if isinstance(target, dict):
-                key = draw(st.sampled_from(["kind", "low", "high", "extra", "seed", "onset_s"]))
-                tree = _replace(tree, path, {**target, key: draw(_leaf_junk)})
-            else:
-                tree = _replace(tree, path, draw(_leaf_junk))
-        else:
-            tree = _replace(tree, path, draw(_leaf_junk))
-    return tree
 
 
 def _check_perturbation_yaml(document: bytes, which: str) -> None:
@@ -227,7 +170,7 @@ def test_fuzz_perturbation_yaml(data: st.DataObject, which: str, raw: bool) -> N
             )  # fmt: skip
         )
     else:
-        tree = data.draw(_mutated_tree(yaml.safe_load(original)))
+        tree = data.draw(mutated_tree(yaml.safe_load(original), _leaf_junk))
         document = yaml.safe_dump(tree, allow_unicode=True).encode()
     _check_perturbation_yaml(document, which)
 
