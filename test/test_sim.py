@@ -355,3 +355,19 @@ def test_external_torque_in_step_api_matches_a_torque_step():
                      schedules=[schedule])
     assert state.q[0, 0] == pytest.approx(batch.q[-1, 0, 0], abs=1e-14)
     assert state.tau_external[0, 0] == pytest.approx(0.8)
+
+
+def test_two_walls_on_one_joint_add_up():
+    n = 2500
+    push = TorqueStep(onset_s=0.0, magnitude=3.0)
+    twin = [Wall(position=0.02, magnitude=300.0, damping=1.0)] * 2
+    schedules = [
+        PerturbationSchedule(perturbations=[push, *twin]),
+        PerturbationSchedule(perturbations=[push, Wall(position=0.02, magnitude=600.0,
+                                                       damping=2.0)]),
+    ]
+    result = simulate([_joint(viscous_damping=0.3)], _ideal(), _constant(0.0, n),
+                      _constant(10.0, n), schedules=schedules)
+    # springs in parallel add (common practice): two 300 N*m/rad walls act as one of 600
+    assert np.allclose(result.q[:, 0], result.q[:, 1], rtol=0, atol=1e-12)
+    assert result.q[-1, 0, 0] == pytest.approx((3.0 + 600 * 0.02) / 610.0, abs=1e-7)

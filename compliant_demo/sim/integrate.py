@@ -375,7 +375,6 @@ class Simulator:
         self._free = np.ones(shape)
         self._jumps = np.zeros(shape)  # perturbation work done in jumps (impulses, hold onsets)
         self._injection = np.zeros(shape)
-        self._set_k = np.zeros(shape)
         self._step_index = 0
         self._events_applied = -1
         self._started = False
@@ -395,7 +394,9 @@ class Simulator:
         self._active_walls: list[dict[int, tuple]] = [
             {} for _ in range(self._perturb.n_wall_layers)
         ]
-        self._wall_layers: list[tuple[np.ndarray, ...]] = []
+        # active walls of all layers as flat-index arrays (index, position, side, stiffness,
+        # damping) and whether an index repeats (walls of two layers on one joint), or None
+        self._walls: tuple | None = None
 
     def _start(self, targets: np.ndarray) -> None:
         """Put actuators at the first targets and the link at rest there (or at q0)."""
@@ -411,7 +412,6 @@ class Simulator:
             + self._gravity_potential(self._y[0])
             + self._stop_potential0
         )
-        self._set_k = self._kernel.set_stiffness(act, targets) * np.ones_like(self._y[0])
         self._started = True
 
     # ----------------------------------------------------------------- model
@@ -441,12 +441,16 @@ class Simulator:
         out -= contact_force(q - self._upper, dq, self._k_stop, self._b_stop)
 
     def _wall_torque(self, q: np.ndarray, dq: np.ndarray, out: np.ndarray) -> None:
-        """Add wall contact torques into ``out`` (flat views; each layer's indexes unique)."""
+        """Add wall contact torques into ``out`` (via flat views of the joint-major arrays)."""
         q_flat, dq_flat, out_flat = q.reshape(-1), dq.reshape(-1), out.reshape(-1)
-        for index, position, side, stiffness, damping in self._wall_layers:
-            penetration = (q_flat[index] - position) * side
-            force = contact_force(penetration, side * dq_flat[index], stiffness, damping)
-            out_flat[index] -= side * force
+        index, position, side, stiffness, damping, repeated = self._walls
+        penetration = (q_flat[index] - position) * side
+        force = contact_force(penetration, side * dq_flat[index], stiffness, damping)
+        force *= side
+        if repeated:
+            np.subtract.at(out_flat, index, force)
+        else:
+            out_flat[index] -= force
 
     def _rhs(
         self, y: np.ndarray, targets: np.ndarray, ext: np.ndarray | None, f: np.ndarray
@@ -471,7 +475,7 @@ class Simulator:
             torques[_EXTERNAL].fill(0.0)
         else:
             np.copyto(torques[_EXTERNAL], ext)
-        if self._wall_layers:
+        if self._walls is not None:
             self._wall_torque(q, dq, torques[_EXTERNAL])
         np.add(torques[0], torques[1], out=f[1])
         f[1] += torques[2]
@@ -489,7 +493,6 @@ class Simulator:
         if not have_first:
             self._rhs(y, targets, e0, stages[0])
         act = y[2 : self._n_dyn]
-        set_before = self._set_k
         deflection_before = y[0] - self._kernel.equilibrium(act, targets)
         if self.method == "rk4":
             n, ys = self._n_dyn, self._stage_state
@@ -513,17 +516,17 @@ class Simulator:
         else:
             np.multiply(stages[0], h, out=self._acc)
             y += self._acc
-        self._set_k = self._kernel.set_stiffness(act, targets)
-        # midpoint rule for 1/2 * dK/dt * deflection^2 over the step
-        middle = self._kernel.equilibrium(act, targets)
-        np.subtract(y[0], middle, out=middle)
-        middle += deflection_before
+        # midpoint rule for 1/2 * dK/dt * deflection^2 over the step, from the step's increments
+        # (left in self._acc by every method): deflection at mid-step is the one before plus
+        # half the change of angle minus half the change of the set equilibrium
+        increment = self._acc
+        middle = increment[0] - self._kernel.equilibrium_change(increment[2 : self._n_dyn])
         middle *= 0.5
+        middle += deflection_before
         middle *= middle
-        change = self._set_k - set_before
-        change *= middle
-        change *= 0.5
-        self._injection += change
+        middle *= self._kernel.set_stiffness_change(increment[2 : self._n_dyn])
+        middle *= 0.5
+        self._injection += middle
         self._step_index += 1
 
     def _apply_events(self, step: int) -> None:
@@ -560,14 +563,17 @@ class Simulator:
                 walls_changed = True
         self._accel_scale = self._inv_inertia_full * self._free
         if walls_changed:
-            self._wall_layers = [
-                (
-                    np.fromiter(layer, dtype=np.intp),
-                    *(np.array([v[i] for v in layer.values()], dtype=float) for i in range(4)),
+            entries = [(flat, *v) for layer in self._active_walls for flat, v in layer.items()]
+            if entries:
+                columns = list(zip(*entries, strict=True))
+                index = np.array(columns[0], dtype=np.intp)
+                self._walls = (
+                    index,
+                    *(np.array(c, dtype=float) for c in columns[1:]),
+                    len(set(columns[0])) < index.size,
                 )
-                for layer in self._active_walls
-                if layer
-            ]
+            else:
+                self._walls = None
 
     # ----------------------------------------------------------------- observation
     def _observe(
@@ -593,7 +599,8 @@ class Simulator:
         stop_potential = self._stop_potential(q)
         works = y[self._n_dyn :]
         contact = (q < self._lower) | (q > self._upper)
-        for index, position, side, _, _ in self._wall_layers:
+        if self._walls is not None:
+            index, position, side = self._walls[:3]
             contact.reshape(-1)[index] |= (q.reshape(-1)[index] - position) * side > 0
         shape = q.shape
         return {

@@ -168,8 +168,13 @@ class Mechanism:
         """Stiffness realised at the state, N*m/rad."""
         raise NotImplementedError
 
-    def set_stiffness(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
-        """Stiffness the actuators are set to (independent of the link angle), N*m/rad."""
+    def set_stiffness_change(self, act_change: np.ndarray) -> np.ndarray:
+        """Change of the stiffness the actuators are set to (independent of the link angle),
+        N*m/rad, for a change ``act_change`` of the actuator rows."""
+        raise NotImplementedError
+
+    def equilibrium_change(self, act_change: np.ndarray) -> np.ndarray | float:
+        """Change of :meth:`equilibrium` within a step (commands held) for ``act_change``."""
         raise NotImplementedError
 
     def damping(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
@@ -240,8 +245,11 @@ class IdealImpedance(Mechanism):
     def stiffness(self, q, act, targets):
         return np.broadcast_to(act[0], np.broadcast_shapes(np.shape(q), act[0].shape)).copy()
 
-    def set_stiffness(self, act, targets):
-        return act[0].copy()
+    def set_stiffness_change(self, act_change):
+        return act_change[0]
+
+    def equilibrium_change(self, act_change):
+        return 0.0  # the equilibrium is the command itself, held over the step
 
     def damping(self, act, targets):
         return act[1].copy()
@@ -333,8 +341,16 @@ class Antagonistic(Mechanism):
             total = total + np.where(phi > 0, self.k1 + 2 * self.k2 * phi, 0.0)
         return total
 
-    def set_stiffness(self, act, targets):
-        return 2 * self.k1 + 2 * self.k2 * (act[0] - act[1])
+    def set_stiffness_change(self, act_change):
+        change = act_change[0] - act_change[1]
+        change *= self._k2
+        change *= 2.0
+        return change
+
+    def equilibrium_change(self, act_change):
+        change = act_change[0] + act_change[1]
+        change *= 0.5
+        return change
 
     def damping(self, act, targets):
         return np.zeros_like(act[0])
