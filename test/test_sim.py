@@ -323,7 +323,8 @@ def test_out_of_range_commands_are_clamped_and_reported():
 
 
 def test_batch_equals_single_scenarios_and_step_api():
-    joints = [_joint(name="shoulder", viscous_damping=0.05), _joint(name="elbow")]
+    joints = [_joint(name="shoulder", viscous_damping=0.05, torque_noise_std=0.01),
+              _joint(name="elbow")]
     schedules = [
         PerturbationSchedule(perturbations=[Impulse(onset_s=0.05, magnitude=0.02, joint=1)]),
         PerturbationSchedule(perturbations=[Wall(position=0.01, relative=True, onset_s=0.02)]),
@@ -334,14 +335,16 @@ def test_batch_equals_single_scenarios_and_step_api():
     eq = np.stack([0.2 * np.sin(5 * t), 0.1 * t], axis=1)
     k = np.stack([50 + 0 * t, 90 + 100 * t], axis=1)
     params = AntagonisticParams()
-    batch = simulate(joints, params, eq, k, schedules=schedules)
+    batch = simulate(joints, params, eq, k, schedules=schedules, seed=3)
     for s, schedule in enumerate(schedules):
         alone = simulate(joints, params, eq, k, schedules=[schedule])
         assert np.allclose(alone.q[:, 0], batch.q[:, s], rtol=0, atol=1e-14)
-    sim = Simulator(joints, params, n_scenarios=3, schedules=schedules)
+    sim = Simulator(joints, params, n_scenarios=3, schedules=schedules, seed=3)
     states = [sim.step(eq[i], k[i]) for i in range(n)]
     stepped = np.stack([s.q for s in states])
     assert np.allclose(stepped, batch.q[1:], rtol=0, atol=1e-14)
+    measured = np.stack([s.tau_measured for s in states])
+    assert np.allclose(measured, batch.tau_measured[1:], rtol=0, atol=1e-12)
     assert states[-1].t == pytest.approx(n * 1e-3)
 
 

@@ -322,7 +322,11 @@ class Simulator:
         if check_stability:
             wall_k, wall_b = self._perturb.wall_stiffness()
             check_step_stability(joints, mechanism, self.dt, method, wall_k, wall_b)
-        self._rng = np.random.default_rng(seed)
+        # sensor noise of the sample at step k comes from its own stream (seed, k), so a run
+        # stepped one command at a time measures exactly what a whole-array run does
+        self._noise_seed = (
+            seed if seed is not None else int(np.random.SeedSequence().generate_state(1)[0])
+        )
         self._setup_joints(joints)
         self._setup_state(n_joints, n_scenarios, q0, dq0)
         self._setup_events()
@@ -590,7 +594,8 @@ class Simulator:
         tau_mech = torques[_SPRING] + (self._mech_damping if kernel.damping_range()[1].any() else 0)
         tau_measured = tau_mech
         if self._noise.any():
-            tau_measured = tau_mech + self._noise * self._rng.standard_normal(q.shape)
+            stream = np.random.default_rng([self._noise_seed, self._step_index])
+            tau_measured = tau_mech + self._noise * stream.standard_normal(q.shape)
         q_measured = q
         if self._resolution.any():
             resolution = np.where(self._resolution > 0, self._resolution, 1.0)
