@@ -644,8 +644,10 @@ class RecordingSession:
             if current is None:
                 if self.trigger is None or not self.trigger.should_start(sample[1]):
                     return False
-                self.start()
+                started, _message = self.start()
                 current = self.current
+                if not started or current is None:
+                    return False
                 # The triggering sample was received while idle and is also the demo's first.
                 current.counters.received += 1
                 self.checker.last_stamp = stamp

@@ -129,7 +129,8 @@ class TeachingSession:
             arrays[f"seed_{index}"] = np.array(self.seed + index)
             if index < len(self._truth):
                 arrays[f"t_{index}"], arrays[f"stiffness_{index}"] = self._truth[index]
-        np.savez(path, joints=np.array(self.scenario.joint_names), **arrays)
+        arrays["joints"] = np.array(self.scenario.joint_names)
+        np.savez(path, **arrays)  # type: ignore[arg-type]
 
 
 @dataclass(frozen=True)
@@ -247,7 +248,8 @@ class ReplayPlant(BaseModel):
 
     joints: tuple[JointParams, ...] = Field(..., min_length=1, description="Target joints.")
     mechanism: MechanismParams = Field(
-        default_factory=IdealImpedanceParams, description="Variable-stiffness mechanism."
+        default_factory=lambda: IdealImpedanceParams.model_validate({}),
+        description="Variable-stiffness mechanism.",
     )
 
     def for_joints(self, names: Sequence[str]) -> list[JointParams]:

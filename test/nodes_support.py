@@ -118,8 +118,14 @@ def start_module(
     return Nodes([process], [name], [log])
 
 
-def wait_for(predicate: Callable[[], Any], timeout_s: float, what: str, interval_s=0.1) -> Any:
-    """Poll ``predicate`` until it returns something truthy; fail naming ``what`` on timeout."""
+def wait_for(
+    predicate: Callable[[], Any],
+    timeout_s: float,
+    what: str,
+    idle: Callable[[], Any] = lambda: time.sleep(0.1),
+) -> Any:
+    """Call ``idle`` until ``predicate`` returns something truthy; fail naming ``what`` on
+    timeout."""
     deadline = time.monotonic() + timeout_s
     while True:
         value = predicate()
@@ -127,7 +133,17 @@ def wait_for(predicate: Callable[[], Any], timeout_s: float, what: str, interval
             return value
         if time.monotonic() > deadline:
             raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
-        time.sleep(interval_s)
+        idle()
+
+
+def simulate_rollout(joints, mechanism, rollout, schedule, seed: int, dt: float = 1e-3):
+    """The rollout's commands through the core simulation directly (one scenario)."""
+    from compliant_demo.sim import simulate
+
+    n = len(rollout.t) - 1
+    return simulate(joints, mechanism, rollout.position[:n], rollout.stiffness[:n],
+                    rollout.damping[:n], schedules=None if schedule is None else [schedule],
+                    q0=rollout.position[0], dt=dt, seed=seed)
 
 
 class TestClient:
@@ -155,14 +171,8 @@ class TestClient:
             self.executor.spin_once(timeout_sec=0.02)
 
     def spin_until(self, predicate: Callable[[], Any], timeout_s: float, what: str) -> Any:
-        deadline = time.monotonic() + timeout_s
-        while True:
-            value = predicate()
-            if value:
-                return value
-            if time.monotonic() > deadline:
-                raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
-            self.executor.spin_once(timeout_sec=0.02)
+        return wait_for(predicate, timeout_s, what,
+                        lambda: self.executor.spin_once(timeout_sec=0.02))
 
     def call_trigger(self, service: str, timeout_s: float = 10.0) -> Any:
         from std_srvs.srv import Trigger

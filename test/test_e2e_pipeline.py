@@ -13,13 +13,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env
+from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env, simulate_rollout
 from numpy.lib.stride_tricks import sliding_window_view
 
 from compliant_demo.learning import load_skill
 from compliant_demo.perturbation import load_schedule_yaml
 from compliant_demo.runtime import load_plant
-from compliant_demo.sim import simulate
 from compliant_demo.store import DemoStore
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
@@ -174,17 +173,7 @@ def test_replay_with_a_schedule_stores_metrics_and_matches_core_simulation(
         dt=1e-3, target_inertia=[j.inertia for j in joints], horizon_s=skill.duration_s + 0.5
     )
     n = len(rollout.t) - 1
-    direct = simulate(
-        joints,
-        plant.mechanism,
-        rollout.position[:n],
-        rollout.stiffness[:n],
-        rollout.damping[:n],
-        schedules=[schedule],
-        q0=rollout.position[0],
-        dt=1e-3,
-        seed=5,
-    )
+    direct = simulate_rollout(joints, plant.mechanism, rollout, schedule, seed=5)
     trace = result.trace
     assert trace["q"].shape == (n, 2)
     # Bound: 1e-9 rad and rad/s; both step the same integrator on the same commands, so only

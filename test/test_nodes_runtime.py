@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from nodes_support import simulate_rollout
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import learn_skill
@@ -20,7 +21,6 @@ from compliant_demo.runtime import (
     learn_from_store,
     load_plant,
 )
-from compliant_demo.sim import simulate
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import cork_seat_scenario, teaching_series
 
@@ -196,17 +196,7 @@ def test_replay_run_steps_the_same_trajectory_as_simulate(skill) -> None:
     assert metrics["steps"] == metrics["steps_planned"] == run.n_steps
     rollout = run.rollout
     n = run.n_steps
-    direct = simulate(
-        run.joints,
-        plant.mechanism,
-        rollout.position[:n],
-        rollout.stiffness[:n],
-        rollout.damping[:n],
-        schedules=[schedule],
-        q0=rollout.position[0],
-        dt=1e-3,
-        seed=9,
-    )
+    direct = simulate_rollout(run.joints, plant.mechanism, rollout, schedule, seed=9)
     # Same integrator on the same commands: equal to rounding (bound 1e-12 rad).
     np.testing.assert_allclose(trace["q"], direct.q[1:, 0, :], rtol=0, atol=1e-12)
     np.testing.assert_allclose(trace["t"], direct.t[1:], rtol=0, atol=1e-12)

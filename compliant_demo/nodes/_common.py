@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from typing import Any
 
+import numpy as np
 import rclpy
 from builtin_interfaces.msg import Time
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
@@ -108,7 +109,7 @@ def to_stamp(seconds: float) -> Time:
     return Time(sec=sec, nanosec=nanosec)
 
 
-def float_array(values: Sequence[float]) -> Float64MultiArray:
+def float_array(values: Sequence[float] | np.ndarray) -> Float64MultiArray:
     """One value per joint, in the node's ``joints`` order (no layout dimensions needed)."""
     message = Float64MultiArray()
     message.data = [float(v) for v in values]

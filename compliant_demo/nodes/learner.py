@@ -84,7 +84,7 @@ class LearnerNode(Node):
             with open_store(self._store_path, read_only=True) as store:
                 available = len(matching_demonstrations(store, self._request()))
         except CompliantDemoError as exc:
-            self.get_logger().warn(f"cannot query the store yet: {exc}", throttle_duration_sec=5)
+            self.get_logger().warning(f"cannot query the store yet: {exc}", throttle_duration_sec=5)
             return
         if available < self._wait_for:
             return

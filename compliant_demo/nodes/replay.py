@@ -73,7 +73,7 @@ class ReplayNode(Node):
         self._run: ReplayRun | None = None
         self._skill_id = ""
         self._replay_parameters: dict = {}
-        self._live = None
+        self._live: list[float] | None = None
         self._waiting_for_skill = self.get_parameter("run_when_available").value
         self._end_after_run = False
         self._started_wall = 0.0
@@ -138,7 +138,7 @@ class ReplayNode(Node):
         if run is not None and len(msg.data) == len(run.joints):
             self._live = list(msg.data)
         else:
-            self.get_logger().warn("perturbation_command ignored: no replay running or "
+            self.get_logger().warning("perturbation_command ignored: no replay running or "
                                    "not one torque per joint", throttle_duration_sec=5.0)
 
     def _tick(self) -> None:
@@ -176,7 +176,7 @@ class ReplayNode(Node):
         self._run = None
         status, reason, metrics, trace = run.outcome()
         if reason:
-            self.get_logger().warn(f"replay {status}: {reason}")
+            self.get_logger().warning(f"replay {status}: {reason}")
         try:
             with open_store(self._store_path) as store:
                 result_id = store.save_replay_result(

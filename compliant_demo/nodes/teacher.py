@@ -5,7 +5,9 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from rclpy.client import Client
 from rclpy.node import Node
+from rclpy.task import Future
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
@@ -54,12 +56,12 @@ class TeacherNode(Node):
         qos = recorded_qos(depth)  # reliable: every published sample is meant to be recorded
         self._joint_states = self.create_publisher(JointState, "joint_states", qos)
         self._truth = self.create_publisher(Float64MultiArray, "stiffness_truth", qos)
-        self._start = self.create_client(Trigger, "start")
-        self._stop = self.create_client(Trigger, "stop")
+        self._start: Client = self.create_client(Trigger, "start")
+        self._stop: Client = self.create_client(Trigger, "stop")
         self.done = False
         self.exit_status = 0
         self._state = "waiting"
-        self._pending = None
+        self._pending: Future | None = None
         self._state_since = time.monotonic()
         self._demo_start_wall = 0.0
         self.create_timer(period, self._tick)
@@ -86,8 +88,8 @@ class TeacherNode(Node):
             ready = self._joint_states.get_subscription_count() >= self._subscribers
             if ready and (not self._control or self._start.service_is_ready()):
                 self._begin_demonstration()
-        elif self._state == "starting" and self._pending.done():
-            result = self._pending.result()
+        elif self._state == "starting" and self._replied():
+            result = self._reply()
             if not result.success:
                 self._fail(f"recorder refused to start: {result.message}")
                 return
@@ -97,12 +99,24 @@ class TeacherNode(Node):
             self._publish_due(elapsed)
         elif self._state == "settling" and elapsed >= self._settle_s:
             self._end_demonstration()
-        elif self._state == "stopping" and self._pending.done():
-            result = self._pending.result()
-            self.get_logger().info(f"recorder: {result.message}")
+        elif self._state == "stopping" and self._replied():
+            result = self._reply()
+            log = self.get_logger().info if result.success else self.get_logger().error
+            log(f"recorder: {result.message}")
             self._after_demonstration()
         elif self._state == "pausing" and elapsed >= self._pause_s:
             self._begin_demonstration()
+
+    def _replied(self) -> bool:
+        return self._pending is not None and self._pending.done()
+
+    def _reply(self) -> Trigger.Response:
+        """The recorder's answer; a failed call reads as a refusal with the exception text."""
+        assert self._pending is not None
+        result = self._pending.result()
+        if result is None:
+            return Trigger.Response(success=False, message=str(self._pending.exception()))
+        return result
 
     def _begin_demonstration(self) -> None:
         index = self.session.next_demonstration()
