@@ -383,3 +383,207 @@ def run_kill_trials(
             for k in range(n_trials)
         ]
         return [future.result() for future in futures]
+
+
+# -- recorder flood -------------------------------------------------------------------------------
+
+FLOOD_JOINTS = [f"joint_{i}" for i in range(1, 8)]
+FLOOD_EPOCH_S = 1000  # header stamps count from here, so relative times stay exact in float64
+
+
+def ros_environment(domain_id: int) -> dict[str, str]:
+    """This process's environment with loopback-only discovery on ``domain_id``."""
+    return {
+        **os.environ,
+        "ROS_DOMAIN_ID": str(domain_id),
+        "ROS_AUTOMATIC_DISCOVERY_RANGE": "LOCALHOST",
+        "PYTHONUNBUFFERED": "1",
+    }
+
+
+def _diagnostic_values(msg: Any) -> dict[str, str] | None:
+    for status in msg.status:
+        if "recorder" in status.name:
+            return {kv.key: kv.value for kv in status.values}
+    return None
+
+
+def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: float,
+                      slow_rate_hz: float) -> None:  # fmt: skip
+    """Publisher process of the flood: start, flood, fall back, stop; results as JSON.
+
+    Header stamps advance one 1/rate_hz tick per message through both phases, so the slow phase
+    continues the same sample clock: any stamp missing from the store is a lost sample.
+    """
+    import json
+
+    import rclpy
+    from diagnostic_msgs.msg import DiagnosticArray
+    from rclpy.qos import HistoryPolicy, QoSProfile, ReliabilityPolicy
+    from sensor_msgs.msg import JointState
+    from std_srvs.srv import Trigger
+
+    rclpy.init()
+    node = rclpy.create_node("flood_driver")
+    qos = QoSProfile(depth=1000, reliability=ReliabilityPolicy.RELIABLE,
+                     history=HistoryPolicy.KEEP_LAST)  # fmt: skip
+    publisher = node.create_publisher(JointState, "joint_states", qos)
+    diagnostics: list[tuple[float, dict[str, str]]] = []
+
+    def on_diagnostics(msg: Any) -> None:
+        values = _diagnostic_values(msg)
+        if values is not None:
+            diagnostics.append((time.time(), values))
+
+    node.create_subscription(DiagnosticArray, "diagnostics", on_diagnostics, 50)
+    result: dict[str, Any] = {}
+
+    def call(name: str) -> tuple[bool, str]:
+        client = node.create_client(Trigger, name)
+        if not client.wait_for_service(timeout_sec=30.0):
+            return False, f"service {name} not available"
+        future = client.call_async(Trigger.Request())
+        rclpy.spin_until_future_complete(node, future, timeout_sec=30.0)
+        response = future.result()
+        return (False, "no response") if response is None else (response.success, response.message)
+
+    def spin_for(seconds: float) -> None:
+        end = time.monotonic() + seconds
+        while time.monotonic() < end:
+            rclpy.spin_once(node, timeout_sec=0.02)
+
+    msg = JointState()
+    msg.name = list(FLOOD_JOINTS)
+    tick = 0
+
+    def publish_at(rate: float, seconds: float) -> int:
+        nonlocal tick
+        start = time.perf_counter()
+        sent = 0
+        while True:
+            elapsed = time.perf_counter() - start
+            if elapsed >= seconds:
+                return sent
+            due = int(elapsed * rate) + 1
+            while sent < due:  # catch up in a burst when behind: the offered rate is the target
+                sec, rest = divmod(tick, int(rate_hz))
+                msg.header.stamp.sec = FLOOD_EPOCH_S + sec
+                msg.header.stamp.nanosec = int(round(rest * 1e9 / rate_hz))
+                value = [1e-4 * tick] * len(FLOOD_JOINTS)
+                msg.position, msg.velocity, msg.effort = value, value, value
+                publisher.publish(msg)
+                tick += 1
+                sent += 1
+            if sent % 200 == 0 or rate < 1000:
+                rclpy.spin_once(node, timeout_sec=0.0)
+            if rate < 1000:
+                time.sleep(max(0.0, (sent / rate) - (time.perf_counter() - start)))
+
+    try:
+        deadline = time.monotonic() + 30.0
+        while publisher.get_subscription_count() == 0 and time.monotonic() < deadline:
+            spin_for(0.05)
+        result["start"] = call("start")
+        result["t_flood_start"] = time.time()
+        result["flood_sent"] = publish_at(rate_hz, flood_s)
+        result["t_flood_end"] = time.time()
+        spin_for(2.0)
+        result["diag_after_flood"] = diagnostics[-1][1] if diagnostics else None
+        result["first_slow_tick"] = tick
+        result["slow_sent"] = publish_at(slow_rate_hz, slow_s)
+        spin_for(2.0)
+        result["diag_after_slow"] = diagnostics[-1][1] if diagnostics else None
+        result["last_tick"] = tick - 1
+        result["stop"] = call("stop")
+        result["t_end"] = time.time()
+        result["diagnostics_seen"] = len(diagnostics)
+        result["max_buffer_fill"] = max(
+            (float(values.get("buffer_fill", 0.0)) for _, values in diagnostics), default=0.0
+        )
+    finally:
+        Path(result_path).write_text(json.dumps(result))
+        node.destroy_node()
+        rclpy.try_shutdown()
+
+
+def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
+              rate_hz: float = 20_000.0, slow_s: float = 2.0, slow_rate_hz: float = 100.0,
+              buffer_capacity: int = 1000) -> dict[str, Any]:  # fmt: skip
+    """Flood a real recorder process; return what the driver saw, the RSS trace and the store.
+
+    The recorder runs as ``python -m compliant_demo.nodes.recorder`` with 7 joints, no stiffness
+    channel and a small buffer; its resident memory is sampled every 20 ms with psutil.
+    """
+    import json
+    import subprocess
+    import sys
+
+    import psutil
+
+    folder = Path(folder)
+    store_path = folder / "flood.sqlite"
+    env = ros_environment(domain_id)
+    env["PYTHONPATH"] = os.pathsep.join(
+        [str(Path(__file__).resolve().parent.parent), str(Path(__file__).resolve().parent),
+         env.get("PYTHONPATH", "")]
+    )  # fmt: skip
+    joints = "[" + ", ".join(FLOOD_JOINTS) + "]"
+    recorder_cmd = [
+        sys.executable, "-m", "compliant_demo.nodes.recorder", "--ros-args",
+        "-p", f"store_path:={store_path}", "-p", f"joints:={joints}",
+        "-p", "stiffness_source:=none", "-p", f"nominal_rate_hz:={rate_hz}",
+        "-p", f"buffer_capacity:={buffer_capacity}", "-p", "queue_depth:=1000",
+        "-p", "diagnostics_period_s:=0.2", "-p", "flush_interval_s:=0.1",
+    ]  # fmt: skip
+    log = (folder / "recorder.log").open("w")
+    recorder = subprocess.Popen(recorder_cmd, env=env, stdout=log, stderr=subprocess.STDOUT)
+    rss: list[tuple[float, float]] = []
+    stop_sampling = threading.Event()
+
+    def sample() -> None:
+        process = psutil.Process(recorder.pid)
+        while not stop_sampling.is_set():
+            try:
+                rss.append((time.time(), process.memory_info().rss / 2**20))
+            except psutil.Error:
+                return
+            stop_sampling.wait(0.02)
+
+    sampler = threading.Thread(target=sample, daemon=True)
+    sampler.start()
+    result_path = folder / "driver.json"
+    driver_code = (
+        "import reliability_support as r; "
+        f"r.flood_driver_main({str(result_path)!r}, {flood_s}, {rate_hz}, {slow_s}, {slow_rate_hz})"
+    )
+    try:
+        driver = subprocess.run(
+            [sys.executable, "-c", driver_code], env=env, capture_output=True, text=True,
+            timeout=180,
+        )  # fmt: skip
+        recorder_alive_after_flood = recorder.poll() is None
+    finally:
+        recorder.send_signal(signal.SIGINT)
+        try:
+            recorder.wait(30)
+        except subprocess.TimeoutExpired:
+            recorder.kill()
+            recorder.wait(10)
+        stop_sampling.set()
+        sampler.join(5)
+        log.close()
+    result = json.loads(result_path.read_text()) if result_path.exists() else {}
+    result.update(
+        driver_returncode=driver.returncode,
+        driver_stderr=driver.stderr[-2000:],
+        recorder_alive_after_flood=recorder_alive_after_flood,
+        recorder_returncode=recorder.returncode,
+        recorder_log=(folder / "recorder.log").read_text()[-3000:],
+        rss_trace=rss,
+        store_path=str(store_path),
+    )
+    flood_start = result.get("t_flood_start", float("inf"))
+    before = [mb for t, mb in rss if t < flood_start]
+    result["idle_rss_mb"] = max(before) if before else None
+    result["peak_rss_mb"] = max((mb for _, mb in rss), default=None)
+    return result
