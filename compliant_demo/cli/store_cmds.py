@@ -4,6 +4,7 @@ skills and verify. Demonstrations are named by their UUID or any unique prefix o
 from __future__ import annotations
 
 import argparse
+import os
 import uuid
 from collections.abc import Callable
 from datetime import UTC, datetime
@@ -29,7 +30,11 @@ _FORMATS = ("csv", "npz", "bag")
 
 
 def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
-    return DemoStore(store_path_of(args), read_only=not write, create=write)
+    """The store; commands that only read still open a writable file writable (never creating
+    it), because only a writable connection removes SQLite's -wal/-shm files when it closes."""
+    path = store_path_of(args)
+    writable = write or (path.is_file() and os.access(path, os.W_OK))
+    return DemoStore(path, read_only=not writable, create=write)
 
 
 def resolve_demo_id(store: DemoStore, prefix: str) -> str:

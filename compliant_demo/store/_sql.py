@@ -80,8 +80,9 @@ def _check_file(path: Path) -> None:
 def _check_length(path: Path) -> None:
     """Refuse a file shorter than its header says (a cut copy); SQLite would read zeros."""
     size = path.stat().st_size
-    if size == 0:
-        return
+    wal = Path(f"{path}-wal")
+    if size == 0 or (wal.exists() and wal.stat().st_size > 0):
+        return  # pages still in the write-ahead log may lie beyond the end of the main file
     with path.open("rb") as handle:
         header = handle.read(100)
     if len(header) < 100:
