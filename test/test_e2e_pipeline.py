@@ -14,12 +14,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env, simulate_rollout
-from numpy.lib.stride_tricks import sliding_window_view
 
 from compliant_demo.learning import load_skill
 from compliant_demo.perturbation import load_schedule_yaml
 from compliant_demo.runtime import load_plant
 from compliant_demo.store import DemoStore
+from compliant_demo.teaching import windowed_truth
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
@@ -60,10 +60,10 @@ def test_every_published_sample_is_stored_in_complete_demonstrations(recorded) -
 def test_online_stiffness_matches_the_teachers_ground_truth_where_excited(recorded) -> None:
     """Reference: the simulated teacher's hand stiffness (ground truth of the simulation).
 
-    Compared where the estimator reports an estimate (excited window) and the true stiffness
-    varied by at most 5 % over the 0.5 s window, since the sliding-window regression assumes a
-    constant stiffness within its window. Bounds: median relative error <= 5 %, 90th percentile
-    <= 15 %.
+    Compared with the truth's mean over the estimator's 0.5 s window, where the recorder stored
+    an estimate (excited window) and the truth varied by at most 5 % over that window (the
+    sliding-window regression assumes a constant stiffness within it). Bounds: median relative
+    error <= 5 %, 90th percentile <= 15 %, over at least 20 % of each demonstration.
     """
     store, truth, _nodes = recorded
     window = 500  # estimator_window_s 0.5 s at 1 kHz (config/recorder.yaml)
@@ -72,13 +72,10 @@ def test_online_stiffness_matches_the_teachers_ground_truth_where_excited(record
         infos = list(db.find_demonstrations(skill="cork_seat", status="complete"))
         for index, info in enumerate(infos):
             estimate = db.load_demonstration(info.id).stiffness
-            true = truth[f"stiffness_{index}"]
-            windows = sliding_window_view(true, window, axis=0)
-            steady = np.zeros(true.shape, dtype=bool)
-            steady[window - 1 :] = windows.max(axis=-1) <= 1.05 * windows.min(axis=-1)
-            use = np.isfinite(estimate) & steady
+            mean, variation = windowed_truth(truth[f"stiffness_{index}"], window)
+            use = np.isfinite(estimate) & (variation <= 0.05)
             assert use.mean() > 0.2, f"demo {index}: only {use.mean():.0%} usable samples"
-            errors.append(np.abs(estimate[use] - true[use]) / true[use])
+            errors.append(np.abs(estimate[use] - mean[use]) / mean[use])
     errors = np.concatenate(errors)
     assert np.median(errors) <= 0.05, np.median(errors)
     assert np.percentile(errors, 90) <= 0.15, np.percentile(errors, 90)
