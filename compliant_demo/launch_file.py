@@ -110,7 +110,8 @@ class NodeDeclaration:
         if self.name:
             ros_args += ["-r", f"__node:={self.name}"]
         if self.namespace:
-            ros_args += ["-r", f"__ns:={self.namespace}"]
+            # rcl wants an absolute namespace; launch_ros makes a relative one absolute too.
+            ros_args += ["-r", f"__ns:=/{self.namespace.lstrip('/')}"]
         for parameter in self.parameters:
             if isinstance(parameter, ParameterFile):
                 ros_args += ["--params-file", str(parameter.path)]

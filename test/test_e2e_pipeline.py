@@ -88,7 +88,7 @@ def learned(recorded):
     command = [
         sys.executable, "-c", "import sys; from compliant_demo.cli import main; "
         "sys.exit(main(sys.argv[1:]))", "launch", str(LAUNCH / "learn.launch.xml"),
-        f"store:={store}", f"fit_when:={N_DEMOS}", "exit_after_fit:=true",
+        f"store:={store}", f"fit_when:={N_DEMOS}", "exit_after_fit:=true", "--until", "learner",
     ]  # fmt: skip
     result = subprocess.run(
         command, env=ros_env(DOMAIN_ID), capture_output=True, text=True, timeout=120, cwd=ROOT

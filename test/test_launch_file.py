@@ -43,6 +43,7 @@ _GOOD = """<launch>
     <param from="$(find-pkg-share compliant_demo)/config/rec.yaml"/>
     <param name="store_path" value="$(var store)"/>
     <param name="tags" value="['a', 'b']"/>
+    <param name="notes" value=""/>
   </node>
   <node pkg="compliant_demo" exec="teacher_node" name="teacher">
     <param name="n_demonstrations" value="$(var demos)"/>
@@ -61,13 +62,15 @@ def test_reader_resolves_arguments_files_and_executables(tmp_path: Path) -> None
         ParameterFile(tmp_path.resolve() / "config" / "rec.yaml"),
         ParameterValue("store_path", "/tmp/a.sqlite"),
         ParameterValue("tags", "['a', 'b']"),
+        ParameterValue("notes", ""),
     )
     line = recorder.command_line({"operator": "operator_b"})
     ros_args = line[line.index("--ros-args") :]
     assert ros_args == [
-        "--ros-args", "-r", "__node:=rec", "-r", "__ns:=bench",
+        "--ros-args", "-r", "__node:=rec", "-r", "__ns:=/bench",
         "--params-file", str(tmp_path.resolve() / "config" / "rec.yaml"),
         "-p", "store_path:=/tmp/a.sqlite", "-p", "tags:=['a', 'b']",
+        "-p", "notes:=''",  # rcl cannot parse an empty override; YAML '' is the empty string
         "-p", "operator:=operator_b",
     ]  # fmt: skip
     # Either the installed console script or "python -m" the node module.
