@@ -331,8 +331,8 @@ def default_campaign_spec(n_joints: int = 2, movement_s: float = 6.0) -> Campaig
 
     Every kind with equal weight, on any joint, starting between 8 % and 75 % of the movement's
     duration ``movement_s`` (s); windows and contacts last long enough to watch the recovery.
-    Magnitudes deflect a soft joint by a few hundredths to about a tenth of a radian (invented
-    for the demo, not taken from a standard).
+    Magnitudes range from barely noticeable to pushing a soft joint a few tenths of a radian
+    (invented for the demo, not taken from a standard).
     """
     if not movement_s > 0:
         raise InvalidInputError(f"movement_s = {movement_s}: must be > 0 s")
@@ -349,15 +349,15 @@ def default_campaign_spec(n_joints: int = 2, movement_s: float = 6.0) -> Campaig
             "sinusoid": Uniform(low=0.5, high=1.5),
             "random_torque": Uniform(low=0.5, high=1.5),
             "wall": Uniform(low=0.3, high=1.5),
-            "hold": Uniform(low=0.1, high=0.6),
+            "hold": Uniform(low=0.2, high=1.5),
         },
         magnitude={
-            "impulse": LogUniform(low=0.005, high=0.05),
-            "torque_step": Uniform(low=0.1, high=1.0),
-            "torque_window": Uniform(low=0.2, high=1.5),
-            "sinusoid": Uniform(low=0.1, high=0.6),
-            "random_torque": Uniform(low=0.1, high=0.5),
-            "wall": LogUniform(low=100.0, high=1000.0),
+            "impulse": LogUniform(low=0.01, high=0.15),
+            "torque_step": Uniform(low=0.2, high=2.0),
+            "torque_window": Uniform(low=0.5, high=3.0),
+            "sinusoid": Uniform(low=0.2, high=1.0),
+            "random_torque": Uniform(low=0.2, high=1.0),
+            "wall": LogUniform(low=200.0, high=2000.0),
         },
         fields={
             "sinusoid": {"frequency_hz": Uniform(low=0.5, high=5.0)},
