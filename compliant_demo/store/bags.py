@@ -62,7 +62,9 @@ class _BagSamples:
         stiffness_topic: str | None,
         use_header_stamp: bool,
         skip_bad: bool,
+        source: str,
     ) -> None:
+        self.source = source
         self.joints = None if joints is None else list(validate_joints(joints))
         self.joint_topic = joint_topic
         self.stiffness_topic = stiffness_topic
@@ -71,12 +73,22 @@ class _BagSamples:
         self.start_ns: int | None = None
         self.last_ns: int | None = None
         self.stiffness: np.ndarray | None = None
-        self.flags = {"skipped_messages": 0, "non_increasing": 0, "nan_messages": 0}
+        self.flags = {
+            "skipped_messages": 0,
+            "non_increasing": 0,
+            "nan_messages": 0,
+            "undecodable_messages": 0,
+        }
         self.backfilled = 0
         self.names_seen: set[str] = set()
         self.rows: list[tuple[int, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]] = []
 
-    def _bad(self, key: str, message: str) -> None:
+    def where(self, index: int, topic: str | None) -> str:
+        """Names a message in error texts: the bag, the message's index and its topic."""
+        return f"bag {self.source!r}, message {index} on {topic!r}"
+
+    def bad(self, key: str, message: str) -> None:
+        """Refuse the bag, or count one dropped message under ``key`` when skipping."""
         if not self.skip_bad:
             raise InvalidInputError(message + " (import with skip_bad=True to drop such samples)")
         self.flags[key] += 1
@@ -85,11 +97,11 @@ class _BagSamples:
         data = np.asarray(msg.data, dtype=np.float64)
         if self.joints is not None and data.size != len(self.joints):
             raise InvalidInputError(
-                f"message {index} on {self.stiffness_topic!r}: data has {data.size} values for "
+                f"{self.where(index, self.stiffness_topic)}: data has {data.size} values for "
                 f"{len(self.joints)} joints ({', '.join(self.joints)})"
             )
         if not np.isfinite(data).all():
-            self._bad("nan_messages", f"message {index} on {self.stiffness_topic!r}: data {data} "
+            self.bad("nan_messages", f"{self.where(index, self.stiffness_topic)}: data {data} "
                       "is not finite")  # fmt: skip
             return
         if self.stiffness is None:
@@ -102,7 +114,7 @@ class _BagSamples:
         self.names_seen.update(names)
         if self.joints is None:
             self.joints = list(validate_joints(names))
-        where = f"message {index} on {self.joint_topic!r}"
+        where = self.where(index, self.joint_topic)
         if any(name not in names for name in self.joints):
             self.flags["skipped_messages"] += 1
             return
@@ -116,14 +128,14 @@ class _BagSamples:
                 )
             fields.append(values[columns])
         if not all(np.isfinite(f).all() for f in fields):
-            self._bad("nan_messages", f"{where}: position/velocity/effort not finite")
+            self.bad("nan_messages", f"{where}: position/velocity/effort not finite")
             return
         stamp = msg.header.stamp
         stamp_ns = stamp.sec * _NS + stamp.nanosec
         ns = stamp_ns if self.use_header_stamp and stamp_ns > 0 else bag_ns
         if self.last_ns is not None and ns <= self.last_ns:
             word = "repeats" if ns == self.last_ns else "goes backwards"
-            self._bad("non_increasing", f"{where}: time stamp {ns} ns {word} (previous "
+            self.bad("non_increasing", f"{where}: time stamp {ns} ns {word} (previous "
                       f"{self.last_ns} ns)")  # fmt: skip
             return
         if self.start_ns is None:
@@ -179,8 +191,9 @@ def import_bag(
     use_header_stamp : bool
         Time from ``header.stamp`` (falls back to the bag's receive time when it is zero).
     skip_bad : bool
-        Drop samples with non-finite values or non-increasing time and count them in the flags
-        ``nan_messages`` and ``non_increasing``, instead of refusing the bag.
+        Drop samples with non-finite values, non-increasing time or undecodable bytes and count
+        them in the flags ``nan_messages``, ``non_increasing`` and ``undecodable_messages``,
+        instead of refusing the bag.
     progress : bool, optional
         Progress bar; by default for bags over 20,000 messages on a terminal.
     **begin_kwargs
@@ -207,7 +220,7 @@ def import_bag(
         total = sum(c.msgcount for c in wanted)
         samples = _BagSamples(
             joints=joints, joint_topic=joint_topic, stiffness_topic=stiffness_topic,
-            use_header_stamp=use_header_stamp, skip_bad=skip_bad,
+            use_header_stamp=use_header_stamp, skip_bad=skip_bad, source=source,
         )  # fmt: skip
         messages = tqdm(
             reader.messages(connections=wanted), total=total, unit="msg", desc=bag.name,
@@ -245,7 +258,14 @@ def _chunks(
     reader: AnyReader, messages: Any, samples: _BagSamples, joint_topic: str, source: str
 ) -> Iterator[tuple[np.ndarray, dict[str, np.ndarray]]]:
     for index, (connection, bag_ns, raw) in enumerate(messages):
-        msg = reader.deserialize(raw, connection.msgtype)
+        try:
+            msg = reader.deserialize(raw, connection.msgtype)
+        except AnyReaderError as exc:
+            samples.bad(
+                "undecodable_messages",
+                f"{samples.where(index, connection.topic)} cannot be decoded: {exc}",
+            )
+            continue
         if connection.topic == joint_topic:
             samples.on_joint_state(index, bag_ns, msg)
         else:

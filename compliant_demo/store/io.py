@@ -228,20 +228,25 @@ def import_csv(
         raise NotFoundError(f"CSV file {source!r} does not exist")
     size = file.stat().st_size
     with file.open("r", encoding="utf-8") as handle:
-        metadata, header, header_line = _read_csv_head(handle, source)
-        joints, with_stiffness = _joint_layout(header, source)
-        begin = _begin_kwargs(metadata, overrides, keep_id)
-        begin.update(joints=joints, with_stiffness=with_stiffness)
-        status = metadata.get("status", "complete")
-        if status == "recording":
-            status = "incomplete"
-        bar = tqdm(total=size, unit="B", unit_scale=True, desc=file.name,
-                   disable=not show_progress(progress, size, _PROGRESS_BYTES))  # fmt: skip
-        with bar:
-            chunks = _csv_chunks(handle, source, header_line, len(joints), with_stiffness, bar)
-            return streaming_import(
-                store, begin, chunks, status=status, flags=lambda: metadata.get("flags", {})
-            )
+        try:
+            metadata, header, header_line = _read_csv_head(handle, source)
+            joints, with_stiffness = _joint_layout(header, source)
+            begin = _begin_kwargs(metadata, overrides, keep_id)
+            begin.update(joints=joints, with_stiffness=with_stiffness)
+            status = metadata.get("status", "complete")
+            if status == "recording":
+                status = "incomplete"
+            bar = tqdm(total=size, unit="B", unit_scale=True, desc=file.name,
+                       disable=not show_progress(progress, size, _PROGRESS_BYTES))  # fmt: skip
+            with bar:
+                chunks = _csv_chunks(handle, source, header_line, len(joints), with_stiffness, bar)
+                return streaming_import(
+                    store, begin, chunks, status=status, flags=lambda: metadata.get("flags", {})
+                )
+        except UnicodeDecodeError as exc:
+            raise InvalidInputError(
+                f"{source}: not UTF-8 text ({exc.reason} at byte {exc.start} of a line)"
+            ) from None
 
 
 def _csv_chunks(
