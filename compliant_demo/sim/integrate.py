@@ -342,12 +342,10 @@ class Simulator:
             for i, j in enumerate(joints)
             if j.coulomb_friction > 0
         ]
-        self._mgl = _column(joints, lambda j: j.gravity_mass * GRAVITY * j.com_distance)
-        self._gravity_offset = _column(joints, lambda j: j.gravity_offset)
         self._gravity_joints = [
-            (i, -float(self._mgl[i, 0]), j.gravity_offset)
+            (i, -j.gravity_mass * GRAVITY * j.com_distance, j.gravity_offset)
             for i, j in enumerate(joints)
-            if self._mgl[i, 0] > 0
+            if j.gravity_mass * j.com_distance > 0
         ]
         self._lower = _column(joints, lambda j: j.lower_limit)
         self._upper = _column(joints, lambda j: j.upper_limit)
@@ -364,6 +362,7 @@ class Simulator:
         rows = self._n_dyn + _N_WORK
         shape = (n_joints, n_scen)
         self._kernel.expand(n_scen)
+        self._has_damping = bool(self._kernel.damping_range()[1].any())
         self._inv_inertia_full = np.broadcast_to(1.0 / self._inertia, shape).copy()
         self._accel_scale = self._inv_inertia_full.copy()
         self._neg_viscous_full = np.broadcast_to(self._neg_viscous, shape).copy()
@@ -429,7 +428,10 @@ class Simulator:
             out[i] += row
 
     def _gravity_potential(self, q: np.ndarray) -> np.ndarray:
-        return self._mgl * (1.0 - np.cos(q - self._gravity_offset))
+        potential = np.zeros_like(q)
+        for i, neg_mgl, offset in self._gravity_joints:
+            potential[i] = -neg_mgl * (1.0 - np.cos(q[i] - offset))
+        return potential
 
     def _stop_potential(self, q: np.ndarray) -> np.ndarray:
         below = np.maximum(self._lower - q, 0.0)
@@ -444,10 +446,12 @@ class Simulator:
         out += contact_force(self._lower - q, -dq, self._k_stop, self._b_stop)
         out -= contact_force(q - self._upper, dq, self._k_stop, self._b_stop)
 
-    def _wall_torque(self, q: np.ndarray, dq: np.ndarray, out: np.ndarray) -> None:
+    def _wall_torque(
+        self, walls: tuple, q: np.ndarray, dq: np.ndarray, out: np.ndarray
+    ) -> None:
         """Add wall contact torques into ``out`` (via flat views of the joint-major arrays)."""
         q_flat, dq_flat, out_flat = q.reshape(-1), dq.reshape(-1), out.reshape(-1)
-        index, position, side, stiffness, damping, repeated = self._walls
+        index, position, side, stiffness, damping, repeated = walls
         penetration = (q_flat[index] - position) * side
         force = contact_force(penetration, side * dq_flat[index], stiffness, damping)
         force *= side
@@ -480,7 +484,7 @@ class Simulator:
         else:
             np.copyto(torques[_EXTERNAL], ext)
         if self._walls is not None:
-            self._wall_torque(q, dq, torques[_EXTERNAL])
+            self._wall_torque(self._walls, q, dq, torques[_EXTERNAL])
         np.add(torques[0], torques[1], out=f[1])
         f[1] += torques[2]
         self._add_gravity(q, f[1])
@@ -588,10 +592,13 @@ class Simulator:
         self._rhs(y, targets, ext, self._stages[0])
         q, dq, act = y[0], y[1], y[2 : self._n_dyn]
         torques = self._torques
-        net = torques.sum(axis=0)
-        self._add_gravity(q, net)
         held = self._free == 0.0
-        tau_mech = torques[_SPRING] + (self._mech_damping if kernel.damping_range()[1].any() else 0)
+        tau_external = torques[_EXTERNAL]
+        if held.any():  # a hold's reaction cancels every other torque on the still link
+            net = torques.sum(axis=0)
+            self._add_gravity(q, net)
+            tau_external = tau_external - np.where(held, net, 0.0)
+        tau_mech = torques[_SPRING] + self._mech_damping if self._has_damping else torques[_SPRING]
         tau_measured = tau_mech
         if self._noise.any():
             stream = np.random.default_rng([self._noise_seed, self._step_index])
@@ -614,7 +621,7 @@ class Simulator:
             "q_measured": q_measured,
             "tau_mechanism": tau_mech,
             "tau_measured": tau_measured,
-            "tau_external": torques[_EXTERNAL] - np.where(held, net, 0.0),
+            "tau_external": tau_external,
             "stiffness_realised": kernel.stiffness(q, act, targets),
             "damping_realised": np.broadcast_to(kernel.damping(act, targets), shape),
             "equilibrium_realised": np.broadcast_to(kernel.equilibrium(act, targets), shape),
