@@ -673,7 +673,13 @@ class DemoStore:
                 query.add(f"{column} = {{}}", _codec.validate_text(column, value))
         if tag is not None:
             for one in _texts("tag", tag):
-                query.add("id IN (SELECT demo_id FROM demonstration_tags WHERE tag = {})", one)
+                # correlated EXISTS: a point lookup in the (tag, demo_id) key per candidate row,
+                # faster than materialising every demonstration carrying a common tag
+                query.add(
+                    "EXISTS (SELECT 1 FROM demonstration_tags g WHERE g.tag = {} "
+                    "AND g.demo_id = demonstrations.id)",
+                    one,
+                )
         if status is not None:
             statuses = _texts("status", status)
             for one in statuses:
