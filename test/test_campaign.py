@@ -4,12 +4,19 @@ the store, interruption and resume, and the metric pipeline against a closed for
 from __future__ import annotations
 
 import math
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
 
 import numpy as np
 import pytest
 from campaign_support import (
     JOINTS,
     campaign_job,
+    cork_seat_skill,
     plant,
     stationary_skill,
     store_with_demos_and_skill,
@@ -25,6 +32,8 @@ from compliant_demo.campaign import (
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.perturbation import PERTURBATION_KINDS, CampaignSpec, Fixed, Impulse
 from compliant_demo.store import DemoStore
+
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def _by_index(store: DemoStore, campaign_id: str) -> dict[int, tuple[str, dict]]:
@@ -172,3 +181,39 @@ def test_traces_hold_every_channel_per_joint():
     assert outcome.trace["t"][0] == 0.0 and np.all(np.diff(outcome.trace["t"]) > 0)
     for name in ("q", "tau_external", "tau_mechanism", "stiffness_realised"):
         assert outcome.trace[name].shape == (n, len(JOINTS)), name
+
+
+def test_a_campaign_killed_mid_run_keeps_what_it_stored_and_resumes_to_the_same_results(tmp_path):
+    # A real interruption: the command line process is SIGKILLed while batches stream in.
+    path = tmp_path / "s.sqlite"
+    skill_id = store_with_demos_and_skill(path)
+    argv = ["campaign", "--store", str(path), "--scenarios", "16", "--seed", "9",
+            "--batch-size", "2", "--workers", "1", "--duration", "1.5", "--settle", "0.3",
+            "--quiet"]
+    entry = "import sys; from compliant_demo.cli import main; sys.exit(main(sys.argv[1:]))"
+    env = dict(os.environ,
+               PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    process = subprocess.Popen([sys.executable, "-c", entry, *argv], env=env,
+                               stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 120
+    stored: set[int] = set()
+    while len(stored) < 4 and time.monotonic() < deadline and process.poll() is None:
+        time.sleep(0.05)
+        with DemoStore(path, read_only=True) as store:
+            stored = {r.scenario_index for r in store.find_replay_results()}
+    process.kill()
+    process.wait(timeout=30)
+    assert process.returncode == -signal.SIGKILL, process.stderr.read()
+    with DemoStore(path) as store:
+        assert store.integrity_check() == ["ok"]
+        (campaign_id,) = {r.campaign_id for r in store.find_replay_results()}
+        kept = store.completed_scenarios(campaign_id)
+    assert 4 <= len(kept) < 16
+    with DemoStore(path, durable=False) as store:
+        resumed = run_campaign(store, ReplayCampaign.from_config(
+            cork_seat_skill(), store.get_campaign(campaign_id).config), skill_id=skill_id,
+            campaign_id=campaign_id, workers=0)
+        reference = run_campaign(store, campaign_job(n_scenarios=16, seed=9), skill_id=skill_id,
+                                 batch_size=8, workers=0)
+        assert (resumed.n_run, resumed.n_skipped) == (16 - len(kept), len(kept))
+        assert _by_index(store, campaign_id) == _by_index(store, reference.campaign_id)
