@@ -108,6 +108,8 @@ def test_bad_step_api_input_is_named():
         sim.step([0.0, 0.0, 0.0], [50.0])
     with pytest.raises(InvalidInputError, match=r"stiffness\[\(1, 0\)\] = nan"):
         sim.step([0.0], [[50.0], [np.nan]])
+    with pytest.raises(InvalidInputError, match=r"damping\[\(1, 0\)\] = -2\.0: must be >= 0"):
+        sim.step([0.0], [50.0], damping=[[1.0], [-2.0]])
     with pytest.raises(InvalidInputError, match=r"external_torque\[\(0, 0\)\] = inf"):
         sim.step([0.0], [50.0], external_torque=[np.inf])
     with pytest.raises(InvalidInputError, match=r"schedules: 1 given for n_scenarios = 2"):

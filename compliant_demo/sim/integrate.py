@@ -203,7 +203,9 @@ def _column(joints: Sequence[JointParams], value) -> np.ndarray:
     return np.array([[float(value(j))] for j in joints])
 
 
-def _per_scenario(name: str, value, n_scen: int, n_joints: int) -> np.ndarray:
+def _per_scenario(
+    name: str, value, n_scen: int, n_joints: int, minimum: float | None = None
+) -> np.ndarray:
     """(J, S) array from None, a scalar, (n_joints,) or (n_scen, n_joints)."""
     arr = np.asarray(0.0 if value is None else value, dtype=float)
     if arr.ndim == 0 or arr.shape == (n_joints,):
@@ -212,7 +214,7 @@ def _per_scenario(name: str, value, n_scen: int, n_joints: int) -> np.ndarray:
         raise InvalidInputError(
             f"{name}: shape {arr.shape}, expected ({n_joints},) or ({n_scen}, {n_joints})"
         )
-    _check_finite(name, arr)
+    _check_finite(name, arr, minimum)
     return np.ascontiguousarray(arr.T)
 
 
@@ -645,7 +647,7 @@ class Simulator:
         return self._step_index * self.dt
 
     def _targets(self, equilibrium, stiffness, damping):
-        if damping is not None and self._kernel.damping_range()[1].max() == 0:
+        if damping is not None and not self._kernel.has_damping_input:
             warnings.warn(
                 "damping commands are ignored: the antagonistic mechanism has no damping input",
                 stacklevel=3,
@@ -671,13 +673,13 @@ class Simulator:
         """
         n_joints, n_scen = self._y.shape[1:]
         cmd = [
-            None if v is None else _per_scenario(name, v, n_scen, n_joints)[None]
-            for name, v in (("equilibrium", equilibrium), ("stiffness", stiffness),
-                            ("damping", damping))
+            None if v is None else _per_scenario(name, v, n_scen, n_joints, minimum)[None]
+            for name, v, minimum in (
+                ("equilibrium", equilibrium, None),
+                ("stiffness", stiffness, 0.0),
+                ("damping", damping, 0.0),
+            )
         ]
-        for name, v in (("stiffness", cmd[1]), ("damping", cmd[2])):
-            if v is not None:
-                _check_finite(name, v, 0.0)
         targets, flags = self._targets(*cmd)
         clamped = np.logical_or.reduce(list(flags.values()))[0]
         ext = np.zeros((1, 3, n_joints, n_scen))

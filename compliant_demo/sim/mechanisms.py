@@ -111,11 +111,14 @@ class Mechanism:
     ----------
     n_actuators : actuator state rows
     n_targets : target rows per step (actuator targets first)
+    clamp_names : commands this mechanism may clamp (keys of ``SimResult.clamp_counts``)
+    has_damping_input : whether a damping command means anything to it
     """
 
     n_actuators = 0
     n_targets = 0
     clamp_names: tuple[str, ...] = ()
+    has_damping_input = False
 
     def __init__(self, records: Sequence[MechanismLike]) -> None:
         self.records = list(records)
@@ -208,6 +211,7 @@ class IdealImpedance(Mechanism):
     n_actuators = 2
     n_targets = 3
     clamp_names = ("stiffness", "damping")
+    has_damping_input = True
 
     def __init__(self, records: Sequence[IdealImpedanceParams]) -> None:
         super().__init__(records)
