@@ -56,6 +56,7 @@ def _init_ros(name: str):
 
 def _publisher_main(rate_hz: float, seconds: float, control: bool) -> None:
     """Publish 7-joint JointState at ``rate_hz`` (0 = as fast as possible) for ``seconds``."""
+    from rclpy._rclpy_pybind11 import RCLError
     from sensor_msgs.msg import JointState
     from std_srvs.srv import Trigger
 
@@ -84,7 +85,7 @@ def _publisher_main(rate_hz: float, seconds: float, control: bool) -> None:
     start_wall = time.time()
     start = time.monotonic()
     print(json.dumps({"event": "publishing"}), flush=True)
-    sent = 0
+    sent = refused = 0
     period = 1.0 / rate_hz if rate_hz > 0 else 0.0
     while True:
         elapsed = time.monotonic() - start
@@ -97,12 +98,20 @@ def _publisher_main(rate_hz: float, seconds: float, control: bool) -> None:
             message.position = values
             message.velocity = values
             message.effort = values
-            publisher.publish(message)
+            try:
+                publisher.publish(message)
+            except RCLError:
+                # Reliable delivery pushing back: the history is full of samples the subscriber
+                # has not acknowledged yet. Wait and send the same sample again.
+                refused += 1
+                time.sleep(0.001)
+                continue
             sent += 1
         if period:
             time.sleep(min(0.0005, period))
     wall = time.monotonic() - start
-    print(json.dumps({"event": "published", "sent": sent, "seconds": wall}), flush=True)
+    print(json.dumps({"event": "published", "sent": sent, "refused": refused, "seconds": wall}),
+          flush=True)
     time.sleep(1.5)  # let the subscriber drain before stop
     if control:
         trigger("stop")
@@ -233,7 +242,9 @@ def _flood_run(seconds: float, domain_id: int, work: Path) -> dict:
     recorder_rate = stored / flood_recorder["seconds"]
     row = {"bench": "recorder_flood", "seconds": seconds,
            "bare_published": flood_bare["sent"], "bare_received": bare_received["received"],
-           "bare_msgs_per_s": round(bare_rate), "recorder_published": flood_recorder["sent"],
+           "bare_msgs_per_s": round(bare_rate), "bare_refused": flood_bare["refused"],
+           "recorder_published": flood_recorder["sent"],
+           "recorder_refused": flood_recorder["refused"],
            "recorder_stored": stored, "recorder_msgs_per_s": round(recorder_rate),
            "ratio": recorder_rate / bare_rate}
     print(json.dumps(row), flush=True)
