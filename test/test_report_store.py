@@ -1,0 +1,94 @@
+"""The report built from a store: recorder-like demonstrations (online estimate with gaps), the
+teacher's truth file, a campaign; and the error paths of collecting it."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from _chromium import visit
+from campaign_support import JOINTS, campaign_job, cork_seat_records, cork_seat_skill
+
+from compliant_demo.campaign import run_campaign
+from compliant_demo.estimation import estimate_stiffness_series
+from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.learning import save_skill
+from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.store import DemoStore
+from compliant_demo.teaching import cork_seat_scenario
+
+
+def _recorded_store(path, truth_path) -> str:
+    """Demonstrations stored the way the recorder stores them (NaN where not excited), the
+    teacher's truth file written the way the teacher writes it; returns the skill id."""
+    settings = cork_seat_scenario().estimator_settings()
+    truth = {}
+    with DemoStore(path, durable=False) as store:
+        ids = []
+        for i, record in enumerate(cork_seat_records()):
+            series = estimate_stiffness_series(record.t, record.position, record.torque,
+                                               **settings)
+            ids.append(store.add_demonstration(
+                skill="cork_seat", operator="operator_a", joints=list(JOINTS), t=record.t,
+                position=record.position, velocity=record.velocity, torque=record.torque,
+                stiffness=series.stiffness, source="simulated"))
+            truth[f"t_{i}"], truth[f"stiffness_{i}"] = record.t, record.hand_stiffness_truth
+            truth[f"count_{i}"] = np.array(record.n_samples)
+        np.savez(truth_path, joints=np.array(JOINTS), **truth)
+        skill = cork_seat_skill().model_copy(deep=True)
+        skill.provenance.demonstration_ids = ids
+        return save_skill(store, skill).id
+
+
+def test_report_from_recorded_demonstrations_and_truth_opens_cleanly(tmp_path):
+    path, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
+    skill_id = _recorded_store(path, truth_path)
+    truth = GroundTruth.from_npz(truth_path)
+    assert len(truth.series) == 3
+    with DemoStore(path, durable=False) as store:
+        run_campaign(store, campaign_job(n_scenarios=14), skill_id=skill_id, workers=0)
+        content = collect_report_content(store, "cork_seat", truth=truth)
+    summary = dict(content.summary)
+    coverage = float(summary["estimate coverage"].split(" %")[0])
+    assert 50 < coverage < 100  # the first window and the settling of the band-pass have no value
+    assert summary["within limits"] == "14 of 14"
+    estimate = next(f for f in content.figures if f.stem == "stiffness_estimate").figure
+    labels = [line.get_label() for line in estimate.axes[0].get_lines()]
+    assert labels == ["teacher ground truth", "estimate"]
+    hatched = [p for p in estimate.axes[0].patches if p.get_hatch() == ".."]
+    assert hatched  # the stretch without an estimate is marked
+    files = write_report(content, tmp_path / "report")
+    seen = visit(files.html)
+    assert seen.errors == []
+    assert len(seen.images) == 5 and all(i["complete"] and i["width"] > 0 for i in seen.images)
+
+
+def test_report_without_campaign_shows_what_exists(tmp_path):
+    path, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
+    _recorded_store(path, truth_path)
+    with DemoStore(path, read_only=True) as store:
+        content = collect_report_content(store, "cork_seat")
+    assert [f.stem for f in content.figures] == [
+        "demonstrations", "stiffness_estimate", "schedule_checks"]
+    assert "No ground truth was given" in content.figures[1].caption
+
+
+def test_report_errors_name_what_is_missing(tmp_path):
+    path, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
+    skill_id = _recorded_store(path, truth_path)
+    with DemoStore(path, durable=False) as store:
+        with pytest.raises(NotFoundError, match=r"skill 'other' not found"):
+            collect_report_content(store, "other")
+        job = campaign_job(n_scenarios=7)
+        empty = store.create_campaign(skill_id, dict(job.config(), batch_size=7))
+        with pytest.raises(NotFoundError, match=rf"campaign '{empty}' has no results yet"):
+            collect_report_content(store, "cork_seat", campaign_id=empty)
+        first_campaign = run_campaign(store, job, skill_id=skill_id, workers=0).campaign_id
+        again = cork_seat_skill().model_copy(deep=True)
+        again.provenance.demonstration_ids = list(store.load_skill("cork_seat").demonstration_ids)
+        second = save_skill(store, again)
+        with pytest.raises(InvalidInputError, match=r"replays another skill version than "
+                                                    r"'cork_seat' v2"):
+            collect_report_content(store, "cork_seat", version=second.version,
+                                   campaign_id=first_campaign)
+    with pytest.raises(InvalidInputError, match=r"truth = '.*nothing.npz': not a teacher truth"):
+        GroundTruth.from_npz(tmp_path / "nothing.npz")
