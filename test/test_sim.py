@@ -374,3 +374,24 @@ def test_two_walls_on_one_joint_add_up():
     # springs in parallel add (common practice): two 300 N*m/rad walls act as one of 600
     assert np.allclose(result.q[:, 0], result.q[:, 1], rtol=0, atol=1e-12)
     assert result.q[-1, 0, 0] == pytest.approx((3.0 + 600 * 0.02) / 610.0, abs=1e-7)
+
+
+def test_smoothed_coulomb_friction_terminal_velocity():
+    # free link (stiffness ~0) pushed by a torque below the friction level: with
+    # tau_f = c*tanh(v/v_s) the steady velocity is v = v_s*atanh(tau/c) (closed form of the model)
+    joint = _joint(coulomb_friction=0.5, friction_smoothing_velocity=0.02)
+    n = 1500
+    push = PerturbationSchedule(perturbations=[TorqueStep(onset_s=0.0, magnitude=0.3)])
+    mech = _ideal(stiffness_min=1e-9)
+    result = simulate([joint], mech, _constant(0.0, n), _constant(0.0, n), schedules=[push])
+    assert result.dq[-1, 0, 0] == pytest.approx(0.02 * math.atanh(0.3 / 0.5), rel=1e-6)
+
+
+def test_pendulum_frequency_includes_gravity_stiffness():
+    # linearised pendulum on a spring: omega = sqrt((K + m*g*l) / I) (any mechanics text,
+    # e.g. Thomson, Theory of Vibration, ch. 2)
+    joint = _joint(gravity_mass=0.5, com_distance=0.2)
+    n = 3000
+    result = simulate([joint], _ideal(), _constant(0.0, n), _constant(STIFFNESS, n), q0=0.005)
+    expected_hz = math.sqrt((STIFFNESS + 0.5 * GRAVITY * 0.2) / INERTIA) / (2 * math.pi)
+    assert _spectral_peak_hz(result.q[:, 0, 0], result.dt) == pytest.approx(expected_hz, rel=1e-3)

@@ -65,7 +65,8 @@ def antagonistic_motor_angles(
     (Migliore, Brown, DeWeerth, ICRA 2005). So phi = (K - 2*k1) / (4*k2),
     theta1 = equilibrium + phi - d0, theta2 = equilibrium - phi + d0. Stiffness is clamped to
     [stiffness_min, stiffness_max] and to what the motor range allows; then the equilibrium is
-    clamped so both motors stay in range.
+    clamped so both motors stay in range. At exactly 2*k1 (phi = 0) both springs sit at the
+    slack threshold and any deflection engages only one of them (stiffness k1).
     """
     k = Antagonistic([params])
     eq = np.asarray(equilibrium, dtype=float)
