@@ -94,6 +94,13 @@ def _new_figure(n_rows: int, n_cols: int = 1, *, width: float = 8.0, row_height:
     return figure, axes
 
 
+def _label(ax, xlabel: str, ylabel: str, *, legend: bool = True) -> None:
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    if legend:
+        ax.legend(loc="best", fontsize="small")
+
+
 def _markevery(n: int) -> int:
     return max(1, n // 12)
 
@@ -175,9 +182,8 @@ def plot_demonstrations(
         )
         ax.plot(mean_t, mean_q[:, j], color="0.0", linestyle="--", marker="o",
                 markevery=_markevery(len(mean_t)), linewidth=1.8, label="aligned mean")
-        ax.set_ylabel(f"{name} angle [rad]")
-        ax.set_xlabel("time [s] (demonstrations: own time; mean: aligned time)")
-        ax.legend(loc="best", fontsize="small")
+        _label(ax, "time [s] (demonstrations: own time; mean: aligned time)",
+               f"{name} angle [rad]")
     figure.suptitle("Demonstrations, aligned mean and spread")
     return figure
 
@@ -210,9 +216,7 @@ def plot_stiffness_estimate(
         ax.plot(t, estimated[:, j], color="0.35", linestyle="--", marker="s",
                 markevery=_markevery(len(t)), linewidth=1.0, label="estimate")
         _shade_mask(ax, t, ~excited[:, j], hatch="..", label="too little excitation")
-        ax.set_ylabel(f"{name} stiffness [N*m/rad]")
-        ax.set_xlabel("time [s]")
-        ax.legend(loc="best", fontsize="small")
+        _label(ax, "time [s]", f"{name} stiffness [N*m/rad]")
     figure.suptitle("Stiffness estimate against the teacher's ground truth")
     return figure
 
@@ -256,11 +260,8 @@ def plot_schedule_checks(
         for ax in (ax_k, ax_z):
             _shade_mask(ax, t, any_joint, hatch=_HATCHES[number % len(_HATCHES)],
                         label=f"flagged: {flag_name}")
-    ax_k.set_ylabel("stiffness [N*m/rad]")
-    ax_z.set_ylabel("damping ratio [-]")
-    for ax in (ax_k, ax_z):
-        ax.set_xlabel("time along the skill [s]")
-        ax.legend(loc="best", fontsize="small")
+    _label(ax_k, "time along the skill [s]", "stiffness [N*m/rad]")
+    _label(ax_z, "time along the skill [s]", "damping ratio [-]")
     figure.suptitle("Learned stiffness and damping ratio along the skill")
     return figure
 
@@ -303,10 +304,7 @@ def plot_replay_traces(
                     markevery=_markevery(len(nominal_t)), linewidth=1.6, zorder=3,
                     label=f"{name} unperturbed")
         ax.set_title(kind, fontsize="medium")
-        ax.set_xlabel("time [s]")
-        ax.set_ylabel("angle [rad]")
-        if number == 0:
-            ax.legend(loc="best", fontsize="x-small")
+        _label(ax, "time [s]", "angle [rad]", legend=number == 0)
     for ax in list(axes.flat)[len(traces):]:
         ax.set_visible(False)
     figure.suptitle("Replay under each perturbation kind against the unperturbed replay")
