@@ -230,7 +230,7 @@ def _cmd_mark(args: argparse.Namespace) -> int:
 def _cmd_skills(args: argparse.Namespace) -> int:
     with _open(args, write=False) as store:
         records = store.list_skills()
-    rows = [
+    rows: list[dict[str, Any]] = [
         {"id": r.id, "name": r.name, "version": r.version, "created": _iso(r.created),
          "demonstrations": len(r.demonstration_ids), "parameters": r.parameters}
         for r in records

@@ -141,7 +141,8 @@ class _BagSamples:
         if self.start_ns is None:
             self.start_ns = ns
         self.last_ns = ns
-        self.rows.append((ns, *fields, self.stiffness))
+        position, velocity, effort = fields
+        self.rows.append((ns, position, velocity, effort, self.stiffness))
 
     def take(self, final: bool) -> tuple[np.ndarray, dict[str, np.ndarray]] | None:
         """A chunk of buffered samples when enough are ready (all of them when ``final``)."""

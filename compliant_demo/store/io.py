@@ -67,7 +67,9 @@ def show_progress(progress: bool | None, size: int, threshold: int) -> bool:
 def writing(path: str | os.PathLike[str], mode: str) -> Iterator[IO[Any]]:
     """Open ``path`` for an export; an unwritable path is an InvalidInputError naming it."""
     try:
-        handle = open(path, mode, **({} if "b" in mode else {"encoding": "utf-8", "newline": "\n"}))
+        handle: IO[Any] = (
+            open(path, mode) if "b" in mode else open(path, mode, encoding="utf-8", newline="\n")
+        )
     except OSError as exc:
         raise InvalidInputError(f"cannot write {str(path)!r}: {exc.strerror}") from None
     with handle:
@@ -295,7 +297,7 @@ def export_npz(store: DemoStore, demo_id: str, path: str | os.PathLike[str]) -> 
         arrays["stiffness"] = demo.stiffness
     target = Path(path)
     with writing(target, "wb") as handle:
-        np.savez(handle, **arrays)
+        np.savez(handle, **arrays)  # type: ignore[arg-type]  # numpy's stub: allow_pickle
     return target
 
 
