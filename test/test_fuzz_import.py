@@ -321,3 +321,23 @@ def test_bag_with_a_damaged_message_is_invalid_input(
     with pytest.raises(InvalidInputError, match=r"damaged_bag"):
         import_bag(store, path, skill="cork_seat")
     assert {info.id for info in store.find_demonstrations()} == before
+
+
+@pytest.mark.parametrize(
+    "joints",
+    [np.array("shoulder"), np.array([JOINTS])],
+    ids=["zero_dimensional", "two_dimensional"],
+)
+def test_npz_joints_that_are_not_a_list_of_names_is_invalid_input(
+    import_target: _Target, tmp_path: Path, joints: np.ndarray
+) -> None:
+    # Found by the fuzzer: a 0-d 'joints' array raised TypeError ("iteration over a 0-d array");
+    # a 2-d one became a single joint named "['shoulder' 'elbow']".
+    arrays = dict(import_target[4], joints=joints)
+    path = tmp_path / "joints.npz"
+    np.savez(path, **arrays)
+    store = import_target[0]
+    before = {info.id for info in store.find_demonstrations()}
+    with pytest.raises(InvalidInputError, match=r"joints\.npz.*joints"):
+        import_npz(store, path, keep_id=False)
+    assert {info.id for info in store.find_demonstrations()} == before
