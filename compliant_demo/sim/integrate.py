@@ -375,6 +375,7 @@ class Simulator:
         self._stage_state = np.zeros((self._n_dyn, *shape))
         self._acc = np.zeros((rows, *shape))
         self._torques = np.zeros((_N_WORK, *shape))
+        self._torque_rows = tuple(self._torques)  # views of the spring, passive, external rows
         self._mech_damping = np.zeros(shape)
         self._scratch = np.zeros(shape)
         self._free = np.ones(shape)
@@ -424,8 +425,11 @@ class Simulator:
         """Add the gravity torque -m*g*l*sin(q - offset) into ``out``."""
         for i, neg_mgl, offset in self._gravity_joints:
             row = self._scratch[i]
-            np.subtract(q[i], offset, out=row)
-            np.sin(row, out=row)
+            if offset:
+                np.subtract(q[i], offset, out=row)
+                np.sin(row, out=row)
+            else:
+                np.sin(q[i], out=row)
             row *= neg_mgl
             out[i] += row
 
@@ -466,34 +470,37 @@ class Simulator:
         self, y: np.ndarray, targets: np.ndarray, ext: np.ndarray | None, f: np.ndarray
     ) -> None:
         """State derivative ``f`` at ``y`` (rows: q, dq, actuators, three work rates)."""
-        q, dq, act = y[0], y[1], y[2 : self._n_dyn]
+        n_dyn = self._n_dyn
+        q, dq, act = y[0], y[1], y[2:n_dyn]
         torques = self._torques
-        has_damping = self._kernel.link_torque(
-            q, dq, act, targets, torques[_SPRING], self._mech_damping
-        )
-        np.multiply(self._neg_viscous_full, dq, out=torques[_PASSIVE])
+        spring, passive, external = self._torque_rows
+        has_damping = self._kernel.link_torque(q, dq, act, targets, spring, self._mech_damping)
+        np.multiply(self._neg_viscous_full, dq, out=passive)
         if has_damping:
-            torques[_PASSIVE] += self._mech_damping
+            passive += self._mech_damping
+        scratch = self._scratch
         for i, inv_smoothing, neg_coulomb in self._coulomb_joints:
-            row = self._scratch[i]
+            row = scratch[i]
             np.multiply(dq[i], inv_smoothing, out=row)
             np.tanh(row, out=row)
             row *= neg_coulomb
-            torques[_PASSIVE, i] += row
-        self._end_stops(q, dq, torques[_PASSIVE])
+            passive[i] += row
+        self._end_stops(q, dq, passive)
         if ext is None:
-            torques[_EXTERNAL].fill(0.0)
+            external.fill(0.0)
         else:
-            np.copyto(torques[_EXTERNAL], ext)
+            np.copyto(external, ext)
         if self._walls is not None:
-            self._wall_torque(self._walls, q, dq, torques[_EXTERNAL])
-        np.add(torques[0], torques[1], out=f[1])
-        f[1] += torques[2]
-        self._add_gravity(q, f[1])
-        f[1] *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
+            self._wall_torque(self._walls, q, dq, external)
+        accel = f[1]
+        np.add(spring, passive, out=accel)
+        accel += external
+        if self._gravity_joints:
+            self._add_gravity(q, accel)
+        accel *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
         np.copyto(f[0], dq)
-        self._kernel.actuator_rates(act, targets, f[2 : self._n_dyn])
-        np.multiply(torques, dq, out=f[self._n_dyn :])
+        self._kernel.actuator_rates(act, targets, f[2:n_dyn])
+        np.multiply(torques, dq, out=f[n_dyn:])
 
     # ----------------------------------------------------------------- stepping
     def _advance(self, targets: np.ndarray, ext: np.ndarray | None, have_first: bool) -> None:
