@@ -151,20 +151,8 @@ _TABLES: dict[str, str] = {
         )""",
 }
 
-_CHUNKS_V2 = """
-        CREATE TABLE chunks (
-            demo_id TEXT NOT NULL REFERENCES demonstrations(id) ON DELETE CASCADE,
-            seq INTEGER NOT NULL,
-            n INTEGER NOT NULL CHECK (n > 0),
-            t_first REAL NOT NULL,
-            t_last REAL NOT NULL,
-            t BLOB NOT NULL,
-            position BLOB NOT NULL,
-            velocity BLOB NOT NULL,
-            torque BLOB NOT NULL,
-            stiffness BLOB,
-            UNIQUE (demo_id, seq)
-        )"""
+# Version 2 chunks: the current layout without its checksum column.
+_CHUNKS_V2 = _TABLES["chunks"].replace("            checksum INTEGER NOT NULL,\n", "")
 
 # Every column a caller may filter or sort on with ``where`` / ``order_by``.
 DEMONSTRATION_COLUMNS: tuple[str, ...] = (

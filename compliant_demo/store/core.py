@@ -4,6 +4,7 @@ provenance, and replay results with their traces. Built on sqlite-utils (``store
 
 from __future__ import annotations
 
+import inspect
 import json
 import math
 import os
@@ -60,10 +61,6 @@ _INFO_COLUMNS = (
     "|| ',' || stiffness_min_json || ',' || stiffness_max_json || ',' || flags || ']'"
 )
 _FINAL_STATUSES = ("complete", "incomplete", "rejected")
-_BEGIN_KEYWORDS = frozenset(
-    ("skill", "joints", "operator", "tags", "notes", "source", "nominal_rate_hz", "start_time",
-     "with_stiffness", "demo_id")
-)  # fmt: skip
 _FILTER_KEYWORDS = frozenset(
     ("skill", "operator", "tag", "status", "source", "started_after", "started_before",
      "min_duration_s", "where", "where_args")
@@ -390,28 +387,18 @@ class DemoStore:
         demo_id : str, optional
             UUID to use (imports keep ids); a fresh UUID4 when omitted.
         """
+        fields = {k: v for k, v in locals().items() if k != "self"}
         with self._transaction() as conn:
-            return self._begin(
-                conn, skill=skill, joints=joints, operator=operator, tags=tags, notes=notes,
-                source=source, nominal_rate_hz=nominal_rate_hz, start_time=start_time,
-                with_stiffness=with_stiffness, demo_id=demo_id,
-            )  # fmt: skip
+            return self._begin(conn, fields)
 
-    def _begin(
-        self,
-        conn: Any,
-        *,
-        skill: str,
-        joints: Sequence[str],
-        operator: str = "",
-        tags: Sequence[str] = (),
-        notes: str = "",
-        source: str = "recorded",
-        nominal_rate_hz: float = 1000.0,
-        start_time: float | datetime | None = None,
-        with_stiffness: bool = True,
-        demo_id: str | None = None,
-    ) -> str:
+    def _begin(self, conn: Any, fields: Mapping[str, Any]) -> str:
+        """Insert a demonstration from the complete keyword set of :meth:`begin_demonstration`."""
+        skill, joints, operator, tags, notes, source = (
+            fields[k] for k in ("skill", "joints", "operator", "tags", "notes", "source")
+        )
+        nominal_rate_hz, start_time, with_stiffness, demo_id = (
+            fields[k] for k in ("nominal_rate_hz", "start_time", "with_stiffness", "demo_id")
+        )
         _codec.validate_text("skill", skill, allow_empty=False)
         names = _codec.validate_joints(joints)
         _codec.validate_text("operator", operator)
@@ -630,20 +617,21 @@ class DemoStore:
         (``with_stiffness`` defaults to whether ``stiffness`` is given).
         """
         begin_kwargs.setdefault("with_stiffness", stiffness is not None)
-        unknown = set(begin_kwargs) - _BEGIN_KEYWORDS
-        if unknown:
-            raise TypeError(f"add_demonstration() got unexpected keyword(s): {sorted(unknown)}")
+        # the keywords of begin_demonstration with its defaults; unknown ones raise TypeError
+        bound = inspect.signature(self.begin_demonstration).bind(**begin_kwargs)
+        bound.apply_defaults()
+        fields = dict(bound.arguments)
         _choice("status", status, _FINAL_STATUSES)
         checked = None if flags is None else _codec.validate_flags(flags)
-        joints = _codec.validate_joints(begin_kwargs.get("joints", ()))
+        joints = _codec.validate_joints(fields["joints"])
         times, arrays = _codec.validate_chunk(
             t,
             {"position": position, "velocity": velocity, "torque": torque, "stiffness": stiffness},
             n_joints=len(joints),
-            with_stiffness=bool(begin_kwargs["with_stiffness"]),
+            with_stiffness=bool(fields["with_stiffness"]),
         )
         with self._transaction() as conn:
-            demo_id = self._begin(conn, **begin_kwargs)
+            demo_id = self._begin(conn, fields)
             for start in range(0, times.size, CHUNK_SAMPLES):
                 part = slice(start, start + CHUNK_SAMPLES)
                 self._append(conn, demo_id, times[part], {k: v[part] for k, v in arrays.items()})
