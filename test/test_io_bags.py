@@ -115,6 +115,13 @@ def test_export_then_import_round_trips(store, tmp_path, storage):
     assert back.info.flags == {}
 
 
+def test_progress_bar_counts_the_messages(store, tmp_path, capsys):
+    bag = write_bag(tmp_path / "bag", "mcap", _ramp(40))
+    import_bag(store, bag, skill="cork_seat", progress=True)
+    err = capsys.readouterr().err
+    assert "40/40" in err and "msg" in err  # tqdm's bar on stderr: messages read / in the bag
+
+
 def test_messages_lacking_a_joint_are_skipped_and_counted(store, tmp_path):
     messages = _ramp(6)
     messages.insert(3, (START_NS + 2_500_000, _joint_state(START_NS + 2_500_000, ["gripper"],

@@ -587,6 +587,8 @@ def test_unknown_joint_and_missing_ids(store):
         store.update_flags(demo_id, {"drops": -1})
     with pytest.raises(TypeError, match="unexpected keyword"):
         store.add_demonstration(**samples(5), skill="cork_seat", joints=JOINTS, colour="red")
+    assert store.integrity_check() == ["ok"]
+    assert [info.id for info in store.find_demonstrations()] == [demo_id]
 
 
 # -- files ---------------------------------------------------------------------------------------
