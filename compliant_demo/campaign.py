@@ -19,7 +19,7 @@ import multiprocessing
 import os
 import sys
 import time
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Generator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
@@ -87,7 +87,8 @@ class CampaignJob(Protocol):
     ``config()`` is stored with the campaign so a resumed run can check it matches.
     """
 
-    n_scenarios: int
+    @property
+    def n_scenarios(self) -> int: ...
 
     def config(self) -> dict[str, Any]: ...
 
@@ -342,6 +343,8 @@ def default_campaign_spec(n_joints: int = 2, movement_s: float = 6.0) -> Campaig
             "impulse", "torque_step", "torque_window", "sinusoid", "random_torque", "wall", "hold"
         )},
         joints=list(range(n_joints)),
+        perturbations_per_scenario=1,
+        positive_sign_probability=0.5,
         onset_s=Uniform(low=0.08 * movement_s, high=0.75 * movement_s),
         duration_s={
             "torque_step": Uniform(low=0.2, high=1.0),
@@ -418,7 +421,7 @@ def run_batch(
     return job.run_batch(batch_index, tuple(indexes))
 
 
-BatchResults = Iterator[list[ScenarioOutcome]]
+BatchResults = Generator[list[ScenarioOutcome], None, None]
 
 
 def _inline_results(job: CampaignJob, batches: list[tuple[int, tuple[int, ...]]]) -> BatchResults:
@@ -549,7 +552,7 @@ def run_campaign(
 
     if not batches:
         backend, n_workers = "inline", 0
-    if backend == "dask":
+    if backend == "dask" and scheduler is not None:
         results = _dask_results(job, batches, scheduler)
     elif backend == "inline":
         results = _inline_results(job, batches)

@@ -30,6 +30,7 @@ from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, check_schedule
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.primitives import Skill
 from compliant_demo.runtime import ReplayPlant, load_plant
+from compliant_demo.store import DemoStore, ReplayResultInfo
 
 __all__ = [
     "SAFETY_CAUTIONS",
@@ -215,7 +216,8 @@ def plot_stiffness_estimate(
                     marker="", linewidth=1.6, label="teacher ground truth")
         ax.plot(t, estimated[:, j], color="0.35", linestyle="--", marker="s",
                 markevery=_markevery(len(t)), linewidth=1.0, label="estimate")
-        _shade_mask(ax, t, ~excited[:, j], hatch="..", label="too little excitation")
+        _shade_mask(ax, t, np.logical_not(excited[:, j]), hatch="..",
+                    label="too little excitation")
         _label(ax, "time [s]", f"{name} stiffness [N*m/rad]")
     figure.suptitle("Stiffness estimate against the teacher's ground truth")
     return figure
@@ -256,7 +258,7 @@ def plot_schedule_checks(
                      label=f"under-damping threshold {damping_ratio_floor:g}")
     for number, (flag_name, mask) in enumerate(flags.items()):
         mask = np.asarray(mask, dtype=bool)
-        any_joint = mask.any(axis=1) if mask.ndim == 2 else mask
+        any_joint = np.asarray(mask.any(axis=1) if mask.ndim == 2 else mask)
         for ax in (ax_k, ax_z):
             _shade_mask(ax, t, any_joint, hatch=_HATCHES[number % len(_HATCHES)],
                         label=f"flagged: {flag_name}")
@@ -537,20 +539,20 @@ def _flag_masks(checks: ScheduleReport) -> dict[str, np.ndarray]:
     return masks
 
 
-def _latest_campaign(store: object, skill_id: str) -> str | None:
+def _latest_campaign(store: DemoStore, skill_id: str) -> str | None:
     results = [r for r in store.find_replay_results(skill_id=skill_id) if r.campaign_id]
     if not results:
         return None
     return max(results, key=lambda r: r.created).campaign_id
 
 
-def _metric_column(results: Sequence[object], name: str) -> np.ndarray:
+def _metric_column(results: Sequence[ReplayResultInfo], name: str) -> np.ndarray:
     return np.array([np.nan if r.metrics.get(name) is None else float(r.metrics[name])
                      for r in results])
 
 
 def _representative_traces(
-    store: object, results: Sequence[object], kinds: np.ndarray
+    store: DemoStore, results: Sequence[ReplayResultInfo], kinds: np.ndarray
 ) -> dict[str, tuple[np.ndarray, np.ndarray, tuple[float, float] | None]]:
     """Per kind, the scenario with the median peak deviation: its trace and perturbation window."""
     deviation = _metric_column(results, "peak_deviation_max_rad")
@@ -572,7 +574,7 @@ def _representative_traces(
 
 
 def collect_report_content(
-    store: object,
+    store: DemoStore,
     skill_name: str,
     *,
     version: int | None = None,
@@ -626,23 +628,22 @@ def collect_report_content(
             "dynamic time warping (dashed, markers) and +-2 standard deviations (hatched).",
             plot_demonstrations([(d.t, d.position) for d in demos], aligned.time, aligned.mean,
                                 np.sqrt(aligned.variance), joints)))
-    with_stiffness = [d for d in demos if d.stiffness is not None]
+    with_stiffness = [(i, d, d.stiffness) for i, d in enumerate(demos) if d.stiffness is not None]
     if with_stiffness:
-        demo = with_stiffness[0]
-        index = demos.index(demo)
+        index, demo, estimate = with_stiffness[0]
         truth_k = None
         if truth is not None and index < len(truth.series):
             t_truth, k_truth = truth.series[index]
             k_truth = _as_2d(k_truth, "truth")
             truth_k = np.column_stack([np.interp(demo.t, t_truth, k_truth[:, j])
                                        for j in range(k_truth.shape[1])])
-        excited = np.isfinite(demo.stiffness)
+        excited = np.isfinite(estimate)
         figures.append(ReportFigure(
             "stiffness_estimate", "Estimated stiffness against the teacher's ground truth",
             "The recorder's online sliding-window estimate for the first demonstration; dotted "
             "hatching marks windows the estimator flagged as not excited enough (no estimate)."
             + ("" if truth_k is not None else " No ground truth was given for this store."),
-            plot_stiffness_estimate(demo.t, demo.stiffness, truth_k, excited, joints)))
+            plot_stiffness_estimate(demo.t, estimate, truth_k, excited, joints)))
         summary.append(("estimate coverage",
                         f"{100 * excited.mean():.0f} % of samples excited enough"))
 
@@ -664,7 +665,7 @@ def collect_report_content(
         tuple((s.joint, s.kind, s.t_start, s.t_end, s.worst, s.unit) for s in checks.stretches),
         caption=f"Checks: {', '.join(FLAG_KINDS)}.", empty_text="no stretch flagged")]
 
-    if campaign is not None:
+    if campaign is not None and job is not None:
         results = list(store.find_replay_results(campaign_id=campaign_id))
         if not results:
             raise NotFoundError(f"campaign {campaign_id!r} has no results yet")

@@ -196,7 +196,7 @@ def record_demonstrations(settings: TourSettings, progress: bool) -> tuple[list[
     log_path = settings.out_dir / "nodes.log"
     with open(log_path, "w", encoding="utf-8") as log:
         processes = start_nodes(description, env=node_environment(settings.domain_id),
-                                stdout=log, stderr=subprocess.STDOUT)
+                                stdout=log.fileno(), stderr=subprocess.STDOUT)
     names = [node.name or node.executable for node in description.nodes]
     teacher = processes[names.index("teacher")]
     deadline = time.monotonic() + settings.record_timeout_s
