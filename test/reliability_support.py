@@ -29,6 +29,7 @@ from hypothesis import strategies as st
 
 __all__ = [
     "JOINTS",
+    "JUNK_SCALARS",
     "CHUNK_SAMPLES",
     "RATE_HZ",
     "FUZZ_COUNTER",
@@ -51,6 +52,16 @@ JOINTS = ["shoulder", "elbow"]
 CHUNK_SAMPLES = 50
 RATE_HZ = 1000.0
 CHANNELS = ("position", "velocity", "torque", "stiffness")
+
+# Scalars of every JSON/YAML kind, the non-finite floats and huge integers included: the common
+# leaves of the fuzzers' values (each adds the words of its own parser).
+JUNK_SCALARS = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(min_value=-(2**100), max_value=2**100),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=20),
+)
 
 # Counts every fuzz case a fuzz test body ran; the benchmark runs the fuzz tests in-process and
 # reads this after pytest returns.

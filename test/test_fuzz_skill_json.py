@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 from reliability_support import (
     FUZZ_SETTINGS,
     JOINTS,
+    JUNK_SCALARS,
     count_case,
     mutated_tree,
     no_hang,
@@ -100,11 +101,7 @@ def _check_skill_json(target: _Target, text: str) -> None:
 
 
 _leaves = st.one_of(
-    st.none(),
-    st.booleans(),
-    st.integers(min_value=-(10**6), max_value=10**6),
-    st.floats(allow_nan=True, allow_infinity=True),
-    st.text(max_size=10),
+    JUNK_SCALARS,
     st.sampled_from(["classic", "goal_robust", "lwr", "ridge", "ratio", "learned", [], {},
                      [[1.0, 2.0]], [0.0], -1.0, 0.0, 1e308]),
 )  # fmt: skip

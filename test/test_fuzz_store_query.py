@@ -16,7 +16,14 @@ from datetime import UTC, datetime
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from reliability_support import FUZZ_SETTINGS, count_case, no_hang, sample_digest, write_demo
+from reliability_support import (
+    FUZZ_SETTINGS,
+    JUNK_SCALARS,
+    count_case,
+    no_hang,
+    sample_digest,
+    write_demo,
+)
 
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.store import DemoStore
@@ -53,11 +60,7 @@ def _digest(store: DemoStore) -> str:
 
 
 _junk = st.one_of(
-    st.none(),
-    st.booleans(),
-    st.integers(min_value=-(2**70), max_value=2**70),
-    st.floats(allow_nan=True, allow_infinity=True),
-    st.text(max_size=30),
+    JUNK_SCALARS,
     st.binary(max_size=10),
     st.lists(st.text(max_size=10), max_size=3),
     st.dictionaries(st.text(max_size=5), st.integers(), max_size=2),

@@ -14,7 +14,7 @@ import pytest
 import yaml
 from hypothesis import given
 from hypothesis import strategies as st
-from reliability_support import FUZZ_SETTINGS, count_case, mutated_tree, no_hang
+from reliability_support import FUZZ_SETTINGS, JUNK_SCALARS, count_case, mutated_tree, no_hang
 
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.models import (
@@ -28,11 +28,7 @@ PARAMETER_MODELS = (JointParams, IdealImpedanceParams, AntagonisticParams)
 FIELD_NAMES = sorted({name for model in PARAMETER_MODELS for name in model.model_fields})
 
 _scalars = st.one_of(
-    st.none(),
-    st.booleans(),
-    st.integers(min_value=-(10**30), max_value=10**30),
-    st.floats(allow_nan=True, allow_infinity=True),
-    st.text(max_size=20),
+    JUNK_SCALARS,
     st.sampled_from(["ideal", "antagonistic", "shoulder", "elbow", "1e400", "-.inf", "0x1F"]),
 )
 _values = st.recursive(
