@@ -113,6 +113,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
         (["list", "--where", "1; DELETE FROM demonstrations"], "was refused"),
         (["import", "notes.txt"], "cannot tell the format of 'notes.txt': give --format"),
         (["import", "missing.csv"], "CSV file 'missing.csv' does not exist"),
+        (["import", "some_bag", "--format", "bag"], "a bag has no skill name in it: give --skill"),
         (
             ["export", "FIRST", "--format", "csv", "--out", "nowhere/x.csv"],
             "cannot write 'nowhere/x.csv'",
@@ -130,6 +131,22 @@ def test_bad_input_gives_one_line_error(populated, capsys, monkeypatch, tmp_path
     assert err.startswith(f"compliant-demo {argv[0]}: error: ")
     assert re.search(message, err)
     assert integrity(path) == "ok"
+
+
+def test_default_store_folder_is_created_on_first_import(tmp_path, capsys, monkeypatch):
+    source = tmp_path / "source.sqlite"
+    with DemoStore(source) as store:
+        demo_id = add_demo(store)
+    assert main(["export", demo_id, "--format", "npz", "--out", str(tmp_path / "d.npz"),
+                 "--store", str(source)]) == 0  # fmt: skip
+    monkeypatch.delenv("COMPLIANT_DEMO_STORE", raising=False)
+    monkeypatch.setenv("XDG_DATA_HOME", str(tmp_path / "data"))
+    assert main(["import", str(tmp_path / "d.npz")]) == 0
+    default = tmp_path / "data" / "compliant_demo" / "store.sqlite"
+    assert oct(default.stat().st_mode & 0o777) == "0o640"
+    with DemoStore(default, read_only=True) as store:
+        assert [info.id for info in store.find_demonstrations()] == [demo_id]
+    capsys.readouterr()
 
 
 def test_missing_and_foreign_store_files(tmp_path, capsys):

@@ -33,6 +33,8 @@ def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
     """The store; commands that only read still open a writable file writable (never creating
     it), because only a writable connection removes SQLite's -wal/-shm files when it closes."""
     path = store_path_of(args)
+    if write and args.store is None:
+        path.parent.mkdir(mode=0o750, parents=True, exist_ok=True)  # first use of the default
     writable = write or (path.is_file() and os.access(path, os.W_OK))
     return DemoStore(path, read_only=not writable, create=write)
 
@@ -124,6 +126,12 @@ def _format_of(path: Path, given: str | None) -> str:
     raise InvalidInputError(f"cannot tell the format of {str(path)!r}: give --format")
 
 
+def _bag_skill(args: argparse.Namespace) -> str:
+    if not args.skill:
+        raise InvalidInputError("a bag has no skill name in it: give --skill")
+    return str(args.skill)
+
+
 def _cmd_import(args: argparse.Namespace) -> int:
     meta: dict[str, Any] = {
         "skill": args.skill, "operator": args.operator, "notes": args.notes,
@@ -135,7 +143,7 @@ def _cmd_import(args: argparse.Namespace) -> int:
         "bag": lambda store, path: import_bag(
             store, path, joint_topic=args.joint_topic, stiffness_topic=args.stiffness_topic,
             joints=args.joints.split(",") if args.joints else None, skip_bad=args.skip_bad,
-            **{"skill": args.skill or "", **{k: v for k, v in meta.items() if k != "skill" and v}},
+            **{"skill": _bag_skill(args), **{k: v for k, v in meta.items() if k != "skill" and v}},
         ),
     }  # fmt: skip
     added = []
