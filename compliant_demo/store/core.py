@@ -486,9 +486,12 @@ class DemoStore:
     def _append(
         self, conn: Any, demo_id: str, times: np.ndarray, arrays: Mapping[str, np.ndarray]
     ) -> int:
-        status, t_first, n_samples = conn.execute(
+        row = conn.execute(
             "SELECT status, t_first, n_samples FROM demonstrations WHERE id = ?", (demo_id,)
         ).fetchone()
+        if row is None:  # deleted by another store object since its layout was cached
+            raise NotFoundError(f"demonstration {demo_id!r} not found in {self._label}")
+        status, t_first, n_samples = row
         if status != "recording":
             raise StoreError(
                 f"demonstration {demo_id!r} is {status!r}, not 'recording': cannot append samples"
