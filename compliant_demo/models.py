@@ -77,13 +77,17 @@ class JointParams(_Record):
 
 
 class IdealImpedanceParams(_Record):
-    """Ideal variable impedance: stiffness and damping follow commands through lag and rate limit."""
+    """Ideal variable impedance: stiffness and damping follow commands via lag and rate limit."""
 
     kind: Literal["ideal"] = "ideal"
     stiffness_min: PositiveFloat = Field(1.0, description="Lowest realisable stiffness, N*m/rad.")
-    stiffness_max: PositiveFloat = Field(200.0, description="Highest realisable stiffness, N*m/rad.")
+    stiffness_max: PositiveFloat = Field(
+        200.0, description="Highest realisable stiffness, N*m/rad."
+    )
     damping_min: NonNegativeFloat = Field(0.0, description="Lowest realisable damping, N*m*s/rad.")
-    damping_max: NonNegativeFloat = Field(10.0, description="Highest realisable damping, N*m*s/rad.")
+    damping_max: NonNegativeFloat = Field(
+        10.0, description="Highest realisable damping, N*m*s/rad."
+    )
     time_constant: PositiveFloat = Field(
         0.02, description="First-order lag of stiffness and damping, s."
     )
