@@ -208,7 +208,8 @@ class ReplayCampaign:
             self.plant.mechanism,
             rollout.position[:n_steps],
             rollout.stiffness[:n_steps],
-            rollout.damping[:n_steps],
+            # The antagonistic springs have no damping input: send no damping command at all.
+            None if self.plant.mechanism.kind == "antagonistic" else rollout.damping[:n_steps],
             schedules=list(schedules),
             q0=rollout.position[0],
             dt=self.dt,

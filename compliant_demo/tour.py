@@ -35,9 +35,18 @@ from compliant_demo.report import GroundTruth, collect_report_content, write_rep
 from compliant_demo.runtime import load_plant
 from compliant_demo.store import DemoStore
 
-__all__ = ["TourSettings", "TourResult", "TourError", "run_tour", "package_launch_file"]
+__all__ = [
+    "TourSettings",
+    "TourResult",
+    "TourError",
+    "run_tour",
+    "package_file",
+    "package_launch_file",
+    "node_environment",
+]
 
 SKILL = "cork_seat"
+DEFAULT_PLANT = "joint_cork_seat_antagonistic.yaml"
 OPERATOR = "operator_a"
 _STOP_GRACE_S = 10.0
 
@@ -62,6 +71,10 @@ class TourSettings:
     scheduler : Dask scheduler address instead of local workers
     record_timeout_s : longest wait for the recording, s
     launch_file : the recording launch file; None uses the package's ``record.launch.xml``
+    plant : the target joints and mechanism the skill is replayed on (YAML, see
+        :func:`compliant_demo.runtime.load_plant`); None uses the package's
+        ``config/joint_cork_seat_antagonistic.yaml``: antagonistic springs, whose damping is
+        not coupled to stiffness, on a bench arm with gravity, friction and torque limits
     """
 
     store: Path
@@ -74,6 +87,7 @@ class TourSettings:
     scheduler: str | None = None
     record_timeout_s: float = 150.0
     launch_file: Path | None = None
+    plant: Path | None = None
 
     def __post_init__(self) -> None:
         if not 2 <= self.n_demonstrations <= 50:
@@ -123,18 +137,24 @@ class TourResult:
         }
 
 
-def package_launch_file(name: str) -> Path:
-    """A launch file of the package: the source tree's ``launch/`` or the installed share dir."""
+def package_file(folder: str, name: str) -> Path:
+    """A file of the package's ``launch/`` or ``config/``: in the source tree or installed under
+    ``share/compliant_demo``."""
     candidates = [
-        Path(__file__).resolve().parent.parent / "launch" / name,
-        Path(sys.prefix) / "share" / "compliant_demo" / "launch" / name,
+        Path(__file__).resolve().parent.parent / folder / name,
+        Path(sys.prefix) / "share" / "compliant_demo" / folder / name,
     ]
     for candidate in candidates:
         if candidate.is_file():
             return candidate
     raise InvalidInputError(
-        f"launch file {name!r} not found (looked in {[str(c.parent) for c in candidates]})"
+        f"{folder} file {name!r} not found (looked in {[str(c.parent) for c in candidates]})"
     )
+
+
+def package_launch_file(name: str) -> Path:
+    """A launch file of the package (see :func:`package_file`)."""
+    return package_file("launch", name)
 
 
 def node_environment(domain_id: int) -> dict[str, str]:
@@ -259,7 +279,9 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     started = time.perf_counter()
     demo_ids, truth_path = _timed(timings, "record", lambda: record_demonstrations(
         settings, progress))
-    plant = load_plant(None)
+    if settings.plant is not None and not Path(settings.plant).is_file():
+        raise InvalidInputError(f"plant = {str(settings.plant)!r}: no such file")
+    plant = load_plant(settings.plant or package_file("config", DEFAULT_PLANT))
     joints = [joint.name for joint in plant.joints]
     mechanism = plant.mechanism
     with DemoStore(settings.store, durable=False) as store:

@@ -75,13 +75,16 @@ def add_skill_options(parser: argparse.ArgumentParser) -> None:
                         metavar="N", help="skill version (default: the latest)")
 
 
-def add_plant_option(parser: argparse.ArgumentParser) -> None:
+def add_plant_option(
+    parser: argparse.ArgumentParser,
+    default_text: str = "the cork_seat bench arm on the ideal variable-impedance mechanism",
+) -> None:
     """``--plant FILE``: the simulated target joints and mechanism."""
     parser.add_argument(
         "--plant", type=Path, default=None, metavar="FILE",
         help="YAML with 'joints' (inertia kg*m^2, damping N*m*s/rad, limits rad, torque limit "
-             "N*m) and 'mechanism' (kind ideal or antagonistic, stiffness range N*m/rad); "
-             "default: the cork_seat bench arm on the ideal variable-impedance mechanism")
+             f"N*m) and 'mechanism' (kind ideal or antagonistic, stiffness range N*m/rad); "
+             f"default: {default_text}")
 
 
 def add_backend_options(parser: argparse.ArgumentParser) -> None:

@@ -8,6 +8,7 @@ from pathlib import Path
 
 from compliant_demo.cli._job_options import (
     add_backend_options,
+    add_plant_option,
     add_progress_option,
     non_negative_int,
     positive_int,
@@ -38,8 +39,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "loopback only), record cork_seat demonstrations of the two-joint bench arm (soft "
             "approach, stiff press, soft retreat; about 7 s each, real time) into the store, "
             "learn the skill, replay it in a campaign of perturbed scenarios over every "
-            "perturbation kind, and write the HTML report. Prints a short summary with the "
-            "report's path. Takes about two minutes on two cores."
+            "perturbation kind on the target arm (default: antagonistic spring pairs, whose "
+            "damping does not follow the stiffness), and write the HTML report. Prints a short "
+            "summary with the report's path. Takes one to two minutes on two cores."
         ),
     )
     add_store_option(parser)
@@ -54,6 +56,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--domain-id", type=non_negative_int, default=None, metavar="ID",
                         help=f"ROS_DOMAIN_ID of the node processes, 0 to 101 (default: "
                              f"$ROS_DOMAIN_ID or {_DEFAULT_DOMAIN})")
+    add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "
+                                          "bench arm on antagonistic spring pairs")
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
@@ -74,6 +78,7 @@ def _run(args: argparse.Namespace) -> int:
         domain_id=_default_domain() if args.domain_id is None else args.domain_id,
         workers=args.workers,
         scheduler=args.scheduler,
+        plant=args.plant,
     )
     result = run_tour(settings, progress=show_progress(args))
     if args.json:
