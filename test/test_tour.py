@@ -44,6 +44,9 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     assert len(results) == 28
     assert sorted({r.parameters["kind"] for r in results}) == sorted(PERTURBATION_KINDS)
     assert set(result["timings_s"]) == {"record", "learn", "campaign", "report", "total"}
+    # The default target has antagonistic springs: no damping input, so the checks flag the
+    # teacher's stiffness as under-damped on it.
+    assert result["summary"]["mechanism"] == "antagonistic"
 
     truth = out / "teacher_truth.npz"
     assert truth.is_file() and (out / "nodes.log").is_file()
@@ -56,6 +59,7 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     page = (out / "report.html").read_text(encoding="utf-8")
     assert "estimate coverage" in page and "cork_seat version 1" in page
     assert "ISO/TS 15066" in page and "Limit violations in the campaign" in page
+    assert "<td>under_damped</td>" in page
 
 
 def test_node_processes_get_loopback_discovery_and_their_domain(monkeypatch):
