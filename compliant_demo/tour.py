@@ -286,12 +286,18 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     mechanism = plant.mechanism
     with DemoStore(settings.store, durable=False) as store:
         def learn():
-            demos = [store.load_demonstration(i, joints=joints) for i in demo_ids]
-            skill = learn_skill(
-                demos, joints=joints, n_basis=30, name=SKILL,
-                stiffness_range=(mechanism.stiffness_min, mechanism.stiffness_max),
-                target_inertia=[joint.inertia for joint in plant.joints],
-            )
+            with tqdm(total=len(demo_ids) + 1, desc="learn", unit="step", file=sys.stderr,
+                      disable=not progress, leave=False) as bar:
+                demos = []
+                for demo_id in demo_ids:
+                    demos.append(store.load_demonstration(demo_id, joints=joints))
+                    bar.update(1)
+                skill = learn_skill(
+                    demos, joints=joints, n_basis=30, name=SKILL,
+                    stiffness_range=(mechanism.stiffness_min, mechanism.stiffness_max),
+                    target_inertia=[joint.inertia for joint in plant.joints],
+                )
+                bar.update(1)
             return skill, save_skill(store, skill)
 
         skill, record = _timed(timings, "learn", learn)
