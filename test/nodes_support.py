@@ -164,6 +164,7 @@ class TestClient:
         self.node = Node(name, context=self.context)
         self.executor = SingleThreadedExecutor(context=self.context)
         self.executor.add_node(self.node)
+        self._clients: dict[str, Any] = {}
 
     def spin_for(self, seconds: float) -> None:
         deadline = time.monotonic() + seconds
@@ -177,14 +178,15 @@ class TestClient:
     def call_trigger(self, service: str, timeout_s: float = 10.0) -> Any:
         from std_srvs.srv import Trigger
 
-        client = self.node.create_client(Trigger, service)
-        try:
-            self.spin_until(client.service_is_ready, timeout_s, f"service {service}")
-            future = client.call_async(Trigger.Request())
-            self.spin_until(future.done, timeout_s, f"response of {service}")
-            return future.result()
-        finally:
-            self.node.destroy_client(client)
+        # One client per service for the whole test: a fresh client's response reader may not be
+        # matched yet when the server answers, and that answer would be lost.
+        client = self._clients.get(service)
+        if client is None:
+            client = self._clients[service] = self.node.create_client(Trigger, service)
+        self.spin_until(client.service_is_ready, timeout_s, f"service {service}")
+        future = client.call_async(Trigger.Request())
+        self.spin_until(future.done, timeout_s, f"response of {service}")
+        return future.result()
 
     def close(self) -> None:
         self.executor.shutdown()

@@ -24,6 +24,7 @@ from compliant_demo.teaching import windowed_truth
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
 DOMAIN_ID = 43
+PIPELINE_DOMAIN_ID = 57  # the fresh pipeline gets a domain of its own, far from the others
 N_DEMOS = 2
 SEED = 11
 
@@ -187,7 +188,7 @@ def test_pipeline_launch_runs_all_four_nodes_to_a_stored_replay(tmp_path: Path) 
     with launched(
         "pipeline.launch.xml",
         arguments,
-        DOMAIN_ID + 1,
+        PIPELINE_DOMAIN_ID,
         tmp_path,
         {"teacher": {"pause_s": "0.2", "duration_s": "3.0"}},
     ) as nodes:
@@ -201,3 +202,52 @@ def test_pipeline_launch_runs_all_four_nodes_to_a_stored_replay(tmp_path: Path) 
         (skill,) = db.list_skills()
         (result,) = db.find_replay_results(skill_id=skill.id)
     assert result.status == "ok"
+
+
+def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: Path) -> None:
+    """Real-time replay started by its ``run`` service; a live push on perturbation_command."""
+    from sensor_msgs.msg import JointState
+    from std_msgs.msg import Float64MultiArray
+
+    store, _result = learned
+    client = TestClient(DOMAIN_ID, "replay_test_client")
+    received: dict[str, list] = {"joint_states": [], "stiffness_commanded": [],
+                                 "stiffness_realised": [], "perturbation": []}
+    for topic, kind in (("joint_states", JointState), ("stiffness_commanded", Float64MultiArray),
+                        ("stiffness_realised", Float64MultiArray),
+                        ("perturbation", Float64MultiArray)):
+        client.node.create_subscription(kind, topic, received[topic].append, 100)
+    push = client.node.create_publisher(Float64MultiArray, "perturbation_command", 10)
+    try:
+        arguments = {"store": str(store), "schedule": ""}
+        with launched("replay.launch.xml", arguments, DOMAIN_ID, tmp_path,
+                      {"replay": {"duration_s": "1.5", "settle_s": "0.3"}}) as nodes:
+            reply = client.call_trigger("run", timeout_s=30.0)
+            assert reply.success, reply.message + nodes.all_logs()
+            assert client.call_trigger("run").success is False  # one replay at a time
+            client.spin_until(lambda: len(received["joint_states"]) > 20, 20.0, "joint states")
+            push.publish(Float64MultiArray(data=[0.5, 0.0]))
+            client.spin_for(0.3)
+            push.publish(Float64MultiArray(data=[0.0, 0.0]))
+
+            def stored():
+                with DemoStore(store, read_only=True) as db:
+                    return [r for r in db.find_replay_results()
+                            if r.parameters.get("duration_s") == 1.5]
+
+            (info,) = client.spin_until(stored, 30.0, "the replay result")
+            assert nodes.interrupt("replay") == 0, nodes.all_logs()
+    finally:
+        client.close()
+    with DemoStore(store, read_only=True) as db:
+        trace = db.load_replay_result(info.id).trace
+    assert info.status == "ok" and info.parameters["real_time"] is True
+    assert trace["q"].shape == (1800, 2)  # (1.5 s + 0.3 s) at 1 kHz
+    pushed = trace["tau_external"][:, 0] == 0.5
+    assert 0.1 <= pushed.mean() * 1.8 <= 0.6  # about 0.3 s of the push, within timing slack
+    assert not trace["tau_external"][:, 1].any()
+    # Every tenth step is published (publish_decimation 10) on each topic, one value per joint.
+    for topic, messages in received.items():
+        assert 150 <= len(messages) <= 180, (topic, len(messages))
+    assert any(m.data[0] == 0.5 for m in received["perturbation"])
+    assert list(received["joint_states"][0].name) == ["shoulder", "elbow"]

@@ -129,8 +129,11 @@ class ReplayNode(Node):
             response.success, response.message = False, "a replay is already running"
         else:
             response.success, response.message = self._prepare()
-        log = self.get_logger().info if response.success else self.get_logger().error
-        log(f"run: {response.message}")
+        # rclpy refuses one call site logging at two severities, hence two calls.
+        if response.success:
+            self.get_logger().info(f"run: {response.message}")
+        else:
+            self.get_logger().error(f"run refused: {response.message}")
         return response
 
     def _on_live_torque(self, msg: Float64MultiArray) -> None:

@@ -101,8 +101,10 @@ class TeacherNode(Node):
             self._end_demonstration()
         elif self._state == "stopping" and self._replied():
             result = self._reply()
-            log = self.get_logger().info if result.success else self.get_logger().error
-            log(f"recorder: {result.message}")
+            if result.success:
+                self.get_logger().info(f"recorder: {result.message}")
+            else:  # rclpy refuses one call site logging at two severities
+                self.get_logger().error(f"recorder refused to stop: {result.message}")
             self._after_demonstration()
         elif self._state == "pausing" and elapsed >= self._pause_s:
             self._begin_demonstration()
