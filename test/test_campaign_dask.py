@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import json
+
 import distributed
 import pytest
 from campaign_support import campaign_job, store_with_demos_and_skill
 
 from compliant_demo.campaign import run_campaign
+from compliant_demo.cli import main
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.store import DemoStore
 
@@ -74,3 +77,15 @@ def test_an_unusable_scheduler_address_is_a_clear_error(tmp_path):
     with DemoStore(tmp_path / "s.sqlite") as store, pytest.raises(
             InvalidInputError, match=r"scheduler = 'nosuch://127.0.0.1:1': cannot connect"):
         run_campaign(store, campaign_job(), skill_id=skill_id, scheduler="nosuch://127.0.0.1:1")
+
+
+def test_the_campaign_command_runs_on_the_scheduler_it_is_given(tmp_path, scheduler_address,
+                                                                capsys):
+    store_with_demos_and_skill(tmp_path / "s.sqlite")
+    status = main(["campaign", "--store", str(tmp_path / "s.sqlite"), "--scenarios", "7",
+                   "--duration", "1.5", "--settle", "0.3", "--scheduler", scheduler_address,
+                   "--json"])
+    captured = capsys.readouterr()
+    assert status == 0, captured.err
+    data = json.loads(captured.out)
+    assert (data["backend"], data["workers"], data["run"]) == ("dask", 2, 7)
