@@ -38,6 +38,7 @@ __all__ = [
     "channel",
     "chunk_arrays",
     "count_case",
+    "demo_seed",
     "expected_samples",
     "field",
     "integrity",
@@ -229,27 +230,50 @@ def expected_samples(seed: int, n_chunks: int, n_joints: int = len(JOINTS)) -> d
     return {name: np.concatenate([chunk[name] for chunk in chunks]) for name in chunks[0]}
 
 
-def _writer_main(path: str, progress_path: str, seed: int, max_chunks: int) -> None:
-    """Child of a kill trial: append chunks until killed, reporting each one after it returned.
+def demo_seed(seed: int, cycle: int) -> int:
+    """Seed of the chunks of demonstration number ``cycle`` of writer ``seed``."""
+    return seed * 1000 + cycle
 
-    Progress lines are written with single small ``os.write`` calls, so a line either reached
-    the file in full or not at all when SIGKILL arrives; a reported chunk has been committed.
+
+def _writer_main(
+    path: str, progress_path: str, seed: int, chunks_per_demo: int, n_demos: int = 1_000_000
+) -> None:
+    """Child of a kill trial: record ``n_demos`` demonstrations one after another (or until killed).
+
+    Each demonstration gets ``chunks_per_demo`` chunks and is finished "complete"; progress
+    lines ``D k id`` (begun), ``C k i`` (chunk i committed) and ``F k`` (finished) are written
+    with single small ``os.write`` calls after the store call returned, so a line either reached
+    the file in full or not at all when SIGKILL arrives: whatever is reported was committed.
     """
     from compliant_demo.store import DemoStore
 
     fd = os.open(progress_path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o600)
     with DemoStore(path) as store:
-        demo_id = store.begin_demonstration(skill="cork_seat", joints=JOINTS, operator="operator_a")
-        os.write(fd, f"D {demo_id}\n".encode())
-        for index in range(max_chunks):
-            store.append_chunk(demo_id, **chunk_arrays(seed, index))
-            os.write(fd, f"C {index}\n".encode())
+        for cycle in range(n_demos):
+            demo_id = store.begin_demonstration(
+                skill="cork_seat", joints=JOINTS, operator="operator_a", notes=f"cycle {cycle}"
+            )
+            os.write(fd, f"D {cycle} {demo_id}\n".encode())
+            for index in range(chunks_per_demo):
+                store.append_chunk(demo_id, **chunk_arrays(demo_seed(seed, cycle), index))
+                os.write(fd, f"C {cycle} {index}\n".encode())
+            store.finish_demonstration(demo_id, "complete")
+            os.write(fd, f"F {cycle}\n".encode())
     os.close(fd)
 
 
 @dataclass
+class _Reported:
+    """What the writer reported about one demonstration before it was killed."""
+
+    demo_id: str
+    chunks: int = 0
+    finished: bool = False
+
+
+@dataclass
 class KillTrialResult:
-    """What one SIGKILL trial found on the next open of the store."""
+    """What one SIGKILL trial found on the next open of the store (figures of its last demo)."""
 
     seed: int
     delay_s: float
@@ -258,7 +282,7 @@ class KillTrialResult:
     stored_chunks: int
     integrity: str
     status: str | None
-    exact: bool
+    demos_finished: int
     problem: str | None
 
     @property
@@ -267,18 +291,19 @@ class KillTrialResult:
         return self.problem is None
 
 
-def _read_progress(progress_path: Path) -> tuple[str | None, int]:
-    demo_id = None
-    reported = 0
+def _read_progress(progress_path: Path) -> dict[int, _Reported]:
+    reported: dict[int, _Reported] = {}
     if not progress_path.exists():
-        return demo_id, reported
+        return reported
     for line in progress_path.read_text().splitlines():
-        kind, _, value = line.partition(" ")
+        kind, cycle, *rest = line.split()
         if kind == "D":
-            demo_id = value
+            reported[int(cycle)] = _Reported(rest[0])
         elif kind == "C":
-            reported = int(value) + 1
-    return demo_id, reported
+            reported[int(cycle)].chunks = int(rest[0]) + 1
+        elif kind == "F":
+            reported[int(cycle)].finished = True
+    return reported
 
 
 def _wait_for_start(progress_path: Path, process: Any, timeout_s: float) -> None:
@@ -289,45 +314,65 @@ def _wait_for_start(progress_path: Path, process: Any, timeout_s: float) -> None
         time.sleep(0.0005)
 
 
-def _verify_trial(path: Path, seed: int, demo_id: str | None, reported: int) -> KillTrialResult:
-    from compliant_demo.store import DemoStore
-
-    def result(problem: str | None, **values: Any) -> KillTrialResult:
-        base = dict(
-            seed=seed, delay_s=0.0, demo_id=demo_id, reported_chunks=reported, stored_chunks=0,
-            integrity="", status=None, exact=False,
-        )
-        base.update(values)
-        return KillTrialResult(problem=problem, **base)
-
-    if not path.exists():
-        if demo_id is not None:
-            return result("store file missing although a demonstration was begun")
-        return result(None, integrity="no file")
-    check = integrity(path)
-    if check != "ok":
-        return result(f"integrity_check: {check}", integrity=check)
-    with DemoStore(str(path)) as store:
-        if demo_id is None:
-            return result(None, integrity=check)
-        loaded = store.load_demonstration(demo_id)
+def _check_demo(loaded: Any, seed: int, report: _Reported | None, chunks_per_demo: int
+                ) -> tuple[int, str | None]:  # fmt: skip
+    """(stored chunks, problem) of one demonstration of a killed writer."""
     status = loaded.info.status
     t = channel(loaded, "t")
     n_samples = 0 if t is None else t.shape[0]
     stored, remainder = divmod(n_samples, CHUNK_SAMPLES)
-    values = dict(integrity=check, status=status, stored_chunks=stored)
     if remainder:
-        return result(f"{n_samples} samples is not a whole number of chunks", **values)
-    if not reported <= stored <= reported + 1:
-        return result(f"{reported} chunks reported committed but {stored} stored", **values)
-    expected = expected_samples(seed, stored)
-    for name, want in expected.items():
+        return stored, f"{n_samples} samples is not a whole number of chunks"
+    reported = 0 if report is None else report.chunks
+    if report is not None and report.finished:
+        if status != "complete" or stored != chunks_per_demo:
+            return stored, f"a finished demonstration is {status!r} with {stored} chunks"
+    elif not reported <= stored <= reported + 1:
+        return stored, f"{reported} chunks reported committed but {stored} stored"
+    elif status != "incomplete" and not (status == "complete" and stored == chunks_per_demo):
+        return stored, f"interrupted demonstration has status {status!r}"
+    for name, want in expected_samples(seed, stored).items():
         got = channel(loaded, name)
         if got is None or got.shape != want.shape or not np.array_equal(got, want):
-            return result(f"channel {name} differs from what was appended", **values)
-    if status != "incomplete":
-        return result(f"interrupted demonstration has status {status!r}", exact=True, **values)
-    return result(None, exact=True, **values)
+            return stored, f"channel {name} differs from what was appended"
+    return stored, None
+
+
+def _verify_trial(path: Path, seed: int, reported: dict[int, _Reported], chunks_per_demo: int
+                  ) -> KillTrialResult:  # fmt: skip
+    from compliant_demo.store import DemoStore
+
+    last = reported[max(reported)] if reported else None
+    result = KillTrialResult(
+        seed=seed, delay_s=0.0, demo_id=None if last is None else last.demo_id,
+        reported_chunks=0 if last is None else last.chunks, stored_chunks=0, integrity="",
+        status=None, demos_finished=sum(r.finished for r in reported.values()), problem=None,
+    )  # fmt: skip
+    if not path.exists():
+        if reported:
+            result.problem = "store file missing although a demonstration was begun"
+        return result
+    result.integrity = integrity(path)
+    if result.integrity != "ok":
+        result.problem = f"integrity_check: {result.integrity}"
+        return result
+    by_id = {report.demo_id: (cycle, report) for cycle, report in reported.items()}
+    with DemoStore(str(path)) as store:
+        infos = list(store.find_demonstrations())
+        missing = set(by_id) - {info.id for info in infos}
+        if missing:
+            result.problem = f"reported demonstrations missing: {sorted(missing)}"
+            return result
+        for info in infos:
+            cycle, report = by_id.get(info.id, (int(info.notes.split()[-1]), None))
+            loaded = store.load_demonstration(info.id)
+            stored, problem = _check_demo(loaded, demo_seed(seed, cycle), report, chunks_per_demo)
+            if report is last and last is not None:
+                result.stored_chunks, result.status = stored, loaded.info.status
+            if problem is not None:
+                result.problem = f"demonstration {cycle}: {problem}"
+                return result
+    return result
 
 
 def write_demo(
@@ -344,9 +389,8 @@ def write_demo(
     return demo_id
 
 
-def _one_trial(
-    context: Any, start_lock: threading.Lock, folder: Path, seed: int, max_delay_s: float
-) -> KillTrialResult:
+def _one_trial(context: Any, start_lock: threading.Lock, folder: Path, seed: int,
+               max_delay_s: float, chunks_per_demo: int) -> KillTrialResult:  # fmt: skip
     rng = np.random.default_rng(seed)
     path = folder / f"trial_{seed}.sqlite"
     progress = folder / f"trial_{seed}.progress"
@@ -356,8 +400,9 @@ def _one_trial(
     delay = float(rng.uniform(0.0, max_delay_s / (4 if from_fork else 1)))
     with start_lock:
         process = context.Process(
-            target=_writer_main, args=(str(path), str(progress), seed, 100_000), daemon=True
-        )
+            target=_writer_main, args=(str(path), str(progress), seed, chunks_per_demo),
+            daemon=True,
+        )  # fmt: skip
         process.start()
     if not from_fork:
         _wait_for_start(progress, process, timeout_s=30.0)
@@ -365,8 +410,7 @@ def _one_trial(
     if process.is_alive():
         os.kill(process.pid, signal.SIGKILL)
     process.join(30.0)
-    demo_id, reported = _read_progress(progress)
-    trial = _verify_trial(path, seed, demo_id, reported)
+    trial = _verify_trial(path, seed, _read_progress(progress), chunks_per_demo)
     trial.delay_s = delay
     if process.exitcode not in (-signal.SIGKILL,) and trial.problem is None:
         trial.problem = f"writer exited with {process.exitcode} before it was killed"
@@ -375,12 +419,14 @@ def _one_trial(
 
 def run_kill_trials(
     folder: str | Path, n_trials: int, *, parallel: int = 3, max_delay_s: float = 0.12,
-    first_seed: int = 1000,
+    first_seed: int = 1000, chunks_per_demo: int = 1_000_000,
 ) -> list[KillTrialResult]:
     """Run ``n_trials`` SIGKILL trials, ``parallel`` at a time, each in its own store file.
 
-    Writers are forked from a forkserver that has imported the store once, so a trial costs a
-    fork rather than an interpreter start-up.
+    With the default ``chunks_per_demo`` the writer appends to one demonstration until killed;
+    a small value makes it record short demonstrations one after another, so kills also land in
+    ``begin_demonstration`` and ``finish_demonstration``. Writers are forked from a forkserver
+    that has imported the store once, so a trial costs a fork rather than an interpreter start.
     """
     from concurrent.futures import ThreadPoolExecutor
 
@@ -390,9 +436,10 @@ def run_kill_trials(
     start_lock = threading.Lock()
     with ThreadPoolExecutor(max_workers=parallel) as pool:
         futures = [
-            pool.submit(_one_trial, context, start_lock, folder, first_seed + k, max_delay_s)
+            pool.submit(_one_trial, context, start_lock, folder, first_seed + k, max_delay_s,
+                        chunks_per_demo)
             for k in range(n_trials)
-        ]
+        ]  # fmt: skip
         return [future.result() for future in futures]
 
 

@@ -22,6 +22,7 @@ from reliability_support import (
     CHUNK_SAMPLES,
     JOINTS,
     chunk_arrays,
+    demo_seed,
     expected_samples,
     integrity,
     sample_digest,
@@ -175,12 +176,14 @@ def test_readers_during_writes_see_only_whole_chunks(tmp_path: Path) -> None:
     progress = tmp_path / "live.progress"
     seed, n_chunks = 41, 300
     context = multiprocessing.get_context("forkserver")
-    writer = context.Process(target=_writer_main, args=(str(path), str(progress), seed, n_chunks))
+    writer = context.Process(
+        target=_writer_main, args=(str(path), str(progress), seed, n_chunks, 1)
+    )
     writer.start()
     while writer.is_alive() and not (progress.exists() and progress.stat().st_size > 0):
         time.sleep(0.001)
-    demo_id = progress.read_text().split()[1]
-    expected = expected_samples(seed, n_chunks)
+    demo_id = progress.read_text().split()[2]  # "D 0 <id>": the first demonstration begun
+    expected = expected_samples(demo_seed(seed, 0), n_chunks)
     seen_sizes = set()
     with DemoStore(str(path), read_only=True) as reader:
         while True:

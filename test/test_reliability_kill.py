@@ -35,3 +35,15 @@ def test_sigkill_trials_lose_nothing_that_was_committed(tmp_path: Path) -> None:
     assert all(t.status == "incomplete" for t in begun)
     assert len({t.stored_chunks for t in begun}) >= 10, "kills all landed at the same moment"
     assert sum(t.stored_chunks > 0 for t in begun) >= N_TRIALS // 2
+
+
+@pytest.mark.slow
+def test_sigkill_during_begin_and_finish_loses_nothing(tmp_path: Path) -> None:
+    # Short demonstrations of 2 chunks one after another: kills also land in begin and finish.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        trials = run_kill_trials(tmp_path, 60, parallel=6, first_seed=5000, chunks_per_demo=2)
+    problems = [f"seed {t.seed}: {t.problem}" for t in trials if not t.intact]
+    assert problems == []
+    assert sum(t.demos_finished for t in trials) >= 60, "too few demonstrations were finished"
+    assert {t.status for t in trials if t.demo_id is not None} >= {"incomplete"}
