@@ -217,3 +217,19 @@ def test_a_campaign_killed_mid_run_keeps_what_it_stored_and_resumes_to_the_same_
                                  batch_size=8, workers=0)
         assert (resumed.n_run, resumed.n_skipped) == (16 - len(kept), len(kept))
         assert _by_index(store, campaign_id) == _by_index(store, reference.campaign_id)
+
+
+def test_resume_with_other_settings_or_batches_is_refused(tmp_path):
+    skill_id = store_with_demos_and_skill(tmp_path / "s.sqlite")
+    with DemoStore(tmp_path / "s.sqlite", durable=False) as store:
+        first = run_campaign(store, campaign_job(n_scenarios=4), skill_id=skill_id,
+                             batch_size=2, workers=0)
+        with pytest.raises(InvalidInputError, match=r"settings \['seed'\] differ"):
+            run_campaign(store, campaign_job(n_scenarios=4, seed=99), skill_id=skill_id,
+                         campaign_id=first.campaign_id, workers=0)
+        with pytest.raises(InvalidInputError, match=r"batch_size = 3: campaign .* batches of 2"):
+            run_campaign(store, campaign_job(n_scenarios=4), skill_id=skill_id,
+                         campaign_id=first.campaign_id, batch_size=3, workers=0)
+        with pytest.raises(InvalidInputError, match=r"replays skill .*, not 'other-skill'"):
+            run_campaign(store, campaign_job(n_scenarios=4), skill_id="other-skill",
+                         campaign_id=first.campaign_id, workers=0)
