@@ -467,11 +467,12 @@ def _diagnostic_values(msg: Any) -> dict[str, str] | None:
 
 
 def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: float,
-                      slow_rate_hz: float) -> None:  # fmt: skip
+                      slow_rate_hz: float, call_stop: bool = True) -> None:  # fmt: skip
     """Publisher process of the flood: start, flood, fall back, stop; results as JSON.
 
     Header stamps advance one 1/rate_hz tick per message through both phases, so the slow phase
-    continues the same sample clock: any stamp missing from the store is a lost sample.
+    continues the same sample clock: any stamp missing from the store is a lost sample. The file
+    ``<result_path>.publishing`` appears when the flood begins.
     """
     import json
 
@@ -543,6 +544,7 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
             spin_for(0.05)
         result["start"] = call("start")
         result["t_flood_start"] = time.time()
+        Path(f"{result_path}.publishing").touch()
         result["flood_sent"] = publish_at(rate_hz, flood_s)
         result["t_flood_end"] = time.time()
         spin_for(2.0)
@@ -552,7 +554,7 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
         spin_for(2.0)
         result["diag_after_slow"] = diagnostics[-1][1] if diagnostics else None
         result["last_tick"] = tick - 1
-        result["stop"] = call("stop")
+        result["stop"] = call("stop") if call_stop else None
         result["t_end"] = time.time()
         result["diagnostics_seen"] = len(diagnostics)
         result["max_buffer_fill"] = max(
@@ -566,11 +568,14 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
 
 def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
               rate_hz: float = 20_000.0, slow_s: float = 2.0, slow_rate_hz: float = 100.0,
-              buffer_capacity: int = 1000) -> dict[str, Any]:  # fmt: skip
+              buffer_capacity: int = 1000, kill_after_s: float | None = None
+              ) -> dict[str, Any]:  # fmt: skip
     """Flood a real recorder process; return what the driver saw, the RSS trace and the store.
 
     The recorder runs as ``python -m compliant_demo.nodes.recorder`` with 7 joints, no stiffness
-    channel and a small buffer; its resident memory is sampled every 20 ms with psutil.
+    channel and a small buffer; its resident memory is sampled every 20 ms with psutil. With
+    ``kill_after_s`` the recorder is killed with SIGKILL that long after publishing began (and
+    the driver does not ask it to stop).
     """
     import json
     import subprocess
@@ -612,8 +617,20 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
     result_path = folder / "driver.json"
     driver_code = (
         "import reliability_support as r; "
-        f"r.flood_driver_main({str(result_path)!r}, {flood_s}, {rate_hz}, {slow_s}, {slow_rate_hz})"
+        f"r.flood_driver_main({str(result_path)!r}, {flood_s}, {rate_hz}, {slow_s}, "
+        f"{slow_rate_hz}, {kill_after_s is None})"
     )
+
+    def kill_when_due() -> None:
+        marker = Path(f"{result_path}.publishing")
+        while not marker.exists() and recorder.poll() is None and not stop_sampling.is_set():
+            time.sleep(0.005)
+        time.sleep(kill_after_s or 0.0)
+        if recorder.poll() is None:
+            recorder.kill()
+
+    if kill_after_s is not None:
+        threading.Thread(target=kill_when_due, daemon=True).start()
     try:
         driver = subprocess.run(
             [sys.executable, "-c", driver_code], env=env, capture_output=True, text=True,
