@@ -6,7 +6,7 @@ throughput on the local process pool (all cores), the same with 2 and with 1 wor
 local Dask cluster (2 single-threaded workers on 127.0.0.1) against the 2-worker local pool in
 the same run (the load average is reported: on shared cores the scaling is bounded by what the
 other processes leave). Then the tour (``compliant-demo tour``) end to end as its own process,
-with the node processes on loopback in ROS domain 101. One JSON object per line; the last line
+with the node processes on loopback in ROS domain 100. One JSON object per line; the last line
 is the summary ``{"bench": "campaign", ...}``.
 """
 
@@ -30,7 +30,7 @@ from compliant_demo.teaching import cork_seat_scenario, teaching_series
 N_SCENARIOS = 240
 BATCH_SIZE = 30
 MOVEMENT_S, SETTLE_S = 4.5, 0.5
-TOUR_DOMAIN_ID = 101
+TOUR_DOMAIN_ID = 100
 
 
 def _skill_in_store(path: Path) -> tuple[object, str]:
