@@ -336,3 +336,28 @@ def test_npz_with_pickled_object_arrays_is_refused(tmp_path: Path, array_name: s
             import_npz(store, path)
         assert list(store.find_demonstrations()) == []
     assert not marker.exists(), "the importer executed a pickle"
+
+
+_ENTITY_BOMB = (
+    '<?xml version="1.0"?><!DOCTYPE launch [<!ENTITY a "aaaaaaaaaa">'
+    + "".join(f'<!ENTITY {chr(98 + i)} "{("&" + chr(97 + i) + ";") * 10}">' for i in range(8))
+    + ']><launch><arg name="x" default="&i;"/></launch>'
+)
+_EXTERNAL_ENTITY = (
+    '<?xml version="1.0"?><!DOCTYPE launch [<!ENTITY x SYSTEM "file:///etc/hostname">]>'
+    '<launch><arg name="x" default="&x;"/></launch>'
+)
+
+
+@pytest.mark.parametrize(
+    "document", [_ENTITY_BOMB, _EXTERNAL_ENTITY], ids=["entity_expansion", "external_entity"]
+)
+def test_launch_reader_refuses_entity_tricks(tmp_path: Path, document: str) -> None:
+    # 10^9 characters from nested entities, or a local file pulled into an argument default.
+    from compliant_demo.exceptions import LaunchFileError
+    from compliant_demo.launch_file import read_launch_file
+
+    path = tmp_path / "hostile.launch.xml"
+    path.write_text(document)
+    with pytest.raises(LaunchFileError, match=r"hostile\.launch\.xml: not well-formed XML"):
+        read_launch_file(path)
