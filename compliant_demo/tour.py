@@ -96,6 +96,11 @@ class TourSettings:
             )
         if self.n_scenarios < 1:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
+        if not 0 <= self.seed <= 2**31 - 1 - self.n_demonstrations:
+            raise InvalidInputError(
+                f"seed = {self.seed}: must be 0 to 2**31 - 1 - n_demonstrations (demonstration i "
+                "uses seed + i)"
+            )
         if not 0 <= self.domain_id <= 101:
             raise InvalidInputError(f"domain_id = {self.domain_id}: must be 0 to 101")
         if not self.record_timeout_s > 0:

@@ -13,7 +13,13 @@ from compliant_demo.cli import main
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import PERTURBATION_KINDS
 from compliant_demo.store import DemoStore
-from compliant_demo.tour import TourSettings, node_environment, package_launch_file
+from compliant_demo.tour import (
+    TourError,
+    TourSettings,
+    node_environment,
+    package_launch_file,
+    run_tour,
+)
 
 DOMAIN_ID = 47  # this file's own ROS domain (tests use 20-99)
 
@@ -82,7 +88,37 @@ def test_the_recording_launch_file_ships_with_the_package():
     ({"n_scenarios": 0}, r"n_scenarios = 0: must be >= 1"),
     ({"domain_id": 102}, r"domain_id = 102: must be 0 to 101"),
     ({"record_timeout_s": 0.0}, r"record_timeout_s = 0.0: must be > 0 s"),
+    ({"seed": 2**31 - 2}, r"seed = 2147483646: must be 0 to 2\*\*31 - 1 - n_demonstrations"),
 ])
 def test_bad_tour_settings_are_refused(tmp_path, changes, message):
     with pytest.raises(InvalidInputError, match=message):
         TourSettings(store=tmp_path / "s.sqlite", out_dir=tmp_path, **changes)
+
+
+_FAILING_LAUNCH = """<launch>
+  <arg name="store" default=""/>
+  <arg name="demos" default="2"/>
+  <arg name="seed" default="1"/>
+  <arg name="operator" default="operator_a"/>
+  <arg name="truth" default=""/>
+  <node pkg="compliant_demo" exec="recorder_node" name="recorder">
+    <param name="store_path" value="$(var store)"/>
+  </node>
+  <node pkg="compliant_demo" exec="teacher_node" name="teacher">
+    <param name="n_demonstrations" value="0"/>
+  </node>
+</launch>
+"""
+
+
+@pytest.mark.ros
+def test_a_node_that_fails_during_recording_is_a_clear_tour_error(tmp_path):
+    # n_demonstrations = 0 is outside the teacher's declared range: its process exits non-zero.
+    launch = tmp_path / "failing.launch.xml"
+    launch.write_text(_FAILING_LAUNCH, encoding="utf-8")
+    settings = TourSettings(store=tmp_path / "s.sqlite", out_dir=tmp_path / "out",
+                            n_demonstrations=2, n_scenarios=7, domain_id=DOMAIN_ID + 1,
+                            launch_file=launch, record_timeout_s=60.0)
+    with pytest.raises(TourError, match=r"teacher node exited with 1 during recording; log "):
+        run_tour(settings, progress=False)
+    assert (tmp_path / "out" / "nodes.log").stat().st_size > 0
