@@ -21,6 +21,8 @@ __all__ = [
     "MechanismParams",
     "load_yaml_model",
     "model_from_mapping",
+    "read_yaml",
+    "validation_message",
 ]
 
 PositiveFloat = Annotated[float, Field(gt=0, allow_inf_nan=False)]
@@ -188,22 +190,43 @@ def model_from_mapping(model: type[ModelT], data: object, *, source: str = "inpu
     try:
         return model.model_validate(data)
     except ValidationError as exc:
-        first = exc.errors()[0]
-        field = ".".join(str(part) for part in first["loc"]) or model.__name__
+        raise InvalidInputError(f"{source}: {validation_message(exc)}") from None
+
+
+def validation_message(exc: ValidationError, prefix: str = "") -> str:
+    """One line naming the first invalid field (under ``prefix``), its value and the rule."""
+    first = exc.errors()[0]
+    field = ".".join(str(part) for part in first["loc"])
+    where = f"{prefix}.{field}" if prefix and field else prefix or field or "value"
+    return f"field {where!r} = {first.get('input')!r}: {first['msg']}"
+
+
+def read_yaml(path: str | Path) -> object:
+    """Parse a YAML file with safe loading; every failure is an InvalidInputError naming the file.
+
+    Only ``yaml.safe_load`` is used, so tags such as ``!!python/object`` are refused. Invalid
+    UTF-8, nesting too deep for the parser and integers too long to convert are reported too.
+    """
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except OSError as exc:
+        raise InvalidInputError(f"{path}: cannot read file: {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
         raise InvalidInputError(
-            f"{source}: field {field!r} = {first.get('input')!r}: {first['msg']}"
+            f"{path}: not UTF-8 text: {exc.reason} at byte {exc.start}"
         ) from None
+    try:
+        return yaml.safe_load(text)
+    except RecursionError:
+        raise InvalidInputError(f"{path}: YAML nested too deeply") from None
+    except (yaml.YAMLError, ValueError) as exc:
+        raise InvalidInputError(f"{path}: not a readable YAML document: {exc}") from None
 
 
 def load_yaml_model(model: type[ModelT], path: str | Path, *, key: str | None = None) -> ModelT:
     """Load ``model`` from a YAML file with safe loading, optionally from one top-level ``key``."""
-    path = Path(path)
-    try:
-        data = yaml.safe_load(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise InvalidInputError(f"{path}: cannot read file: {exc.strerror}") from None
-    except yaml.YAMLError as exc:
-        raise InvalidInputError(f"{path}: not valid YAML: {exc}") from None
+    data = read_yaml(path)
     if key is not None:
         if not isinstance(data, dict) or key not in data:
             raise InvalidInputError(f"{path}: missing top-level key {key!r}")

@@ -17,10 +17,10 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, cast
 
 import numpy as np
-import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import read_yaml, validation_message
 
 __all__ = [
     "Impulse",
@@ -186,13 +186,6 @@ class PerturbationSchedule(BaseModel):
         return [p.kind for p in self.perturbations]
 
 
-def _validation_message(exc: ValidationError, prefix: str) -> str:
-    first = exc.errors()[0]
-    field = ".".join(str(part) for part in first["loc"])
-    where = f"{prefix}.{field}" if prefix and field else prefix or field
-    return f"field {where!r} = {first.get('input')!r}: {first['msg']}"
-
-
 def _check_kind(data: object, where: str) -> type[_Kind]:
     if not isinstance(data, Mapping):
         raise InvalidInputError(f"{where}: expected a mapping, got {type(data).__name__}")
@@ -211,7 +204,7 @@ def perturbation_from_mapping(data: object, *, where: str = "perturbation") -> P
     try:
         return cast(Perturbation, model.model_validate(data))
     except ValidationError as exc:
-        raise InvalidInputError(f"{where}: {_validation_message(exc, '')}") from None
+        raise InvalidInputError(f"{where}: {validation_message(exc)}") from None
 
 
 def schedule_from_mapping(data: object, *, where: str = "schedule") -> PerturbationSchedule:
@@ -228,17 +221,7 @@ def schedule_from_mapping(data: object, *, where: str = "schedule") -> Perturbat
     try:
         return PerturbationSchedule.model_validate({**data, "perturbations": parsed})
     except ValidationError as exc:
-        raise InvalidInputError(f"{where}: {_validation_message(exc, '')}") from None
-
-
-def _read_yaml(path: str | Path) -> Any:
-    path = Path(path)
-    try:
-        return yaml.safe_load(path.read_bytes())
-    except OSError as exc:
-        raise InvalidInputError(f"{path}: cannot read file: {exc.strerror}") from None
-    except (yaml.YAMLError, UnicodeDecodeError, RecursionError, ValueError) as exc:
-        raise InvalidInputError(f"{path}: not a readable YAML document: {exc}") from None
+        raise InvalidInputError(f"{where}: {validation_message(exc)}") from None
 
 
 def load_schedule_yaml(path: str | Path) -> PerturbationSchedule:
@@ -249,12 +232,12 @@ def load_schedule_yaml(path: str | Path) -> PerturbationSchedule:
     InvalidInputError
         Unreadable file, unknown ``kind`` (named in the message) or an invalid field.
     """
-    return schedule_from_mapping(_read_yaml(path), where=str(path))
+    return schedule_from_mapping(read_yaml(path), where=str(path))
 
 
 def load_schedules_yaml(path: str | Path) -> list[PerturbationSchedule]:
     """Load a list of schedules from ``{scenarios: [schedule, ...]}`` or one schedule mapping."""
-    data = _read_yaml(path)
+    data = read_yaml(path)
     if isinstance(data, Mapping) and "scenarios" in data:
         scenarios = data["scenarios"]
         if not isinstance(scenarios, list):
@@ -462,7 +445,7 @@ class CampaignSpec(BaseModel):
 
 def load_campaign_yaml(path: str | Path) -> CampaignSpec:
     """Load a :class:`CampaignSpec` from YAML (safe loading), optionally under key ``campaign``."""
-    data = _read_yaml(path)
+    data = read_yaml(path)
     if isinstance(data, Mapping) and "campaign" in data:
         data = data["campaign"]
     if not isinstance(data, Mapping):
@@ -470,7 +453,7 @@ def load_campaign_yaml(path: str | Path) -> CampaignSpec:
     try:
         return CampaignSpec.model_validate(data)
     except ValidationError as exc:
-        raise InvalidInputError(f"{path}: {_validation_message(exc, '')}") from None
+        raise InvalidInputError(f"{path}: {validation_message(exc)}") from None
 
 
 def draw_scenarios(
