@@ -250,7 +250,7 @@ def import_bag(
             yield from chunks
 
         with messages:
-            return streaming_import(store, begin, all_chunks(), flags=flags)
+            return streaming_import(store, begin, all_chunks(), source=source, flags=flags)
     finally:
         reader.close()
 

@@ -44,6 +44,7 @@ __all__ = [
     "export_npz",
     "import_npz",
     "streaming_import",
+    "naming_file",
     "show_progress",
     "writing",
 ]
@@ -160,26 +161,40 @@ def _begin_kwargs(
     return kwargs
 
 
+@contextmanager
+def naming_file(source: str) -> Iterator[None]:
+    """Prefix the file's name to InvalidInputErrors raised inside (unless they name it already)."""
+    try:
+        yield
+    except InvalidInputError as exc:
+        if source in str(exc):
+            raise
+        raise InvalidInputError(f"{source}: {exc}") from None
+
+
 def streaming_import(
     store: DemoStore,
     begin: dict[str, Any],
     chunks: Iterator[tuple[np.ndarray, dict[str, np.ndarray]]],
     *,
+    source: str,
     status: str = "complete",
     flags: Callable[[], Mapping[str, int]] = dict,
 ) -> str:
     """Begin a demonstration, append every chunk, finish it; on any error discard it.
 
     ``chunks`` yields ``(t, {channel: array})``; ``flags`` is called once all chunks are in.
+    Refused input raises InvalidInputError naming ``source``.
     """
-    demo_id = store.begin_demonstration(**begin)
-    try:
-        for t, arrays in chunks:
-            store.append_chunk(demo_id, t, **arrays)
-        store.finish_demonstration(demo_id, status=status, flags=dict(flags()))
-    except BaseException:
-        store.discard_recording(demo_id)
-        raise
+    with naming_file(source):
+        demo_id = store.begin_demonstration(**begin)
+        try:
+            for t, arrays in chunks:
+                store.append_chunk(demo_id, t, **arrays)
+            store.finish_demonstration(demo_id, status=status, flags=dict(flags()))
+        except BaseException:
+            store.discard_recording(demo_id)
+            raise
     return demo_id
 
 
@@ -243,7 +258,12 @@ def import_csv(
             with bar:
                 chunks = _csv_chunks(handle, source, header_line, len(joints), with_stiffness, bar)
                 return streaming_import(
-                    store, begin, chunks, status=status, flags=lambda: metadata.get("flags", {})
+                    store,
+                    begin,
+                    chunks,
+                    source=source,
+                    status=status,
+                    flags=lambda: metadata.get("flags", {}),
                 )
         except UnicodeDecodeError as exc:
             raise InvalidInputError(
@@ -321,6 +341,11 @@ def import_npz(
     for key in ("t", "position", "velocity", "torque", "joints"):
         if key not in contents:
             raise InvalidInputError(f"{source}: array {key!r} is missing")
+    if contents["joints"].ndim != 1:
+        raise InvalidInputError(
+            f"{source}: 'joints' must be a one-dimensional array of names, got shape "
+            f"{contents['joints'].shape}"
+        )
     if contents["joints"].dtype.kind != "U":
         raise InvalidInputError(
             f"{source}: 'joints' must be a unicode array, got dtype {contents['joints'].dtype}"
@@ -331,16 +356,19 @@ def import_npz(
             metadata = json.loads(str(contents["metadata"]))
         except json.JSONDecodeError as exc:
             raise InvalidInputError(f"{source}: 'metadata' is not JSON: {exc}") from None
-    begin = _begin_kwargs(metadata, overrides, keep_id)
+        if not isinstance(metadata, dict):
+            raise InvalidInputError(f"{source}: 'metadata' must be a JSON object, got {metadata!r}")
     status = metadata.get("status", "complete")
-    return store.add_demonstration(
-        t=contents["t"],
-        position=contents["position"],
-        velocity=contents["velocity"],
-        torque=contents["torque"],
-        stiffness=contents.get("stiffness"),
-        joints=[str(j) for j in contents["joints"]],
-        status="incomplete" if status == "recording" else status,
-        flags=metadata.get("flags") or None,
-        **begin,
-    )
+    with naming_file(source):
+        begin = _begin_kwargs(metadata, overrides, keep_id)
+        return store.add_demonstration(
+            t=contents["t"],
+            position=contents["position"],
+            velocity=contents["velocity"],
+            torque=contents["torque"],
+            stiffness=contents.get("stiffness"),
+            joints=[str(j) for j in contents["joints"]],
+            status="incomplete" if status == "recording" else status,
+            flags=metadata.get("flags") or None,
+            **begin,
+        )
