@@ -467,7 +467,8 @@ def _diagnostic_values(msg: Any) -> dict[str, str] | None:
 
 
 def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: float,
-                      slow_rate_hz: float, call_stop: bool = True) -> None:  # fmt: skip
+                      slow_rate_hz: float, call_stop: bool = True, namespace: str = ""
+                      ) -> None:  # fmt: skip
     """Publisher process of the flood: start, flood, fall back, stop; results as JSON.
 
     Header stamps advance one 1/rate_hz tick per message through both phases, so the slow phase
@@ -482,7 +483,7 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
     from sensor_msgs.msg import JointState
     from std_srvs.srv import Trigger
 
-    rclpy.init()
+    rclpy.init(args=["--ros-args", "-r", f"__ns:=/{namespace}"] if namespace else None)
     node = rclpy.create_node("flood_driver")
     qos = QoSProfile(depth=1000, reliability=ReliabilityPolicy.RELIABLE,
                      history=HistoryPolicy.KEEP_LAST)  # fmt: skip
@@ -568,14 +569,15 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
 
 def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
               rate_hz: float = 20_000.0, slow_s: float = 2.0, slow_rate_hz: float = 100.0,
-              buffer_capacity: int = 1000, kill_after_s: float | None = None
-              ) -> dict[str, Any]:  # fmt: skip
+              buffer_capacity: int = 1000, kill_after_s: float | None = None,
+              namespace: str = "", store_path: Path | None = None) -> dict[str, Any]:  # fmt: skip
     """Flood a real recorder process; return what the driver saw, the RSS trace and the store.
 
     The recorder runs as ``python -m compliant_demo.nodes.recorder`` with 7 joints, no stiffness
     channel and a small buffer; its resident memory is sampled every 20 ms with psutil. With
     ``kill_after_s`` the recorder is killed with SIGKILL that long after publishing began (and
-    the driver does not ask it to stop).
+    the driver does not ask it to stop). ``namespace`` puts recorder and driver under ``/ns``;
+    ``store_path`` (default ``folder/flood.sqlite``) may be shared with another recorder.
     """
     import json
     import subprocess
@@ -584,7 +586,7 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
     import psutil
 
     folder = Path(folder)
-    store_path = folder / "flood.sqlite"
+    store_path = folder / "flood.sqlite" if store_path is None else Path(store_path)
     env = ros_environment(domain_id)
     env["PYTHONPATH"] = os.pathsep.join(
         [str(Path(__file__).resolve().parent.parent), str(Path(__file__).resolve().parent),
@@ -597,6 +599,7 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
         "-p", "stiffness_source:=none", "-p", f"nominal_rate_hz:={rate_hz}",
         "-p", f"buffer_capacity:={buffer_capacity}", "-p", "queue_depth:=1000",
         "-p", "diagnostics_period_s:=0.2", "-p", "flush_interval_s:=0.1",
+        *(["-r", f"__ns:=/{namespace}"] if namespace else []),
     ]  # fmt: skip
     log = (folder / "recorder.log").open("w")
     recorder = subprocess.Popen(recorder_cmd, env=env, stdout=log, stderr=subprocess.STDOUT)
@@ -618,7 +621,7 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
     driver_code = (
         "import reliability_support as r; "
         f"r.flood_driver_main({str(result_path)!r}, {flood_s}, {rate_hz}, {slow_s}, "
-        f"{slow_rate_hz}, {kill_after_s is None})"
+        f"{slow_rate_hz}, {kill_after_s is None}, {namespace!r})"
     )
 
     def kill_when_due() -> None:
