@@ -215,6 +215,37 @@ def test_damaged_chunk_is_store_corrupt_error(tmp_path):
         assert store.load_demonstration(good).info.n_samples == 200
 
 
+@pytest.mark.parametrize(
+    ("table", "column", "action", "message"),
+    [
+        ("demonstrations", "flags", "find", "demonstration '.*' has damaged stored data"),
+        ("demonstrations", "tags", "info", "demonstration '.*' has damaged stored data"),
+        ("skills", "payload", "skill", "skill 'cork_seat' version 1 has damaged stored data"),
+        ("replay_results", "metrics", "result", "replay result '.*' has damaged stored data"),
+    ],
+)
+def test_damaged_json_is_store_corrupt_error(tmp_path, table, column, action, message):
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        demo_id = add_demo(store)
+        skill = store.save_skill("cork_seat", {"w": [1.0]}, demonstration_ids=[demo_id],
+                                 parameters={})  # fmt: skip
+        result_id = store.save_replay_result(skill_id=skill.id, metrics={"e": 1}, parameters={})
+    conn = sqlite3.connect(path)
+    conn.execute(f"UPDATE {table} SET {column} = '{{\"cut'")  # a write cut short
+    conn.commit()
+    conn.close()
+    actions = {
+        "find": lambda s: list(s.find_demonstrations()),
+        "info": lambda s: s.get_info(demo_id),
+        "skill": lambda s: s.load_skill("cork_seat"),
+        "result": lambda s: s.load_replay_result(result_id),
+    }
+    with DemoStore(path, read_only=True) as store:
+        with pytest.raises(StoreCorruptError, match=f"store.sqlite.*{message}"):
+            actions[action](store)
+
+
 def test_truncated_copy_is_store_corrupt_error(tmp_path):
     path = tmp_path / "store.sqlite"
     with DemoStore(path) as store:

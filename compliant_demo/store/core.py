@@ -13,12 +13,13 @@ import threading
 import time
 import uuid
 import warnings
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from datetime import datetime
+from functools import partial
 from pathlib import Path
 from types import TracebackType
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TypeVar
 
 import numpy as np
 import sqlite_utils
@@ -26,6 +27,7 @@ import sqlite_utils
 from compliant_demo.exceptions import (
     InvalidInputError,
     NotFoundError,
+    StoreCorruptError,
     StoreError,
     StoreReadOnlyError,
 )
@@ -47,6 +49,8 @@ if TYPE_CHECKING:
     import pandas
 
 __all__ = ["DemoStore", "CHUNK_SAMPLES"]
+
+_T = TypeVar("_T")
 
 # add_demonstration splits long recordings into chunks of this many samples: rows stay a few
 # MiB, loading stays one SELECT.
@@ -72,8 +76,21 @@ _RESULT_COLUMNS = (
 )
 
 
-def _infos_from_rows(rows: Sequence[Sequence[Any]]) -> list[DemonstrationInfo]:
-    documents = json.loads("[" + ",".join(row[15] for row in rows) + "]")
+def _decoded(label: str, what: str, build: Callable[[], _T]) -> _T:
+    """``build()``, with damaged stored JSON (or arrays) reported as StoreCorruptError."""
+    try:
+        return build()
+    except (ValueError, TypeError, KeyError) as exc:  # JSONDecodeError is a ValueError
+        raise StoreCorruptError(f"{label}: {what} has damaged stored data: {exc}") from None
+
+
+def _infos_from_rows(rows: Sequence[Sequence[Any]], label: str) -> list[DemonstrationInfo]:
+    try:
+        documents = json.loads("[" + ",".join(row[15] for row in rows) + "]")
+    except (ValueError, TypeError):
+        for row in rows:  # find the damaged row to name it
+            _decoded(label, f"demonstration {row[0]!r}", partial(json.loads, row[15]))
+        raise
     return [
         DemonstrationInfo(
             id=row[0],
@@ -103,7 +120,27 @@ def _infos_from_rows(rows: Sequence[Sequence[Any]]) -> list[DemonstrationInfo]:
     ]
 
 
-def _result_from_row(row: Sequence[Any]) -> ReplayResultInfo:
+def _checked_infos(rows: Sequence[Sequence[Any]], label: str) -> list[DemonstrationInfo]:
+    return _decoded(label, "a demonstration row", lambda: _infos_from_rows(rows, label))
+
+
+def _build_skill(row: Sequence[Any]) -> SkillRecord:
+    return SkillRecord(
+        id=row[0],
+        name=row[1],
+        version=row[2],
+        payload=_codec.loads(row[3]),
+        parameters=_codec.loads(row[4]),
+        created=row[5],
+        demonstration_ids=tuple(json.loads(row[6])),
+    )
+
+
+def _result_from_row(row: Sequence[Any], label: str) -> ReplayResultInfo:
+    return _decoded(label, f"replay result {row[0]!r}", lambda: _build_result(row))
+
+
+def _build_result(row: Sequence[Any]) -> ReplayResultInfo:
     return ReplayResultInfo(
         id=row[0],
         skill_id=row[1],
@@ -586,7 +623,8 @@ class DemoStore:
         (text,) = conn.execute(
             "SELECT flags FROM demonstrations WHERE id = ?", (demo_id,)
         ).fetchone()
-        merged = {**json.loads(text), **flags}
+        stored = _decoded(self._label, f"demonstration {demo_id!r}", lambda: json.loads(text))
+        merged = {**stored, **flags}
         conn.execute(
             "UPDATE demonstrations SET flags = ?, updated_at = ? WHERE id = ?",
             (json.dumps(merged, sort_keys=True), time.time(), demo_id),
@@ -741,7 +779,7 @@ class DemoStore:
             sql += f" LIMIT {int(limit)}"
         rows = self._guarded_query(sql, query.params(), where)
         with _sql.translated(self._label):
-            return iter(_infos_from_rows(rows))
+            return iter(_checked_infos(rows, self._label))
 
     def _guarded_query(
         self, sql: str, params: Sequence[object] | Mapping[str, object], where: str | None
@@ -780,7 +818,7 @@ class DemoStore:
         ).fetchone()
         if row is None:
             raise NotFoundError(f"demonstration {demo_id!r} not found in {self._label}")
-        return _infos_from_rows([row])[0]
+        return _checked_infos([row], self._label)[0]
 
     def load_demonstration(
         self, demo_id: str, *, joints: Sequence[str] | None = None
@@ -997,15 +1035,7 @@ class DemoStore:
                 params,
             ).fetchall()
         return [
-            SkillRecord(
-                id=row[0],
-                name=row[1],
-                version=row[2],
-                payload=_codec.loads(row[3]),
-                parameters=_codec.loads(row[4]),
-                created=row[5],
-                demonstration_ids=tuple(json.loads(row[6])),
-            )  # fmt: skip
+            _decoded(self._label, f"skill {row[1]!r} version {row[2]}", partial(_build_skill, row))
             for row in rows
         ]
 
@@ -1072,7 +1102,8 @@ class DemoStore:
             ).fetchone()
         if row is None:
             raise NotFoundError(f"campaign {campaign_id!r} not found in {self._label}")
-        return CampaignInfo(id=row[0], skill_id=row[1], config=_codec.loads(row[2]), created=row[3])
+        config = _decoded(self._label, f"campaign {campaign_id!r}", lambda: _codec.loads(row[2]))
+        return CampaignInfo(id=row[0], skill_id=row[1], config=config, created=row[3])
 
     def save_replay_result(
         self,
@@ -1176,7 +1207,7 @@ class DemoStore:
                 "ORDER BY r.campaign_id, r.scenario_index, r.created, r.id",
                 query.params(),
             ).fetchall()
-        return iter([_result_from_row(row) for row in rows])
+        return iter([_result_from_row(row, self._label) for row in rows])
 
     def load_replay_result(self, result_id: str) -> ReplayResult:
         """One replay result with its trace arrays."""
@@ -1190,11 +1221,15 @@ class DemoStore:
                 "SELECT channel, shape, data FROM replay_traces WHERE result_id = ?", (result_id,)
             ).fetchall()
         return ReplayResult(
-            info=_result_from_row(row),
-            trace={
-                channel: _codec.from_blobs([data], None).reshape(json.loads(shape))
-                for channel, shape, data in traces
-            },
+            info=_result_from_row(row, self._label),
+            trace=_decoded(
+                self._label,
+                f"replay result {result_id!r}",
+                lambda: {
+                    channel: _codec.from_blobs([data], None).reshape(json.loads(shape))
+                    for channel, shape, data in traces
+                },
+            ),
         )
 
     def completed_scenarios(self, campaign_id: str) -> set[int]:
