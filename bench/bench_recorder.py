@@ -9,8 +9,8 @@ that sends 7-joint sensor_msgs/JointState:
 - ``loss_5khz_7j``: the same for 20 s at 5 kHz (``--seconds-5khz``).
 - ``throughput_vs_bare_subscriber``: messages per second the recording recorder takes in while a
   publisher floods it as fast as it can, divided by what a bare rclpy subscriber that only
-  counts (same QoS, same executor as our nodes) takes in from the same flood, measured in the
-  same run.
+  counts (same QoS, same executor as our nodes) takes in from the same kind of flood, measured in
+  the same run: ``--flood-pairs`` interleaved pairs, ratio of the medians.
 
 Every process gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST and ROS_DOMAIN_ID 131-133. Prints one
 JSON object per measurement; the last line is ``{"bench": "recorder", ...}``.
@@ -22,6 +22,7 @@ import argparse
 import json
 import os
 import signal
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -219,36 +220,47 @@ def _loss_run(rate_hz: float, seconds: float, domain_id: int, work: Path) -> dic
     return row
 
 
-def _flood_run(seconds: float, domain_id: int, work: Path) -> dict:
+def _flood_bare(seconds: float, domain_id: int) -> float:
+    """Messages per second a bare counting subscriber takes in from one flood."""
     bare = subprocess.Popen(
         [sys.executable, str(Path(__file__).resolve()), "--role", "bare"],
-        env=_env(domain_id + 1), stdout=subprocess.PIPE, text=True,
+        env=_env(domain_id), stdout=subprocess.PIPE, text=True,
     )
     try:
-        flood_bare = _run_publisher(0.0, seconds, domain_id + 1, False)
+        flood = _run_publisher(0.0, seconds, domain_id, False)
         time.sleep(1.0)
     finally:
         bare.send_signal(signal.SIGINT)
-    bare_received = json.loads(bare.communicate(timeout=30)[0].strip().splitlines()[-1])
-    bare_rate = bare_received["received"] / flood_bare["seconds"]
+    received = json.loads(bare.communicate(timeout=30)[0].strip().splitlines()[-1])["received"]
+    return received / flood["seconds"]
 
-    store = work / "flood.sqlite"
-    recorder = _start_recorder(store, domain_id, work / "recorder_flood.log")
+
+def _flood_recorder(seconds: float, domain_id: int, store: Path, log: Path) -> float:
+    """Messages per second the recording recorder stores from one flood."""
+    recorder = _start_recorder(store, domain_id, log)
     try:
-        flood_recorder = _run_publisher(0.0, seconds, domain_id, True, recorder.pid)
+        flood = _run_publisher(0.0, seconds, domain_id, True, recorder.pid)
     finally:
         _stop(recorder)
     (stored,) = _stored_samples(store)
-    recorder_rate = stored / flood_recorder["seconds"]
-    row = {"bench": "recorder_flood", "seconds": seconds,
-           "bare_published": flood_bare["sent"], "bare_received": bare_received["received"],
-           "bare_msgs_per_s": round(bare_rate), "bare_refused": flood_bare["refused"],
-           "recorder_published": flood_recorder["sent"],
-           "recorder_refused": flood_recorder["refused"],
-           "recorder_stored": stored, "recorder_msgs_per_s": round(recorder_rate),
+    return stored / flood["seconds"]
+
+
+def _flood_run(seconds: float, domain_id: int, work: Path, pairs: int) -> dict:
+    """Interleaved floods (bare, recorder, bare, ...) so a change in machine load during the
+    run hits both sides; the ratio of the medians is reported."""
+    bare_rates, recorder_rates = [], []
+    for index in range(pairs):
+        bare_rates.append(_flood_bare(seconds, domain_id + 1))
+        recorder_rates.append(_flood_recorder(seconds, domain_id, work / f"flood_{index}.sqlite",
+                                              work / f"recorder_flood_{index}.log"))
+    bare_rate, recorder_rate = statistics.median(bare_rates), statistics.median(recorder_rates)
+    row = {"bench": "recorder_flood", "seconds": seconds, "pairs": pairs,
+           "bare_msgs_per_s": [round(r) for r in bare_rates],
+           "recorder_msgs_per_s": [round(r) for r in recorder_rates],
            "ratio": recorder_rate / bare_rate}
     print(json.dumps(row), flush=True)
-    return row
+    return {**row, "bare_msgs_per_s": round(bare_rate), "recorder_msgs_per_s": round(recorder_rate)}
 
 
 def main() -> None:
@@ -260,6 +272,7 @@ def main() -> None:
     parser.add_argument("--seconds-1khz", type=float, default=60.0)
     parser.add_argument("--seconds-5khz", type=float, default=20.0)
     parser.add_argument("--seconds-flood", type=float, default=10.0)
+    parser.add_argument("--flood-pairs", type=int, default=3)
     args = parser.parse_args()
     if args.role == "publisher":
         _publisher_main(args.rate, args.seconds, args.control)
@@ -271,7 +284,7 @@ def main() -> None:
         work = Path(folder)
         slow = _loss_run(1000.0, args.seconds_1khz, 131, work)
         fast = _loss_run(5000.0, args.seconds_5khz, 131, work)
-        flood = _flood_run(args.seconds_flood, 132, work)
+        flood = _flood_run(args.seconds_flood, 132, work, args.flood_pairs)
     print(json.dumps({
         "bench": "recorder",
         "loss_1khz_7j": slow["loss"],

@@ -279,3 +279,33 @@ def test_request_refuses_bad_metadata(kwargs, match: str) -> None:
 def test_writer_refuses_flush_interval_above_200_ms() -> None:
     with pytest.raises(InvalidInputError, match="flush_interval_s"):
         ChunkWriter(lambda: DemoStore(), None, flush_interval_s=0.25)
+
+
+def test_checker_accepts_huge_finite_values_whose_sum_overflows() -> None:
+    checker = SampleChecker(JOINTS, RATE)
+    counters = IngestCounters()
+    message = _message(0, position=[1e308, 1e308], effort=[-1e308, -1e308])
+    assert checker.check(counters, *message) is not None
+    assert counters.non_finite == 0
+
+
+def test_buffer_joins_message_arrays_and_mixed_sequences_alike() -> None:
+    from array import array
+
+    buffer = ChunkBuffer(n_joints=2, capacity=10)
+    rng = np.random.default_rng(2)
+    rows = rng.normal(size=(3, 9))
+    for r in rows[:2]:  # as rclpy hands JointState fields: array('d')
+        buffer.append(r[0], array("d", r[1:3]), array("d", r[3:5]), array("d", r[5:7]),
+                      tuple(r[7:9]))
+    r = rows[2]  # a reordered message: plain lists
+    buffer.append(r[0], list(r[1:3]), list(r[3:5]), list(r[5:7]), tuple(r[7:9]))
+    chunk = buffer.take()
+    np.testing.assert_array_equal(chunk.position, rows[:, 1:3])
+    np.testing.assert_array_equal(chunk.velocity, rows[:, 3:5])
+    np.testing.assert_array_equal(chunk.torque, rows[:, 5:7])
+    only_arrays = ChunkBuffer(n_joints=2, capacity=10)
+    for r in rows:
+        only_arrays.append(r[0], array("d", r[1:3]), array("d", r[3:5]), array("d", r[5:7]),
+                           tuple(r[7:9]))
+    np.testing.assert_array_equal(only_arrays.take().torque, rows[:, 5:7])

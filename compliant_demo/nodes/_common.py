@@ -28,6 +28,7 @@ __all__ = [
     "to_stamp",
     "float_array",
     "diagnostic_array",
+    "check_parameter_changes",
     "list_parameter",
     "open_store",
     "run_node",
@@ -66,6 +67,38 @@ def declare(
     if isinstance(default, list) and not default:
         descriptor.dynamic_typing = True
     return node.declare_parameter(name, default, descriptor).value
+
+
+def check_parameter_changes(
+    node: Node, check: Callable[[dict[str, Any]], str | None]
+) -> None:
+    """Check the declared values now, then refuse changes that ``check`` finds wrong.
+
+    ``check`` sees every parameter's value as it would be after the change (name -> value) and
+    returns None to accept or a reason to refuse; rclpy reports the reason to the caller.
+
+    Raises
+    ------
+    InvalidInputError
+        The values the node started with (defaults, parameter files, overrides) are refused.
+    """
+    from rcl_interfaces.msg import SetParametersResult
+
+    def values_after(parameters: list) -> dict[str, Any]:
+        current = node.get_parameters_by_prefix("")
+        values = {name: parameter.value for name, parameter in current.items()}
+        values.update({parameter.name: parameter.value for parameter in parameters})
+        return values
+
+    reason = check(values_after([]))
+    if reason is not None:
+        raise InvalidInputError(f"node {node.get_name()}: {reason}")
+
+    def on_set(parameters: list) -> SetParametersResult:
+        reason = check(values_after(parameters))
+        return SetParametersResult(successful=reason is None, reason=reason or "")
+
+    node.add_on_set_parameters_callback(on_set)
 
 
 def list_parameter(node: Node, name: str, item_type: type) -> list:

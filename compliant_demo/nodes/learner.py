@@ -6,7 +6,13 @@ from rclpy.node import Node
 from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
-from compliant_demo.nodes._common import declare, list_parameter, open_store, run_node
+from compliant_demo.nodes._common import (
+    check_parameter_changes,
+    declare,
+    list_parameter,
+    open_store,
+    run_node,
+)
 from compliant_demo.runtime import LearnRequest, learn_from_store, matching_demonstrations
 
 __all__ = ["LearnerNode", "main"]
@@ -40,6 +46,7 @@ class LearnerNode(Node):
         d(self, "poll_period_s", 1.0, "How often to look for demonstrations, s.",
           low=0.05, high=60.0)
         d(self, "exit_after_fit", False, "End the node after the automatic fit.")
+        check_parameter_changes(self, _check_parameters)
         self.create_service(Trigger, "fit", self._on_fit)
         self.done = False
         self.exit_status = 0
@@ -93,6 +100,21 @@ class LearnerNode(Node):
         if self.get_parameter("exit_after_fit").value:
             self.exit_status = 0 if success else 1
             self.done = True
+
+
+def _check_parameters(values: dict) -> str | None:
+    """Reasons to refuse a parameter change that spans parameters or has a fixed set of values."""
+    if not values["skill"]:
+        return "skill must not be empty"
+    if values["alignment"] not in ("dtw", "resample", "none"):
+        return f"alignment must be dtw, resample or none, got {values['alignment']!r}"
+    if values["stiffness_source"] not in ("auto", "recorded", "variability"):
+        return (f"stiffness_source must be auto, recorded or variability, got "
+                f"{values['stiffness_source']!r}")
+    if not values["stiffness_min"] < values["stiffness_max"]:
+        return (f"stiffness_min ({values['stiffness_min']}) must be below stiffness_max "
+                f"({values['stiffness_max']})")
+    return None
 
 
 def main(args: list[str] | None = None) -> int:

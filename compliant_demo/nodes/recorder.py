@@ -30,6 +30,7 @@ from compliant_demo.ingest import (
     SampleChecker,
 )
 from compliant_demo.nodes._common import (
+    check_parameter_changes,
     declare,
     diagnostic_array,
     list_parameter,
@@ -75,6 +76,7 @@ class RecorderNode(Node):
         self.create_service(Trigger, "stop", self._on_stop)
         self.create_service(Trigger, "discard", self._on_discard)
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
+        check_parameter_changes(self, _check_parameters)
         self._last_health = time.monotonic()
         self.create_timer(p["diagnostics_period_s"], self._publish_diagnostics)
         self.get_logger().info(
@@ -206,6 +208,12 @@ def _estimator_factory(p: dict):
         band_hz=band if band[1] > band[0] else None,
         min_excitation_rad=p["estimator_min_excitation_rad"],
     )
+
+
+def _check_parameters(values: dict) -> str | None:
+    if not values["skill"]:
+        return "skill must not be empty"
+    return None
 
 
 def main(args: list[str] | None = None) -> int:

@@ -11,6 +11,7 @@ from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
 from compliant_demo.nodes._common import (
+    check_parameter_changes,
     declare,
     float_array,
     list_parameter,
@@ -67,6 +68,7 @@ class ReplayNode(Node):
         self.create_subscription(
             Float64MultiArray, "perturbation_command", self._on_live_torque, 10
         )
+        check_parameter_changes(self, _check_parameters)
         self.create_service(Trigger, "run", self._on_run)
         self.done = False
         self.exit_status = 0
@@ -212,6 +214,16 @@ class ReplayNode(Node):
         if not success:
             self.exit_status = 2
             self.done = self._end_after_run
+
+
+def _check_parameters(values: dict) -> str | None:
+    from compliant_demo.sim import METHODS
+
+    if not values["skill"]:
+        return "skill must not be empty"
+    if values["method"] not in METHODS:
+        return f"method must be one of {', '.join(METHODS)}, got {values['method']!r}"
+    return None
 
 
 def main(args: list[str] | None = None) -> int:
