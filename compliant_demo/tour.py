@@ -17,6 +17,7 @@ import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -30,9 +31,9 @@ from compliant_demo.campaign import (
 )
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.launch_file import read_launch_file, start_nodes
-from compliant_demo.learning import learn_skill, save_skill
+from compliant_demo.learning import load_skill
 from compliant_demo.report import GroundTruth, collect_report_content, write_report
-from compliant_demo.runtime import load_plant
+from compliant_demo.runtime import LearnRequest, learn_from_store, load_plant
 from compliant_demo.store import DemoStore
 
 __all__ = [
@@ -109,9 +110,11 @@ class TourSettings:
 
 @dataclass(frozen=True)
 class TourResult:
-    """What the tour produced: ids in the store, the campaign, the report and step timings (s)."""
+    """What the tour produced: the run's tag and ids in the store, the campaign, the report and
+    step timings (s)."""
 
     store: Path
+    tag: str
     demonstration_ids: tuple[str, ...]
     skill_id: str
     skill_version: int
@@ -125,6 +128,7 @@ class TourResult:
         """JSON-ready form."""
         return {
             "store": str(self.store),
+            "tag": self.tag,
             "demonstration_ids": list(self.demonstration_ids),
             "skill": {"name": SKILL, "id": self.skill_id, "version": self.skill_version},
             "campaign": {
@@ -172,10 +176,16 @@ def node_environment(domain_id: int) -> dict[str, str]:
     return env
 
 
-def _new_complete(store_path: Path, before: set[str]) -> list[str]:
+def _complete_with_tag(store_path: Path, tag: str) -> list[str]:
     with DemoStore(store_path, read_only=True) as store:
-        infos = store.find_demonstrations(skill=SKILL, status="complete", order_by="start_time")
-        return [info.id for info in infos if info.id not in before]
+        infos = store.find_demonstrations(skill=SKILL, status="complete", tag=tag,
+                                          order_by="start_time")
+        return [info.id for info in infos]
+
+
+def run_tag() -> str:
+    """A tag naming one tour run: its UTC start and process id."""
+    return f"tour-{datetime.now(UTC):%Y%m%dT%H%M%SZ}-{os.getpid()}"
 
 
 def _tail(path: Path, lines: int = 8) -> str:
@@ -199,17 +209,19 @@ def _stop(processes: list[subprocess.Popen]) -> None:
             process.wait()
 
 
-def record_demonstrations(settings: TourSettings, progress: bool) -> tuple[list[str], Path]:
+def record_demonstrations(
+    settings: TourSettings, tag: str, progress: bool
+) -> tuple[list[str], Path]:
     """Run teacher and recorder as processes until the demonstrations are in the store.
 
-    Returns the new demonstration ids (recording order) and the teacher's truth file.
+    The recorder tags every demonstration of this run with ``tag``. Returns their ids (recording
+    order) and the teacher's truth file.
     """
     settings.out_dir.mkdir(parents=True, exist_ok=True)
     truth_path = settings.out_dir / "teacher_truth.npz"
     truth_path.unlink(missing_ok=True)
     with DemoStore(settings.store):  # create or migrate the file before the nodes open it
         pass
-    before = set(_new_complete(settings.store, set()))
     launch = settings.launch_file or package_launch_file("record.launch.xml")
     description = read_launch_file(launch, {
         "store": str(settings.store),
@@ -221,6 +233,7 @@ def record_demonstrations(settings: TourSettings, progress: bool) -> tuple[list[
     log_path = settings.out_dir / "nodes.log"
     with open(log_path, "w", encoding="utf-8") as log:
         processes = start_nodes(description, env=node_environment(settings.domain_id),
+                                extra_parameters={"recorder": {"tags": f"[{tag}]"}},
                                 stdout=log.fileno(), stderr=subprocess.STDOUT)
     names = [node.name or node.executable for node in description.nodes]
     teacher = processes[names.index("teacher")]
@@ -230,7 +243,7 @@ def record_demonstrations(settings: TourSettings, progress: bool) -> tuple[list[
         with tqdm(total=settings.n_demonstrations, desc="record", unit="demo", file=sys.stderr,
                   disable=not progress, leave=False) as bar:
             while True:
-                recorded = _new_complete(settings.store, before)
+                recorded = _complete_with_tag(settings.store, tag)
                 bar.update(len(recorded) - bar.n)
                 teacher_done = teacher.poll() is not None
                 if len(recorded) >= settings.n_demonstrations and teacher_done:
@@ -242,7 +255,7 @@ def record_demonstrations(settings: TourSettings, progress: bool) -> tuple[list[
                 if teacher_done:
                     # The teacher stops the recorder before it exits; give the writer a moment.
                     time.sleep(0.5)
-                    recorded = _new_complete(settings.store, before)
+                    recorded = _complete_with_tag(settings.store, tag)
                     if len(recorded) < settings.n_demonstrations:
                         raise TourError(
                             f"teacher finished but {len(recorded)} of "
@@ -282,28 +295,28 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     """
     timings: dict[str, float] = {}
     started = time.perf_counter()
-    demo_ids, truth_path = _timed(timings, "record", lambda: record_demonstrations(
-        settings, progress))
     if settings.plant is not None and not Path(settings.plant).is_file():
         raise InvalidInputError(f"plant = {str(settings.plant)!r}: no such file")
     plant = load_plant(settings.plant or package_file("config", DEFAULT_PLANT))
-    joints = [joint.name for joint in plant.joints]
+    tag = run_tag()
+    demo_ids, truth_path = _timed(timings, "record", lambda: record_demonstrations(
+        settings, tag, progress))
+    joints = tuple(joint.name for joint in plant.joints)
     mechanism = plant.mechanism
+    # The learner node's path: exactly this run's demonstrations (by tag), the recorded estimate
+    # clipped to the target's stiffness range, NaN (no estimate) bridged by the learner.
+    request = LearnRequest(
+        skill=SKILL, joints=joints, tags=(tag,), min_demonstrations=len(demo_ids),
+        options={"n_basis": 30,
+                 "stiffness_range": (mechanism.stiffness_min, mechanism.stiffness_max),
+                 "target_inertia": [joint.inertia for joint in plant.joints]})
     with DemoStore(settings.store, durable=False) as store:
         def learn():
-            with tqdm(total=len(demo_ids) + 1, desc="learn", unit="step", file=sys.stderr,
+            with tqdm(total=1, desc="learn", unit="skill", file=sys.stderr,
                       disable=not progress, leave=False) as bar:
-                demos = []
-                for demo_id in demo_ids:
-                    demos.append(store.load_demonstration(demo_id, joints=joints))
-                    bar.update(1)
-                skill = learn_skill(
-                    demos, joints=joints, n_basis=30, name=SKILL,
-                    stiffness_range=(mechanism.stiffness_min, mechanism.stiffness_max),
-                    target_inertia=[joint.inertia for joint in plant.joints],
-                )
+                outcome = learn_from_store(store, request)
                 bar.update(1)
-            return skill, save_skill(store, skill)
+            return load_skill(store, SKILL, outcome.version), store.get_skill(outcome.skill_id)
 
         skill, record = _timed(timings, "learn", learn)
         job = ReplayCampaign(skill, plant, default_campaign_spec(len(joints), skill.duration_s),
@@ -327,6 +340,7 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     timings["total"] = round(time.perf_counter() - started, 3)
     return TourResult(
         store=settings.store,
+        tag=tag,
         demonstration_ids=tuple(demo_ids),
         skill_id=record.id,
         skill_version=record.version,

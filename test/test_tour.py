@@ -44,6 +44,7 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
         skill = opened.load_skill("cork_seat")
         results = list(opened.find_replay_results(campaign_id=result["campaign"]["id"]))
     assert [d.status for d in demos] == ["complete", "complete"]
+    assert all(d.tags == (result["tag"],) for d in demos)  # this run's demonstrations only
     assert all(d.has_stiffness and d.n_samples > 5000 for d in demos)
     assert skill.id == result["skill"]["id"]
     assert sorted(skill.demonstration_ids) == sorted(result["demonstration_ids"])

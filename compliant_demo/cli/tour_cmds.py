@@ -86,7 +86,7 @@ def _run(args: argparse.Namespace) -> int:
         return 0
     timings = result.timings_s
     print(f"recorded {len(result.demonstration_ids)} cork_seat demonstrations with the "
-          f"simulated teacher ({timings['record']:.0f} s) into {result.store}")
+          f"simulated teacher ({timings['record']:.0f} s) into {result.store}, tag {result.tag}")
     print(f"learned cork_seat version {result.skill_version} ({timings['learn']:.1f} s)")
     campaign = result.campaign
     print(f"campaign {campaign.campaign_id}: {campaign.n_scenarios} perturbed scenarios, "
