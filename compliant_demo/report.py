@@ -415,6 +415,7 @@ table { border-collapse: collapse; margin: 0.5rem 0; font-size: 0.9rem; }
 th, td { border: 1px solid #777; padding: 0.2rem 0.5rem; text-align: left; }
 th { background: #eee; }
 .cautions { border: 2px solid #000; padding: 0.5rem 1rem; }
+.cautions h2 { margin-top: 0.5rem; }
 """
 
 
