@@ -371,6 +371,7 @@ class _Demonstration:
     stored_samples: int = 0
     estimator: Any = None
     write_error: str | None = None
+    final_status: str | None = None
     finished: threading.Event = field(default_factory=threading.Event)
 
 
@@ -446,7 +447,11 @@ class ChunkWriter:
         try:
             self._loop(store)
         finally:
-            store_context.__exit__(None, None, None)
+            try:
+                store_context.__exit__(None, None, None)
+            except Exception as exc:  # e.g. a full disk; the next open recovers the store
+                self.write_errors += 1
+                self.last_error = f"closing the store: {type(exc).__name__}: {exc}"
 
     def _loop(self, store: Any) -> None:
         next_flush = time.monotonic() + self.flush_interval_s
@@ -519,11 +524,12 @@ class ChunkWriter:
         self, store: Any, demonstration: _Demonstration, status: str, flags: dict[str, Any]
     ) -> None:
         self._flush(store, demonstration)
+        if demonstration.write_error is not None:
+            status = "incomplete"
         if demonstration.demonstration_id is not None:
             flags = dict(flags, stored_samples=demonstration.stored_samples)
             if demonstration.write_error is not None:
-                flags["write_error"] = demonstration.write_error
-                status = "incomplete"
+                flags["store_write_failed"] = 1  # the error text is logged and in diagnostics
             try:
                 store.finish_demonstration(
                     demonstration.demonstration_id, status=status, flags=flags
@@ -532,6 +538,8 @@ class ChunkWriter:
                 demonstration.write_error = f"{type(exc).__name__}: {exc}"
                 self.write_errors += 1
                 self.last_error = demonstration.write_error
+                status = "incomplete"
+        demonstration.final_status = status
         demonstration.finished.set()
 
 
@@ -625,8 +633,20 @@ class RecordingSession:
             self.writer.activate(self.current)
         return True, f"recording skill {self.request.skill!r}"
 
-    def stop(self, status: str = "complete", **extra_flags: Any) -> tuple[bool, str]:
-        """Close the open demonstration with ``status``; returns (success, message)."""
+    def stop(
+        self, status: str = "complete", *, wait_s: float = 0.0, **extra_flags: Any
+    ) -> tuple[bool, str]:
+        """Close the open demonstration with ``status``; returns (success, message).
+
+        Parameters
+        ----------
+        status : {"complete", "incomplete", "rejected"}
+        wait_s : float, s
+            How long to wait for the writer to store the rest; with a wait, the answer reports
+            what was stored (success False when the store failed), else what was accepted.
+        extra_flags : int
+            Further demonstration flags.
+        """
         with self._lock:
             demonstration = self.current
             if demonstration is None:
@@ -638,9 +658,18 @@ class RecordingSession:
             self.writer.finish(demonstration, status, flags)
             self.last_finished = demonstration
         counters = demonstration.counters
-        return True, (
-            f"{status}: {counters.accepted} samples accepted of {counters.received} received"
-        )
+        accepted = f"{counters.accepted} samples accepted of {counters.received} received"
+        if wait_s <= 0:
+            return True, f"{status}: {accepted}"
+        if not demonstration.finished.wait(wait_s):
+            return False, f"store still writing after {wait_s} s; {accepted}"
+        stored = f"{demonstration.stored_samples} stored, {accepted}"
+        if demonstration.write_error is not None:
+            return False, (f"{demonstration.final_status}: store write failed "
+                           f"({demonstration.write_error}); {stored}")
+        if demonstration.demonstration_id is None:
+            return False, f"nothing stored: {accepted}"
+        return True, f"{demonstration.final_status}: {stored}"
 
     def ingest(
         self,

@@ -309,3 +309,35 @@ def test_buffer_joins_message_arrays_and_mixed_sequences_alike() -> None:
         only_arrays.append(r[0], array("d", r[1:3]), array("d", r[3:5]), array("d", r[5:7]),
                            tuple(r[7:9]))
     np.testing.assert_array_equal(only_arrays.take().torque, rows[:, 5:7])
+
+
+def test_stop_with_a_wait_reports_what_was_stored(tmp_path) -> None:
+    session = _session(tmp_path / "store.sqlite", source="none")
+    session.start()
+    for i in range(50):
+        session.ingest(*_message(i))
+    assert session.stop(wait_s=5.0) == (True, "complete: 50 stored, 50 samples accepted of 50 "
+                                              "received")
+    session.start()
+    assert session.stop(wait_s=5.0) == (False, "nothing stored: 0 samples accepted of 0 received")
+    assert session.shutdown()
+
+
+def test_stop_with_a_wait_says_when_the_store_refused_the_samples(tmp_path) -> None:
+    path = tmp_path / "store.sqlite"
+    DemoStore(path).close()  # an existing store, opened read-only by the writer below
+    writer = ChunkWriter(lambda: DemoStore(path, read_only=True), None, flush_interval_s=0.02)
+    writer.start()
+    request = DemonstrationRequest(skill="cork_seat", joints=JOINTS, stiffness_source="none")
+    session = RecordingSession(writer, SampleChecker(JOINTS, RATE), request, 1000)
+    session.start()
+    for i in range(20):
+        session.ingest(*_message(i))
+    ok, message = session.stop(wait_s=5.0)
+    assert not ok
+    assert message.startswith("incomplete: store write failed (StoreReadOnlyError")
+    assert message.endswith("0 stored, 20 samples accepted of 20 received")
+    level, summary, values = session.health(1.0)
+    assert level == "error" and summary.startswith("store write failed")
+    assert values["store_write_errors"] == "1"
+    assert session.shutdown()

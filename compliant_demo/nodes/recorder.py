@@ -42,6 +42,10 @@ from compliant_demo.nodes._common import stamp_seconds as _seconds
 
 __all__ = ["RecorderNode", "main"]
 
+# stop and discard answer once the rest is stored, so the answer can say whether it was; the
+# reliable subscription's history holds the messages that arrive meanwhile.
+_STOP_WAIT_S = 5.0
+
 
 class RecorderNode(Node):
     """Subscribes to ``joint_states``; serves ``start``, ``stop``, ``discard``; ``diagnostics``."""
@@ -168,12 +172,14 @@ class RecorderNode(Node):
         return response
 
     def _on_stop(self, _request: Trigger.Request, response: Trigger.Response):
-        response.success, response.message = self.session.stop("complete")
+        response.success, response.message = self.session.stop("complete", wait_s=_STOP_WAIT_S)
         self.get_logger().info(f"stop: {response.message}")
         return response
 
     def _on_discard(self, _request: Trigger.Request, response: Trigger.Response):
-        response.success, response.message = self.session.stop("rejected", discarded=1)
+        response.success, response.message = self.session.stop(
+            "rejected", wait_s=_STOP_WAIT_S, discarded=1
+        )
         self.get_logger().info(f"discard: {response.message}")
         return response
 
