@@ -166,6 +166,9 @@ DEMONSTRATION_COLUMNS: tuple[str, ...] = (
 
 _INDEXES: tuple[str, ...] = (
     "CREATE INDEX idx_demonstrations_skill ON demonstrations (skill, start_time)",
+    # skill and operator together is the most common query; one index keeps it off the scan
+    "CREATE INDEX idx_demonstrations_skill_operator ON demonstrations "
+    "(skill, operator, start_time)",
     "CREATE INDEX idx_demonstrations_operator ON demonstrations (operator, start_time)",
     "CREATE INDEX idx_demonstrations_status ON demonstrations (status, start_time)",
     "CREATE INDEX idx_demonstrations_start ON demonstrations (start_time)",
