@@ -393,6 +393,12 @@ def test_find_uses_indexes(catalogue):
             ).fetchall()
         )
         assert "USING INDEX" in plan, (column, plan)
+    plan = store.db.execute(
+        "EXPLAIN QUERY PLAN SELECT id FROM demonstrations WHERE skill = ? AND operator = ? "
+        "ORDER BY start_time",
+        ["cork_seat", "operator_a"],
+    ).fetchall()
+    assert "idx_demonstrations_skill_operator (skill=? AND operator=?)" in str(plan)
 
 
 # -- curation ----------------------------------------------------------------------------------
