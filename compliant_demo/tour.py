@@ -65,6 +65,7 @@ class TourSettings:
     store : store file (created if missing)
     out_dir : directory for the report, the PNG figures, the teacher's truth file and node logs
     n_demonstrations : demonstrations the simulated teacher gives (about 7 s each, real time)
+    demo_duration_s : nominal duration of each demonstration, s (None: the scenario's 6 s)
     n_scenarios : perturbed scenarios of the campaign (spread evenly over every kind)
     seed : seed of the first demonstration and of the campaign
     domain_id : ROS_DOMAIN_ID of the node processes (0-101)
@@ -81,6 +82,7 @@ class TourSettings:
     store: Path
     out_dir: Path
     n_demonstrations: int = 4
+    demo_duration_s: float | None = None
     n_scenarios: int = 350
     seed: int = 1
     domain_id: int = 17
@@ -94,6 +96,10 @@ class TourSettings:
         if not 2 <= self.n_demonstrations <= 50:
             raise InvalidInputError(
                 f"n_demonstrations = {self.n_demonstrations}: must be 2 to 50 (learning needs two)"
+            )
+        if self.demo_duration_s is not None and not 1.0 <= self.demo_duration_s <= 60.0:
+            raise InvalidInputError(
+                f"demo_duration_s = {self.demo_duration_s}: must be 1 to 60 s"
             )
         if self.n_scenarios < 1:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
@@ -209,6 +215,13 @@ def _stop(processes: list[subprocess.Popen]) -> None:
             process.wait()
 
 
+def _node_overrides(settings: TourSettings, tag: str) -> dict[str, dict[str, str]]:
+    overrides = {"recorder": {"tags": f"[{tag}]"}, "teacher": {}}
+    if settings.demo_duration_s is not None:
+        overrides["teacher"]["duration_s"] = repr(float(settings.demo_duration_s))
+    return overrides
+
+
 def record_demonstrations(
     settings: TourSettings, tag: str, progress: bool
 ) -> tuple[list[str], Path]:
@@ -233,7 +246,7 @@ def record_demonstrations(
     log_path = settings.out_dir / "nodes.log"
     with open(log_path, "w", encoding="utf-8") as log:
         processes = start_nodes(description, env=node_environment(settings.domain_id),
-                                extra_parameters={"recorder": {"tags": f"[{tag}]"}},
+                                extra_parameters=_node_overrides(settings, tag),
                                 stdout=log.fileno(), stderr=subprocess.STDOUT)
     names = [node.name or node.executable for node in description.nodes]
     teacher = processes[names.index("teacher")]

@@ -11,6 +11,7 @@ from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
     non_negative_int,
+    positive_float,
     positive_int,
     show_progress,
 )
@@ -49,6 +50,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help=f"report, figures, truth file and node log (default: ./{DEFAULT_OUT})")
     parser.add_argument("--demos", type=positive_int, default=4, metavar="N",
                         help="demonstrations to record, 2 to 50 (default: 4)")
+    parser.add_argument("--demo-duration", type=positive_float, default=None, metavar="S",
+                        help="nominal duration of each demonstration, 1 to 60 s (default: the "
+                             "scenario's 6 s)")
     parser.add_argument("--scenarios", type=positive_int, default=350, metavar="N",
                         help="perturbed scenarios in the campaign (default: 350, 50 per kind)")
     parser.add_argument("--seed", type=non_negative_int, default=1,
@@ -73,6 +77,7 @@ def _run(args: argparse.Namespace) -> int:
         store=store,
         out_dir=args.out,
         n_demonstrations=args.demos,
+        demo_duration_s=args.demo_duration,
         n_scenarios=args.scenarios,
         seed=args.seed,
         domain_id=_default_domain() if args.domain_id is None else args.domain_id,
