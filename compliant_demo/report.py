@@ -340,16 +340,21 @@ def plot_metric_distributions(
             )
         groups = [values[(kinds == k) & np.isfinite(values)] for k in kind_names]
         positions = [i for i, g in enumerate(groups) if g.size]
-        boxes = ax.boxplot(
-            [groups[i] for i in positions],
-            positions=positions,
-            widths=0.6,
-            patch_artist=True,
-            medianprops={"color": "0.0", "linewidth": 1.5},
-            flierprops={"marker": "x", "markeredgecolor": "0.3", "markersize": 4},
-        )
-        for number, box in enumerate(boxes["boxes"]):
-            box.set(facecolor="white", edgecolor="0.0", hatch=_HATCHES[number % len(_HATCHES)])
+        if positions:
+            boxes = ax.boxplot(
+                [groups[i] for i in positions],
+                positions=positions,
+                widths=0.6,
+                patch_artist=True,
+                medianprops={"color": "0.0", "linewidth": 1.5},
+                flierprops={"marker": "x", "markeredgecolor": "0.3", "markersize": 4},
+            )
+            for number, box in enumerate(boxes["boxes"]):
+                box.set(facecolor="white", edgecolor="0.0",
+                        hatch=_HATCHES[number % len(_HATCHES)])
+        else:
+            ax.text(0.5, 0.5, "no finite value in any scenario", transform=ax.transAxes,
+                    ha="center", va="center")
         ax.set_xticks(range(len(kind_names)), kind_names, rotation=30, ha="right",
                       fontsize="small")
         ax.set_xlim(-0.6, len(kind_names) - 0.4)

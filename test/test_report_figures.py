@@ -104,3 +104,13 @@ def test_arrays_must_be_two_dimensional():
     t, q = _signals()
     with pytest.raises(InvalidInputError, match=r"estimated: expected \(n_samples, n_joints\)"):
         report.plot_stiffness_estimate(t, np.zeros((2, 2, 2)), q, q > 0, JOINTS)
+
+
+def test_a_metric_without_any_finite_value_is_said_not_drawn():
+    # e.g. recovery times when no scenario recovered within the band
+    figure = report.plot_metric_distributions({"recovery": np.full(4, np.nan)},
+                                              np.array(["hold", "wall"] * 2),
+                                              {"recovery": "recovery [s]"})
+    texts = [t.get_text() for t in figure.axes[0].texts]
+    assert texts == ["no finite value in any scenario"]
+    assert not figure.axes[0].patches
