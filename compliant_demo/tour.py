@@ -243,12 +243,15 @@ def record_demonstrations(
         "operator": OPERATOR,
         "truth": str(truth_path),
     })
+    names = [node.name or node.executable for node in description.nodes]
+    if "teacher" not in names:
+        raise InvalidInputError(f"launch file {str(launch)!r}: declares no node named 'teacher' "
+                                f"(nodes: {names})")
     log_path = settings.out_dir / "nodes.log"
     with open(log_path, "w", encoding="utf-8") as log:
         processes = start_nodes(description, env=node_environment(settings.domain_id),
                                 extra_parameters=_node_overrides(settings, tag),
                                 stdout=log.fileno(), stderr=subprocess.STDOUT)
-    names = [node.name or node.executable for node in description.nodes]
     teacher = processes[names.index("teacher")]
     deadline = time.monotonic() + settings.record_timeout_s
     recorded: list[str] = []
