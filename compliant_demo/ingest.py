@@ -202,15 +202,11 @@ def _all_finite(values: Sequence[float]) -> bool:
     return all(map(math.isfinite, values))
 
 
-def _column(values: Sequence[Sequence[float]], shape: tuple[int, int]) -> np.ndarray:
-    """(n, n_joints) float64 array from n per-sample sequences.
-
-    Message fields arrive as ``array('d')``; their raw bytes are joined in one call, much
-    cheaper than converting each sequence. Other sequences (reordered lists) go through numpy.
-    """
-    if all(isinstance(item, array) and item.typecode == "d" for item in values):
-        return np.frombuffer(b"".join(values), dtype=np.float64).reshape(shape)  # type: ignore[arg-type]
-    return np.array(values, dtype=float).reshape(shape)
+def _as_float64(values: Sequence[float]) -> array:
+    """``values`` as ``array('d')`` (message fields already are; reordered lists are not)."""
+    if isinstance(values, array) and values.typecode == "d":
+        return values
+    return array("d", values)
 
 
 @dataclass
@@ -242,8 +238,10 @@ class ChunkBuffer:
 
     Notes
     -----
-    A sample is kept as the sequences the message brought (one list append under a lock); the
-    conversion to float64 arrays happens once per chunk in :meth:`take`, in the writer thread.
+    Each channel accumulates raw float64 bytes (message fields arrive as ``array('d')``), so a
+    sample costs a few buffer appends under a lock and creates no Python object that the cyclic
+    garbage collector would have to scan; :meth:`take` turns the bytes into arrays without a copy
+    per sample.
     """
 
     def __init__(self, n_joints: int, capacity: int):
@@ -254,16 +252,19 @@ class ChunkBuffer:
         self.n_joints = n_joints
         self.capacity = capacity
         self._lock = threading.Lock()
-        self._rows: list[tuple[float, Sequence[float], Sequence[float], Sequence[float],
-                               Sequence[float]]] = []
+        self._channels = self._empty()
+
+    @staticmethod
+    def _empty() -> tuple[array, bytearray, bytearray, bytearray, bytearray]:
+        return array("d"), bytearray(), bytearray(), bytearray(), bytearray()
 
     def __len__(self) -> int:
-        return len(self._rows)
+        return len(self._channels[0])
 
     @property
     def fill_fraction(self) -> float:
         """Fraction of the capacity in use (0 to 1)."""
-        return len(self._rows) / self.capacity
+        return len(self._channels[0]) / self.capacity
 
     def append(
         self,
@@ -274,26 +275,39 @@ class ChunkBuffer:
         reference: Sequence[float],
     ) -> bool:
         """Add one sample (sequences of n_joints floats); False when full and not kept."""
+        values = (_as_float64(position), _as_float64(velocity), _as_float64(torque),
+                  _as_float64(reference))
+        if any(len(v) != self.n_joints for v in values):
+            raise InvalidInputError(
+                f"sample at stamp {stamp}: expected {self.n_joints} values per channel, got "
+                f"{[len(v) for v in values]}"
+            )
         with self._lock:
-            if len(self._rows) >= self.capacity:
+            stamps, *channels = self._channels
+            if len(stamps) >= self.capacity:
                 return False
-            self._rows.append((stamp, position, velocity, torque, reference))
+            stamps.append(stamp)
+            for channel, value in zip(channels, values, strict=True):
+                channel += value
         return True
 
     def take(self) -> Chunk | None:
         """Remove and return everything buffered as arrays, or None when empty."""
         with self._lock:
-            rows, self._rows = self._rows, []
-        if not rows:
+            taken, self._channels = self._channels, self._empty()
+        stamps, *channels = taken
+        if not stamps:
             return None
-        t, position, velocity, torque, reference = zip(*rows, strict=True)
-        shape = (len(rows), self.n_joints)
+        shape = (len(stamps), self.n_joints)
+        position, velocity, torque, reference = (
+            np.frombuffer(channel, dtype=np.float64).reshape(shape) for channel in channels
+        )
         return Chunk(
-            t=np.array(t, dtype=float),
-            position=_column(position, shape),
-            velocity=_column(velocity, shape),
-            torque=_column(torque, shape),
-            reference=np.array(reference, dtype=float).reshape(shape),
+            t=np.frombuffer(stamps, dtype=np.float64).copy(),
+            position=position,
+            velocity=velocity,
+            torque=torque,
+            reference=reference,
         )
 
 
@@ -576,7 +590,7 @@ class RecordingSession:
         self.idle_counters = IngestCounters()
         self.current: _Demonstration | None = None
         self.last_finished: _Demonstration | None = None
-        self.reference: tuple[float, ...] = (math.nan,) * len(checker.joints)
+        self.reference = array("d", [math.nan] * len(checker.joints))
         self.reference_rejected = 0
         self.messages_seen = 0
         self._seen_at_last_health = 0
@@ -610,11 +624,11 @@ class RecordingSession:
 
     def set_reference(self, values: Sequence[float]) -> bool:
         """Hold an external stiffness reference, one value per joint, N*m/rad; False if refused."""
-        values = tuple(float(v) for v in values)
-        if len(values) != len(self.reference) or not all(map(math.isfinite, values)):
+        held = array("d", values)
+        if len(held) != len(self.reference) or not _all_finite(held):
             self.reference_rejected += 1
             return False
-        self.reference = values
+        self.reference = held
         return True
 
     def start(self) -> tuple[bool, str]:
