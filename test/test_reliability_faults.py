@@ -383,3 +383,37 @@ def test_store_on_read_only_file_system_reads_and_refuses_writes(
                 store.begin_demonstration(skill="cork_seat", joints=JOINTS)
         assert _file_state(path) == before
 
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_merge_from_a_damaged_file_never_spreads_silent_damage(
+    tmp_path: Path, finished_store: Path, pristine_digests: list[str], seed: int
+) -> None:
+    source = tmp_path / "damaged_source.sqlite"
+    what = _damage(finished_store, source, seed)
+    if seed % 4 == 0:  # and one bit inside a sample chunk, where only a checksum can tell
+        data = bytearray(source.read_bytes())
+        offset = data.find(np.ascontiguousarray(chunk_arrays(53, 5)["torque"]).tobytes())
+        data[offset + 17] ^= 0x08
+        source.write_bytes(bytes(data))
+        what += f" and bit 3 at {offset + 17}"
+    target_path = tmp_path / "target.sqlite"
+    with DemoStore(str(target_path)) as target:
+        own = write_demo(target, 54, 3)
+        own_digest = sample_digest(target.load_demonstration(own))
+        try:
+            target.merge_from(str(source))
+        except CompliantDemoError:
+            pass  # a named refusal is fine; what was merged before it must still be sound
+        except Exception as exc:
+            pytest.fail(f"{what}: {type(exc).__name__} escaped from merge_from: {exc}")
+        assert sample_digest(target.load_demonstration(own)) == own_digest
+        for info in target.find_demonstrations():
+            if info.id == own:
+                continue
+            try:
+                digest = sample_digest(target.load_demonstration(info.id))
+            except StoreCorruptError:
+                continue  # the damage travelled but is still detected: acceptable
+            assert digest in pristine_digests, f"{what}: merged samples differ without an error"
+    assert integrity(target_path) == "ok"
