@@ -48,7 +48,6 @@ __all__ = [
 
 SKILL = "cork_seat"
 DEFAULT_PLANT = "joint_cork_seat_antagonistic.yaml"
-OPERATOR = "operator_a"
 _STOP_GRACE_S = 10.0
 
 
@@ -66,6 +65,7 @@ class TourSettings:
     out_dir : directory for the report, the PNG figures, the teacher's truth file and node logs
     n_demonstrations : demonstrations the simulated teacher gives (about 7 s each, real time)
     demo_duration_s : nominal duration of each demonstration, s (None: the scenario's 6 s)
+    operator : operator name stored with each demonstration
     n_scenarios : perturbed scenarios of the campaign (spread evenly over every kind)
     seed : seed of the first demonstration and of the campaign
     domain_id : ROS_DOMAIN_ID of the node processes (0-101)
@@ -83,6 +83,7 @@ class TourSettings:
     out_dir: Path
     n_demonstrations: int = 4
     demo_duration_s: float | None = None
+    operator: str = "operator_a"
     n_scenarios: int = 350
     seed: int = 1
     domain_id: int = 17
@@ -101,6 +102,8 @@ class TourSettings:
             raise InvalidInputError(
                 f"demo_duration_s = {self.demo_duration_s}: must be 1 to 60 s"
             )
+        if not self.operator.strip():
+            raise InvalidInputError(f"operator = {self.operator!r}: must not be empty")
         if self.n_scenarios < 1:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
         if not 0 <= self.seed <= 2**31 - 1 - self.n_demonstrations:
@@ -189,9 +192,9 @@ def _complete_with_tag(store_path: Path, tag: str) -> list[str]:
         return [info.id for info in infos]
 
 
-def run_tag() -> str:
-    """A tag naming one tour run: its UTC start and process id."""
-    return f"tour-{datetime.now(UTC):%Y%m%dT%H%M%SZ}-{os.getpid()}"
+def run_tag(prefix: str = "tour") -> str:
+    """A tag naming one run: ``prefix``, its UTC start and the process id."""
+    return f"{prefix}-{datetime.now(UTC):%Y%m%dT%H%M%SZ}-{os.getpid()}"
 
 
 def _tail(path: Path, lines: int = 8) -> str:
@@ -240,7 +243,7 @@ def record_demonstrations(
         "store": str(settings.store),
         "demos": str(settings.n_demonstrations),
         "seed": str(settings.seed),
-        "operator": OPERATOR,
+        "operator": settings.operator,
         "truth": str(truth_path),
     })
     names = [node.name or node.executable for node in description.nodes]

@@ -45,6 +45,7 @@ def store(tmp_path):
         ("campaign", ["N*m*s", "default: 350", "default: every core", "--resume"]),
         ("report", ["N*m/rad", "default: ./compliant_demo_report", "self-contained"]),
         ("tour", ["loopback", "default: 4", "ROS_DOMAIN_ID", "default: 350"]),
+    ("record", ["loopback", "N*m/rad", "default: 4", "ROS_DOMAIN_ID", "rad/s"]),
     ],
 )
 def test_help_explains_units_and_defaults(capsys, command, needles):

@@ -12,6 +12,7 @@ from _chromium import visit
 from compliant_demo.cli import main
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import PERTURBATION_KINDS
+from compliant_demo.report import GroundTruth
 from compliant_demo.store import DemoStore
 from compliant_demo.tour import (
     TourError,
@@ -125,3 +126,21 @@ def test_a_node_that_fails_during_recording_is_a_clear_tour_error(tmp_path):
     with pytest.raises(TourError, match=r"teacher node exited with 1 during recording; log "):
         run_tour(settings, progress=False)
     assert (tmp_path / "out" / "nodes.log").stat().st_size > 0
+
+
+@pytest.mark.ros
+def test_record_command_stores_tagged_demonstrations_and_the_truth(tmp_path, capsys):
+    store, out = tmp_path / "store.sqlite", tmp_path / "rec"
+    status = main(["record", "--store", str(store), "--out", str(out), "--demos", "2",
+                   "--demo-duration", "1.5", "--seed", "8", "--operator", "operator_b",
+                   "--tag", "bench_morning", "--domain-id", str(DOMAIN_ID + 2), "--json"])
+    captured = capsys.readouterr()
+    assert status == 0, captured.err
+    result = json.loads(captured.out)
+    assert result["tag"] == "bench_morning" and len(result["demonstration_ids"]) == 2
+    with DemoStore(store, read_only=True) as opened:
+        infos = list(opened.find_demonstrations(tag="bench_morning"))
+    assert sorted(i.id for i in infos) == sorted(result["demonstration_ids"])
+    assert {(i.operator, i.status, i.skill) for i in infos} == {
+        ("operator_b", "complete", "cork_seat")}
+    assert len(GroundTruth.from_npz(result["truth"]).series) == 2

@@ -19,13 +19,14 @@ from compliant_demo.cli.common import add_json_option, add_store_option, emit_js
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.tour import TourSettings, run_tour
 
-__all__ = ["register"]
+__all__ = ["register", "default_domain"]
 
 DEFAULT_OUT = Path("compliant_demo_tour")
 _DEFAULT_DOMAIN = 17
 
 
-def _default_domain() -> int:
+def default_domain() -> int:
+    """$ROS_DOMAIN_ID when it is set to a number, else 17."""
     text = os.environ.get("ROS_DOMAIN_ID", "")
     return int(text) if text.isdigit() else _DEFAULT_DOMAIN
 
@@ -80,7 +81,7 @@ def _run(args: argparse.Namespace) -> int:
         demo_duration_s=args.demo_duration,
         n_scenarios=args.scenarios,
         seed=args.seed,
-        domain_id=_default_domain() if args.domain_id is None else args.domain_id,
+        domain_id=default_domain() if args.domain_id is None else args.domain_id,
         workers=args.workers,
         scheduler=args.scheduler,
         plant=args.plant,
