@@ -96,7 +96,10 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
     status, out, _ = _run(capsys, "merge", other, "--store", path, "--json")
     assert status == 0 and json.loads(out)["added"] == [added]
     status, out, _ = _run(capsys, "merge", other, "--store", path)
-    assert status == 0 and out.startswith("added 0, skipped 1 duplicate(s), 0 conflict(s)")
+    assert status == 0 and out.startswith(
+        "added 0, skipped 1 duplicate(s), 0 conflict(s); skill versions 0, campaigns 0, "
+        "results 0 added, 1 already here"
+    )
     status, out, _ = _run(capsys, "verify", "--store", path)
     assert status == 0 and out.strip() == "schema version 3: ok"
     status, out, _ = _run(capsys, "skills", "--store", other, "--json")

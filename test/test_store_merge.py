@@ -83,3 +83,59 @@ def test_merge_refuses_itself_missing_and_foreign_files(tmp_path):
         with pytest.raises(StoreCorruptError, match="no schema_migrations table"):
             store.merge_from(foreign)
         assert len(list(store.find_demonstrations())) == 1
+
+
+def _skill_campaign_results(store, demo_ids, name="cork_seat"):
+    skill = store.save_skill(name, {"w": np.arange(3.0)}, demonstration_ids=demo_ids,
+                             parameters={"n_basis": 3})  # fmt: skip
+    campaign = store.create_campaign(skill.id, {"scenarios": 2})
+    results = [
+        store.save_replay_result(
+            skill_id=skill.id, metrics={"goal_error_rad": 0.01 * i}, parameters={"seed": i},
+            trace={"q": np.full((4, 2), float(i))}, campaign_id=campaign, scenario_index=i,
+        )  # fmt: skip
+        for i in range(2)
+    ]
+    return skill, campaign, results
+
+
+def test_merge_copies_skills_campaigns_and_results_with_provenance(tmp_path):
+    bench_a, bench_b = tmp_path / "bench_a.sqlite", tmp_path / "bench_b.sqlite"
+    with DemoStore(bench_b) as b:
+        demo_id = add_demo(b, seed=1)
+        skill, campaign, results = _skill_campaign_results(b, [demo_id])
+    with DemoStore(bench_a) as a:
+        report = a.merge_from(bench_b)
+        assert report.added == [demo_id]
+        assert (report.skills_added, report.campaigns_added) == ([skill.id], [campaign])
+        assert report.results_added == results and report.conflicts == []
+        copied = a.load_skill("cork_seat")
+        assert (copied.id, copied.version, copied.demonstration_ids) == (skill.id, 1, (demo_id,))
+        assert np.array_equal(copied.payload["w"], np.arange(3.0))
+        assert a.completed_scenarios(campaign) == {0, 1}
+        assert np.array_equal(a.load_replay_result(results[1]).trace["q"], np.full((4, 2), 1.0))
+        again = a.merge_from(bench_b)
+        assert again.records_skipped == 1 + 1 + 2 and again.results_added == []
+        assert again.conflicts == []
+        assert a.integrity_check() == ["ok"]
+
+
+def test_merge_reports_clashing_skill_versions_and_what_depends_on_them(tmp_path):
+    bench_a, bench_b = tmp_path / "bench_a.sqlite", tmp_path / "bench_b.sqlite"
+    with DemoStore(bench_a) as a:
+        own_skill, _, _ = _skill_campaign_results(a, [add_demo(a, seed=1)])
+    with DemoStore(bench_b) as b:
+        skill, campaign, results = _skill_campaign_results(b, [add_demo(b, seed=2)])
+    with DemoStore(bench_a) as a:
+        report = a.merge_from(bench_b)
+        reasons = {c.id: c.reason for c in report.conflicts}
+        # bench_a has its own cork_seat version 1: bench_b's is not renumbered, it is reported
+        assert reasons[skill.id] == (
+            "skill not copied: UNIQUE constraint failed: skills.name, skills.version"
+        )
+        assert reasons[campaign] == "campaign not copied: FOREIGN KEY constraint failed"
+        assert all(reasons[r] == "replay result not copied: FOREIGN KEY constraint failed"
+                   for r in results)  # fmt: skip
+        assert report.skills_added == [] and len(report.added) == 1
+        assert [s.id for s in a.list_skills()] == [own_skill.id]
+        assert a.integrity_check() == ["ok"]

@@ -206,7 +206,9 @@ def _cmd_merge(args: argparse.Namespace) -> int:
         return 0
     print(
         f"added {len(report.added)}, skipped {len(report.skipped_duplicates)} duplicate(s), "
-        f"{len(report.conflicts)} conflict(s)"
+        f"{len(report.conflicts)} conflict(s); skill versions {len(report.skills_added)}, "
+        f"campaigns {len(report.campaigns_added)}, results {len(report.results_added)} added, "
+        f"{report.records_skipped} already here"
     )
     if report.conflicts:
         emit_table([{"id": c.id, "reason": c.reason} for c in report.conflicts], ("id", "reason"))
@@ -317,7 +319,12 @@ def register(subparsers: Any) -> None:
     p.add_argument("--out", type=Path, required=True, help="file (one id) or existing directory")
     p.add_argument("--storage", choices=tuple(STORAGES), default="sqlite3", help="bag storage")
 
-    p = _sub(subparsers, "merge", _cmd_merge, "copy demonstrations from another store file")
+    p = _sub(
+        subparsers,
+        "merge",
+        _cmd_merge,
+        "copy demonstrations, skills and results from another store file",
+    )
     p.add_argument("other", type=Path)
 
     p = _sub(subparsers, "delete", _cmd_delete, "delete finished demonstrations")

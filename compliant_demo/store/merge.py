@@ -1,13 +1,16 @@
-"""Merging one store file into another: demonstrations keep their UUIDs, identical ones are
-skipped, differing ones are reported as conflicts and left as they are."""
+"""Merging one store file into another: demonstrations, skill versions, campaigns and replay
+results keep their UUIDs, identical ones are skipped, differing or clashing ones are reported as
+conflicts and left as they are."""
 
 from __future__ import annotations
 
 import hashlib
 import json
+import sqlite3
 import uuid
 from typing import TYPE_CHECKING, Any
 
+from compliant_demo.exceptions import StoreError
 from compliant_demo.store._schema import read_samples
 from compliant_demo.store.records import MergeConflict, MergeReport
 
@@ -61,8 +64,72 @@ def _identity(conn: Any, demo_id: str) -> dict[str, Any] | None:
     return None if row is None else dict(zip(_IDENTITY_COLUMNS, row, strict=True))
 
 
+# Records merged after the demonstrations, parents first: table, columns, child table with the
+# column that points to the record and its columns, and the report list of added ids.
+_RECORDS = (
+    ("skill", "skills", ("id", "name", "version", "payload", "parameters", "created"),
+     ("skill_demonstrations", "skill_id", ("skill_id", "position", "demo_id")), "skills_added"),
+    ("campaign", "campaigns", ("id", "skill_id", "config", "created"), None, "campaigns_added"),
+    ("replay result", "replay_results",
+     ("id", "skill_id", "campaign_id", "scenario_index", "status", "reason", "metrics",
+      "parameters", "created"),
+     ("replay_traces", "result_id", ("result_id", "channel", "shape", "data")), "results_added"),
+)  # fmt: skip
+
+
+def _record(conn: Any, table: str, columns: tuple[str, ...], child: Any, key: str) -> Any:
+    """A record's row and its children's rows, comparable between two stores."""
+    row = conn.execute(f"SELECT {', '.join(columns)} FROM {table} WHERE id = ?", (key,)).fetchone()
+    if row is None or child is None:
+        return row, []
+    child_table, parent_column, child_columns = child
+    rows = conn.execute(
+        f"SELECT {', '.join(child_columns)} FROM {child_table} WHERE {parent_column} = ? "
+        f"ORDER BY {', '.join(child_columns[:2])}",
+        (key,),
+    ).fetchall()
+    return row, rows
+
+
+def _merge_records(target: DemoStore, source: DemoStore, report: MergeReport) -> None:
+    for kind, table, columns, child, added in _RECORDS:
+        with source._snapshot() as src:
+            keys = [row[0] for row in src.execute(f"SELECT id FROM {table} ORDER BY created, id")]
+        for key in keys:
+            with source._snapshot() as src:
+                theirs = _record(src, table, columns, child, key)
+            try:
+                with target._transaction() as dst:
+                    ours = _record(dst, table, columns, child, key)
+                    if ours[0] is not None:
+                        if ours == theirs:
+                            report.records_skipped += 1
+                        else:
+                            report.conflicts.append(MergeConflict(key, f"{kind} differs here"))
+                        continue
+                    if theirs[0] is None:  # deleted in the source since we listed it
+                        continue
+                    _insert(dst, table, columns, [theirs[0]])
+                    if child is not None:
+                        _insert(dst, child[0], child[2], theirs[1])
+                    getattr(report, added).append(key)
+            except StoreError as exc:
+                if not isinstance(exc.__cause__, sqlite3.IntegrityError):
+                    raise
+                # the constraint names the clash: (name, version) taken, parent missing ...
+                report.conflicts.append(MergeConflict(key, f"{kind} not copied: {exc.__cause__}"))
+
+
+def _insert(conn: Any, table: str, columns: tuple[str, ...], rows: Any) -> None:
+    conn.executemany(
+        f"INSERT INTO {table} ({', '.join(columns)}) VALUES ({', '.join('?' for _ in columns)})",
+        rows,
+    )
+
+
 def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
-    """Copy every finished demonstration of ``source`` missing from ``target``."""
+    """Copy every finished demonstration, then every skill version, campaign and replay result
+    of ``source`` missing from ``target``."""
     report = MergeReport()
     with source._snapshot() as src:
         ids = [
@@ -97,25 +164,17 @@ def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
             row = src.execute(
                 f"SELECT {', '.join(_COPY_COLUMNS)} FROM demonstrations WHERE id = ?", (demo_id,)
             ).fetchone()
-            dst.execute(
-                f"INSERT INTO demonstrations ({', '.join(_COPY_COLUMNS)}) "
-                f"VALUES ({', '.join('?' for _ in _COPY_COLUMNS)})",
-                row,
-            )
-            dst.executemany(
-                "INSERT INTO demonstration_tags (demo_id, tag) VALUES (?, ?)",
-                src.execute(
-                    "SELECT demo_id, tag FROM demonstration_tags WHERE demo_id = ?", (demo_id,)
-                ),
-            )
-            for chunk in src.execute(
-                f"SELECT {', '.join(_CHUNK_COLUMNS)} FROM chunks WHERE demo_id = ? ORDER BY seq",
-                (demo_id,),
-            ):
-                dst.execute(
-                    f"INSERT INTO chunks ({', '.join(_CHUNK_COLUMNS)}) "
-                    f"VALUES ({', '.join('?' for _ in _CHUNK_COLUMNS)})",
-                    chunk,
-                )
+            _insert(dst, "demonstrations", _COPY_COLUMNS, [row])
+            _insert(
+                dst, "demonstration_tags", ("demo_id", "tag"),
+                src.execute("SELECT demo_id, tag FROM demonstration_tags WHERE demo_id = ?",
+                            (demo_id,)),
+            )  # fmt: skip
+            _insert(
+                dst, "chunks", _CHUNK_COLUMNS,
+                src.execute(f"SELECT {', '.join(_CHUNK_COLUMNS)} FROM chunks WHERE demo_id = ? "
+                            "ORDER BY seq", (demo_id,)),
+            )  # fmt: skip
             report.added.append(demo_id)
+    _merge_records(target, source, report)
     return report

@@ -224,13 +224,22 @@ class MergeReport:
     skipped_duplicates : list of str
         Ids already here with identical metadata and samples.
     conflicts : list of MergeConflict
-        Ids already here with different content, or still recording in the other store;
-        nothing was changed for them.
+        Ids already here with different content, still recording in the other store, or
+        (skills, campaigns, results) clashing with a record here or lacking the record they
+        refer to; nothing was changed for them.
+    skills_added, campaigns_added, results_added : list of str
+        Ids of skill versions, campaigns and replay results copied (with provenance and traces).
+    records_skipped : int
+        Skill versions, campaigns and results already here, identical.
     """
 
     added: list[str] = field(default_factory=list)
     skipped_duplicates: list[str] = field(default_factory=list)
     conflicts: list[MergeConflict] = field(default_factory=list)
+    skills_added: list[str] = field(default_factory=list)
+    campaigns_added: list[str] = field(default_factory=list)
+    results_added: list[str] = field(default_factory=list)
+    records_skipped: int = 0
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dict."""
