@@ -166,11 +166,19 @@ class ReplayCampaign:
     @classmethod
     def from_config(cls, skill: Skill, config: Mapping[str, Any]) -> ReplayCampaign:
         """Rebuild the job a stored campaign ran (``config`` as :meth:`config` wrote it)."""
-        settings = {key: config[key] for key in (
-            "n_scenarios", "seed", "duration_s", "settle_s", "dt", "decimation", "method",
-            "stratify_kinds", "recovery_band")}
-        return cls(skill, ReplayPlant.model_validate(config["plant"]),
-                   CampaignSpec.model_validate(config["spec"]), **settings)
+        keys = ("n_scenarios", "seed", "duration_s", "settle_s", "dt", "decimation", "method",
+                "stratify_kinds", "recovery_band", "plant", "spec")
+        missing = [key for key in keys if key not in config]
+        if missing:
+            raise InvalidInputError(
+                f"campaign config: lacks {missing}; not a campaign of perturbed replays")
+        try:
+            plant = ReplayPlant.model_validate(config["plant"])
+            spec = CampaignSpec.model_validate(config["spec"])
+        except ValueError as exc:
+            raise InvalidInputError(
+                f"campaign config: {str(exc).splitlines()[0]}") from None
+        return cls(skill, plant, spec, **{key: config[key] for key in keys[:-2]})
 
     def unperturbed(self) -> tuple[np.ndarray, np.ndarray]:
         """Time (s) and angles ((n_rec, n_joints), rad) of the replay without perturbation."""

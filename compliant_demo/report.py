@@ -614,9 +614,9 @@ def collect_report_content(
     if campaign is not None and campaign.skill_id != record.id:
         raise InvalidInputError(f"campaign_id = {campaign_id!r}: replays another skill version "
                                 f"than {skill_name!r} v{record.version}")
+    job = ReplayCampaign.from_config(skill, campaign.config) if campaign else None
     if plant is None:
-        plant = (ReplayPlant.model_validate(campaign.config["plant"]) if campaign
-                 else load_plant(None))
+        plant = job.plant if job is not None else load_plant(None)
 
     figures = []
     demos = [store.load_demonstration(i, joints=joints) for i in record.demonstration_ids]
@@ -654,7 +654,6 @@ def collect_report_content(
                         f"{100 * excited.mean():.0f} % of samples excited enough"))
 
     target = plant.for_joints(joints)
-    job = ReplayCampaign.from_config(skill, campaign.config) if campaign else None
     rollout = (job.rollout() if job else skill.rollout(
         dt=1e-3, target_inertia=[j.inertia for j in target]))
     checks = check_schedule(rollout, target, plant.mechanism, min_damping_ratio=min_damping_ratio)

@@ -78,6 +78,9 @@ def test_report_errors_name_what_is_missing(tmp_path):
     with DemoStore(path, durable=False) as store:
         with pytest.raises(NotFoundError, match=r"skill 'other' not found"):
             collect_report_content(store, "other")
+        foreign = store.create_campaign(skill_id, {"note": "written by another tool"})
+        with pytest.raises(InvalidInputError, match=r"campaign config: lacks \['n_scenarios'"):
+            collect_report_content(store, "cork_seat", campaign_id=foreign)
         job = campaign_job(n_scenarios=7)
         empty = store.create_campaign(skill_id, dict(job.config(), batch_size=7))
         with pytest.raises(NotFoundError, match=rf"campaign '{empty}' has no results yet"):
