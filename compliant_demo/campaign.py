@@ -41,6 +41,7 @@ from compliant_demo.runtime import ReplayPlant
 from compliant_demo.sim import simulate
 
 __all__ = [
+    "TRACE_CHANNELS",
     "ScenarioOutcome",
     "CampaignJob",
     "ReplayCampaign",
