@@ -65,7 +65,7 @@ def _check_consistent(demo) -> None:
 def test_reader_sees_consistent_snapshots_while_a_writer_appends(tmp_path):
     path = tmp_path / "store.sqlite"
     DemoStore(path).close()
-    writer, demo_id = _start_writer(path, chunks=60, pause=0.005, finish="finish")
+    writer, demo_id = _start_writer(path, chunks=60, pause=0.01, finish="finish")
     seen = []
     try:
         with DemoStore(path, read_only=True) as reader:
