@@ -1,10 +1,11 @@
 """Shared machinery of the reliability, fuzz and security tests and of ``bench/bench_faults.py``.
 
-Holds the SIGKILL trial harness (a forkserver child appends deterministic chunks through the store
-API and reports each chunk after ``append_chunk`` returned; the parent kills it at a random moment
-and checks the file), the deterministic chunk generator both sides agree on, small adapters over
-the store's records, the shared hypothesis settings and a counter of fuzz cases that the benchmark
-reads after running the fuzz tests in-process.
+Holds the SIGKILL trial harness (a forkserver child records through the store API and reports
+each call after it returned; the parent kills it at a random moment and checks the file), the
+deterministic chunk generator both sides agree on, the recorder flood (a real recorder process and a
+publisher process on loopback DDS, with the recorder's resident memory sampled), small adapters
+over the store's records, the shared hypothesis settings and strategies, and a counter of fuzz
+cases that the benchmark reads after running the fuzz tests in-process.
 """
 
 from __future__ import annotations
@@ -34,6 +35,8 @@ __all__ = [
     "RATE_HZ",
     "FUZZ_COUNTER",
     "FUZZ_SETTINGS",
+    "FLOOD_EPOCH_S",
+    "FLOOD_JOINTS",
     "KillTrialResult",
     "channel",
     "chunk_arrays",
@@ -41,9 +44,12 @@ __all__ = [
     "demo_seed",
     "expected_samples",
     "field",
+    "flood_driver_main",
     "integrity",
     "mutated_tree",
     "no_hang",
+    "ros_environment",
+    "run_flood",
     "run_kill_trials",
     "sample_digest",
     "write_demo",
@@ -306,9 +312,17 @@ def _read_progress(progress_path: Path) -> dict[int, _Reported]:
     return reported
 
 
-def _wait_for_start(progress_path: Path, process: Any, timeout_s: float) -> None:
+def _alive(process: Any, lock: threading.Lock) -> bool:
+    # Process.start() in another thread polls every child (multiprocessing's _cleanup); two polls
+    # of one forkserver child at once can lose its exit code (reported as 255), hence the lock.
+    with lock:
+        return process.is_alive()
+
+
+def _wait_for_start(progress_path: Path, process: Any, lock: threading.Lock, timeout_s: float
+                    ) -> None:  # fmt: skip
     deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline and process.is_alive():
+    while time.monotonic() < deadline and _alive(process, lock):
         if progress_path.exists() and progress_path.stat().st_size > 0:
             return
         time.sleep(0.0005)
@@ -405,15 +419,19 @@ def _one_trial(context: Any, start_lock: threading.Lock, folder: Path, seed: int
         )  # fmt: skip
         process.start()
     if not from_fork:
-        _wait_for_start(progress, process, timeout_s=30.0)
+        _wait_for_start(progress, process, start_lock, timeout_s=30.0)
     time.sleep(delay)
-    if process.is_alive():
+    if _alive(process, start_lock):
         os.kill(process.pid, signal.SIGKILL)
-    process.join(30.0)
+    deadline = time.monotonic() + 30.0
+    while _alive(process, start_lock) and time.monotonic() < deadline:
+        time.sleep(0.001)
     trial = _verify_trial(path, seed, _read_progress(progress), chunks_per_demo)
     trial.delay_s = delay
-    if process.exitcode not in (-signal.SIGKILL,) and trial.problem is None:
-        trial.problem = f"writer exited with {process.exitcode} before it was killed"
+    with start_lock:
+        exitcode = process.exitcode
+    if exitcode != -signal.SIGKILL and trial.problem is None:
+        trial.problem = f"writer exited with {exitcode} before it was killed"
     return trial
 
 
