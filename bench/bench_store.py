@@ -129,8 +129,10 @@ def main() -> None:
             results[f"append_realtime_factor_chunk{chunk}_{'durable' if durable else 'normal'}"] = (
                 record["realtime_factor"]
             )
-        path = tmpdir / "store.sqlite"
-        demo_id, elapsed = _append(path, data, 1000, True)
+        # the headline: median of three appends into fresh files (fsync times vary on a busy disk)
+        runs = [_append(tmpdir / f"store_{i}.sqlite", data, 1000, True) for i in range(3)]
+        elapsed = sorted(wall for _, wall in runs)[1]
+        demo_id, path = runs[-1][0], tmpdir / "store_2.sqlite"
         with DemoStore(path, read_only=True) as store:
             load_ms = median_ms(lambda: store.load_demonstration(demo_id), 15)
             loaded = store.load_demonstration(demo_id)
