@@ -385,6 +385,8 @@ class ReplayRun:
         self._trace = {name: np.full(shape, np.nan) for name in _TRACE_CHANNELS}
         self.steps_done = 0
         self.stop_reason: str | None = None
+        self.live_pushes = False
+        self._method = method
         self._limits = (
             np.array([j.lower_limit for j in self.joints]),
             np.array([j.upper_limit for j in self.joints]),
@@ -413,6 +415,8 @@ class ReplayRun:
             raise InvalidInputError("replay already finished: no further step")
         k = self.steps_done
         equilibrium, stiffness, damping = self.commands(k)
+        if live_torque is not None and any(live_torque):
+            self.live_pushes = True
         state = self.simulator.step(equilibrium, stiffness, damping, external_torque=live_torque)
         for name in _TRACE_CHANNELS:
             self._trace[name][k] = getattr(state, name)[0]
@@ -493,5 +497,27 @@ class ReplayRun:
             self.rollout.position[-1],
             perturbation_onsets=onsets,
             perturbation_ends=ends,
+            energy=self._energy(),
             joints=self.joints,
         )
+
+    def _energy(self) -> dict[str, np.ndarray] | None:
+        """Energy terms at the end of the steps done, J per joint; None after live pushes.
+
+        The stepped simulator reports no energy bookkeeping, so the same commands and schedule
+        go once more through :func:`compliant_demo.sim.simulate`, which follows the same states
+        (the trace equals its samples). Live pushes are not part of that rerun, hence None.
+        """
+        from compliant_demo.sim import simulate
+
+        if self.live_pushes:
+            return None
+        n = self.steps_done
+        rollout = self.rollout
+        result = simulate(
+            self.joints, self.mechanism, rollout.position[:n], rollout.stiffness[:n],
+            rollout.damping[:n], schedules=None if self.schedule is None else [self.schedule],
+            q0=rollout.position[0], dt=self.dt, method=self._method, seed=self.seed,
+            decimation=n,
+        )
+        return {name: values[0] for name, values in result.energy.final().items()}

@@ -163,6 +163,7 @@ def test_replay_with_a_schedule_stores_metrics_and_matches_core_simulation(
         assert key in metrics, key
     assert len(metrics["recovery_time_s"]) == 2  # one per scheduled perturbation
     assert metrics["n_limit_violations"] == 0
+    assert isinstance(metrics["energy_injected_J"], float)
     # The same skill through the core simulation directly, same seed and schedule.
     plant = load_plant(ROOT / "config" / "replay_plant.yaml")
     schedule = load_schedule_yaml(ROOT / "config" / "replay_bumps.yaml")
@@ -242,6 +243,7 @@ def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: P
     with DemoStore(store, read_only=True) as db:
         trace = db.load_replay_result(info.id).trace
     assert info.status == "ok" and info.parameters["real_time"] is True
+    assert info.metrics["energy_injected_J"] is None  # live pushes: no energy rerun
     assert trace["q"].shape == (1800, 2)  # (1.5 s + 0.3 s) at 1 kHz
     pushed = trace["tau_external"][:, 0] == 0.5
     assert 0.1 <= pushed.mean() * 1.8 <= 0.6  # about 0.3 s of the push, within timing slack

@@ -202,6 +202,11 @@ def test_replay_run_steps_the_same_trajectory_as_simulate(skill) -> None:
     np.testing.assert_allclose(trace["t"], direct.t[1:], rtol=0, atol=1e-12)
     np.testing.assert_array_equal(trace["stiffness_commanded"], rollout.stiffness[:n])
     assert len(metrics["recovery_time_s"]) == 1
+    injected = direct.energy.final()["stiffness_injection"][0].sum()
+    assert metrics["energy_injected_J"] == pytest.approx(injected, rel=1e-9, abs=1e-12)
+    assert metrics["energy_J"]["perturbation_work"] == pytest.approx(
+        direct.energy.final()["perturbation_work"][0].tolist(), rel=1e-9, abs=1e-12
+    )
     with pytest.raises(InvalidInputError, match="already finished"):
         run.step()
 
