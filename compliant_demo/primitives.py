@@ -533,7 +533,7 @@ class DampingPolicy(BaseModel):
 class Provenance(BaseModel):
     """Where a skill came from: demonstrations, alignment, fit quality, software version."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
 
     demonstration_ids: list[str] = Field(default_factory=list)
     n_demonstrations: int = Field(1, ge=1)
@@ -555,10 +555,11 @@ class Provenance(BaseModel):
 class Skill(BaseModel):
     """A learned skill: movement primitive, stiffness profile, damping policy and provenance.
 
-    Weights are stored as plain lists so the model round-trips through JSON unchanged.
+    Weights are stored as plain lists so the model round-trips through JSON unchanged. Every
+    number must be finite: a NaN weight would roll out NaN positions without any error.
     """
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
 
     name: str = Field("skill", min_length=1)
     joints: list[str] = Field(..., min_length=1)
