@@ -253,3 +253,21 @@ def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: P
         assert 150 <= len(messages) <= 180, (topic, len(messages))
     assert any(m.data[0] == 0.5 for m in received["perturbation"])
     assert list(received["joint_states"][0].name) == ["shoulder", "elbow"]
+
+
+def test_launch_command_until_the_teacher_ends_stops_the_recorder_cleanly(tmp_path: Path) -> None:
+    """``compliant-demo launch record.launch.xml --until teacher`` returns by itself, 0."""
+    store = tmp_path / "store.sqlite"
+    command = [
+        sys.executable, "-c", "import sys; from compliant_demo.cli import main; "
+        "sys.exit(main(sys.argv[1:]))", "launch", str(LAUNCH / "record.launch.xml"),
+        f"store:={store}", "demos:=1", "seed:=4", "operator:=operator_b", "--until", "teacher",
+    ]  # fmt: skip
+    env = ros_env(PIPELINE_DOMAIN_ID)
+    result = subprocess.run(command, env=env, capture_output=True, text=True, timeout=90,
+                            cwd=ROOT)
+    assert result.returncode == 0, result.stdout + result.stderr
+    with DemoStore(store, read_only=True) as db:
+        (info,) = db.find_demonstrations()
+    assert info.status == "complete" and info.operator == "operator_b"
+    assert info.n_samples == info.flags["received"] > 5000  # a 6 s demonstration at 1 kHz
