@@ -9,9 +9,13 @@ from __future__ import annotations
 
 import contextlib
 import io
+import os
+import subprocess
+import sys
 import warnings
 from collections.abc import Iterator
 from datetime import UTC, datetime
+from pathlib import Path
 
 import pytest
 from hypothesis import given
@@ -193,3 +197,36 @@ def test_non_text_tag_or_status_is_invalid_input(
     store, _ = query_store
     with pytest.raises(InvalidInputError, match=rf"{argument}.*{value!r}"):
         list(store.find_demonstrations(**{argument: value}))
+
+
+# About 2.6e10 rows for the 120 chunks of the test store: a slip of the pen, not a trick.
+_ENDLESS_WHERE = "(SELECT count(*) FROM chunks a, chunks b, chunks c, chunks d, chunks e) >= 0"
+
+
+@pytest.mark.slow
+def test_a_where_that_never_ends_is_refused_not_a_hang(tmp_path: Path) -> None:
+    # Found while fuzzing: SQLite runs such a condition for hours inside C code, where neither a
+    # signal nor the caller can stop it (a recursive CTE without an end runs for ever). It runs
+    # in a child process here, so a hang fails this test instead of stopping the suite.
+    here = Path(__file__).resolve().parent
+    script = (
+        "import sys\n"
+        "from reliability_support import write_demo\n"
+        "from compliant_demo.exceptions import InvalidInputError\n"
+        "from compliant_demo.store import DemoStore\n"
+        f"store = DemoStore({str(tmp_path / 'endless.sqlite')!r})\n"
+        "for seed in range(3):\n"
+        "    write_demo(store, seed, 40)\n"
+        "try:\n"
+        f"    list(store.find_demonstrations(where={_ENDLESS_WHERE!r}))\n"
+        "except InvalidInputError as exc:\n"
+        "    print('refused:', exc)\n"
+    )
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(here.parent), str(here)])}
+    try:
+        done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                              timeout=45, env=env)  # fmt: skip
+    except subprocess.TimeoutExpired:
+        pytest.fail("find_demonstrations(where=<a 2.6e10-row join>) still running after 45 s")
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert done.stdout.startswith("refused: where"), done.stdout
