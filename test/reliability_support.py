@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import collections
 import contextlib
+import faulthandler
 import hashlib
 import multiprocessing
 import os
@@ -99,16 +100,23 @@ def count_case(parser: str) -> None:
 
 @contextlib.contextmanager
 def no_hang(seconds: float) -> Iterator[None]:
-    """Raise TimeoutError in the main thread if the body runs longer than ``seconds`` (a hang)."""
+    """Raise TimeoutError in the main thread if the body runs longer than ``seconds`` (a hang).
+
+    A hang inside C code (SQLite, a parser extension) holds the thread where no signal handler
+    can run; for that case the process dumps every thread's stack and exits after four times the
+    limit, so the suite fails loudly instead of waiting for ever.
+    """
 
     def _alarm(signum: int, frame: object) -> None:
         raise TimeoutError(f"parser still running after {seconds} s: treated as a hang")
 
     previous = signal.signal(signal.SIGALRM, _alarm)
     signal.setitimer(signal.ITIMER_REAL, seconds)
+    faulthandler.dump_traceback_later(4 * seconds, exit=True)
     try:
         yield
     finally:
+        faulthandler.cancel_dump_traceback_later()
         signal.setitimer(signal.ITIMER_REAL, 0.0)
         signal.signal(signal.SIGALRM, previous)
 
