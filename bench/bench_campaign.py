@@ -31,6 +31,7 @@ N_SCENARIOS = 240
 BATCH_SIZE = 30
 MOVEMENT_S, SETTLE_S = 4.5, 0.5
 TOUR_DOMAIN_ID = 100
+REPEATS = 2
 
 
 def _skill_in_store(path: Path) -> tuple[object, str]:
@@ -71,17 +72,23 @@ def main() -> None:
         job = ReplayCampaign(skill, load_plant(None), default_campaign_spec(2, MOVEMENT_S),
                              N_SCENARIOS, seed=7, duration_s=MOVEMENT_S, settle_s=SETTLE_S)
 
-        local = _throughput(store, skill_id, job, workers=cores)
+        # Best of REPEATS interleaved runs: other processes on shared cores come and go.
+        local = max(_throughput(store, skill_id, job, workers=cores) for _ in range(REPEATS))
         emit({"case": "local_pool", "workers": cores, "scenarios": N_SCENARIOS,
               "scenarios_per_s": local})
-        one = _throughput(store, skill_id, job, workers=1)
-        two = _throughput(store, skill_id, job, workers=2)
+        one, two = [], []
+        for _ in range(REPEATS):
+            one.append(_throughput(store, skill_id, job, workers=1))
+            two.append(_throughput(store, skill_id, job, workers=2))
         emit({"case": "scaling", "scenarios_per_s_1": one, "scenarios_per_s_2": two})
+        on_dask, local_two = [], []
         with distributed.LocalCluster(host="127.0.0.1", n_workers=2, threads_per_worker=1,
                                       processes=True, dashboard_address=None,
                                       worker_dashboard_address=None) as cluster:
-            on_dask = _throughput(store, skill_id, job, scheduler=cluster.scheduler_address)
-        local_two = _throughput(store, skill_id, job, workers=2)
+            for _ in range(REPEATS):
+                on_dask.append(_throughput(store, skill_id, job,
+                                           scheduler=cluster.scheduler_address))
+                local_two.append(_throughput(store, skill_id, job, workers=2))
         emit({"case": "dask", "scenarios_per_s_dask": on_dask,
               "scenarios_per_s_local_2": local_two})
         tour_s = _tour_seconds(workdir)
@@ -89,8 +96,8 @@ def main() -> None:
     emit({
         "bench": "campaign",
         "scenarios_per_s_local": round(local, 2),
-        "scaling_2_vs_1_workers": round(two / one, 3),
-        "dask_vs_local_ratio": round(on_dask / local_two, 3),
+        "scaling_2_vs_1_workers": round(max(two) / max(one), 3),
+        "dask_vs_local_ratio": round(max(on_dask) / max(local_two), 3),
         "tour_s": round(tour_s, 1),
         # Other processes share the cores; the 1-minute load average says how much.
         "load_avg_1min": round(os.getloadavg()[0], 2),
