@@ -183,8 +183,14 @@ def test_traces_hold_every_channel_per_joint():
         assert outcome.trace[name].shape == (n, len(JOINTS)), name
 
 
-def test_a_campaign_killed_mid_run_keeps_what_it_stored_and_resumes_to_the_same_results(tmp_path):
-    # A real interruption: the command line process is SIGKILLed while batches stream in.
+@pytest.mark.parametrize(("signum", "status", "message"), [
+    (signal.SIGKILL, -signal.SIGKILL, ""),
+    # Ctrl-C on a terminal reaches the whole process group, the workers included.
+    (signal.SIGINT, 130, "compliant-demo campaign: interrupted\n"),
+])
+def test_an_interrupted_campaign_command_keeps_what_it_stored_and_resumes_to_the_same_results(
+        tmp_path, signum, status, message):
+    # A real interruption of the command line process while batches stream in.
     path = tmp_path / "s.sqlite"
     skill_id = store_with_demos_and_skill(path)
     argv = ["campaign", "--store", str(path), "--scenarios", "16", "--seed", "9",
@@ -194,16 +200,17 @@ def test_a_campaign_killed_mid_run_keeps_what_it_stored_and_resumes_to_the_same_
     env = dict(os.environ,
                PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
     process = subprocess.Popen([sys.executable, "-c", entry, *argv], env=env,
-                               stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+                               stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                               start_new_session=True)
     deadline = time.monotonic() + 120
     stored: set[int] = set()
     while len(stored) < 4 and time.monotonic() < deadline and process.poll() is None:
         time.sleep(0.05)
         with DemoStore(path, read_only=True) as store:
             stored = {r.scenario_index for r in store.find_replay_results()}
-    process.kill()
-    process.wait(timeout=30)
-    assert process.returncode == -signal.SIGKILL, process.stderr.read()
+    os.killpg(process.pid, signum)
+    _, err = process.communicate(timeout=60)
+    assert (process.returncode, err) == (status, message)
     with DemoStore(path) as store:
         assert store.integrity_check() == ["ok"]
         (campaign_id,) = {r.campaign_id for r in store.find_replay_results()}
