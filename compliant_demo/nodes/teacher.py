@@ -5,6 +5,7 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.client import Client
 from rclpy.node import Node
 from rclpy.task import Future
@@ -24,7 +25,9 @@ class TeacherNode(Node):
     """Publishes ``joint_states`` and ``stiffness_truth`` in real time, demo after demo.
 
     With ``control_recorder`` it calls the recorder's ``start`` and ``stop`` services around
-    each demonstration, and ends (``exit_when_done``) after the last one was stopped.
+    each demonstration, calling ``stop`` only once the recorder's diagnostics count every
+    published sample (or ``confirm_timeout_s`` passed), and ends (``exit_when_done``) after the
+    last one was stopped.
     """
 
     def __init__(self) -> None:
@@ -43,6 +46,9 @@ class TeacherNode(Node):
                           low=0.0, high=600.0)
         self._settle_s = d(self, "settle_s", 0.5, "Wait after the last sample before stopping "
                            "the recorder, s.", low=0.0, high=60.0)
+        self._confirm_s = d(self, "confirm_timeout_s", 5.0, "Longest further wait for the "
+                            "recorder's diagnostics to count every published sample, s.",
+                            low=0.0, high=600.0)
         self._control = d(self, "control_recorder", True, "Call the recorder's start/stop.")
         self._subscribers = d(self, "wait_for_subscribers", 1, "Joint-state subscribers to wait "
                               "for before the first demonstration.", low=0, high=100)
@@ -64,6 +70,9 @@ class TeacherNode(Node):
         self._pending: Future | None = None
         self._state_since = time.monotonic()
         self._demo_start_wall = 0.0
+        # The recorder's own count of received samples, from diagnostics seen while settling.
+        self._recorder_received = -1
+        self.create_subscription(DiagnosticArray, "diagnostics", self._on_diagnostics, 10)
         self.create_timer(period, self._tick)
 
     def _scenario(self, scenario_file: str) -> TeachingScenario:
@@ -98,7 +107,14 @@ class TeacherNode(Node):
         elif self._state == "publishing":
             self._publish_due(elapsed)
         elif self._state == "settling" and elapsed >= self._settle_s:
-            self._end_demonstration()
+            confirmed = self._recorder_received >= self.session.current_published
+            if confirmed or not self._control or elapsed >= self._settle_s + self._confirm_s:
+                if not confirmed and self._control:
+                    self.get_logger().warning(
+                        f"recorder diagnostics count {self._recorder_received} of "
+                        f"{self.session.current_published} samples; stopping anyway"
+                    )
+                self._end_demonstration()
         elif self._state == "stopping" and self._replied():
             result = self._reply()
             if result.success:
@@ -108,6 +124,14 @@ class TeacherNode(Node):
             self._after_demonstration()
         elif self._state == "pausing" and elapsed >= self._pause_s:
             self._begin_demonstration()
+
+    def _on_diagnostics(self, msg: DiagnosticArray) -> None:
+        if self._state != "settling":
+            return
+        for status in msg.status:
+            values = {kv.key: kv.value for kv in status.values}
+            if status.name == "recorder" and values.get("recording") == "true":
+                self._recorder_received = int(values.get("received", "-1"))
 
     def _replied(self) -> bool:
         return self._pending is not None and self._pending.done()
@@ -145,6 +169,7 @@ class TeacherNode(Node):
             self._truth.publish(float_array(stiffness))
         if self.session.current_finished:
             self.get_logger().info(f"published {self.session.current_published} samples")
+            self._recorder_received = -1
             self._enter("settling")
 
     def _end_demonstration(self) -> None:
