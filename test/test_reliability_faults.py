@@ -81,27 +81,50 @@ def _big_chunk(index: int, n: int = 4000) -> dict[str, np.ndarray]:
 # -- disk full -----------------------------------------------------------------------------------
 
 
+def _fill_up(folder: Path) -> Path:
+    """Take every free byte of the file system at ``folder`` with a filler file; return it."""
+    filler = folder / "filler"
+    with filler.open("wb") as handle:
+        try:
+            while True:
+                handle.write(bytes(65536))
+                handle.flush()
+        except OSError:
+            pass  # ENOSPC: the disk is now full
+    return filler
+
+
 def test_disk_full_stops_with_store_full_error_and_keeps_earlier_demos(tmp_path: Path) -> None:
     with _mounted_tmpfs(tmp_path / "small", 16384) as folder:
         path = folder / "full.sqlite"
-        with DemoStore(str(path)) as store:
-            earlier = write_demo(store, seed=11, n_chunks=6)
-            digest = sample_digest(store.load_demonstration(earlier))
-            filling = store.begin_demonstration(skill="cork_seat", joints=JOINTS)
-            appended = 0
-            with pytest.raises(StoreFullError, match=r"full"):
-                for index in range(1000):  # 16 MiB hold far fewer than 1000 chunks of 320 kB
-                    store.append_chunk(filling, **_big_chunk(index))
-                    appended += 1
-            assert appended > 0, "the store was full before the test began filling it"
-            assert sample_digest(store.load_demonstration(earlier)) == digest
-            partial = store.load_demonstration(filling)
-            assert partial.t.shape[0] == appended * 4000, "a failed chunk left samples behind"
-            np.testing.assert_array_equal(partial.t[-4000:], _big_chunk(appended - 1)["t"])
+        store = DemoStore(str(path))
+        earlier = write_demo(store, seed=11, n_chunks=6)
+        digest = sample_digest(store.load_demonstration(earlier))
+        filling = store.begin_demonstration(skill="cork_seat", joints=JOINTS)
+        appended = 0
+        with pytest.raises(StoreFullError, match=r"full"):
+            for index in range(1000):  # 16 MiB hold far fewer than 1000 chunks of 320 kB
+                store.append_chunk(filling, **_big_chunk(index))
+                appended += 1
+        assert appended > 0, "the store was full before the test began filling it"
+        assert sample_digest(store.load_demonstration(earlier)) == digest
+        partial = store.load_demonstration(filling)
+        assert partial.t.shape[0] == appended * 4000, "a failed chunk left samples behind"
+        np.testing.assert_array_equal(partial.t[-4000:], _big_chunk(appended - 1)["t"])
+        # Closing while not a byte is free (the recorder closes its store after a failed write):
+        # no error may escape; the recording is recovered on a later open instead.
+        filler = _fill_up(folder)
+        try:
+            store.close()
+        except StoreFullError as exc:
+            pytest.fail(f"close() on a full disk raised: {exc}")
+        finally:
+            filler.unlink()
         assert integrity(path) == "ok"
-        with DemoStore(str(path), read_only=True) as store:
-            assert sample_digest(store.load_demonstration(earlier)) == digest
-            _assert_exact(store, earlier, 11, 6)
+        with DemoStore(str(path), read_only=True) as reader:
+            assert sample_digest(reader.load_demonstration(earlier)) == digest
+            _assert_exact(reader, earlier, 11, 6)
+            assert reader.load_demonstration(filling).t.shape[0] == appended * 4000
 
 
 # -- two writers, busy timeout, readers ----------------------------------------------------------
@@ -417,3 +440,40 @@ def test_merge_from_a_damaged_file_never_spreads_silent_damage(
                 continue  # the damage travelled but is still detected: acceptable
             assert digest in pristine_digests, f"{what}: merged samples differ without an error"
     assert integrity(target_path) == "ok"
+
+
+def _racing_opener(path: str, barrier: object, results: object) -> None:
+    """Open (and so create) the store at the same moment as the other openers; report how."""
+    barrier.wait()  # type: ignore[attr-defined]
+    try:
+        with DemoStore(path, busy_timeout_s=5.0) as store:
+            store.begin_demonstration(skill="cork_seat", joints=JOINTS)
+        outcome = "ok"
+    except StoreBusyError:
+        outcome = "busy"
+    except Exception as exc:  # the failure this test looks for, reported to the parent
+        outcome = f"{type(exc).__name__}: {exc}"
+    results.put(outcome)  # type: ignore[attr-defined]
+
+
+def test_writers_creating_a_new_store_at_once_succeed_or_are_refused_clearly(
+    tmp_path: Path,
+) -> None:
+    # Found when two recorders started on a fresh store path: FileExistsError from the one that
+    # lost the race to create the file. 15 rounds of 4 openers released by a barrier.
+    context = multiprocessing.get_context("forkserver")
+    outcomes = []
+    for round_index in range(15):
+        path = str(tmp_path / f"new_{round_index}.sqlite")
+        barrier, results = context.Barrier(4), context.Queue()
+        openers = [context.Process(target=_racing_opener, args=(path, barrier, results))
+                   for _ in range(4)]  # fmt: skip
+        for opener in openers:
+            opener.start()
+        for opener in openers:
+            opener.join(60)
+        outcomes += [results.get(timeout=10) for _ in openers]
+        assert integrity(path) == "ok"
+    unclear = [outcome for outcome in outcomes if outcome not in ("ok", "busy")]
+    assert unclear == []
+    assert outcomes.count("ok") >= len(outcomes) // 2
