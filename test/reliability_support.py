@@ -538,6 +538,24 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
         while time.monotonic() < end:
             rclpy.spin_once(node, timeout_sec=0.02)
 
+    def settled(quiet_s: float = 1.5, limit_s: float = 30.0) -> dict[str, str] | None:
+        """The recorder's diagnostics once its received count has stood still for quiet_s.
+
+        A loaded machine may still be delivering the last messages of a phase; reading the
+        counters before they stop moving would compare them with an unfinished phase.
+        """
+        spin_for(0.5)
+        deadline = time.monotonic() + limit_s
+        last, still_since = None, time.monotonic()
+        while time.monotonic() < deadline:
+            spin_for(0.1)
+            current = diagnostics[-1][1].get("received") if diagnostics else None
+            if current != last:
+                last, still_since = current, time.monotonic()
+            elif time.monotonic() - still_since >= quiet_s:
+                break
+        return diagnostics[-1][1] if diagnostics else None
+
     msg = JointState()
     msg.name = list(FLOOD_JOINTS)
     tick = 0
@@ -574,12 +592,10 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
         Path(f"{result_path}.publishing").touch()
         result["flood_sent"] = publish_at(rate_hz, flood_s)
         result["t_flood_end"] = time.time()
-        spin_for(2.0)
-        result["diag_after_flood"] = diagnostics[-1][1] if diagnostics else None
+        result["diag_after_flood"] = settled()
         result["first_slow_tick"] = tick
         result["slow_sent"] = publish_at(slow_rate_hz, slow_s)
-        spin_for(2.0)
-        result["diag_after_slow"] = diagnostics[-1][1] if diagnostics else None
+        result["diag_after_slow"] = settled()
         result["last_tick"] = tick - 1
         result["stop"] = call("stop") if call_stop else None
         result["t_end"] = time.time()
