@@ -127,6 +127,29 @@ def test_disk_full_stops_with_store_full_error_and_keeps_earlier_demos(tmp_path:
             assert reader.load_demonstration(filling).t.shape[0] == appended * 4000
 
 
+def test_page_limit_reached_mid_statement_is_store_full_error(tmp_path: Path) -> None:
+    # SQLite's max_page_count stands in for a full disk without mounting anything. Here SQLITE_FULL
+    # comes while a row is inserted, and SQLite then rolls the transaction back by itself.
+    path = tmp_path / "limited.sqlite"
+    with DemoStore(str(path)) as store:
+        earlier = write_demo(store, seed=12, n_chunks=4)
+        digest = sample_digest(store.load_demonstration(earlier))
+        (pages,) = store.db.execute("PRAGMA page_count").fetchone()
+        store.db.execute(f"PRAGMA max_page_count = {pages + 4}")
+        filling = store.begin_demonstration(skill="cork_seat", joints=JOINTS)
+        appended = 0
+        with pytest.raises(StoreFullError, match=r"full"):
+            for index in range(100):  # 4 pages of 64 KiB hold at most a few 320 kB chunks
+                store.append_chunk(filling, **_big_chunk(index))
+                appended += 1
+        assert sample_digest(store.load_demonstration(earlier)) == digest
+        assert store.load_demonstration(filling).t.shape[0] == appended * 4000
+        store.db.execute(f"PRAGMA max_page_count = {2**30}")
+        store.append_chunk(filling, **_big_chunk(appended))  # room again: recording goes on
+        store.finish_demonstration(filling, "complete")
+    assert integrity(path) == "ok"
+
+
 # -- two writers, busy timeout, readers ----------------------------------------------------------
 
 
