@@ -154,7 +154,9 @@ def test_fuzz_begin_demonstration(write_target: _Target, metadata: dict, joints:
      np.zeros((N, 2), dtype="timedelta64[ms]")],
     ids=["complex", "datetime64", "timedelta64"],
 )  # fmt: skip
-def test_non_real_sample_arrays_are_invalid_input(write_target: _Target, values: np.ndarray) -> None:
+def test_non_real_sample_arrays_are_invalid_input(
+    write_target: _Target, values: np.ndarray
+) -> None:
     # Found by the fuzzer: complex positions lost their imaginary part with only a ComplexWarning,
     # and datetime64 velocities were stored as numbers.
     store = write_target[0]
