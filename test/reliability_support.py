@@ -18,6 +18,7 @@ import multiprocessing
 import os
 import signal
 import sqlite3
+import tempfile
 import threading
 import time
 from collections.abc import Iterator, Mapping
@@ -46,6 +47,7 @@ __all__ = [
     "expected_samples",
     "field",
     "flood_driver_main",
+    "fuzz_file",
     "integrity",
     "mutated_tree",
     "no_hang",
@@ -177,6 +179,15 @@ def mutated_tree(draw: st.DrawFn, tree: object, leaves: st.SearchStrategy) -> ob
         else:
             tree = _replace(tree, path, draw(leaves))
     return tree
+
+
+@contextlib.contextmanager
+def fuzz_file(name: str, content: bytes) -> Iterator[Path]:
+    """A fresh temporary file ``name`` holding ``content``, removed afterwards."""
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / name
+        path.write_bytes(content)
+        yield path
 
 
 def field(record: Any, name: str) -> Any:

@@ -22,6 +22,7 @@ from reliability_support import (
     FUZZ_SETTINGS,
     JOINTS,
     count_case,
+    fuzz_file,
     no_hang,
     sample_digest,
     write_demo,
@@ -123,9 +124,7 @@ def _mutated_csv(draw: st.DrawFn, original: str) -> str:
 @given(data=st.data(), raw=st.one_of(st.none(), st.binary(max_size=200)))
 def test_fuzz_csv_import(import_target: _Target, data: st.DataObject, raw: bytes | None) -> None:
     content = raw if raw is not None else data.draw(_mutated_csv(import_target[3])).encode()
-    with tempfile.TemporaryDirectory() as folder:
-        path = Path(folder) / "fuzz.csv"
-        path.write_bytes(content)
+    with fuzz_file("fuzz.csv", content) as path:
         _check_import(
             import_target,
             lambda store: import_csv(store, path, keep_id=False, skill="cork_seat"),
@@ -184,9 +183,7 @@ def _mutated_npz(draw: st.DrawFn, original: dict[str, np.ndarray]) -> bytes:
 @given(data=st.data())
 def test_fuzz_npz_import(import_target: _Target, data: st.DataObject) -> None:
     content = data.draw(_mutated_npz(import_target[4]))
-    with tempfile.TemporaryDirectory() as folder:
-        path = Path(folder) / "fuzz.npz"
-        path.write_bytes(content)
+    with fuzz_file("fuzz.npz", content) as path:
         _check_import(import_target, lambda store: import_npz(store, path, keep_id=False), "npz")
 
 

@@ -8,14 +8,13 @@ them), and an argument value, whatever it holds, stays inside the one ``-p`` it 
 
 from __future__ import annotations
 
-import tempfile
 import xml.etree.ElementTree as ElementTree
 from pathlib import Path
 
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from reliability_support import FUZZ_SETTINGS, count_case, no_hang
+from reliability_support import FUZZ_SETTINGS, count_case, fuzz_file, no_hang
 
 from compliant_demo.exceptions import LaunchFileError
 from compliant_demo.launch_file import read_launch_file
@@ -72,9 +71,7 @@ def _mutated_launch(draw: st.DrawFn) -> bytes:
     ),
 )
 def test_fuzz_launch_file(document: bytes, arguments: dict[str, str]) -> None:
-    with tempfile.TemporaryDirectory() as folder:
-        path = Path(folder) / "fuzz.launch.xml"
-        path.write_bytes(document)
+    with fuzz_file("fuzz.launch.xml", document) as path:
         with no_hang(10.0):
             try:
                 description = read_launch_file(path, arguments, package_share=REPO)

@@ -7,14 +7,20 @@ Every input, however malformed, must end in a validated record or one of our nam
 from __future__ import annotations
 
 import math
-import tempfile
 from pathlib import Path
 
 import pytest
 import yaml
 from hypothesis import given
 from hypothesis import strategies as st
-from reliability_support import FUZZ_SETTINGS, JUNK_SCALARS, count_case, mutated_tree, no_hang
+from reliability_support import (
+    FUZZ_SETTINGS,
+    JUNK_SCALARS,
+    count_case,
+    fuzz_file,
+    mutated_tree,
+    no_hang,
+)
 
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.models import (
@@ -68,9 +74,7 @@ yaml_documents = st.one_of(
 
 
 def _check_parameter_yaml(document: bytes, model: type, key: str | None) -> None:
-    with tempfile.TemporaryDirectory() as folder:
-        path = Path(folder) / "params.yaml"
-        path.write_bytes(document)
+    with fuzz_file("params.yaml", document) as path:
         with no_hang(5.0):
             try:
                 record = load_yaml_model(model, path, key=key)
@@ -134,9 +138,7 @@ def _check_perturbation_yaml(document: bytes, which: str) -> None:
         load_schedules_yaml,
     )
 
-    with tempfile.TemporaryDirectory() as folder:
-        path = Path(folder) / "perturbations.yaml"
-        path.write_bytes(document)
+    with fuzz_file("perturbations.yaml", document) as path:
         with no_hang(10.0):
             try:
                 if which == "campaign":
