@@ -237,6 +237,7 @@ def test_readers_during_writes_see_only_whole_chunks(tmp_path: Path) -> None:
             loaded = reader.load_demonstration(demo_id)
             n = loaded.t.shape[0]
             assert n % CHUNK_SAMPLES == 0, f"a reader saw {n} samples: part of a chunk"
+            assert loaded.info.n_samples == n, "metadata and samples come from different moments"
             for name, want in expected.items():
                 np.testing.assert_array_equal(getattr(loaded, name), want[:n], err_msg=name)
             seen_sizes.add(n)
