@@ -181,11 +181,17 @@ def test_two_writers_succeed_serially_or_are_refused_clearly(
         context.Process(target=_writer_process, args=(str(path), seed, 40, 5.0, str(out)))
         for seed, out in zip(seeds, outs, strict=True)
     ]
-    for writer in writers:
-        writer.start()
-    for writer in writers:
-        writer.join(120)
-        assert writer.exitcode == 0
+    try:
+        for writer in writers:
+            writer.start()
+        for writer in writers:
+            writer.join(120)
+            assert writer.exitcode == 0, f"writer ended with {writer.exitcode} (None: still busy)"
+    finally:
+        for writer in writers:
+            if writer.is_alive():
+                writer.kill()
+                writer.join(30)
     outcomes = [json.loads(out.read_text()) for out in outs]
     for outcome in outcomes:
         assert outcome["ok"] or outcome["busy"], outcome["message"]
@@ -226,24 +232,33 @@ def test_readers_during_writes_see_only_whole_chunks(tmp_path: Path) -> None:
         target=_writer_main, args=(str(path), str(progress), seed, n_chunks, 1)
     )
     writer.start()
-    while writer.is_alive() and not (progress.exists() and progress.stat().st_size > 0):
-        time.sleep(0.001)
-    demo_id = progress.read_text().split()[2]  # "D 0 <id>": the first demonstration begun
-    expected = expected_samples(demo_seed(seed, 0), n_chunks)
+    deadline = time.monotonic() + 120.0  # generous: only a writer that never ends reaches it
     seen_sizes = set()
-    with DemoStore(str(path), read_only=True) as reader:
-        while True:
-            finished = not writer.is_alive()
-            loaded = reader.load_demonstration(demo_id)
-            n = loaded.t.shape[0]
-            assert n % CHUNK_SAMPLES == 0, f"a reader saw {n} samples: part of a chunk"
-            assert loaded.info.n_samples == n, "metadata and samples come from different moments"
-            for name, want in expected.items():
-                np.testing.assert_array_equal(getattr(loaded, name), want[:n], err_msg=name)
-            seen_sizes.add(n)
-            if finished:
-                break
-    writer.join(60)
+    try:
+        while not (progress.exists() and progress.stat().st_size > 0):
+            assert writer.is_alive(), f"the writer died before it began (exit {writer.exitcode})"
+            assert time.monotonic() < deadline, "the writer never began a demonstration"
+            time.sleep(0.001)
+        demo_id = progress.read_text().split()[2]  # "D 0 <id>": the first demonstration begun
+        expected = expected_samples(demo_seed(seed, 0), n_chunks)
+        with DemoStore(str(path), read_only=True) as reader:
+            while True:
+                finished = not writer.is_alive()
+                loaded = reader.load_demonstration(demo_id)
+                n = loaded.t.shape[0]
+                assert n % CHUNK_SAMPLES == 0, f"a reader saw {n} samples: part of a chunk"
+                assert loaded.info.n_samples == n, "metadata and samples from different moments"
+                for name, want in expected.items():
+                    np.testing.assert_array_equal(getattr(loaded, name), want[:n], err_msg=name)
+                seen_sizes.add(n)
+                if finished:
+                    break
+                assert time.monotonic() < deadline, f"writer still going; sizes {len(seen_sizes)}"
+                time.sleep(0.01)  # a reader polls; it does not hold the file without a pause
+    finally:
+        if writer.is_alive():
+            writer.kill()
+        writer.join(30)
     assert writer.exitcode == 0
     assert max(seen_sizes) == n_chunks * CHUNK_SAMPLES
     assert len(seen_sizes) >= 3, f"the reader only ever saw sizes {sorted(seen_sizes)}"
@@ -492,11 +507,17 @@ def test_writers_creating_a_new_store_at_once_succeed_or_are_refused_clearly(
         barrier, results = context.Barrier(4), context.Queue()
         openers = [context.Process(target=_racing_opener, args=(path, barrier, results))
                    for _ in range(4)]  # fmt: skip
-        for opener in openers:
-            opener.start()
-        for opener in openers:
-            opener.join(60)
-        outcomes += [results.get(timeout=10) for _ in openers]
+        try:
+            for opener in openers:
+                opener.start()
+            for opener in openers:
+                opener.join(60)
+            outcomes += [results.get(timeout=10) for _ in openers]
+        finally:
+            for opener in openers:
+                if opener.is_alive():
+                    opener.kill()
+                    opener.join(30)
         assert integrity(path) == "ok"
     unclear = [outcome for outcome in outcomes if outcome not in ("ok", "busy")]
     assert unclear == []
