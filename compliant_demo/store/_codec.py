@@ -148,11 +148,22 @@ def validate_flags(flags: object) -> dict[str, int | float | str | bool]:
     return checked
 
 
-def _channel(name: str, value: object, n: int, n_joints: int, *, allow_nan: bool) -> np.ndarray:
+def _real_array(name: str, value: object) -> np.ndarray:
+    """``value`` as float64, refusing what does not convert exactly: complex numbers (the
+    imaginary part would be dropped), datetime64/timedelta64, strings and Python objects."""
     try:
-        array = np.asarray(value, dtype=np.float64)
+        raw = np.asarray(value)
     except (TypeError, ValueError) as exc:
         raise InvalidInputError(f"{name} is not numeric: {exc}") from None
+    if raw.dtype.kind not in "fiub":  # float, signed/unsigned integer, bool
+        raise InvalidInputError(
+            f"{name} must hold real numbers (float, integer or bool), got dtype {raw.dtype}"
+        )
+    return raw.astype(np.float64, copy=False)
+
+
+def _channel(name: str, value: object, n: int, n_joints: int, *, allow_nan: bool) -> np.ndarray:
+    array = _real_array(name, value)
     if array.ndim == 1 and n_joints == 1:
         array = array.reshape(-1, 1)
     if array.shape != (n, n_joints):
@@ -197,10 +208,7 @@ def validate_chunk(
     t : (n,) float64 array
     arrays : dict of channel name to (n, n_joints) float64 array
     """
-    try:
-        times = np.asarray(t, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise InvalidInputError(f"t is not numeric: {exc}") from None
+    times = _real_array("t", t)
     if times.ndim != 1:
         raise InvalidInputError(f"t must be one-dimensional, got shape {times.shape}")
     if times.size == 0:
