@@ -104,5 +104,5 @@ def _run(args: argparse.Namespace) -> int:
             print(f"  {key}: {value}")
     print(f"report: {result.report.resolve()}")
     print("Simulation does not certify a robot as safe: a risk assessment under ISO 10218 and "
-          "ISO/TS 15066 decides.")
+          "ISO/TS 15066, local regulations and licensed practice decide.")
     return 0
