@@ -21,6 +21,7 @@ from compliant_demo.exceptions import (
     SchemaVersionError,
     StoreCorruptError,
     StoreError,
+    StoreFullError,
     StoreReadOnlyError,
 )
 from compliant_demo.store import SCHEMA_VERSION, DemoStore
@@ -727,3 +728,25 @@ def test_tags_are_stored_in_json_and_index_table(file_store):
         "SELECT tag FROM demonstration_tags WHERE demo_id = ? ORDER BY tag", [demo_id]
     ).fetchall()
     assert rows == [("press",), ("soft",)]
+
+
+def test_full_store_mid_insert_is_store_full_error_and_recording_goes_on(tmp_path):
+    # max_page_count makes SQLite fail with SQLITE_FULL inside the INSERT and roll back by
+    # itself; our own ROLLBACK must not replace that error with "no transaction is active".
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        kept = add_demo(store, seed=4)
+        demo_id = store.begin_demonstration(skill="cork_seat", joints=JOINTS)
+        store.append_chunk(demo_id, **samples(10))
+        (pages,) = store.db.execute("PRAGMA page_count").fetchone()
+        store.db.execute(f"PRAGMA max_page_count = {pages}")
+        big = samples(20000, seed=5, t0=1.0)
+        with pytest.raises(StoreFullError, match="store full, nothing of this write kept"):
+            store.append_chunk(demo_id, **big)
+        assert store.get_info(demo_id).n_samples == 10
+        store.db.execute(f"PRAGMA max_page_count = {2**30}")
+        store.append_chunk(demo_id, **big)  # room again: the same recording goes on
+        assert store.finish_demonstration(demo_id).n_samples == 20010
+        assert store.load_demonstration(kept).t.size == 200
+    assert integrity(path) == "ok"
+

@@ -294,10 +294,13 @@ class DemoStore:
             self._conn.execute("BEGIN IMMEDIATE")
             try:
                 yield self._conn
+                self._conn.execute("COMMIT")
             except BaseException:
-                self._conn.execute("ROLLBACK")
+                # SQLITE_FULL, IOERR, NOMEM and BUSY may already have rolled the transaction back;
+                # a second ROLLBACK would replace the real error with "no transaction is active"
+                if self._conn.in_transaction:
+                    self._conn.execute("ROLLBACK")
                 raise
-            self._conn.execute("COMMIT")
 
     @contextmanager
     def _snapshot(self) -> Iterator[Any]:
@@ -325,20 +328,22 @@ class DemoStore:
 
     def _lease(self, conn: Any) -> str:
         now = time.time()
-        if self._lease_token is None:
-            me = own_lease()
-            token = str(uuid.uuid4())
-            conn.execute(
-                "INSERT INTO writers (token, pid, hostname, process_start, started_at, "
-                "heartbeat_at) VALUES (?, ?, ?, ?, ?, ?)",
-                (token, me.pid, me.hostname, me.process_start, now, now),
-            )
-            self._lease_token = token
-        else:
-            conn.execute(
+        if self._lease_token is not None:
+            updated = conn.execute(
                 "UPDATE writers SET heartbeat_at = ? WHERE token = ?", (now, self._lease_token)
-            )
-        return self._lease_token
+            ).rowcount
+            if updated:
+                return self._lease_token
+        # no lease yet, or the transaction that registered it was rolled back (e.g. disk full)
+        me = own_lease()
+        token = self._lease_token or str(uuid.uuid4())
+        conn.execute(
+            "INSERT INTO writers (token, pid, hostname, process_start, started_at, "
+            "heartbeat_at) VALUES (?, ?, ?, ?, ?, ?)",
+            (token, me.pid, me.hostname, me.process_start, now, now),
+        )
+        self._lease_token = token
+        return token
 
     def _release_lease(self, conn: Any, reason: str) -> None:
         for (demo_id,) in conn.execute(
