@@ -750,3 +750,27 @@ def test_full_store_mid_insert_is_store_full_error_and_recording_goes_on(tmp_pat
         assert store.load_demonstration(kept).t.size == 200
     assert integrity(path) == "ok"
 
+
+def test_close_that_cannot_end_its_recordings_warns_and_a_later_open_recovers_them(tmp_path):
+    # Another connection holds the write lock, as a full disk or a read-only remount would keep
+    # close() from ending its recordings: close() still closes, with a warning, not an error.
+    path = tmp_path / "store.sqlite"
+    store = DemoStore(path, busy_timeout_s=0.0)
+    demo_id = store.begin_demonstration(skill="cork_seat", joints=JOINTS)
+    store.append_chunk(demo_id, **samples(10))
+    blocker = sqlite3.connect(path, isolation_level=None)
+    blocker.execute("BEGIN IMMEDIATE")
+    try:
+        with pytest.warns(UserWarning, match="closed without ending this writer's recordings"):
+            store.close()
+    finally:
+        blocker.execute("ROLLBACK")
+        blocker.close()
+    with pytest.raises(StoreError, match="is closed"):
+        store.get_info(demo_id)
+    # the writer's process is alive (it is this one), yet its given-up lease counts as gone
+    with pytest.warns(UserWarning, match="marked incomplete"), DemoStore(path) as reopened:
+        info = reopened.get_info(demo_id)
+        assert (info.status, info.n_samples) == ("incomplete", 10)
+        assert reopened.db.execute("SELECT count(*) FROM writers").fetchone() == (0,)
+    assert integrity(path) == "ok"

@@ -18,9 +18,13 @@ from dataclasses import dataclass
 
 import psutil
 
-__all__ = ["Lease", "own_lease", "lease_alive", "STALE_AFTER_S"]
+__all__ = ["Lease", "own_lease", "lease_alive", "STALE_AFTER_S", "ABANDONED_TOKENS"]
 
 STALE_AFTER_S = 600.0
+
+# Leases this process gave up without releasing them (a close() on a full disk): its pid is alive,
+# so without this set its own next writable open would keep their recordings "recording".
+ABANDONED_TOKENS: set[str] = set()
 
 
 @dataclass(frozen=True, slots=True)

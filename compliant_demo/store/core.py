@@ -32,7 +32,7 @@ from compliant_demo.exceptions import (
     StoreReadOnlyError,
 )
 from compliant_demo.store import _codec, _schema, _sql
-from compliant_demo.store._lease import Lease, lease_alive, own_lease
+from compliant_demo.store._lease import ABANDONED_TOKENS, Lease, lease_alive, own_lease
 from compliant_demo.store.records import (
     DEMO_SOURCES,
     DEMO_STATUSES,
@@ -74,6 +74,15 @@ _RESULT_COLUMNS = (
     "r.parameters, r.created, (SELECT json_group_array(channel) FROM "
     "(SELECT channel FROM replay_traces WHERE result_id = r.id ORDER BY channel))"
 )
+
+
+def _writer_alive(
+    token: str, pid: int, hostname: str, process_start: float | None, heartbeat: float
+) -> bool:
+    """Whether the writer holding lease ``token`` may still be recording."""
+    if token in ABANDONED_TOKENS:
+        return False
+    return lease_alive(Lease(pid, hostname, process_start), heartbeat)
 
 
 def _decoded(label: str, what: str, build: Callable[[], _T]) -> _T:
@@ -279,11 +288,26 @@ class DemoStore:
                 return
             try:
                 if self._lease_token is not None:
-                    with self._transaction() as conn:
-                        self._release_lease(conn, "store closed while recording")
+                    self._release_lease_on_close()
             finally:
                 self._conn.close()
                 self._conn = None  # type: ignore[assignment]
+
+    def _release_lease_on_close(self) -> None:
+        """Release the writer lease; on a full disk, a read-only or busy file only warn, since a
+        close must always close (the recordings are recovered as "incomplete" on a later open)."""
+        token = self._lease_token
+        try:
+            with self._transaction() as conn:
+                self._release_lease(conn, "store closed while recording")
+        except StoreError as exc:
+            ABANDONED_TOKENS.add(str(token))
+            self._lease_token = None
+            warnings.warn(
+                f"{self._label}: closed without ending this writer's recordings ({exc}); the "
+                f"next writable open marks them incomplete",
+                stacklevel=3,
+            )
 
     @contextmanager
     def _transaction(self) -> Iterator[Any]:
@@ -372,8 +396,8 @@ class DemoStore:
             for demo_id, token, pid, hostname, process_start, heartbeat in rows:
                 if token == self._lease_token and token is not None:
                     continue
-                if token is not None and lease_alive(
-                    Lease(pid, hostname, process_start), heartbeat
+                if token is not None and _writer_alive(
+                    token, pid, hostname, process_start, heartbeat
                 ):
                     continue
                 who = f"pid {pid} on {hostname}" if token is not None else "an unknown process"
@@ -382,10 +406,11 @@ class DemoStore:
             for token, pid, hostname, process_start, heartbeat in conn.execute(
                 "SELECT token, pid, hostname, process_start, heartbeat_at FROM writers"
             ).fetchall():
-                if token != self._lease_token and not lease_alive(
-                    Lease(pid, hostname, process_start), heartbeat
+                if token != self._lease_token and not _writer_alive(
+                    token, pid, hostname, process_start, heartbeat
                 ):
                     conn.execute("DELETE FROM writers WHERE token = ?", (token,))
+                    ABANDONED_TOKENS.discard(token)
         if recovered:
             warnings.warn(
                 f"{self._label}: {len(recovered)} demonstration(s) left recording by a writer "
