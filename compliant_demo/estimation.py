@@ -68,7 +68,8 @@ class StiffnessSeries:
     stiffness_std : (n_samples, n_joints) array, N*m/rad
         NaN where ``excited`` is False.
     excited : (n_samples, n_joints) bool array
-        Full window, band-pass settled and deflection std at least ``min_excitation_rad``.
+        Full window, band-pass settled, deflection std at least ``min_excitation_rad`` and a
+        positive slope (a non-positive one is no spring's stiffness).
     excitation : (n_samples, n_joints) array, rad
         Standard deviation of the (band-passed) deflection over the window.
     deflection : (n_samples, n_joints) array, rad
@@ -289,6 +290,7 @@ class SlidingStiffnessEstimator:
         fixed equilibrium within the window; the intercept absorbs the equilibrium).
     min_excitation_rad : float, rad
         Windows whose deflection standard deviation is below this are not excited: NaN stiffness.
+        A window whose slope comes out zero or negative is reported as not excited too.
     method : {"tls", "ols"}
     order : int
         Butterworth order of the band-pass edges.
@@ -498,10 +500,13 @@ class SlidingStiffnessEstimator:
             self.model_damping,
         )
         seen = (self._count - n_new + np.arange(1, n_new + 1))[:, None]
+        # A spring cannot have a non-positive stiffness: such a slope (a noisy window about a
+        # soft hand) carries no estimate, like a window with too little excitation.
         excited = (
             (seen >= window + self.settle)
             & (spread >= self.min_excitation_rad)
             & np.isfinite(slope)
+            & (slope > 0)
         )
         stiffness = np.where(excited, slope, np.nan)
         std = np.where(excited, std, np.nan)

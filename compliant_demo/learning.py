@@ -12,7 +12,7 @@ and :func:`load_skill` keep skills, versioned, in the demonstration store.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Literal, Protocol
 
 import numpy as np
@@ -234,7 +234,10 @@ def learn_skill(
     stiffness_source : "recorded" (every demonstration's stiffness channel), "variability"
         (stiff where the aligned demonstrations agree; needs >= 2 demonstrations and
         ``stiffness_range``), or "auto" (recorded when all have it, else variability)
-    stiffness_range : (k_min, k_max) or (n_joints, 2), N*m/rad; the target joint's range
+    stiffness_range : (k_min, k_max) or (n_joints, 2), N*m/rad; the target joint's range.
+        Recorded stiffness samples are clamped to it before the profile is fitted in log space
+        (an online estimate can stray below zero in a noisy window). Without it, the recorded
+        samples must all be positive and their own range is used
     alignment : "dtw" (banded DTW onto the median-duration demonstration), "resample" (linear
         resampling in normalised time) or "none" (demonstrations already share one time base)
     band : Sakoe-Chiba band of the DTW, fraction of the sequence length
@@ -270,6 +273,13 @@ def learn_skill(
         reason = normalised[missing[0]].stiffness_gap
         raise InvalidInputError(f"demos[{missing[0]}].stiffness: {reason}; use "
                                 "stiffness_source='variability'")
+    if source == "recorded" and stiffness_range is not None:
+        # A sliding-window estimate can stray outside any physical range in a noisy window (even
+        # to zero or below); the learned profile is clamped to this range anyway, so clamp the
+        # samples first: the log is then defined and no stray sample refuses the fit.
+        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
+        normalised = [replace(d, stiffness=np.clip(d.stiffness, k_range[:, 0], k_range[:, 1]))
+                      for d in normalised]
     if source == "variability":
         if len(normalised) < 2:
             raise InvalidInputError(

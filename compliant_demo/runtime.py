@@ -204,9 +204,6 @@ def learn_from_store(store: Any, request: LearnRequest) -> LearnOutcome:
             f"need at least {request.min_demonstrations}"
         )
     demos = [store.load_demonstration(info.id, joints=list(request.joints)) for info in infos]
-    stiffness_range = request.options.get("stiffness_range")
-    if stiffness_range is not None:
-        demos = [_clipped(demo, stiffness_range) for demo in demos]
     skill = learn_skill(demos, joints=list(request.joints), name=request.skill, **request.options)
     record = save_skill(store, skill)
     return LearnOutcome(
@@ -216,25 +213,6 @@ def learn_from_store(store: Any, request: LearnRequest) -> LearnOutcome:
         demonstration_ids=tuple(info.id for info in infos),
         report=_report(skill, record.version, len(infos)),
     )
-
-
-def _clipped(demo: Any, stiffness_range: Sequence[float]) -> Any:
-    """The demonstration with its recorded stiffness clipped to the target's range.
-
-    A sliding-window estimate can stray outside any physical range in a noisy window (even below
-    zero); the learned profile is clamped to the same range anyway, so clipping first keeps such
-    samples from refusing the fit. NaN (no estimate) stays NaN.
-    """
-    if demo.stiffness is None:
-        return demo
-    low, high = stiffness_range
-    return {
-        "t": demo.t,
-        "position": demo.position,
-        "stiffness": np.clip(demo.stiffness, low, high),
-        "joints": list(demo.joints),
-        "id": demo.info.id,
-    }
 
 
 def _describe(request: LearnRequest) -> str:

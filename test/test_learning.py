@@ -38,6 +38,16 @@ def _demos(rng: np.random.Generator, n_demos: int = 4, rate: float = 500.0):
     return demos
 
 
+def _with_stiffness_edited(demos, edit):
+    """Copies of (t, q, k) demos whose stiffness ``edit`` changed in place."""
+    edited = []
+    for t, q, k in demos:
+        k = k.copy()
+        edit(k)
+        edited.append((t, q, k))
+    return edited
+
+
 @pytest.fixture
 def store():
     with DemoStore(":memory:") as opened:
@@ -271,12 +281,12 @@ def test_nan_stiffness_samples_are_bridged():
     # The recorder leaves NaN where its estimator window was not excited (start, still phases).
     rng = np.random.default_rng(28)
     demos = _demos(rng, 3)
-    gappy = []
-    for t, q, k in demos:
-        k = k.copy()
+
+    def gaps(k):
         k[:60, :] = np.nan
         k[400:420, 1] = np.nan
-        gappy.append((t, q, k))
+
+    gappy = _with_stiffness_edited(demos, gaps)
     bridged = learn_skill(gappy, joints=JOINTS, alignment="resample", target_inertia=[1, 1])
     full = learn_skill(demos, joints=JOINTS, alignment="resample", target_inertia=[1, 1])
     assert bridged.provenance.stiffness_source == "recorded"
@@ -298,3 +308,22 @@ def test_joint_without_any_stiffness_estimate():
     assert auto.provenance.stiffness_source == "variability"
     with pytest.raises(InvalidInputError, match=r"demos\[1\]\.stiffness: infinite value inf"):
         learn_skill([demos[0], (t, q, np.full_like(k, np.inf))], joints=JOINTS)
+
+
+def test_recorded_stiffness_is_clamped_to_the_range_before_the_log():
+    # An online estimate can dip below zero in a noisy window: with stiffness_range the samples
+    # are clamped first (same skill as clamping them by hand); without it they are refused.
+    rng = np.random.default_rng(30)
+
+    def strays(k):
+        k[100:110, 0] = -1.3
+        k[200:205, 1] = 900.0
+
+    stray = _with_stiffness_edited(_demos(rng, 2), strays)
+    clamped = learn_skill(stray, joints=JOINTS, stiffness_range=RANGE, alignment="resample",
+                          target_inertia=[1, 1])
+    by_hand = learn_skill([(t, q, np.clip(k, *RANGE)) for t, q, k in stray], joints=JOINTS,
+                          stiffness_range=RANGE, alignment="resample", target_inertia=[1, 1])
+    assert clamped.stiffness_log_weights == by_hand.stiffness_log_weights
+    with pytest.raises(InvalidInputError, match=r"values must be positive, got -1\.3"):
+        learn_skill(stray, joints=JOINTS, alignment="resample", target_inertia=[1, 1])

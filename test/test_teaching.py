@@ -3,7 +3,11 @@
 import numpy as np
 import pytest
 
-from compliant_demo.estimation import SlidingStiffnessEstimator, estimate_stiffness_series
+from compliant_demo.estimation import (
+    SlidingStiffnessEstimator,
+    estimate_stiffness_series,
+    tls_fit,
+)
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.teaching import (
     TeachingScenario,
@@ -133,10 +137,22 @@ def test_joint_side_sensor_without_inertia_is_biased_by_i_omega_squared():
     settings = scenario.estimator_settings()
     settings.pop("link_inertia")
     series = estimate_stiffness_series(rec.t, rec.position, rec.torque, **settings)
-    truth, variation = windowed_truth(rec.hand_stiffness_truth, 500)
-    steady = series.excited & (variation < 0.1)
+    window = 500
+    truth, variation = windowed_truth(rec.hand_stiffness_truth, window)
     for joint, params in enumerate(scenario.joints):
-        bias = np.median((series.stiffness - truth)[steady[:, joint], joint])
+        # K - I w^2 is negative for this soft hand: the series reports no estimate there (no
+        # spring has a negative stiffness), so the bias is read from direct window fits.
+        assert not series.excited[:, joint].any()
+        ends = [k for k in range(window + 1000, rec.t.size, 250)
+                if variation[k, joint] < 0.1
+                and series.excitation[k, joint] >= settings["min_excitation_rad"]]
+        span = [slice(k - window + 1, k + 1) for k in ends]
+        bias = np.median([
+            tls_fit(series.deflection[w, joint], series.torque[w, joint],
+                    settings["noise_variance_ratio"],
+                    deflection_rate=series.deflection_rate[w, joint]).stiffness - truth[k, joint]
+            for k, w in zip(ends, span, strict=True)
+        ])
         w_low, w_high = 2 * np.pi * 8.0 * np.array([0.9, 1.15])
         assert -params.inertia * w_high**2 < bias < -params.inertia * w_low**2
 
