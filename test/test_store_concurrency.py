@@ -6,11 +6,14 @@ from __future__ import annotations
 import signal
 import subprocess
 import textwrap
+from concurrent.futures import ThreadPoolExecutor
+from threading import Barrier
 
 import numpy as np
 import pytest
 from store_support import JOINTS, PYTHON, integrity, subprocess_env
 
+from compliant_demo.exceptions import StoreBusyError
 from compliant_demo.store import DemoStore
 
 _WRITER = textwrap.dedent(
@@ -143,3 +146,26 @@ def _hostname() -> str:
     import socket
 
     return socket.gethostname()
+
+
+def test_openers_creating_one_new_store_at_once_all_get_it(tmp_path):
+    # Several recorders started on a fresh path: the losers of the race to create the file used
+    # to get FileExistsError (O_EXCL), or "database is locked" from the switch to WAL.
+    def open_and_record(path, barrier):
+        barrier.wait(timeout=30)
+        try:
+            with DemoStore(path, busy_timeout_s=5.0) as store:
+                store.begin_demonstration(skill="cork_seat", joints=JOINTS)
+        except StoreBusyError:
+            return "busy"
+        return "ok"
+
+    outcomes = []
+    with ThreadPoolExecutor(4) as pool:
+        for round_index in range(12):
+            path, barrier = tmp_path / f"new_{round_index}.sqlite", Barrier(4)
+            outcomes += list(pool.map(open_and_record, [path] * 4, [barrier] * 4))
+            assert integrity(path) == "ok"
+            with DemoStore(path, read_only=True) as reader:
+                assert reader.count_demonstrations() == outcomes[-4:].count("ok")
+    assert outcomes.count("ok") >= len(outcomes) // 2

@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import os
 import sqlite3
+import time
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from pathlib import Path
@@ -138,7 +139,7 @@ def connect(
             )
     try:
         with translated(str(path)):
-            _configure(conn, writable=not read_only, durable=durable)
+            _configure(conn, writable=not read_only, durable=durable, busy_timeout_s=busy_timeout_s)
     except BaseException:
         conn.close()
         raise
@@ -154,22 +155,44 @@ def _needs_immutable(path: Path) -> bool:
 def _create_file(path: Path) -> None:
     if not path.parent.is_dir():
         raise NotFoundError(f"directory {str(path.parent)!r} for the new store does not exist")
-    fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, FILE_MODE)
+    try:
+        fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, FILE_MODE)
+    except FileExistsError:
+        return  # another process created it since our exists() check: open theirs
     try:
         os.fchmod(fd, FILE_MODE)  # the umask may have removed bits; never add "other" access
     finally:
         os.close(fd)
 
 
-def _configure(conn: sqlite3.Connection, *, writable: bool, durable: bool) -> None:
+def _configure(
+    conn: sqlite3.Connection, *, writable: bool, durable: bool, busy_timeout_s: float
+) -> None:
     (page_count,) = conn.execute("PRAGMA page_count").fetchone()
     if writable and page_count == 0:
         conn.execute(f"PRAGMA page_size = {PAGE_SIZE}")
     conn.execute("PRAGMA foreign_keys = ON")
     if writable:
-        conn.execute("PRAGMA journal_mode = WAL")
+        _execute_waiting(conn, "PRAGMA journal_mode = WAL", busy_timeout_s)
         # FULL: a committed chunk survives power loss too; NORMAL only a crash of the writer.
         conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
+
+
+def _execute_waiting(conn: sqlite3.Connection, sql: str, timeout_s: float) -> None:
+    """Run ``sql``, retrying for up to ``timeout_s`` while the file is locked. Switching a new
+    file to WAL needs an exclusive lock and does not wait on SQLite's busy handler, so openers
+    that create one store at once would otherwise fail at once."""
+    deadline = time.monotonic() + timeout_s
+    pause_s = 0.001
+    while True:
+        try:
+            conn.execute(sql).fetchall()
+            return
+        except sqlite3.OperationalError as exc:
+            if "locked" not in str(exc) or time.monotonic() >= deadline:
+                raise
+        time.sleep(pause_s)
+        pause_s = min(2.0 * pause_s, 0.05)
 
 
 def parse_order_by(order_by: str | None, allowed: Sequence[str], default: str) -> str:
