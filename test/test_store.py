@@ -384,6 +384,31 @@ def test_bad_filters_are_refused(catalogue, kwargs, message):
     assert len(list(store.find_demonstrations())) == 4
 
 
+# Counts to 3e8 (a minute or more) unless stopped: were the deadline ignored, the test would
+# still end, failing, instead of hanging the suite.
+_LONG_WHERE = (
+    "(WITH RECURSIVE n(i) AS (SELECT 1 UNION ALL SELECT i + 1 FROM n WHERE i < 300000000) "
+    "SELECT count(*) FROM n) > 0"
+)
+
+
+def test_a_where_running_past_the_query_timeout_is_refused(tmp_path):
+    with DemoStore(tmp_path / "store.sqlite", query_timeout_s=0.2) as store:
+        kept = add_demo(store)
+        with pytest.raises(
+            InvalidInputError, match=r"^where = .* was refused: ran longer than query_timeout_s"
+        ):
+            store.find_demonstrations(where=_LONG_WHERE)
+        with pytest.raises(InvalidInputError, match=r"^where = .* ran longer than"):
+            store.count_demonstrations(where=_LONG_WHERE)
+        # the deadline is per query and removed afterwards: ordinary work goes on
+        assert _ids(store.find_demonstrations(where="n_samples = ?", where_args=[200])) == [kept]
+        assert store.load_demonstration(kept).t.size == 200
+    for bad in (0, -1.0, float("inf"), "10"):
+        with pytest.raises(InvalidInputError, match=f"query_timeout_s must be .* got {bad!r}"):
+            DemoStore(":memory:", query_timeout_s=bad)
+
+
 def test_find_uses_indexes(catalogue):
     store, _ = catalogue
     for column in ("skill", "operator", "status", "start_time"):

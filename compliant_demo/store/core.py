@@ -224,6 +224,10 @@ class DemoStore:
         Sync every commit to disk (SQLite ``synchronous=FULL``), so a committed chunk survives a
         power cut. ``False`` (``NORMAL``) still survives a crash of the writing process and is
         faster for bulk work.
+    query_timeout_s : float, s
+        How long a query with a caller's raw SQL ``where`` may run before it is stopped and
+        refused with InvalidInputError (such a condition can otherwise run for hours inside
+        SQLite, where no signal reaches it).
 
     Notes
     -----
@@ -240,8 +244,10 @@ class DemoStore:
         busy_timeout_s: float = 5.0,
         create: bool = True,
         durable: bool = True,
+        query_timeout_s: float = 10.0,
     ) -> None:
         self.read_only = bool(read_only)
+        self.query_timeout_s = _finite("query_timeout_s", query_timeout_s, positive=True)
         self._label = f"store {str(path)!r}"
         self._lock = threading.RLock()
         self._lease_token: str | None = None
@@ -817,15 +823,24 @@ class DemoStore:
         with self._lock:
             self._check_open()
             self._conn.set_authorizer(_sql.read_only_authorizer)
+            deadline = time.monotonic() + self.query_timeout_s
+            if where is not None:
+                # SQLite interrupts the statement once this returns true (checked every 10000
+                # virtual-machine steps): a runaway join or recursive CTE cannot hang the caller
+                self._conn.set_progress_handler(lambda: time.monotonic() > deadline, 10000)
             try:
                 return self._conn.execute(sql, params).fetchall()
             except (sqlite3.Warning, sqlite3.ProgrammingError, sqlite3.DatabaseError) as exc:
                 if where is None:
                     with _sql.translated(self._label):
                         raise
-                raise InvalidInputError(f"where = {where!r} was refused: {exc}") from None
+                reason = str(exc)
+                if time.monotonic() > deadline and "interrupt" in reason:
+                    reason = f"ran longer than query_timeout_s = {self.query_timeout_s:g} s"
+                raise InvalidInputError(f"where = {where!r} was refused: {reason}") from None
             finally:
                 self._conn.set_authorizer(None)
+                self._conn.set_progress_handler(None, 0)
 
     def count_demonstrations(self, **filters: Any) -> int:
         """Number of demonstrations matching the filters of :meth:`find_demonstrations`."""
