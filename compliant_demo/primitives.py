@@ -677,16 +677,22 @@ class Skill(BaseModel):
         dmp = self.dmp
         x = dmp.basis.phase(t / tau)
         phi = _normalise(dmp.basis.activations(x))
+        # The forcing is learned over the demonstrated phase only and ends at t = tau: the phase
+        # has decayed to exp(-alpha_x) there, but demonstrations that end still moving (a
+        # recording stopped while the arm lags the hand) leave weights of order 1e4 on the last
+        # basis functions, whose forcing would otherwise keep pushing the joint away from the
+        # goal for about tau/alpha_x after tau. Beyond tau the attractor alone settles on g.
+        active = (t <= tau * (1.0 + 1e-12))[:, np.newaxis]
         if goal_arr.ndim == 1:
-            forcing = dmp.forcing(phi, x, start_arr, goal_arr)
+            forcing = np.where(active, dmp.forcing(phi, x, start_arr, goal_arr), 0.0)
             position, velocity, acceleration = dmp.integrate(forcing, start_arr, goal_arr, dt,
                                                              tau)
         else:
             # Moving goal: integrate y itself (reference 0) with the spring's pull K*g(t) moved
             # into the input; the forcing gains follow g(t) sample by sample.
             shaped, decaying = dmp._input_gains(start_arr[np.newaxis], goal_arr)
-            drive = (dmp._shape(phi, x) * shaped + x[:, np.newaxis] * decaying
-                     + dmp.alpha_z * dmp.beta_z * goal_arr)
+            forcing = dmp._shape(phi, x) * shaped + x[:, np.newaxis] * decaying
+            drive = np.where(active, forcing, 0.0) + dmp.alpha_z * dmp.beta_z * goal_arr
             position, velocity, acceleration = dmp.integrate(
                 drive, start_arr, np.zeros(n_joints), dt, tau)
         stiffness = np.clip(np.exp(phi @ np.asarray(self.stiffness_log_weights).T),

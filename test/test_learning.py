@@ -327,3 +327,31 @@ def test_recorded_stiffness_is_clamped_to_the_range_before_the_log():
     assert clamped.stiffness_log_weights == by_hand.stiffness_log_weights
     with pytest.raises(InvalidInputError, match=r"values must be positive, got -1\.3"):
         learn_skill(stray, joints=JOINTS, alignment="resample", target_inertia=[1, 1])
+
+
+# --- simulated teaching demonstrations (compliant_demo.teaching, invented cork_seat scenario) --
+
+
+def test_rollout_settles_on_the_goal_after_the_duration():
+    # Teaching demos end while the arm still lags the hand, which leaves large forcing weights
+    # on the last basis functions; after tau the forcing is off and the attractor settles.
+    from compliant_demo.teaching import cork_seat_scenario, teaching_series
+
+    taught = teaching_series(cork_seat_scenario(), 3, seed=11)
+    joints = list(taught[0].joint_names)
+    skill = learn_skill(taught, joints=joints, n_basis=30, stiffness_range=(5, 200),
+                        target_inertia=[0.08, 0.03])
+    for goal, duration in ((None, None), ([0.2, 0.5], 5.0)):
+        rollout = skill.rollout(goal=goal, duration_s=duration, horizon_s=2 * (duration or
+                                                                              skill.duration_s))
+        g = np.asarray(skill.goal if goal is None else goal)
+        tau = rollout.duration_s
+        distance = np.abs(rollout.position - g)
+        after = rollout.t >= tau
+        at_tau = distance[np.argmax(after)]
+        # Stated band: no excursion more than 10 mrad beyond the distance left at tau, and within
+        # 0.03 rad of the goal after tau (before the fix: 0.07 rad away at ~1.2 tau).
+        assert np.all(distance[after] <= at_tau + 0.01), (distance[after].max(axis=0), at_tau)
+        assert np.all(distance[after] < 0.03)
+        # Critically damped attractor (alpha_z = 25, beta_z = alpha_z / 4): settled by 1.5 tau.
+        assert np.all(distance[rollout.t >= 1.5 * tau] < 2e-3)
