@@ -201,26 +201,27 @@ def _normalise(psi: NDArray[np.float64]) -> NDArray[np.float64]:
 def _solve_weights(
     psi: NDArray[np.float64],
     regressor: NDArray[np.float64],
-    scale: NDArray[np.float64],
+    n_demos: int,
     target_sum: NDArray[np.float64],
     method: FitMethod,
     regularisation: float,
 ) -> NDArray[np.float64]:
-    """Weights (n_joints, n_basis) for target = sum_i w_i * phi_i * regressor * scale.
+    """Weights (n_joints, n_basis) for target = sum_i w_i * phi_i * regressor.
 
     Parameters
     ----------
     psi : (n_samples, n_basis) unnormalised activations
     regressor : (n_samples,) phase-dependent factor shared by all demonstrations
-    scale : (n_demos, n_joints) per-demonstration factor
-    target_sum : (n_samples, n_joints) sum over demonstrations of scale * target
+    n_demos : number of demonstrations summed in ``target_sum``
+    target_sum : (n_samples, n_joints) sum over demonstrations of the target
 
     Notes
     -----
     Because the demonstrations share one time base, the normal equations of the stacked problem
-    reduce to products with the single-demonstration design matrix, weighted by sum(scale^2).
+    reduce to products with the single-demonstration design matrix, weighted by n_demos: the
+    weights fit the demonstrations' mean target.
     """
-    scale_sq = np.sum(scale**2, axis=0)
+    scale_sq = np.full(target_sum.shape[1], float(n_demos))
     if method == "lwr":
         # Locally weighted regression: each weight solves its own 1-D problem with weights psi_i.
         weighted = psi * regressor[:, np.newaxis]
@@ -397,26 +398,30 @@ class DMP:
                     "Use formulation='goal_robust' for such motions.",
                     stacklevel=2,
                 )
-            scale = np.where(degenerate, 1.0, (goal - start) / np.where(degenerate, 1.0, amplitude))
             # Amplitude 0 marks a joint whose forcing is applied unscaled at rollout.
             amplitude = np.where(degenerate, 0.0, amplitude)
         else:
             amplitude = np.ones(demos.shape[2])
-            scale = np.ones_like(start)
-        # The regression needs only sum_d scale_d * target_d, and the targets are linear in the
-        # positions (differentiation and Savitzky-Golay filtering included), so differentiate the
-        # scale-weighted sum of the demonstrations once instead of every demonstration.
-        weighted = np.einsum("dj,dnj->nj", scale, demos)
-        velocity, acceleration = (d[0] for d in _derivatives(times, weighted[None],
+        # The demonstrations are averaged, not each rescaled by its own (g_d - y0_d) / amplitude:
+        # teaching demonstrations of one skill differ by offsets and timing rather than by a
+        # scaling about their start, and where the range of motion is several times |g - y0|
+        # (cork_seat: 0.6 rad against 0.15 rad) such factors varied by +-30 % and pulled the
+        # primitive ~0.01 rad off the demonstrations' mean. Scaling to new goals at rollout is
+        # unchanged. The targets are linear in the positions (differentiation and
+        # Savitzky-Golay filtering included), so the sum of the demonstrations is differentiated
+        # once instead of every demonstration.
+        summed = demos.sum(axis=0)
+        velocity, acceleration = (d[0] for d in _derivatives(times, summed[None],
                                                              smoothing_window))
         inertial = tau * tau * acceleration + d_gain * tau * velocity
-        to_goal = (scale * goal).sum(axis=0) - weighted
+        to_goal = goal.sum(axis=0) - summed
         if self.formulation == "classic":
             target_sum = inertial - k_gain * to_goal
         else:
             target_sum = (inertial / k_gain - to_goal
-                          + (scale * (goal - start)).sum(axis=0) * x[:, np.newaxis])
-        self.weights = _solve_weights(psi, x, scale, target_sum, method, regularisation)
+                          + (goal - start).sum(axis=0) * x[:, np.newaxis])
+        self.weights = _solve_weights(psi, x, demos.shape[0], target_sum, method,
+                                      regularisation)
         self.amplitude = amplitude
 
     def forcing(
@@ -462,17 +467,6 @@ class DMP:
             return ratio, np.zeros_like(span)
         k_gain = self.alpha_z * self.beta_z
         return np.full_like(span, k_gain), -k_gain * span
-
-    def _unit_responses(
-        self, psi_normalised: NDArray[np.float64], x: NDArray[np.float64], dt: float, tau: float
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
-        """Error y - g for unit initial error, for input shape, for input x; (n, j) each."""
-        n_joints = self.weights.shape[0] if self.weights is not None else 0
-        columns = np.hstack([np.zeros((x.size, n_joints)), self._shape(psi_normalised, x),
-                             np.repeat(x[:, np.newaxis], n_joints, axis=1)])
-        initial = np.concatenate([np.ones(n_joints), np.zeros(2 * n_joints)])
-        error = self.integrate(columns, initial, np.zeros_like(initial), dt, tau)[0]
-        return error[:, :n_joints], error[:, n_joints:2 * n_joints], error[:, 2 * n_joints:]
 
     def integrate(
         self,
@@ -543,7 +537,16 @@ class Provenance(BaseModel):
     stiffness_source: Literal["recorded", "variability", "constant"] = "recorded"
     n_basis: int = Field(..., ge=2)
     fit_rmse: list[float] = Field(
-        ..., description="Position RMSE of the fitted primitive per joint over the demos, rad."
+        ...,
+        description="Position RMSE per joint of the primitive (rolled out from the mean start to "
+        "the mean goal over the demonstrated duration) against the mean of the aligned "
+        "demonstrations on their common time base, rad.",
+    )
+    demo_spread_rmse: list[float] | None = Field(
+        None,
+        description="RMS spread per joint of the aligned demonstrations about their mean, rad "
+        "(None for one demonstration); RMSE against each demonstration is "
+        "sqrt(fit_rmse^2 + demo_spread_rmse^2).",
     )
     stiffness_fit_rmse: list[float] | None = Field(
         None, description="RMSE of the learned stiffness per joint, N*m/rad."
@@ -764,44 +767,46 @@ def _log_profile(
         )
     log_values = np.log(values)
     ones = np.ones(psi.shape[0])
-    scale = np.ones((values.shape[0], values.shape[2]))
-    weights = _solve_weights(psi, ones, scale, log_values.sum(axis=0), method, regularisation)
+    weights = _solve_weights(psi, ones, values.shape[0], log_values.sum(axis=0), method,
+                             regularisation)
     return weights, _normalise(psi) @ weights.T
 
 
-def _fit_rmse(
+def _fit_errors(
     dmp: DMP,
     times: NDArray[np.float64],
     demos: NDArray[np.float64],
     x: NDArray[np.float64],
     psi: NDArray[np.float64],
-) -> list[float]:
-    """Per-joint RMSE of rollouts from each demonstration's start to its goal, rad.
+) -> tuple[list[float], list[float] | None]:
+    """Per-joint RMSE of the primitive against the aligned demonstrations' mean, and the RMS
+    spread of the demonstrations about that mean, rad (spread None for one demonstration).
 
+    The primitive is rolled out from the mean start to the mean goal over the demonstrated
+    duration (the skill's defaults) and compared sample by sample on the common time base.
     ``x`` and ``psi`` are the phase and activations at ``times``; on a non-uniform time base the
-    rollout runs on a uniform grid of as many samples and is interpolated back. The rollouts are
-    superposed from three unit responses per joint (the system is linear in start, goal and
-    forcing), so the cost does not grow with the number of demonstrations.
+    rollout runs on a uniform grid of as many samples and is interpolated back. The RMSE against
+    the individual demonstrations is sqrt(fit^2 + spread^2).
     """
-    n_demos, n_samples, n_joints = demos.shape
+    n_demos, n_samples, _ = demos.shape
+    mean = demos.mean(axis=0)
     tau = times[-1] - times[0]
     grid = np.linspace(0.0, tau, n_samples)
     uniform = _uniform_step(times) is not None
     if not uniform:
         x = dmp.basis.phase(grid / tau)
         psi = dmp.basis.activations(x)
-    free, shaped, decaying = dmp._unit_responses(_normalise(psi), x, grid[1], tau)
+    start, goal = mean[0], mean[-1]
+    forcing = dmp.forcing(_normalise(psi), x, start, goal)
+    position = dmp.integrate(forcing, start, goal, grid[1], tau)[0]
     if not uniform:
-        free, shaped, decaying = (
-            np.column_stack([np.interp(times - times[0], grid, col) for col in r.T])
-            for r in (free, shaped, decaying)
-        )
-    starts, goals = demos[:, 0, :], demos[:, -1, :]
-    gain_shaped, gain_decaying = dmp._input_gains(starts, goals)
-    error = ((starts - goals)[:, None, :] * free + gain_shaped[:, None, :] * shaped
-             + gain_decaying[:, None, :] * decaying)
-    residual = error + (goals[:, None, :] - demos)
-    return np.sqrt(np.einsum("dnj,dnj->j", residual, residual) / (n_demos * n_samples)).tolist()
+        position = np.column_stack([np.interp(times - times[0], grid, column)
+                                    for column in position.T])
+    fit = np.sqrt(((position - mean) ** 2).mean(axis=0)).tolist()
+    if n_demos < 2:
+        return fit, None
+    spread = np.sqrt(np.einsum("dnj,dnj->j", demos - mean, demos - mean) / (n_demos * n_samples))
+    return fit, spread.tolist()
 
 
 def fit_skill(
@@ -894,6 +899,7 @@ def fit_skill(
     limits = None if position_limits is None else _ranges(position_limits, n_joints,
                                                           "position_limits")
     assert dmp.weights is not None and dmp.amplitude is not None
+    fit_rmse, spread_rmse = _fit_errors(dmp, times, demos, x, psi)
     data = dict(
         name=name,
         joints=joint_names,
@@ -917,7 +923,8 @@ def fit_skill(
         provenance={
             "n_demonstrations": demos.shape[0],
             "n_basis": dmp.n_basis,
-            "fit_rmse": _fit_rmse(dmp, times, demos, x, psi),
+            "fit_rmse": fit_rmse,
+            "demo_spread_rmse": spread_rmse,
             "stiffness_fit_rmse": stiffness_rmse,
             **extra,
         },

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from compliant_demo.alignment import DemoArrays
+from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import learn_skill, load_skill, save_skill
 from compliant_demo.store import DemoStore
@@ -330,6 +330,42 @@ def test_recorded_stiffness_is_clamped_to_the_range_before_the_log():
 
 
 # --- simulated teaching demonstrations (compliant_demo.teaching, invented cork_seat scenario) --
+
+
+@pytest.fixture(scope="module")
+def taught():
+    from compliant_demo.teaching import cork_seat_scenario, teaching_series
+
+    return teaching_series(cork_seat_scenario(), 4, seed=3)
+
+
+@pytest.mark.parametrize("alignment", ["dtw", "resample"])
+def test_primitive_follows_the_aligned_mean_of_teaching_demonstrations(taught, alignment):
+    # Demos of ~6 s that move 0.6-0.75 rad with an 8 Hz dither on top and end still moving.
+    joints = list(taught[0].joint_names)
+    skill = learn_skill(taught, joints=joints, alignment=alignment, stiffness_range=(5, 200),
+                        target_inertia=[0.08, 0.03])
+    inputs = [(r.t - r.t[0], r.position) for r in taught]
+    if alignment == "dtw":
+        aligned = align_demonstrations(inputs, band=0.1)
+        time, mean = aligned.time, aligned.mean
+    else:
+        count = int(np.median([r.t.size for r in taught]))
+        time = np.linspace(0.0, np.mean([r.t[-1] - r.t[0] for r in taught]), count)
+        mean = np.mean([[np.interp(time / time[-1], t / t[-1], col) for col in q.T]
+                        for t, q in inputs], axis=0).T
+    rollout = skill.rollout(dt=time[1], horizon_s=time[-1])
+    residual = rollout.position[: time.size] - mean
+    error = np.sqrt((residual**2).mean(axis=0))
+    # fit_rmse is exactly this comparison: the skill's default rollout against the aligned mean.
+    np.testing.assert_allclose(skill.provenance.fit_rmse, error, rtol=1e-6)
+    # Stated bounds: 0.015 rad RMSE (about 2.5 % of the range of motion) and no offset beyond
+    # 8 mrad. Before the demonstrations were averaged instead of rescaled one by one by
+    # (g_d - y0_d) / amplitude: 0.017-0.018 rad on the shoulder, an offset of 0.011-0.014 rad.
+    assert np.all(error < 0.015), error
+    assert np.all(np.abs(residual.mean(axis=0)) < 0.008), residual.mean(axis=0)
+    assert skill.provenance.demo_spread_rmse is not None
+    assert np.all(np.asarray(skill.provenance.demo_spread_rmse) > 0.005)
 
 
 def test_rollout_settles_on_the_goal_after_the_duration():

@@ -53,6 +53,14 @@ def test_classic_form_mirrors_where_start_and_goal_nearly_coincide():
     errors = {}
     for formulation in ("classic", "goal_robust"):
         skill = learn_skill(demos, formulation=formulation, **kwargs)
-        errors[formulation] = max(skill.provenance.fit_rmse)
-    assert errors["goal_robust"] < 2e-3
+        # Both reproduce the demonstrations' mean from its own start and goal ...
+        assert max(skill.provenance.fit_rmse) < 1e-3
+        # ... but sent to each demonstration's own start and goal, only the goal-robust form
+        # follows it (worst per-demonstration RMSE, rad).
+        errors[formulation] = max(
+            np.sqrt(((skill.rollout(start=q[0], goal=q[-1], dt=skill.duration_s / (len(q) - 1))
+                      .position[: len(q)] - q) ** 2).mean(axis=0)).max()
+            for _, q in demos
+        )
+    assert errors["goal_robust"] < 5e-3
     assert errors["classic"] > 3 * errors["goal_robust"]
