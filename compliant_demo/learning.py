@@ -33,10 +33,16 @@ from compliant_demo.primitives import (
     fit_skill,
 )
 
-__all__ = ["learn_skill", "save_skill", "load_skill"]
+__all__ = ["DEFAULT_MAX_SAMPLES", "learn_skill", "save_skill", "load_skill"]
 
 StiffnessSource = Literal["auto", "recorded", "variability"]
 AlignmentMethod = Literal["dtw", "resample", "none"]
+
+# Default cap of the common time base. With 50 basis functions each spans about 1/50 of the
+# samples: 20,000 leave 400 per basis function, far more than the regression needs, and keep the
+# fit's (n_samples x n_basis) work arrays near 8 MB however long the recording (a 6-minute one at
+# 1 kHz on the full base needed 20x its own size).
+DEFAULT_MAX_SAMPLES = 20_000
 
 
 class _SkillStore(Protocol):
@@ -160,7 +166,8 @@ def _align(
                         {"stiffness": d.stiffness} if with_stiffness and d.stiffness is not None
                         else {})
              for d in demos],
-            band=band, n_out=n_samples,
+            band=band, n_out=n_samples if n_samples is not None or max(
+                d.t.size for d in demos) <= DEFAULT_MAX_SAMPLES else DEFAULT_MAX_SAMPLES,
         )
         summary.update(band=band, reference_index=aligned.reference_index,
                        dtw_costs=aligned.dtw_costs.tolist(), n_samples=aligned.time.size)
@@ -179,7 +186,8 @@ def _align(
                      if with_stiffness else None)
     elif alignment in ("resample", "dtw"):
         # Normalised-time resampling; also the DTW path for a single demonstration.
-        count = int(np.median([d.t.size for d in demos])) if n_samples is None else n_samples
+        count = (min(int(np.median([d.t.size for d in demos])), DEFAULT_MAX_SAMPLES)
+                 if n_samples is None else n_samples)
         phase = np.linspace(0.0, 1.0, count)
         time = phase * float(np.mean(durations))
 
@@ -241,7 +249,8 @@ def learn_skill(
     alignment : "dtw" (banded DTW onto the median-duration demonstration), "resample" (linear
         resampling in normalised time) or "none" (demonstrations already share one time base)
     band : Sakoe-Chiba band of the DTW, fraction of the sequence length
-    n_samples : samples of the common time axis (default: the reference's / median count)
+    n_samples : samples of the common time axis. Default: the DTW reference's sample count, or
+        the median count when resampling, capped at ``DEFAULT_MAX_SAMPLES`` = 20,000
     n_basis, method, formulation, damping_policy, target_inertia, position_limits :
         as in :func:`compliant_demo.primitives.fit_skill`
     variance_floor : rad^2, passed to ``stiffness_from_variability``

@@ -7,7 +7,7 @@ import pytest
 
 from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.learning import learn_skill, load_skill, save_skill
+from compliant_demo.learning import DEFAULT_MAX_SAMPLES, learn_skill, load_skill, save_skill
 from compliant_demo.store import DemoStore
 
 JOINTS = ["shoulder", "elbow"]
@@ -391,3 +391,16 @@ def test_rollout_settles_on_the_goal_after_the_duration():
         assert np.all(distance[after] < 0.03)
         # Critically damped attractor (alpha_z = 25, beta_z = alpha_z / 4): settled by 1.5 tau.
         assert np.all(distance[rollout.t >= 1.5 * tau] < 2e-3)
+
+
+@pytest.mark.parametrize("n_demos", [1, 2])
+def test_default_time_base_is_capped_for_long_recordings(n_demos):
+    # 25,000 samples per demonstration: the default common time base stops at 20,000 (the fit's
+    # work arrays grow with it); an explicit n_samples is kept.
+    t = np.linspace(0.0, 50.0, 25_000)
+    demos = [(t, cork_seat(t, 50.0, 0.01 * i), press_stiffness(t, 50.0)) for i in range(n_demos)]
+    kwargs = {"joints": JOINTS, "alignment": "resample", "target_inertia": [1, 1]}
+    skill = learn_skill(demos, **kwargs)
+    assert skill.provenance.alignment["n_samples"] == DEFAULT_MAX_SAMPLES == 20_000
+    explicit = learn_skill(demos, n_samples=21_000, **kwargs)
+    assert explicit.provenance.alignment["n_samples"] == 21_000
