@@ -198,8 +198,28 @@ def _normalise(psi: NDArray[np.float64]) -> NDArray[np.float64]:
     return psi / np.maximum(psi.sum(axis=1, keepdims=True), 1e-300)
 
 
+# Samples per block when a sum runs over (n_samples x n_basis) activations: the work arrays stay
+# about 1.6 MB at 50 basis functions however long the time base.
+_BLOCK = 4096
+
+
+def _blocks(n_samples: int) -> list[slice]:
+    return [slice(i, min(i + _BLOCK, n_samples)) for i in range(0, n_samples, _BLOCK)]
+
+
+def _on_basis(
+    basis: _PhaseBasis, x: NDArray[np.float64], weights: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """sum(psi*w)/sum(psi) at the phases ``x``, (n_samples, n_joints), built block by block."""
+    out = np.empty((x.size, weights.shape[0]))
+    for block in _blocks(x.size):
+        out[block] = _normalise(basis.activations(x[block])) @ weights.T
+    return out
+
+
 def _solve_weights(
-    psi: NDArray[np.float64],
+    basis: _PhaseBasis,
+    x: NDArray[np.float64],
     regressor: NDArray[np.float64],
     n_demos: int,
     target_sum: NDArray[np.float64],
@@ -210,7 +230,8 @@ def _solve_weights(
 
     Parameters
     ----------
-    psi : (n_samples, n_basis) unnormalised activations
+    basis : the phase basis; its activations at ``x`` are built block by block
+    x : (n_samples,) phase
     regressor : (n_samples,) phase-dependent factor shared by all demonstrations
     n_demos : number of demonstrations summed in ``target_sum``
     target_sum : (n_samples, n_joints) sum over demonstrations of the target
@@ -222,16 +243,25 @@ def _solve_weights(
     weights fit the demonstrations' mean target.
     """
     scale_sq = np.full(target_sum.shape[1], float(n_demos))
+    n_basis = basis.centres.size
+    # Sums over samples, accumulated block by block (the full design matrix is never built).
+    rhs = np.zeros((n_basis, target_sum.shape[1]))
+    gram = np.zeros((n_basis, n_basis))
+    denominator = np.zeros(n_basis)
+    for block in _blocks(x.size):
+        psi = basis.activations(x[block])
+        if method == "lwr":
+            # Locally weighted regression: each weight solves its own 1-D problem with
+            # weights psi_i.
+            weighted = psi * regressor[block, np.newaxis]
+            rhs += weighted.T @ target_sum[block]
+            denominator += weighted.T @ regressor[block]
+        else:
+            design = _normalise(psi) * regressor[block, np.newaxis]
+            gram += design.T @ design
+            rhs += design.T @ target_sum[block]
     if method == "lwr":
-        # Locally weighted regression: each weight solves its own 1-D problem with weights psi_i.
-        weighted = psi * regressor[:, np.newaxis]
-        numerator = weighted.T @ target_sum
-        denominator = (psi * (regressor**2)[:, np.newaxis]).sum(axis=0)
-        return (numerator / (denominator[:, np.newaxis] * scale_sq)).T
-    design = _normalise(psi) * regressor[:, np.newaxis]
-    gram = design.T @ design
-    rhs = design.T @ target_sum
-    n_basis = gram.shape[0]
+        return (rhs / (denominator[:, np.newaxis] * scale_sq)).T
     weights = np.empty((target_sum.shape[1], n_basis))
     ridge = regularisation * np.trace(gram) / n_basis
     for j in range(target_sum.shape[1]):
@@ -355,14 +385,14 @@ class DMP:
         -------
         self, with ``weights`` (n_joints, n_basis) and ``amplitude`` (n_joints,) rad set
         """
-        times, demos, x, psi = self._prepare(t, position, method)
-        self._fit_on_basis(times, demos, x, psi, method, regularisation, smoothing_window)
+        times, demos, x = self._prepare(t, position, method)
+        self._fit_on_basis(times, demos, x, method, regularisation, smoothing_window)
         return self
 
     def _prepare(
         self, t: ArrayLike, position: ArrayLike, method: str
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
-        """Validate fit inputs; return times, (d, n, j) demos, phase and activations."""
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+        """Validate fit inputs; return times, (d, n, j) demos and the phase."""
         times = _time_axis(t)
         if times.size < self.n_basis:
             raise InvalidInputError(
@@ -372,14 +402,13 @@ class DMP:
         if method not in ("lwr", "ridge"):
             raise InvalidInputError(f"method: expected 'lwr' or 'ridge', got {method!r}")
         x = self.basis.phase((times - times[0]) / (times[-1] - times[0]))
-        return times, demos, x, self.basis.activations(x)
+        return times, demos, x
 
     def _fit_on_basis(
         self,
         times: NDArray[np.float64],
         demos: NDArray[np.float64],
         x: NDArray[np.float64],
-        psi: NDArray[np.float64],
         method: FitMethod,
         regularisation: float,
         smoothing_window: int | None = None,
@@ -420,7 +449,7 @@ class DMP:
         else:
             target_sum = (inertial / k_gain - to_goal
                           + (goal - start).sum(axis=0) * x[:, np.newaxis])
-        self.weights = _solve_weights(psi, x, demos.shape[0], target_sum, method,
+        self.weights = _solve_weights(self.basis, x, x, demos.shape[0], target_sum, method,
                                       regularisation)
         self.amplitude = amplitude
 
@@ -443,11 +472,17 @@ class DMP:
         -------
         (n_samples, n_joints) or (n_samples, n_sets * n_joints) array, rad, set-major columns
         """
-        n_samples = x.size
-        shape = self._shape(psi_normalised, x)[:, np.newaxis, :]
+        return self._forcing_from_shape(self._shape(psi_normalised, x), x, (start, goal))
+
+    def _forcing_from_shape(self, shape: NDArray, x: NDArray, ends: tuple[NDArray, NDArray]
+                            ) -> NDArray[np.float64]:
+        """:meth:`forcing` from the learned shape (n_samples, n_joints) at the phases ``x``
+        for ``ends`` = (start, goal)."""
+        start, goal = ends
         gain_shaped, gain_decaying = self._input_gains(np.atleast_2d(start), np.atleast_2d(goal))
-        forcing = shape * gain_shaped + x[:, np.newaxis, np.newaxis] * gain_decaying
-        return forcing.reshape(n_samples, -1)
+        forcing = (shape[:, np.newaxis, :] * gain_shaped
+                   + x[:, np.newaxis, np.newaxis] * gain_decaying)
+        return forcing.reshape(x.size, -1)
 
     def _shape(self, psi_normalised: NDArray[np.float64], x: NDArray[np.float64]) -> NDArray:
         """Learned shape x*sum(psi*w)/sum(psi), (n_samples, n_joints)."""
@@ -754,7 +789,8 @@ class Skill(BaseModel):
 
 
 def _log_profile(
-    psi: NDArray[np.float64],
+    basis: _PhaseBasis,
+    x: NDArray[np.float64],
     values: NDArray[np.float64],
     method: FitMethod,
     regularisation: float,
@@ -766,10 +802,10 @@ def _log_profile(
             f"stiffness/damping: values must be positive, got {float(values[index])!r} at {index}"
         )
     log_values = np.log(values)
-    ones = np.ones(psi.shape[0])
-    weights = _solve_weights(psi, ones, values.shape[0], log_values.sum(axis=0), method,
+    ones = np.ones(x.size)
+    weights = _solve_weights(basis, x, ones, values.shape[0], log_values.sum(axis=0), method,
                              regularisation)
-    return weights, _normalise(psi) @ weights.T
+    return weights, _on_basis(basis, x, weights)
 
 
 def _fit_errors(
@@ -777,14 +813,13 @@ def _fit_errors(
     times: NDArray[np.float64],
     demos: NDArray[np.float64],
     x: NDArray[np.float64],
-    psi: NDArray[np.float64],
 ) -> tuple[list[float], list[float] | None]:
     """Per-joint RMSE of the primitive against the aligned demonstrations' mean, and the RMS
     spread of the demonstrations about that mean, rad (spread None for one demonstration).
 
     The primitive is rolled out from the mean start to the mean goal over the demonstrated
     duration (the skill's defaults) and compared sample by sample on the common time base.
-    ``x`` and ``psi`` are the phase and activations at ``times``; on a non-uniform time base the
+    ``x`` is the phase at ``times``; on a non-uniform time base the
     rollout runs on a uniform grid of as many samples and is interpolated back. The RMSE against
     the individual demonstrations is sqrt(fit^2 + spread^2).
     """
@@ -795,9 +830,10 @@ def _fit_errors(
     uniform = _uniform_step(times) is not None
     if not uniform:
         x = dmp.basis.phase(grid / tau)
-        psi = dmp.basis.activations(x)
     start, goal = mean[0], mean[-1]
-    forcing = dmp.forcing(_normalise(psi), x, start, goal)
+    assert dmp.weights is not None
+    shape = _on_basis(dmp.basis, x, dmp.weights) * x[:, np.newaxis]
+    forcing = dmp._forcing_from_shape(shape, x, (start, goal))
     position = dmp.integrate(forcing, start, goal, grid[1], tau)[0]
     if not uniform:
         position = np.column_stack([np.interp(times - times[0], grid, column)
@@ -805,7 +841,8 @@ def _fit_errors(
     fit = np.sqrt(((position - mean) ** 2).mean(axis=0)).tolist()
     if n_demos < 2:
         return fit, None
-    spread = np.sqrt(np.einsum("dnj,dnj->j", demos - mean, demos - mean) / (n_demos * n_samples))
+    deviation = demos - mean
+    spread = np.sqrt(np.einsum("dnj,dnj->j", deviation, deviation) / (n_demos * n_samples))
     return fit, spread.tolist()
 
 
@@ -859,7 +896,7 @@ def fit_skill(
     Skill
     """
     dmp = DMP(n_basis, formulation)
-    times, demos, x, psi = dmp._prepare(t, position, method)
+    times, demos, x = dmp._prepare(t, position, method)
     n_joints = demos.shape[2]
     joint_names = list(joints)
     if len(joint_names) != n_joints:
@@ -867,7 +904,7 @@ def fit_skill(
             f"joints: {len(joint_names)} names {joint_names!r} for {n_joints} position columns"
         )
     policy = DampingPolicy() if damping_policy is None else damping_policy
-    dmp._fit_on_basis(times, demos, x, psi, method, regularisation, smoothing_window)
+    dmp._fit_on_basis(times, demos, x, method, regularisation, smoothing_window)
 
     extra = dict(provenance or {})
     if stiffness is None:
@@ -881,7 +918,7 @@ def fit_skill(
         extra.setdefault("stiffness_source", "constant")
     else:
         recorded = _channel_stack(stiffness, demos, "stiffness")
-        log_weights, fitted = _log_profile(psi, recorded, method, regularisation)
+        log_weights, fitted = _log_profile(dmp.basis, x, recorded, method, regularisation)
         default_range = np.stack([recorded.min(axis=(0, 1)), recorded.max(axis=(0, 1))], axis=1)
         k_range = _ranges(default_range if stiffness_range is None else stiffness_range,
                           n_joints, "stiffness_range", positive=True)
@@ -894,12 +931,13 @@ def fit_skill(
             raise InvalidInputError("damping: a learned damping policy needs a damping channel, "
                                     "got None")
         recorded_damping = _channel_stack(damping, demos, "damping")
-        damping_weights = _log_profile(psi, recorded_damping, method, regularisation)[0].tolist()
+        damping_weights = _log_profile(dmp.basis, x, recorded_damping, method,
+                                       regularisation)[0].tolist()
     inertia = _per_joint(target_inertia, n_joints, "target_inertia")
     limits = None if position_limits is None else _ranges(position_limits, n_joints,
                                                           "position_limits")
     assert dmp.weights is not None and dmp.amplitude is not None
-    fit_rmse, spread_rmse = _fit_errors(dmp, times, demos, x, psi)
+    fit_rmse, spread_rmse = _fit_errors(dmp, times, demos, x)
     data = dict(
         name=name,
         joints=joint_names,
