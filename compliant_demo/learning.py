@@ -287,7 +287,8 @@ def learn_skill(
         # to zero or below); the learned profile is clamped to this range anyway, so clamp the
         # samples first: the log is then defined and no stray sample refuses the fit.
         k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
-        normalised = [replace(d, stiffness=np.clip(d.stiffness, k_range[:, 0], k_range[:, 1]))
+        normalised = [d if d.stiffness is None else
+                      replace(d, stiffness=np.clip(d.stiffness, k_range[:, 0], k_range[:, 1]))
                       for d in normalised]
     if source == "variability":
         if len(normalised) < 2:
