@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import pytest
 
@@ -332,16 +334,18 @@ def test_recorded_stiffness_is_clamped_to_the_range_before_the_log():
 # --- simulated teaching demonstrations (compliant_demo.teaching, invented cork_seat scenario) --
 
 
-@pytest.fixture(scope="module")
-def taught():
+@functools.cache
+def _taught(seed: int, n_demos: int):
     from compliant_demo.teaching import cork_seat_scenario, teaching_series
 
-    return teaching_series(cork_seat_scenario(), 4, seed=3)
+    return teaching_series(cork_seat_scenario(), n_demos, seed=seed)
 
 
 @pytest.mark.parametrize("alignment", ["dtw", "resample"])
-def test_primitive_follows_the_aligned_mean_of_teaching_demonstrations(taught, alignment):
+@pytest.mark.parametrize("seed", [3, 11])
+def test_primitive_follows_the_aligned_mean_of_teaching_demonstrations(seed, alignment):
     # Demos of ~6 s that move 0.6-0.75 rad with an 8 Hz dither on top and end still moving.
+    taught = _taught(seed, 4)
     joints = list(taught[0].joint_names)
     skill = learn_skill(taught, joints=joints, alignment=alignment, stiffness_range=(5, 200),
                         target_inertia=[0.08, 0.03])
@@ -361,7 +365,8 @@ def test_primitive_follows_the_aligned_mean_of_teaching_demonstrations(taught, a
     np.testing.assert_allclose(skill.provenance.fit_rmse, error, rtol=1e-6)
     # Stated bounds: 0.015 rad RMSE (about 2.5 % of the range of motion) and no offset beyond
     # 8 mrad. Before the demonstrations were averaged instead of rescaled one by one by
-    # (g_d - y0_d) / amplitude: 0.017-0.018 rad on the shoulder, an offset of 0.011-0.014 rad.
+    # (g_d - y0_d) / amplitude: 0.017-0.018 rad on the shoulder, an offset of 0.011-0.014 rad;
+    # with DTW and the former 3 % derivative window, 0.028 rad on the elbow for seed 11.
     assert np.all(error < 0.015), error
     assert np.all(np.abs(residual.mean(axis=0)) < 0.008), residual.mean(axis=0)
     assert skill.provenance.demo_spread_rmse is not None
@@ -371,9 +376,7 @@ def test_primitive_follows_the_aligned_mean_of_teaching_demonstrations(taught, a
 def test_rollout_settles_on_the_goal_after_the_duration():
     # Teaching demos end while the arm still lags the hand, which leaves large forcing weights
     # on the last basis functions; after tau the forcing is off and the attractor settles.
-    from compliant_demo.teaching import cork_seat_scenario, teaching_series
-
-    taught = teaching_series(cork_seat_scenario(), 3, seed=11)
+    taught = _taught(11, 3)
     joints = list(taught[0].joint_names)
     skill = learn_skill(taught, joints=joints, n_basis=30, stiffness_range=(5, 200),
                         target_inertia=[0.08, 0.03])
