@@ -176,7 +176,7 @@ class _PhaseBasis:
     """Gaussian basis functions in the phase x = exp(-alpha_x * s), s = t / tau in [0, 1].
 
     Centres are spaced evenly in time (so evenly in s), widths from the spacing of neighbouring
-    centres: h_i = 1 / (c_{i+1} - c_i)^2, so neighbours cross at exp(-1) of their peak.
+    centres: h_i = 1 / (c_{i+1} - c_i)^2, so each has fallen to exp(-1) at its neighbour's centre.
     """
 
     def __init__(self, n_basis: int, alpha_x: float) -> None:
