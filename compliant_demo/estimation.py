@@ -22,6 +22,7 @@ from scipy import signal
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
+    "STIFFNESS_LATENCY_FLAG",
     "StiffnessFit",
     "StiffnessSeries",
     "tls_fit",
@@ -31,6 +32,9 @@ __all__ = [
     "estimate_stiffness_series",
     "stiffness_from_variability",
 ]
+
+STIFFNESS_LATENCY_FLAG = "stiffness_latency_s"
+"""Demonstration flag: :attr:`SlidingStiffnessEstimator.latency_s` of the recorded estimate."""
 
 
 @dataclass(frozen=True)
@@ -401,6 +405,24 @@ class SlidingStiffnessEstimator:
     def samples_seen(self) -> int:
         """Samples received since construction or the last :meth:`reset`."""
         return self._count
+
+    @property
+    def latency_s(self) -> float:
+        """How far, in s, the estimate trails the stiffness it describes.
+
+        The window is trailing, so its estimate describes the stiffness at the window's centre,
+        ``(window - 1) / 2`` samples back, plus the one-sample lag of the central differences.
+        The band-pass delays the dither's envelope (the stiffness changes) by its group delay at
+        the band's geometric centre frequency. A learner or a plot shifts the recorded
+        stiffness earlier by this much to put it back where the teacher applied it.
+        """
+        samples = (self.window - 1) / 2.0 + 1.0
+        if self._sos is not None and self.band_hz is not None:
+            centre_hz = math.sqrt(self.band_hz[0] * self.band_hz[1])
+            numerator, denominator = signal.sos2tf(self._sos)
+            _, delay = signal.group_delay((numerator, denominator), w=[centre_hz], fs=self.rate_hz)
+            samples += float(delay[0])
+        return samples / self.rate_hz
 
     def _filter(self, xy: np.ndarray) -> np.ndarray:
         """Band-pass (n, 2, n_joints) deflection and torque with filter state kept across calls."""

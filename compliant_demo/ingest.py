@@ -21,6 +21,7 @@ from typing import Any, Literal
 
 import numpy as np
 
+from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
@@ -397,7 +398,8 @@ class ChunkWriter:
     open_store : callable returning a DemoStore-like context manager
         Called once, inside the writer thread (SQLite connections stay in their thread).
     make_estimator : callable (n_joints) -> estimator, or None
-        Builds a fresh online estimator (with ``update(position, torque) -> (k, k_std, excited)``)
+        Builds a fresh online estimator (``update(position, torque) -> (k, k_std, excited)``;
+        its ``latency_s``, when it has one, is stored in the demonstration's flags)
         for each demonstration whose stiffness source is "estimate".
     flush_interval_s : float, s
         Longest time a sample waits in memory before it is written (0 < value <= 0.2).
@@ -542,6 +544,10 @@ class ChunkWriter:
             status = "incomplete"
         if demonstration.demonstration_id is not None:
             flags = dict(flags, stored_samples=demonstration.stored_samples)
+            latency = getattr(demonstration.estimator, "latency_s", None)
+            if latency is not None:
+                # Learners and reports advance the stored estimate by this to undo its lag.
+                flags[STIFFNESS_LATENCY_FLAG] = float(latency)
             if demonstration.write_error is not None:
                 flags["store_write_failed"] = 1  # the error text is logged and in diagnostics
             try:

@@ -11,6 +11,7 @@ and :func:`load_skill` keep skills, versioned, in the demonstration store.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Any, Literal, Protocol
@@ -19,6 +20,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from compliant_demo.alignment import DemoArrays, align_demonstrations
+from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
 from compliant_demo.estimation import stiffness_from_variability
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import model_from_mapping
@@ -117,6 +119,28 @@ def _fields(item: object, label: str) -> tuple[Any, Any, Any, Any, Any]:
                             f"got {type(item).__name__}")
 
 
+def _stiffness_latency(item: object, label: str) -> float:
+    """The recorder's estimate latency in s (flag ``stiffness_latency_s``), 0 when not given."""
+    if isinstance(item, Mapping):
+        value = item.get(LATENCY_FLAG, 0.0)
+    else:
+        value = getattr(getattr(item, "info", None), "flags", {}).get(LATENCY_FLAG, 0.0)
+    if isinstance(value, bool) or not isinstance(value, int | float) or not (
+        math.isfinite(value) and value >= 0
+    ):
+        raise InvalidInputError(f"{label}.{LATENCY_FLAG}: expected a non-negative number of "
+                                f"seconds, got {value!r}")
+    return float(value)
+
+
+def _advance(times: NDArray[np.float64], values: NDArray[np.float64],
+             latency_s: float) -> NDArray[np.float64]:
+    """values(t + latency) per column, holding the last value: undo a trailing estimate's lag."""
+    if latency_s == 0.0:
+        return values
+    return np.column_stack([np.interp(times + latency_s, times, column) for column in values.T])
+
+
 def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
     label = f"demos[{index}]"
     t, position, stiffness, names, demo_id = _fields(item, label)
@@ -148,6 +172,8 @@ def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
     gap: str | None = "not recorded"
     if k is not None:
         k, gap = _fill_gaps(times, k, joints)
+        if k is not None:
+            k = _advance(times, k, _stiffness_latency(item, label))
     return _Demo(times - times[0], q, k, None if demo_id is None else str(demo_id), gap)
 
 
@@ -237,6 +263,9 @@ def learn_skill(
         (stiffness in ``channels["stiffness"]``), a mapping with keys ``t``, ``position`` and
         optional ``stiffness``, ``joints``, ``id``, or a tuple ``(t, position[, stiffness])``.
         t : (n_i,) s; position : (n_i, n_joints_i) rad; stiffness : (n_i, n_joints_i) N*m/rad.
+        A recorded estimate trails the stiffness it describes; when a store demonstration's
+        flags (or a mapping) carry ``stiffness_latency_s``, the channel is advanced by that
+        many seconds before fitting, so the stiff phase sits where the teacher applied it.
     joints : joint names to learn, in output column order. Named demonstrations are reduced to
         these columns; unnamed ones must have exactly these columns.
     stiffness_source : "recorded" (every demonstration's stiffness channel), "variability"

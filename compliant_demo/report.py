@@ -26,6 +26,7 @@ from matplotlib.figure import Figure
 from compliant_demo import __version__
 from compliant_demo.alignment import align_demonstrations
 from compliant_demo.campaign import ReplayCampaign
+from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
 from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, check_schedule
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.primitives import Skill
@@ -195,6 +196,7 @@ def plot_stiffness_estimate(
     ground_truth: np.ndarray | None,
     excited: np.ndarray,
     joint_names: Sequence[str],
+    latency_s: float = 0.0,
 ) -> Figure:
     """Estimated stiffness against the teacher's ground truth, with the excitation flags.
 
@@ -205,6 +207,9 @@ def plot_stiffness_estimate(
     ground_truth : (n_samples, n_joints) array, N*m/rad, or None when the truth is unknown
     excited : (n_samples, n_joints) bool array, True where the estimator saw enough excitation
     joint_names : one name per joint
+    latency_s : float, s
+        How far the estimate trails what it describes (the recorder's ``stiffness_latency_s``);
+        the estimate and its flags are drawn that much earlier, at the time they describe.
     """
     estimated = _as_2d(estimated, "estimated")
     excited = np.asarray(excited, dtype=bool).reshape(estimated.shape)
@@ -214,9 +219,9 @@ def plot_stiffness_estimate(
         if ground_truth is not None:
             ax.plot(t, _as_2d(ground_truth, "ground_truth")[:, j], color="0.0", linestyle="-",
                     marker="", linewidth=1.6, label="teacher ground truth")
-        ax.plot(t, estimated[:, j], color="0.35", linestyle="--", marker="s",
+        ax.plot(t - latency_s, estimated[:, j], color="0.35", linestyle="--", marker="s",
                 markevery=_markevery(len(t)), linewidth=1.0, label="estimate")
-        _shade_mask(ax, t, np.logical_not(excited[:, j]), hatch="..",
+        _shade_mask(ax, t - latency_s, np.logical_not(excited[:, j]), hatch="..",
                     label="too little excitation")
         _label(ax, "time [s]", f"{name} stiffness [N*m/rad]")
     figure.suptitle("Stiffness estimate against the teacher's ground truth")
@@ -644,12 +649,16 @@ def collect_report_content(
             truth_k = np.column_stack([np.interp(demo.t, t_truth, k_truth[:, j])
                                        for j in range(k_truth.shape[1])])
         excited = np.isfinite(estimate)
+        latency = float(demo.info.flags.get(STIFFNESS_LATENCY_FLAG, 0.0))
         figures.append(ReportFigure(
             "stiffness_estimate", "Estimated stiffness against the teacher's ground truth",
-            "The recorder's online sliding-window estimate for the first demonstration; dotted "
-            "hatching marks windows the estimator flagged as not excited enough (no estimate)."
+            "The recorder's online sliding-window estimate for the first demonstration, drawn "
+            f"{latency:.3f} s earlier than it was recorded (the estimator's latency: window "
+            "centre plus band-pass delay), at the time it describes; dotted hatching marks "
+            "windows the estimator flagged as not excited enough (no estimate)."
             + ("" if truth_k is not None else " No ground truth was given for this store."),
-            plot_stiffness_estimate(demo.t, estimate, truth_k, excited, joints)))
+            plot_stiffness_estimate(demo.t, estimate, truth_k, excited, joints,
+                                    latency_s=latency)))
         summary.append(("estimate coverage",
                         f"{100 * excited.mean():.0f} % of samples excited enough"))
 

@@ -222,6 +222,29 @@ def _synthetic_demos(n_demos, sigma, seed):
     return mean[None] + sigma[None] * rng.normal(size=(n_demos, *sigma.shape))
 
 
+@pytest.mark.parametrize("k_before, k_after", [(10.0, 40.0), (40.0, 10.0)])
+def test_latency_is_the_mean_delay_of_a_stiffness_step(k_before, k_after):
+    # Mean delays of cascaded linear smoothers add (common practice): a trailing window lags by
+    # (window - 1) / 2 samples, a band-pass delays the dither's envelope by its group delay at
+    # the band centre. The estimate's step response (first moment) must lag by latency_s, to
+    # within 0.05 s (the ratio estimate is not exactly linear in the filtered signals).
+    rate = 1000.0
+    t = np.arange(0.0, 6.0, 1.0 / rate)
+    slow = 0.3 * np.sin(2 * np.pi * 0.2 * t)
+    q = slow + 2e-3 * np.sin(2 * np.pi * 8 * t) + 1.5e-3 * np.sin(2 * np.pi * 9.3 * t + 1)
+    step_at = 3.0
+    k = np.where(t < step_at, k_before, k_after)
+    estimator = SlidingStiffnessEstimator(1, window_s=0.5, rate_hz=rate,
+                                          noise_variance_ratio=62500.0, band_hz=(6.0, 11.2),
+                                          min_excitation_rad=2e-4)
+    estimate = estimator.update(q[:, None], (k * (slow - q))[:, None])[0][:, 0]
+    progress = (estimate - k_before) / (k_after - k_before)
+    after = (t >= step_at) & (t < step_at + 1.5)
+    mean_delay = np.sum(1.0 - progress[after]) / rate
+    assert abs(mean_delay - estimator.latency_s) < 0.05
+    assert 0.25 < estimator.latency_s < 0.45  # 0.25 s of window centre plus the band-pass
+
+
 def test_variability_stiffness_follows_inverse_variance():
     s = np.linspace(0, 1, 400)
     sigma = np.column_stack([0.01 + 0.05 * s, 0.03 + 0.025 * np.cos(2 * np.pi * s)])

@@ -8,6 +8,7 @@ import time
 import numpy as np
 import pytest
 
+from compliant_demo.estimation import SlidingStiffnessEstimator
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.ingest import (
     ChunkBuffer,
@@ -152,8 +153,9 @@ def test_motion_trigger_refuses_bad_settings(args, match: str) -> None:
 # -- Writer and session against a real store -------------------------------------------------
 
 
-def _session(path, *, source="reference", trigger=None, capacity=100_000, flush=0.05):
-    writer = ChunkWriter(lambda: DemoStore(path), None, flush_interval_s=flush)
+def _session(path, *, source="reference", trigger=None, capacity=100_000, flush=0.05,
+             make_estimator=None):
+    writer = ChunkWriter(lambda: DemoStore(path), make_estimator, flush_interval_s=flush)
     writer.start()
     request = DemonstrationRequest(
         skill="cork_seat",
@@ -341,3 +343,23 @@ def test_stop_with_a_wait_says_when_the_store_refused_the_samples(tmp_path) -> N
     assert level == "error" and summary.startswith("store write failed")
     assert values["store_write_errors"] == "1"
     assert session.shutdown()
+
+
+def test_estimated_stiffness_is_stored_with_the_estimators_latency(tmp_path) -> None:
+    path = tmp_path / "store.sqlite"
+
+    def make_estimator(n_joints: int) -> SlidingStiffnessEstimator:
+        return SlidingStiffnessEstimator(n_joints, window_s=0.1, rate_hz=RATE,
+                                         noise_variance_ratio=1.0, band_hz=(6.0, 11.2))
+
+    session = _session(path, source="estimate", make_estimator=make_estimator)
+    assert session.start()[0]
+    for i in range(300):
+        session.ingest(*_message(i))
+    assert session.stop()[0]
+    assert session.shutdown()
+    with DemoStore(path, read_only=True) as store:
+        (info,) = store.find_demonstrations(skill="cork_seat")
+        demo = store.load_demonstration(info.id)
+    assert demo.stiffness is not None and demo.stiffness.shape == (300, 2)
+    assert info.flags["stiffness_latency_s"] == make_estimator(2).latency_s

@@ -407,3 +407,44 @@ def test_default_time_base_is_capped_for_long_recordings(n_demos):
     assert skill.provenance.alignment["n_samples"] == DEFAULT_MAX_SAMPLES == 20_000
     explicit = learn_skill(demos, n_samples=21_000, **kwargs)
     assert explicit.provenance.alignment["n_samples"] == 21_000
+
+
+def _lagged_store_demos(store: DemoStore, lag_s: float, flag: dict | None) -> list:
+    """The invented demos stored with their stiffness recorded ``lag_s`` late, as a trailing
+    estimator would, and with the recorder's latency flag when ``flag`` is given."""
+    rng = np.random.default_rng(31)
+    loaded = []
+    for t, q, k in _demos(rng, 3):
+        late = np.column_stack([np.interp(t - lag_s, t, column) for column in k.T])
+        demo_id = _add(store, t, q, late, "operator_a")
+        if flag is not None:
+            store.update_flags(demo_id, flag)
+        loaded.append(store.load_demonstration(demo_id))
+    return loaded
+
+
+def test_recorded_stiffness_is_advanced_by_the_recorders_latency(store):
+    lag = 0.15
+    on_time = learn_skill(_demos(np.random.default_rng(31), 3), joints=JOINTS,
+                          alignment="resample", target_inertia=[1, 1])
+    flagged = learn_skill(_lagged_store_demos(store, lag, {"stiffness_latency_s": lag}),
+                          joints=JOINTS, alignment="resample", target_inertia=[1, 1])
+    unflagged = learn_skill(_lagged_store_demos(store, lag, None), joints=JOINTS,
+                            alignment="resample", target_inertia=[1, 1])
+    expected = on_time.rollout().stiffness
+    peak = np.argmax(expected, axis=0)
+    # With the flag the stiff press sits where it was applied (within 2 % of the profile; the
+    # last 0.15 s are held at the end value); without it the peak comes 0.15 s late.
+    np.testing.assert_allclose(flagged.rollout().stiffness, expected, rtol=0.02)
+    np.testing.assert_array_equal(np.argmax(flagged.rollout().stiffness, axis=0), peak)
+    late_peak = np.argmax(unflagged.rollout().stiffness, axis=0)
+    assert np.all(late_peak - peak > 50)  # more than 0.05 s late at the rollout's 1 ms step
+
+
+@pytest.mark.parametrize("value", [-0.1, float("nan"), "soon", True])
+def test_bad_stiffness_latency_flag(value):
+    rng = np.random.default_rng(32)
+    t, q, k = _demos(rng, 1)[0]
+    demo = {"t": t, "position": q, "stiffness": k, "stiffness_latency_s": value}
+    with pytest.raises(InvalidInputError, match=r"demos\[0\]\.stiffness_latency_s"):
+        learn_skill([demo], joints=JOINTS, alignment="none", target_inertia=[1, 1])
