@@ -33,6 +33,13 @@ CHROMIUM_FLAGS = (
     "--disable-sync",
     "--disable-default-apps",
     "--disable-extensions",
+    "--disable-domain-reliability",
+    "--disable-client-side-phishing-detection",
+    "--no-pings",
+    "--dns-prefetch-disable",
+    # Resolve no host name at all: the page is a local file, and nothing may leave loopback
+    # (Chromium still looks up its update servers despite the flags above).
+    "--host-resolver-rules=MAP * ~NOTFOUND",
     "--remote-debugging-pipe",
 )
 
