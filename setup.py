@@ -55,6 +55,7 @@ setup(
             "pandas>=2",
             "psutil>=5.9",
             "ruff>=0.5",
+            "mypy>=1.10",
         ],
     },
     zip_safe=True,

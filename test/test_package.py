@@ -84,3 +84,9 @@ def test_ruff_is_clean():
     result = subprocess.run([sys.executable, "-m", "ruff", "check", "compliant_demo", "test",
                              "bench"], cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stdout + result.stderr
+
+
+def test_mypy_is_clean():
+    result = subprocess.run([sys.executable, "-m", "mypy", "compliant_demo"], cwd=ROOT,
+                            capture_output=True, text=True, timeout=600)
+    assert result.returncode == 0, result.stdout + result.stderr
