@@ -8,13 +8,11 @@ from pathlib import Path
 from compliant_demo.cli._job_options import (
     add_progress_option,
     non_negative_int,
-    positive_float,
-    positive_int,
     show_progress,
 )
-from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
-from compliant_demo.cli.tour_cmds import default_domain
-from compliant_demo.tour import TourSettings, record_demonstrations, run_tag
+from compliant_demo.cli.common import add_json_option, add_store_option, emit_json
+from compliant_demo.cli.tour_cmds import add_recording_options, recording_settings
+from compliant_demo.tour import record_demonstrations, run_tag
 
 __all__ = ["register"]
 
@@ -37,11 +35,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         ),
     )
     add_store_option(parser)
-    parser.add_argument("--demos", type=positive_int, default=4, metavar="N",
-                        help="demonstrations to record, 2 to 50 (default: 4)")
-    parser.add_argument("--demo-duration", type=positive_float, default=None, metavar="S",
-                        help="nominal duration of each demonstration, 1 to 60 s (default: the "
-                             "scenario's 6 s)")
+    add_recording_options(parser)
     parser.add_argument("--seed", type=non_negative_int, default=1,
                         help="seed of the first demonstration; demonstration i uses seed + i "
                              "(default: 1)")
@@ -49,9 +43,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="operator name stored with each demonstration (default: operator_a)")
     parser.add_argument("--tag", default=None,
                         help="tag of the recorded demonstrations (default: record-<UTC>-<pid>)")
-    parser.add_argument("--domain-id", type=non_negative_int, default=None, metavar="ID",
-                        help="ROS_DOMAIN_ID of the node processes, 0 to 101 (default: "
-                             "$ROS_DOMAIN_ID or 17)")
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT, metavar="DIR",
                         help=f"truth file and node log (default: ./{DEFAULT_OUT})")
     add_progress_option(parser)
@@ -60,17 +51,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
-    store = store_path_of(args)
-    store.parent.mkdir(parents=True, exist_ok=True)
-    settings = TourSettings(
-        store=store,
-        out_dir=args.out,
-        n_demonstrations=args.demos,
-        demo_duration_s=args.demo_duration,
-        seed=args.seed,
-        operator=args.operator,
-        domain_id=default_domain() if args.domain_id is None else args.domain_id,
-    )
+    settings = recording_settings(args, operator=args.operator)
+    store = settings.store
     tag = args.tag or run_tag("record")
     demo_ids, truth = record_demonstrations(settings, tag, show_progress(args))
     if args.json:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import os
 from pathlib import Path
+from typing import Any
 
 from compliant_demo.cli._job_options import (
     add_backend_options,
@@ -19,7 +20,7 @@ from compliant_demo.cli.common import add_json_option, add_store_option, emit_js
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.tour import TourSettings, run_tour
 
-__all__ = ["register", "default_domain"]
+__all__ = ["register", "default_domain", "add_recording_options", "recording_settings"]
 
 DEFAULT_OUT = Path("compliant_demo_tour")
 _DEFAULT_DOMAIN = 17
@@ -29,6 +30,39 @@ def default_domain() -> int:
     """$ROS_DOMAIN_ID when it is set to a number, else 17."""
     text = os.environ.get("ROS_DOMAIN_ID", "")
     return int(text) if text.isdigit() else _DEFAULT_DOMAIN
+
+
+def add_recording_options(parser: argparse.ArgumentParser) -> None:
+    """``--demos``, ``--demo-duration`` and ``--domain-id``: what the simulated teacher records."""
+    parser.add_argument("--demos", type=positive_int, default=4, metavar="N",
+                        help="demonstrations to record, 2 to 50 (default: 4)")
+    parser.add_argument("--demo-duration", type=positive_float, default=None, metavar="S",
+                        help="nominal duration of each demonstration, 1 to 60 s (default: the "
+                             "scenario's 6 s)")
+    parser.add_argument("--domain-id", type=non_negative_int, default=None, metavar="ID",
+                        help=f"ROS_DOMAIN_ID of the node processes, 0 to 101 (default: "
+                             f"$ROS_DOMAIN_ID or {_DEFAULT_DOMAIN})")
+
+
+def recording_settings(args: argparse.Namespace, **extra: Any) -> TourSettings:
+    """Tour settings from the store, ``--out``, ``--seed`` and the recording options.
+
+    The store's folder is created; a store path that is a directory is refused. ``extra``
+    holds the further :class:`TourSettings` fields a subcommand sets.
+    """
+    store = store_path_of(args)
+    if store.exists() and store.is_dir():
+        raise InvalidInputError(f"--store {str(store)!r} is a directory")
+    store.parent.mkdir(parents=True, exist_ok=True)
+    return TourSettings(
+        store=store,
+        out_dir=args.out,
+        n_demonstrations=args.demos,
+        demo_duration_s=args.demo_duration,
+        seed=args.seed,
+        domain_id=default_domain() if args.domain_id is None else args.domain_id,
+        **extra,
+    )
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -49,18 +83,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     add_store_option(parser)
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT, metavar="DIR",
                         help=f"report, figures, truth file and node log (default: ./{DEFAULT_OUT})")
-    parser.add_argument("--demos", type=positive_int, default=4, metavar="N",
-                        help="demonstrations to record, 2 to 50 (default: 4)")
-    parser.add_argument("--demo-duration", type=positive_float, default=None, metavar="S",
-                        help="nominal duration of each demonstration, 1 to 60 s (default: the "
-                             "scenario's 6 s)")
+    add_recording_options(parser)
     parser.add_argument("--scenarios", type=positive_int, default=350, metavar="N",
                         help="perturbed scenarios in the campaign (default: 350, 50 per kind)")
     parser.add_argument("--seed", type=non_negative_int, default=1,
                         help="seed of the teacher and of the campaign (default: 1)")
-    parser.add_argument("--domain-id", type=non_negative_int, default=None, metavar="ID",
-                        help=f"ROS_DOMAIN_ID of the node processes, 0 to 101 (default: "
-                             f"$ROS_DOMAIN_ID or {_DEFAULT_DOMAIN})")
     add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "
                                           "bench arm on antagonistic spring pairs")
     add_backend_options(parser)
@@ -70,22 +97,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
-    store = store_path_of(args)
-    if store.exists() and store.is_dir():
-        raise InvalidInputError(f"--store {str(store)!r} is a directory")
-    store.parent.mkdir(parents=True, exist_ok=True)
-    settings = TourSettings(
-        store=store,
-        out_dir=args.out,
-        n_demonstrations=args.demos,
-        demo_duration_s=args.demo_duration,
-        n_scenarios=args.scenarios,
-        seed=args.seed,
-        domain_id=default_domain() if args.domain_id is None else args.domain_id,
-        workers=args.workers,
-        scheduler=args.scheduler,
-        plant=args.plant,
-    )
+    settings = recording_settings(args, n_scenarios=args.scenarios, workers=args.workers,
+                                  scheduler=args.scheduler, plant=args.plant)
     result = run_tour(settings, progress=show_progress(args))
     if args.json:
         emit_json(result.as_dict())
