@@ -17,16 +17,13 @@ import json
 import math
 import multiprocessing
 import os
-import sys
 import time
 from collections.abc import Callable, Generator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
-from tqdm import tqdm
 
-from compliant_demo.evaluation import outcome_metrics
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import (
     CampaignSpec,
@@ -36,9 +33,9 @@ from compliant_demo.perturbation import (
     Uniform,
     draw_scenarios,
 )
-from compliant_demo.primitives import Rollout, Skill
-from compliant_demo.runtime import ReplayPlant
-from compliant_demo.sim import simulate
+from compliant_demo.plant import ReplayPlant
+from compliant_demo.primitives import Skill
+from compliant_demo.replay import UNPERTURBED, ReplaySetup
 
 __all__ = [
     "TRACE_CHANNELS",
@@ -47,7 +44,6 @@ __all__ = [
     "ReplayCampaign",
     "CampaignSummary",
     "default_campaign_spec",
-    "perturbation_windows",
     "scenario_seed",
     "plan_batches",
     "run_batch",
@@ -102,39 +98,30 @@ class ReplayCampaign:
 
     Parameters
     ----------
-    skill : the learned skill
-    plant : target joints (matched to the skill's joints by name) and mechanism
+    setup : the replay every scenario runs (skill, plant, duration, settle time, ...)
     spec : distributions the perturbations are drawn from
     n_scenarios : number of perturbed scenarios
     seed : campaign seed; scenario i draws its schedule from ``scenario_seed(seed, i)``
-    duration_s : movement duration, s (None: the skill's demonstrated duration)
-    settle_s : time simulated after the movement, s
-    dt : integration step, s
     decimation : steps per recorded trace sample
-    method : integrator of :func:`compliant_demo.sim.simulate`
     stratify_kinds : scenario i gets kind ``sorted(spec.kinds)[i % n_kinds]``, so every kind has
         an equal share whatever the batch; False draws kinds by the spec's weights
     recovery_band : deviation from the unperturbed replay that counts as recovered, rad
 
     Notes
     -----
-    Each batch simulates its scenarios plus one unperturbed scenario in one vectorised call.
-    Deviation, recovery and peak deviation are measured against that unperturbed replay (so the
-    joint's own tracking lag under gravity is not blamed on the perturbation); goal error against
-    the rollout's goal. A scenario whose mechanism torque or angle leaves the joint's limits gets
-    status ``"violation"`` and the first violation as its reason.
+    Each batch simulates its scenarios plus one unperturbed scenario in one vectorised call of
+    :meth:`compliant_demo.replay.ReplaySetup.simulate`. Deviation, recovery and peak deviation are
+    measured against that unperturbed replay (so the joint's own tracking lag under gravity is
+    not blamed on the perturbation); goal error against the rollout's goal. A scenario whose
+    recorded samples leave a limit (:meth:`ReplaySetup.violation`) gets status ``"violation"``
+    and the first violation as its reason.
     """
 
-    skill: Skill
-    plant: ReplayPlant
+    setup: ReplaySetup
     spec: CampaignSpec
     n_scenarios: int
     seed: int = 0
-    duration_s: float | None = None
-    settle_s: float = 1.0
-    dt: float = 1e-3
     decimation: int = 10
-    method: str = "rk4"
     stratify_kinds: bool = True
     recovery_band: float = 0.02
 
@@ -143,26 +130,40 @@ class ReplayCampaign:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
         if self.decimation < 1:
             raise InvalidInputError(f"decimation = {self.decimation}: must be >= 1")
-        if not self.settle_s >= 0:
-            raise InvalidInputError(f"settle_s = {self.settle_s}: must be >= 0 s")
-        self.plant.for_joints(self.skill.joints)
+
+    @property
+    def skill(self) -> Skill:
+        """The replayed skill."""
+        return self.setup.skill
+
+    @property
+    def plant(self) -> ReplayPlant:
+        """The simulated target."""
+        return self.setup.plant
 
     def config(self) -> dict[str, Any]:
         """JSON-ready description stored with the campaign."""
-        return {
-            "skill": self.skill.name,
+        setup = self.setup
+        config: dict[str, Any] = {
+            "skill": setup.skill.name,
             "n_scenarios": self.n_scenarios,
             "seed": self.seed,
-            "duration_s": self.duration_s,
-            "settle_s": self.settle_s,
-            "dt": self.dt,
+            "duration_s": setup.duration_s,
+            "settle_s": setup.settle_s,
+            "dt": setup.dt,
             "decimation": self.decimation,
-            "method": self.method,
+            "method": setup.method,
             "stratify_kinds": self.stratify_kinds,
             "recovery_band": self.recovery_band,
             "spec": self.spec.model_dump(mode="json"),
-            "plant": self.plant.model_dump(mode="json"),
+            "plant": setup.plant.model_dump(mode="json"),
         }
+        # only when set, so campaigns stored before these settings existed still resume
+        if setup.goal is not None:
+            config["goal"] = list(setup.goal)
+        if math.isfinite(setup.max_stiffness_rate):
+            config["max_stiffness_rate"] = setup.max_stiffness_rate
+        return config
 
     @classmethod
     def from_config(cls, skill: Skill, config: Mapping[str, Any]) -> ReplayCampaign:
@@ -179,23 +180,21 @@ class ReplayCampaign:
         except ValueError as exc:
             raise InvalidInputError(
                 f"campaign config: {str(exc).splitlines()[0]}") from None
-        return cls(skill, plant, spec, **{key: config[key] for key in keys[:-2]})
+        goal = config.get("goal")
+        setup = ReplaySetup(
+            skill, plant, dt=config["dt"], duration_s=config["duration_s"],
+            settle_s=config["settle_s"], method=config["method"],
+            goal=None if goal is None else tuple(goal),
+            max_stiffness_rate=config.get("max_stiffness_rate", math.inf),
+        )
+        return cls(setup, spec, config["n_scenarios"], seed=config["seed"],
+                   decimation=config["decimation"], stratify_kinds=config["stratify_kinds"],
+                   recovery_band=config["recovery_band"])
 
     def unperturbed(self) -> tuple[np.ndarray, np.ndarray]:
         """Time (s) and angles ((n_rec, n_joints), rad) of the replay without perturbation."""
-        _, result = self.simulate_batch([PerturbationSchedule(name="unperturbed")], self.seed)
+        result = self.setup.simulate([UNPERTURBED], self.seed, decimation=self.decimation)
         return result.t, result.q[:, 0, :]
-
-    def rollout(self) -> Rollout:
-        """The commanded schedule every scenario replays (movement plus settling)."""
-        joints = self.plant.for_joints(self.skill.joints)
-        duration = self.skill.duration_s if self.duration_s is None else self.duration_s
-        return self.skill.rollout(
-            duration_s=duration,
-            dt=self.dt,
-            target_inertia=[joint.inertia for joint in joints],
-            horizon_s=duration + self.settle_s,
-        )
 
     def schedule(self, index: int) -> PerturbationSchedule:
         """The perturbation schedule of scenario ``index``; the same whatever the batching."""
@@ -206,63 +205,31 @@ class ReplayCampaign:
         (drawn,) = draw_scenarios(spec, 1, scenario_seed(self.seed, index))
         return drawn.model_copy(update={"name": f"{self.spec.name}_{index:05d}"})
 
-    def simulate_batch(
-        self, schedules: Sequence[PerturbationSchedule], seed: int
-    ) -> tuple[Rollout, Any]:
-        """Simulate ``schedules`` (one scenario each) under the rollout's commands."""
-        rollout = self.rollout()
-        n_steps = len(rollout.t) - 1
-        result = simulate(
-            self.plant.for_joints(self.skill.joints),
-            self.plant.mechanism,
-            rollout.position[:n_steps],
-            rollout.stiffness[:n_steps],
-            # The antagonistic springs have no damping input: send no damping command at all.
-            None if self.plant.mechanism.kind == "antagonistic" else rollout.damping[:n_steps],
-            schedules=list(schedules),
-            q0=rollout.position[0],
-            dt=self.dt,
-            method=self.method,
-            decimation=self.decimation,
-            seed=seed,
-        )
-        return rollout, result
-
     def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
         """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each."""
+        setup = self.setup
         schedules = [self.schedule(i) for i in indexes]
-        unperturbed = PerturbationSchedule(name="unperturbed")
-        rollout, result = self.simulate_batch(
-            [*schedules, unperturbed], scenario_seed(self.seed, batch_index)
-        )
-        joints = self.plant.for_joints(self.skill.joints)
+        result = setup.simulate([*schedules, UNPERTURBED], scenario_seed(self.seed, batch_index),
+                                decimation=self.decimation)
         nominal = result.q[:, -1, :]
         final_energy = result.energy.final()
+        # the command in force at recorded sample r (t = r * decimation * dt) is the one before
+        steps = np.arange(len(result.t)) * self.decimation - 1
         outcomes = []
         for column, (index, schedule) in enumerate(zip(indexes, schedules, strict=True)):
-            onsets, ends = perturbation_windows(schedule, float(result.t[-1]))
-            metrics = outcome_metrics(
-                result.t,
-                result.q[:, column, :],
-                nominal,
-                result.tau_external[:, column, :],
-                result.tau_mechanism[:, column, :],
-                rollout.position[-1],
-                perturbation_onsets=onsets,
-                perturbation_ends=ends,
-                energy={name: value[column] for name, value in final_energy.items()},
-                joints=joints,
+            q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
+            metrics = setup.metrics(
+                result.t, q, nominal, result.tau_external[:, column, :], tau_mechanism,
+                schedule, {name: value[column] for name, value in final_energy.items()},
                 recovery_band=self.recovery_band,
             )
-            metrics.update(_scalar_metrics(metrics))
-            reason = _first_violation(result.t, result.q[:, column, :],
-                                      result.tau_mechanism[:, column, :], joints)
+            reason = setup.violation(result.t, q, tau_mechanism, steps)
             trace = {"t": result.t.copy()}
             trace.update({name: getattr(result, name)[:, column, :].copy()
                           for name in TRACE_CHANNELS})
             outcomes.append(ScenarioOutcome(
                 index=index,
-                kind="+".join(schedule.kinds) or "none",
+                kind=schedule.kind_label,
                 status="ok" if reason is None else "violation",
                 reason=reason,
                 metrics=metrics,
@@ -270,40 +237,6 @@ class ReplayCampaign:
                 trace=trace,
             ))
         return outcomes
-
-
-def _scalar_metrics(metrics: Mapping[str, Any]) -> dict[str, float | None]:
-    """One number per metric for distributions: the worst joint, the slowest recovery (None
-    when a perturbation was not recovered from, or there was none)."""
-    recovery = metrics["recovery_time_s"]
-    return {
-        "peak_deviation_max_rad": float(max(metrics["peak_deviation_rad"])),
-        "peak_interaction_torque_max_Nm": float(max(metrics["peak_interaction_torque_Nm"])),
-        "recovery_time_max_s": (
-            None if not recovery or any(r is None for r in recovery) else float(max(recovery))
-        ),
-    }
-
-
-def _first_violation(
-    t: np.ndarray, q: np.ndarray, torque: np.ndarray, joints: Sequence[Any]
-) -> str | None:
-    """The first sample whose angle or mechanism torque leaves a joint's limits, described."""
-    lower = np.array([joint.lower_limit for joint in joints])
-    upper = np.array([joint.upper_limit for joint in joints])
-    limit = np.array([joint.torque_limit for joint in joints])
-    over_torque = np.abs(torque) > limit
-    out_of_range = (q < lower) | (q > upper)
-    bad = np.argwhere(over_torque | out_of_range)
-    if bad.size == 0:
-        return None
-    k, j = (int(i) for i in bad[0])
-    name, when = joints[j].name, f"at t = {t[k]:.3f} s"
-    if over_torque[k, j]:
-        return (f"torque limit: {name} mechanism torque {torque[k, j]:.3g} N*m beyond "
-                f"{limit[j]:.3g} N*m {when}")
-    return (f"joint range: {name} at {q[k, j]:.3g} rad outside [{lower[j]:.3g}, "
-            f"{upper[j]:.3g}] rad {when}")
 
 
 @dataclass(frozen=True)
@@ -378,18 +311,6 @@ def default_campaign_spec(n_joints: int = 2, movement_s: float = 6.0) -> Campaig
             "wall": {"position": Uniform(low=0.02, high=0.1), "relative": Fixed(value=1.0)},
         },
     )
-
-
-def perturbation_windows(
-    schedule: PerturbationSchedule, end_s: float
-) -> tuple[list[float], list[float]]:
-    """Sorted ``(onsets, ends)`` of a schedule's perturbations, s, ends clipped to ``end_s``."""
-    spans = sorted(
-        (p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s))
-        for p in schedule.perturbations
-        if p.onset_s <= end_s
-    )
-    return [a for a, _ in spans], [b for _, b in spans]
 
 
 def scenario_seed(campaign_seed: int, index: int) -> int:
@@ -510,7 +431,7 @@ def run_campaign(
     batch_size: int | None = None,
     workers: int | None = None,
     scheduler: str | None = None,
-    progress: bool = False,
+    on_start: Callable[[str, int], None] | None = None,
     on_batch: Callable[[list[ScenarioOutcome]], None] | None = None,
 ) -> CampaignSummary:
     """Run (or resume) a campaign and stream its results into ``store``.
@@ -527,7 +448,8 @@ def run_campaign(
     workers : local worker processes; None uses every core; 0 runs the batches in this process
     scheduler : address of a Dask scheduler (``tcp://host:port``); the batches run there
         instead of locally, through the same :func:`run_batch`
-    progress : show a progress bar on stderr
+    on_start : called once the campaign is created or found, before any batch runs, with its
+        id and the number of scenarios this call will run (for progress displays)
     on_batch : called with each batch's outcomes after they are stored
 
     Returns
@@ -570,27 +492,20 @@ def run_campaign(
         n_workers = min(n_workers, len(batches))
         results = _pool_results(job, batches, n_workers)
 
+    if on_start is not None:
+        on_start(campaign_id, to_run)
     n_run = n_violations = 0
-    with tqdm(
-        total=to_run,
-        desc="campaign",
-        unit="scenario",
-        file=sys.stderr,
-        disable=not progress,
-        leave=False,
-    ) as bar:
-        try:
-            for outcomes in results:
-                fresh = [o for o in outcomes if o.index not in completed]
-                _store_outcomes(store, skill_id, campaign_id, fresh)
-                completed.update(o.index for o in fresh)
-                n_run += len(fresh)
-                n_violations += sum(o.status != "ok" for o in fresh)
-                bar.update(len(fresh))
-                if on_batch is not None:
-                    on_batch(fresh)
-        finally:
-            results.close()
+    try:
+        for outcomes in results:
+            fresh = [o for o in outcomes if o.index not in completed]
+            _store_outcomes(store, skill_id, campaign_id, fresh)
+            completed.update(o.index for o in fresh)
+            n_run += len(fresh)
+            n_violations += sum(o.status != "ok" for o in fresh)
+            if on_batch is not None:
+                on_batch(fresh)
+    finally:
+        results.close()
     return CampaignSummary(
         campaign_id=campaign_id,
         n_scenarios=job.n_scenarios,

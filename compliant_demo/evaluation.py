@@ -25,7 +25,14 @@ from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, Join
 from compliant_demo.primitives import Rollout, _finite_array, _time_axis
 from compliant_demo.sim import GRAVITY
 
-__all__ = ["Stretch", "ScheduleReport", "check_schedule", "outcome_metrics"]
+__all__ = [
+    "Stretch",
+    "ScheduleReport",
+    "check_schedule",
+    "outcome_metrics",
+    "limit_excess",
+    "first_limit_violation",
+]
 
 FLAG_KINDS = (
     "under_damped", "energy_tank_empty", "stiffness_range", "stiffness_rate", "damping_range",
@@ -425,6 +432,85 @@ def outcome_metrics(
     return metrics
 
 
+def limit_excess(
+    position: NDArray[np.float64], torque: NDArray[np.float64], joints: Sequence[JointParams]
+) -> dict[str, NDArray[np.float64]]:
+    """How far each sample lies beyond a joint's limits (positive: beyond).
+
+    Parameters
+    ----------
+    position : (n_samples, n_joints) rad
+    torque : (n_samples, n_joints) N*m, the mechanism's torque on the link
+    joints : JointParams per column
+
+    Returns
+    -------
+    dict with ``"position"`` (distance outside [lower_limit, upper_limit], rad) and ``"torque"``
+    (|torque| - torque_limit, N*m), each (n_samples, n_joints).
+    """
+    lower = np.array([j.lower_limit for j in joints])
+    upper = np.array([j.upper_limit for j in joints])
+    limit = np.array([j.torque_limit for j in joints])
+    return {
+        "position": np.maximum(lower - position, position - upper),
+        "torque": np.abs(torque) - limit,
+    }
+
+
+def first_limit_violation(
+    t: ArrayLike,
+    position: ArrayLike,
+    torque: ArrayLike,
+    joints: Sequence[JointParams],
+    *,
+    stiffness_rate: ArrayLike | None = None,
+    max_stiffness_rate: float = float("inf"),
+) -> str | None:
+    """The first sample beyond a joint's torque limit or range, or whose commanded stiffness
+    changes faster than ``max_stiffness_rate``, described in one line; None when there is none.
+
+    Parameters
+    ----------
+    t : (n_samples,) s
+    position : (n_samples, n_joints) rad
+    torque : (n_samples, n_joints) N*m, the mechanism's torque on the link
+    joints : JointParams per column
+    stiffness_rate : (n_samples, n_joints) N*m/rad/s, |rate| of the stiffness command in force
+        at each sample, optional
+    max_stiffness_rate : N*m/rad/s
+
+    Notes
+    -----
+    Within the first offending sample the joints are taken in order, torque before range, and
+    the stiffness rate last: the order a controller checking one period at a time meets them.
+    """
+    times = np.asarray(t, dtype=float).reshape(-1)
+    q = np.asarray(position, dtype=float)
+    tau = np.asarray(torque, dtype=float)
+    excess = limit_excess(q, tau, joints)
+    bad = (excess["torque"] > 0) | (excess["position"] > 0)
+    rate = None
+    if stiffness_rate is not None and np.isfinite(max_stiffness_rate):
+        rate = np.asarray(stiffness_rate, dtype=float)
+        bad = bad | (rate > max_stiffness_rate)
+    rows = np.flatnonzero(bad.any(axis=1))
+    if rows.size == 0:
+        return None
+    k = int(rows[0])
+    when = f"at t = {times[k]:.3f} s"
+    for j, joint in enumerate(joints):
+        if excess["torque"][k, j] > 0:
+            return (f"torque limit: {joint.name} mechanism torque {tau[k, j]:.3g} N*m beyond "
+                    f"{joint.torque_limit:.3g} N*m {when}")
+        if excess["position"][k, j] > 0:
+            return (f"joint range: {joint.name} at {q[k, j]:.3g} rad outside "
+                    f"[{joint.lower_limit:.3g}, {joint.upper_limit:.3g}] rad {when}")
+    assert rate is not None
+    j = int(np.argmax(rate[k]))
+    return (f"stiffness rate: {joints[j].name} commanded at {rate[k, j]:.3g} N*m/rad/s beyond "
+            f"{max_stiffness_rate:.3g} {when}")
+
+
 def _limit_violations(
     t: NDArray[np.float64],
     position: NDArray[np.float64],
@@ -438,13 +524,6 @@ def _limit_violations(
     params = list(joints)
     if len(params) != n_joints:
         raise InvalidInputError(f"joints: {len(params)} JointParams for {n_joints} columns")
-    lower = np.array([j.lower_limit for j in params])
-    upper = np.array([j.upper_limit for j in params])
-    limit = np.array([j.torque_limit for j in params])
-    excess = {
-        "position": np.maximum(lower - position, position - upper),
-        "torque": np.abs(torque) - limit,
-    }
     dt = np.diff(t, prepend=t[0])[:, None]
     return {
         kind: {
@@ -452,5 +531,5 @@ def _limit_violations(
             "duration_s": ((value > 0) * dt).sum(axis=0).tolist(),
             "worst_excess": np.maximum(value.max(axis=0), 0.0).tolist(),
         }
-        for kind, value in excess.items()
+        for kind, value in limit_excess(position, torque, params).items()
     }

@@ -6,14 +6,17 @@ arrays, keeps the requested joints, warps the demonstrations onto one time axis 
 schedule from the recorded stiffness channel or derives it from the spread of the demonstrations
 (:func:`compliant_demo.estimation.stiffness_from_variability`), and fits a
 :class:`~compliant_demo.primitives.Skill` whose provenance records all of it. :func:`save_skill`
-and :func:`load_skill` keep skills, versioned, in the demonstration store.
+and :func:`load_skill` keep skills, versioned, in the demonstration store, and
+:func:`learn_from_store` does it all for the demonstrations a :class:`LearnRequest` selects.
 """
 
 from __future__ import annotations
 
+import hashlib
 import math
+import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any, Literal, Protocol
 
 import numpy as np
@@ -22,7 +25,7 @@ from numpy.typing import ArrayLike, NDArray
 from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
 from compliant_demo.estimation import stiffness_from_variability
-from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.models import model_from_mapping
 from compliant_demo.primitives import (
     DampingPolicy,
@@ -34,8 +37,23 @@ from compliant_demo.primitives import (
     _time_axis,
     fit_skill,
 )
+from compliant_demo.store.records import SkillRecord
 
-__all__ = ["DEFAULT_MAX_SAMPLES", "learn_skill", "save_skill", "load_skill"]
+__all__ = [
+    "DEFAULT_MAX_SAMPLES",
+    "StiffnessSource",
+    "learn_skill",
+    "save_skill",
+    "StoredSkill",
+    "skill_from_record",
+    "load_skill",
+    "load_skill_by_id",
+    "LearnRequest",
+    "LearnOutcome",
+    "matching_demonstrations",
+    "duplicate_demonstrations",
+    "learn_from_store",
+]
 
 StiffnessSource = Literal["auto", "recorded", "variability"]
 AlignmentMethod = Literal["dtw", "resample", "none"]
@@ -51,7 +69,9 @@ class _SkillStore(Protocol):
     def save_skill(self, name: str, payload: Mapping[str, Any], *,
                    demonstration_ids: Sequence[str], parameters: Mapping[str, Any]) -> Any: ...
 
-    def load_skill(self, name: str, version: int | None = None) -> Any: ...
+    def load_skill_record(self, name: str, version: int | None = None) -> SkillRecord: ...
+
+    def get_skill_record(self, skill_id: str) -> SkillRecord: ...
 
 
 @dataclass(frozen=True)
@@ -375,8 +395,178 @@ def save_skill(
     )
 
 
-def load_skill(store: _SkillStore, name: str, version: int | None = None) -> Skill:
-    """Load skill ``name`` at ``version`` (latest when omitted) from the store."""
-    record = store.load_skill(name, version)
+@dataclass(frozen=True)
+class StoredSkill:
+    """A skill version as the store keeps it (``record``: id, version, provenance) and as it
+    replays (``skill``)."""
+
+    record: SkillRecord
+    skill: Skill
+
+
+def skill_from_record(record: SkillRecord) -> Skill:
+    """The skill of a stored record; InvalidInputError when this version cannot read it."""
     return model_from_mapping(Skill, record.payload,
-                              source=f"skill {name!r} version {record.version}")
+                              source=f"skill {record.name!r} version {record.version}")
+
+
+def load_skill(store: _SkillStore, name: str, version: int | None = None) -> StoredSkill:
+    """Skill ``name`` at ``version`` (latest when omitted) from the store: the one loader that
+    every command, node and report uses."""
+    return _stored(store.load_skill_record(name, version))
+
+
+def load_skill_by_id(store: _SkillStore, skill_id: str) -> StoredSkill:
+    """The skill version with id ``skill_id`` from the store."""
+    return _stored(store.get_skill_record(skill_id))
+
+
+def _stored(record: SkillRecord) -> StoredSkill:
+    return StoredSkill(record=record, skill=skill_from_record(record))
+
+
+@dataclass(frozen=True)
+class LearnRequest:
+    """Which demonstrations to learn from and how.
+
+    skill : skill name to select and to save under; tags : every one must be present;
+    operator : exact match ("" = any); joints : joints to learn, in order; min_demonstrations : the
+    least number of matching complete demonstrations; options : keyword arguments of
+    :func:`learn_skill` (n_basis, alignment, stiffness_source, ...).
+    """
+
+    skill: str
+    joints: tuple[str, ...]
+    tags: tuple[str, ...] = ()
+    operator: str = ""
+    min_demonstrations: int = 2
+    options: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        if not self.skill:
+            raise InvalidInputError("skill: must not be empty")
+        if not self.joints:
+            raise InvalidInputError("joints: need at least one joint name, got []")
+        if self.min_demonstrations < 1:
+            raise InvalidInputError(
+                f"min_demonstrations: must be at least 1, got {self.min_demonstrations}"
+            )
+
+
+@dataclass(frozen=True)
+class LearnOutcome:
+    """A saved skill version, the skill itself (no need to load it back), the demonstrations it
+    was learned from and its fit report (one line per joint, then what it was learned from)."""
+
+    stored: StoredSkill
+    demonstration_ids: tuple[str, ...]
+    duplicates: tuple[tuple[str, ...], ...]
+    report: str
+
+    @property
+    def skill_id(self) -> str:
+        """Id of the saved skill version."""
+        return str(self.stored.record.id)
+
+    @property
+    def name(self) -> str:
+        """Skill name."""
+        return str(self.stored.record.name)
+
+    @property
+    def version(self) -> int:
+        """Version number of the saved skill."""
+        return int(self.stored.record.version)
+
+
+def matching_demonstrations(store: Any, request: LearnRequest) -> list[Any]:
+    """Metadata of the complete demonstrations the request selects, oldest first."""
+    return list(
+        store.find_demonstrations(
+            skill=request.skill,
+            tag=list(request.tags) or None,
+            operator=request.operator or None,
+            status="complete",
+        )
+    )
+
+
+def duplicate_demonstrations(demos: Sequence[Any]) -> list[tuple[str, ...]]:
+    """Groups of demonstration ids whose times and angles are identical bit for bit (the same
+    motion recorded or imported twice), each group in input order."""
+    groups: dict[bytes, list[str]] = {}
+    for demo in demos:
+        digest = hashlib.blake2b(digest_size=16)
+        for array in (demo.t, demo.position):
+            contiguous = np.ascontiguousarray(array, dtype=float)
+            digest.update(str(contiguous.shape).encode())
+            digest.update(contiguous.tobytes())
+        groups.setdefault(digest.digest(), []).append(str(demo.id))
+    return [tuple(ids) for ids in groups.values() if len(ids) > 1]
+
+
+def learn_from_store(store: Any, request: LearnRequest) -> LearnOutcome:
+    """Learn ``request.skill`` from the matching demonstrations and save a new version.
+
+    Warns (``UserWarning``) when demonstrations hold identical samples: learning from copies
+    weighs that motion more and understates the spread the stiffness may be derived from.
+
+    Raises
+    ------
+    NotFoundError
+        Fewer than ``request.min_demonstrations`` complete demonstrations match.
+    InvalidInputError
+        The learner refuses the demonstrations or options (message from the learner).
+    """
+    infos = matching_demonstrations(store, request)
+    if len(infos) < request.min_demonstrations:
+        raise NotFoundError(
+            f"{len(infos)} complete demonstration(s) match {_describe(request)}; "
+            f"need at least {request.min_demonstrations}"
+        )
+    demos = [store.load_demonstration(info.id, joints=list(request.joints)) for info in infos]
+    duplicates = duplicate_demonstrations(demos)
+    for group in duplicates:
+        warnings.warn(
+            f"demonstrations {', '.join(group)} hold identical samples; learning from copies "
+            "weighs that motion more than the others",
+            stacklevel=2,
+        )
+    skill = learn_skill(demos, joints=list(request.joints), name=request.skill, **request.options)
+    record = save_skill(store, skill)
+    ids = tuple(info.id for info in infos)
+    operators = sorted({info.operator for info in infos})
+    return LearnOutcome(
+        stored=StoredSkill(record=record, skill=skill),
+        demonstration_ids=ids,
+        duplicates=tuple(duplicates),
+        report=_report(skill, record.version, ids, operators),
+    )
+
+
+def _describe(request: LearnRequest) -> str:
+    parts = [f"skill={request.skill!r}"]
+    if request.tags:
+        parts.append(f"tags={list(request.tags)}")
+    if request.operator:
+        parts.append(f"operator={request.operator!r}")
+    return ", ".join(parts)
+
+
+def _report(skill: Skill, version: int, ids: Sequence[str], operators: Sequence[str]) -> str:
+    provenance = skill.provenance
+    lines = [
+        f"skill {skill.name!r} version {version} from {len(ids)} demonstration(s), "
+        f"{skill.n_basis} basis functions, stiffness {provenance.stiffness_source}"
+    ]
+    stiffness_rmse: Sequence[float | None] = provenance.stiffness_fit_rmse or [None] * len(
+        skill.joints
+    )
+    for joint, rmse, k_rmse in zip(
+        skill.joints, provenance.fit_rmse, stiffness_rmse, strict=True
+    ):
+        k_text = "-" if k_rmse is None else f"{k_rmse:.3g} N*m/rad"
+        lines.append(f"  {joint}: position RMSE {rmse:.3g} rad, stiffness RMSE {k_text}")
+    lines.append(f"  operators: {', '.join(repr(o) for o in operators) or '-'}")
+    lines.append(f"  demonstrations: {', '.join(ids)}")
+    return "\n".join(lines)

@@ -7,7 +7,7 @@ from YAML through :func:`load_yaml_model` (safe loading only).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Literal, TypeVar
+from typing import Annotated, ClassVar, Literal, TypeVar
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
@@ -82,6 +82,8 @@ class IdealImpedanceParams(_Record):
     """Ideal variable impedance: stiffness and damping follow commands via lag and rate limit."""
 
     kind: Literal["ideal"] = "ideal"
+    #: A damping command means something to this mechanism.
+    has_damping_input: ClassVar[bool] = True
     stiffness_min: PositiveFloat = Field(1.0, description="Lowest realisable stiffness, N*m/rad.")
     stiffness_max: PositiveFloat = Field(
         200.0, description="Highest realisable stiffness, N*m/rad."
@@ -125,6 +127,8 @@ class AntagonisticParams(_Record):
     """
 
     kind: Literal["antagonistic"] = "antagonistic"
+    #: Two springs set stiffness and equilibrium only: a damping command has nothing to act on.
+    has_damping_input: ClassVar[bool] = False
     k1: PositiveFloat = Field(10.0, description="Linear spring coefficient, N*m/rad.")
     k2: PositiveFloat = Field(
         100.0,

@@ -185,6 +185,21 @@ class PerturbationSchedule(BaseModel):
         """Kinds in order of appearance."""
         return [p.kind for p in self.perturbations]
 
+    @property
+    def kind_label(self) -> str:
+        """The kinds joined by "+" (``"wall+impulse"``), or ``"none"`` for an empty schedule."""
+        return "+".join(self.kinds) or "none"
+
+    def windows(self, end_s: float) -> tuple[list[float], list[float]]:
+        """Sorted ``(onsets, ends)`` of the perturbations that start by ``end_s``, s; ends are
+        clipped to ``end_s`` (an impulse's window is its onset)."""
+        spans = sorted(
+            (p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s))
+            for p in self.perturbations
+            if p.onset_s <= end_s
+        )
+        return [a for a, _ in spans], [b for _, b in spans]
+
 
 def _check_kind(data: object, where: str) -> type[_Kind]:
     if not isinstance(data, Mapping):

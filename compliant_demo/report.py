@@ -29,8 +29,9 @@ from compliant_demo.campaign import ReplayCampaign
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
 from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, check_schedule
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.primitives import Skill
-from compliant_demo.runtime import ReplayPlant, load_plant
+from compliant_demo.learning import load_skill
+from compliant_demo.plant import ReplayPlant, load_plant
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore, ReplayResultInfo
 
 __all__ = [
@@ -610,8 +611,8 @@ def collect_report_content(
     -------
     ReportContent
     """
-    record = store.load_skill(skill_name, version)
-    skill = Skill.model_validate(record.payload)
+    stored = load_skill(store, skill_name, version)
+    record, skill = stored.record, stored.skill
     joints = list(skill.joints)
     if campaign_id is None:
         campaign_id = _latest_campaign(store, record.id)
@@ -621,7 +622,7 @@ def collect_report_content(
                                 f"than {skill_name!r} v{record.version}")
     job = ReplayCampaign.from_config(skill, campaign.config) if campaign else None
     if plant is None:
-        plant = job.plant if job is not None else load_plant(None)
+        plant = job.plant if job is not None else load_plant()
 
     figures = []
     demos = [store.load_demonstration(i, joints=joints) for i in record.demonstration_ids]
@@ -629,7 +630,7 @@ def collect_report_content(
         ("skill", f"{skill.name} version {record.version} ({record.id})"),
         ("demonstrations", str(len(demos))),
         ("joints", ", ".join(joints)),
-        ("mechanism", plant.mechanism.kind),
+        ("plant", plant.describe()),
     ]
     if len(demos) >= 2:
         aligned = align_demonstrations([(d.t, d.position) for d in demos], band=0.1)
@@ -663,8 +664,7 @@ def collect_report_content(
                         f"{100 * excited.mean():.0f} % of samples excited enough"))
 
     target = plant.for_joints(joints)
-    rollout = (job.rollout() if job else skill.rollout(
-        dt=1e-3, target_inertia=[j.inertia for j in target]))
+    rollout = (job.setup if job else ReplaySetup(skill, plant)).rollout
     checks = check_schedule(rollout, target, plant.mechanism, min_damping_ratio=min_damping_ratio)
     figures.append(ReportFigure(
         "schedule_checks", "Learned stiffness and damping ratio along the skill",

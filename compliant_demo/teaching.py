@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Literal
 
 import numba
@@ -33,6 +34,7 @@ __all__ = [
     "teaching_series",
     "TeachingStream",
     "windowed_truth",
+    "TeachingSession",
 ]
 
 
@@ -528,3 +530,98 @@ def windowed_truth(truth: object, window: int) -> tuple[np.ndarray, np.ndarray]:
     mean[window - 1 :] = views.mean(axis=-1)
     variation[window - 1 :] = views.max(axis=-1) / views.min(axis=-1) - 1.0
     return mean, variation
+
+
+class TeachingSession:
+    """A series of simulated demonstrations, handed out sample by sample as time passes.
+
+    Parameters
+    ----------
+    scenario : TeachingScenario
+    n_demonstrations : int
+    seed : int
+        Demonstration i is ``simulate_teaching(scenario, seed + i)`` (as ``teaching_series``).
+    """
+
+    def __init__(self, scenario: TeachingScenario, n_demonstrations: int, seed: int):
+        if n_demonstrations < 1:
+            raise InvalidInputError(
+                f"n_demonstrations: must be at least 1, got {n_demonstrations}"
+            )
+        self.scenario = scenario
+        self.n_demonstrations = int(n_demonstrations)
+        self.seed = int(seed)
+        self.published_counts: list[int] = []
+        self._truth: list[tuple[np.ndarray, np.ndarray]] = []
+        self._record: TeachingRecord | None = None
+        self._cursor = 0
+
+    def next_demonstration(self) -> int:
+        """Simulate the next demonstration and make it current; returns its index."""
+        index = len(self.published_counts)
+        if index >= self.n_demonstrations:
+            raise InvalidInputError(f"all {self.n_demonstrations} demonstrations were handed out")
+        self._record = simulate_teaching(self.scenario, self.seed + index)
+        self._cursor = 0
+        self.published_counts.append(0)
+        return index
+
+    @property
+    def current_samples(self) -> int:
+        """Samples in the current demonstration."""
+        return 0 if self._record is None else self._record.n_samples
+
+    @property
+    def current_published(self) -> int:
+        """Samples of the current demonstration handed out so far."""
+        return self._cursor
+
+    @property
+    def current_finished(self) -> bool:
+        """True once every sample of the current demonstration was handed out."""
+        return self._record is not None and self._cursor >= self._record.n_samples
+
+    @property
+    def all_finished(self) -> bool:
+        """True once the last demonstration was handed out completely."""
+        return len(self.published_counts) == self.n_demonstrations and self.current_finished
+
+    def due(self, elapsed_s: float) -> Iterator[tuple[float, list, list, list, list]]:
+        """Samples with ``t <= elapsed_s`` not handed out yet, in time order.
+
+        Yields
+        ------
+        (t, position, velocity, torque, hand_stiffness_truth) : t in s, then per-joint lists
+        in rad, rad/s, N*m and N*m/rad.
+        """
+        record = self._record
+        if record is None:
+            return
+        start = self._cursor
+        stop = int(np.searchsorted(record.t, elapsed_s, side="right"))
+        if stop <= start:
+            return
+        self._cursor = stop
+        self.published_counts[-1] = stop
+        if stop == record.n_samples:
+            self._truth.append((record.t, record.hand_stiffness_truth))
+        yield from zip(
+            record.t[start:stop].tolist(),
+            record.position[start:stop].tolist(),
+            record.velocity[start:stop].tolist(),
+            record.torque[start:stop].tolist(),
+            record.hand_stiffness_truth[start:stop].tolist(),
+            strict=True,
+        )
+
+    def save_truth(self, path: Path) -> None:
+        """Write per-demonstration ``count_<i>``, ``seed_<i>``, ``t_<i>`` (s) and
+        ``stiffness_<i>`` ((n, n_joints) N*m/rad ground truth) to an .npz file."""
+        arrays: dict[str, np.ndarray] = {}
+        for index, count in enumerate(self.published_counts):
+            arrays[f"count_{index}"] = np.array(count)
+            arrays[f"seed_{index}"] = np.array(self.seed + index)
+            if index < len(self._truth):
+                arrays[f"t_{index}"], arrays[f"stiffness_{index}"] = self._truth[index]
+        arrays["joints"] = np.array(self.scenario.joint_names)
+        np.savez(path, **arrays)  # type: ignore[arg-type]

@@ -23,6 +23,7 @@ from typing import Any
 
 from tqdm import tqdm
 
+from compliant_demo.app.progress import campaign_progress
 from compliant_demo.campaign import (
     CampaignSummary,
     ReplayCampaign,
@@ -31,9 +32,11 @@ from compliant_demo.campaign import (
 )
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.launch_file import read_launch_file, start_nodes
-from compliant_demo.learning import load_skill
+from compliant_demo.learning import LearnRequest, learn_from_store
+from compliant_demo.plant import load_plant
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.report import GroundTruth, collect_report_content, write_report
-from compliant_demo.runtime import LearnRequest, learn_from_store, load_plant
+from compliant_demo.resources import package_launch_file
 from compliant_demo.store import DemoStore
 
 __all__ = [
@@ -41,13 +44,10 @@ __all__ = [
     "TourResult",
     "TourError",
     "run_tour",
-    "package_file",
-    "package_launch_file",
     "node_environment",
 ]
 
 SKILL = "cork_seat"
-DEFAULT_PLANT = "joint_cork_seat_antagonistic.yaml"
 _STOP_GRACE_S = 10.0
 
 
@@ -153,26 +153,6 @@ class TourResult:
             "summary": dict(self.summary),
             "timings_s": self.timings_s,
         }
-
-
-def package_file(folder: str, name: str) -> Path:
-    """A file of the package's ``launch/`` or ``config/``: in the source tree or installed under
-    ``share/compliant_demo``."""
-    candidates = [
-        Path(__file__).resolve().parent.parent / folder / name,
-        Path(sys.prefix) / "share" / "compliant_demo" / folder / name,
-    ]
-    for candidate in candidates:
-        if candidate.is_file():
-            return candidate
-    raise InvalidInputError(
-        f"{folder} file {name!r} not found (looked in {[str(c.parent) for c in candidates]})"
-    )
-
-
-def package_launch_file(name: str) -> Path:
-    """A launch file of the package (see :func:`package_file`)."""
-    return package_file("launch", name)
 
 
 def node_environment(domain_id: int) -> dict[str, str]:
@@ -316,7 +296,7 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     started = time.perf_counter()
     if settings.plant is not None and not Path(settings.plant).is_file():
         raise InvalidInputError(f"plant = {str(settings.plant)!r}: no such file")
-    plant = load_plant(settings.plant or package_file("config", DEFAULT_PLANT))
+    plant = load_plant(settings.plant)
     tag = run_tag()
     demo_ids, truth_path = _timed(timings, "record", lambda: record_demonstrations(
         settings, tag, progress))
@@ -335,14 +315,20 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
                       disable=not progress, leave=False) as bar:
                 outcome = learn_from_store(store, request)
                 bar.update(1)
-            return load_skill(store, SKILL, outcome.version), store.get_skill(outcome.skill_id)
+            return outcome.stored.skill, outcome.stored.record
 
         skill, record = _timed(timings, "learn", learn)
-        job = ReplayCampaign(skill, plant, default_campaign_spec(len(joints), skill.duration_s),
+        job = ReplayCampaign(ReplaySetup(skill, plant),
+                             default_campaign_spec(len(joints), skill.duration_s),
                              settings.n_scenarios, seed=settings.seed)
-        campaign = _timed(timings, "campaign", lambda: run_campaign(
-            store, job, skill_id=record.id, workers=settings.workers,
-            scheduler=settings.scheduler, progress=progress))
+
+        def campaign_run():
+            with campaign_progress(progress) as bars:
+                return run_campaign(store, job, skill_id=record.id, workers=settings.workers,
+                                    scheduler=settings.scheduler, on_start=bars.on_start,
+                                    on_batch=bars.on_batch)
+
+        campaign = _timed(timings, "campaign", campaign_run)
 
         def report():
             with tqdm(total=2, desc="report", unit="step", file=sys.stderr,

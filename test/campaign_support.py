@@ -10,8 +10,9 @@ import numpy as np
 
 from compliant_demo.campaign import ReplayCampaign, default_campaign_spec
 from compliant_demo.learning import learn_skill, save_skill
+from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import Skill, fit_skill
-from compliant_demo.runtime import ReplayPlant, load_plant
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import cork_seat_scenario, teaching_series
 
@@ -38,16 +39,23 @@ def cork_seat_skill() -> Skill:
 
 
 def plant() -> ReplayPlant:
-    """The cork_seat bench arm with the ideal variable-impedance mechanism."""
-    return load_plant(None)
+    """The teaching scenario's cork_seat joints with the ideal variable-impedance mechanism (its
+    default settings): a mechanism with a damping input, unlike the package's default plant."""
+    return ReplayPlant(joints=cork_seat_scenario().joints)
 
 
-def campaign_job(n_scenarios: int = 14, seed: int = 5, **changes) -> ReplayCampaign:
+def campaign_job(
+    n_scenarios: int = 14, seed: int = 5, target: ReplayPlant | None = None, **changes
+) -> ReplayCampaign:
     """A short campaign of the cork_seat skill over every perturbation kind: the movement is
-    played in 1.5 s so the tests stay fast."""
+    played in 1.5 s so the tests stay fast. ``target`` defaults to :func:`plant`."""
     spec = default_campaign_spec(movement_s=1.5)
-    settings = {"duration_s": 1.5, "settle_s": 0.3, "seed": seed, **changes}
-    return ReplayCampaign(cork_seat_skill(), plant(), spec, n_scenarios, **settings)
+    setup_keys = ("duration_s", "settle_s", "dt", "method", "goal", "max_stiffness_rate")
+    setup_settings = {"duration_s": 1.5, "settle_s": 0.3,
+                      **{k: v for k, v in changes.items() if k in setup_keys}}
+    job_settings = {"seed": seed, **{k: v for k, v in changes.items() if k not in setup_keys}}
+    setup = ReplaySetup(cork_seat_skill(), target or plant(), **setup_settings)
+    return ReplayCampaign(setup, spec, n_scenarios, **job_settings)
 
 
 def store_with_demos_and_skill(path: Path, *, with_skill: bool = True) -> str | None:

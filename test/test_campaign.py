@@ -31,6 +31,8 @@ from compliant_demo.campaign import (
 )
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.perturbation import PERTURBATION_KINDS, CampaignSpec, Fixed, Impulse
+from compliant_demo.plant import load_plant
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -79,7 +81,7 @@ def test_bad_job_settings_are_refused():
         campaign_job(n_scenarios=0)
     with pytest.raises(InvalidInputError, match=r"decimation = 0: must be >= 1"):
         campaign_job(decimation=0)
-    with pytest.raises(InvalidInputError, match=r"settle_s = -1.0: must be >= 0 s"):
+    with pytest.raises(InvalidInputError, match=r"settle_s: must be non-negative, got -1.0"):
         campaign_job(settle_s=-1.0)
 
 
@@ -93,7 +95,8 @@ def test_impulse_peak_deviation_matches_the_damped_oscillator(tmp_path):
     spec = CampaignSpec(name="one_impulse", kinds={"impulse": 1.0}, joints=[1],
                         onset_s=Fixed(value=1.0), magnitude={"impulse": Fixed(value=impulse)},
                         positive_sign_probability=1.0)
-    job = ReplayCampaign(skill, target, spec, n_scenarios=1, seed=1, settle_s=0.5, decimation=1)
+    job = ReplayCampaign(ReplaySetup(skill, target, settle_s=0.5), spec, n_scenarios=1, seed=1,
+                         decimation=1)
     (outcome,) = run_batch(job, 0, (0,))
     elbow = target.for_joints(JOINTS)[1]
     inertia = elbow.inertia
@@ -220,8 +223,9 @@ def test_an_interrupted_campaign_command_keeps_what_it_stored_and_resumes_to_the
         resumed = run_campaign(store, ReplayCampaign.from_config(
             cork_seat_skill(), store.get_campaign(campaign_id).config), skill_id=skill_id,
             campaign_id=campaign_id, workers=0)
-        reference = run_campaign(store, campaign_job(n_scenarios=16, seed=9), skill_id=skill_id,
-                                 batch_size=8, workers=0)
+        # the command replays on the package's default plant
+        reference = run_campaign(store, campaign_job(n_scenarios=16, seed=9, target=load_plant()),
+                                 skill_id=skill_id, batch_size=8, workers=0)
         assert (resumed.n_run, resumed.n_skipped) == (16 - len(kept), len(kept))
         assert _by_index(store, campaign_id) == _by_index(store, reference.campaign_id)
 

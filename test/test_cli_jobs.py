@@ -41,7 +41,7 @@ def store(tmp_path):
     ("command", "needles"),
     [
         ("learn", ["N*m/rad", "kg*m^2", "default: 30", "default: cork_seat"]),
-        ("replay", ["N*m/rad/s", "default: 0.5", "rad", "Exits 0"]),
+        ("replay", ["N*m/rad/s", "default: 1", "rad", "Exits 0"]),
         ("campaign", ["N*m*s", "default: 350", "default: every core", "--resume"]),
         ("report", ["N*m/rad", "default: ./compliant_demo_report", "self-contained"]),
         ("tour", ["loopback", "default: 4", "ROS_DOMAIN_ID", "default: 350"]),
@@ -66,7 +66,7 @@ def test_learn_saves_a_new_version_and_reports_fit_errors(tmp_path, capsys):
     assert (data["skill"], data["version"], len(data["demonstration_ids"])) == ("cork_seat", 1, 3)
     assert "shoulder: position RMSE" in data["report"]
     with DemoStore(path, read_only=True) as store:
-        assert store.load_skill("cork_seat").id == data["skill_id"]
+        assert store.load_skill_record("cork_seat").id == data["skill_id"]
     status, out, _ = _run(capsys, "learn", "--store", path)
     assert status == 0 and "saved as cork_seat version 2" in out
 
@@ -136,7 +136,8 @@ def test_replay_stopped_by_a_limit_exits_non_zero(store, tmp_path, capsys):
         capsys, "replay", "--store", store, "--plant", plant, "--quiet", *_SHORT
     )
     assert status == 1, err
-    assert "replay of cork_seat version 1: stopped (torque limit: shoulder" in out
+    assert "replay of cork_seat version 1 on the ideal mechanism on joints shoulder, elbow: " \
+           "stopped (torque limit: shoulder" in out
 
 
 def test_replay_with_a_missing_schedule_file_is_a_one_line_error(store, tmp_path, capsys):
@@ -169,9 +170,11 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
     assert status == 0, err
     data = json.loads(out)
     assert (data["run"], data["skipped"], data["backend"]) == (14, 0, "inline")
-    assert data["per_kind"] == {
-        kind: {"scenarios": 2, "violations": 0} for kind in sorted(PERTURBATION_KINDS)
+    assert {kind: c["scenarios"] for kind, c in data["per_kind"].items()} == {
+        kind: 2 for kind in sorted(PERTURBATION_KINDS)
     }
+    assert data["violations"] == sum(c["violations"] for c in data["per_kind"].values())
+    assert data["plant"] == "antagonistic mechanism on joints shoulder, elbow"  # the default
     status, out, err = _run(
         capsys, "campaign", "--store", store, "--resume", data["campaign_id"], "--json"
     )
@@ -191,7 +194,7 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
         "replay_traces.png",
         "campaign_metrics.png",
     ]
-    assert report["summary"]["within limits"] == "14 of 14"
+    assert report["summary"]["within limits"] == f"{14 - data['violations']} of 14"
     assert data["campaign_id"] in report["summary"]["campaign"]
 
 

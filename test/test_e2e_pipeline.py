@@ -13,11 +13,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env, simulate_rollout
+from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env
 
 from compliant_demo.learning import load_skill
 from compliant_demo.perturbation import load_schedule_yaml
-from compliant_demo.runtime import load_plant
+from compliant_demo.plant import load_plant
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import windowed_truth
 
@@ -103,7 +104,7 @@ def test_learner_saves_a_skill_from_the_recorded_demonstrations(learned) -> None
     output = result.stdout + result.stderr
     assert "skill 'cork_seat' version 1 from 2 demonstration(s)" in output
     with DemoStore(store, read_only=True) as db:
-        record = db.load_skill("cork_seat")
+        record = db.load_skill_record("cork_seat")
         demo_ids = {info.id for info in db.find_demonstrations(status="complete")}
     assert record.version == 1 and set(record.demonstration_ids) == demo_ids
 
@@ -146,8 +147,8 @@ def test_replay_with_a_schedule_stores_metrics_and_matches_core_simulation(
     with launched("replay.launch.xml", arguments, DOMAIN_ID, tmp_path) as nodes:
         assert nodes.wait("replay", 120.0) == 0, nodes.all_logs()
     with DemoStore(store, read_only=True) as db:
-        record = db.load_skill("cork_seat")
-        skill = load_skill(db, "cork_seat")
+        record = db.load_skill_record("cork_seat")
+        skill = load_skill(db, "cork_seat").skill
         (info,) = db.find_replay_results(skill_id=record.id)
         result = db.load_replay_result(info.id)
     assert info.status == "ok" and info.reason is None
@@ -164,17 +165,13 @@ def test_replay_with_a_schedule_stores_metrics_and_matches_core_simulation(
     assert len(metrics["recovery_time_s"]) == 2  # one per scheduled perturbation
     assert metrics["n_limit_violations"] == 0
     assert isinstance(metrics["energy_injected_J"], float)
-    # The same skill through the core simulation directly, same seed and schedule.
+    # The same skill through the replay engine's batch simulation, same seed and schedule.
     plant = load_plant(ROOT / "config" / "replay_plant.yaml")
     schedule = load_schedule_yaml(ROOT / "config" / "replay_bumps.yaml")
-    joints = plant.for_joints(skill.joints)
-    rollout = skill.rollout(
-        dt=1e-3, target_inertia=[j.inertia for j in joints], horizon_s=skill.duration_s + 0.5
-    )
-    n = len(rollout.t) - 1
-    direct = simulate_rollout(joints, plant.mechanism, rollout, schedule, seed=5)
+    setup = ReplaySetup(skill, plant)
+    direct = setup.simulate([schedule], seed=5)
     trace = result.trace
-    assert trace["q"].shape == (n, 2)
+    assert trace["q"].shape == (setup.n_steps, 2)
     # Bound: 1e-9 rad and rad/s; both step the same integrator on the same commands, so only
     # floating-point reassociation could separate them.
     np.testing.assert_allclose(trace["q"], direct.q[1:, 0, :], rtol=0, atol=1e-9)

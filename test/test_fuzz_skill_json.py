@@ -82,7 +82,7 @@ def _check_skill_json(target: _Target, text: str) -> None:
     _store_payload(path, text)
     with no_hang(10.0), DemoStore(str(path), read_only=True) as store:
         try:
-            skill = load_skill(store, "cork_seat")
+            skill = load_skill(store, "cork_seat").skill
         except CompliantDemoError:
             skill = None
         if skill is not None:
@@ -121,7 +121,7 @@ def test_fuzz_skill_json(skill_target: _Target, data: st.DataObject, damage_text
 def test_skill_fuzzer_starts_from_a_skill_that_loads(skill_target: _Target) -> None:
     _store_payload(skill_target[0], json.dumps(skill_target[3]))
     with DemoStore(str(skill_target[0]), read_only=True) as store:
-        rollout = load_skill(store, "cork_seat").rollout(dt=0.01, target_inertia=_INERTIA)
+        rollout = load_skill(store, "cork_seat").skill.rollout(dt=0.01, target_inertia=_INERTIA)
     # The reach ends where it was demonstrated: 0.5 and -0.3 rad (the invented demo data).
     np.testing.assert_allclose(rollout.position[-1], [0.5, -0.3], atol=0.02)
 

@@ -95,10 +95,10 @@ def test_save_and_load_through_store(store):
     assert (first.version, second.version) == (1, 2)
     assert first.parameters["n_basis"] == 50 and first.parameters["alignment"] == "dtw"
     assert list(first.demonstration_ids) == ids
-    again = load_skill(store, "cork_seat", 1)
+    again = load_skill(store, "cork_seat", 1).skill
     np.testing.assert_array_equal(again.rollout(goal=[0.9, 0.5]).position,
                                   skill.rollout(goal=[0.9, 0.5]).position)
-    assert load_skill(store, "cork_seat").provenance == skill.provenance
+    assert load_skill(store, "cork_seat").skill.provenance == skill.provenance
     with pytest.raises(NotFoundError, match=r"skill 'cork_seat' has no version 7"):
         load_skill(store, "cork_seat", 7)
 

@@ -87,7 +87,8 @@ def test_report_errors_name_what_is_missing(tmp_path):
             collect_report_content(store, "cork_seat", campaign_id=empty)
         first_campaign = run_campaign(store, job, skill_id=skill_id, workers=0).campaign_id
         again = cork_seat_skill().model_copy(deep=True)
-        again.provenance.demonstration_ids = list(store.load_skill("cork_seat").demonstration_ids)
+        again.provenance.demonstration_ids = list(
+            store.load_skill_record("cork_seat").demonstration_ids)
         second = save_skill(store, again)
         with pytest.raises(InvalidInputError, match=r"replays another skill version than "
                                                     r"'cork_seat' v2"):

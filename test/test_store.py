@@ -109,7 +109,7 @@ def test_skill_payload_round_trips_arrays_exactly(payload):
     with DemoStore(":memory:") as store:
         demo_id = add_demo(store)
         record = store.save_skill("cork_seat", payload, demonstration_ids=[demo_id], parameters={})
-        loaded = store.load_skill("cork_seat").payload
+        loaded = store.load_skill_record("cork_seat").payload
     assert record.payload.keys() == payload.keys() == loaded.keys()
     for key, value in payload.items():
         if isinstance(value, np.ndarray):
@@ -239,7 +239,7 @@ def test_damaged_json_is_store_corrupt_error(tmp_path, table, column, action, me
     actions = {
         "find": lambda s: list(s.find_demonstrations()),
         "info": lambda s: s.get_info(demo_id),
-        "skill": lambda s: s.load_skill("cork_seat"),
+        "skill": lambda s: s.load_skill_record("cork_seat"),
         "result": lambda s: s.load_replay_result(result_id),
     }
     with DemoStore(path, read_only=True) as store:
@@ -466,7 +466,7 @@ def test_delete_refuses_provenance_of_a_skill_unless_forced(store):
     with pytest.raises(StoreError, match="provenance of skill\\(s\\) cork_seat v1"):
         store.delete_demonstration(demo_id)
     store.delete_demonstration(demo_id, force=True)
-    assert store.load_skill("cork_seat").demonstration_ids == (demo_id,)
+    assert store.load_skill_record("cork_seat").demonstration_ids == (demo_id,)
 
 
 # -- skills, campaigns, replay results ---------------------------------------------------------
@@ -480,19 +480,19 @@ def test_skill_versions_and_provenance(store):
     )
     other = store.save_skill("wipe", {}, demonstration_ids=[], parameters={})
     assert (v1.version, v2.version, other.version) == (1, 2, 1)
-    assert store.load_skill("cork_seat").id == v2.id
-    assert store.load_skill("cork_seat", 1).payload == {"k": 1}
-    assert store.get_skill(v2.id).demonstration_ids == (second, first)
-    assert store.get_skill(v2.id).parameters == {"n": 7}
+    assert store.load_skill_record("cork_seat").id == v2.id
+    assert store.load_skill_record("cork_seat", 1).payload == {"k": 1}
+    assert store.get_skill_record(v2.id).demonstration_ids == (second, first)
+    assert store.get_skill_record(v2.id).parameters == {"n": 7}
     assert [(r.name, r.version) for r in store.list_skills()] == [
         ("cork_seat", 1),
         ("cork_seat", 2),
         ("wipe", 1),
     ]
     with pytest.raises(NotFoundError, match="skill 'cork_seat' has no version 3 \\(versions: 1, 2"):
-        store.load_skill("cork_seat", 3)
+        store.load_skill_record("cork_seat", 3)
     with pytest.raises(NotFoundError, match="skill 'pour' not found"):
-        store.load_skill("pour")
+        store.load_skill_record("pour")
     with pytest.raises(NotFoundError, match="demonstration 'nope' not found"):
         store.save_skill("cork_seat", {}, demonstration_ids=["nope"], parameters={})
     with pytest.raises(InvalidInputError, match="payload must be a mapping, got list"):

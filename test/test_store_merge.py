@@ -109,7 +109,7 @@ def test_merge_copies_skills_campaigns_and_results_with_provenance(tmp_path):
         assert report.added == [demo_id]
         assert (report.skills_added, report.campaigns_added) == ([skill.id], [campaign])
         assert report.results_added == results and report.conflicts == []
-        copied = a.load_skill("cork_seat")
+        copied = a.load_skill_record("cork_seat")
         assert (copied.id, copied.version, copied.demonstration_ids) == (skill.id, 1, (demo_id,))
         assert np.array_equal(copied.payload["w"], np.arange(3.0))
         assert a.completed_scenarios(campaign) == {0, 1}

@@ -13,12 +13,12 @@ from compliant_demo.cli import main
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import PERTURBATION_KINDS
 from compliant_demo.report import GroundTruth
+from compliant_demo.resources import package_launch_file
 from compliant_demo.store import DemoStore
 from compliant_demo.tour import (
     TourError,
     TourSettings,
     node_environment,
-    package_launch_file,
     run_tour,
 )
 
@@ -43,7 +43,7 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
 
     with DemoStore(store, read_only=True) as opened:
         demos = [opened.get_info(i) for i in result["demonstration_ids"]]
-        skill = opened.load_skill("cork_seat")
+        skill = opened.load_skill_record("cork_seat")
         results = list(opened.find_replay_results(campaign_id=result["campaign"]["id"]))
     assert [d.status for d in demos] == ["complete", "complete"]
     assert all(d.tags == (result["tag"],) for d in demos)  # this run's demonstrations only

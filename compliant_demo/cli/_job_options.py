@@ -12,9 +12,9 @@ import sys
 from pathlib import Path
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.primitives import Skill
-from compliant_demo.runtime import ReplayPlant, load_plant
-from compliant_demo.store import DemoStore, SkillRecord
+from compliant_demo.learning import StoredSkill, load_skill
+from compliant_demo.plant import DEFAULT_PLANT_FILE, ReplayPlant, load_plant
+from compliant_demo.store import DemoStore
 
 __all__ = [
     "DEFAULT_SKILL",
@@ -77,7 +77,8 @@ def add_skill_options(parser: argparse.ArgumentParser) -> None:
 
 def add_plant_option(
     parser: argparse.ArgumentParser,
-    default_text: str = "the cork_seat bench arm on the ideal variable-impedance mechanism",
+    default_text: str = f"the cork_seat bench arm on antagonistic springs "
+                        f"(config/{DEFAULT_PLANT_FILE})",
 ) -> None:
     """``--plant FILE``: the simulated target joints and mechanism."""
     parser.add_argument(
@@ -116,13 +117,6 @@ def read_plant(args: argparse.Namespace) -> ReplayPlant:
     return load_plant(args.plant)
 
 
-def read_skill(store: DemoStore, args: argparse.Namespace) -> tuple[SkillRecord, Skill]:
-    """The stored record and the skill of ``--skill``/``--version``."""
-    record = store.load_skill(args.skill, args.skill_version)
-    try:
-        return record, Skill.model_validate(record.payload)
-    except ValueError as exc:
-        raise InvalidInputError(
-            f"skill {args.skill!r} version {record.version}: not a skill this version reads "
-            f"({str(exc).splitlines()[0]})"
-        ) from None
+def read_skill(store: DemoStore, args: argparse.Namespace) -> StoredSkill:
+    """The stored skill of ``--skill``/``--version``."""
+    return load_skill(store, args.skill, args.skill_version)

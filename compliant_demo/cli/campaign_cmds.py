@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from compliant_demo.app.progress import campaign_progress
 from compliant_demo.campaign import ReplayCampaign, default_campaign_spec, run_campaign
 from compliant_demo.cli._job_options import (
     add_backend_options,
@@ -27,8 +28,9 @@ from compliant_demo.cli.common import (
     store_path_of,
 )
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.learning import load_skill_by_id
 from compliant_demo.perturbation import load_campaign_yaml
-from compliant_demo.primitives import Skill
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]
@@ -61,8 +63,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="campaign seed (default: 0)")
     parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
                         help="movement duration, s (default: the demonstrated one)")
-    parser.add_argument("--settle", type=non_negative_float, default=1.0, metavar="S",
-                        help="time simulated after the movement, s (default: 1.0)")
+    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
+                        metavar="S", help="time simulated after the movement, s (default: "
+                                          f"{DEFAULT_SETTLE_S:g})")
     parser.add_argument("--batch-size", type=positive_int, default=None, metavar="N",
                         help="scenarios per vectorised batch (default: about three batches "
                              "per worker, 8 to 100 each)")
@@ -78,26 +81,26 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _job(store: DemoStore, args: argparse.Namespace) -> tuple[str, ReplayCampaign]:
     if args.resume is not None:
         campaign = store.get_campaign(args.resume)
-        record = store.get_skill(campaign.skill_id)
-        return record.id, ReplayCampaign.from_config(
-            Skill.model_validate(record.payload), campaign.config)
-    record, skill = read_skill(store, args)
+        stored = load_skill_by_id(store, campaign.skill_id)
+        return stored.record.id, ReplayCampaign.from_config(stored.skill, campaign.config)
+    stored = read_skill(store, args)
+    skill = stored.skill
     if args.spec is not None and not args.spec.is_file():
         raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
-    plant = read_plant(args)
-    movement_s = skill.duration_s if args.duration is None else args.duration
-    spec = (default_campaign_spec(len(skill.joints), movement_s) if args.spec is None
+    setup = ReplaySetup(skill, read_plant(args), duration_s=args.duration, settle_s=args.settle)
+    spec = (default_campaign_spec(len(skill.joints), setup.movement_s) if args.spec is None
             else load_campaign_yaml(args.spec))
-    return record.id, ReplayCampaign(skill, plant, spec, args.scenarios, seed=args.seed,
-                                     duration_s=args.duration, settle_s=args.settle)
+    return stored.record.id, ReplayCampaign(setup, spec, args.scenarios, seed=args.seed)
 
 
 def _run(args: argparse.Namespace) -> int:
     with DemoStore(store_path_of(args), create=False, durable=False) as store:
         skill_id, job = _job(store, args)
-        summary = run_campaign(store, job, skill_id=skill_id, campaign_id=args.resume,
-                               batch_size=args.batch_size, workers=args.workers,
-                               scheduler=args.scheduler, progress=show_progress(args))
+        with campaign_progress(show_progress(args)) as progress:
+            summary = run_campaign(store, job, skill_id=skill_id, campaign_id=args.resume,
+                                   batch_size=args.batch_size, workers=args.workers,
+                                   scheduler=args.scheduler, on_start=progress.on_start,
+                                   on_batch=progress.on_batch)
         results = list(store.find_replay_results(campaign_id=summary.campaign_id))
     by_kind: dict[str, list[int]] = {}
     for result in results:
@@ -108,6 +111,7 @@ def _run(args: argparse.Namespace) -> int:
         emit_json({
             "campaign_id": summary.campaign_id,
             "skill_id": skill_id,
+            "plant": job.plant.describe(),
             "scenarios": summary.n_scenarios,
             "run": summary.n_run,
             "skipped": summary.n_skipped,
@@ -120,7 +124,8 @@ def _run(args: argparse.Namespace) -> int:
                          for kind, c in sorted(by_kind.items())},
         })
     else:
-        print(f"campaign {summary.campaign_id}: {summary.n_run} scenarios run, "
+        print(f"campaign {summary.campaign_id} on the {job.plant.describe()}: "
+              f"{summary.n_run} scenarios run, "
               f"{summary.n_skipped} already stored, {summary.wall_s:.1f} s on "
               f"{summary.backend} ({summary.workers} workers)")
         emit_table([{"kind": kind, "scenarios": c[0], "violations": c[1]}

@@ -12,7 +12,7 @@ from compliant_demo.cli._job_options import (
     read_plant,
 )
 from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
-from compliant_demo.runtime import LearnRequest, learn_from_store
+from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]

@@ -28,7 +28,7 @@ from compliant_demo.cli.common import (
 )
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import load_schedule_yaml
-from compliant_demo.runtime import ReplayRun
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]
@@ -58,8 +58,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                              "onset_s, duration_s, magnitude, sign, ...}]} (default: none)")
     parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
                         help="movement duration, s (default: the demonstrated one)")
-    parser.add_argument("--settle", type=non_negative_float, default=0.5, metavar="S",
-                        help="time simulated after the movement, s (default: 0.5)")
+    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
+                        metavar="S", help="time simulated after the movement, s (default: "
+                                          f"{DEFAULT_SETTLE_S:g})")
     parser.add_argument("--dt", type=positive_float, default=1e-3, metavar="S",
                         help="control period and integration step, s (default: 0.001)")
     parser.add_argument("--max-stiffness-rate", type=positive_float, default=float("inf"),
@@ -79,10 +80,11 @@ def _run(args: argparse.Namespace) -> int:
         raise InvalidInputError(f"--schedule {str(args.schedule)!r}: no such file")
     schedule = None if args.schedule is None else load_schedule_yaml(args.schedule)
     with DemoStore(store_path_of(args), create=False) as store:
-        record, skill = read_skill(store, args)
-        run = ReplayRun(skill, plant, schedule, dt=args.dt, duration_s=args.duration,
-                        settle_s=args.settle, seed=args.seed,
-                        max_stiffness_rate=args.max_stiffness_rate)
+        stored = read_skill(store, args)
+        record, skill = stored.record, stored.skill
+        setup = ReplaySetup(skill, plant, dt=args.dt, duration_s=args.duration,
+                            settle_s=args.settle, max_stiffness_rate=args.max_stiffness_rate)
+        run = ReplayRun(setup, schedule, seed=args.seed)
         with tqdm(total=run.n_steps, desc="replay", unit="step", file=sys.stderr,
                   disable=not show_progress(args), leave=False, mininterval=0.5) as bar:
             while not run.finished:
@@ -95,16 +97,18 @@ def _run(args: argparse.Namespace) -> int:
             "plant": plant.model_dump(mode="json"),
             "duration_s": args.duration, "settle_s": args.settle, "dt": args.dt,
             "seed": args.seed,
-            "kind": "+".join(schedule.kinds) if schedule and schedule.kinds else "none",
+            "kind": "none" if schedule is None else schedule.kind_label,
         }
         result_id = store.save_replay_result(skill_id=record.id, metrics=metrics,
                                              parameters=parameters, status=status,
                                              reason=reason, trace=trace)
     if args.json:
         emit_json({"result_id": result_id, "skill": skill.name, "version": record.version,
-                   "status": status, "reason": reason, "metrics": metrics})
+                   "plant": plant.describe(), "status": status, "reason": reason,
+                   "metrics": metrics})
     else:
-        print(f"replay of {skill.name} version {record.version}: {status}"
+        print(f"replay of {skill.name} version {record.version} on the "
+              f"{plant.describe()}: {status}"
               + (f" ({reason})" if reason else "") + f"; result {result_id}")
         emit_table([{"metric": key, "value": metrics[key]} for key in _SHOWN],
                    ("metric", "value"))

@@ -6,6 +6,7 @@ from rclpy.node import Node
 from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
+from compliant_demo.learning import LearnRequest, learn_from_store, matching_demonstrations
 from compliant_demo.nodes._common import (
     check_parameter_changes,
     declare,
@@ -13,7 +14,6 @@ from compliant_demo.nodes._common import (
     open_store,
     run_node,
 )
-from compliant_demo.runtime import LearnRequest, learn_from_store, matching_demonstrations
 
 __all__ = ["LearnerNode", "main"]
 

@@ -19,7 +19,8 @@ from compliant_demo.nodes._common import (
     run_node,
     to_stamp,
 )
-from compliant_demo.runtime import ReplayRun, load_plant
+from compliant_demo.plant import load_plant
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
 
 __all__ = ["ReplayNode", "main"]
 
@@ -35,15 +36,15 @@ class ReplayNode(Node):
         d(self, "skill", "cork_seat", "Skill to replay.", read_only=False)
         d(self, "skill_version", 0, "Skill version; 0 = the latest.", low=0, high=1000000,
           read_only=False)
-        d(self, "plant_file", "", "Plant YAML (joints, mechanism); empty = the teaching "
-          "scenario's joints with the ideal mechanism.", read_only=False)
+        d(self, "plant_file", "", "Plant YAML (joints, mechanism); empty = the package's "
+          "default plant (the cork_seat arm on antagonistic springs).", read_only=False)
         d(self, "schedule_file", "", "Perturbation schedule YAML; empty = none.", read_only=False)
         d(self, "control_rate_hz", 1000.0, "Control rate, Hz.", low=10.0, high=20000.0,
           read_only=False)
         d(self, "duration_s", 0.0, "Movement duration, s; 0 = the demonstrated one.",
           low=0.0, high=3600.0, read_only=False)
-        d(self, "settle_s", 0.5, "Time simulated after the movement, s.", low=0.0, high=60.0,
-          read_only=False)
+        d(self, "settle_s", DEFAULT_SETTLE_S, "Time simulated after the movement, s.", low=0.0,
+          high=60.0, read_only=False)
         d(self, "goal", [], "New goal per joint, rad; empty = the demonstrated one.",
           read_only=False)
         d(self, "seed", 0, "Seed of sensor noise and random perturbations.", low=0,
@@ -93,22 +94,22 @@ class ReplayNode(Node):
         name = self._value("skill")
         try:
             with open_store(self._store_path, read_only=True) as store:
-                record = store.load_skill(name, version)
-                skill = load_skill(store, name, record.version)
+                stored = load_skill(store, name, version)
+            record = stored.record
             schedule_file = self._value("schedule_file")
             schedule = load_schedule_yaml(schedule_file) if schedule_file else None
-            self._run = ReplayRun(
-                skill,
+            goal = list_parameter(self, "goal", float)
+            setup = ReplaySetup(
+                stored.skill,
                 load_plant(self._value("plant_file")),
-                schedule,
                 dt=1.0 / self._value("control_rate_hz"),
                 duration_s=self._value("duration_s") or None,
                 settle_s=self._value("settle_s"),
-                goal=list_parameter(self, "goal", float) or None,
+                goal=tuple(goal) if goal else None,
                 method=self._value("method"),
-                seed=self._value("seed"),
                 max_stiffness_rate=self._value("max_stiffness_rate"),
             )
+            self._run = ReplayRun(setup, schedule, seed=self._value("seed"))
         except CompliantDemoError as exc:
             return False, str(exc)
         self._skill_id = record.id
@@ -204,7 +205,8 @@ class ReplayNode(Node):
     def _try_auto_start(self) -> None:
         try:
             with open_store(self._store_path, read_only=True) as store:
-                store.load_skill(self._value("skill"), self._value("skill_version") or None)
+                store.load_skill_record(self._value("skill"),
+                                        self._value("skill_version") or None)
         except CompliantDemoError:
             return
         self._waiting_for_skill = False

@@ -15,8 +15,7 @@ from std_srvs.srv import Trigger
 
 from compliant_demo.models import load_yaml_model, model_from_mapping
 from compliant_demo.nodes._common import declare, float_array, recorded_qos, run_node, to_stamp
-from compliant_demo.runtime import TeachingSession
-from compliant_demo.teaching import TeachingScenario, cork_seat_scenario
+from compliant_demo.teaching import TeachingScenario, TeachingSession, cork_seat_scenario
 
 __all__ = ["TeacherNode", "main"]
 

@@ -85,13 +85,17 @@ class EnergyTraces:
         net_in = self.actuator_work + self.perturbation_work - self.dissipated
         return self.total() - self.initial_total - net_in
 
-    def final(self) -> dict[str, np.ndarray]:
-        """Each term at the last sample, (n_scen, n_joints), J."""
+    def at(self, row: int) -> dict[str, np.ndarray]:
+        """Each term at recorded sample ``row``, (n_scen, n_joints), J."""
         names = (
             "kinetic", "spring_potential", "gravity_potential", "end_stop_potential",
             "actuator_work", "perturbation_work", "dissipated", "stiffness_injection",
         )
-        return {name: getattr(self, name)[-1] for name in names}
+        return {name: getattr(self, name)[row] for name in names}
+
+    def final(self) -> dict[str, np.ndarray]:
+        """Each term at the last sample, (n_scen, n_joints), J."""
+        return self.at(-1)
 
 
 @dataclass(frozen=True)
@@ -313,6 +317,7 @@ class Simulator:
             self.dt,
             seed,
         )
+        self._horizon_steps = horizon_steps
         late = [] if horizon_steps is None else self._perturb.starts_at_or_after(horizon_steps)
         if late:
             shown = ", ".join(late[:3]) + (", ..." if len(late) > 3 else "")
@@ -689,17 +694,30 @@ class Simulator:
         ]
         targets, flags = self._targets(*cmd)
         clamped = np.logical_or.reduce(list(flags.values()))[0]
+        live = (None if external_torque is None
+                else _per_scenario("external_torque", external_torque, n_scen, n_joints))
         ext = np.zeros((1, 3, n_joints, n_scen))
         touched = self._perturb.fill_torque(ext, self._step_index)
-        if external_torque is not None:
-            ext += _per_scenario("external_torque", external_torque, n_scen, n_joints)
+        if live is not None:
+            ext += live
             touched = True
         if not self._started:
             self._start(targets[0])
         self._apply_events(self._step_index)
         self._advance(targets[0], ext[0] if touched else None, have_first=False)
         self._apply_events(self._step_index)
-        obs = self._observe(targets[0], ext[0, 2] if touched else None, clamped)
+        observed = ext[0, 2] if touched else None
+        if self._step_index != self._horizon_steps:
+            # Record the external torque as :meth:`run` records a sample: as it acts at the start
+            # of the next step, so a torque that jumps on the grid shows its new value at the
+            # sample where it starts (the last sample of a known horizon keeps the step's end).
+            # A live torque is held until the next command replaces it.
+            following = np.zeros((1, 3, n_joints, n_scen))
+            scheduled = self._perturb.fill_torque(following, self._step_index)
+            if live is not None:
+                following[0, 0] += live
+            observed = following[0, 0] if scheduled or live is not None else None
+        obs = self._observe(targets[0], observed, clamped)
         return StepState(
             t=self.t, **{k: np.array(obs[k].T) for k in StepState.__dataclass_fields__ if k != "t"}
         )

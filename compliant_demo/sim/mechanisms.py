@@ -119,12 +119,16 @@ class Mechanism:
     n_actuators = 0
     n_targets = 0
     clamp_names: tuple[str, ...] = ()
-    has_damping_input = False
 
     def __init__(self, records: Sequence[MechanismLike]) -> None:
         self.records = list(records)
-        self.time_constant = np.zeros((len(self.records), 1))
-        self.rate_limit = np.zeros((self.n_actuators, len(self.records), 1))
+
+    @property
+    def has_damping_input(self) -> bool:
+        """Whether a damping command means anything to it (a fact of its records' kind)."""
+        return self.records[0].has_damping_input
+        self.time_constant: np.ndarray = np.zeros((len(self.records), 1))
+        self.rate_limit: np.ndarray = np.zeros((self.n_actuators, len(self.records), 1))
 
     def expand(self, n_scenarios: int) -> None:
         """Lay out the parameters the integration loop reads as full ``(J, S)`` arrays.
@@ -212,7 +216,6 @@ class IdealImpedance(Mechanism):
     n_actuators = 2
     n_targets = 3
     clamp_names = ("stiffness", "damping")
-    has_damping_input = True
 
     def __init__(self, records: Sequence[IdealImpedanceParams]) -> None:
         super().__init__(records)

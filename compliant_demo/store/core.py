@@ -1068,7 +1068,7 @@ class DemoStore:
                 "INSERT INTO skill_demonstrations (skill_id, position, demo_id) VALUES (?, ?, ?)",
                 [(skill_id, i, demo_id) for i, demo_id in enumerate(ids)],
             )
-        return self.get_skill(skill_id)
+        return self.get_skill_record(skill_id)
 
     def _skill_rows(self, where: str, params: Sequence[object]) -> list[SkillRecord]:
         with self._snapshot() as conn:
@@ -1084,14 +1084,14 @@ class DemoStore:
             for row in rows
         ]
 
-    def get_skill(self, skill_id: str) -> SkillRecord:
+    def get_skill_record(self, skill_id: str) -> SkillRecord:
         """One skill version by its id."""
         found = self._skill_rows("WHERE s.id = ?", (skill_id,))
         if not found:
             raise NotFoundError(f"skill id {skill_id!r} not found in {self._label}")
         return found[0]
 
-    def load_skill(self, name: str, version: int | None = None) -> SkillRecord:
+    def load_skill_record(self, name: str, version: int | None = None) -> SkillRecord:
         """Skill ``name`` at ``version`` (the latest when omitted)."""
         _codec.validate_text("name", name, allow_empty=False)
         versions = self._skill_rows("WHERE s.name = ?", (name,))
