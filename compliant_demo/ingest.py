@@ -33,11 +33,11 @@ __all__ = [
     "DemonstrationRequest",
     "ChunkWriter",
     "RecordingSession",
-    "StiffnessSource",
+    "StiffnessChannel",
 ]
 
-StiffnessSource = Literal["estimate", "reference", "none"]
-_STIFFNESS_SOURCES = ("estimate", "reference", "none")
+StiffnessChannel = Literal["estimate", "reference", "none"]
+_STIFFNESS_CHANNELS = ("estimate", "reference", "none")
 
 
 @dataclass
@@ -362,15 +362,15 @@ class DemonstrationRequest:
     tags: tuple[str, ...] = ()
     notes: str = ""
     nominal_rate_hz: float = 1000.0
-    stiffness_source: StiffnessSource = "estimate"
+    stiffness_channel: StiffnessChannel = "estimate"
 
     def __post_init__(self) -> None:
         if not self.skill:
             raise InvalidInputError("skill: must not be empty")
-        if self.stiffness_source not in _STIFFNESS_SOURCES:
+        if self.stiffness_channel not in _STIFFNESS_CHANNELS:
             raise InvalidInputError(
-                f"stiffness_source: must be one of {_STIFFNESS_SOURCES}, "
-                f"got {self.stiffness_source!r}"
+                f"stiffness_channel: must be one of {_STIFFNESS_CHANNELS}, "
+                f"got {self.stiffness_channel!r}"
             )
 
 
@@ -517,12 +517,12 @@ class ChunkWriter:
                 source="recorded",
                 nominal_rate_hz=request.nominal_rate_hz,
                 start_time=demonstration.first_stamp,
-                with_stiffness=request.stiffness_source != "none",
+                with_stiffness=request.stiffness_channel != "none",
             )
-            if request.stiffness_source == "estimate" and self._make_estimator is not None:
+            if request.stiffness_channel == "estimate" and self._make_estimator is not None:
                 demonstration.estimator = self._make_estimator(len(request.joints))
         stiffness = None
-        if request.stiffness_source == "reference":
+        if request.stiffness_channel == "reference":
             stiffness = chunk.reference
         elif demonstration.estimator is not None:
             stiffness = np.asarray(demonstration.estimator.update(chunk.position, chunk.torque)[0])

@@ -649,7 +649,7 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
     recorder_cmd = [
         sys.executable, "-m", "compliant_demo.nodes.recorder", "--ros-args",
         "-p", f"store_path:={store_path}", "-p", f"joints:={joints}",
-        "-p", "stiffness_source:=none", "-p", f"nominal_rate_hz:={rate_hz}",
+        "-p", "stiffness_channel:=none", "-p", f"nominal_rate_hz:={rate_hz}",
         "-p", f"buffer_capacity:={buffer_capacity}", "-p", "queue_depth:=1000",
         "-p", "diagnostics_period_s:=0.2", "-p", "flush_interval_s:=0.1",
         *(["-r", f"__ns:=/{namespace}"] if namespace else []),

@@ -86,7 +86,7 @@ def test_fuzz_ingest_keeps_exactly_what_the_rules_accept(messages: list[dict]) -
         writer.start()
         request = DemonstrationRequest(skill="cork_seat", joints=tuple(JOINTS),
                                        operator="operator_a", nominal_rate_hz=RATE_HZ,
-                                       stiffness_source="none")  # fmt: skip
+                                       stiffness_channel="none")  # fmt: skip
         session = RecordingSession(writer, SampleChecker(JOINTS, RATE_HZ), request, 10_000)
         assert session.start()[0]
         for stamp, message in zip(stamps, messages, strict=True):

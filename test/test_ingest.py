@@ -163,7 +163,7 @@ def _session(path, *, source="reference", trigger=None, capacity=100_000, flush=
         operator="operator_a",
         tags=("bench",),
         nominal_rate_hz=RATE,
-        stiffness_source=source,
+        stiffness_channel=source,
     )
     return RecordingSession(writer, SampleChecker(JOINTS, RATE), request, capacity, trigger)
 
@@ -269,7 +269,7 @@ def test_writer_reports_a_store_that_cannot_open(tmp_path) -> None:
     "kwargs, match",
     [
         ({"skill": ""}, "skill"),
-        ({"stiffness_source": "guess"}, "stiffness_source"),
+        ({"stiffness_channel": "guess"}, "stiffness_channel"),
     ],
 )
 def test_request_refuses_bad_metadata(kwargs, match: str) -> None:
@@ -330,7 +330,7 @@ def test_stop_with_a_wait_says_when_the_store_refused_the_samples(tmp_path) -> N
     DemoStore(path).close()  # an existing store, opened read-only by the writer below
     writer = ChunkWriter(lambda: DemoStore(path, read_only=True), None, flush_interval_s=0.02)
     writer.start()
-    request = DemonstrationRequest(skill="cork_seat", joints=JOINTS, stiffness_source="none")
+    request = DemonstrationRequest(skill="cork_seat", joints=JOINTS, stiffness_channel="none")
     session = RecordingSession(writer, SampleChecker(JOINTS, RATE), request, 1000)
     session.start()
     for i in range(20):

@@ -28,7 +28,7 @@ def client():
 def _recorder(tmp_path: Path, store: Path, *extra: str):
     return start_module(
         "compliant_demo.nodes.recorder",
-        [f"store_path:={store}", "stiffness_source:=none", "diagnostics_period_s:=0.2", *extra],
+        [f"store_path:={store}", "stiffness_channel:=none", "diagnostics_period_s:=0.2", *extra],
         DOMAIN_ID,
         tmp_path / "recorder.log",
         "recorder",
@@ -158,7 +158,7 @@ def test_sigkill_mid_demonstration_keeps_everything_older_than_the_flush_interva
     """
     store = tmp_path / "store.sqlite"
     arguments = {"store": str(store), "demos": "1"}
-    extra = {"recorder": {"stiffness_source": "none", "flush_interval_s": "0.1",
+    extra = {"recorder": {"stiffness_channel": "none", "flush_interval_s": "0.1",
                           "diagnostics_period_s": "0.2"},
              "teacher": {"duration_s": "20.0"}}
     seen, subscription = _latest_diagnostics(client)

@@ -110,7 +110,7 @@ class RecorderNode(Node):
             "queue_depth": d(self, "queue_depth", 5000,
                              "History depth of the reliable joint_states subscription.",
                              low=10, high=100000),
-            "stiffness_source": d(self, "stiffness_source", "estimate",
+            "stiffness_channel": d(self, "stiffness_channel", "estimate",
                                   "Stored stiffness: estimate, reference (topic) or none."),
             "estimator_window_s": d(self, "estimator_window_s", 0.5,
                                     "Sliding estimation window, s.", low=0.01, high=10.0),
@@ -150,7 +150,7 @@ class RecorderNode(Node):
             tags=tuple(list_parameter(self, "tags", str)),
             notes=value("notes").value,
             nominal_rate_hz=value("nominal_rate_hz").value,
-            stiffness_source=value("stiffness_source").value,
+            stiffness_channel=value("stiffness_channel").value,
         )
 
     def _on_joint_state(self, msg: JointState) -> None:
@@ -201,7 +201,7 @@ class RecorderNode(Node):
 
 
 def _estimator_factory(p: dict):
-    if p["stiffness_source"] != "estimate":
+    if p["stiffness_channel"] != "estimate":
         return None
     from compliant_demo.estimation import SlidingStiffnessEstimator
 
