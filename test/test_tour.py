@@ -55,7 +55,7 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     assert set(result["timings_s"]) == {"record", "learn", "campaign", "report", "total"}
     # The default target has antagonistic springs: no damping input, so the checks flag the
     # teacher's stiffness as under-damped on it.
-    assert result["summary"]["mechanism"] == "antagonistic"
+    assert result["summary"]["plant"] == "antagonistic mechanism on joints shoulder, elbow"
 
     truth = out / "teacher_truth.npz"
     assert truth.is_file() and (out / "nodes.log").is_file()

@@ -5,19 +5,13 @@ one command at a time (the replay node); ``check_step_stability`` refuses a step
 setting cannot take. See the README section "Simulation".
 """
 
-from compliant_demo.sim.integrate import (
-    GRAVITY,
-    EnergyTraces,
-    SimResult,
-    Simulator,
-    StepState,
-    simulate,
-)
+from compliant_demo.sim.integrate import GRAVITY, Simulator, simulate
 from compliant_demo.sim.mechanisms import (
     antagonistic_motor_angles,
     antagonistic_stiffness,
     antagonistic_torque,
 )
+from compliant_demo.sim.results import EnergyTraces, SimResult, StepState
 from compliant_demo.sim.stability import METHODS, check_step_stability, largest_stable_step
 
 __all__ = [
