@@ -38,7 +38,7 @@ if [[ "${setup_commands[1]}" != *"$test_suffix" ]]; then
 fi
 test_install_command="${setup_commands[1]%"$test_suffix"}"
 
-git clone --quiet "$root" "$work/src"
+git -c advice.detachedHead=false clone --quiet "$root" "$work/src"
 if ! "$python" -m venv "$work/venv" 2>/dev/null; then
     # Debian's Python ships venv's pip bootstrap as a separate package.
     apt-get update -qq && apt-get install -y -qq python3-venv >/dev/null
