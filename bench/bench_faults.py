@@ -8,11 +8,17 @@ Runs, with the machinery of the reliability tests (``test/reliability_support.py
   exact committed chunks and an "incomplete" demonstration on the next open;
 * a flood of a real recorder process with 7-joint JointState at 20 kHz, then 100 Hz (loopback DDS,
   ROS_DOMAIN_ID 101), sampling its resident memory. Baseline from the same run: the recorder's
-  idle RSS before the flood (``peak_over_idle``).
+  idle RSS before the flood (``peak_over_idle``);
+* a campaign of 5,000 scenarios of the short cork_seat skill on one pool worker (the machinery of
+  ``test/campaign_lifetime_support.py``): the parent's RSS growth per stored scenario after a
+  1,000-scenario warm-up (least-squares slope; target at most 1 KiB);
+* 20 SIGKILLs of a ``compliant-demo campaign`` process (the process alone, not its group) while
+  it stores scenarios: pool workers still alive 10 s later (target 0).
 
 Prints one JSON object per line; the last line is
 ``{"bench": "faults", "kill_trials": N, "kill_trials_intact": N, "flood_peak_rss_mb": X,
-"fuzz_cases": N, "fuzz_failures": N}``.
+"fuzz_cases": N, "fuzz_failures": N, "campaign_rss_growth_kib_per_scenario": X,
+"orphans_after_sigkill": N}``.
 
 Run: ``python bench/bench_faults.py [--quick]``
 """
@@ -96,6 +102,31 @@ def _flood(flood_s: float) -> float:
     return peak
 
 
+def _campaign_memory(n_scenarios: int, warmup: int) -> float:
+    from campaign_lifetime_support import rss_growth_kib_per_scenario
+
+    start = time.perf_counter()
+    with tempfile.TemporaryDirectory() as folder:
+        figures = rss_growth_kib_per_scenario(Path(folder), n_scenarios, warmup)
+    emit({"bench": "faults_campaign_memory", "scenarios": n_scenarios, "warmup": warmup,
+          "kib_per_scenario": round(figures["kib_per_scenario"], 3),
+          "rss_mb_after_warmup": round(figures["rss_mb_after_warmup"], 1),
+          "rss_mb_end": round(figures["rss_mb_end"], 1),
+          "wall_s": round(time.perf_counter() - start, 1)})  # fmt: skip
+    return figures["kib_per_scenario"]
+
+
+def _campaign_orphans(trials: int) -> int:
+    from campaign_lifetime_support import WORKER_GONE_WITHIN_S, sigkill_orphans
+
+    start = time.perf_counter()
+    with tempfile.TemporaryDirectory() as folder:
+        orphans = sigkill_orphans(Path(folder), trials)
+    emit({"bench": "faults_campaign_sigkill", "trials": trials, "orphans_by_trial": orphans,
+          "wait_s": WORKER_GONE_WITHIN_S, "wall_s": round(time.perf_counter() - start, 1)})
+    return sum(orphans)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--quick", action="store_true", help="fewer trials and examples")
@@ -104,9 +135,13 @@ def main() -> None:
     fuzz_cases, fuzz_failures = _fuzz(40 if args.quick else 200)
     kill_trials, intact = _kill_trials(40 if args.quick else 200)
     peak = _flood(2.0 if args.quick else 4.0)
+    growth = _campaign_memory(*((1000, 300) if args.quick else (5000, 1000)))
+    orphans = _campaign_orphans(5 if args.quick else 20)
     emit({"bench": "faults", "kill_trials": kill_trials, "kill_trials_intact": intact,
           "flood_peak_rss_mb": round(peak, 1), "fuzz_cases": fuzz_cases,
-          "fuzz_failures": fuzz_failures})  # fmt: skip
+          "fuzz_failures": fuzz_failures,
+          "campaign_rss_growth_kib_per_scenario": round(growth, 3),
+          "orphans_after_sigkill": orphans})  # fmt: skip
 
 
 if __name__ == "__main__":

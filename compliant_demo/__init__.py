@@ -6,6 +6,9 @@ of the target joint. The core modules never import rclpy; ROS 2 adapters live in
 ``compliant_demo.nodes``.
 """
 
+# First import: numba's compiled-function cache must go to a per-user directory, never into the
+# installed package, and numba reads NUMBA_CACHE_DIR once, when it is imported.
+import compliant_demo._numba_cache  # noqa: F401
 from compliant_demo.exceptions import (
     CompliantDemoError,
     InvalidInputError,

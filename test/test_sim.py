@@ -1,7 +1,8 @@
 """Joint simulation against closed forms: second-order responses, spectra, energy, mechanisms.
 
 Every reference value comes from a textbook formula named beside the check, never from a run
-of this code.
+of this code. Book sections and paper citations beside the checks were written from memory;
+the formulas themselves are standard and are restated in full next to each check.
 """
 
 from __future__ import annotations
@@ -55,8 +56,9 @@ def test_step_response_overshoot_and_peak_time(zeta):
     q = result.q[:, 0, 0]
     peak = int(np.argmax(q))
     omega_n = math.sqrt(STIFFNESS / INERTIA)
-    # Ogata, Modern Control Engineering, 5th ed., sec. 5-3: M_p = exp(-zeta*pi/sqrt(1-zeta^2)),
-    # t_p = pi / (omega_n*sqrt(1-zeta^2)) for the underdamped second-order step response
+    # Ogata, Modern Control Engineering, 5th ed., sec. 5-3 (edition and section from memory):
+    # M_p = exp(-zeta*pi/sqrt(1-zeta^2)), t_p = pi / (omega_n*sqrt(1-zeta^2)) for the
+    # underdamped second-order step response
     overshoot = math.exp(-zeta * math.pi / math.sqrt(1 - zeta**2))
     t_peak = math.pi / (omega_n * math.sqrt(1 - zeta**2))
     assert q[peak] / amplitude - 1 == pytest.approx(overshoot, rel=1e-4, abs=1e-6)
@@ -171,7 +173,11 @@ def test_energy_balance_closes_with_rk4():
 
 def test_stiffness_injection_matches_closed_form_for_a_stiffness_ramp():
     # hold the link (inertia huge, no motion to speak of) deflected by d while K ramps:
-    # injected energy = 1/2 * (K_end - K_start) * d^2 (the integrand 1/2*dK/dt*d^2 with d fixed)
+    # injected energy = 1/2 * (K_end - K_start) * d^2 (the integrand 1/2*dK/dt*d^2 with d fixed).
+    # Textbook / common practice: the energy of a linear spring is 1/2*K*d^2, and its time
+    # derivative at fixed d is 1/2*dK/dt*d^2. This is the power term that energy-tank schemes
+    # for variable stiffness account for (Ferraguti, Secchi, Fantuzzi, "A tank-based approach to
+    # impedance control with variable stiffness", ICRA 2013; reference from memory).
     joint = _joint(inertia=1e9)
     n, d = 500, 0.1
     k = np.linspace(20.0, 120.0, n)[:, None]
@@ -205,7 +211,10 @@ def test_gravity_static_equilibrium():
     n = 4000
     result = simulate([joint], _ideal(), _constant(0.5, n), _constant(STIFFNESS, n), q0=0.5)
     q = result.q[-1, 0, 0]
-    # statics: spring torque balances gravity, K*(0.5 - q) = m*g*l*sin(q)
+    # statics: spring torque balances gravity, K*(0.5 - q) = m*g*l*sin(q). Textbook / common
+    # practice: at rest the torques sum to zero (Newton's second law with zero acceleration);
+    # a point mass m at distance l pulls with m*g*l*sin(q), q measured from the hanging-down
+    # position (the model's convention, gravity_offset 0). g is standard gravity (ISO 80000-3).
     assert STIFFNESS * (0.5 - q) == pytest.approx(1.0 * GRAVITY * 0.2 * math.sin(q), abs=1e-6)
 
 
@@ -237,7 +246,9 @@ def test_hold_blocks_the_link_and_reports_the_reaction():
     assert held.sum() == 300
     q_held = result.q[held, 0, 0]
     assert np.all(q_held == q_held[0]) and np.all(result.dq[held, 0, 0] == 0)
-    # Newton: the hold's reaction cancels the spring torque on the still link
+    # Newton's second law with zero acceleration (textbook / common practice): the held link
+    # neither moves nor accelerates, so the hold's reaction cancels the only other torque on
+    # it, the spring's -K*(q - 0) (no damping, no gravity, velocity zero).
     assert np.allclose(result.tau_external[held, 0, 0], STIFFNESS * q_held, atol=1e-12)
     assert not held[-1] and np.abs(result.dq[-1, 0, 0]) > 0
 
@@ -247,7 +258,9 @@ def test_impulse_gives_velocity_jump_and_its_energy():
     schedule = PerturbationSchedule(perturbations=[Impulse(onset_s=0.004, magnitude=0.02)])
     result = simulate([_joint()], _ideal(), _constant(0.0, n), _constant(STIFFNESS, n),
                       schedules=[schedule])
-    # impulse-momentum: delta(dq) = J / I; the work done is the kinetic energy given
+    # angular impulse-momentum theorem (textbook / common practice): from rest, an impulse J
+    # gives delta(dq) = J / I, and the work it does is the kinetic energy given, J^2 / (2*I).
+    # The link starts at its equilibrium (q = 0, eq = 0), so no other torque acts before it.
     assert result.dq[4, 0, 0] == pytest.approx(0.02 / INERTIA, rel=1e-12)
     assert result.energy.perturbation_work[4, 0, 0] == pytest.approx(
         0.5 * 0.02**2 / INERTIA, rel=1e-12
@@ -275,7 +288,9 @@ def test_antagonistic_stiffness_formula_independent_of_link_angle():
     theta1, theta2 = 0.3, 0.1
     phi0 = 0.5 * (theta1 - theta2) + params.pretension_offset
     q = np.linspace(0.2 - phi0 + 1e-3, 0.2 + phi0 - 1e-3, 41)  # both springs taut
-    # Migliore, Brown, DeWeerth, ICRA 2005: K = 2*k1 + 2*k2*(theta1 - theta2 + 2*d0)
+    # Migliore, Brown, DeWeerth, ICRA 2005 (paper named from memory, no equation number):
+    # K = 2*k1 + 2*k2*(theta1 - theta2 + 2*d0); it also follows by differentiating the two
+    # quadratic tension laws (common practice), which the central difference below checks.
     expected = 2 * params.k1 + 2 * params.k2 * (theta1 - theta2 + 2 * params.pretension_offset)
     assert np.allclose(antagonistic_stiffness(params, q, theta1, theta2), expected, rtol=1e-12)
     h = 1e-6  # central difference of the torque, independent of the stiffness function
@@ -290,7 +305,12 @@ def test_antagonistic_stiffness_drops_when_one_spring_goes_slack():
     phi0 = 0.5 * float(theta1 - theta2)
     q = np.array([phi0 - 1e-6, phi0 + 1e-6, phi0 + 0.05])
     k = antagonistic_stiffness(params, q, theta1, theta2)
-    # past the slack point only spring 2 (elongation q - theta2) acts: K = k1 + 2*k2*phi2
+    # past the slack point only spring 2 (elongation q - theta2) acts: K = k1 + 2*k2*phi2.
+    # Closed form by differentiation (common practice): each tension-only spring pulls with
+    # k1*phi + k2*phi^2 for elongation phi > 0 and nothing when slack, so its stiffness is
+    # k1 + 2*k2*phi while taut and 0 when slack. The quadratic spring law is the one of the
+    # antagonistic joint of Migliore, Brown, DeWeerth, ICRA 2005 (from memory). At the slack
+    # point spring 1 still had phi = 0, so the joint loses exactly k1 there.
     assert k[0] == pytest.approx(100.0, rel=1e-5)
     assert k[1] == pytest.approx(100.0 - params.k1, rel=1e-5)
     assert k[2] == pytest.approx(params.k1 + 2 * params.k2 * (q[2] - theta2), rel=1e-12)

@@ -1,0 +1,140 @@
+"""numba's compiled-function cache goes to a per-user directory, never into the package.
+
+Each test runs a numba-compiled function in a fresh interpreter that imports a copy of the
+package from a temporary directory, so a file written beside the sources would show up there.
+"""
+
+from __future__ import annotations
+
+import ast
+import os
+import shutil
+import stat
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+# Two short series through the DTW kernel (numba.njit(cache=True)); prints the cache dir in effect.
+_RUN_NUMBA = (
+    "import os, numpy as np\n"
+    "from compliant_demo.alignment import dtw\n"
+    "rng = np.random.default_rng(7)\n"
+    "distance, path = dtw(rng.normal(size=(40, 1)), rng.normal(size=(30, 1)))\n"
+    "assert np.isfinite(distance) and path.shape[1] == 2\n"
+    "print(os.environ['NUMBA_CACHE_DIR'])\n"
+)
+
+
+def _package_copy(tmp_path: Path) -> Path:
+    site = tmp_path / "site"
+    shutil.copytree(ROOT / "compliant_demo", site / "compliant_demo",
+                    ignore=shutil.ignore_patterns("__pycache__"))
+    return site
+
+
+def _files(tree: Path) -> set[Path]:
+    return {p.relative_to(tree) for p in tree.rglob("*") if p.is_file()}
+
+
+def _run(site: Path, env_changes: dict[str, str | None], cwd: Path) -> str:
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(site)
+    # Python's own bytecode cache would also land in the copy; it is not what is under test.
+    env["PYTHONDONTWRITEBYTECODE"] = "1"
+    for key, value in env_changes.items():
+        if value is None:
+            env.pop(key, None)
+        else:
+            env[key] = value
+    result = subprocess.run([sys.executable, "-c", _RUN_NUMBA], env=env, cwd=cwd,
+                            capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    return result.stdout.strip().splitlines()[-1]
+
+
+@pytest.mark.parametrize("xdg", [True, False], ids=["XDG_CACHE_HOME", "home-dot-cache"])
+def test_cache_files_go_to_the_user_cache_and_nothing_into_the_package(tmp_path, xdg):
+    site = _package_copy(tmp_path)
+    before = _files(site)
+    home = tmp_path / "home"
+    home.mkdir()
+    cache_home = tmp_path / "xdg-cache"
+    env = {"HOME": str(home), "NUMBA_CACHE_DIR": None,
+           "XDG_CACHE_HOME": str(cache_home) if xdg else None}
+    expected = (cache_home if xdg else home / ".cache") / "compliant_demo" / "numba"
+
+    in_effect = _run(site, env, cwd=tmp_path)
+
+    assert Path(in_effect) == expected
+    assert _files(site) == before
+    assert not list(site.rglob("__pycache__"))
+    assert any(p.suffix in {".nbi", ".nbc"} for p in expected.rglob("*")), "no cache written"
+    assert stat.S_IMODE(expected.stat().st_mode) == 0o700
+
+
+def test_a_numba_cache_dir_set_by_the_user_is_kept(tmp_path):
+    site = _package_copy(tmp_path)
+    before = _files(site)
+    chosen = tmp_path / "my-numba-cache"
+    home = tmp_path / "home"
+    home.mkdir()
+    env = {"HOME": str(home), "XDG_CACHE_HOME": None, "NUMBA_CACHE_DIR": str(chosen)}
+
+    in_effect = _run(site, env, cwd=tmp_path)
+
+    assert Path(in_effect) == chosen
+    assert any(p.suffix == ".nbi" for p in chosen.rglob("*"))
+    assert not (home / ".cache").exists()
+    assert _files(site) == before
+
+
+def test_an_unusable_home_falls_back_to_a_private_temp_dir(tmp_path):
+    site = _package_copy(tmp_path)
+    before = _files(site)
+    blocker = tmp_path / "not-a-dir"
+    blocker.write_text("a file where the cache home should be")
+    temp_root = tmp_path / "tmp"
+    temp_root.mkdir()
+    env = {"HOME": str(tmp_path), "XDG_CACHE_HOME": str(blocker), "NUMBA_CACHE_DIR": None,
+           "TMPDIR": str(temp_root)}
+
+    in_effect = _run(site, env, cwd=tmp_path)
+
+    expected = temp_root / f"compliant_demo-numba-{os.getuid()}"
+    assert Path(in_effect) == expected
+    assert stat.S_IMODE(expected.stat().st_mode) == 0o700
+    assert any(p.suffix == ".nbi" for p in expected.rglob("*"))
+    assert _files(site) == before
+
+
+def _numba_importers() -> list[str]:
+    modules = []
+    for path in sorted((ROOT / "compliant_demo").rglob("*.py")):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        for node in ast.walk(tree):
+            names = ([alias.name for alias in node.names] if isinstance(node, ast.Import)
+                     else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            if any(name.split(".")[0] == "numba" for name in names):
+                relative = path.relative_to(ROOT).with_suffix("")
+                modules.append(".".join(p for p in relative.parts if p != "__init__"))
+                break
+    return modules
+
+
+def test_every_numba_importer_sees_the_user_cache_dir(tmp_path):
+    # numba reads NUMBA_CACHE_DIR once, at its import: each module that imports numba, imported
+    # first in a fresh interpreter, must leave numba configured with the per-user directory.
+    importers = _numba_importers()
+    assert importers, "the package no longer uses numba; drop the cache set-up and this test"
+    env = dict(os.environ, PYTHONPATH=str(ROOT), XDG_CACHE_HOME=str(tmp_path / "cache"))
+    env.pop("NUMBA_CACHE_DIR", None)
+    for module in importers:
+        code = f"import {module}\nimport numba.core.config as c\nprint(c.CACHE_DIR)\n"
+        result = subprocess.run([sys.executable, "-c", code], env=env, cwd=tmp_path,
+                                capture_output=True, text=True, timeout=120)
+        assert result.returncode == 0, result.stderr
+        assert result.stdout.strip() == str(tmp_path / "cache" / "compliant_demo" / "numba")
