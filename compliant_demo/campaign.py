@@ -17,6 +17,7 @@ import json
 import math
 import multiprocessing
 import os
+import sys
 import time
 from collections.abc import Callable, Generator, Mapping, Sequence
 from dataclasses import dataclass, field
