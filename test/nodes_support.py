@@ -16,7 +16,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from compliant_demo.launch_file import read_launch_file
+from compliant_demo.app.launch_file import read_launch_file
 
 ROOT = Path(__file__).resolve().parent.parent
 LAUNCH = ROOT / "launch"

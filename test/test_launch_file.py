@@ -8,15 +8,15 @@ from pathlib import Path
 
 import pytest
 
-from compliant_demo.cli import main as cli_main
-from compliant_demo.exceptions import LaunchFileError
-from compliant_demo.launch_file import (
+from compliant_demo.app.launch_file import (
     NODE_MODULES,
     ParameterFile,
     ParameterValue,
     parse_launch_arguments,
     read_launch_file,
 )
+from compliant_demo.cli import main as cli_main
+from compliant_demo.exceptions import LaunchFileError
 
 ROOT = Path(__file__).resolve().parent.parent
 LAUNCH_FILES = sorted((ROOT / "launch").glob("*.launch.xml"))

@@ -9,18 +9,18 @@ import os
 import pytest
 from _chromium import visit
 
-from compliant_demo.cli import main
-from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.perturbation import PERTURBATION_KINDS
-from compliant_demo.report import GroundTruth
-from compliant_demo.store import DemoStore
-from compliant_demo.tour import (
+from compliant_demo.app.report_content import GroundTruth
+from compliant_demo.app.supervisor import node_environment
+from compliant_demo.app.tour import (
     TourError,
     TourSettings,
-    node_environment,
     package_launch_file,
     run_tour,
 )
+from compliant_demo.cli import main
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.perturbation import PERTURBATION_KINDS
+from compliant_demo.store import DemoStore
 
 DOMAIN_ID = 47  # this file's own ROS domain (tests use 20-99)
 

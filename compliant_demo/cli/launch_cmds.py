@@ -15,12 +15,13 @@ import sys
 import time
 from pathlib import Path
 
-from compliant_demo.launch_file import (
+from compliant_demo.app.launch_file import (
     LaunchDescription,
     parse_launch_arguments,
     read_launch_file,
     start_nodes,
 )
+from compliant_demo.app.supervisor import describe_exit, reap, stop_children
 
 __all__ = ["register"]
 
@@ -69,32 +70,23 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def _supervise(description: LaunchDescription, until: int | None) -> int:
-    processes = start_nodes(description)
-    signal_times: list[float] = []
+    children = start_nodes(description)
+    stopping: list[int] = []
 
     def forward(signum: int, _frame: object) -> None:
-        signal_times.append(time.monotonic())
-        for process in processes:
-            if process.poll() is None:
-                process.send_signal(signum)
+        stopping.append(signum)
 
     previous = {s: signal.signal(s, forward) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
-        while any(p.poll() is None for p in processes):
+        while reap(children) and not stopping:
             time.sleep(0.1)
-            if until is not None and processes[until].poll() is not None and not signal_times:
-                forward(signal.SIGINT, None)
-            # A node that ignores the forwarded signal for the grace period is killed.
-            if signal_times and time.monotonic() - signal_times[0] > _GRACE_S:
-                for process in processes:
-                    if process.poll() is None:
-                        process.kill()
+            if until is not None and not children[until].running():
+                stopping.append(signal.SIGINT)
     finally:
+        codes = stop_children(children)
         for signum, handler in previous.items():
             signal.signal(signum, handler)
-    for node, process in zip(description.nodes, processes, strict=True):
-        if process.returncode:
-            name = node.name or node.executable
-            print(f"node {name} exited with {process.returncode}", file=sys.stderr)
-    return next((abs(p.returncode) for p in processes if p.returncode), 0)
-
+    for name, code in codes.items():
+        if code:
+            print(f"node {name} {describe_exit(code)}", file=sys.stderr)
+    return next((abs(code) for code in codes.values() if code), 0)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from compliant_demo.app.tour import record_demonstrations, run_tag
 from compliant_demo.cli._job_options import (
     add_progress_option,
     non_negative_int,
@@ -12,7 +13,6 @@ from compliant_demo.cli._job_options import (
 )
 from compliant_demo.cli.common import add_json_option, add_store_option, emit_json
 from compliant_demo.cli.tour_cmds import add_recording_options, recording_settings
-from compliant_demo.tour import record_demonstrations, run_tag
 
 __all__ = ["register"]
 

@@ -8,6 +8,7 @@ from pathlib import Path
 
 from tqdm import tqdm
 
+from compliant_demo.app.report_content import GroundTruth, collect_report_content
 from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
@@ -18,7 +19,7 @@ from compliant_demo.cli._job_options import (
 )
 from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.report import write_report
 from compliant_demo.store import DemoStore
 
 __all__ = ["register", "DEFAULT_OUT"]

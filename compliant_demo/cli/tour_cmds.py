@@ -7,6 +7,7 @@ import os
 from pathlib import Path
 from typing import Any
 
+from compliant_demo.app.tour import TourSettings, run_tour
 from compliant_demo.cli._job_options import (
     add_backend_options,
     add_plant_option,
@@ -18,7 +19,6 @@ from compliant_demo.cli._job_options import (
 )
 from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.tour import TourSettings, run_tour
 
 __all__ = ["register", "default_domain", "add_recording_options", "recording_settings"]
 

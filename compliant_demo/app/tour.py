@@ -11,7 +11,6 @@ ground truth. Nothing here imports rclpy: the nodes are separate processes.
 from __future__ import annotations
 
 import os
-import signal
 import subprocess
 import sys
 import time
@@ -23,6 +22,9 @@ from typing import Any
 
 from tqdm import tqdm
 
+from compliant_demo.app.launch_file import read_launch_file, start_nodes
+from compliant_demo.app.report_content import GroundTruth, collect_report_content
+from compliant_demo.app.supervisor import node_environment, stop_children
 from compliant_demo.campaign import (
     CampaignSummary,
     ReplayCampaign,
@@ -30,9 +32,8 @@ from compliant_demo.campaign import (
     run_campaign,
 )
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
-from compliant_demo.launch_file import read_launch_file, start_nodes
 from compliant_demo.learning import load_skill
-from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.report import write_report
 from compliant_demo.runtime import LearnRequest, learn_from_store, load_plant
 from compliant_demo.store import DemoStore
 
@@ -43,12 +44,10 @@ __all__ = [
     "run_tour",
     "package_file",
     "package_launch_file",
-    "node_environment",
 ]
 
 SKILL = "cork_seat"
 DEFAULT_PLANT = "joint_cork_seat_antagonistic.yaml"
-_STOP_GRACE_S = 10.0
 
 
 class TourError(CompliantDemoError, RuntimeError):
@@ -159,7 +158,7 @@ def package_file(folder: str, name: str) -> Path:
     """A file of the package's ``launch/`` or ``config/``: in the source tree or installed under
     ``share/compliant_demo``."""
     candidates = [
-        Path(__file__).resolve().parent.parent / folder / name,
+        Path(__file__).resolve().parents[2] / folder / name,
         Path(sys.prefix) / "share" / "compliant_demo" / folder / name,
     ]
     for candidate in candidates:
@@ -173,16 +172,6 @@ def package_file(folder: str, name: str) -> Path:
 def package_launch_file(name: str) -> Path:
     """A launch file of the package (see :func:`package_file`)."""
     return package_file("launch", name)
-
-
-def node_environment(domain_id: int) -> dict[str, str]:
-    """This process's environment with DDS confined to loopback and the given ROS domain."""
-    env = dict(os.environ)
-    env["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
-    env["ROS_DOMAIN_ID"] = str(domain_id)
-    # Ship unbuffered logs so the tail in an error message is current.
-    env["PYTHONUNBUFFERED"] = "1"
-    return env
 
 
 def _complete_with_tag(store_path: Path, tag: str) -> list[str]:
@@ -203,19 +192,6 @@ def _tail(path: Path, lines: int = 8) -> str:
     except OSError:
         return ""
     return " | ".join(text[-lines:])
-
-
-def _stop(processes: list[subprocess.Popen]) -> None:
-    for process in processes:
-        if process.poll() is None:
-            process.send_signal(signal.SIGINT)
-    deadline = time.monotonic() + _STOP_GRACE_S
-    for process in processes:
-        try:
-            process.wait(timeout=max(0.1, deadline - time.monotonic()))
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
 
 
 def _node_overrides(settings: TourSettings, tag: str) -> dict[str, dict[str, str]]:
@@ -252,10 +228,10 @@ def record_demonstrations(
                                 f"(nodes: {names})")
     log_path = settings.out_dir / "nodes.log"
     with open(log_path, "w", encoding="utf-8") as log:
-        processes = start_nodes(description, env=node_environment(settings.domain_id),
+        children = start_nodes(description, env=node_environment(settings.domain_id),
                                 extra_parameters=_node_overrides(settings, tag),
                                 stdout=log.fileno(), stderr=subprocess.STDOUT)
-    teacher = processes[names.index("teacher")]
+    teacher = children[names.index("teacher")].process
     deadline = time.monotonic() + settings.record_timeout_s
     recorded: list[str] = []
     try:
@@ -267,9 +243,9 @@ def record_demonstrations(
                 teacher_done = teacher.poll() is not None
                 if len(recorded) >= settings.n_demonstrations and teacher_done:
                     break
-                for name, process in zip(names, processes, strict=True):
-                    if process.poll() not in (None, 0):
-                        raise TourError(f"{name} node exited with {process.returncode} during "
+                for child in children:
+                    if child.process.poll() not in (None, 0):
+                        raise TourError(f"{child.name} node exited with {child.returncode} during "
                                         f"recording; log {log_path}: {_tail(log_path)}")
                 if teacher_done:
                     # The teacher stops the recorder before it exits; give the writer a moment.
@@ -289,7 +265,7 @@ def record_demonstrations(
                 time.sleep(0.2)
             bar.update(len(recorded) - bar.n)
     finally:
-        _stop(processes)
+        stop_children(children)
     return recorded[: settings.n_demonstrations], truth_path
 
 

@@ -16,13 +16,13 @@ import importlib.util
 import os
 import re
 import shutil
-import subprocess
 import sys
 import xml.etree.ElementTree as ElementTree
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+from compliant_demo.app.supervisor import Child, start_child
 from compliant_demo.exceptions import LaunchFileError
 
 __all__ = [
@@ -234,8 +234,11 @@ def start_nodes(
     extra_parameters: Mapping[str, Mapping[str, str]] | None = None,
     stdout: int | None = None,
     stderr: int | None = None,
-) -> list[subprocess.Popen]:
+) -> list[Child]:
     """Start every declared node as its own process, in declaration order.
+
+    Each node goes through :func:`compliant_demo.app.supervisor.start_child`: its own process
+    group, ended by the kernel when this process dies.
 
     Parameters
     ----------
@@ -247,24 +250,18 @@ def start_nodes(
     stdout, stderr : optional
         Passed to :class:`subprocess.Popen` (e.g. ``subprocess.PIPE``); default inherits ours.
     """
-    processes: list[subprocess.Popen] = []
+    children: list[Child] = []
     try:
         for node in description.nodes:
             extra = (extra_parameters or {}).get(node.name or "", None)
-            processes.append(
-                subprocess.Popen(
-                    node.command_line(extra),
-                    env=dict(env) if env is not None else None,
-                    stdout=stdout,
-                    stderr=stderr,
-                )
-            )
+            children.append(start_child(node.name or node.executable, node.command_line(extra),
+                                        env=env, stdout=stdout, stderr=stderr))
     except OSError as exc:
-        for process in processes:
-            process.kill()
-            process.wait()
+        for child in children:
+            child.process.kill()
+            child.process.wait()
         raise LaunchFileError(f"{description.path}: cannot start node: {exc}") from None
-    return processes
+    return children
 
 
 def _override(name: str, value: str) -> str:
