@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import ast
+import re
 import sys
 from pathlib import Path
 
@@ -205,7 +206,37 @@ def test_launch_command_reports_a_bad_file_as_a_user_error(tmp_path: Path, capsy
     assert "executable 'nope'" in capsys.readouterr().err
 
 
-def test_launch_command_refuses_an_unknown_until_node(capsys) -> None:
-    path = ROOT / "launch" / "record.launch.xml"
-    assert cli_main(["launch", str(path), "--until", "ghost"]) == 2
-    assert "no node named 'ghost'" in capsys.readouterr().err
+@pytest.mark.parametrize("extra", [[], ["--print"]])
+def test_launch_command_refuses_an_unknown_until_node_before_starting_anything(
+    capsys, extra: list[str]
+) -> None:
+    path = ROOT / "launch" / "pipeline.launch.xml"
+    assert cli_main(["launch", str(path), "--until", "teachr", *extra]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""  # nothing printed, nothing started
+    assert re.search(r"--until 'teachr': .*pipeline\.launch\.xml declares no node of that name "
+                     r"\(nodes: recorder, teacher, learner, replay\); did you mean 'teacher'\?",
+                     captured.err)
+
+
+@pytest.mark.parametrize(("launch_file", "arguments", "ending"), [
+    ("pipeline.launch.xml", {}, {"recorder": False, "teacher": True, "learner": True,
+                                 "replay": True}),
+    ("record.launch.xml", {}, {"recorder": False, "teacher": True}),
+    ("learn.launch.xml", {}, {"learner": False}),  # fits on request only
+    ("learn.launch.xml", {"fit_when": "2"}, {"learner": False}),  # fits, then keeps serving
+    ("learn.launch.xml", {"fit_when": "2", "exit_after_fit": "true"}, {"learner": True}),
+    ("replay.launch.xml", {"auto": "true", "exit_after_run": "true"}, {"replay": True}),
+    ("replay.launch.xml", {"exit_after_run": "true"}, {"replay": False}),
+])
+def test_nodes_that_end_by_themselves_follow_their_parameters(
+    launch_file: str, arguments: dict[str, str], ending: dict[str, bool]
+) -> None:
+    description = read_launch_file(ROOT / "launch" / launch_file, arguments)
+    assert {node.name: node.ends_by_itself() for node in description.nodes} == ending
+
+
+def test_the_teacher_told_to_stay_does_not_end_by_itself() -> None:
+    teacher = read_launch_file(ROOT / "launch" / "record.launch.xml").node("teacher")
+    assert teacher.resolved_parameters()["exit_when_done"] is True  # from config/teacher.yaml
+    assert not teacher.ends_by_itself({"exit_when_done": "false"})
