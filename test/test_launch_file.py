@@ -91,7 +91,18 @@ def test_reader_resolves_arguments_files_and_executables(tmp_path: Path) -> None
         ("<launch><node pkg='compliant_demo' exec='teacher_node'><remap from='a' to='b'/>"
          "</node></launch>", {}, r"unsupported element <remap>"),
         ("<launch><node pkg='compliant_demo' exec='no_such_node'/></launch>", {},
-         r"executable 'no_such_node' of package 'compliant_demo' not found"),
+         r"<node exec='no_such_node'>: not a node; only the package's own executables run "
+         r"\(learner_node, recorder_node, replay_node, teacher_node\)"),
+        ("<launch><node pkg='compliant_demo' exec='../../bin/teacher_node'/></launch>", {},
+         r"<node exec='../../bin/teacher_node'>: a path; only the package's own executables"),
+        ("<launch><node pkg='compliant_demo' exec='/bin/sh'/></launch>", {},
+         r"<node exec='/bin/sh'>: a path; only the package's own executables"),
+        ("<launch><node pkg='compliant_demo' exec='..'/></launch>", {},
+         r"<node exec='..'>: a path; only"),
+        ("<launch><arg name='tool' default='sh'/><node pkg='compliant_demo' exec='$(var tool)'/>"
+         "</launch>", {}, r"<node exec='sh'>: another program on PATH; only the package's own"),
+        ("<launch><node pkg='compliant_demo' exec='python3'/></launch>", {},
+         r"<node exec='python3'>: another program on PATH"),
         ("<launch><node pkg='other_pkg' exec='talker'/></launch>", {},
          r"only compliant_demo nodes"),
         ("<launch><node pkg='compliant_demo' exec='teacher_node'>"
@@ -203,7 +214,7 @@ def test_launch_command_prints_the_node_command_lines(capsys) -> None:
 def test_launch_command_reports_a_bad_file_as_a_user_error(tmp_path: Path, capsys) -> None:
     path = _package(tmp_path, "<launch><node pkg='compliant_demo' exec='nope'/></launch>")
     assert cli_main(["launch", str(path)]) == 2
-    assert "executable 'nope'" in capsys.readouterr().err
+    assert "<node exec='nope'>: not a node" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize("extra", [[], ["--print"]])

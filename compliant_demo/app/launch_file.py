@@ -464,6 +464,17 @@ def _resolve_executable(
         raise LaunchFileError(
             f"{path}: <node pkg={package!r}>: only {PACKAGE} nodes can be started by this reader"
         )
+    if executable not in NODE_MODULES:
+        if "/" in executable or "\\" in executable or executable in (".", ".."):
+            kind = "a path"
+        elif shutil.which(executable):
+            kind = "another program on PATH"
+        else:
+            kind = "not a node"
+        raise LaunchFileError(
+            f"{path}: <node exec={executable!r}>: {kind}; only the package's own executables "
+            f"run ({', '.join(sorted(NODE_MODULES))})"
+        )
     script_dirs = [Path(sys.prefix) / "lib" / package]
     prefix = os.environ.get("AMENT_PREFIX_PATH", "")
     script_dirs += [Path(p) / "lib" / package for p in prefix.split(os.pathsep) if p]
