@@ -29,6 +29,7 @@ __all__ = [
     "StopGrace",
     "node_environment",
     "start_child",
+    "run_child",
     "stop_children",
     "reap",
     "describe_exit",
@@ -139,6 +140,29 @@ def start_child(
         preexec_fn=lambda: _die_with_parent(parent_pid),
     )
     return Child(name, process)
+
+
+def run_child(
+    name: str,
+    command: Sequence[str],
+    *,
+    timeout_s: float,
+    env: Mapping[str, str] | None = None,
+    cwd: str | os.PathLike | None = None,
+    grace: StopGrace | None = None,
+) -> subprocess.CompletedProcess:
+    """Run ``command`` as a child (see :func:`start_child`) to its end, with its output captured
+    as text; a child still running after ``timeout_s`` is stopped (:func:`stop_children`) and
+    :class:`subprocess.TimeoutExpired` raised."""
+    child = start_child(name, command, env=env, cwd=cwd, stdout=subprocess.PIPE,
+                        stderr=subprocess.PIPE, text=True)
+    try:
+        stdout, stderr = child.process.communicate(timeout=timeout_s)
+    except subprocess.TimeoutExpired:
+        stop_children([child], grace)
+        stdout, stderr = child.process.communicate()
+        raise subprocess.TimeoutExpired(list(command), timeout_s, stdout, stderr) from None
+    return subprocess.CompletedProcess(list(command), child.process.returncode, stdout, stderr)
 
 
 def reap(children: Iterable[Child]) -> list[Child]:
