@@ -17,8 +17,10 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import IO
 
@@ -31,6 +33,7 @@ __all__ = [
     "start_child",
     "run_child",
     "stop_children",
+    "deferred_signals",
     "reap",
     "describe_exit",
 ]
@@ -198,6 +201,27 @@ def stop_children(
             child.signal(signum)
         running = _wait_all(running, wait_s)
     return {child.name: child.returncode for child in children}
+
+
+@contextmanager
+def deferred_signals() -> Iterator[list[int]]:
+    """While the block runs, SIGINT and SIGTERM are noted (in the yielded list) instead of
+    interrupting it, so a second Ctrl-C cannot undo a clean shutdown half-way. Outside the main
+    thread, where handlers cannot be set, signals stay as they are."""
+    received: list[int] = []
+    if threading.current_thread() is not threading.main_thread():
+        yield received
+        return
+
+    def note(signum: int, _frame: object) -> None:
+        received.append(signum)
+
+    previous = {s: signal.signal(s, note) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield received
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
 
 
 def describe_exit(code: int | None) -> str:
