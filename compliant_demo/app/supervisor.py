@@ -122,6 +122,9 @@ def start_child(
 ) -> Child:
     """Start ``command`` in its own process group; it gets SIGTERM when this process dies.
 
+    The kernel ties the signal to the thread that starts the child: start children from a
+    thread that lives as long as they should (the main thread, as the command line does).
+
     Parameters
     ----------
     name : what reports call the child
