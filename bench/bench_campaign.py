@@ -13,7 +13,6 @@ is the summary ``{"bench": "campaign", ...}``.
 from __future__ import annotations
 
 import os
-import subprocess
 import sys
 import tempfile
 import time
@@ -21,6 +20,7 @@ from pathlib import Path
 
 from _timing import emit
 
+from compliant_demo.app.supervisor import node_environment, run_child
 from compliant_demo.campaign import ReplayCampaign, default_campaign_spec, run_campaign
 from compliant_demo.learning import learn_skill, save_skill
 from compliant_demo.plant import ReplayPlant
@@ -52,13 +52,14 @@ def _throughput(path: Path, skill_id: str, job: ReplayCampaign, **backend) -> fl
 
 
 def _tour_seconds(workdir: Path) -> float:
-    env = dict(os.environ, ROS_AUTOMATIC_DISCOVERY_RANGE="LOCALHOST",
-               ROS_DOMAIN_ID=str(TOUR_DOMAIN_ID))
     entry = "from compliant_demo.cli import main; raise SystemExit(main())"
     command = [sys.executable, "-c", entry, "tour", "--store", str(workdir / "tour.sqlite"),
                "--out", str(workdir / "tour"), "--domain-id", str(TOUR_DOMAIN_ID), "--quiet"]
     started = time.perf_counter()
-    subprocess.run(command, env=env, check=True, stdout=subprocess.DEVNULL, timeout=600)
+    # A child of ours: it (and its node processes) die with the benchmark.
+    done = run_child("tour", command, timeout_s=600, env=node_environment(TOUR_DOMAIN_ID))
+    if done.returncode != 0:
+        raise SystemExit(f"tour failed with {done.returncode}: {done.stderr[-2000:]}")
     return time.perf_counter() - started
 
 

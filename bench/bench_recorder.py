@@ -12,8 +12,11 @@ that sends 7-joint sensor_msgs/JointState:
   counts (same QoS, same executor as our nodes) takes in from the same kind of flood, measured in
   the same run: ``--flood-pairs`` interleaved pairs, ratio of the medians.
 
-Every process gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST and ROS_DOMAIN_ID 131-133. Prints one
-JSON object per measurement; the last line is ``{"bench": "recorder", ...}``.
+Every process gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST and ROS_DOMAIN_ID 131-133. Every child
+is started through :mod:`compliant_demo.app.supervisor`, so it dies with the benchmark (even when a
+timeout kills it), and every wait and retry loop of a child is bounded by its deadline; SIGTERM
+ends the publisher at once. Prints one JSON object per measurement; the last line is
+``{"bench": "recorder", ...}``.
 """
 
 from __future__ import annotations
@@ -21,7 +24,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import signal
 import statistics
 import subprocess
 import sys
@@ -32,26 +34,44 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 if str(ROOT) not in sys.path:  # run as a plain script from a source checkout
     sys.path.insert(0, str(ROOT))
+
+from compliant_demo.app.supervisor import (  # noqa: E402  (after the source checkout is on the path)
+    Child,
+    StopGrace,
+    node_environment,
+    start_child,
+    stop_children,
+)
+
 JOINTS = [f"joint{i}" for i in range(1, 8)]
 QUEUE_DEPTH = 5000
 
 
+# Publishing, draining and the stop call together never take longer than this after --seconds.
+_PUBLISHER_SLACK_S = 60.0
+_STOP_GRACE = StopGrace(after_sigint_s=30.0)
+
+
 def _env(domain_id: int) -> dict[str, str]:
-    env = dict(os.environ)
-    env.update(ROS_AUTOMATIC_DISCOVERY_RANGE="LOCALHOST", ROS_DOMAIN_ID=str(domain_id))
+    env = node_environment(domain_id)
     env["PYTHONPATH"] = os.pathsep.join(p for p in (str(ROOT), env.get("PYTHONPATH")) if p)
-    env["PYTHONUNBUFFERED"] = "1"
     return env
 
 
 # -- child process roles ------------------------------------------------------------------------
 
 
-def _init_ros(name: str):
+def _init_ros(name: str, *, own_signals: bool = False):
+    """rclpy and a node; with ``own_signals`` rclpy installs no signal handlers, so SIGTERM ends
+    the process at once and SIGINT raises KeyboardInterrupt wherever the loop is."""
     import rclpy
     from rclpy.node import Node
+    from rclpy.signals import SignalHandlerOptions
 
-    rclpy.init()
+    if own_signals:
+        rclpy.init(signal_handler_options=SignalHandlerOptions.NO)
+    else:
+        rclpy.init()
     return rclpy, Node(name)
 
 
@@ -63,9 +83,11 @@ def _publisher_main(rate_hz: float, seconds: float, control: bool) -> None:
 
     from compliant_demo.nodes._common import recorded_qos, to_stamp
 
-    rclpy, node = _init_ros("bench_publisher")
+    rclpy, node = _init_ros("bench_publisher", own_signals=True)
+    # Every loop below ends by this deadline, whatever the subscriber does.
+    hard_deadline = time.monotonic() + seconds + _PUBLISHER_SLACK_S
     publisher = node.create_publisher(JointState, "joint_states", recorded_qos(QUEUE_DEPTH))
-    deadline = time.monotonic() + 30.0
+    deadline = min(time.monotonic() + 30.0, hard_deadline)
     while publisher.get_subscription_count() < 1 and time.monotonic() < deadline:
         rclpy.spin_once(node, timeout_sec=0.05)
 
@@ -93,7 +115,9 @@ def _publisher_main(rate_hz: float, seconds: float, control: bool) -> None:
         if elapsed >= seconds:
             break
         due = int(elapsed / period) + 1 if period else sent + 100
-        while sent < due:
+        # The deadline is checked on every pass: a subscriber that went away leaves the reliable
+        # history full, and every publish is then refused.
+        while sent < due and time.monotonic() - start < seconds:
             message.header.stamp = to_stamp(start_wall + sent * (period or 1e-6))
             values[0] = sent * 1e-6
             message.position = values
@@ -147,7 +171,7 @@ def _bare_main() -> None:
 # -- orchestration ------------------------------------------------------------------------------
 
 
-def _start_recorder(store: Path, domain_id: int, log: Path) -> subprocess.Popen:
+def _start_recorder(store: Path, domain_id: int, log: Path) -> Child:
     joints = "[" + ", ".join(JOINTS) + "]"
     command = [
         sys.executable, "-m", "compliant_demo.nodes.recorder", "--ros-args",
@@ -155,8 +179,9 @@ def _start_recorder(store: Path, domain_id: int, log: Path) -> subprocess.Popen:
         "-p", "stiffness_source:=none", "-p", f"queue_depth:={QUEUE_DEPTH}",
         "-p", "nominal_rate_hz:=1000.0",
     ]  # fmt: skip
-    return subprocess.Popen(command, env=_env(domain_id), stdout=log.open("wb"),
-                            stderr=subprocess.STDOUT)
+    with log.open("wb") as handle:
+        return start_child("recorder", command, env=_env(domain_id), stdout=handle,
+                           stderr=subprocess.STDOUT)
 
 
 def _run_publisher(rate_hz: float, seconds: float, domain_id: int, control: bool,
@@ -167,11 +192,13 @@ def _run_publisher(rate_hz: float, seconds: float, domain_id: int, control: bool
                "--rate", str(rate_hz), "--seconds", str(seconds)]
     if control:
         command.append("--control")
-    process = subprocess.Popen(command, env=_env(domain_id), stdout=subprocess.PIPE, text=True)
+    child = start_child("publisher", command, env=_env(domain_id), stdout=subprocess.PIPE,
+                        text=True)
+    process = child.process
     watched = psutil.Process(watch_pid) if watch_pid else None
     result: dict = {}
     cpu_start = wall_start = None
-    for line in process.stdout:
+    for line in process.stdout:  # ends when the publisher does (its loops are bounded)
         event = json.loads(line)
         if event.get("event") == "publishing" and watched is not None:
             times = watched.cpu_times()
@@ -182,18 +209,17 @@ def _run_publisher(rate_hz: float, seconds: float, domain_id: int, control: bool
                 times = watched.cpu_times()
                 cpu = times.user + times.system - cpu_start
                 result["cpu_fraction"] = cpu / (time.monotonic() - wall_start)
-    if process.wait(120) != 0:
-        raise SystemExit(f"publisher failed with {process.returncode}")
+    try:
+        status = process.wait(_PUBLISHER_SLACK_S)
+    except subprocess.TimeoutExpired:
+        status = stop_children([child])["publisher"]
+    if status != 0:
+        raise SystemExit(f"publisher failed with {status}")
     return result
 
 
-def _stop(process: subprocess.Popen) -> None:
-    process.send_signal(signal.SIGINT)
-    try:
-        process.wait(30)
-    except subprocess.TimeoutExpired:
-        process.kill()
-        process.wait()
+def _stop(child: Child) -> None:
+    stop_children([child], _STOP_GRACE)
 
 
 def _stored_samples(store: Path) -> list[int]:
@@ -222,16 +248,14 @@ def _loss_run(rate_hz: float, seconds: float, domain_id: int, work: Path) -> dic
 
 def _flood_bare(seconds: float, domain_id: int) -> float:
     """Messages per second a bare counting subscriber takes in from one flood."""
-    bare = subprocess.Popen(
-        [sys.executable, str(Path(__file__).resolve()), "--role", "bare"],
-        env=_env(domain_id), stdout=subprocess.PIPE, text=True,
-    )
+    bare = start_child("bare", [sys.executable, str(Path(__file__).resolve()), "--role", "bare"],
+                       env=_env(domain_id), stdout=subprocess.PIPE, text=True)
     try:
         flood = _run_publisher(0.0, seconds, domain_id, False)
         time.sleep(1.0)
     finally:
-        bare.send_signal(signal.SIGINT)
-    received = json.loads(bare.communicate(timeout=30)[0].strip().splitlines()[-1])["received"]
+        stop_children([bare], _STOP_GRACE)
+    received = json.loads(bare.process.stdout.read().strip().splitlines()[-1])["received"]
     return received / flood["seconds"]
 
 

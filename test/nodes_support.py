@@ -16,7 +16,14 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from compliant_demo.launch_file import read_launch_file
+from compliant_demo.app.launch_file import read_launch_file
+from compliant_demo.app.supervisor import (
+    Child,
+    node_environment,
+    run_child,
+    start_child,
+    stop_children,
+)
 
 ROOT = Path(__file__).resolve().parent.parent
 LAUNCH = ROOT / "launch"
@@ -24,20 +31,27 @@ LAUNCH = ROOT / "launch"
 
 def ros_env(domain_id: int) -> dict[str, str]:
     """This process's environment restricted to loopback discovery on ``domain_id``."""
-    env = dict(os.environ)
-    env["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
-    env["ROS_DOMAIN_ID"] = str(domain_id)
+    env = node_environment(domain_id)
     env["PYTHONPATH"] = os.pathsep.join(p for p in (str(ROOT), env.get("PYTHONPATH")) if p)
-    env["PYTHONUNBUFFERED"] = "1"
     return env
+
+
+def run_cli(arguments: Sequence[str], domain_id: int, timeout_s: float
+            ) -> subprocess.CompletedProcess:
+    """``compliant-demo ARGUMENTS`` as a child that dies with the test, output captured."""
+    command = [sys.executable, "-c", "import sys; from compliant_demo.cli import main; "
+               "sys.exit(main(sys.argv[1:]))", *arguments]
+    return run_child("compliant-demo", command, timeout_s=timeout_s, env=ros_env(domain_id),
+                     cwd=ROOT)
 
 
 class Nodes:
     """Processes started from a launch file (or a module), with their logs in one folder."""
 
-    def __init__(self, processes: list[subprocess.Popen], names: list[str], logs: list[Path]):
-        self.processes = processes
-        self.names = names
+    def __init__(self, children: list[Child], logs: list[Path]):
+        self.children = children
+        self.processes = [child.process for child in children]
+        self.names = [child.name for child in children]
         self.logs = logs
 
     def __getitem__(self, name: str) -> subprocess.Popen:
@@ -63,17 +77,8 @@ class Nodes:
         return self.wait(name, timeout_s)
 
     def close(self) -> None:
-        """SIGINT whatever still runs, then SIGKILL what ignores it."""
-        for process in self.processes:
-            if process.poll() is None:
-                process.send_signal(signal.SIGINT)
-        deadline = time.monotonic() + 10.0
-        for process in self.processes:
-            try:
-                process.wait(max(0.1, deadline - time.monotonic()))
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait()
+        """Stop whatever still runs (SIGINT, then SIGTERM, then SIGKILL) and reap it."""
+        stop_children(self.children)
 
 
 @contextmanager
@@ -90,16 +95,16 @@ def launched(
     names = [node.name or node.executable for node in description.nodes]
     logs = [log_dir / f"{name}.log" for name in names]
     handles = [path.open("wb") for path in logs]
-    processes: list[subprocess.Popen] = []
+    children: list[Child] = []
     try:
-        for node, handle in zip(description.nodes, handles, strict=True):
+        for name, node, handle in zip(names, description.nodes, handles, strict=True):
             extra = (extra_parameters or {}).get(node.name or "")
-            processes.append(subprocess.Popen(node.command_line(extra), env=ros_env(domain_id),
-                                              stdout=handle, stderr=subprocess.STDOUT))
-        nodes = Nodes(processes, names, logs)
+            children.append(start_child(name, node.command_line(extra), env=ros_env(domain_id),
+                                        stdout=handle, stderr=subprocess.STDOUT))
+        nodes = Nodes(children, logs)
         yield nodes
     finally:
-        Nodes(processes, names[: len(processes)], logs).close()
+        stop_children(children)
         for handle in handles:
             handle.close()
 
@@ -112,10 +117,10 @@ def start_module(
     command = [sys.executable, "-m", module, "--ros-args"]
     for parameter in parameters:
         command += ["-p", parameter]
-    process = subprocess.Popen(command, env=ros_env(domain_id), stdout=handle,
-                               stderr=subprocess.STDOUT)
+    child = start_child(name, command, env=ros_env(domain_id), stdout=handle,
+                        stderr=subprocess.STDOUT)
     handle.close()
-    return Nodes([process], [name], [log])
+    return Nodes([child], [log])
 
 
 def wait_for(

@@ -638,6 +638,8 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
 
     import psutil
 
+    from compliant_demo.app.supervisor import start_child
+
     folder = Path(folder)
     store_path = folder / "flood.sqlite" if store_path is None else Path(store_path)
     env = ros_environment(domain_id)
@@ -655,7 +657,8 @@ def run_flood(folder: str | Path, domain_id: int, *, flood_s: float = 4.0,
         *(["-r", f"__ns:=/{namespace}"] if namespace else []),
     ]  # fmt: skip
     log = (folder / "recorder.log").open("w")
-    recorder = subprocess.Popen(recorder_cmd, env=env, stdout=log, stderr=subprocess.STDOUT)
+    recorder = start_child("recorder", recorder_cmd, env=env, stdout=log,
+                           stderr=subprocess.STDOUT).process
     rss: list[tuple[float, float]] = []
     stop_sampling = threading.Event()
 

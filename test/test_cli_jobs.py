@@ -43,9 +43,12 @@ def store(tmp_path):
         ("learn", ["N*m/rad", "kg*m^2", "default: 30", "default: cork_seat"]),
         ("replay", ["N*m/rad/s", "default: 1", "rad", "Exits 0"]),
         ("campaign", ["N*m*s", "default: 350", "default: every core", "--resume"]),
-        ("report", ["N*m/rad", "default: ./compliant_demo_report", "self-contained"]),
-        ("tour", ["loopback", "default: 4", "ROS_DOMAIN_ID", "default: 350"]),
-    ("record", ["loopback", "N*m/rad", "default: 4", "ROS_DOMAIN_ID", "rad/s"]),
+        ("report", ["N*m/rad", "default: a folder of its own, compliant_demo_runs/report-",
+                    "self-contained"]),
+        ("tour", ["loopback", "default: 4", "ROS_DOMAIN_ID", "default: 350",
+                  "drawn afresh for each run and printed", "compliant_demo_runs/<run tag>"]),
+        ("simulate-teaching", ["loopback", "N*m/rad", "default: 4", "ROS_DOMAIN_ID", "rad/s",
+                               "simulated teacher", "another run holds it"]),
     ],
 )
 def test_help_explains_units_and_defaults(capsys, command, needles):

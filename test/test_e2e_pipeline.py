@@ -7,13 +7,11 @@ with a perturbation schedule; pipeline.launch.xml runs all four nodes on a fresh
 
 from __future__ import annotations
 
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import LAUNCH, ROOT, TestClient, launched, ros_env
+from nodes_support import LAUNCH, ROOT, TestClient, launched, run_cli
 
 from compliant_demo.learning import load_skill
 from compliant_demo.perturbation import load_schedule_yaml
@@ -87,14 +85,9 @@ def test_online_stiffness_matches_the_teachers_ground_truth_where_excited(record
 def learned(recorded):
     """The learner of learn.launch.xml started by ``compliant-demo launch``; fits by itself."""
     store, _truth, _nodes = recorded
-    command = [
-        sys.executable, "-c", "import sys; from compliant_demo.cli import main; "
-        "sys.exit(main(sys.argv[1:]))", "launch", str(LAUNCH / "learn.launch.xml"),
-        f"store:={store}", f"fit_when:={N_DEMOS}", "exit_after_fit:=true", "--until", "learner",
-    ]  # fmt: skip
-    result = subprocess.run(
-        command, env=ros_env(DOMAIN_ID), capture_output=True, text=True, timeout=120, cwd=ROOT
-    )
+    result = run_cli(["launch", str(LAUNCH / "learn.launch.xml"), f"store:={store}",
+                      f"fit_when:={N_DEMOS}", "exit_after_fit:=true", "--until", "learner"],
+                     DOMAIN_ID, timeout_s=120)
     return store, result
 
 
@@ -255,14 +248,9 @@ def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: P
 def test_launch_command_until_the_teacher_ends_stops_the_recorder_cleanly(tmp_path: Path) -> None:
     """``compliant-demo launch record.launch.xml --until teacher`` returns by itself, 0."""
     store = tmp_path / "store.sqlite"
-    command = [
-        sys.executable, "-c", "import sys; from compliant_demo.cli import main; "
-        "sys.exit(main(sys.argv[1:]))", "launch", str(LAUNCH / "record.launch.xml"),
-        f"store:={store}", "demos:=1", "seed:=4", "operator:=operator_b", "--until", "teacher",
-    ]  # fmt: skip
-    env = ros_env(PIPELINE_DOMAIN_ID)
-    result = subprocess.run(command, env=env, capture_output=True, text=True, timeout=90,
-                            cwd=ROOT)
+    result = run_cli(["launch", str(LAUNCH / "record.launch.xml"), f"store:={store}", "demos:=1",
+                      "seed:=4", "operator:=operator_b", "--until", "teacher"],
+                     PIPELINE_DOMAIN_ID, timeout_s=90)
     assert result.returncode == 0, result.stdout + result.stderr
     with DemoStore(store, read_only=True) as db:
         (info,) = db.find_demonstrations()

@@ -16,8 +16,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 from reliability_support import FUZZ_SETTINGS, count_case, fuzz_file, no_hang
 
+from compliant_demo.app.launch_file import read_launch_file
 from compliant_demo.exceptions import LaunchFileError
-from compliant_demo.launch_file import read_launch_file
 
 REPO = Path(__file__).resolve().parent.parent
 LAUNCH_FILES = sorted((REPO / "launch").glob("*.launch.xml"))

@@ -3,20 +3,21 @@
 from __future__ import annotations
 
 import ast
+import re
 import sys
 from pathlib import Path
 
 import pytest
 
-from compliant_demo.cli import main as cli_main
-from compliant_demo.exceptions import LaunchFileError
-from compliant_demo.launch_file import (
+from compliant_demo.app.launch_file import (
     NODE_MODULES,
     ParameterFile,
     ParameterValue,
     parse_launch_arguments,
     read_launch_file,
 )
+from compliant_demo.cli import main as cli_main
+from compliant_demo.exceptions import LaunchFileError
 
 ROOT = Path(__file__).resolve().parent.parent
 LAUNCH_FILES = sorted((ROOT / "launch").glob("*.launch.xml"))
@@ -90,7 +91,18 @@ def test_reader_resolves_arguments_files_and_executables(tmp_path: Path) -> None
         ("<launch><node pkg='compliant_demo' exec='teacher_node'><remap from='a' to='b'/>"
          "</node></launch>", {}, r"unsupported element <remap>"),
         ("<launch><node pkg='compliant_demo' exec='no_such_node'/></launch>", {},
-         r"executable 'no_such_node' of package 'compliant_demo' not found"),
+         r"<node exec='no_such_node'>: not a node; only the package's own executables run "
+         r"\(learner_node, recorder_node, replay_node, teacher_node\)"),
+        ("<launch><node pkg='compliant_demo' exec='../../bin/teacher_node'/></launch>", {},
+         r"<node exec='../../bin/teacher_node'>: a path; only the package's own executables"),
+        ("<launch><node pkg='compliant_demo' exec='/bin/sh'/></launch>", {},
+         r"<node exec='/bin/sh'>: a path; only the package's own executables"),
+        ("<launch><node pkg='compliant_demo' exec='..'/></launch>", {},
+         r"<node exec='..'>: a path; only"),
+        ("<launch><arg name='tool' default='sh'/><node pkg='compliant_demo' exec='$(var tool)'/>"
+         "</launch>", {}, r"<node exec='sh'>: another program on PATH; only the package's own"),
+        ("<launch><node pkg='compliant_demo' exec='python3'/></launch>", {},
+         r"<node exec='python3'>: another program on PATH"),
         ("<launch><node pkg='other_pkg' exec='talker'/></launch>", {},
          r"only compliant_demo nodes"),
         ("<launch><node pkg='compliant_demo' exec='teacher_node'>"
@@ -202,10 +214,40 @@ def test_launch_command_prints_the_node_command_lines(capsys) -> None:
 def test_launch_command_reports_a_bad_file_as_a_user_error(tmp_path: Path, capsys) -> None:
     path = _package(tmp_path, "<launch><node pkg='compliant_demo' exec='nope'/></launch>")
     assert cli_main(["launch", str(path)]) == 2
-    assert "executable 'nope'" in capsys.readouterr().err
+    assert "<node exec='nope'>: not a node" in capsys.readouterr().err
 
 
-def test_launch_command_refuses_an_unknown_until_node(capsys) -> None:
-    path = ROOT / "launch" / "record.launch.xml"
-    assert cli_main(["launch", str(path), "--until", "ghost"]) == 2
-    assert "no node named 'ghost'" in capsys.readouterr().err
+@pytest.mark.parametrize("extra", [[], ["--print"]])
+def test_launch_command_refuses_an_unknown_until_node_before_starting_anything(
+    capsys, extra: list[str]
+) -> None:
+    path = ROOT / "launch" / "pipeline.launch.xml"
+    assert cli_main(["launch", str(path), "--until", "teachr", *extra]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""  # nothing printed, nothing started
+    assert re.search(r"--until 'teachr': .*pipeline\.launch\.xml declares no node of that name "
+                     r"\(nodes: recorder, teacher, learner, replay\); did you mean 'teacher'\?",
+                     captured.err)
+
+
+@pytest.mark.parametrize(("launch_file", "arguments", "ending"), [
+    ("pipeline.launch.xml", {}, {"recorder": False, "teacher": True, "learner": True,
+                                 "replay": True}),
+    ("record.launch.xml", {}, {"recorder": False, "teacher": True}),
+    ("learn.launch.xml", {}, {"learner": False}),  # fits on request only
+    ("learn.launch.xml", {"fit_when": "2"}, {"learner": False}),  # fits, then keeps serving
+    ("learn.launch.xml", {"fit_when": "2", "exit_after_fit": "true"}, {"learner": True}),
+    ("replay.launch.xml", {"auto": "true", "exit_after_run": "true"}, {"replay": True}),
+    ("replay.launch.xml", {"exit_after_run": "true"}, {"replay": False}),
+])
+def test_nodes_that_end_by_themselves_follow_their_parameters(
+    launch_file: str, arguments: dict[str, str], ending: dict[str, bool]
+) -> None:
+    description = read_launch_file(ROOT / "launch" / launch_file, arguments)
+    assert {node.name: node.ends_by_itself() for node in description.nodes} == ending
+
+
+def test_the_teacher_told_to_stay_does_not_end_by_itself() -> None:
+    teacher = read_launch_file(ROOT / "launch" / "record.launch.xml").node("teacher")
+    assert teacher.resolved_parameters()["exit_when_done"] is True  # from config/teacher.yaml
+    assert not teacher.ends_by_itself({"exit_when_done": "false"})

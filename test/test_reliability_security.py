@@ -354,8 +354,8 @@ _EXTERNAL_ENTITY = (
 )
 def test_launch_reader_refuses_entity_tricks(tmp_path: Path, document: str) -> None:
     # 10^9 characters from nested entities, or a local file pulled into an argument default.
+    from compliant_demo.app.launch_file import read_launch_file
     from compliant_demo.exceptions import LaunchFileError
-    from compliant_demo.launch_file import read_launch_file
 
     path = tmp_path / "hostile.launch.xml"
     path.write_text(document)

@@ -8,11 +8,12 @@ import pytest
 from _chromium import visit
 from campaign_support import JOINTS, campaign_job, cork_seat_records, cork_seat_skill
 
+from compliant_demo.app.report_content import GroundTruth, collect_report_content
 from compliant_demo.campaign import run_campaign
 from compliant_demo.estimation import estimate_stiffness_series
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import save_skill
-from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.report import write_report
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import cork_seat_scenario
 

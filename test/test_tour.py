@@ -5,22 +5,23 @@ from __future__ import annotations
 
 import json
 import os
+from pathlib import Path
 
 import pytest
 from _chromium import visit
 
+from compliant_demo.app.report_content import GroundTruth
+from compliant_demo.app.supervisor import node_environment
+from compliant_demo.app.tour import (
+    TourError,
+    TourSettings,
+    run_tour,
+)
 from compliant_demo.cli import main
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import PERTURBATION_KINDS
-from compliant_demo.report import GroundTruth
 from compliant_demo.resources import package_launch_file
 from compliant_demo.store import DemoStore
-from compliant_demo.tour import (
-    TourError,
-    TourSettings,
-    node_environment,
-    run_tour,
-)
 
 DOMAIN_ID = 47  # this file's own ROS domain (tests use 20-99)
 
@@ -57,8 +58,9 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     # teacher's stiffness as under-damped on it.
     assert result["summary"]["plant"] == "antagonistic mechanism on joints shoulder, elbow"
 
-    truth = out / "teacher_truth.npz"
-    assert truth.is_file() and (out / "nodes.log").is_file()
+    assert result["seed"] == 3 and result["domain_id"] == DOMAIN_ID and not result["seed_drawn"]
+    assert result["truth"] == str(out / f"teacher_truth_{result['tag']}.npz")
+    assert Path(result["truth"]).is_file() and Path(result["log"]).is_file()
     seen = visit(out / "report.html")
     assert seen.errors == []
     assert [i["figure"] for i in seen.images] == [
@@ -125,13 +127,14 @@ def test_a_node_that_fails_during_recording_is_a_clear_tour_error(tmp_path):
                             launch_file=launch, record_timeout_s=60.0)
     with pytest.raises(TourError, match=r"teacher node exited with 1 during recording; log "):
         run_tour(settings, progress=False)
-    assert (tmp_path / "out" / "nodes.log").stat().st_size > 0
+    (log,) = (tmp_path / "out").glob("nodes_tour-*.log")
+    assert log.stat().st_size > 0
 
 
 @pytest.mark.ros
-def test_record_command_stores_tagged_demonstrations_and_the_truth(tmp_path, capsys):
+def test_simulate_teaching_stores_tagged_demonstrations_and_the_truth(tmp_path, capsys):
     store, out = tmp_path / "store.sqlite", tmp_path / "rec"
-    status = main(["record", "--store", str(store), "--out", str(out), "--demos", "2",
+    status = main(["simulate-teaching", "--store", str(store), "--out", str(out), "--demos", "2",
                    "--demo-duration", "1.5", "--seed", "8", "--operator", "operator_b",
                    "--tag", "bench_morning", "--domain-id", str(DOMAIN_ID + 2), "--json"])
     captured = capsys.readouterr()
@@ -144,3 +147,6 @@ def test_record_command_stores_tagged_demonstrations_and_the_truth(tmp_path, cap
     assert {(i.operator, i.status, i.skill) for i in infos} == {
         ("operator_b", "complete", "cork_seat")}
     assert len(GroundTruth.from_npz(result["truth"]).series) == 2
+    assert result["truth"] == str(out / "teacher_truth_bench_morning.npz")
+    assert (result["seed"], result["seed_drawn"]) == (8, False)
+    assert "run bench_morning: seed 8, ROS domain" in captured.err

@@ -1,7 +1,11 @@
-"""Progress bars on stderr for the long steps of the workflow (campaigns, replays, the tour).
+"""Progress bars of the workflow steps, with a rate that means what it says.
 
-The core reports progress through plain callbacks (for example ``run_campaign``'s ``on_start`` and
-``on_batch``); this module turns them into bars, so the core never draws on a terminal.
+The steps the bars follow are few and slow (a demonstration takes seconds), so the rate shown is
+the average over the whole step (``smoothing=0``), in seconds per item when below one item per
+second, and the bar only moves forward: tqdm's smoothed rate, fed updates by zero between two
+demonstrations, divided one demonstration by the last 0.2 s polling interval. The core reports
+progress through plain callbacks (for example ``run_campaign``'s ``on_start`` and ``on_batch``);
+:class:`CampaignProgress` turns them into a bar, so the core never draws on a terminal.
 """
 
 from __future__ import annotations
@@ -14,7 +18,20 @@ from typing import Any
 
 from tqdm import tqdm
 
-__all__ = ["CampaignProgress", "campaign_progress"]
+__all__ = ["progress_bar", "advance_to", "CampaignProgress", "campaign_progress"]
+
+
+def progress_bar(desc: str, total: int, unit: str, enabled: bool) -> tqdm:
+    """A bar on stderr for ``total`` items of ``unit``; hidden when not ``enabled``; gone when
+    done (use it as a context manager)."""
+    return tqdm(total=total, desc=desc, unit=unit, file=sys.stderr, disable=not enabled,
+                leave=False, smoothing=0)
+
+
+def advance_to(bar: tqdm, done: int) -> None:
+    """Move ``bar`` forward to ``done`` items (never back, never by zero)."""
+    if done > bar.n:
+        bar.update(done - bar.n)
 
 
 @dataclass
@@ -32,8 +49,7 @@ class CampaignProgress:
         """Open the bar once the campaign and the number of scenarios to run are known."""
         if self.announce is not None:
             self.announce(campaign_id)
-        self._bar = tqdm(total=to_run, desc="campaign", unit="scenario", file=sys.stderr,
-                         disable=not self.enabled, leave=False)
+        self._bar = progress_bar("campaign", to_run, "scenario", self.enabled)
 
     def on_batch(self, outcomes: Sequence[Any]) -> None:
         """Advance the bar by one batch's stored scenarios."""

@@ -1,26 +1,34 @@
 """``compliant-demo launch FILE [name:=value ...]``: start the nodes an XML launch file declares.
 
 For machines without the ROS 2 launch packages: each declared node runs as its own process with
-the declared name, namespace and parameters. Ctrl-C (SIGINT) or SIGTERM is passed on to every
-node, as is SIGINT when the node named by ``--until`` ends; the command returns once all have
-ended, with the first non-zero exit status (a node ignoring the signal for 10 s is killed).
+the declared name, namespace and parameters, started and stopped by
+:mod:`compliant_demo.app.supervisor`. The work is done when every node that ends by itself (the
+teacher; the learner and the replay node when told to end after their fit or run) has ended, or
+when the node named by ``--until`` has ended; the command then says so, stops the nodes that serve
+until stopped (the recorder) and returns. A node that ends by itself with a failure stops the
+others at once. Ctrl-C (SIGINT) or SIGTERM stops every node. Stopping is SIGINT, then SIGTERM,
+then SIGKILL after grace periods; every node is reaped, and the command returns the first
+non-zero exit status (a node ended by a signal counts as that signal's number).
 """
 
 from __future__ import annotations
 
 import argparse
+import difflib
 import signal
 import subprocess
 import sys
 import time
 from pathlib import Path
 
-from compliant_demo.launch_file import (
+from compliant_demo.app.launch_file import (
     LaunchDescription,
     parse_launch_arguments,
     read_launch_file,
     start_nodes,
 )
+from compliant_demo.app.supervisor import Child, describe_exit, reap, stop_children
+from compliant_demo.exceptions import LaunchFileError
 
 __all__ = ["register"]
 
@@ -51,50 +59,73 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         "--until",
         metavar="NODE",
         default=None,
-        help="when the node with this name ends, stop the others (SIGINT) and return",
+        help="the work is done when the node with this name ends: stop the others and return "
+             "(default: when every node that ends by itself has ended)",
     )
     parser.set_defaults(handler=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
     description = read_launch_file(args.launch_file, parse_launch_arguments(args.arguments))
+    until = None if args.until is None else _until_index(description, args.until)
     if args.print_only:
         for node in description.nodes:
             print(subprocess.list2cmdline(node.command_line()))
         return 0
-    until = None
-    if args.until is not None:
-        until = description.nodes.index(description.node(args.until))
     return _supervise(description, until)
 
 
+def _until_index(description: LaunchDescription, name: str) -> int:
+    names = [node.name or node.executable for node in description.nodes]
+    if name not in names:
+        close = difflib.get_close_matches(name, names, n=1)
+        hint = f"; did you mean {close[0]!r}?" if close else ""
+        raise LaunchFileError(f"--until {name!r}: {description.path} declares no node of that "
+                              f"name (nodes: {', '.join(names)}){hint}")
+    return names.index(name)
+
+
+def _work_over(children: list[Child], finishing: list[int]) -> str | None:
+    """What ended the work (``work done: ...`` or ``failed: ...``), or None while it goes on."""
+    failed = [children[i] for i in finishing if children[i].returncode not in (None, 0)]
+    if failed:
+        return "failed: " + "; ".join(f"{c.name} {describe_exit(c.returncode)}" for c in failed)
+    if finishing and all(not children[i].running() for i in finishing):
+        return f"work done: {', '.join(children[i].name for i in finishing)} ended"
+    return None
+
+
 def _supervise(description: LaunchDescription, until: int | None) -> int:
-    processes = start_nodes(description)
-    signal_times: list[float] = []
+    if until is not None:
+        finishing = [until]
+    else:
+        finishing = [i for i, node in enumerate(description.nodes) if node.ends_by_itself()]
+    children = start_nodes(description)
+    for child in children:
+        print(f"launch: started {child.name} (pid {child.pid})", file=sys.stderr)
+    if not finishing:
+        print("launch: no node ends by itself; Ctrl-C stops them", file=sys.stderr)
+    stopping: list[int] = []
 
-    def forward(signum: int, _frame: object) -> None:
-        signal_times.append(time.monotonic())
-        for process in processes:
-            if process.poll() is None:
-                process.send_signal(signum)
+    def on_signal(signum: int, _frame: object) -> None:
+        stopping.append(signum)
 
-    previous = {s: signal.signal(s, forward) for s in (signal.SIGINT, signal.SIGTERM)}
+    previous = {s: signal.signal(s, on_signal) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
-        while any(p.poll() is None for p in processes):
+        while reap(children) and not stopping:
+            outcome = _work_over(children, finishing)
+            if outcome is not None:
+                running = ", ".join(c.name for c in children if c.running()) or "nothing"
+                print(f"launch: {outcome}; stopping {running}", file=sys.stderr)
+                break
             time.sleep(0.1)
-            if until is not None and processes[until].poll() is not None and not signal_times:
-                forward(signal.SIGINT, None)
-            # A node that ignores the forwarded signal for the grace period is killed.
-            if signal_times and time.monotonic() - signal_times[0] > _GRACE_S:
-                for process in processes:
-                    if process.poll() is None:
-                        process.kill()
+        if stopping:
+            print(f"launch: {signal.Signals(stopping[0]).name}: stopping every node",
+                  file=sys.stderr)
     finally:
+        codes = stop_children(children)
         for signum, handler in previous.items():
             signal.signal(signum, handler)
-    for node, process in zip(description.nodes, processes, strict=True):
-        if process.returncode:
-            name = node.name or node.executable
-            print(f"node {name} exited with {process.returncode}", file=sys.stderr)
-    return next((abs(p.returncode) for p in processes if p.returncode), 0)
-
+    for name, code in codes.items():
+        print(f"launch: node {name} {describe_exit(code)}", file=sys.stderr)
+    return next((abs(code) for code in codes.values() if code), 0)

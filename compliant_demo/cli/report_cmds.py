@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import argparse
-import sys
 from pathlib import Path
 
-from tqdm import tqdm
-
+from compliant_demo.app.progress import progress_bar
+from compliant_demo.app.report_content import GroundTruth, collect_report_content
+from compliant_demo.app.run_plan import RUNS_FOLDER, run_tag
 from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
@@ -18,12 +18,10 @@ from compliant_demo.cli._job_options import (
 )
 from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.report import write_report
 from compliant_demo.store import DemoStore
 
-__all__ = ["register", "DEFAULT_OUT"]
-
-DEFAULT_OUT = Path("compliant_demo_report")
+__all__ = ["register"]
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -51,8 +49,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--min-damping-ratio", type=positive_float, default=0.5,
                         metavar="ZETA",
                         help="flag stretches whose damping ratio is below this (default: 0.5)")
-    parser.add_argument("--out", type=Path, default=DEFAULT_OUT, metavar="DIR",
-                        help=f"output directory (default: ./{DEFAULT_OUT})")
+    parser.add_argument("--out", type=Path, default=None, metavar="DIR",
+                        help=f"output directory (default: a folder of its own, "
+                             f"{RUNS_FOLDER}/report-<UTC>-<pid>, printed)")
     add_progress_option(parser)
     add_json_option(parser)
     parser.set_defaults(handler=_run)
@@ -63,14 +62,13 @@ def _run(args: argparse.Namespace) -> int:
         raise InvalidInputError(f"--truth {str(args.truth)!r}: no such file")
     truth = None if args.truth is None else GroundTruth.from_npz(args.truth)
     plant = None if args.plant is None else read_plant(args)
-    with tqdm(total=2, desc="report", unit="step", file=sys.stderr,
-              disable=not show_progress(args), leave=False) as bar:
+    with progress_bar("report", 2, "step", show_progress(args)) as bar:
         with DemoStore(store_path_of(args), read_only=True, create=False) as store:
             content = collect_report_content(
                 store, args.skill, version=args.skill_version, campaign_id=args.campaign,
                 plant=plant, truth=truth, min_damping_ratio=args.min_damping_ratio)
         bar.update(1)
-        files = write_report(content, args.out)
+        files = write_report(content, args.out or RUNS_FOLDER / run_tag("report"))
         bar.update(1)
     if args.json:
         emit_json({"report": str(files.html), "figures": [str(p) for p in files.figures],
@@ -78,5 +76,5 @@ def _run(args: argparse.Namespace) -> int:
     else:
         for key, value in content.summary:
             print(f"{key}: {value}")
-        print(f"report: {files.html}")
+        print(f"report: {files.html.resolve()}")
     return 0

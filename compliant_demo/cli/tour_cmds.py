@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import argparse
-import os
+import sys
 from pathlib import Path
 from typing import Any
 
+from compliant_demo.app.run_plan import DEFAULT_DOMAIN_ID, RUNS_FOLDER, RunPlan
+from compliant_demo.app.tour import TourSettings, run_tour
 from compliant_demo.cli._job_options import (
     add_backend_options,
     add_plant_option,
@@ -18,30 +20,34 @@ from compliant_demo.cli._job_options import (
 )
 from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.tour import TourSettings, run_tour
 
-__all__ = ["register", "default_domain", "add_recording_options", "recording_settings"]
-
-DEFAULT_OUT = Path("compliant_demo_tour")
-_DEFAULT_DOMAIN = 17
+__all__ = ["register", "add_recording_options", "recording_settings", "announce_plan"]
 
 
-def default_domain() -> int:
-    """$ROS_DOMAIN_ID when it is set to a number, else 17."""
-    text = os.environ.get("ROS_DOMAIN_ID", "")
-    return int(text) if text.isdigit() else _DEFAULT_DOMAIN
-
-
-def add_recording_options(parser: argparse.ArgumentParser) -> None:
-    """``--demos``, ``--demo-duration`` and ``--domain-id``: what the simulated teacher records."""
+def add_recording_options(parser: argparse.ArgumentParser, files: str) -> None:
+    """``--demos``, ``--demo-duration``, ``--domain-id``, ``--seed`` and ``--out``: what the
+    simulated teacher records and where the run's ``files`` go."""
     parser.add_argument("--demos", type=positive_int, default=4, metavar="N",
                         help="demonstrations to record, 2 to 50 (default: 4)")
     parser.add_argument("--demo-duration", type=positive_float, default=None, metavar="S",
                         help="nominal duration of each demonstration, 1 to 60 s (default: the "
                              "scenario's 6 s)")
     parser.add_argument("--domain-id", type=non_negative_int, default=None, metavar="ID",
-                        help=f"ROS_DOMAIN_ID of the node processes, 0 to 101 (default: "
-                             f"$ROS_DOMAIN_ID or {_DEFAULT_DOMAIN})")
+                        help="ROS_DOMAIN_ID of the node processes, 0 to 101, refused while "
+                             "another run holds it (default: the first one no other run holds, "
+                             f"from $ROS_DOMAIN_ID or {DEFAULT_DOMAIN_ID} upward; printed)")
+    parser.add_argument("--seed", type=non_negative_int, default=None,
+                        help="seed of the first demonstration (demonstration i uses seed + i) "
+                             "and of the campaign (default: drawn afresh for each run and "
+                             "printed, so a run can be repeated)")
+    parser.add_argument("--out", type=Path, default=None, metavar="DIR",
+                        help=f"folder for {files} (default: a folder of the run's own, "
+                             f"{RUNS_FOLDER}/<run tag>, printed)")
+
+
+def announce_plan(plan: RunPlan) -> None:
+    """Print the run's tag, seed, ROS domain and folder on stderr before it starts."""
+    print(plan.describe(), file=sys.stderr, flush=True)
 
 
 def recording_settings(args: argparse.Namespace, **extra: Any) -> TourSettings:
@@ -60,7 +66,7 @@ def recording_settings(args: argparse.Namespace, **extra: Any) -> TourSettings:
         n_demonstrations=args.demos,
         demo_duration_s=args.demo_duration,
         seed=args.seed,
-        domain_id=default_domain() if args.domain_id is None else args.domain_id,
+        domain_id=args.domain_id,
         **extra,
     )
 
@@ -81,13 +87,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         ),
     )
     add_store_option(parser)
-    parser.add_argument("--out", type=Path, default=DEFAULT_OUT, metavar="DIR",
-                        help=f"report, figures, truth file and node log (default: ./{DEFAULT_OUT})")
-    add_recording_options(parser)
+    add_recording_options(parser, "the report, figures, truth file and node log")
     parser.add_argument("--scenarios", type=positive_int, default=350, metavar="N",
                         help="perturbed scenarios in the campaign (default: 350, 50 per kind)")
-    parser.add_argument("--seed", type=non_negative_int, default=1,
-                        help="seed of the teacher and of the campaign (default: 1)")
     add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "
                                           "bench arm on antagonistic spring pairs")
     add_backend_options(parser)
@@ -99,13 +101,15 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _run(args: argparse.Namespace) -> int:
     settings = recording_settings(args, n_scenarios=args.scenarios, workers=args.workers,
                                   scheduler=args.scheduler, plant=args.plant)
-    result = run_tour(settings, progress=show_progress(args))
+    result = run_tour(settings, progress=show_progress(args), announce=announce_plan)
     if args.json:
         emit_json(result.as_dict())
         return 0
     timings = result.timings_s
+    plan = result.plan
     print(f"recorded {len(result.demonstration_ids)} cork_seat demonstrations with the "
-          f"simulated teacher ({timings['record']:.0f} s) into {result.store}, tag {result.tag}")
+          f"simulated teacher ({timings['record']:.0f} s) into {result.store}, tag {plan.tag}, "
+          f"seed {plan.seed}, ROS domain {plan.domain_id}")
     print(f"learned cork_seat version {result.skill_version} ({timings['learn']:.1f} s)")
     campaign = result.campaign
     print(f"campaign {campaign.campaign_id}: {campaign.n_scenarios} perturbed scenarios, "

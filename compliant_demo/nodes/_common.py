@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import signal
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -181,6 +182,14 @@ def _executor() -> Any:
     return EventsExecutor()
 
 
+def _ignore_stop_signals() -> None:
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        try:
+            signal.signal(signum, signal.SIG_IGN)
+        except ValueError:  # not the main thread: the node runs inside a test or a tool
+            return
+
+
 def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> int:
     """Create, spin and tear down one node; Ctrl-C and external shutdown end it cleanly.
 
@@ -205,6 +214,10 @@ def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> in
         rclpy.logging.get_logger("compliant_demo").fatal(f"{type(exc).__name__}: {exc}")
         status = 2
     finally:
+        # A second Ctrl-C or a SIGTERM while the node finishes its work (flushing a
+        # demonstration, writing a file) must not undo a clean finish; a supervisor that runs out
+        # of patience sends SIGKILL.
+        _ignore_stop_signals()
         if node is not None:
             close = getattr(node, "close", None)
             if close is not None:

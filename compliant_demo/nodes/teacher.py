@@ -191,6 +191,12 @@ class TeacherNode(Node):
         self._enter("done")
         self.done = self._exit_when_done
 
+    def close(self) -> None:
+        """Ended early (Ctrl-C, SIGTERM): write the ground truth of what was published so far."""
+        if self._truth_path and self._state != "done":
+            self.session.save_truth(Path(self._truth_path))
+            self.get_logger().info(f"ended early: ground truth so far in {self._truth_path}")
+
     def _fail(self, reason: str) -> None:
         self.get_logger().error(reason)
         self.exit_status = 1

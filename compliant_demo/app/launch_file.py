@@ -16,13 +16,16 @@ import importlib.util
 import os
 import re
 import shutil
-import subprocess
 import sys
 import xml.etree.ElementTree as ElementTree
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
+import yaml
+
+from compliant_demo.app.supervisor import Child, start_child
 from compliant_demo.exceptions import LaunchFileError
 
 __all__ = [
@@ -32,6 +35,7 @@ __all__ = [
     "NodeDeclaration",
     "LaunchDescription",
     "NODE_MODULES",
+    "ENDS_WHEN",
     "read_launch_file",
     "parse_launch_arguments",
     "start_nodes",
@@ -45,6 +49,14 @@ NODE_MODULES: dict[str, str] = {
     "recorder_node": "compliant_demo.nodes.recorder",
     "learner_node": "compliant_demo.nodes.learner",
     "replay_node": "compliant_demo.nodes.replay",
+}
+
+#: Parameters (with the node's own defaults) that make a node end by itself once its work is
+#: done: all of them true or non-zero. A node not listed here (the recorder) runs until stopped.
+ENDS_WHEN: dict[str, dict[str, Any]] = {
+    "teacher_node": {"exit_when_done": True},
+    "learner_node": {"exit_after_fit": False, "fit_when_available": 0},
+    "replay_node": {"exit_after_run": False, "run_when_available": False},
 }
 
 _ALLOWED_ATTRIBUTES = {
@@ -124,6 +136,29 @@ class NodeDeclaration:
     def parameter_values(self) -> dict[str, str]:
         """The ``<param name value/>`` entries by name (parameter files not included)."""
         return {p.name: p.value for p in self.parameters if isinstance(p, ParameterValue)}
+
+    def resolved_parameters(self, extra_parameters: Mapping[str, str] | None = None
+                            ) -> dict[str, Any]:
+        """The values the node will see: parameter files (their ``/**`` and own-name sections),
+        then ``<param name value/>``, then ``extra_parameters``, each later one winning."""
+        values: dict[str, Any] = {}
+        sections = {"/**", self.name or self.executable,
+                    f"/{(self.namespace or '').strip('/')}/{self.name}".replace("//", "/")}
+        for parameter in self.parameters:
+            if isinstance(parameter, ParameterFile):
+                values.update(_file_parameters(parameter.path, sections))
+            else:
+                values[parameter.name] = _yaml_value(parameter.value)
+        values.update({k: _yaml_value(v) for k, v in (extra_parameters or {}).items()})
+        return values
+
+    def ends_by_itself(self, extra_parameters: Mapping[str, str] | None = None) -> bool:
+        """Whether the node ends on its own once its work is done (see :data:`ENDS_WHEN`)."""
+        conditions = ENDS_WHEN.get(self.executable)
+        if conditions is None:
+            return False
+        values = self.resolved_parameters(extra_parameters)
+        return all(values.get(name, default) for name, default in conditions.items())
 
 
 @dataclass(frozen=True)
@@ -234,8 +269,11 @@ def start_nodes(
     extra_parameters: Mapping[str, Mapping[str, str]] | None = None,
     stdout: int | None = None,
     stderr: int | None = None,
-) -> list[subprocess.Popen]:
+) -> list[Child]:
     """Start every declared node as its own process, in declaration order.
+
+    Each node goes through :func:`compliant_demo.app.supervisor.start_child`: its own process
+    group, ended by the kernel when this process dies.
 
     Parameters
     ----------
@@ -247,24 +285,39 @@ def start_nodes(
     stdout, stderr : optional
         Passed to :class:`subprocess.Popen` (e.g. ``subprocess.PIPE``); default inherits ours.
     """
-    processes: list[subprocess.Popen] = []
+    children: list[Child] = []
     try:
         for node in description.nodes:
             extra = (extra_parameters or {}).get(node.name or "", None)
-            processes.append(
-                subprocess.Popen(
-                    node.command_line(extra),
-                    env=dict(env) if env is not None else None,
-                    stdout=stdout,
-                    stderr=stderr,
-                )
-            )
+            children.append(start_child(node.name or node.executable, node.command_line(extra),
+                                        env=env, stdout=stdout, stderr=stderr))
     except OSError as exc:
-        for process in processes:
-            process.kill()
-            process.wait()
+        for child in children:
+            child.process.kill()
+            child.process.wait()
         raise LaunchFileError(f"{description.path}: cannot start node: {exc}") from None
-    return processes
+    return children
+
+
+def _yaml_value(text: str) -> Any:
+    """A ``-p name:=value`` text as rcl reads it (YAML), or the text itself."""
+    try:
+        return yaml.safe_load(text) if text else ""
+    except yaml.YAMLError:
+        return text
+
+
+def _file_parameters(path: Path, sections: set[str]) -> dict[str, Any]:
+    try:
+        document = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
+    except (OSError, yaml.YAMLError) as exc:
+        raise LaunchFileError(f"parameter file {path}: cannot read it as YAML ({exc})") from None
+    values: dict[str, Any] = {}
+    if isinstance(document, dict):
+        for section, body in document.items():
+            if section in sections and isinstance(body, dict):
+                values.update(body.get("ros__parameters") or {})
+    return values
 
 
 def _override(name: str, value: str) -> str:
@@ -410,6 +463,17 @@ def _resolve_executable(
     if package != PACKAGE:
         raise LaunchFileError(
             f"{path}: <node pkg={package!r}>: only {PACKAGE} nodes can be started by this reader"
+        )
+    if executable not in NODE_MODULES:
+        if "/" in executable or "\\" in executable or executable in (".", ".."):
+            kind = "a path"
+        elif shutil.which(executable):
+            kind = "another program on PATH"
+        else:
+            kind = "not a node"
+        raise LaunchFileError(
+            f"{path}: <node exec={executable!r}>: {kind}; only the package's own executables "
+            f"run ({', '.join(sorted(NODE_MODULES))})"
         )
     script_dirs = [Path(sys.prefix) / "lib" / package]
     prefix = os.environ.get("AMENT_PREFIX_PATH", "")

@@ -10,20 +10,19 @@ ground truth. Nothing here imports rclpy: the nodes are separate processes.
 
 from __future__ import annotations
 
-import os
-import signal
 import subprocess
-import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from tqdm import tqdm
-
-from compliant_demo.app.progress import campaign_progress
+from compliant_demo.app.domains import MAX_DOMAIN_ID
+from compliant_demo.app.launch_file import read_launch_file, start_nodes
+from compliant_demo.app.progress import advance_to, campaign_progress, progress_bar
+from compliant_demo.app.report_content import GroundTruth, collect_report_content
+from compliant_demo.app.run_plan import RunPlan, planned_run, run_tag
+from compliant_demo.app.supervisor import deferred_signals, node_environment, stop_children
 from compliant_demo.campaign import (
     CampaignSummary,
     ReplayCampaign,
@@ -31,11 +30,10 @@ from compliant_demo.campaign import (
     run_campaign,
 )
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
-from compliant_demo.launch_file import read_launch_file, start_nodes
 from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.plant import load_plant
 from compliant_demo.replay import ReplaySetup
-from compliant_demo.report import GroundTruth, collect_report_content, write_report
+from compliant_demo.report import write_report
 from compliant_demo.resources import package_launch_file
 from compliant_demo.store import DemoStore
 
@@ -44,11 +42,11 @@ __all__ = [
     "TourResult",
     "TourError",
     "run_tour",
-    "node_environment",
+    "record_demonstrations",
+    "plan_dict",
 ]
 
 SKILL = "cork_seat"
-_STOP_GRACE_S = 10.0
 
 
 class TourError(CompliantDemoError, RuntimeError):
@@ -62,31 +60,33 @@ class TourSettings:
     Attributes
     ----------
     store : store file (created if missing)
-    out_dir : directory for the report, the PNG figures, the teacher's truth file and node logs
+    out_dir : directory for the report, the PNG figures, the teacher's truth file and node log;
+        None: a folder of the run's own under ``compliant_demo_runs/``
     n_demonstrations : demonstrations the simulated teacher gives (about 7 s each, real time)
     demo_duration_s : nominal duration of each demonstration, s (None: the scenario's 6 s)
     operator : operator name stored with each demonstration
     n_scenarios : perturbed scenarios of the campaign (spread evenly over every kind)
-    seed : seed of the first demonstration and of the campaign
-    domain_id : ROS_DOMAIN_ID of the node processes (0-101)
+    seed : seed of the first demonstration and of the campaign; None draws one per run
+    domain_id : ROS_DOMAIN_ID of the node processes (0-101), refused while another run holds it;
+        None takes the first free one from $ROS_DOMAIN_ID (or 17) upward
     workers : local worker processes (None: every core; 0: in this process)
     scheduler : Dask scheduler address instead of local workers
     record_timeout_s : longest wait for the recording, s
     launch_file : the recording launch file; None uses the package's ``record.launch.xml``
     plant : the target joints and mechanism the skill is replayed on (YAML, see
-        :func:`compliant_demo.runtime.load_plant`); None uses the package's
+        :func:`compliant_demo.plant.load_plant`); None uses the package's
         ``config/joint_cork_seat_antagonistic.yaml``: antagonistic springs, whose damping is
         not coupled to stiffness, on a bench arm with gravity, friction and torque limits
     """
 
     store: Path
-    out_dir: Path
+    out_dir: Path | None = None
     n_demonstrations: int = 4
     demo_duration_s: float | None = None
     operator: str = "operator_a"
     n_scenarios: int = 350
-    seed: int = 1
-    domain_id: int = 17
+    seed: int | None = None
+    domain_id: int | None = None
     workers: int | None = None
     scheduler: str | None = None
     record_timeout_s: float = 150.0
@@ -106,12 +106,12 @@ class TourSettings:
             raise InvalidInputError(f"operator = {self.operator!r}: must not be empty")
         if self.n_scenarios < 1:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
-        if not 0 <= self.seed <= 2**31 - 1 - self.n_demonstrations:
+        if self.seed is not None and not 0 <= self.seed <= 2**31 - 1 - self.n_demonstrations:
             raise InvalidInputError(
                 f"seed = {self.seed}: must be 0 to 2**31 - 1 - n_demonstrations (demonstration i "
                 "uses seed + i)"
             )
-        if not 0 <= self.domain_id <= 101:
+        if self.domain_id is not None and not 0 <= self.domain_id <= MAX_DOMAIN_ID:
             raise InvalidInputError(f"domain_id = {self.domain_id}: must be 0 to 101")
         if not self.record_timeout_s > 0:
             raise InvalidInputError(f"record_timeout_s = {self.record_timeout_s}: must be > 0 s")
@@ -123,7 +123,7 @@ class TourResult:
     step timings (s)."""
 
     store: Path
-    tag: str
+    plan: RunPlan
     demonstration_ids: tuple[str, ...]
     skill_id: str
     skill_version: int
@@ -137,7 +137,7 @@ class TourResult:
         """JSON-ready form."""
         return {
             "store": str(self.store),
-            "tag": self.tag,
+            **plan_dict(self.plan),
             "demonstration_ids": list(self.demonstration_ids),
             "skill": {"name": SKILL, "id": self.skill_id, "version": self.skill_version},
             "campaign": {
@@ -155,26 +155,11 @@ class TourResult:
         }
 
 
-def node_environment(domain_id: int) -> dict[str, str]:
-    """This process's environment with DDS confined to loopback and the given ROS domain."""
-    env = dict(os.environ)
-    env["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
-    env["ROS_DOMAIN_ID"] = str(domain_id)
-    # Ship unbuffered logs so the tail in an error message is current.
-    env["PYTHONUNBUFFERED"] = "1"
-    return env
-
-
 def _complete_with_tag(store_path: Path, tag: str) -> list[str]:
     with DemoStore(store_path, read_only=True) as store:
         infos = store.find_demonstrations(skill=SKILL, status="complete", tag=tag,
                                           order_by="start_time")
         return [info.id for info in infos]
-
-
-def run_tag(prefix: str = "tour") -> str:
-    """A tag naming one run: ``prefix``, its UTC start and the process id."""
-    return f"{prefix}-{datetime.now(UTC):%Y%m%dT%H%M%SZ}-{os.getpid()}"
 
 
 def _tail(path: Path, lines: int = 8) -> str:
@@ -185,44 +170,37 @@ def _tail(path: Path, lines: int = 8) -> str:
     return " | ".join(text[-lines:])
 
 
-def _stop(processes: list[subprocess.Popen]) -> None:
-    for process in processes:
-        if process.poll() is None:
-            process.send_signal(signal.SIGINT)
-    deadline = time.monotonic() + _STOP_GRACE_S
-    for process in processes:
-        try:
-            process.wait(timeout=max(0.1, deadline - time.monotonic()))
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+def plan_dict(plan: RunPlan) -> dict[str, Any]:
+    """The run's tag, seed, ROS domain and files, JSON-ready."""
+    return {"tag": plan.tag, "seed": plan.seed, "seed_drawn": plan.seed_drawn,
+            "domain_id": plan.domain_id, "out_dir": str(plan.out_dir),
+            "truth": str(plan.truth_path), "log": str(plan.log_path)}
 
 
 def _node_overrides(settings: TourSettings, tag: str) -> dict[str, dict[str, str]]:
-    overrides = {"recorder": {"tags": f"[{tag}]"}, "teacher": {}}
+    overrides: dict[str, dict[str, str]] = {"recorder": {"tags": f"[{tag}]"}, "teacher": {}}
     if settings.demo_duration_s is not None:
         overrides["teacher"]["duration_s"] = repr(float(settings.demo_duration_s))
     return overrides
 
 
-def record_demonstrations(
-    settings: TourSettings, tag: str, progress: bool
-) -> tuple[list[str], Path]:
+def record_demonstrations(settings: TourSettings, plan: RunPlan, progress: bool) -> list[str]:
     """Run teacher and recorder as processes until the demonstrations are in the store.
 
-    The recorder tags every demonstration of this run with ``tag``. Returns their ids (recording
-    order) and the teacher's truth file.
+    The nodes run on the plan's ROS domain with its seed; the recorder tags every demonstration
+    of this run with the plan's tag, the teacher writes the plan's truth file, both log to the
+    plan's log. Returns the demonstration ids in recording order. Interrupted (Ctrl-C), the
+    nodes are stopped cleanly (the open demonstration is flagged ``interrupted``, the truth file
+    holds what was published) and KeyboardInterrupt is raised again.
     """
-    settings.out_dir.mkdir(parents=True, exist_ok=True)
-    truth_path = settings.out_dir / "teacher_truth.npz"
-    truth_path.unlink(missing_ok=True)
+    tag, truth_path, log_path = plan.tag, plan.truth_path, plan.log_path
     with DemoStore(settings.store):  # create or migrate the file before the nodes open it
         pass
     launch = settings.launch_file or package_launch_file("record.launch.xml")
     description = read_launch_file(launch, {
         "store": str(settings.store),
         "demos": str(settings.n_demonstrations),
-        "seed": str(settings.seed),
+        "seed": str(plan.seed),
         "operator": settings.operator,
         "truth": str(truth_path),
     })
@@ -230,26 +208,24 @@ def record_demonstrations(
     if "teacher" not in names:
         raise InvalidInputError(f"launch file {str(launch)!r}: declares no node named 'teacher' "
                                 f"(nodes: {names})")
-    log_path = settings.out_dir / "nodes.log"
     with open(log_path, "w", encoding="utf-8") as log:
-        processes = start_nodes(description, env=node_environment(settings.domain_id),
+        children = start_nodes(description, env=node_environment(plan.domain_id),
                                 extra_parameters=_node_overrides(settings, tag),
                                 stdout=log.fileno(), stderr=subprocess.STDOUT)
-    teacher = processes[names.index("teacher")]
+    teacher = children[names.index("teacher")].process
     deadline = time.monotonic() + settings.record_timeout_s
     recorded: list[str] = []
     try:
-        with tqdm(total=settings.n_demonstrations, desc="record", unit="demo", file=sys.stderr,
-                  disable=not progress, leave=False) as bar:
+        with progress_bar("record", settings.n_demonstrations, "demo", progress) as bar:
             while True:
                 recorded = _complete_with_tag(settings.store, tag)
-                bar.update(len(recorded) - bar.n)
+                advance_to(bar, len(recorded))
                 teacher_done = teacher.poll() is not None
                 if len(recorded) >= settings.n_demonstrations and teacher_done:
                     break
-                for name, process in zip(names, processes, strict=True):
-                    if process.poll() not in (None, 0):
-                        raise TourError(f"{name} node exited with {process.returncode} during "
+                for child in children:
+                    if child.process.poll() not in (None, 0):
+                        raise TourError(f"{child.name} node exited with {child.returncode} during "
                                         f"recording; log {log_path}: {_tail(log_path)}")
                 if teacher_done:
                     # The teacher stops the recorder before it exits; give the writer a moment.
@@ -267,10 +243,13 @@ def record_demonstrations(
                         f"({len(recorded)} of {settings.n_demonstrations} demonstrations); "
                         f"log {log_path}: {_tail(log_path)}")
                 time.sleep(0.2)
-            bar.update(len(recorded) - bar.n)
+            advance_to(bar, len(recorded))
     finally:
-        _stop(processes)
-    return recorded[: settings.n_demonstrations], truth_path
+        # Ctrl-C again while the nodes finish (the recorder flushing, the teacher writing its
+        # truth file) must not cut their shutdown short.
+        with deferred_signals():
+            stop_children(children)
+    return recorded[: settings.n_demonstrations]
 
 
 def _timed(timings: dict[str, float], name: str, step: Callable[[], Any]) -> Any:
@@ -280,13 +259,17 @@ def _timed(timings: dict[str, float], name: str, step: Callable[[], Any]) -> Any
     return value
 
 
-def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
+def run_tour(
+    settings: TourSettings, *, progress: bool = True,
+    announce: Callable[[RunPlan], None] | None = None,
+) -> TourResult:
     """Record, learn, run the campaign and write the report; see the module docstring.
 
     Parameters
     ----------
     settings : TourSettings
     progress : progress bars on stderr
+    announce : called with the run's plan (tag, seed, ROS domain, folder) before anything starts
 
     Returns
     -------
@@ -297,9 +280,13 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     if settings.plant is not None and not Path(settings.plant).is_file():
         raise InvalidInputError(f"plant = {str(settings.plant)!r}: no such file")
     plant = load_plant(settings.plant)
-    tag = run_tag()
-    demo_ids, truth_path = _timed(timings, "record", lambda: record_demonstrations(
-        settings, tag, progress))
+    with planned_run(run_tag("tour"), seed=settings.seed, domain_id=settings.domain_id,
+                     out_dir=settings.out_dir) as plan:
+        if announce is not None:
+            announce(plan)
+        demo_ids = _timed(timings, "record", lambda: record_demonstrations(
+            settings, plan, progress))
+    tag = plan.tag
     joints = tuple(joint.name for joint in plant.joints)
     mechanism = plant.mechanism
     # The learner node's path: exactly this run's demonstrations (by tag), the recorded estimate
@@ -311,8 +298,7 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
                  "target_inertia": [joint.inertia for joint in plant.joints]})
     with DemoStore(settings.store, durable=False) as store:
         def learn():
-            with tqdm(total=1, desc="learn", unit="skill", file=sys.stderr,
-                      disable=not progress, leave=False) as bar:
+            with progress_bar("learn", 1, "skill", progress) as bar:
                 outcome = learn_from_store(store, request)
                 bar.update(1)
             return outcome.stored.skill, outcome.stored.record
@@ -320,7 +306,7 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
         skill, record = _timed(timings, "learn", learn)
         job = ReplayCampaign(ReplaySetup(skill, plant),
                              default_campaign_spec(len(joints), skill.duration_s),
-                             settings.n_scenarios, seed=settings.seed)
+                             settings.n_scenarios, seed=plan.seed)
 
         def campaign_run():
             with campaign_progress(progress) as bars:
@@ -331,13 +317,12 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
         campaign = _timed(timings, "campaign", campaign_run)
 
         def report():
-            with tqdm(total=2, desc="report", unit="step", file=sys.stderr,
-                      disable=not progress, leave=False) as bar:
+            with progress_bar("report", 2, "step", progress) as bar:
                 content = collect_report_content(
                     store, SKILL, version=record.version, campaign_id=campaign.campaign_id,
-                    plant=plant, truth=GroundTruth.from_npz(truth_path))
+                    plant=plant, truth=GroundTruth.from_npz(plan.truth_path))
                 bar.update(1)
-                files = write_report(content, settings.out_dir)
+                files = write_report(content, plan.out_dir)
                 bar.update(1)
             return content, files
 
@@ -345,7 +330,7 @@ def run_tour(settings: TourSettings, *, progress: bool = True) -> TourResult:
     timings["total"] = round(time.perf_counter() - started, 3)
     return TourResult(
         store=settings.store,
-        tag=tag,
+        plan=plan,
         demonstration_ids=tuple(demo_ids),
         skill_id=record.id,
         skill_version=record.version,
