@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 from rosbags.rosbag2 import StoragePlugin, Writer
 from rosbags.typesys import Stores, get_typestore
-from store_support import JOINTS
+from store_support import JOINTS, assert_same_demonstration
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.store import DemoStore
-from compliant_demo.store.bags import export_bag, import_bag
+from compliant_demo.store.bags import METADATA_TOPIC, export_bag, import_bag
 
 TYPES = get_typestore(Stores.ROS2_HUMBLE)
 JointState = TYPES.types["sensor_msgs/msg/JointState"]
@@ -19,6 +19,7 @@ Header = TYPES.types["std_msgs/msg/Header"]
 Time = TYPES.types["builtin_interfaces/msg/Time"]
 Float64MultiArray = TYPES.types["std_msgs/msg/Float64MultiArray"]
 MultiArrayLayout = TYPES.types["std_msgs/msg/MultiArrayLayout"]
+String = TYPES.types["std_msgs/msg/String"]
 START_NS = 1_700_000_000_000_000_000
 STORAGES = {"sqlite3": StoragePlugin.SQLITE3, "mcap": StoragePlugin.MCAP}
 
@@ -33,16 +34,21 @@ def _joint_state(ns, names, position, velocity, effort):
     )
 
 
-def write_bag(path, storage, messages, *, stiffness=(), extra_topic=False):
-    """Write a bag: ``messages`` are (ns, JointState); ``stiffness`` are (ns, values)."""
+def write_bag(path, storage, messages, *, stiffness=(), stiffness_topic="/stiffness_reference",
+              metadata=(), metadata_type=String):  # fmt: skip
+    """Write a bag: ``messages`` are (ns, JointState); ``stiffness`` are (ns, values) on
+    ``stiffness_topic``; ``metadata`` are texts on the metadata topic."""
     with Writer(path, version=9, storage_plugin=STORAGES[storage]) as writer:
         joints = writer.add_connection("/joint_states", JointState.__msgtype__, typestore=TYPES)
         k_conn = writer.add_connection(
-            "/stiffness_reference", Float64MultiArray.__msgtype__, typestore=TYPES
+            stiffness_topic, Float64MultiArray.__msgtype__, typestore=TYPES
         )
-        if extra_topic:
-            writer.add_connection("/other", Float64MultiArray.__msgtype__, typestore=TYPES)
+        if metadata:
+            m_conn = writer.add_connection(
+                METADATA_TOPIC, metadata_type.__msgtype__, typestore=TYPES
+            )
         events = [(ns, 1, joints, msg) for ns, msg in messages]
+        events += [(START_NS, -1, m_conn, metadata_type(data=text)) for text in metadata]
         events += [
             (ns, 0, k_conn,
              Float64MultiArray(layout=MultiArrayLayout(dim=[], data_offset=0),
@@ -74,9 +80,10 @@ def store(tmp_path):
 def test_import_joint_states_with_stiffness(store, tmp_path, storage):
     stiffness = [(START_NS + 2_500_000, [40.0, 50.0]), (START_NS + 6_000_000, [150.0, 160.0])]
     bag = write_bag(tmp_path / f"bag_{storage}", storage, _ramp(10), stiffness=stiffness)
+    # the stiffness topic is found by its type and name
     demo_id = import_bag(
-        store, bag, skill="cork_seat", joints=JOINTS, stiffness_topic="/stiffness_reference",
-        operator="operator_a", tags=["from_bag"], progress=False,
+        store, bag, skill="cork_seat", joints=JOINTS, operator="operator_a", tags=["from_bag"],
+        progress=False,
     )  # fmt: skip
     demo = store.load_demonstration(demo_id)
     i = np.arange(10)
@@ -87,32 +94,77 @@ def test_import_joint_states_with_stiffness(store, tmp_path, storage):
     assert np.array_equal(demo.position, np.column_stack([-0.02 * i, 0.01 * i]))
     assert np.array_equal(demo.velocity, 2 * demo.position)
     assert np.array_equal(demo.torque, 3 * demo.position)
-    # zero-order hold of the latest stiffness message; samples 0-2 take the first one (backfill)
-    expected_k = np.array([[40.0, 50.0]] * 6 + [[150.0, 160.0]] * 4)
-    assert np.array_equal(demo.stiffness, expected_k)
+    # zero-order hold of the latest stiffness message; samples 0-2 precede the first one: NaN,
+    # "no estimate", never an invented value
+    expected_k = np.array([[np.nan, np.nan]] * 3 + [[40.0, 50.0]] * 3 + [[150.0, 160.0]] * 4)
+    assert np.array_equal(demo.stiffness, expected_k, equal_nan=True)
     info = demo.info
     assert (info.source, info.operator, info.tags) == ("imported", "operator_a", ("from_bag",))
-    assert info.flags == {"stiffness_backfilled": 3}
+    assert info.flags == {"stiffness_missing": 3}
+
+
+_NAMES = ("shoulder, left", 'wrist "pitch"', "elbow\nlower", " ünïcode ")
 
 
 @pytest.mark.parametrize("storage", ["sqlite3", "mcap"])
-def test_export_then_import_round_trips(store, tmp_path, storage):
-    t = np.arange(50) / 1000.0
-    q = np.column_stack([np.sin(t), np.cos(t)])
-    demo_id = store.add_demonstration(
-        t=t, position=q, velocity=-q, torque=2 * q, stiffness=100 + q, skill="cork_seat",
-        joints=JOINTS, start_time=1.7e9,
-    )  # fmt: skip
-    bag = export_bag(store, demo_id, tmp_path / "out", storage=storage)
-    back = store.load_demonstration(
-        import_bag(store, bag, skill="cork_seat", stiffness_topic="/stiffness", progress=False)
+@pytest.mark.parametrize("times", ["nanosecond_grid", "any_float"])
+def test_export_then_import_reproduces_everything(tmp_path, storage, times):
+    # every sample bit for bit (NaN stiffness too), every metadata field and the id; the
+    # skill, the topics and the stiffness come from the bag itself
+    rng = np.random.default_rng(7)
+    n = 300
+    t = (
+        np.arange(n) / 1000.0
+        if times == "nanosecond_grid"
+        else np.cumsum(rng.uniform(1e-4, 2e-3, n))
     )
-    original = store.load_demonstration(demo_id)
-    # stamps go through whole nanoseconds: the round trip is exact to 1 ns
-    assert np.allclose(back.t, original.t, rtol=0, atol=1e-9)
-    for name in ("position", "velocity", "torque", "stiffness"):
-        assert np.array_equal(getattr(back, name), getattr(original, name))
-    assert back.info.flags == {}
+    values = rng.normal(0.0, 10.0, (n, 16))
+    stiffness = 100 + values[:, 12:16]
+    stiffness[:40] = np.nan  # the estimator not yet excited
+    stiffness[100::7, 2] = np.nan
+    with DemoStore(tmp_path / "a.sqlite") as source, DemoStore(tmp_path / "b.sqlite") as target:
+        demo_id = source.add_demonstration(
+            t=t, position=values[:, :4], velocity=values[:, 4:8], torque=values[:, 8:12],
+            stiffness=stiffness, skill="cork_seat", joints=_NAMES, operator="operator_b",
+            tags=["press", "tag, with comma"], notes="two\nlines", start_time=1.7e9 + 0.123456,
+            nominal_rate_hz=997.5, source="recorded",
+            flags={"stiffness_latency_s": 0.34, "drops": 3, "interrupted": True},
+        )  # fmt: skip
+        source.mark_status(demo_id, "incomplete", "writer stopped")
+        bag = export_bag(source, demo_id, tmp_path / "out", storage=storage)
+        copy = target.load_demonstration(import_bag(target, bag, progress=False))
+        assert_same_demonstration(source.load_demonstration(demo_id), copy)
+        assert copy.id == demo_id and copy.info.flags["stiffness_latency_s"] == 0.34
+        again = import_bag(target, bag, keep_id=False, operator="operator_c", progress=False)
+        assert target.get_info(again).operator == "operator_c" and again != demo_id
+
+
+def test_stiffness_topic_choice(store, tmp_path):
+    bag = write_bag(tmp_path / "bag", "mcap", _ramp(4), stiffness=[(START_NS, [1.0, 2.0])])
+    plain = import_bag(store, bag, skill="cork_seat", joints=JOINTS, stiffness_topic="")
+    assert not store.get_info(plain).has_stiffness
+    other = write_bag(tmp_path / "other", "mcap", _ramp(4), stiffness=[(START_NS, [1.0, 2.0])],
+                      stiffness_topic="/arm/stiffness_truth")  # fmt: skip
+    with Writer(tmp_path / "two", version=9, storage_plugin=StoragePlugin.MCAP) as writer:
+        for topic in ("/stiffness_reference", "/stiffness_truth", "/joint_states"):
+            msgtype = "sensor_msgs/msg/JointState" if topic == "/joint_states" else FLOAT64
+            connection = writer.add_connection(topic, msgtype, typestore=TYPES)
+            msg = (
+                _ramp(1)[0][1]
+                if topic == "/joint_states"
+                else Float64MultiArray(
+                    layout=MultiArrayLayout(dim=[], data_offset=0), data=np.ones(3)
+                )
+            )
+            writer.write(connection, START_NS, TYPES.serialize_cdr(msg, msgtype))
+    with pytest.raises(InvalidInputError, match="has several stiffness topics "
+                       "\\(/stiffness_reference, /stiffness_truth\\): choose one"):  # fmt: skip
+        import_bag(store, tmp_path / "two", skill="cork_seat")
+    found = import_bag(store, other, skill="cork_seat", joints=JOINTS)
+    assert store.load_demonstration(found).stiffness[0].tolist() == [1.0, 2.0]
+
+
+FLOAT64 = "std_msgs/msg/Float64MultiArray"
 
 
 def test_progress_bar_counts_the_messages(store, tmp_path, capsys):
