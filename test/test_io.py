@@ -522,6 +522,9 @@ def test_overlong_line_is_refused_without_reading_it_whole(store, tmp_path):
          "\\(Exceeds the limit \\(4300 digits\\)"),
         ('# skill: "cork_seat"', "line 2: metadata 'skill' repeats line 1"),
     ],
+    ids=["tags_number", "tags_text", "flags_list", "flags_negative", "start_text", "rate_bool",
+         "start_inf", "status_unknown", "source_unknown", "operator_null", "nested_100000",
+         "integer_5000_digits", "repeated_key"],
 )  # fmt: skip
 def test_metadata_of_the_wrong_type_names_file_line_and_field(store, tmp_path, meta, message):
     path = _csv(tmp_path, _HEADER, ["0,1,2,3"], meta=('# skill: "cork_seat"', meta))
