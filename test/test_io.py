@@ -330,6 +330,10 @@ def test_npz_zip_bomb_is_refused_before_it_is_expanded(tmp_path):
         ({"position.npy": _npy_header((5, 2), "|O") + bytes(80)},
          "member 'position.npy': holds Python objects"),
         ({"position.npy": b"not an array"}, "member 'position.npy': not a .npy array"),
+        ({"position.npy": _npy_header((0, -1))},
+         "member 'position.npy': header claims a negative extent in shape (0, -1)"),
+        ({"position.npy": _npy_header((5, 2), ">f8") + bytes(80), "metadata.npy":
+          _npy_header((), "|S4") + b"{}  "}, "'metadata' must be a 0-d unicode array of JSON"),
         ({"position.npy": _npy_header((5, 2)) + bytes(80),
           "joints.npy": _npy_header((50_000,), "<U8") + bytes(50_000 * 32)},
          "member 'joints.npy': 50000 joints, at most 64 joints are allowed"),
@@ -557,3 +561,15 @@ def test_byte_order_mark_crlf_and_readme_limits(store, tmp_path):
     readme = (REPO / "README.md").read_text()
     assert f"{MAX_JOINTS} joints" in readme and "1 GiB" in readme
     assert MAX_IMPORT_BYTES == 2**30 and MAX_LINE_BYTES == 2**20
+
+
+def test_sample_budget_is_refused_with_the_line(store, tmp_path, monkeypatch):
+    from compliant_demo.store import io as store_io
+
+    demo_id = add_demo(store, n=CHUNK_SAMPLES + 100)
+    path = export_csv(store, demo_id, tmp_path / "demo.csv")
+    monkeypatch.setattr(store_io, "MAX_IMPORT_BYTES", CHUNK_SAMPLES * 9 * 8)
+    with pytest.raises(InvalidInputError, match=r"demo\.csv, line 8305: 597024 bytes of samples, "
+                       r"beyond the import limit of 589824 bytes"):  # fmt: skip
+        import_csv(store, path, keep_id=False)
+    assert [info.id for info in store.find_demonstrations()] == [demo_id]

@@ -422,3 +422,14 @@ def test_failed_bag_import_leaves_nothing(tmp_path, monkeypatch, failure):
         assert [info.id for info in store.find_demonstrations()] == [kept]
         assert store.load_demonstration(kept).position.tolist() == [[1.0, 1.0]] * 3
         assert store.integrity_check() == ["ok"]
+
+
+def test_sample_budget_is_refused_with_the_message(store, tmp_path, monkeypatch):
+    from compliant_demo.store import io as store_io
+
+    monkeypatch.setattr(store_io, "MAX_IMPORT_BYTES", 10 * 7 * 8)  # ten samples of two joints
+    bag = write_bag(tmp_path / "bag", "mcap", _ramp(11))
+    with pytest.raises(InvalidInputError, match="message 10 on '/joint_states': 616 bytes of "
+                       "samples, beyond the import limit of 560 bytes"):  # fmt: skip
+        import_bag(store, bag, skill="cork_seat", joints=JOINTS)
+    _assert_nothing_stored(store)

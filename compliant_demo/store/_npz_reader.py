@@ -99,6 +99,8 @@ def _read_member(
         raise InvalidInputError(f"{where}: not a .npy array ({exc})") from None
     if dtype.hasobject:
         raise InvalidInputError(f"{where}: holds Python objects (pickles), refused")
+    if any(int(extent) < 0 for extent in shape):
+        raise InvalidInputError(f"{where}: header claims a negative extent in shape {shape}")
     count = 1
     for extent in shape:
         count *= int(extent)

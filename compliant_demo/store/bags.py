@@ -37,6 +37,7 @@ from compliant_demo.store.io import (
     MAX_IMPORT_BYTES,
     MAX_JOINTS,
     begin_fields,
+    check_budget,
     check_joint_names,
     check_metadata,
     demonstration_metadata,
@@ -256,11 +257,8 @@ class _BagSamples:
             self._flush()
         self.last_ns, self.last_bag_ns = ns, bag_ns
         self.n_samples += 1
-        if self.n_samples * (1 + 4 * len(columns)) * 8 > MAX_IMPORT_BYTES:
-            raise InvalidInputError(
-                f"{where}: more than {MAX_IMPORT_BYTES // 2**20} MiB of samples, the import "
-                "limit (split the demonstration)"
-            )
+        channels = 3 if self.stiffness_topic is None else 4
+        check_budget(self.n_samples * (1 + channels * len(columns)), where)
         position, velocity, effort = fields
         self.rows.append((ns, position, velocity, effort, self.stiffness))
 

@@ -54,6 +54,8 @@ __all__ = [
     "demonstration_metadata",
     "check_metadata",
     "check_joint_names",
+    "check_budget",
+    "begin_fields",
     "parse_json",
     "store_import",
     "export_csv",
@@ -269,11 +271,12 @@ def store_import(
     return demo_id
 
 
-def _check_budget(n_values: int, where: str) -> None:
+def check_budget(n_values: int, where: str) -> None:
+    """Refuse an import once it holds more than :data:`MAX_IMPORT_BYTES` of float64 samples."""
     if n_values * 8 > MAX_IMPORT_BYTES:
         raise InvalidInputError(
-            f"{where}: more than {MAX_IMPORT_BYTES // 2**20} MiB of samples "
-            f"({n_values * 8} bytes), the import limit (split the demonstration)"
+            f"{where}: {n_values * 8} bytes of samples, beyond the import limit of "
+            f"{MAX_IMPORT_BYTES} bytes (split the demonstration)"
         )
 
 
@@ -485,7 +488,7 @@ def _csv_table(lines: _CsvLines, source: str, names: Sequence[str]) -> np.ndarra
         _check_rows(table, batch, source, names, last_t)
         last_t = float(table[-1, 0])
         n_values += table.size
-        _check_budget(n_values, f"{source}, line {batch[-1][0]}")
+        check_budget(n_values, f"{source}, line {batch[-1][0]}")
         tables.append(table)
     if not tables:
         raise InvalidInputError(f"{source}: no samples after the header (nothing to import)")
