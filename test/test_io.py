@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import re
 import subprocess
 import zipfile
@@ -573,3 +574,13 @@ def test_sample_budget_is_refused_with_the_line(store, tmp_path, monkeypatch):
                        r"beyond the import limit of 589824 bytes"):  # fmt: skip
         import_csv(store, path, keep_id=False)
     assert [info.id for info in store.find_demonstrations()] == [demo_id]
+
+
+@pytest.mark.parametrize("kind", ["directory", "named_pipe"])
+def test_what_is_not_a_regular_file_is_refused_without_reading(store, tmp_path, kind):
+    # a named pipe would block the reader for ever
+    for name, importer in (("x.csv", import_csv), ("x.npz", import_npz)):
+        path = tmp_path / name
+        path.mkdir() if kind == "directory" else os.mkfifo(path)
+        with pytest.raises(InvalidInputError, match=f"file '.*{name}' is not a regular file"):
+            importer(store, path, skill="cork_seat")

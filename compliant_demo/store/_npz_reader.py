@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import zipfile
 import zlib
-from pathlib import Path
 from typing import IO
 
 import numpy as np
@@ -30,12 +29,14 @@ _READERS = {
 }
 
 
-def read_npz(path: Path, source: str, *, max_bytes: int, max_joints: int) -> dict[str, np.ndarray]:
-    """The arrays of :data:`NPZ_MEMBERS` found in the archive at ``path``.
+def read_npz(
+    handle: IO[bytes], source: str, *, max_bytes: int, max_joints: int
+) -> dict[str, np.ndarray]:
+    """The arrays of :data:`NPZ_MEMBERS` found in the archive open as ``handle``.
 
     Parameters
     ----------
-    path : Path
+    handle : binary file open for reading, seekable
     source : str
         The file's name in error messages.
     max_bytes : int, bytes
@@ -49,14 +50,14 @@ def read_npz(path: Path, source: str, *, max_bytes: int, max_joints: int) -> dic
         Not an NPZ archive (a lone ``.npy`` file says so), damaged, holding objects, or
         beyond a limit; the message names the file, the member and the size.
     """
-    with path.open("rb") as handle:
-        if handle.read(len(_NPY_MAGIC)) == _NPY_MAGIC:
-            raise InvalidInputError(
-                f"{source} is a single .npy array (numpy.save), not an NPZ archive of named "
-                "arrays (numpy.savez)"
-            )
+    if handle.read(len(_NPY_MAGIC)) == _NPY_MAGIC:
+        raise InvalidInputError(
+            f"{source} is a single .npy array (numpy.save), not an NPZ archive of named "
+            "arrays (numpy.savez)"
+        )
+    handle.seek(0)
     try:
-        archive = zipfile.ZipFile(path)
+        archive = zipfile.ZipFile(handle)
     except (zipfile.BadZipFile, OSError, ValueError, EOFError) as exc:
         raise InvalidInputError(
             f"{source}: not a readable NPZ file (zip of .npy arrays): {exc}"

@@ -112,6 +112,27 @@ def writing(path: str | os.PathLike[str], mode: str) -> Iterator[IO[Any]]:
         yield handle
 
 
+def _regular_file(path: str | os.PathLike[str], kind: str) -> Path:
+    """``path`` when it is a regular file (a directory or a named pipe is refused)."""
+    file = Path(path)
+    if not file.exists():
+        raise NotFoundError(f"{kind} {str(path)!r} does not exist")
+    if not file.is_file():
+        raise InvalidInputError(f"{kind} {str(path)!r} is not a regular file")
+    return file
+
+
+@contextmanager
+def _reading(file: Path, source: str) -> Iterator[IO[bytes]]:
+    """``file`` opened for reading; an unreadable file is an InvalidInputError naming it."""
+    try:
+        handle = file.open("rb")
+    except OSError as exc:
+        raise InvalidInputError(f"cannot read {source!r}: {exc.strerror}") from None
+    with handle:
+        yield handle
+
+
 @contextmanager
 def naming_file(source: str) -> Iterator[None]:
     """Prefix the file's name to InvalidInputErrors raised inside (unless they name it already)."""
@@ -453,13 +474,11 @@ def import_csv(
         Naming the file, the line (counting every line of the file) and the field.
     """
     source = str(path)
-    file = Path(path)
-    if not file.is_file():
-        raise NotFoundError(f"CSV file {source!r} does not exist")
+    file = _regular_file(path, "CSV file")
     size = file.stat().st_size
     bar = tqdm(total=size, unit="B", unit_scale=True, desc=file.name,
                disable=not show_progress(progress, size, _PROGRESS_BYTES))  # fmt: skip
-    with file.open("rb") as handle, bar:
+    with _reading(file, source) as handle, bar:
         lines = _CsvLines(handle, source, bar)
         metadata, header, header_line = _read_csv_head(lines, source)
         joints, with_stiffness = _joint_layout(header, f"{source}, line {header_line}")
@@ -592,9 +611,9 @@ def import_npz(
     :data:`MAX_IMPORT_BYTES` of arrays, or more than :data:`MAX_JOINTS` joints, is refused.
     """
     source = str(path)
-    if not Path(path).is_file():
-        raise NotFoundError(f"NPZ file {source!r} does not exist")
-    contents = read_npz(Path(path), source, max_bytes=MAX_IMPORT_BYTES, max_joints=MAX_JOINTS)
+    file = _regular_file(path, "NPZ file")
+    with _reading(file, source) as handle:
+        contents = read_npz(handle, source, max_bytes=MAX_IMPORT_BYTES, max_joints=MAX_JOINTS)
     for key in ("t", "position", "velocity", "torque", "joints"):
         if key not in contents:
             raise InvalidInputError(f"{source}: array {key!r} is missing")
