@@ -331,6 +331,9 @@ def test_npz_zip_bomb_is_refused_before_it_is_expanded(tmp_path):
         ({"position.npy": _npy_header((5, 2), "|O") + bytes(80)},
          "member 'position.npy': holds Python objects"),
         ({"position.npy": b"not an array"}, "member 'position.npy': not a .npy array"),
+        ({"position.npy": _npy_header((5, 2)) + bytes(80),
+          "metadata.npy": _npy_header((), "<U2000000") + bytes(8_000_000)},
+         "member 'metadata.npy': 8000000 bytes of text, beyond the limit of 4194304 bytes"),
         ({"position.npy": _npy_header((0, -1))},
          "member 'position.npy': header claims a negative extent in shape (0, -1)"),
         ({"position.npy": _npy_header((5, 2), ">f8") + bytes(80), "metadata.npy":

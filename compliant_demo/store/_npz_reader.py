@@ -19,9 +19,12 @@ from numpy.lib import format as npy_format
 
 from compliant_demo.exceptions import InvalidInputError
 
-__all__ = ["NPZ_MEMBERS", "read_npz"]
+__all__ = ["NPZ_MEMBERS", "MAX_TEXT_BYTES", "read_npz"]
 
 NPZ_MEMBERS = ("t", "position", "velocity", "torque", "stiffness", "joints", "metadata")
+MAX_TEXT_BYTES = 4 * 2**20
+"""Largest ``joints`` or ``metadata`` member, bytes (numpy stores 4 bytes per character)."""
+_TEXT_MEMBERS = ("joints", "metadata")
 _NPY_MAGIC = b"\x93NUMPY"
 _READERS = {
     (1, 0): npy_format.read_array_header_1_0,
@@ -108,6 +111,10 @@ def _read_member(
     nbytes = count * dtype.itemsize
     if key == "joints" and count > max_joints:
         raise InvalidInputError(f"{where}: {count} joints, at most {max_joints} joints are allowed")
+    if key in _TEXT_MEMBERS and nbytes > MAX_TEXT_BYTES:
+        raise InvalidInputError(
+            f"{where}: {nbytes} bytes of text, beyond the limit of {MAX_TEXT_BYTES} bytes"
+        )
     if nbytes > budget:
         raise InvalidInputError(
             f"{where}: header claims shape {tuple(shape)} of {dtype} ({nbytes} bytes), beyond "
