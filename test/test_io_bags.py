@@ -265,6 +265,10 @@ def test_not_a_bag(store, tmp_path):
     (tmp_path / "plain").mkdir()
     with pytest.raises(InvalidInputError, match="is not a readable ROS 2 bag"):
         import_bag(store, tmp_path / "plain", skill="cork_seat")
+    (tmp_path / "plain" / "metadata.yaml").write_text("{{{ not yaml")
+    with pytest.raises(InvalidInputError, match="is not a readable ROS 2 bag: Could not load") as e:
+        import_bag(store, tmp_path / "plain", skill="cork_seat")
+    assert "\n" not in str(e.value)  # the YAML parser's message spans lines: one line here
     with pytest.raises(NotFoundError, match="bag '.*absent' does not exist"):
         import_bag(store, tmp_path / "absent", skill="cork_seat")
     with pytest.raises(InvalidInputError, match="storage must be one of sqlite3, mcap"):

@@ -18,6 +18,7 @@ import numpy as np
 from numpy.lib import format as npy_format
 
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.store.io import one_line
 
 __all__ = ["NPZ_MEMBERS", "MAX_TEXT_BYTES", "read_npz"]
 
@@ -63,7 +64,7 @@ def read_npz(
         archive = zipfile.ZipFile(handle)
     except (zipfile.BadZipFile, OSError, ValueError, EOFError) as exc:
         raise InvalidInputError(
-            f"{source}: not a readable NPZ file (zip of .npy arrays): {exc}"
+            f"{source}: not a readable NPZ file (zip of .npy arrays): {one_line(exc)}"
         ) from None
     contents: dict[str, np.ndarray] = {}
     budget = max_bytes
@@ -84,7 +85,9 @@ def read_npz(
                     array = _read_member(member, info.file_size, where, budget, key, max_joints)
             except (zipfile.BadZipFile, OSError, EOFError, zlib.error, NotImplementedError,
                     RuntimeError) as exc:  # fmt: skip
-                raise InvalidInputError(f"{where}: damaged or unreadable ({exc})") from None
+                raise InvalidInputError(
+                    f"{where}: damaged or unreadable ({one_line(exc)})"
+                ) from None
             budget -= array.nbytes
             contents[key] = array
     return contents
@@ -100,7 +103,7 @@ def _read_member(
             raise InvalidInputError(f"{where}: .npy format version {version} is not supported")
         shape, fortran_order, dtype = reader(member)
     except ValueError as exc:
-        raise InvalidInputError(f"{where}: not a .npy array ({exc})") from None
+        raise InvalidInputError(f"{where}: not a .npy array ({one_line(exc)})") from None
     if dtype.hasobject:
         raise InvalidInputError(f"{where}: holds Python objects (pickles), refused")
     if any(int(extent) < 0 for extent in shape):

@@ -42,6 +42,7 @@ from compliant_demo.store.io import (
     check_metadata,
     demonstration_metadata,
     naming_file,
+    one_line,
     parse_json,
     show_progress,
     store_import,
@@ -105,7 +106,9 @@ def _read_metadata(reader: AnyReader, source: str) -> dict[str, Any]:
             message: Any = reader.deserialize(raw, connection.msgtype)
             text = str(message.data)
         except AnyReaderError as exc:
-            raise InvalidInputError(f"{where}: message cannot be decoded: {exc}") from None
+            raise InvalidInputError(
+                f"{where}: message cannot be decoded: {one_line(exc)}"
+            ) from None
     raw_meta = parse_json(text, where)
     if not isinstance(raw_meta, dict) or raw_meta.get("format") != BAG_FORMAT:
         raise InvalidInputError(f"{where}: not a JSON object with format {BAG_FORMAT!r}")
@@ -304,7 +307,7 @@ def _times(ns: np.ndarray, metadata: dict[str, Any], source: str) -> tuple[np.nd
     try:
         exact = np.frombuffer(base64.b64decode(metadata["time"], validate=True), dtype="<f8")
     except (binascii.Error, ValueError) as exc:
-        raise InvalidInputError(f"{where}: not base64 float64 values ({exc})") from None
+        raise InvalidInputError(f"{where}: not base64 float64 values ({one_line(exc)})") from None
     if exact.shape != ns.shape or not np.array_equal(
         np.round(exact * _NS).astype(np.int64), relative
     ):
@@ -374,7 +377,9 @@ def import_bag(
         reader = AnyReader([bag], default_typestore=_typestore())
         reader.open()
     except (AnyReaderError, OSError, ValueError) as exc:
-        raise InvalidInputError(f"{source!r} is not a readable ROS 2 bag: {exc}") from None
+        raise InvalidInputError(
+            f"{source!r} is not a readable ROS 2 bag: {one_line(exc)}"
+        ) from None
     try:
         metadata = _read_metadata(reader, source)
         topic = joint_topic or metadata.get("joint_topic") or "/joint_states"
@@ -419,7 +424,7 @@ def _read_samples(
             except AnyReaderError as exc:
                 samples.bad(
                     "undecodable_messages",
-                    f"{samples.where(index, connection.topic)} cannot be decoded: {exc}",
+                    f"{samples.where(index, connection.topic)} cannot be decoded: {one_line(exc)}",
                 )
                 continue
             if connection.topic == samples.joint_topic:
@@ -480,7 +485,7 @@ def export_bag(
         writer = Writer(Path(path), version=9, storage_plugin=STORAGES[storage])
         writer.open()
     except (WriterError, OSError) as exc:
-        raise InvalidInputError(f"cannot write bag {str(path)!r}: {exc}") from None
+        raise InvalidInputError(f"cannot write bag {str(path)!r}: {one_line(exc)}") from None
     try:
         meta_conn = writer.add_connection(METADATA_TOPIC, STRING, typestore=types)
         first = int(stamps[0]) if stamps.size else round(demo.info.start_time * _NS)

@@ -40,7 +40,6 @@ from tqdm import tqdm
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.store._codec import CHANNELS, validate_flags
-from compliant_demo.store._npz_reader import read_npz
 from compliant_demo.store.core import CHUNK_SAMPLES, DemoStore
 from compliant_demo.store.records import DEMO_SOURCES, DEMO_STATUSES, Demonstration
 
@@ -57,6 +56,7 @@ __all__ = [
     "check_budget",
     "begin_fields",
     "parse_json",
+    "one_line",
     "store_import",
     "export_csv",
     "import_csv",
@@ -112,6 +112,11 @@ def writing(path: str | os.PathLike[str], mode: str) -> Iterator[IO[Any]]:
         yield handle
 
 
+def one_line(exc: BaseException) -> str:
+    """An exception's text on one line (a library's message may span several)."""
+    return " ".join(str(exc).split())
+
+
 def _regular_file(path: str | os.PathLike[str], kind: str) -> Path:
     """``path`` when it is a regular file (a directory or a named pipe is refused)."""
     file = Path(path)
@@ -141,7 +146,7 @@ def naming_file(source: str) -> Iterator[None]:
     except InvalidInputError as exc:
         if source in str(exc):
             raise
-        raise InvalidInputError(f"{source}: {exc}") from None
+        raise InvalidInputError(f"{source}: {one_line(exc)}") from None
 
 
 def sample_columns(demo: Demonstration) -> tuple[list[str], np.ndarray]:
@@ -393,7 +398,7 @@ def _header_cells(first: str, lines: _CsvLines) -> list[str]:
         return next(csv.reader(physical(), strict=True))
     except (csv.Error, StopIteration) as exc:
         raise InvalidInputError(
-            f"{lines.source}, line {lines.number}: header is not valid CSV ({exc})"
+            f"{lines.source}, line {lines.number}: header is not valid CSV ({one_line(exc)})"
         ) from None
 
 
@@ -611,6 +616,8 @@ def import_npz(
     :data:`MAX_IMPORT_BYTES` of arrays, or more than :data:`MAX_JOINTS` joints, is refused.
     """
     source = str(path)
+    from compliant_demo.store._npz_reader import read_npz  # it uses this module's helpers
+
     file = _regular_file(path, "NPZ file")
     with _reading(file, source) as handle:
         contents = read_npz(handle, source, max_bytes=MAX_IMPORT_BYTES, max_joints=MAX_JOINTS)
