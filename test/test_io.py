@@ -168,6 +168,7 @@ _HEADER = "t,position.shoulder,velocity.shoulder,torque.shoulder"
         (_HEADER, ["0,1,2,3", "0.001,1,2,3,4"], "line 4: 5 values, the header has 4 columns"),
         (_HEADER, ["0,1,2,three"], "line 3, column 'torque.shoulder': 'three' is not a number"),
         (_HEADER, ["0,1,2,1_0"], "line 3, column 'torque.shoulder': '1_0' is not a plain number"),
+        (_HEADER, ["0,1,2,\u0661"], "line 3, column 'torque.shoulder': '\u0661' is not a plain"),
         (_HEADER, ["0,1,2,3", "", "0.002,1,2,3"], "bad.csv, line 4: empty row"),
         (_HEADER, ["0,1,2,3", "# comment,1,2,3"], "line 4, column 't': '# comment' is not a num"),
         (_HEADER, [], "bad.csv: no samples after the header"),

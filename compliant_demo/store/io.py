@@ -544,7 +544,7 @@ def _parse_rows(batch: list[tuple[int, str]], source: str, names: Sequence[str])
                 raise InvalidInputError(
                     f"{source}, line {number}, column {name!r}: {shown!r} is not a number"
                 ) from None
-            if "_" in cell:
+            if "_" in cell or not cell.isascii():
                 raise InvalidInputError(
                     f"{source}, line {number}, column {name!r}: {cell!r} is not a plain number"
                 )
