@@ -133,6 +133,33 @@ def test_fuzz_csv_import(import_target: _Target, data: st.DataObject, raw: bytes
         )
 
 
+@pytest.fixture(scope="module")
+def quoted_csv(tmp_path_factory: pytest.TempPathFactory) -> str:
+    """An exported CSV whose joint names hold a comma, a quote and a line break."""
+    folder = tmp_path_factory.mktemp("quoted")
+    with DemoStore(":memory:") as store:
+        demo_id = store.add_demonstration(
+            t=np.arange(6) / 1e3, position=np.zeros((6, 2)), velocity=np.ones((6, 2)),
+            torque=np.ones((6, 2)), stiffness=np.full((6, 2), np.nan), skill="cork_seat",
+            joints=["shoulder, left", 'elbow "lower"\nside'],
+        )  # fmt: skip
+        return export_csv(store, demo_id, folder / "quoted.csv").read_text()
+
+
+@FUZZ_SETTINGS
+@given(data=st.data())
+def test_fuzz_csv_with_quoted_joint_names(
+    import_target: _Target, quoted_csv: str, data: st.DataObject
+) -> None:
+    content = data.draw(_mutated_csv(quoted_csv)).encode()
+    with fuzz_file("quoted.csv", content) as path:
+        _check_import(
+            import_target,
+            lambda store: import_csv(store, path, keep_id=False, skill="cork_seat"),
+            "csv_quoted",
+        )
+
+
 # -- NPZ -----------------------------------------------------------------------------------------
 
 _array_junk = st.one_of(
