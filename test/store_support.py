@@ -3,6 +3,7 @@ arm (two joints) and a check that a store file is intact."""
 
 from __future__ import annotations
 
+import json
 import os
 import sqlite3
 import sys
@@ -71,3 +72,20 @@ def subprocess_env() -> dict[str, str]:
 
 
 PYTHON = sys.executable
+
+
+def assert_same_demonstration(original, copy) -> None:
+    """Every sample bit for bit (NaN included) and every metadata field but the row's creation
+    and update times; ``original`` and ``copy`` are loaded demonstrations."""
+    for name in ("t", "position", "velocity", "torque", "stiffness"):
+        left, right = getattr(original, name), getattr(copy, name)
+        assert (left is None) == (right is None), name
+        if left is not None:
+            assert left.dtype == right.dtype and left.shape == right.shape, name
+            assert left.tobytes() == right.tobytes(), name
+    assert original.joints == copy.joints
+    ignored = ("created_at", "updated_at")
+    fields = [{k: v for k, v in d.info.to_dict().items() if k not in ignored}
+              for d in (original, copy)]  # fmt: skip
+    # NaN summaries compare equal as JSON text ("NaN"), unlike NaN == NaN
+    assert json.dumps(fields[0], sort_keys=True) == json.dumps(fields[1], sort_keys=True)

@@ -77,14 +77,15 @@ def test_export_import_round_trip_all_formats(populated, tmp_path, capsys):
     status, out, _ = _run(capsys, "import", *files, "--store", target, "--json")
     assert status == 0 and [d["id"] for d in json.loads(out)] == ids
     # bag directories get no ".bag" suffix: readers take "*.bag" for the ROS 1 format
-    status, out, _ = _run(capsys, "import", out_dir / ids[0], "--skill", "cork_seat",
-                          "--stiffness-topic", "/stiffness", "--store", target)  # fmt: skip
+    # the skill and the stiffness topic come from the bag's metadata
+    status, out, _ = _run(capsys, "import", out_dir / ids[0], "--new-id", "--store", target)
     assert status == 0 and "cork_seat" in out
     with DemoStore(path) as source, DemoStore(target) as copy:
         original = source.load_demonstration(ids[0])
         assert np.array_equal(copy.load_demonstration(ids[0]).position, original.position)
         from_bag = [i for i in copy.find_demonstrations() if i.id not in ids]
         assert len(from_bag) == 1 and from_bag[0].n_samples == original.info.n_samples
+        assert from_bag[0].has_stiffness and from_bag[0].operator == original.info.operator
 
 
 def test_merge_verify_skills(populated, tmp_path, capsys):
@@ -116,7 +117,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
         (["list", "--where", "1; DELETE FROM demonstrations"], "was refused"),
         (["import", "notes.txt"], "cannot tell the format of 'notes.txt': give --format"),
         (["import", "missing.csv"], "CSV file 'missing.csv' does not exist"),
-        (["import", "some_bag", "--format", "bag"], "a bag has no skill name in it: give --skill"),
+        (["import", "some_bag", "--format", "bag"], "bag 'some_bag' does not exist"),
         (
             ["export", "FIRST", "--format", "csv", "--out", "nowhere/x.csv"],
             "cannot write 'nowhere/x.csv'",

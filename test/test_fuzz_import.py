@@ -9,6 +9,7 @@ including messages whose fields disagree and messages whose serialised bytes are
 from __future__ import annotations
 
 import io
+import json
 import tempfile
 import zipfile
 from collections.abc import Iterator
@@ -32,8 +33,8 @@ from rosbags.typesys import Stores, get_typestore
 
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.store import DemoStore
-from compliant_demo.store.bags import import_bag
-from compliant_demo.store.io import export_csv, export_npz, import_csv, import_npz
+from compliant_demo.store.bags import BAG_FORMAT, METADATA_TOPIC, STRING, import_bag
+from compliant_demo.store.io import METADATA_KEYS, export_csv, export_npz, import_csv, import_npz
 
 
 class _Target(tuple):
@@ -129,6 +130,33 @@ def test_fuzz_csv_import(import_target: _Target, data: st.DataObject, raw: bytes
             import_target,
             lambda store: import_csv(store, path, keep_id=False, skill="cork_seat"),
             "csv_import",
+        )
+
+
+@pytest.fixture(scope="module")
+def quoted_csv(tmp_path_factory: pytest.TempPathFactory) -> str:
+    """An exported CSV whose joint names hold a comma, a quote and a line break."""
+    folder = tmp_path_factory.mktemp("quoted")
+    with DemoStore(":memory:") as store:
+        demo_id = store.add_demonstration(
+            t=np.arange(6) / 1e3, position=np.zeros((6, 2)), velocity=np.ones((6, 2)),
+            torque=np.ones((6, 2)), stiffness=np.full((6, 2), np.nan), skill="cork_seat",
+            joints=["shoulder, left", 'elbow "lower"\nside'],
+        )  # fmt: skip
+        return export_csv(store, demo_id, folder / "quoted.csv").read_text()
+
+
+@FUZZ_SETTINGS
+@given(data=st.data())
+def test_fuzz_csv_with_quoted_joint_names(
+    import_target: _Target, quoted_csv: str, data: st.DataObject
+) -> None:
+    content = data.draw(_mutated_csv(quoted_csv)).encode()
+    with fuzz_file("quoted.csv", content) as path:
+        _check_import(
+            import_target,
+            lambda store: import_csv(store, path, keep_id=False, skill="cork_seat"),
+            "csv_quoted",
         )
 
 
@@ -249,9 +277,15 @@ def _good_message(index: int) -> dict:
             "velocity": value, "effort": value, "damage": None, "cut": None}  # fmt: skip
 
 
-def _write_bag(path: Path, messages: list[dict], storage: StoragePlugin) -> None:
+def _write_bag(
+    path: Path, messages: list[dict], storage: StoragePlugin, metadata: str | None = None
+) -> None:
     with Writer(path, version=9, storage_plugin=storage) as writer:
         connection = writer.add_connection("/joint_states", _JOINT_STATE, typestore=_TYPES)
+        if metadata is not None:
+            meta = writer.add_connection(METADATA_TOPIC, STRING, typestore=_TYPES)
+            text = _TYPES.types[STRING](data=metadata)
+            writer.write(meta, 1_000_000, _TYPES.serialize_cdr(text, STRING))
         for index, message in enumerate(messages):
             writer.write(connection, (index + 1) * 1_000_000, _serialised(message))
 
@@ -274,6 +308,41 @@ def test_fuzz_bag_import(
             import_target,
             lambda store: import_bag(store, path, skill="cork_seat", skip_bad=skip_bad),
             "bag_import",
+        )
+
+
+_json_junk = st.recursive(
+    st.one_of(st.none(), st.booleans(), st.integers(), st.floats(), st.text(max_size=8)),
+    lambda inner: st.one_of(st.lists(inner, max_size=3),
+                            st.dictionaries(st.text(max_size=6), inner, max_size=3)),
+    max_leaves=8,
+)  # fmt: skip
+_bag_metadata = st.one_of(
+    st.text(max_size=60),
+    st.dictionaries(
+        st.sampled_from([*METADATA_KEYS, "format", "joint_topic", "stiffness_topic", "time"]),
+        _json_junk,
+        max_size=6,
+    ).map(lambda fields: json.dumps({"format": BAG_FORMAT, "skill": "cork_seat", **fields})),
+)
+
+
+@FUZZ_SETTINGS
+@given(
+    metadata=_bag_metadata,
+    count=st.integers(1, 6),
+    storage=st.sampled_from([StoragePlugin.SQLITE3, StoragePlugin.MCAP]),
+)
+def test_fuzz_bag_metadata(
+    import_target: _Target, metadata: str, count: int, storage: StoragePlugin
+) -> None:
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "fuzz_bag"
+        _write_bag(path, [_good_message(i) for i in range(count)], storage, metadata)
+        _check_import(
+            import_target,
+            lambda store: import_bag(store, path, keep_id=False, progress=False),
+            "bag_metadata",
         )
 
 

@@ -126,12 +126,6 @@ def _format_of(path: Path, given: str | None) -> str:
     raise InvalidInputError(f"cannot tell the format of {str(path)!r}: give --format")
 
 
-def _bag_skill(args: argparse.Namespace) -> str:
-    if not args.skill:
-        raise InvalidInputError("a bag has no skill name in it: give --skill")
-    return str(args.skill)
-
-
 def _cmd_import(args: argparse.Namespace) -> int:
     meta: dict[str, Any] = {
         "skill": args.skill, "operator": args.operator, "notes": args.notes,
@@ -143,7 +137,7 @@ def _cmd_import(args: argparse.Namespace) -> int:
         "bag": lambda store, path: import_bag(
             store, path, joint_topic=args.joint_topic, stiffness_topic=args.stiffness_topic,
             joints=args.joints.split(",") if args.joints else None, skip_bad=args.skip_bad,
-            **{"skill": _bag_skill(args), **{k: v for k, v in meta.items() if k != "skill" and v}},
+            keep_id=not args.new_id, **{k: v for k, v in meta.items() if v},
         ),
     }  # fmt: skip
     added = []
@@ -299,13 +293,20 @@ def register(subparsers: Any) -> None:
     p = _sub(subparsers, "import", _cmd_import, "import demonstrations from CSV, NPZ or ROS 2 bags")
     p.add_argument("paths", nargs="+", type=Path)
     p.add_argument("--format", choices=_FORMATS, help="default: from the file name")
-    p.add_argument("--skill", help="skill name (needed for bags, overrides file metadata)")
+    p.add_argument("--skill", help="skill name (overrides file metadata; needed for files without)")
     p.add_argument("--operator")
     p.add_argument("--notes")
     p.add_argument("--tag", action="append")
     p.add_argument("--new-id", action="store_true", help="give imports fresh ids")
-    p.add_argument("--joint-topic", default="/joint_states")
-    p.add_argument("--stiffness-topic", help="Float64MultiArray stiffness topic in the bag")
+    p.add_argument(
+        "--joint-topic",
+        help="JointState topic in the bag (default: the bag's metadata, else /joint_states)",
+    )
+    p.add_argument(
+        "--stiffness-topic",
+        help="Float64MultiArray stiffness topic in the bag, '' for none (default: the bag's "
+        "metadata, else its one topic named *stiffness*)",
+    )
     p.add_argument("--joints", help="comma-separated joints to import from a bag")
     p.add_argument(
         "--skip-bad",
