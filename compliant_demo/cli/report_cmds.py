@@ -16,7 +16,13 @@ from compliant_demo.cli._job_options import (
     read_plant,
     show_progress,
 )
-from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
+from compliant_demo.cli.common import (
+    add_json_option,
+    add_store_option,
+    emit_json,
+    printable,
+    store_path_of,
+)
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.report import GroundTruth, collect_report_content, write_report
 from compliant_demo.store import DemoStore
@@ -77,6 +83,6 @@ def _run(args: argparse.Namespace) -> int:
                    "summary": dict(content.summary)})
     else:
         for key, value in content.summary:
-            print(f"{key}: {value}")
-        print(f"report: {files.html}")
+            print(f"{printable(key)}: {printable(value)}")
+        print(f"report: {printable(files.html)}")
     return 0
