@@ -26,6 +26,7 @@ from matplotlib.figure import Figure
 from compliant_demo import __version__
 from compliant_demo.alignment import align_demonstrations
 from compliant_demo.campaign import ReplayCampaign
+from compliant_demo.cautions import SAFETY_CAUTION
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
 from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, check_schedule
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
@@ -67,14 +68,12 @@ _FLAG_GROUPS: dict[str, tuple[str, ...]] = {
     "out of range": ("stiffness_range", "damping_range", "position_range", "torque_limit"),
 }
 
+#: The page's cautions: the one caution every summary carries, then what this report rests on.
 SAFETY_CAUTIONS: tuple[str, ...] = (
-    "This report comes from a simulation of the joint. A simulation, however detailed, does not "
-    "certify a robot, a mechanism or a skill as safe.",
-    "Whether a skill may run on hardware near people is decided by a risk assessment under the "
-    "applicable standards (ISO 10218-1 and -2 for industrial robots, ISO/TS 15066 for "
-    "collaborative operation), local regulations and licensed practice, not by this report.",
-    "Limits, metrics and flags here are only as good as the joint and mechanism parameters the "
-    "simulation was given; check them against the real hardware before trusting any number.",
+    SAFETY_CAUTION,
+    "This report comes from a simulation of the joint: limits, metrics and flags here are only "
+    "as good as the joint and mechanism parameters the simulation was given; check them "
+    "against the real hardware before trusting any number.",
 )
 
 # Black, dark and mid grey, each with its own dash pattern and marker: distinct without colour.

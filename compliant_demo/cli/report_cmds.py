@@ -19,6 +19,7 @@ from compliant_demo.cli._job_options import (
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
+    emit_caution,
     emit_json,
     printable,
     store_path_of,
@@ -85,4 +86,5 @@ def _run(args: argparse.Namespace) -> int:
         for key, value in content.summary:
             print(f"{printable(key)}: {printable(value)}")
         print(f"report: {printable(files.html)}")
+        emit_caution()
     return 0
