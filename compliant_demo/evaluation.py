@@ -244,7 +244,7 @@ def check_schedule(
     # (checked value, severity: positive where the check fails, unit) per kind.
     not_controllable = np.where(controllable, 0.0, -np.inf)
     checks = {
-        "under_damped": (ratio, min_damping_ratio - ratio, "1"),
+        "under_damped": (ratio, min_damping_ratio - ratio, "dimensionless (damping ratio)"),
         "energy_tank_empty": (tank, -tank, "J"),
         "stiffness_range": (rollout.stiffness,
                             _outside(rollout.stiffness, limits["k_min"], limits["k_max"]),

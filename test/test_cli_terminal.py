@@ -11,7 +11,7 @@ import pytest
 from cli_support import run_cli
 from store_support import add_demo
 
-from compliant_demo.cli.common import format_value, printable
+from compliant_demo.display import format_value, printable
 from compliant_demo.store import DemoStore
 
 HOSTILE = "op\x1b[31mred\r\nabcd1234  cork_seat  forged\u202e\x07"

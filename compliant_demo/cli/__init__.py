@@ -21,7 +21,8 @@ from collections.abc import Callable, Mapping, Sequence
 from typing import Any, NoReturn
 
 from compliant_demo import __version__
-from compliant_demo.cli.common import DASH_VALUE_OPTIONS, printable
+from compliant_demo.cli.common import DASH_VALUE_OPTIONS
+from compliant_demo.display import printable
 from compliant_demo.exceptions import CompliantDemoError
 
 __all__ = ["main", "build_parser"]

@@ -12,7 +12,8 @@ import math
 import sys
 from pathlib import Path
 
-from compliant_demo.cli.common import integer_in_range, printable
+from compliant_demo.cli.common import integer_in_range
+from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.primitives import Skill
 from compliant_demo.runtime import ReplayPlant, load_plant

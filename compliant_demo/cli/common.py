@@ -5,16 +5,15 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import re
 import sys
-import unicodedata
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 from compliant_demo.cautions import SAFETY_CAUTION
+from compliant_demo.display import format_value, printable
 
 __all__ = [
     "DASH_VALUE_OPTIONS",
@@ -24,8 +23,6 @@ __all__ = [
     "add_json_option",
     "store_path_of",
     "integer_in_range",
-    "printable",
-    "format_value",
     "emit_json",
     "emit_table",
     "emit_caution",
@@ -38,9 +35,7 @@ INT64_MAX = 2**63 - 1
 #: the entry point joins them to their value before argparse would take it for an option.
 DASH_VALUE_OPTIONS: frozenset[str] = frozenset({"--order-by", "--arg"})
 
-_SIGNIFICANT_DIGITS = 4
 _INTEGER = re.compile(r"[+-]?[0-9]+")
-_NAMED_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
 
 STORE_ENV = "COMPLIANT_DEMO_STORE"
 
@@ -96,46 +91,6 @@ def integer_in_range(low: int, high: int = INT64_MAX) -> Callable[[str], int]:
 
     parse.__name__ = "integer"
     return parse
-
-
-def printable(text: object) -> str:
-    """``text`` with every control or format character escaped (``\\x1b``, ``\\n``, ``\\u202e``).
-
-    Stored text (an operator name, notes, a tag from an imported file) reaches the terminal only
-    through this function, so it can neither send escape sequences nor forge table rows.
-    """
-    out = []
-    for char in str(text):
-        if unicodedata.category(char) in ("Cc", "Cf", "Cs", "Zl", "Zp"):
-            code = ord(char)
-            named = _NAMED_ESCAPES.get(char)
-            out.append(named or (f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}"))
-        else:
-            out.append(char)
-    return "".join(out)
-
-
-def format_value(value: Any, joints: Sequence[str] | None = None) -> str:
-    """A number or per-joint list as a table shows it: 4 significant digits, joints by name.
-
-    ``[0.29669, 0.34688]`` with ``joints=("shoulder", "elbow")`` gives
-    ``shoulder 0.2967, elbow 0.3469``; a list of another length is shown unlabelled.
-    """
-    if value is None:
-        return "-"
-    if isinstance(value, bool):
-        return str(value)
-    if isinstance(value, float):
-        return f"{value:.{_SIGNIFICANT_DIGITS}g}" if math.isfinite(value) else str(value)
-    if isinstance(value, Mapping):
-        return ", ".join(f"{printable(k)} {format_value(v)}" for k, v in value.items())
-    if isinstance(value, list | tuple):
-        items = [format_value(v) for v in value]
-        if joints is not None and len(joints) == len(items) and len(items) > 0:
-            pairs = zip(joints, items, strict=True)
-            return ", ".join(f"{printable(joint)} {item}" for joint, item in pairs)
-        return ",".join(items)
-    return printable(value)
 
 
 def emit_json(data: Any) -> None:

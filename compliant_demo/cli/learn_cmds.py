@@ -15,9 +15,9 @@ from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
     emit_json,
-    printable,
     store_path_of,
 )
+from compliant_demo.display import printable
 from compliant_demo.runtime import LearnRequest, learn_from_store
 from compliant_demo.store import DemoStore
 

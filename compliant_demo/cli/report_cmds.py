@@ -21,9 +21,9 @@ from compliant_demo.cli.common import (
     add_store_option,
     emit_caution,
     emit_json,
-    printable,
     store_path_of,
 )
+from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.report import GroundTruth, collect_report_content, write_report
 from compliant_demo.store import DemoStore

@@ -18,9 +18,9 @@ from compliant_demo.cli.common import (
     emit_json,
     emit_table,
     integer_in_range,
-    printable,
     store_path_of,
 )
+from compliant_demo.display import printable
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError, NotFoundError
 from compliant_demo.store import DemoStore
 from compliant_demo.store.bags import STORAGES, export_bag, import_bag
