@@ -331,7 +331,7 @@ def register(subparsers: Any) -> None:
                    help="show at most N demonstrations (default: all)")
 
     p = _sub(subparsers, "show", _cmd_show, "show one demonstration's metadata and summary")
-    p.add_argument("demo", help="demonstration id or unique prefix")
+    p.add_argument("demo", metavar="ID", help="demonstration id or unique prefix")
 
     p = _sub(subparsers, "import", _cmd_import, "import demonstrations from CSV, NPZ or ROS 2 bags")
     p.add_argument("paths", nargs="+", type=Path, metavar="PATH",
@@ -354,8 +354,8 @@ def register(subparsers: Any) -> None:
     )
 
     p = _sub(subparsers, "export", _cmd_export, "export demonstrations as CSV, NPZ or ROS 2 bags")
-    p.add_argument("demos", nargs="+", help="demonstration ids or unique prefixes")
-    p.add_argument("--format", choices=_FORMATS, required=True)
+    p.add_argument("demos", nargs="+", metavar="ID", help="demonstration ids or unique prefixes")
+    p.add_argument("--format", choices=_FORMATS, required=True, help="file format to write")
     p.add_argument("--out", type=Path, required=True, help="file (one id) or existing directory")
     p.add_argument("--storage", choices=tuple(STORAGES), default="sqlite3", help="bag storage")
 
@@ -369,13 +369,15 @@ def register(subparsers: Any) -> None:
                    help="store file to copy from (read only; ids kept, duplicates skipped)")
 
     p = _sub(subparsers, "delete", _cmd_delete, "delete finished demonstrations")
-    p.add_argument("demos", nargs="+")
+    p.add_argument("demos", nargs="+", metavar="ID",
+                   help="demonstration ids or unique prefixes (4+ characters)")
     p.add_argument("--force", action="store_true", help="also when a saved skill names it")
 
     p = _sub(subparsers, "mark", _cmd_mark, "set a finished demonstration's status")
-    p.add_argument("demo")
-    p.add_argument("status", choices=("complete", "incomplete", "rejected"))
-    p.add_argument("--reason")
+    p.add_argument("demo", metavar="ID", help="demonstration id or unique prefix")
+    p.add_argument("status", choices=("complete", "incomplete", "rejected"),
+                   help="the new status")
+    p.add_argument("--reason", help="why, kept with the status (e.g. 'cork fell')")
 
     _sub(subparsers, "skills", _cmd_skills, "list saved skill versions")
     _sub(subparsers, "verify", _cmd_verify, "check the store file's integrity")
