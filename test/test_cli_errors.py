@@ -221,3 +221,23 @@ def test_a_reader_closing_the_pipe_ends_the_command_quietly(tmp_path):
     err = process.stderr.read().decode()
     assert process.wait(timeout=60) == 141
     assert err == ""
+
+
+def test_list_reports_recovered_recordings_as_one_warning_line(tmp_path, capsys):
+    path = tmp_path / "store.sqlite"
+    writer = (
+        "import os, sys\n"
+        "from compliant_demo.store import DemoStore\n"
+        "store = DemoStore(sys.argv[1])\n"
+        "store.begin_demonstration(skill='cork_seat', joints=['shoulder'])\n"
+        "os._exit(0)  # the writer dies while recording\n"
+    )
+    paths = [str(REPO), os.environ.get("PYTHONPATH", "")]
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(paths))
+    subprocess.run([sys.executable, "-c", writer, str(path)], env=env, check=True, timeout=60)
+    status, out, err = run_cli(capsys, "list", "--store", path)
+    assert status == 0
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("compliant-demo list: warning: "), err
+    assert "were marked incomplete" in lines[0] and ".py" not in err
+    assert "incomplete" in out.splitlines()[1]
