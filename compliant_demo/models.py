@@ -187,7 +187,8 @@ def model_from_mapping(model: type[ModelT], data: object, *, source: str = "inpu
     """
     if not isinstance(data, dict):
         raise InvalidInputError(
-            f"{source}: expected a mapping for {model.__name__}, got {type(data).__name__}"
+            f"{source}: expected a mapping for a {_words(model.__name__)}, got "
+            f"{type(data).__name__}"
         )
     try:
         return model.model_validate(data)

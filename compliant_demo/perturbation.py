@@ -463,6 +463,12 @@ def load_campaign_yaml(path: str | Path) -> CampaignSpec:
         data = data["campaign"]
     if not isinstance(data, Mapping):
         raise InvalidInputError(f"{path}: expected a mapping, got {type(data).__name__}")
+    if "kinds" not in data and ("perturbations" in data or "scenarios" in data):
+        raise InvalidInputError(
+            f"{path}: holds perturbation schedules, not a campaign spec (kinds, onset_s, "
+            "duration_s, magnitude); a single schedule goes to `compliant-demo replay "
+            "--schedule` (load_schedule_yaml)"
+        )
     try:
         return CampaignSpec.model_validate(data)
     except ValidationError as exc:

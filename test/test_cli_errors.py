@@ -17,7 +17,9 @@ from pydantic import BaseModel, ConfigDict, ValidationError
 from store_support import REPO, add_demo
 
 from compliant_demo.cli import _build, _in_cli_terms
+from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import validation_message
+from compliant_demo.perturbation import load_campaign_yaml
 from compliant_demo.store import DemoStore
 
 CONFIG = REPO / "config"
@@ -124,6 +126,14 @@ def test_a_list_of_schedules_given_as_one_schedule_is_named_in_one_short_line(tm
                                    r"`compliant-demo campaign --spec`")  # fmt: skip
 
 
+@pytest.mark.parametrize("name", ["perturbations_cork_seat.yaml", "replay_bumps.yaml"])
+def test_a_schedule_given_as_a_campaign_spec_is_named(name):
+    with pytest.raises(InvalidInputError, match=rf"{name}: holds perturbation schedules, not a "
+                                                r"campaign spec .*`compliant-demo replay "
+                                                r"--schedule`"):  # fmt: skip
+        load_campaign_yaml(CONFIG / name)
+
+
 def test_plant_errors_name_file_field_and_a_truncated_value(tmp_path, capsys):
     plant = tmp_path / "plant.yaml"
     plant.write_text(yaml.safe_dump({"joints": [{"name": "shoulder", "inertia": "x" * 500}],
@@ -138,6 +148,10 @@ def test_plant_errors_name_file_field_and_a_truncated_value(tmp_path, capsys):
     status, _, err = run_cli(capsys, "replay", "--store", tmp_path / "none.sqlite",
                              "--plant", plant)  # fmt: skip
     one_line_error(err, "replay", r"plant\.yaml: field 'joints' is missing \(required\)$")
+    plant.write_text("[1, 2]\n")
+    status, _, err = run_cli(capsys, "replay", "--store", tmp_path / "none.sqlite",
+                             "--plant", plant)  # fmt: skip
+    one_line_error(err, "replay", r"plant\.yaml: expected a mapping for a replay plant, got list")
 
 
 class StrictGain(BaseModel):
