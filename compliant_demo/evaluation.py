@@ -251,7 +251,7 @@ def check_schedule(
     # (checked value, severity: positive where the check fails, unit) per kind.
     not_controllable = np.where(controllable, 0.0, -np.inf)
     checks = {
-        "under_damped": (ratio, min_damping_ratio - ratio, "1"),
+        "under_damped": (ratio, min_damping_ratio - ratio, "dimensionless (damping ratio)"),
         "energy_tank_empty": (tank, -tank, "J"),
         "stiffness_range": (rollout.stiffness,
                             _outside(rollout.stiffness, limits["k_min"], limits["k_max"]),
@@ -500,15 +500,29 @@ def first_limit_violation(
     when = f"at t = {times[k]:.3f} s"
     for j, joint in enumerate(joints):
         if excess["torque"][k, j] > 0:
-            return (f"torque limit: {joint.name} mechanism torque {tau[k, j]:.3g} N*m beyond "
-                    f"{joint.torque_limit:.3g} N*m {when}")
+            reached, limit = _apart(abs(tau[k, j]), joint.torque_limit)
+            sign = "-" if tau[k, j] < 0 else ""
+            return (f"torque limit: {joint.name} mechanism torque {sign}{reached} N*m beyond the "
+                    f"{limit} N*m limit {when}")
         if excess["position"][k, j] > 0:
-            return (f"joint range: {joint.name} at {q[k, j]:.3g} rad outside "
-                    f"[{joint.lower_limit:.3g}, {joint.upper_limit:.3g}] rad {when}")
+            bound = joint.lower_limit if q[k, j] < joint.lower_limit else joint.upper_limit
+            reached, _ = _apart(q[k, j], bound)
+            return (f"joint range: {joint.name} at {reached} rad outside "
+                    f"[{joint.lower_limit:.4g}, {joint.upper_limit:.4g}] rad {when}")
     assert rate is not None
     j = int(np.argmax(rate[k]))
-    return (f"stiffness rate: {joints[j].name} commanded at {rate[k, j]:.3g} N*m/rad/s beyond "
-            f"{max_stiffness_rate:.3g} {when}")
+    reached, limit = _apart(rate[k, j], max_stiffness_rate)
+    return (f"stiffness rate: {joints[j].name} commanded at {reached} N*m/rad/s beyond the "
+            f"{limit} N*m/rad/s limit {when}")
+
+
+def _apart(value: float, limit: float) -> tuple[str, str]:
+    """``value`` and ``limit`` printed with the fewest significant digits (at least 3) that tell
+    them apart, so a value just past its limit never reads as equal to it."""
+    digits = 3
+    while digits < 15 and f"{value:.{digits}g}" == f"{limit:.{digits}g}":
+        digits += 1
+    return f"{value:.{digits}g}", f"{limit:.{digits}g}"
 
 
 def _limit_violations(

@@ -6,6 +6,7 @@ from YAML through :func:`load_yaml_model` (safe loading only).
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Annotated, ClassVar, Literal, TypeVar
 
@@ -23,6 +24,7 @@ __all__ = [
     "model_from_mapping",
     "read_yaml",
     "validation_message",
+    "shown_value",
 ]
 
 PositiveFloat = Annotated[float, Field(gt=0, allow_inf_nan=False)]
@@ -189,7 +191,8 @@ def model_from_mapping(model: type[ModelT], data: object, *, source: str = "inpu
     """
     if not isinstance(data, dict):
         raise InvalidInputError(
-            f"{source}: expected a mapping for {model.__name__}, got {type(data).__name__}"
+            f"{source}: expected a mapping for a {_words(model.__name__)}, got "
+            f"{type(data).__name__}"
         )
     try:
         return model.model_validate(data)
@@ -197,12 +200,38 @@ def model_from_mapping(model: type[ModelT], data: object, *, source: str = "inpu
         raise InvalidInputError(f"{source}: {validation_message(exc)}") from None
 
 
+_SHOWN_VALUE_CHARS = 60
+
+
+def shown_value(value: object, limit: int = _SHOWN_VALUE_CHARS) -> str:
+    """``repr(value)`` cut to ``limit`` characters: an error line shows the value, not a file."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _words(class_name: str) -> str:
+    """``PerturbationSchedule`` -> ``perturbation schedule``: a model named for a reader."""
+    return re.sub(r"(?<=[a-z0-9])(?=[A-Z])", " ", class_name).lower()
+
+
 def validation_message(exc: ValidationError, prefix: str = "") -> str:
-    """One line naming the first invalid field (under ``prefix``), its value and the rule."""
+    """One line naming the first invalid field (under ``prefix``), its value and the rule.
+
+    The value is shown truncated (:func:`shown_value`), so a list of schedules given where one
+    is expected names its key and the start of its value, not the whole file; a missing field is
+    named without a value, because pydantic's "value" there is the whole enclosing mapping.
+    """
     first = exc.errors()[0]
     field = ".".join(str(part) for part in first["loc"])
     where = f"{prefix}.{field}" if prefix and field else prefix or field or "value"
-    return f"field {where!r} = {first.get('input')!r}: {first['msg']}"
+    if first["type"] == "missing":
+        return f"field {where!r} is missing (required)"
+    if first["type"] == "extra_forbidden":
+        return (
+            f"field {where!r} = {shown_value(first.get('input'))} is not a field of a "
+            f"{_words(exc.title)} (unknown field)"
+        )
+    return f"field {where!r} = {shown_value(first.get('input'))}: {first['msg']}"
 
 
 def read_yaml(path: str | Path) -> object:

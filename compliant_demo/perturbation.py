@@ -247,7 +247,20 @@ def load_schedule_yaml(path: str | Path) -> PerturbationSchedule:
     InvalidInputError
         Unreadable file, unknown ``kind`` (named in the message) or an invalid field.
     """
-    return schedule_from_mapping(read_yaml(path), where=str(path))
+    data = read_yaml(path)
+    if isinstance(data, Mapping) and "perturbations" not in data:
+        if "scenarios" in data:
+            raise InvalidInputError(
+                f"{path}: holds a list of schedules ('scenarios'), one per scenario; one "
+                "schedule {name, perturbations: [...]} is needed here, e.g. "
+                "config/replay_bumps.yaml"
+            )
+        if "campaign" in data or "kinds" in data:
+            raise InvalidInputError(
+                f"{path}: is a campaign spec, not a schedule; use it with "
+                "`compliant-demo campaign --spec` (load_campaign_yaml)"
+            )
+    return schedule_from_mapping(data, where=str(path))
 
 
 def load_schedules_yaml(path: str | Path) -> list[PerturbationSchedule]:
@@ -465,6 +478,12 @@ def load_campaign_yaml(path: str | Path) -> CampaignSpec:
         data = data["campaign"]
     if not isinstance(data, Mapping):
         raise InvalidInputError(f"{path}: expected a mapping, got {type(data).__name__}")
+    if "kinds" not in data and ("perturbations" in data or "scenarios" in data):
+        raise InvalidInputError(
+            f"{path}: holds perturbation schedules, not a campaign spec (kinds, onset_s, "
+            "duration_s, magnitude); a single schedule goes to `compliant-demo replay "
+            "--schedule` (load_schedule_yaml)"
+        )
     try:
         return CampaignSpec.model_validate(data)
     except ValidationError as exc:

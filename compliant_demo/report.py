@@ -24,6 +24,8 @@ from cycler import cycler
 from matplotlib.figure import Figure
 
 from compliant_demo import __version__
+from compliant_demo.cautions import SAFETY_CAUTION
+from compliant_demo.display import format_value
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
@@ -40,14 +42,12 @@ __all__ = [
     "write_report",
 ]
 
+#: The page's cautions: the one caution every summary carries, then what this report rests on.
 SAFETY_CAUTIONS: tuple[str, ...] = (
-    "This report comes from a simulation of the joint. A simulation, however detailed, does not "
-    "certify a robot, a mechanism or a skill as safe.",
-    "Whether a skill may run on hardware near people is decided by a risk assessment under the "
-    "applicable standards (ISO 10218-1 and -2 for industrial robots, ISO/TS 15066 for "
-    "collaborative operation), local regulations and licensed practice, not by this report.",
-    "Limits, metrics and flags here are only as good as the joint and mechanism parameters the "
-    "simulation was given; check them against the real hardware before trusting any number.",
+    SAFETY_CAUTION,
+    "This report comes from a simulation of the joint: limits, metrics and flags here are only "
+    "as good as the joint and mechanism parameters the simulation was given; check them "
+    "against the real hardware before trusting any number.",
 )
 
 # Black, dark and mid grey, each with its own dash pattern and marker: distinct without colour.
@@ -184,18 +184,25 @@ def plot_stiffness_estimate(
         How far the estimate trails what it describes (the recorder's ``stiffness_latency_s``);
         the estimate and its flags are drawn that much earlier, at the time they describe.
     """
+    t = np.asarray(t, dtype=float)
     estimated = _as_2d(estimated, "estimated")
     excited = np.asarray(excited, dtype=bool).reshape(estimated.shape)
     _check_joint_names(joint_names, estimated.shape[1], "estimated")
+    # Advanced by the latency, the first estimates describe times before the recording began:
+    # nothing was recorded there, so neither the estimate nor its flags are drawn before t[0].
+    shifted = t - latency_s
+    kept = shifted >= t[0] if t.size else np.zeros(0, dtype=bool)
     figure, axes = _new_figure(estimated.shape[1])
     for j, (ax, name) in enumerate(zip(axes[:, 0], joint_names, strict=True)):
         if ground_truth is not None:
             ax.plot(t, _as_2d(ground_truth, "ground_truth")[:, j], color="0.0", linestyle="-",
                     marker="", linewidth=1.6, label="teacher ground truth")
-        ax.plot(t - latency_s, estimated[:, j], color="0.35", linestyle="--", marker="s",
-                markevery=_markevery(len(t)), linewidth=1.0, label="estimate")
-        _shade_mask(ax, t - latency_s, np.logical_not(excited[:, j]), hatch="..",
+        ax.plot(shifted[kept], estimated[kept, j], color="0.35", linestyle="--", marker="s",
+                markevery=_markevery(int(kept.sum())), linewidth=1.0, label="estimate")
+        _shade_mask(ax, shifted[kept], np.logical_not(excited[kept, j]), hatch="..",
                     label="too little excitation")
+        if t.size:
+            ax.set_xlim(t[0], t[-1])
         _label(ax, "time [s]", f"{name} stiffness [N*m/rad]")
     figure.suptitle("Stiffness estimate against the teacher's ground truth")
     return figure
@@ -269,8 +276,7 @@ def plot_replay_traces(
     n_cols = 2
     n_rows = math.ceil(len(traces) / n_cols)
     figure, axes = _new_figure(n_rows, n_cols, width=10.0, row_height=2.8)
-    for number, (ax, (kind, (t, q, window))) in enumerate(
-            zip(axes.flat, traces.items(), strict=False)):
+    for ax, (kind, (t, q, window)) in zip(axes.flat, traces.items(), strict=False):
         q = _as_2d(q, f"traces[{kind!r}].q")
         if window is not None:
             ax.axvspan(window[0], window[1], facecolor="0.93", edgecolor="0.6", hatch="..",
@@ -284,11 +290,24 @@ def plot_replay_traces(
                     markevery=_markevery(len(nominal_t)), linewidth=1.6, zorder=3,
                     label=f"{name} unperturbed")
         ax.set_title(kind, fontsize="medium")
-        _label(ax, "time [s]", "angle [rad]", legend=number == 0)
+        _label(ax, "time [s]", "angle [rad]", legend=False)
     for ax in list(axes.flat)[len(traces):]:
         ax.set_visible(False)
+    # One legend for every panel, below them: inside a panel it would cover its traces.
+    handles, labels = _legend_entries(axes.flat)
+    figure.legend(handles, labels, loc="outside lower center", ncols=min(len(labels), 3),
+                  fontsize="small")
     figure.suptitle("Replay under each perturbation kind against the unperturbed replay")
     return figure
+
+
+def _legend_entries(axes) -> tuple[list, list[str]]:
+    """Each distinct labelled artist of ``axes`` once, in drawing order."""
+    entries: dict[str, object] = {}
+    for ax in axes:
+        for handle, label in zip(*ax.get_legend_handles_labels(), strict=True):
+            entries.setdefault(label, handle)
+    return list(entries.values()), list(entries)
 
 
 def plot_metric_distributions(
@@ -406,7 +425,7 @@ def _table_html(table: ReportTable) -> str:
     head = "".join(f"<th>{html.escape(c)}</th>" for c in table.columns)
     if table.rows:
         body = "".join(
-            "<tr>" + "".join(f"<td>{html.escape(_cell(v))}</td>" for v in row) + "</tr>"
+            "<tr>" + "".join(f"<td>{html.escape(format_value(v))}</td>" for v in row) + "</tr>"
             for row in table.rows
         )
     else:
@@ -416,14 +435,6 @@ def _table_html(table: ReportTable) -> str:
         f"<h2>{html.escape(table.title)}</h2>{caption}"
         f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
     )
-
-
-def _cell(value: object) -> str:
-    if value is None:
-        return "-"
-    if isinstance(value, float | np.floating):
-        return f"{float(value):.4g}"
-    return str(value)
 
 
 def write_report(content: ReportContent, out_dir: str | Path) -> ReportFiles:

@@ -112,7 +112,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
     [
         (["show", "zzzzzzzz"], "no demonstration id starts with 'zzzzzzzz'"),
         (["show", "ab"], "demonstration id 'ab' is too short"),
-        (["list", "--order-by", "start_time; DROP TABLE chunks"], "order_by term"),
+        (["list", "--order-by", "start_time; DROP TABLE chunks"], "--order-by term"),
         (["list", "--since", "yesterday"], "time 'yesterday' is not ISO 8601"),
         (["list", "--where", "1; DELETE FROM demonstrations"], "was refused"),
         (["import", "notes.txt"], "cannot tell the format of 'notes.txt': give --format"),

@@ -215,3 +215,20 @@ def test_node_stepping_the_command_and_a_campaign_give_identical_traces(
     assert stepped.stop_reason == (None if scenario.status == "ok" else scenario.reason) or (
         scenario.status == "violation"
     )
+
+
+def test_limit_messages_tell_the_reached_value_from_its_limit() -> None:
+    # A torque 0.0004 N*m past a 10 N*m limit must not read "10 N*m beyond 10 N*m".
+    from compliant_demo.evaluation import first_limit_violation
+
+    joints = [JointParams(name="shoulder", torque_limit=10.0, lower_limit=-1.0, upper_limit=1.0)]
+    message = first_limit_violation([0.5, 0.6], [[0.0], [0.0]], [[9.0], [-10.0004]], joints)
+    assert message == ("torque limit: shoulder mechanism torque -10.0004 N*m beyond the "
+                       "10 N*m limit at t = 0.600 s")
+    message = first_limit_violation([0.1], [[1.00002]], [[0.0]], joints)
+    assert message == "joint range: shoulder at 1.00002 rad outside [-1, 1] rad at t = 0.100 s"
+    rate = first_limit_violation([0.2], [[0.0]], [[0.0]], joints, stiffness_rate=[[120.0]],
+                                 max_stiffness_rate=100.0)
+    assert rate == ("stiffness rate: shoulder commanded at 120 N*m/rad/s beyond the 100 "
+                    "N*m/rad/s limit at t = 0.200 s")
+    assert first_limit_violation([0.1], [[0.5]], [[9.99]], joints) is None

@@ -62,7 +62,7 @@ class TourSettings:
     store : store file (created if missing)
     out_dir : directory for the report, the PNG figures, the teacher's truth file and node log;
         None: a folder of the run's own under ``compliant_demo_runs/``
-    n_demonstrations : demonstrations the simulated teacher gives (about 7 s each, real time)
+    n_demonstrations : demonstrations the simulated teacher gives (about 6 s each, real time)
     demo_duration_s : nominal duration of each demonstration, s (None: the scenario's 6 s)
     operator : operator name stored with each demonstration
     n_scenarios : perturbed scenarios of the campaign (spread evenly over every kind)

@@ -8,9 +8,12 @@ the same way (``--plant FILE``), and chooses where campaigns run the same way (`
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from pathlib import Path
 
+from compliant_demo.cli.common import integer_in_range
+from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.learning import StoredSkill, load_skill
 from compliant_demo.plant import DEFAULT_PLANT_FILE, ReplayPlant, load_plant
@@ -34,12 +37,12 @@ __all__ = [
 DEFAULT_SKILL = "cork_seat"
 
 
-def _number(kind: type, low: float, inclusive: bool, text: str) -> float:
+def _number(low: float, inclusive: bool, text: str) -> float:
     try:
-        value = kind(text)
+        value = float(text)
     except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if value != value or value in (float("inf"), float("-inf")):  # NaN or infinite
+        raise argparse.ArgumentTypeError(f"'{printable(text)[:40]}' is not a number") from None
+    if not math.isfinite(value):
         raise argparse.ArgumentTypeError(f"{text!r} is not finite")
     if value < low or (value == low and not inclusive):
         bound = ">=" if inclusive else ">"
@@ -47,24 +50,21 @@ def _number(kind: type, low: float, inclusive: bool, text: str) -> float:
     return value
 
 
-def positive_int(text: str) -> int:
-    """argparse type: an integer >= 1."""
-    return int(_number(int, 1, True, text))
+#: argparse type: an integer >= 1 (every integer option goes through :func:`integer_in_range`).
+positive_int = integer_in_range(1)
 
-
-def non_negative_int(text: str) -> int:
-    """argparse type: an integer >= 0."""
-    return int(_number(int, 0, True, text))
+#: argparse type: an integer >= 0.
+non_negative_int = integer_in_range(0)
 
 
 def positive_float(text: str) -> float:
     """argparse type: a finite number > 0."""
-    return float(_number(float, 0.0, False, text))
+    return _number(0.0, False, text)
 
 
 def non_negative_float(text: str) -> float:
     """argparse type: a finite number >= 0."""
-    return float(_number(float, 0.0, True, text))
+    return _number(0.0, True, text)
 
 
 def add_skill_options(parser: argparse.ArgumentParser) -> None:

@@ -23,6 +23,7 @@ from compliant_demo.cli._job_options import (
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
+    emit_caution,
     emit_json,
     emit_table,
     store_path_of,
@@ -130,4 +131,5 @@ def _run(args: argparse.Namespace) -> int:
               f"{summary.backend} ({summary.workers} workers)")
         emit_table([{"kind": kind, "scenarios": c[0], "violations": c[1]}
                     for kind, c in sorted(by_kind.items())], ("kind", "scenarios", "violations"))
+        emit_caution()
     return 0

@@ -1,23 +1,41 @@
-"""Options and output helpers shared by every subcommand: store path, JSON or table output."""
+"""Options and output helpers shared by every subcommand: store path, integer options, JSON or
+table output, and how stored text and numbers appear on a terminal."""
 
 from __future__ import annotations
 
 import argparse
 import json
 import os
+import re
 import sys
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
+from compliant_demo.cautions import SAFETY_CAUTION
+from compliant_demo.display import format_value, printable
+
 __all__ = [
+    "DASH_VALUE_OPTIONS",
+    "INT64_MAX",
     "default_store_path",
     "add_store_option",
     "add_json_option",
     "store_path_of",
+    "integer_in_range",
     "emit_json",
     "emit_table",
+    "emit_caution",
 ]
+
+#: Largest value of an SQLite integer (signed 64 bit).
+INT64_MAX = 2**63 - 1
+
+#: Options whose value may itself start with "-" (``--order-by -duration_s``, ``--arg -0.5``);
+#: the entry point joins them to their value before argparse would take it for an option.
+DASH_VALUE_OPTIONS: frozenset[str] = frozenset({"--order-by", "--arg"})
+
+_INTEGER = re.compile(r"[+-]?[0-9]+")
 
 STORE_ENV = "COMPLIANT_DEMO_STORE"
 
@@ -50,26 +68,54 @@ def store_path_of(args: argparse.Namespace) -> Path:
     return args.store if args.store is not None else default_store_path()
 
 
+def integer_in_range(low: int, high: int = INT64_MAX) -> Callable[[str], int]:
+    """argparse type: an integer in ``[low, high]``; argparse names the option in the error.
+
+    Every integer option of the command line is parsed by this one function, so a value out of
+    range (``--limit 100000000000000000000``) or not an integer is refused in argument parsing
+    with its range stated, before it reaches the store or the simulator.
+    """
+    stated = f"{low}..{high}"
+
+    def parse(text: str) -> int:
+        digits = text.strip()
+        if not _INTEGER.fullmatch(digits):
+            shown = printable(digits[:40]) + ("..." if len(digits) > 40 else "")
+            raise argparse.ArgumentTypeError(f"'{shown}' is not an integer ({stated})")
+        # a 5,000-digit value is out of range before Python would refuse to convert it
+        value = int(digits) if len(digits) <= 40 else None
+        if value is None or not low <= value <= high:
+            shown = digits if value is not None else f"a {len(digits.lstrip('+-'))}-digit number"
+            raise argparse.ArgumentTypeError(f"{shown} is out of range ({stated})")
+        return value
+
+    parse.__name__ = "integer"
+    return parse
+
+
 def emit_json(data: Any) -> None:
     """Print ``data`` as one JSON document."""
     json.dump(data, sys.stdout, indent=2, default=str)
     sys.stdout.write("\n")
 
 
-def emit_table(rows: Iterable[Mapping[str, Any]], columns: Sequence[str]) -> None:
-    """Print ``rows`` as a plain aligned table with the given column order."""
-    cells = [[_cell(row.get(col)) for col in columns] for row in rows]
+def emit_table(
+    rows: Iterable[Mapping[str, Any]],
+    columns: Sequence[str],
+    joints: Sequence[str] | None = None,
+) -> None:
+    """Print ``rows`` as a plain aligned table with the given column order.
+
+    Cells go through :func:`format_value` (and so :func:`printable`): numbers to 4 significant
+    digits, lists as long as ``joints`` labelled by joint name, control characters escaped.
+    """
+    cells = [[format_value(row.get(col), joints) for col in columns] for row in rows]
     widths = [max([len(col)] + [len(r[i]) for r in cells]) for i, col in enumerate(columns)]
     print("  ".join(col.ljust(w) for col, w in zip(columns, widths, strict=True)).rstrip())
     for r in cells:
         print("  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip())
 
 
-def _cell(value: Any) -> str:
-    if value is None:
-        return "-"
-    if isinstance(value, float):
-        return f"{value:.4g}"
-    if isinstance(value, list | tuple):
-        return ",".join(str(v) for v in value)
-    return str(value)
+def emit_caution() -> None:
+    """Print the safety caution line that closes every summary of a replay, campaign or report."""
+    print(SAFETY_CAUTION)

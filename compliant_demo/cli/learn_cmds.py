@@ -11,7 +11,13 @@ from compliant_demo.cli._job_options import (
     positive_int,
     read_plant,
 )
-from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
+from compliant_demo.cli.common import (
+    add_json_option,
+    add_store_option,
+    emit_json,
+    store_path_of,
+)
+from compliant_demo.display import printable
 from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.store import DemoStore
 
@@ -82,6 +88,7 @@ def _run(args: argparse.Namespace) -> int:
             "report": outcome.report,
         })
     else:
-        print(outcome.report)
-        print(f"saved as {outcome.name} version {outcome.version} ({outcome.skill_id})")
+        print("\n".join(printable(line) for line in outcome.report.splitlines()))
+        print(f"saved as {printable(outcome.name)} version {outcome.version} "
+              f"({outcome.skill_id})")
     return 0

@@ -22,6 +22,7 @@ from compliant_demo.cli._job_options import (
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
+    emit_caution,
     emit_json,
     emit_table,
     store_path_of,
@@ -111,5 +112,6 @@ def _run(args: argparse.Namespace) -> int:
               f"{plant.describe()}: {status}"
               + (f" ({reason})" if reason else "") + f"; result {result_id}")
         emit_table([{"metric": key, "value": metrics[key]} for key in _SHOWN],
-                   ("metric", "value"))
+                   ("metric", "value"), joints=skill.joints)
+        emit_caution()
     return 0 if status == "ok" else 1

@@ -16,7 +16,14 @@ from compliant_demo.cli._job_options import (
     read_plant,
     show_progress,
 )
-from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
+from compliant_demo.cli.common import (
+    add_json_option,
+    add_store_option,
+    emit_caution,
+    emit_json,
+    store_path_of,
+)
+from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.report import write_report
 from compliant_demo.store import DemoStore
@@ -32,7 +39,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         description=(
             "Write report.html (self-contained: figures embedded, no external resources) and "
             "one PNG per figure into --out: the demonstrations with their aligned mean and "
-            "spread, the stiffness estimate (N*m/rad) against the teacher's ground truth, the "
+            "spread, the stiffness estimate (N*m/rad) against the teacher's ground truth (drawn "
+            "earlier by the latency the recorder stored with it: 0.34 s with its defaults), the "
             "learned stiffness and damping ratio with flagged stretches, replays per "
             "perturbation kind against the unperturbed replay (rad), the campaign's metric "
             "distributions and a table of limit violations, with the safety cautions."
@@ -45,7 +53,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--truth", type=Path, default=None, metavar="FILE",
                         help="the teacher's ground-truth .npz (t_<i>, stiffness_<i> N*m/rad "
                              "per demonstration, in recording order)")
-    add_plant_option(parser)
+    add_plant_option(parser, default_text="the plant the campaign ran on; without a campaign, "
+                                          "the cork_seat bench arm on the ideal "
+                                          "variable-impedance mechanism")
     parser.add_argument("--min-damping-ratio", type=positive_float, default=0.5,
                         metavar="ZETA",
                         help="flag stretches whose damping ratio is below this (default: 0.5)")
@@ -75,6 +85,7 @@ def _run(args: argparse.Namespace) -> int:
                    "summary": dict(content.summary)})
     else:
         for key, value in content.summary:
-            print(f"{key}: {value}")
-        print(f"report: {files.html.resolve()}")
+            print(f"{printable(key)}: {printable(value)}")
+        print(f"report: {printable(files.html.resolve())}")
+        emit_caution()
     return 0

@@ -11,14 +11,17 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from compliant_demo.cli._job_options import non_negative_float
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
     emit_json,
     emit_table,
+    integer_in_range,
     store_path_of,
 )
-from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.display import printable
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError, NotFoundError
 from compliant_demo.store import DemoStore
 from compliant_demo.store.bags import STORAGES, export_bag, import_bag
 from compliant_demo.store.io import export_csv, export_npz, import_csv, import_npz
@@ -27,6 +30,7 @@ __all__ = ["register", "resolve_demo_id"]
 
 _LIST_COLUMNS = ("id", "skill", "operator", "status", "start", "duration_s", "n_samples", "tags")
 _FORMATS = ("csv", "npz", "bag")
+_STATUSES = ("recording", "complete", "incomplete", "rejected")
 
 
 def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
@@ -58,8 +62,16 @@ def resolve_demo_id(store: DemoStore, prefix: str) -> str:
     return matches[0]
 
 
+_TIME_FIELDS = ("start_time", "created_at", "updated_at")
+
+
 def _iso(unix_s: float) -> str:
-    return datetime.fromtimestamp(unix_s, tz=UTC).strftime("%Y-%m-%d %H:%M:%SZ")
+    """ISO 8601 in UTC to the second: ``2026-11-30T00:53:20Z``."""
+    return datetime.fromtimestamp(unix_s, tz=UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _unix_and_iso(unix_s: float) -> str:
+    return f"{unix_s:.3f} s ({_iso(unix_s)})"
 
 
 def _when(text: str) -> float:
@@ -104,8 +116,11 @@ def _cmd_show(args: argparse.Namespace) -> int:
     data = info.to_dict()
     per_joint = ("range_of_motion", "peak_abs_torque", "stiffness_min", "stiffness_max")
     emit_table(
-        [{"field": key, "value": value} for key, value in data.items() if key not in per_joint]
-        + [{"field": "start (UTC)", "value": _iso(info.start_time)}],
+        [
+            {"field": key, "value": _unix_and_iso(value) if key in _TIME_FIELDS else value}
+            for key, value in data.items()
+            if key not in per_joint
+        ],
         ("field", "value"),
     )
     print()
@@ -143,12 +158,30 @@ def _cmd_import(args: argparse.Namespace) -> int:
     added = []
     with _open(args, write=True) as store:
         for path in args.paths:
-            added.append(store.get_info(importers[_format_of(path, args.format)](store, path)))
+            importer = importers[_format_of(path, args.format)]
+            added.append(store.get_info(_unreadable_named(path, importer, store)))
     if args.json:
         emit_json([info.to_dict() for info in added])
     else:
         emit_table([{**i.to_dict(), "start": _iso(i.start_time)} for i in added], _LIST_COLUMNS)
     return 0
+
+
+def _unreadable_named(path: Path, importer: Callable[..., str], store: DemoStore) -> str:
+    """Run ``importer`` on ``path``; input it cannot parse is an error naming the file.
+
+    Metadata nested too deeply for the parser, integers too long to convert or values of a type
+    the importer does not expect surface as built-in errors from deep inside the readers.
+    """
+    try:
+        return importer(store, path)
+    except (CompliantDemoError, OSError):
+        raise
+    except RecursionError:
+        raise InvalidInputError(f"{str(path)!r}: metadata nested too deeply") from None
+    except (ValueError, TypeError) as exc:
+        reason = str(exc).split(";")[0].splitlines()[0] if str(exc) else type(exc).__name__
+        raise InvalidInputError(f"{str(path)!r}: unreadable metadata ({reason[:120]})") from None
 
 
 def _export_target(out: Path, demo_id: str, fmt: str) -> Path:
@@ -217,7 +250,7 @@ def _cmd_delete(args: argparse.Namespace) -> int:
     if args.json:
         emit_json({"deleted": ids})
     else:
-        print("\n".join(f"deleted {demo_id}" for demo_id in ids))
+        print("\n".join(f"deleted {printable(demo_id)}" for demo_id in ids))
     return 0
 
 
@@ -227,7 +260,7 @@ def _cmd_mark(args: argparse.Namespace) -> int:
     if args.json:
         emit_json(info.to_dict())
     else:
-        print(f"{info.id} is now {info.status}")
+        print(f"{printable(info.id)} is now {printable(info.status)}")
     return 0
 
 
@@ -257,7 +290,7 @@ def _cmd_verify(args: argparse.Namespace) -> int:
     if args.json:
         emit_json({"ok": ok, "schema_version": version, "problems": [] if ok else problems})
     else:
-        print(f"schema version {version}: " + ("ok" if ok else "; ".join(problems)))
+        print(f"schema version {version}: " + ("ok" if ok else printable("; ".join(problems))))
     return 0 if ok else 1
 
 
@@ -274,29 +307,35 @@ def _sub(
 def register(subparsers: Any) -> None:
     """Add the store subcommands to the ``compliant-demo`` parser."""
     p = _sub(subparsers, "list", _cmd_list, "list demonstrations matching filters")
-    p.add_argument("--skill")
-    p.add_argument("--operator")
+    p.add_argument("--skill", help="only demonstrations of this skill")
+    p.add_argument("--operator", help="only this operator's demonstrations")
     p.add_argument("--tag", action="append", help="required tag (repeat for several)")
-    p.add_argument("--status", action="append", choices=("recording", "complete", "incomplete",
-                                                          "rejected"))  # fmt: skip
+    p.add_argument("--status", action="append", choices=_STATUSES,
+                   help="only this status (repeat for several; default: any)")
     p.add_argument("--since", help="started at or after this ISO 8601 time (UTC if no zone)")
     p.add_argument("--until", help="started before this ISO 8601 time")
-    p.add_argument("--min-duration", type=float, metavar="SECONDS")
+    p.add_argument("--min-duration", type=non_negative_float, metavar="SECONDS",
+                   help="only demonstrations at least this long, s")
     p.add_argument("--where", help="extra read-only SQL condition on demonstration columns")
     p.add_argument("--arg", action="append", default=[], help="a parameter of --where (repeat)")
-    p.add_argument("--order-by", help="column [asc|desc], or -column (default start_time)")
-    p.add_argument("--limit", type=int)
+    p.add_argument("--order-by", metavar="COLUMN",
+                   help="column [asc|desc], or -column for descending, e.g. --order-by "
+                        "-duration_s (default: start_time)")
+    p.add_argument("--limit", type=integer_in_range(0), metavar="N",
+                   help="show at most N demonstrations (default: all)")
 
     p = _sub(subparsers, "show", _cmd_show, "show one demonstration's metadata and summary")
-    p.add_argument("demo", help="demonstration id or unique prefix")
+    p.add_argument("demo", metavar="ID", help="demonstration id or unique prefix")
 
     p = _sub(subparsers, "import", _cmd_import, "import demonstrations from CSV, NPZ or ROS 2 bags")
-    p.add_argument("paths", nargs="+", type=Path)
+    p.add_argument("paths", nargs="+", type=Path, metavar="PATH",
+                   help="CSV or NPZ file, or ROS 2 bag (folder, .db3 or .mcap)")
     p.add_argument("--format", choices=_FORMATS, help="default: from the file name")
     p.add_argument("--skill", help="skill name (overrides file metadata; needed for files without)")
-    p.add_argument("--operator")
-    p.add_argument("--notes")
-    p.add_argument("--tag", action="append")
+    p.add_argument("--operator", help="operator name (overrides file metadata)")
+    p.add_argument("--notes", help="free-text notes (override file metadata)")
+    p.add_argument("--tag", action="append", help="tag to give (repeat for several; replaces "
+                                                  "the file's tags)")
     p.add_argument("--new-id", action="store_true", help="give imports fresh ids")
     p.add_argument(
         "--joint-topic",
@@ -315,8 +354,8 @@ def register(subparsers: Any) -> None:
     )
 
     p = _sub(subparsers, "export", _cmd_export, "export demonstrations as CSV, NPZ or ROS 2 bags")
-    p.add_argument("demos", nargs="+", help="demonstration ids or unique prefixes")
-    p.add_argument("--format", choices=_FORMATS, required=True)
+    p.add_argument("demos", nargs="+", metavar="ID", help="demonstration ids or unique prefixes")
+    p.add_argument("--format", choices=_FORMATS, required=True, help="file format to write")
     p.add_argument("--out", type=Path, required=True, help="file (one id) or existing directory")
     p.add_argument("--storage", choices=tuple(STORAGES), default="sqlite3", help="bag storage")
 
@@ -326,16 +365,19 @@ def register(subparsers: Any) -> None:
         _cmd_merge,
         "copy demonstrations, skills and results from another store file",
     )
-    p.add_argument("other", type=Path)
+    p.add_argument("other", type=Path, metavar="OTHER",
+                   help="store file to copy from (read only; ids kept, duplicates skipped)")
 
     p = _sub(subparsers, "delete", _cmd_delete, "delete finished demonstrations")
-    p.add_argument("demos", nargs="+")
+    p.add_argument("demos", nargs="+", metavar="ID",
+                   help="demonstration ids or unique prefixes (4+ characters)")
     p.add_argument("--force", action="store_true", help="also when a saved skill names it")
 
     p = _sub(subparsers, "mark", _cmd_mark, "set a finished demonstration's status")
-    p.add_argument("demo")
-    p.add_argument("status", choices=("complete", "incomplete", "rejected"))
-    p.add_argument("--reason")
+    p.add_argument("demo", metavar="ID", help="demonstration id or unique prefix")
+    p.add_argument("status", choices=("complete", "incomplete", "rejected"),
+                   help="the new status")
+    p.add_argument("--reason", help="why, kept with the status (e.g. 'cork fell')")
 
     _sub(subparsers, "skills", _cmd_skills, "list saved skill versions")
     _sub(subparsers, "verify", _cmd_verify, "check the store file's integrity")

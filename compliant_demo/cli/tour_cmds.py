@@ -18,7 +18,13 @@ from compliant_demo.cli._job_options import (
     positive_int,
     show_progress,
 )
-from compliant_demo.cli.common import add_json_option, add_store_option, emit_json, store_path_of
+from compliant_demo.cli.common import (
+    add_json_option,
+    add_store_option,
+    emit_caution,
+    emit_json,
+    store_path_of,
+)
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = ["register", "add_recording_options", "recording_settings", "announce_plan"]
@@ -79,7 +85,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         description=(
             "Start the simulated teacher and the recorder as ROS 2 node processes (DDS on "
             "loopback only), record cork_seat demonstrations of the two-joint bench arm (soft "
-            "approach, stiff press, soft retreat; about 7 s each, real time) into the store, "
+            "approach, stiff press, soft retreat; about 6 s each, real time) into the store, "
             "learn the skill, replay it in a campaign of perturbed scenarios over every "
             "perturbation kind on the target arm (default: antagonistic spring pairs, whose "
             "damping does not follow the stiffness), and write the HTML report. Prints a short "
@@ -120,6 +126,5 @@ def _run(args: argparse.Namespace) -> int:
                    "schedule checks"):
             print(f"  {key}: {value}")
     print(f"report: {result.report.resolve()}")
-    print("Simulation does not certify a robot as safe: a risk assessment under ISO 10218 and "
-          "ISO/TS 15066, local regulations and licensed practice decide.")
+    emit_caution()
     return 0
