@@ -208,6 +208,9 @@ def parameter_value(value: Any) -> Any:
         return ParameterValue(type=ParameterType.PARAMETER_STRING, string_value=value)
     if all(isinstance(v, float) for v in value):
         return ParameterValue(type=ParameterType.PARAMETER_DOUBLE_ARRAY, double_array_value=value)
+    if all(isinstance(v, int) and not isinstance(v, bool) for v in value):
+        return ParameterValue(type=ParameterType.PARAMETER_INTEGER_ARRAY,
+                              integer_array_value=value)
     return ParameterValue(type=ParameterType.PARAMETER_STRING_ARRAY, string_array_value=value)
 
 

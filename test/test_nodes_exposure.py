@@ -165,6 +165,7 @@ def test_a_running_replay_refuses_changes_to_limits_and_files(
                                  "exceed max_steps = 1000000")
         assert set_parameter(client, "/replay", "duration_s", 0.5).successful
         assert set_parameter(client, "/replay", "control_rate_hz", 1000.0).successful
+        assert set_parameter(client, "/replay", "goal", [0.3, 0.5]).successful
         assert client.call_trigger("run", timeout_s=30.0).success
 
         def stored():
@@ -179,6 +180,7 @@ def test_a_running_replay_refuses_changes_to_limits_and_files(
     with DemoStore(store, read_only=True) as db:
         (result,) = db.find_replay_results()
     assert result.parameters["max_stiffness_rate"] == 5000.0 and result.parameters["seed"] == 7
+    assert result.parameters["goal"] == [0.3, 0.5]
 
 
 @pytest.mark.ros
@@ -264,7 +266,7 @@ def test_a_strangers_discard_is_refused_and_the_recording_stays_intact(
         refused = client.call_trigger("discard")
         assert not refused.success
         assert refused.message == ("discard refused: allow_discard is false on this recorder "
-                                   "(set it at launch); the demonstration continues")
+                                   "(set it at launch); nothing changed")
         change = set_parameter(client, "/recorder", "allow_discard", True)
         assert not change.successful and "read-only" in change.reason
         _publish_samples(client, publisher, t0 + 0.2, 100)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from array import array
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -34,6 +35,7 @@ __all__ = [
     "diagnostic_array",
     "check_parameter_changes",
     "list_parameter",
+    "is_list",
     "open_store",
     "run_node",
 ]
@@ -118,7 +120,7 @@ def text_problem(
     """
     for name in names:
         value = values[name]
-        items = value if isinstance(value, list | tuple) else [value]
+        items = value if is_list(value) else [value]
         if len(items) > MAX_LIST_ITEMS:
             return f"{name}: at most {MAX_LIST_ITEMS} items, got {len(items)}"
         for item in items:
@@ -139,7 +141,7 @@ def list_parameter(node: Node, name: str, item_type: type) -> list:
     """
     value = node.get_parameter(name).value
     accepted = (int, float) if item_type is float else (item_type,)
-    if not isinstance(value, list | tuple) or not all(
+    if not is_list(value) or not all(
         isinstance(item, accepted) and not isinstance(item, bool) for item in value
     ):
         raise InvalidInputError(
@@ -203,6 +205,11 @@ def guarded_service(node: Node, service: str, callback: Callable[[Any, Any], Any
             return response
 
     return guarded
+
+
+def is_list(value: Any) -> bool:
+    """True for a list parameter's value (rclpy gives number lists as ``array.array``)."""
+    return isinstance(value, list | tuple | array)
 
 
 def recorded_qos(depth: int) -> QoSProfile:

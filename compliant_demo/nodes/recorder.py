@@ -234,7 +234,7 @@ class RecorderNode(Node):
         if not self._settings["allow_discard"]:
             response.success = False
             response.message = ("discard refused: allow_discard is false on this recorder (set "
-                                "it at launch); the demonstration continues")
+                                "it at launch); nothing changed")
             self.get_logger().warning(response.message, throttle_duration_sec=5.0)
             return response
         response.success, response.message = self.session.stop(

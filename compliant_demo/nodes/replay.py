@@ -27,6 +27,7 @@ from compliant_demo.nodes._common import (
     diagnostic_array,
     float_array,
     guarded_service,
+    is_list,
     list_parameter,
     open_store,
     run_node,
@@ -288,7 +289,7 @@ def _check_parameters(values: dict) -> str | None:
     if values["method"] not in METHODS:
         return f"method must be one of {', '.join(METHODS)}, got {values['method'][:40]!r}"
     goal = values["goal"]
-    if not isinstance(goal, list | tuple) or len(goal) > 64 or not all(
+    if not is_list(goal) or len(goal) > 64 or not all(
         isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) for v in goal
     ):
         return "goal must be a list of at most 64 finite numbers, rad"
