@@ -325,3 +325,65 @@ def test_a_running_learner_keeps_its_stiffness_limits(tmp_path: Path, client: Te
         assert nodes.interrupt("learner") == 0, nodes.log("learner")
     finally:
         nodes.close()
+
+
+# What any participant may change at run time, node by node: the README's table says the same.
+_WRITABLE = {
+    "recorder": {"skill", "operator", "tags", "notes"},
+    "teacher": set(),
+    "learner": {"skill", "joints", "tags", "operator", "min_demonstrations", "n_basis",
+                "alignment", "stiffness_source"},
+    "replay": {"skill", "skill_version", "control_rate_hz", "duration_s", "settle_s", "goal",
+               "seed", "method", "real_time", "publish_decimation"},
+}
+
+
+def _describe(client: TestClient, node: str) -> dict[str, object]:
+    """Every parameter's descriptor, asked through the node's own services as anyone could."""
+    from rcl_interfaces.srv import DescribeParameters, ListParameters
+
+    listing = client.node.create_client(ListParameters, f"/{node}/list_parameters")
+    describe = client.node.create_client(DescribeParameters, f"/{node}/describe_parameters")
+    try:
+        client.spin_until(listing.service_is_ready, 30.0, f"{node}'s parameter services")
+        client.spin_until(describe.service_is_ready, 30.0, f"{node}'s parameter services")
+        future = listing.call_async(ListParameters.Request())
+        client.spin_until(future.done, 20.0, "list_parameters")
+        names = list(future.result().result.names)
+        future = describe.call_async(DescribeParameters.Request(names=names))
+        client.spin_until(future.done, 20.0, "describe_parameters")
+        return dict(zip(names, future.result().descriptors, strict=True))
+    finally:
+        client.node.destroy_client(listing)
+        client.node.destroy_client(describe)
+
+
+@pytest.mark.ros
+@pytest.mark.slow
+@pytest.mark.parametrize("node", sorted(_WRITABLE))
+def test_only_the_documented_parameters_change_at_run_time(
+    tmp_path: Path, client: TestClient, node: str
+) -> None:
+    extra = {"teacher": ["wait_for_subscribers:=100", "control_recorder:=false"]}.get(node, [])
+    nodes = start_module(f"compliant_demo.nodes.{node}",
+                         [f"store_path:={tmp_path / 'store.sqlite'}", *extra], DOMAIN_ID,
+                         tmp_path / f"{node}.log", node)
+    try:
+        descriptors = _describe(client, node)
+        writable = {name for name, d in descriptors.items() if not d.read_only}
+        assert writable - {"use_sim_time"} == _WRITABLE[node]
+        for name, descriptor in descriptors.items():  # every description says what it is
+            assert name == "use_sim_time" or descriptor.description, name
+        limits_and_files = {name for name in descriptors
+                            if name.startswith("max_") or name.endswith(("_file", "_path"))}
+        assert limits_and_files and not limits_and_files & writable
+        refused = set_parameter(client, f"/{node}", "use_sim_time", True)
+        assert refused.reason == "use_sim_time is fixed once the node runs (set it at launch)"
+        assert nodes.interrupt(node) == 0, nodes.log(node)
+    finally:
+        nodes.close()
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    row = next(line for line in readme.splitlines() if line.startswith(f"| {node} |"))
+    documented = set(row.split(" | ")[3].replace("`", "").replace(",", " ").split()) & set(
+        descriptors)
+    assert documented == _WRITABLE[node], row

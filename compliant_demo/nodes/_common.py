@@ -78,13 +78,19 @@ def declare(
     return node.declare_parameter(name, default, descriptor).value
 
 
+# Declared by rclpy itself without read_only; switching a running node to a clock any participant
+# can publish (/clock) would move its stamp checks, so it is fixed once the node runs.
+_FIXED_AT_LAUNCH = ("use_sim_time",)
+
+
 def check_parameter_changes(
-    node: Node, check: Callable[[dict[str, Any]], str | None]
+    node: Node, check: Callable[[dict[str, Any]], str | None] | None = None
 ) -> None:
     """Check the declared values now, then refuse changes that ``check`` finds wrong.
 
     ``check`` sees every parameter's value as it would be after the change (name -> value) and
     returns None to accept or a reason to refuse; rclpy reports the reason to the caller.
+    ``use_sim_time`` is refused at run time on every node that calls this.
 
     Raises
     ------
@@ -99,12 +105,16 @@ def check_parameter_changes(
         values.update({parameter.name: parameter.value for parameter in parameters})
         return values
 
-    reason = check(values_after([]))
+    reason = None if check is None else check(values_after([]))
     if reason is not None:
         raise InvalidInputError(f"node {node.get_name()}: {reason}")
 
     def on_set(parameters: list) -> SetParametersResult:
-        reason = check(values_after(parameters))
+        fixed = [p.name for p in parameters if p.name in _FIXED_AT_LAUNCH]
+        if fixed:
+            reason = f"{fixed[0]} is fixed once the node runs (set it at launch)"
+        else:
+            reason = None if check is None else check(values_after(parameters))
         return SetParametersResult(successful=reason is None, reason=reason or "")
 
     node.add_on_set_parameters_callback(on_set)

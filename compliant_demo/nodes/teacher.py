@@ -20,6 +20,7 @@ from std_srvs.srv import Trigger
 from compliant_demo.models import load_yaml_model, model_from_mapping
 from compliant_demo.nodes._common import (
     RejectCounter,
+    check_parameter_changes,
     declare,
     diagnostic_array,
     float_array,
@@ -75,6 +76,7 @@ class TeacherNode(Node):
                              "ground-truth stiffness per demonstration.")
         depth = d(self, "queue_depth", 5000, "History depth of the reliable publishers.",
                   low=10, high=100000)
+        check_parameter_changes(self)  # every parameter is read-only; use_sim_time too
         self.session = TeachingSession(self._scenario(scenario_file), n_demos, seed)
         self._joints = list(self.session.scenario.joint_names)
         qos = recorded_qos(depth)  # reliable: every published sample is meant to be recorded
