@@ -111,11 +111,12 @@ def check_parameter_changes(
 
     def on_set(parameters: list) -> SetParametersResult:
         fixed = [p.name for p in parameters if p.name in _FIXED_AT_LAUNCH]
+        refusal: str | None = None
         if fixed:
-            reason = f"{fixed[0]} is fixed once the node runs (set it at launch)"
-        else:
-            reason = None if check is None else check(values_after(parameters))
-        return SetParametersResult(successful=reason is None, reason=reason or "")
+            refusal = f"{fixed[0]} is fixed once the node runs (set it at launch)"
+        elif check is not None:
+            refusal = check(values_after(parameters))
+        return SetParametersResult(successful=refusal is None, reason=refusal or "")
 
     node.add_on_set_parameters_callback(on_set)
 
