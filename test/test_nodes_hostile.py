@@ -262,3 +262,47 @@ def test_teacher_survives_forged_recorder_diagnostics(tmp_path: Path, client: Te
     finally:
         diagnostics.close()
         nodes.close()
+
+
+# -- the guards every callback and service goes through -------------------------------------------
+
+
+class _LoggingOnly:
+    """Just what RejectCounter and guarded_service use of a node: one logger."""
+
+    def __init__(self) -> None:
+        import rclpy.logging
+
+        self.logger = rclpy.logging.get_logger("hostile_test")
+
+    def get_logger(self):
+        return self.logger
+
+
+def test_a_failing_callback_is_counted_not_raised() -> None:
+    from compliant_demo.nodes._common import RejectCounter
+
+    rejects = RejectCounter(_LoggingOnly())  # type: ignore[arg-type]
+
+    def fails(message: str) -> None:
+        raise ValueError(f"cannot use {message}")
+
+    guarded = rejects.guard("joint_states", fails)
+    for message in ("a", "b", "c"):
+        guarded(message)
+    rejects.reject("joint_states", "oversized", "300 entries")
+    assert rejects.values() == {"rejected": "4", "rejected/joint_states/callback_error": "3",
+                                "rejected/joint_states/oversized": "1"}
+
+
+def test_a_failing_service_answers_with_a_refusal() -> None:
+    from std_srvs.srv import Trigger
+
+    from compliant_demo.nodes._common import guarded_service
+
+    def fails(_request, _response):
+        raise ZeroDivisionError("division by zero")
+
+    service = guarded_service(_LoggingOnly(), "run", fails)  # type: ignore[arg-type]
+    response = service(Trigger.Request(), Trigger.Response())
+    assert (response.success, response.message) == (False, "run failed: ZeroDivisionError")
