@@ -49,9 +49,13 @@ def allowed_config_dirs() -> list[Path]:
         places.append(checkout / "config")
     user = os.environ.get(USER_CONFIG_ENV)
     if not user:
-        base = os.environ.get("XDG_CONFIG_HOME") or str(Path.home() / ".config")
-        user = str(Path(base) / PACKAGE)
-    places.append(Path(user))
+        try:
+            base = os.environ.get("XDG_CONFIG_HOME") or str(Path.home() / ".config")
+        except (RuntimeError, KeyError):  # no home folder known: no per-user folder either
+            base = ""
+        user = str(Path(base) / PACKAGE) if base else ""
+    if user:
+        places.append(Path(user))
     unique: list[Path] = []
     for place in places:
         resolved = place.resolve()
