@@ -93,6 +93,7 @@ class ReplayNode(Node):
             self._schedule = load_file_parameter("schedule_file", schedule_file,
                                                  load_schedule_yaml)
         self.rejects = RejectCounter(self)
+        # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
         self._joint_states = self.create_publisher(JointState, "joint_states", 100)
         self._commanded = self.create_publisher(Float64MultiArray, "stiffness_commanded", 100)

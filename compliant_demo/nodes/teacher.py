@@ -93,6 +93,7 @@ class TeacherNode(Node):
         # The recorder's own count of received samples, from diagnostics seen while settling.
         self._recorder_received = -1
         self.rejects = RejectCounter(self)
+        # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
         self.create_subscription(DiagnosticArray, "diagnostics",
                                  self.rejects.guard("diagnostics", self._on_diagnostics), 10)
