@@ -197,3 +197,70 @@ class TestClient:
         self.executor.shutdown()
         self.node.destroy_node()
         self.rclpy.try_shutdown(context=self.context)
+
+
+def parameter_value(value: Any) -> Any:
+    """``value`` (bool, int, float, str, or a list of one of them) as an rcl ParameterValue."""
+    from rcl_interfaces.msg import ParameterType, ParameterValue
+
+    if isinstance(value, bool):
+        return ParameterValue(type=ParameterType.PARAMETER_BOOL, bool_value=value)
+    if isinstance(value, int):
+        return ParameterValue(type=ParameterType.PARAMETER_INTEGER, integer_value=value)
+    if isinstance(value, float):
+        return ParameterValue(type=ParameterType.PARAMETER_DOUBLE, double_value=value)
+    if isinstance(value, str):
+        return ParameterValue(type=ParameterType.PARAMETER_STRING, string_value=value)
+    if all(isinstance(v, float) for v in value):
+        return ParameterValue(type=ParameterType.PARAMETER_DOUBLE_ARRAY, double_array_value=value)
+    if all(isinstance(v, int) and not isinstance(v, bool) for v in value):
+        return ParameterValue(type=ParameterType.PARAMETER_INTEGER_ARRAY,
+                              integer_array_value=value)
+    return ParameterValue(type=ParameterType.PARAMETER_STRING_ARRAY, string_array_value=value)
+
+
+def set_parameter(client: TestClient, node: str, name: str, value: Any) -> Any:
+    """Ask node ``node`` (its full name, e.g. "/replay") to set one parameter, as any participant
+    could; returns the SetParametersResult (successful, reason)."""
+    from rcl_interfaces.msg import Parameter
+    from rcl_interfaces.srv import SetParameters
+
+    key = f"{node}/set_parameters"
+    service = client._clients.get(key)
+    if service is None:
+        service = client._clients[key] = client.node.create_client(SetParameters, key)
+    client.spin_until(service.service_is_ready, 30.0, f"the parameter service of {node}")
+    request = SetParameters.Request(parameters=[Parameter(name=name,
+                                                          value=parameter_value(value))])
+    future = service.call_async(request)
+    client.spin_until(future.done, 20.0, "set_parameters")
+    (result,) = future.result().results
+    return result
+
+
+class DiagnosticsOf:
+    """The latest diagnostics status named ``name``, as key -> value, from a subscription."""
+
+    def __init__(self, client: TestClient, name: str):
+        from diagnostic_msgs.msg import DiagnosticArray
+
+        self.name = name
+        self.seen: list[dict[str, str]] = []
+        self.levels: list[int] = []
+        self._subscription = client.node.create_subscription(
+            DiagnosticArray, "diagnostics", self._on_message, 10
+        )
+        self._client = client
+
+    def _on_message(self, message: Any) -> None:
+        for status in message.status:
+            if status.name == self.name:
+                self.seen.append({kv.key: kv.value for kv in status.values})
+                self.levels.append(status.level)
+
+    @property
+    def latest(self) -> dict[str, str]:
+        return self.seen[-1] if self.seen else {}
+
+    def close(self) -> None:
+        self._client.node.destroy_subscription(self._subscription)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-from nodes_support import TestClient, start_module
+from nodes_support import TestClient, set_parameter, start_module
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
@@ -40,34 +40,23 @@ def test_a_node_refuses_bad_start_values_and_exits(
     assert message in nodes.log("node"), nodes.log("node")
 
 
-def test_a_running_learner_refuses_a_contradictory_change_with_its_reason(tmp_path: Path) -> None:
-    from rcl_interfaces.msg import Parameter, ParameterType, ParameterValue
-    from rcl_interfaces.srv import SetParameters
-
+def test_a_running_learner_refuses_bad_changes_with_their_reasons(tmp_path: Path) -> None:
     nodes = start_module("compliant_demo.nodes.learner",
                          [f"store_path:={tmp_path / 'store.sqlite'}"], DOMAIN_ID,
                          tmp_path / "learner.log", "learner")
     client = TestClient(DOMAIN_ID, "parameter_test_client")
     try:
-        service = client.node.create_client(SetParameters, "/learner/set_parameters")
-        client.spin_until(service.service_is_ready, 30.0, "the learner's parameter service")
-
-        def set_double(name: str, value: float):
-            request = SetParameters.Request(parameters=[Parameter(
-                name=name,
-                value=ParameterValue(type=ParameterType.PARAMETER_DOUBLE, double_value=value),
-            )])
-            future = service.call_async(request)
-            client.spin_until(future.done, 20.0, "set_parameters")
-            (result,) = future.result().results
-            return result
-
-        refused = set_double("stiffness_min", 250.0)
+        refused = set_parameter(client, "/learner", "alignment", "sideways")
         assert not refused.successful
-        assert refused.reason == "stiffness_min (250.0) must be below stiffness_max (200.0)"
-        assert set_double("stiffness_min", 8.0).successful
-        out_of_range = set_double("stiffness_max", -1.0)  # the declared range refuses it
+        assert refused.reason == "alignment must be dtw, resample or none, got 'sideways'"
+        assert set_parameter(client, "/learner", "alignment", "resample").successful
+        assert set_parameter(client, "/learner", "n_basis", 12).successful
+        out_of_range = set_parameter(client, "/learner", "n_basis", 1)  # the declared range
         assert not out_of_range.successful
+        too_long = set_parameter(client, "/learner", "operator", "x" * 201)
+        assert too_long.reason == "operator: at most 200 characters, got 201"
+        too_many = set_parameter(client, "/learner", "tags", [f"t{i}" for i in range(65)])
+        assert too_many.reason == "tags: at most 64 items, got 65"
         assert nodes.interrupt("learner") == 0, nodes.log("learner")
     finally:
         client.close()

@@ -62,9 +62,10 @@ def _message(stamp, names=JOINTS, position=(0.1, 0.2), velocity=(0.0, 0.0), effo
 def _latest_diagnostics(client: TestClient):
     from diagnostic_msgs.msg import DiagnosticArray
 
-    seen: list = []
+    seen: list = []  # the recorder's own (the teacher publishes on the same topic)
     subscription = client.node.create_subscription(
-        DiagnosticArray, "diagnostics", lambda m: seen.append(m), 10
+        DiagnosticArray, "diagnostics",
+        lambda m: seen.append(m) if m.status[0].name == "recorder" else None, 10,
     )
     return seen, subscription
 

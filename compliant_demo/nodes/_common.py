@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import signal
+from array import array
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -23,6 +24,10 @@ from std_msgs.msg import Float64MultiArray
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 
 __all__ = [
+    "MAX_TEXT_CHARS",
+    "RejectCounter",
+    "guarded_service",
+    "text_problem",
     "declare",
     "recorded_qos",
     "stamp_seconds",
@@ -31,9 +36,13 @@ __all__ = [
     "diagnostic_array",
     "check_parameter_changes",
     "list_parameter",
+    "is_list",
     "open_store",
     "run_node",
 ]
+
+MAX_TEXT_CHARS = 200
+MAX_LIST_ITEMS = 64
 
 _LEVELS = {
     "ok": DiagnosticStatus.OK,
@@ -70,13 +79,19 @@ def declare(
     return node.declare_parameter(name, default, descriptor).value
 
 
+# Declared by rclpy itself without read_only; switching a running node to a clock any participant
+# can publish (/clock) would move its stamp checks, so it is fixed once the node runs.
+_FIXED_AT_LAUNCH = ("use_sim_time",)
+
+
 def check_parameter_changes(
-    node: Node, check: Callable[[dict[str, Any]], str | None]
+    node: Node, check: Callable[[dict[str, Any]], str | None] | None = None
 ) -> None:
     """Check the declared values now, then refuse changes that ``check`` finds wrong.
 
     ``check`` sees every parameter's value as it would be after the change (name -> value) and
     returns None to accept or a reason to refuse; rclpy reports the reason to the caller.
+    ``use_sim_time`` is refused at run time on every node that calls this.
 
     Raises
     ------
@@ -91,15 +106,41 @@ def check_parameter_changes(
         values.update({parameter.name: parameter.value for parameter in parameters})
         return values
 
-    reason = check(values_after([]))
+    reason = None if check is None else check(values_after([]))
     if reason is not None:
         raise InvalidInputError(f"node {node.get_name()}: {reason}")
 
     def on_set(parameters: list) -> SetParametersResult:
-        reason = check(values_after(parameters))
-        return SetParametersResult(successful=reason is None, reason=reason or "")
+        fixed = [p.name for p in parameters if p.name in _FIXED_AT_LAUNCH]
+        refusal: str | None = None
+        if fixed:
+            refusal = f"{fixed[0]} is fixed once the node runs (set it at launch)"
+        elif check is not None:
+            refusal = check(values_after(parameters))
+        return SetParametersResult(successful=refusal is None, reason=refusal or "")
 
     node.add_on_set_parameters_callback(on_set)
+
+
+def text_problem(
+    values: dict[str, Any], names: Sequence[str], max_chars: int = MAX_TEXT_CHARS
+) -> str | None:
+    """A reason to refuse when a text parameter (or list of texts) in ``names`` is not text, too
+    long, or a list of more than 64 items; None when all are fine.
+
+    Run-time parameters reach the store and the logs, so their size is bounded.
+    """
+    for name in names:
+        value = values[name]
+        items = value if is_list(value) else [value]
+        if len(items) > MAX_LIST_ITEMS:
+            return f"{name}: at most {MAX_LIST_ITEMS} items, got {len(items)}"
+        for item in items:
+            if not isinstance(item, str):
+                return f"{name}: expected text, got {type(item).__name__}"
+            if len(item) > max_chars:
+                return f"{name}: at most {max_chars} characters, got {len(item)}"
+    return None
 
 
 def list_parameter(node: Node, name: str, item_type: type) -> list:
@@ -112,13 +153,75 @@ def list_parameter(node: Node, name: str, item_type: type) -> list:
     """
     value = node.get_parameter(name).value
     accepted = (int, float) if item_type is float else (item_type,)
-    if not isinstance(value, list | tuple) or not all(
+    if not is_list(value) or not all(
         isinstance(item, accepted) and not isinstance(item, bool) for item in value
     ):
         raise InvalidInputError(
             f"parameter {name}: expected a list of {item_type.__name__}, got {value!r}"
         )
     return [item_type(item) for item in value]
+
+
+class RejectCounter:
+    """Messages a node ignored, counted by topic and reason, each with a rate-limited warning.
+
+    Any participant on the domain can publish to a node's topics, so a callback checks what it
+    receives, calls :meth:`reject` for what it cannot use, and never raises (:meth:`guard`).
+    """
+
+    def __init__(self, node: Node):
+        self._node = node
+        self.counts: dict[str, int] = {}
+
+    def reject(self, topic: str, reason: str, detail: str) -> None:
+        """Count one ignored message on ``topic`` for ``reason``; ``detail`` goes to the log."""
+        key = f"rejected/{topic}/{reason}"
+        self.counts[key] = self.counts.get(key, 0) + 1
+        self._node.get_logger().warning(
+            f"{topic}: message ignored ({reason}: {detail[:200]})", throttle_duration_sec=5.0
+        )
+
+    @property
+    def total(self) -> int:
+        """Messages ignored so far, all topics and reasons."""
+        return sum(self.counts.values())
+
+    def values(self) -> dict[str, str]:
+        """Diagnostic key-values: ``rejected`` (total) and ``rejected/<topic>/<reason>``."""
+        return {"rejected": str(self.total), **{k: str(v) for k, v in self.counts.items()}}
+
+    def guard(self, topic: str, callback: Callable[[Any], None]) -> Callable[[Any], None]:
+        """``callback`` for ``topic`` that never raises: an exception counts as
+        ``callback_error``."""
+
+        def guarded(message: Any) -> None:
+            try:
+                callback(message)
+            except Exception as exc:  # a message from any participant must not end the node
+                self.reject(topic, "callback_error", f"{type(exc).__name__}: {exc}")
+
+        return guarded
+
+
+def guarded_service(node: Node, service: str, callback: Callable[[Any, Any], Any]) -> Callable:
+    """``callback`` for ``service`` that never raises: an exception becomes a refusal."""
+
+    def guarded(request: Any, response: Any) -> Any:
+        try:
+            return callback(request, response)
+        except Exception as exc:  # a request from any participant must not end the node
+            node.get_logger().error(f"{service}: failed ({type(exc).__name__})",
+                                    throttle_duration_sec=5.0)
+            response.success = False
+            response.message = f"{service} failed: {type(exc).__name__}"
+            return response
+
+    return guarded
+
+
+def is_list(value: Any) -> bool:
+    """True for a list parameter's value (rclpy gives number lists as ``array.array``)."""
+    return isinstance(value, list | tuple | array)
 
 
 def recorded_qos(depth: int) -> QoSProfile:

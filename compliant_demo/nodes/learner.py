@@ -10,9 +10,11 @@ from compliant_demo.learning import LearnRequest, learn_from_store, matching_dem
 from compliant_demo.nodes._common import (
     check_parameter_changes,
     declare,
+    guarded_service,
     list_parameter,
     open_store,
     run_node,
+    text_problem,
 )
 
 __all__ = ["LearnerNode", "main"]
@@ -36,10 +38,11 @@ class LearnerNode(Node):
         d(self, "alignment", "dtw", "Time alignment: dtw, resample or none.", read_only=False)
         d(self, "stiffness_source", "auto", "Stiffness profile: auto, recorded or variability.",
           read_only=False)
+        # The learned stiffness profile stays inside these limits: set at launch only.
         d(self, "stiffness_min", 5.0, "Target joint's lowest stiffness, N*m/rad.",
-          low=1e-3, high=1e5, read_only=False)
+          low=1e-3, high=1e5)
         d(self, "stiffness_max", 200.0, "Target joint's highest stiffness, N*m/rad.",
-          low=1e-3, high=1e5, read_only=False)
+          low=1e-3, high=1e5)
         d(self, "fit_when_available", 0,
           "Fit once by itself as soon as this many demonstrations match (0 = only on request).",
           low=0, high=10000)
@@ -47,7 +50,7 @@ class LearnerNode(Node):
           low=0.05, high=60.0)
         d(self, "exit_after_fit", False, "End the node after the automatic fit.")
         check_parameter_changes(self, _check_parameters)
-        self.create_service(Trigger, "fit", self._on_fit)
+        self.create_service(Trigger, "fit", guarded_service(self, "fit", self._on_fit))
         self.done = False
         self.exit_status = 0
         self._wait_for = self.get_parameter("fit_when_available").value
@@ -106,11 +109,16 @@ def _check_parameters(values: dict) -> str | None:
     """Reasons to refuse a parameter change that spans parameters or has a fixed set of values."""
     if not values["skill"]:
         return "skill must not be empty"
+    text = text_problem(values, ("skill", "joints", "tags", "operator"))
+    if text is not None:
+        return text
+    if not values["joints"]:
+        return "joints must name at least one joint"
     if values["alignment"] not in ("dtw", "resample", "none"):
-        return f"alignment must be dtw, resample or none, got {values['alignment']!r}"
+        return f"alignment must be dtw, resample or none, got {values['alignment'][:40]!r}"
     if values["stiffness_source"] not in ("auto", "recorded", "variability"):
         return (f"stiffness_source must be auto, recorded or variability, got "
-                f"{values['stiffness_source']!r}")
+                f"{values['stiffness_source'][:40]!r}")
     if not values["stiffness_min"] < values["stiffness_max"]:
         return (f"stiffness_min ({values['stiffness_min']}) must be below stiffness_max "
                 f"({values['stiffness_max']})")

@@ -4,14 +4,20 @@ Topics: subscribes ``joint_states`` (sensor_msgs/JointState: position rad, veloc
 N*m; header stamps in s) and ``stiffness_reference`` (std_msgs/Float64MultiArray, one value per
 joint in ``joints`` order, N*m/rad); publishes ``diagnostics`` (diagnostic_msgs/DiagnosticArray,
 keys: the counters of :class:`compliant_demo.ingest.IngestCounters`, rate_hz, buffer_fill,
-recording, demonstration_id, store_write_errors, reference_rejected). Services (std_srvs/Trigger):
-``start``, ``stop``, ``discard``. The message checks, counters, bounded buffer and background
-writer live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received,
-accepted, stored_samples and every non-zero anomaly counter.
+recording, demonstration_id, store_write_errors, reference_rejected, and ``rejected`` plus
+``rejected/<topic>/<reason>`` for messages refused before they reach the session). Services
+(std_srvs/Trigger): ``start``, ``stop``, ``discard`` (refused unless the read-only
+``allow_discard`` is true). The sample checks, counters, bounded buffer and background writer
+live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received, accepted,
+stored_samples and every non-zero anomaly counter. Here, before that: messages larger than
+``max_message_joints``, with repeated joint names or an invalid stamp, or (``stamp_tolerance_s``
+> 0) a stamp that far from the node's clock, and stiffness references that are not one finite,
+non-negative value per joint.
 """
 
 from __future__ import annotations
 
+import math
 import time
 
 from diagnostic_msgs.msg import DiagnosticArray
@@ -30,13 +36,16 @@ from compliant_demo.ingest import (
     SampleChecker,
 )
 from compliant_demo.nodes._common import (
+    RejectCounter,
     check_parameter_changes,
     declare,
     diagnostic_array,
+    guarded_service,
     list_parameter,
     open_store,
     recorded_qos,
     run_node,
+    text_problem,
 )
 from compliant_demo.nodes._common import stamp_seconds as _seconds
 
@@ -45,6 +54,7 @@ __all__ = ["RecorderNode", "main"]
 # stop and discard answer once the rest is stored, so the answer can say whether it was; the
 # reliable subscription's history holds the messages that arrive meanwhile.
 _STOP_WAIT_S = 5.0
+_MAX_NOTES_CHARS = 4000
 
 
 class RecorderNode(Node):
@@ -71,14 +81,18 @@ class RecorderNode(Node):
             buffer_capacity=p["buffer_capacity"],
             trigger=trigger,
         )
+        self._settings = p
+        self.rejects = RejectCounter(self)
         qos = recorded_qos(p["queue_depth"])
-        self.create_subscription(JointState, "joint_states", self._on_joint_state, qos)
+        guard = self.rejects.guard
         self.create_subscription(
-            Float64MultiArray, "stiffness_reference", self._on_reference, qos
+            JointState, "joint_states", guard("joint_states", self._on_joint_state), qos
         )
-        self.create_service(Trigger, "start", self._on_start)
-        self.create_service(Trigger, "stop", self._on_stop)
-        self.create_service(Trigger, "discard", self._on_discard)
+        self.create_subscription(Float64MultiArray, "stiffness_reference",
+                                 guard("stiffness_reference", self._on_reference), qos)
+        for service, callback in (("start", self._on_start), ("stop", self._on_stop),
+                                  ("discard", self._on_discard)):
+            self.create_service(Trigger, service, guarded_service(self, service, callback))
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
         check_parameter_changes(self, _check_parameters)
         self._last_health = time.monotonic()
@@ -139,6 +153,15 @@ class RecorderNode(Node):
                                   low=0.01, high=60.0),
             "diagnostics_period_s": d(self, "diagnostics_period_s", 1.0,
                                       "Diagnostics period, s.", low=0.05, high=60.0),
+            "allow_discard": d(self, "allow_discard", False,
+                               "Whether the discard service may reject the open demonstration "
+                               "(any participant on the domain can call it)."),
+            "max_message_joints": d(self, "max_message_joints", 256,
+                                    "Most entries per joint-state field; larger messages are "
+                                    "ignored.", low=1, high=100000),
+            "stamp_tolerance_s": d(self, "stamp_tolerance_s", 0.0,
+                                   "Ignore stamps further than this from the node's clock, s "
+                                   "(0 = no check, for replayed stamps).", low=0.0, high=1e6),
         }
 
     def _request(self) -> DemonstrationRequest:
@@ -154,12 +177,43 @@ class RecorderNode(Node):
         )
 
     def _on_joint_state(self, msg: JointState) -> None:
+        problem = self._joint_state_problem(msg)
+        if problem is not None:
+            self.rejects.reject("joint_states", *problem)
+            return
         self.session.ingest(
             _seconds(msg.header.stamp), msg.name, msg.position, msg.velocity, msg.effort
         )
 
+    def _joint_state_problem(self, msg: JointState) -> tuple[str, str] | None:
+        """(reason, detail) when a message must not reach the session at all."""
+        largest = max(len(msg.name), len(msg.position), len(msg.velocity), len(msg.effort))
+        if largest > self._settings["max_message_joints"]:
+            return "oversized", f"{largest} entries, at most {self._settings['max_message_joints']}"
+        if len(set(msg.name)) != len(msg.name):
+            return "duplicate_names", f"{len(msg.name)} names, {len(set(msg.name))} distinct"
+        stamp = msg.header.stamp
+        if stamp.sec < 0 or stamp.nanosec >= 1_000_000_000 or stamp.sec == stamp.nanosec == 0:
+            return "invalid_stamp", f"sec={stamp.sec}, nanosec={stamp.nanosec}"
+        tolerance = self._settings["stamp_tolerance_s"]
+        if tolerance > 0:
+            offset = _seconds(stamp) - self.get_clock().now().nanoseconds * 1e-9
+            if abs(offset) > tolerance:
+                return "stamp_off_clock", f"{offset:+.3g} s from the node's clock"
+        return None
+
     def _on_reference(self, msg: Float64MultiArray) -> None:
-        self.session.set_reference(msg.data)
+        values = msg.data
+        n_joints = len(self._settings["joints"])
+        if len(values) != n_joints:
+            self.rejects.reject("stiffness_reference", "wrong_length",
+                                f"{len(values)} values for {n_joints} joints")
+        elif not all(map(math.isfinite, values)):
+            self.rejects.reject("stiffness_reference", "non_finite", "NaN or infinite value")
+        elif min(values) < 0:
+            self.rejects.reject("stiffness_reference", "negative", "stiffness below 0 N*m/rad")
+        else:
+            self.session.set_reference(values)
 
     def _on_start(self, _request: Trigger.Request, response: Trigger.Response):
         try:
@@ -177,6 +231,12 @@ class RecorderNode(Node):
         return response
 
     def _on_discard(self, _request: Trigger.Request, response: Trigger.Response):
+        if not self._settings["allow_discard"]:
+            response.success = False
+            response.message = ("discard refused: allow_discard is false on this recorder (set "
+                                "it at launch); nothing changed")
+            self.get_logger().warning(response.message, throttle_duration_sec=5.0)
+            return response
         response.success, response.message = self.session.stop(
             "rejected", wait_s=_STOP_WAIT_S, discarded=1
         )
@@ -187,6 +247,9 @@ class RecorderNode(Node):
         now = time.monotonic()
         level, message, values = self.session.health(now - self._last_health)
         self._last_health = now
+        values.update(self.rejects.values())
+        if level == "ok" and self.rejects.total:
+            level, message = "warn", f"{self.rejects.total} messages ignored"
         self._diagnostics.publish(diagnostic_array(self, "recorder", level, message, values))
         if level == "error":
             self.get_logger().error(message, throttle_duration_sec=10.0)
@@ -219,7 +282,9 @@ def _estimator_factory(p: dict):
 def _check_parameters(values: dict) -> str | None:
     if not values["skill"]:
         return "skill must not be empty"
-    return None
+    return text_problem(values, ("skill", "operator", "tags")) or text_problem(
+        values, ("notes",), _MAX_NOTES_CHARS
+    )
 
 
 def main(args: list[str] | None = None) -> int:

@@ -1,9 +1,19 @@
-"""Replay node: a stored skill on the simulated joint, with scheduled and live perturbations."""
+"""Replay node: a stored skill on the simulated joint, with scheduled and live perturbations.
+
+Safety limits (``max_stiffness_rate``, ``max_live_torque``, ``max_steps``) and files
+(``store_path``, ``plant_file``, ``schedule_file``) are read-only: set at launch, never by a
+participant at run time. The plant and schedule are loaded once at start, from the places
+:func:`compliant_demo.nodes._files.allowed_config_dirs` names. A live torque on
+``perturbation_command`` that is not one finite value per joint within ``max_live_torque`` is
+ignored and counted in ``diagnostics``.
+"""
 
 from __future__ import annotations
 
+import math
 import time
 
+from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
@@ -11,14 +21,20 @@ from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
 from compliant_demo.nodes._common import (
+    RejectCounter,
     check_parameter_changes,
     declare,
+    diagnostic_array,
     float_array,
+    guarded_service,
+    is_list,
     list_parameter,
     open_store,
     run_node,
+    text_problem,
     to_stamp,
 )
+from compliant_demo.nodes._files import load_file_parameter
 from compliant_demo.plant import load_plant
 from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
 
@@ -36,15 +52,18 @@ class ReplayNode(Node):
         d(self, "skill", "cork_seat", "Skill to replay.", read_only=False)
         d(self, "skill_version", 0, "Skill version; 0 = the latest.", low=0, high=1000000,
           read_only=False)
-        d(self, "plant_file", "", "Plant YAML (joints, mechanism); empty = the package's "
-          "default plant (the cork_seat arm on antagonistic springs).", read_only=False)
-        d(self, "schedule_file", "", "Perturbation schedule YAML; empty = none.", read_only=False)
+        plant_file = d(self, "plant_file", "", "Plant YAML (joints, mechanism) in an allowed "
+                       "config folder; empty = the package's default plant (the cork_seat arm on "
+                       "antagonistic springs).")
+        schedule_file = d(self, "schedule_file", "", "Perturbation schedule YAML in an allowed "
+                          "config folder; empty = none.")
         d(self, "control_rate_hz", 1000.0, "Control rate, Hz.", low=10.0, high=20000.0,
           read_only=False)
         d(self, "duration_s", 0.0, "Movement duration, s; 0 = the demonstrated one.",
           low=0.0, high=3600.0, read_only=False)
         d(self, "settle_s", DEFAULT_SETTLE_S, "Time simulated after the movement, s.", low=0.0,
-          high=60.0, read_only=False)
+          high=60.0,
+          read_only=False)
         d(self, "goal", [], "New goal per joint, rad; empty = the demonstrated one.",
           read_only=False)
         d(self, "seed", 0, "Seed of sensor noise and random perturbations.", low=0,
@@ -52,7 +71,11 @@ class ReplayNode(Node):
         d(self, "method", "rk4", "Integrator: rk4, symplectic_euler or explicit_euler.",
           read_only=False)
         d(self, "max_stiffness_rate", 5000.0, "Largest commanded stiffness rate before a "
-          "safety stop, N*m/rad/s.", low=1e-3, high=1e9, read_only=False)
+          "safety stop, N*m/rad/s.", low=1e-3, high=1e9)
+        self._max_live_torque = d(self, "max_live_torque", 50.0, "Largest live torque taken "
+                                  "from perturbation_command, N*m per joint.", low=0.0, high=1e4)
+        self._max_steps = d(self, "max_steps", 1_000_000, "Most control steps of one replay "
+                            "(bounds its memory).", low=1, high=100_000_000)
         d(self, "real_time", True, "Pace steps by the wall clock; false = as fast as possible.",
           read_only=False)
         d(self, "publish_decimation", 10, "Publish every n-th step.", low=1, high=100000,
@@ -61,16 +84,30 @@ class ReplayNode(Node):
                          low=0.001, high=0.1)
         d(self, "run_when_available", False, "Run once by itself as soon as the skill exists.")
         d(self, "exit_after_run", False, "End the node after the automatic run.")
+        diagnostics_period = d(self, "diagnostics_period_s", 1.0, "Diagnostics period, s.",
+                               low=0.05, high=60.0)
+        self._plant = (load_file_parameter("plant_file", plant_file, load_plant) if plant_file
+                       else load_plant())
+        self._schedule = None
+        if schedule_file:
+            from compliant_demo.perturbation import load_schedule_yaml
+
+            self._schedule = load_file_parameter("schedule_file", schedule_file,
+                                                 load_schedule_yaml)
+        self.rejects = RejectCounter(self)
+        # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
+        self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
         self._joint_states = self.create_publisher(JointState, "joint_states", 100)
         self._commanded = self.create_publisher(Float64MultiArray, "stiffness_commanded", 100)
         self._realised = self.create_publisher(Float64MultiArray, "stiffness_realised", 100)
         self._perturbation = self.create_publisher(Float64MultiArray, "perturbation", 100)
         # Live pushes are commands: keep only the latest, reliably.
         self.create_subscription(
-            Float64MultiArray, "perturbation_command", self._on_live_torque, 10
+            Float64MultiArray, "perturbation_command",
+            self.rejects.guard("perturbation_command", self._on_live_torque), 10,
         )
         check_parameter_changes(self, _check_parameters)
-        self.create_service(Trigger, "run", self._on_run)
+        self.create_service(Trigger, "run", guarded_service(self, "run", self._on_run))
         self.done = False
         self.exit_status = 0
         self._run: ReplayRun | None = None
@@ -82,26 +119,29 @@ class ReplayNode(Node):
         self._started_wall = 0.0
         self._stamp_origin = 0.0
         self.create_timer(self._tick_s, self._tick)
+        self.create_timer(diagnostics_period, self._publish_diagnostics)
 
     def _value(self, name: str):
         return self.get_parameter(name).value
 
     def _prepare(self) -> tuple[bool, str]:
         from compliant_demo.learning import load_skill
-        from compliant_demo.perturbation import load_schedule_yaml
 
         version = self._value("skill_version") or None
         name = self._value("skill")
         try:
             with open_store(self._store_path, read_only=True) as store:
                 stored = load_skill(store, name, version)
-            record = stored.record
-            schedule_file = self._value("schedule_file")
-            schedule = load_schedule_yaml(schedule_file) if schedule_file else None
+            record, skill = stored.record, stored.skill
+            duration_s = self._value("duration_s") or skill.duration_s
+            steps = (duration_s + self._value("settle_s")) * self._value("control_rate_hz")
+            if steps > self._max_steps:
+                return False, (f"{steps:.0f} steps ((duration_s + settle_s) x control_rate_hz) "
+                               f"exceed max_steps = {self._max_steps}")
             goal = list_parameter(self, "goal", float)
             setup = ReplaySetup(
-                stored.skill,
-                load_plant(self._value("plant_file")),
+                skill,
+                self._plant,
                 dt=1.0 / self._value("control_rate_hz"),
                 duration_s=self._value("duration_s") or None,
                 settle_s=self._value("settle_s"),
@@ -109,7 +149,7 @@ class ReplayNode(Node):
                 method=self._value("method"),
                 max_stiffness_rate=self._value("max_stiffness_rate"),
             )
-            self._run = ReplayRun(setup, schedule, seed=self._value("seed"))
+            self._run = ReplayRun(setup, self._schedule, seed=self._value("seed"))
         except CompliantDemoError as exc:
             return False, str(exc)
         self._skill_id = record.id
@@ -140,12 +180,28 @@ class ReplayNode(Node):
         return response
 
     def _on_live_torque(self, msg: Float64MultiArray) -> None:
-        run = self._run
-        if run is not None and len(msg.data) == len(run.joints):
-            self._live = list(msg.data)
+        run, torque, reject = self._run, msg.data, self.rejects.reject
+        if run is None:
+            reject("perturbation_command", "no_replay", "no replay is running")
+        elif len(torque) != len(run.joints):
+            reject("perturbation_command", "wrong_length",
+                   f"{len(torque)} values for {len(run.joints)} joints")
+        elif not all(map(math.isfinite, torque)):
+            reject("perturbation_command", "non_finite", "NaN or infinite torque")
+        elif max(map(abs, torque)) > self._max_live_torque:
+            reject("perturbation_command", "too_large",
+                   f"beyond max_live_torque = {self._max_live_torque} N*m")
         else:
-            self.get_logger().warning("perturbation_command ignored: no replay running or "
-                                   "not one torque per joint", throttle_duration_sec=5.0)
+            self._live = list(torque)
+
+    def _publish_diagnostics(self) -> None:
+        run = self._run
+        values = {"running": str(run is not None).lower(),
+                  "steps": str(run.steps_done if run is not None else 0),
+                  **self.rejects.values()}
+        level, message = ("warn", f"{self.rejects.total} messages ignored") if (
+            self.rejects.total) else ("ok", "replaying" if run is not None else "idle")
+        self._diagnostics.publish(diagnostic_array(self, "replay", level, message, values))
 
     def _tick(self) -> None:
         if self._run is None:
@@ -158,10 +214,15 @@ class ReplayNode(Node):
         else:
             due = run.steps_done + 200  # a batch per tick keeps services and topics served
         decimation = self._value("publish_decimation")
-        while run.steps_done < due and not run.finished:
-            state = run.step(self._live)
-            if run.steps_done % decimation == 0 or run.finished:
-                self._publish(run, state)
+        try:
+            while run.steps_done < due and not run.finished:
+                state = run.step(self._live)
+                if run.steps_done % decimation == 0 or run.finished:
+                    self._publish(run, state)
+        except CompliantDemoError as exc:  # stored as aborted with what was done
+            self.get_logger().error(f"replay ended early: {exc}")
+            self._finish(run)
+            return
         if run.finished:
             self._finish(run)
 
@@ -180,7 +241,13 @@ class ReplayNode(Node):
 
     def _finish(self, run: ReplayRun) -> None:
         self._run = None
-        status, reason, metrics, trace = run.outcome()
+        try:
+            status, reason, metrics, trace = run.outcome()
+        except CompliantDemoError as exc:  # no step was done
+            self.get_logger().error(f"replay result not stored: {exc}")
+            self.exit_status = 1
+            self.done = self._end_after_run
+            return
         if reason:
             self.get_logger().warning(f"replay {status}: {reason}")
         try:
@@ -224,8 +291,13 @@ def _check_parameters(values: dict) -> str | None:
     if not values["skill"]:
         return "skill must not be empty"
     if values["method"] not in METHODS:
-        return f"method must be one of {', '.join(METHODS)}, got {values['method']!r}"
-    return None
+        return f"method must be one of {', '.join(METHODS)}, got {values['method'][:40]!r}"
+    goal = values["goal"]
+    if not is_list(goal) or len(goal) > 64 or not all(
+        isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) for v in goal
+    ):
+        return "goal must be a list of at most 64 finite numbers, rad"
+    return text_problem(values, ("skill",))
 
 
 def main(args: list[str] | None = None) -> int:

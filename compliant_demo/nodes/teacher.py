@@ -1,4 +1,8 @@
-"""Teacher node: a simulated operator guides the joints; publishes joint states and stiffness."""
+"""Teacher node: a simulated operator guides the joints; publishes joint states and stiffness.
+
+It reads the recorder's ``diagnostics`` (any participant can publish there): a status that is
+not well formed is ignored and counted in the teacher's own ``diagnostics`` status.
+"""
 
 from __future__ import annotations
 
@@ -14,10 +18,24 @@ from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
 from compliant_demo.models import load_yaml_model, model_from_mapping
-from compliant_demo.nodes._common import declare, float_array, recorded_qos, run_node, to_stamp
+from compliant_demo.nodes._common import (
+    RejectCounter,
+    check_parameter_changes,
+    declare,
+    diagnostic_array,
+    float_array,
+    recorded_qos,
+    run_node,
+    to_stamp,
+)
+from compliant_demo.nodes._files import load_file_parameter
 from compliant_demo.teaching import TeachingScenario, TeachingSession, cork_seat_scenario
 
 __all__ = ["TeacherNode", "main"]
+
+# A diagnostics message holds a handful of statuses and values; more is not from our recorder.
+_MAX_STATUSES = 64
+_MAX_VALUES = 256
 
 
 class TeacherNode(Node):
@@ -32,7 +50,8 @@ class TeacherNode(Node):
     def __init__(self) -> None:
         super().__init__("teacher")
         d = declare
-        scenario_file = d(self, "scenario_file", "", "Teaching scenario YAML; empty = cork_seat.")
+        scenario_file = d(self, "scenario_file", "", "Teaching scenario YAML in an allowed "
+                          "config folder; empty = cork_seat.")
         n_demos = d(self, "n_demonstrations", 3, "Demonstrations to run.", low=1, high=10000)
         seed = d(self, "seed", 1, "Seed of demo 0; demo i uses seed + i.", low=0, high=2**31 - 1)
         d(self, "operator", "", "Operator name; empty = the scenario's.")
@@ -56,6 +75,7 @@ class TeacherNode(Node):
                              "ground-truth stiffness per demonstration.")
         depth = d(self, "queue_depth", 5000, "History depth of the reliable publishers.",
                   low=10, high=100000)
+        check_parameter_changes(self)  # every parameter is read-only; use_sim_time too
         self.session = TeachingSession(self._scenario(scenario_file), n_demos, seed)
         self._joints = list(self.session.scenario.joint_names)
         qos = recorded_qos(depth)  # reliable: every published sample is meant to be recorded
@@ -71,8 +91,13 @@ class TeacherNode(Node):
         self._demo_start_wall = 0.0
         # The recorder's own count of received samples, from diagnostics seen while settling.
         self._recorder_received = -1
-        self.create_subscription(DiagnosticArray, "diagnostics", self._on_diagnostics, 10)
+        self.rejects = RejectCounter(self)
+        # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
+        self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
+        self.create_subscription(DiagnosticArray, "diagnostics",
+                                 self.rejects.guard("diagnostics", self._on_diagnostics), 10)
         self.create_timer(period, self._tick)
+        self.create_timer(1.0, self._publish_diagnostics)
 
     def _scenario(self, scenario_file: str) -> TeachingScenario:
         value = self.get_parameter
@@ -83,8 +108,12 @@ class TeacherNode(Node):
         }
         if not scenario_file:
             return cork_seat_scenario(**changes)
-        base = load_yaml_model(TeachingScenario, scenario_file).model_dump()
-        return model_from_mapping(TeachingScenario, {**base, **changes}, source=scenario_file)
+
+        def load(path: Path) -> TeachingScenario:
+            base = load_yaml_model(TeachingScenario, path).model_dump()
+            return model_from_mapping(TeachingScenario, {**base, **changes}, source=str(path))
+
+        return load_file_parameter("scenario_file", scenario_file, load)
 
     def _enter(self, state: str) -> None:
         self._state = state
@@ -99,7 +128,7 @@ class TeacherNode(Node):
         elif self._state == "starting" and self._replied():
             result = self._reply()
             if not result.success:
-                self._fail(f"recorder refused to start: {result.message}")
+                self._fail(f"recorder refused to start: {result.message[:500]}")
                 return
             self._enter("publishing")
             self._demo_start_wall = time.time()
@@ -117,9 +146,9 @@ class TeacherNode(Node):
         elif self._state == "stopping" and self._replied():
             result = self._reply()
             if result.success:
-                self.get_logger().info(f"recorder: {result.message}")
+                self.get_logger().info(f"recorder: {result.message[:500]}")
             else:  # rclpy refuses one call site logging at two severities
-                self.get_logger().error(f"recorder refused to stop: {result.message}")
+                self.get_logger().error(f"recorder refused to stop: {result.message[:500]}")
             self._after_demonstration()
         elif self._state == "pausing" and elapsed >= self._pause_s:
             self._begin_demonstration()
@@ -127,10 +156,25 @@ class TeacherNode(Node):
     def _on_diagnostics(self, msg: DiagnosticArray) -> None:
         if self._state != "settling":
             return
-        for status in msg.status:
-            values = {kv.key: kv.value for kv in status.values}
-            if status.name == "recorder" and values.get("recording") == "true":
-                self._recorder_received = int(values.get("received", "-1"))
+        for status in msg.status[:_MAX_STATUSES]:
+            if status.name != "recorder":
+                continue
+            values = {kv.key: kv.value for kv in status.values[:_MAX_VALUES]}
+            received = values.get("received", "")
+            if values.get("recording") != "true":
+                continue
+            if not (received.isascii() and received.isdigit() and len(received) < 19):
+                self.rejects.reject("diagnostics", "malformed",
+                                    f"recorder status with received = {received[:40]!r}")
+                continue
+            self._recorder_received = int(received)
+
+    def _publish_diagnostics(self) -> None:
+        values = {"state": self._state, "published": str(self.session.current_published),
+                  **self.rejects.values()}
+        level, message = ("warn", f"{self.rejects.total} messages ignored") if (
+            self.rejects.total) else ("ok", self._state)
+        self._diagnostics.publish(diagnostic_array(self, "teacher", level, message, values))
 
     def _replied(self) -> bool:
         return self._pending is not None and self._pending.done()
