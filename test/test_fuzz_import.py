@@ -341,7 +341,7 @@ def test_fuzz_bag_metadata(
         _write_bag(path, [_good_message(i) for i in range(count)], storage, metadata)
         _check_import(
             import_target,
-            lambda store: import_bag(store, path, keep_id=False, progress=False),
+            lambda store: import_bag(store, path, keep_id=False),
             "bag_metadata",
         )
 

@@ -125,7 +125,7 @@ def test_long_csv_is_streamed_in_chunks_and_overrides_apply(store, tmp_path):
     demo_id = add_demo(store, n=CHUNK_SAMPLES + 10)
     export_csv(store, demo_id, tmp_path / "long.csv")
     new_id = import_csv(
-        store, tmp_path / "long.csv", keep_id=False, operator="operator_b", progress=False
+        store, tmp_path / "long.csv", keep_id=False, operator="operator_b"
     )
     info = store.get_info(new_id)
     assert info.n_samples == CHUNK_SAMPLES + 10 and info.operator == "operator_b"

@@ -85,7 +85,6 @@ def test_import_joint_states_with_stiffness(store, tmp_path, storage):
     # the stiffness topic is found by its type and name
     demo_id = import_bag(
         store, bag, skill="cork_seat", joints=JOINTS, operator="operator_a", tags=["from_bag"],
-        progress=False,
     )  # fmt: skip
     demo = store.load_demonstration(demo_id)
     i = np.arange(10)
@@ -134,10 +133,10 @@ def test_export_then_import_reproduces_everything(tmp_path, storage, times):
         )  # fmt: skip
         source.mark_status(demo_id, "incomplete", "writer stopped")
         bag = export_bag(source, demo_id, tmp_path / "out", storage=storage)
-        copy = target.load_demonstration(import_bag(target, bag, progress=False))
+        copy = target.load_demonstration(import_bag(target, bag))
         assert_same_demonstration(source.load_demonstration(demo_id), copy)
         assert copy.id == demo_id and copy.info.flags["stiffness_latency_s"] == 0.34
-        again = import_bag(target, bag, keep_id=False, operator="operator_c", progress=False)
+        again = import_bag(target, bag, keep_id=False, operator="operator_c")
         assert target.get_info(again).operator == "operator_c" and again != demo_id
 
 
@@ -169,11 +168,27 @@ def test_stiffness_topic_choice(store, tmp_path):
 FLOAT64 = "std_msgs/msg/Float64MultiArray"
 
 
-def test_progress_bar_counts_the_messages(store, tmp_path, capsys):
+def test_progress_reports_every_message_read_of_the_bag(store, tmp_path):
     bag = write_bag(tmp_path / "bag", "mcap", _ramp(40))
-    import_bag(store, bag, skill="cork_seat", progress=True)
+    calls: list[tuple[int, int]] = []
+    import_bag(store, bag, skill="cork_seat", progress=lambda done, total: calls.append(
+        (done, total)))
+    assert calls == [(i, 40) for i in range(1, 41)]  # messages read / in the bag
+
+
+def test_progress_bar_draws_the_messages_read(capsys):
+    from compliant_demo.app.progress import ReadProgress
+
+    bar = ReadProgress("bag", "msg", enabled=True, min_total=10)
+    for done in range(1, 41):
+        bar(done, 40)
+    bar.close()
     err = capsys.readouterr().err
-    assert "40/40" in err and "msg" in err  # tqdm's bar on stderr: messages read / in the bag
+    assert "bag:" in err and "/40" in err and "msg" in err  # tqdm's bar on stderr
+    small = ReadProgress("bag", "msg", enabled=True, min_total=100)
+    small(5, 40)
+    small.close()
+    assert capsys.readouterr().err == ""  # below min_total: no bar
 
 
 def test_messages_lacking_a_joint_are_skipped_and_counted(store, tmp_path):
@@ -181,7 +196,7 @@ def test_messages_lacking_a_joint_are_skipped_and_counted(store, tmp_path):
     messages.insert(3, (START_NS + 2_500_000, _joint_state(START_NS + 2_500_000, ["gripper"],
                                                            [0.0], [0.0], [0.0])))  # fmt: skip
     bag = write_bag(tmp_path / "bag", "mcap", messages)
-    demo_id = import_bag(store, bag, skill="cork_seat", joints=["shoulder"], progress=False)
+    demo_id = import_bag(store, bag, skill="cork_seat", joints=["shoulder"])
     info = store.get_info(demo_id)
     assert info.n_samples == 6 and info.flags == {"skipped_messages": 1}
     assert not info.has_stiffness
@@ -228,9 +243,9 @@ def test_bad_samples_refused_or_skipped(store, tmp_path, storage):
     bag = write_bag(tmp_path / "bag", storage, messages)
     with pytest.raises(InvalidInputError, match="message 4 on '/joint_states': position/velocity/"
                        "effort not finite \\(import with skip_bad=True"):  # fmt: skip
-        import_bag(store, bag, skill="cork_seat", progress=False)
+        import_bag(store, bag, skill="cork_seat")
     _assert_nothing_stored(store)
-    demo_id = import_bag(store, bag, skill="cork_seat", skip_bad=True, progress=False)
+    demo_id = import_bag(store, bag, skill="cork_seat", skip_bad=True)
     info = store.get_info(demo_id)
     # sample 4 is NaN, sample 6 repeats the stamp of sample 5 (header time 5 ms)
     assert info.flags == {"nan_messages": 1, "non_increasing": 1}
@@ -244,7 +259,7 @@ def test_backwards_stamp_is_named(store, tmp_path):
                                     [1, 1, 1], [1, 1, 1], [1, 1, 1]))  # fmt: skip
     bag = write_bag(tmp_path / "bag", "sqlite3", messages)
     with pytest.raises(InvalidInputError, match="time stamp 1700000000001000000 ns goes backwards"):
-        import_bag(store, bag, skill="cork_seat", progress=False)
+        import_bag(store, bag, skill="cork_seat")
     _assert_nothing_stored(store)
 
 
@@ -304,7 +319,7 @@ def _metadata(**fields):
 def test_bad_metadata_message_is_named(store, tmp_path, texts, message):
     bag = write_bag(tmp_path / "bag", "mcap", _ramp(5), metadata=texts)
     with pytest.raises(InvalidInputError, match=message):
-        import_bag(store, bag, progress=False)
+        import_bag(store, bag)
     _assert_nothing_stored(store)
 
 
@@ -333,7 +348,7 @@ def test_fifty_thousand_names_in_a_message_are_refused(store, tmp_path):
                                              np.zeros(65)))])  # fmt: skip
     with pytest.raises(InvalidInputError, match="joints: 65 joints, at most 64 joints are allowed"):
         import_bag(store, bag, skill="cork_seat")
-    assert import_bag(store, bag, skill="cork_seat", joints=few[:64], progress=False)
+    assert import_bag(store, bag, skill="cork_seat", joints=few[:64])
     repeated = write_bag(tmp_path / "repeated", "mcap", [(START_NS, _joint_state(
         START_NS, ["a", "b", "a"], np.zeros(3), np.zeros(3), np.zeros(3)))])  # fmt: skip
     with pytest.raises(InvalidInputError, match="joints must be distinct, got 'a' twice"):
@@ -350,7 +365,7 @@ def test_stiffness_nan_kept_infinite_refused_or_skipped(store, tmp_path):
         import_bag(store, bag, skill="cork_seat", joints=JOINTS)
     _assert_nothing_stored(store)
     demo = store.load_demonstration(
-        import_bag(store, bag, skill="cork_seat", joints=JOINTS, skip_bad=True, progress=False)
+        import_bag(store, bag, skill="cork_seat", joints=JOINTS, skip_bad=True)
     )
     assert np.array_equal(demo.stiffness, [[np.nan, 50.0]] * 4, equal_nan=True)
     assert demo.info.flags == {"infinite_stiffness": 1}
@@ -368,7 +383,7 @@ def test_stiffness_at_the_same_time_applies_whatever_the_order(store, tmp_path):
                                   data=np.array([10.0 + i, 20.0 + i]))  # fmt: skip
             writer.write(k_conn, ns, TYPES.serialize_cdr(k, FLOAT64))
     demo = store.load_demonstration(
-        import_bag(store, tmp_path / "bag", skill="cork_seat", joints=JOINTS, progress=False)
+        import_bag(store, tmp_path / "bag", skill="cork_seat", joints=JOINTS)
     )
     assert demo.stiffness.tolist() == [[10.0, 20.0], [11.0, 21.0], [12.0, 22.0]]
 
@@ -421,7 +436,7 @@ def test_failed_bag_import_leaves_nothing(tmp_path, monkeypatch, failure):
             expected = KeyboardInterrupt
         bag = write_bag(tmp_path / "bag", "mcap", messages)
         with pytest.raises(expected):
-            import_bag(store, bag, skill="cork_seat", joints=JOINTS, progress=False)
+            import_bag(store, bag, skill="cork_seat", joints=JOINTS)
         store.db.execute("PRAGMA max_page_count = 1073741823")
         assert [info.id for info in store.find_demonstrations()] == [kept]
         assert store.load_demonstration(kept).position.tolist() == [[1.0, 1.0]] * 3

@@ -18,7 +18,7 @@ from typing import Any
 
 from tqdm import tqdm
 
-__all__ = ["progress_bar", "advance_to", "CampaignProgress", "campaign_progress"]
+__all__ = ["progress_bar", "advance_to", "CampaignProgress", "campaign_progress", "ReadProgress"]
 
 
 def progress_bar(desc: str, total: int, unit: str, enabled: bool) -> tqdm:
@@ -73,3 +73,34 @@ def campaign_progress(
         yield progress
     finally:
         progress.close()
+
+
+class ReadProgress:
+    """A ``(done, total)`` callback for the store's file readers: a bar on stderr, drawn once the
+    total is known to reach ``min_total`` (small files are read before a bar would help).
+
+    Parameters
+    ----------
+    desc : the bar's label (the file's name)
+    unit : what is counted ("B" for bytes of a file, "msg" for messages of a bag)
+    enabled : draw at all (e.g. stderr is a terminal)
+    min_total : the smallest total worth a bar
+    """
+
+    def __init__(self, desc: str, unit: str, enabled: bool, min_total: int = 0) -> None:
+        self.desc, self.unit, self.enabled, self.min_total = desc, unit, enabled, min_total
+        self._bar: tqdm | None = None
+
+    def __call__(self, done: int, total: int) -> None:
+        if self._bar is None:
+            if not self.enabled or total < self.min_total:
+                return
+            self._bar = progress_bar(self.desc, total, self.unit, True)
+            self._bar.unit_scale = self.unit == "B"
+        advance_to(self._bar, done)
+
+    def close(self) -> None:
+        """Close the bar, if one was drawn."""
+        if self._bar is not None:
+            self._bar.close()
+            self._bar = None

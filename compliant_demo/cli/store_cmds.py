@@ -4,13 +4,16 @@ skills and verify. Demonstrations are named by their UUID or any unique prefix o
 from __future__ import annotations
 
 import argparse
+import functools
 import os
+import sys
 import uuid
 from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from compliant_demo.app.progress import ReadProgress
 from compliant_demo.cli._job_options import non_negative_float
 from compliant_demo.cli.common import (
     add_json_option,
@@ -146,20 +149,29 @@ def _cmd_import(args: argparse.Namespace) -> int:
         "skill": args.skill, "operator": args.operator, "notes": args.notes,
         "tags": args.tag or None,
     }  # fmt: skip
+    # Bars on a terminal for inputs that take a while: CSV over 8 MiB, bags over 20,000 messages.
+    on_terminal = sys.stderr is not None and sys.stderr.isatty()
     importers: dict[str, Callable[..., str]] = {
-        "csv": lambda store, path: import_csv(store, path, keep_id=not args.new_id, **meta),
-        "npz": lambda store, path: import_npz(store, path, keep_id=not args.new_id, **meta),
-        "bag": lambda store, path: import_bag(
+        "csv": lambda store, path, bar: import_csv(store, path, keep_id=not args.new_id,
+                                                   progress=bar, **meta),
+        "npz": lambda store, path, bar: import_npz(store, path, keep_id=not args.new_id, **meta),
+        "bag": lambda store, path, bar: import_bag(
             store, path, joint_topic=args.joint_topic, stiffness_topic=args.stiffness_topic,
             joints=args.joints.split(",") if args.joints else None, skip_bad=args.skip_bad,
-            keep_id=not args.new_id, **{k: v for k, v in meta.items() if v},
+            keep_id=not args.new_id, progress=bar, **{k: v for k, v in meta.items() if v},
         ),
     }  # fmt: skip
     added = []
     with _open(args, write=True) as store:
         for path in args.paths:
-            importer = importers[_format_of(path, args.format)]
-            added.append(store.get_info(_unreadable_named(path, importer, store)))
+            kind = _format_of(path, args.format)
+            bar = ReadProgress(path.name, "B" if kind == "csv" else "msg", on_terminal,
+                               min_total=8 * 2**20 if kind == "csv" else 20_000)
+            try:
+                importer = functools.partial(importers[kind], bar=bar)
+                added.append(store.get_info(_unreadable_named(path, importer, store)))
+            finally:
+                bar.close()
     if args.json:
         emit_json([info.to_dict() for info in added])
     else:

@@ -29,13 +29,13 @@ import numpy as np
 from rosbags.highlevel import AnyReader, AnyReaderError
 from rosbags.rosbag2 import StoragePlugin, Writer, WriterError
 from rosbags.typesys import Stores, get_typestore
-from tqdm import tqdm
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.store.core import CHUNK_SAMPLES, DemoStore
 from compliant_demo.store.io import (
     MAX_IMPORT_BYTES,
     MAX_JOINTS,
+    Progress,
     begin_fields,
     check_budget,
     check_joint_names,
@@ -44,7 +44,6 @@ from compliant_demo.store.io import (
     naming_file,
     one_line,
     parse_json,
-    show_progress,
     store_import,
 )
 
@@ -68,7 +67,6 @@ BAG_FORMAT = "compliant_demo demonstration"
 MAX_MESSAGE_NAMES = 1024
 """Most joint names one JointState message may carry (at most MAX_JOINTS of them imported)."""
 STORAGES = {"sqlite3": StoragePlugin.SQLITE3, "mcap": StoragePlugin.MCAP}
-_PROGRESS_MESSAGES = 20_000
 _NS = 1_000_000_000
 
 
@@ -329,7 +327,7 @@ def import_bag(
     use_header_stamp: bool = True,
     skip_bad: bool = False,
     keep_id: bool = True,
-    progress: bool | None = None,
+    progress: Progress | None = None,
     **overrides: Any,
 ) -> str:
     """Import one demonstration from a ROS 2 bag directory (SQLite or MCAP storage).
@@ -358,8 +356,8 @@ def import_bag(
         ``non_increasing`` and ``undecodable_messages``, instead of refusing the bag.
     keep_id : bool
         Reuse the id in the bag's metadata (refused if the store holds it already).
-    progress : bool, optional
-        Progress bar; by default for bags over 20,000 messages on a terminal.
+    progress : callable(done, total), optional
+        Called with the messages read so far and the bag's message count.
     **overrides
         Metadata replacing the bag's (operator, tags, notes, source, nominal_rate_hz,
         start_time).
@@ -391,7 +389,7 @@ def import_bag(
             joints=joints, topics=(topic, k_topic), use_header_stamp=use_header_stamp,
             skip_bad=skip_bad, source=source,
         )  # fmt: skip
-        _read_samples(reader, wanted, samples, progress, bag.name)
+        _read_samples(reader, wanted, samples, progress)
     finally:
         reader.close()
     arrays = samples.arrays()
@@ -410,27 +408,24 @@ def import_bag(
 
 
 def _read_samples(
-    reader: AnyReader, wanted: list[Any], samples: _BagSamples, progress: bool | None, name: str
+    reader: AnyReader, wanted: list[Any], samples: _BagSamples, progress: Progress | None
 ) -> None:
     total = sum(c.msgcount for c in wanted)
-    messages = tqdm(
-        reader.messages(connections=wanted), total=total, unit="msg", desc=name,
-        disable=not show_progress(progress, total, _PROGRESS_MESSAGES),
-    )  # fmt: skip
-    with messages:
-        for index, (connection, bag_ns, raw) in enumerate(messages):
-            try:
-                msg = reader.deserialize(raw, connection.msgtype)
-            except AnyReaderError as exc:
-                samples.bad(
-                    "undecodable_messages",
-                    f"{samples.where(index, connection.topic)} cannot be decoded: {one_line(exc)}",
-                )
-                continue
-            if connection.topic == samples.joint_topic:
-                samples.on_joint_state(index, bag_ns, msg)
-            else:
-                samples.on_stiffness(index, bag_ns, msg)
+    for index, (connection, bag_ns, raw) in enumerate(reader.messages(connections=wanted)):
+        if progress is not None:
+            progress(index + 1, total)
+        try:
+            msg = reader.deserialize(raw, connection.msgtype)
+        except AnyReaderError as exc:
+            samples.bad(
+                "undecodable_messages",
+                f"{samples.where(index, connection.topic)} cannot be decoded: {one_line(exc)}",
+            )
+            continue
+        if connection.topic == samples.joint_topic:
+            samples.on_joint_state(index, bag_ns, msg)
+        else:
+            samples.on_stiffness(index, bag_ns, msg)
 
 
 def _stamps(t: np.ndarray, start_time: float, demo_id: str) -> tuple[np.ndarray, str | None]:

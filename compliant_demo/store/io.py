@@ -28,7 +28,6 @@ import csv
 import json
 import math
 import os
-import sys
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from itertools import chain, islice
@@ -36,7 +35,6 @@ from pathlib import Path
 from typing import IO, Any
 
 import numpy as np
-from tqdm import tqdm
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.store._codec import CHANNELS, validate_flags
@@ -63,7 +61,7 @@ __all__ = [
     "export_npz",
     "import_npz",
     "naming_file",
-    "show_progress",
+    "Progress",
     "writing",
 ]
 
@@ -78,7 +76,6 @@ MAX_IMPORT_BYTES = 2**30
 """Most sample data (float64 bytes over all channels, 1 GiB) one import holds in memory."""
 MAX_LINE_BYTES = 2**20
 """Longest CSV line (and header), bytes."""
-_PROGRESS_BYTES = 8 * 2**20
 _TEXT_KEYS = ("id", "skill", "operator", "notes")
 _NUMBER_KEYS = ("nominal_rate_hz", "start_time")
 _EXPECTED = {
@@ -92,11 +89,9 @@ _EXPECTED = {
 }
 
 
-def show_progress(progress: bool | None, size: int, threshold: int) -> bool:
-    """Whether to draw a progress bar: as asked, else for large inputs on a terminal."""
-    if progress is not None:
-        return bool(progress)
-    return size >= threshold and sys.stderr.isatty()
+#: A reader's progress callback: called with (done, total) in the reader's unit (bytes of a
+#: file, messages of a bag) as it reads; the command line turns it into a bar.
+Progress = Callable[[int, int], None]
 
 
 @contextmanager
@@ -326,9 +321,12 @@ def export_csv(store: DemoStore, demo_id: str, path: str | os.PathLike[str]) -> 
 class _CsvLines:
     """Numbered, decoded lines of a CSV file, each at most :data:`MAX_LINE_CHARS` long."""
 
-    def __init__(self, handle: IO[bytes], source: str, bar: tqdm) -> None:
-        self.handle, self.source, self.bar = handle, source, bar
+    def __init__(
+        self, handle: IO[bytes], source: str, size: int, progress: Progress | None
+    ) -> None:
+        self.handle, self.source, self.size, self.progress = handle, source, size, progress
         self.number = 0
+        self.done = 0
 
     def __iter__(self) -> Iterator[tuple[int, str]]:
         return self
@@ -338,7 +336,9 @@ class _CsvLines:
         if not raw:
             raise StopIteration
         self.number += 1
-        self.bar.update(len(raw))
+        self.done += len(raw)
+        if self.progress is not None:
+            self.progress(self.done, self.size)
         if len(raw) > MAX_LINE_BYTES:
             raise InvalidInputError(
                 f"{self.source}, line {self.number}: longer than {MAX_LINE_BYTES} bytes"
@@ -456,7 +456,7 @@ def import_csv(
     path: str | os.PathLike[str],
     *,
     keep_id: bool = True,
-    progress: bool | None = None,
+    progress: Progress | None = None,
     **overrides: Any,
 ) -> str:
     """Import one demonstration from CSV; returns its id.
@@ -467,8 +467,8 @@ def import_csv(
     path : path of the CSV file (layout in the module docstring)
     keep_id : bool
         Reuse the file's ``id`` when it has one (refused if the store holds it already).
-    progress : bool, optional
-        Draw a progress bar; by default only for files over 8 MiB on a terminal.
+    progress : callable(done, total), optional
+        Called with the bytes read so far and the file's size, line by line.
     **overrides
         ``skill``, ``operator``, ``tags``, ``notes``, ``source``, ``nominal_rate_hz``,
         ``start_time`` replacing the file's metadata (``skill`` is needed if the file has none).
@@ -481,10 +481,8 @@ def import_csv(
     source = str(path)
     file = _regular_file(path, "CSV file")
     size = file.stat().st_size
-    bar = tqdm(total=size, unit="B", unit_scale=True, desc=file.name,
-               disable=not show_progress(progress, size, _PROGRESS_BYTES))  # fmt: skip
-    with _reading(file, source) as handle, bar:
-        lines = _CsvLines(handle, source, bar)
+    with _reading(file, source) as handle:
+        lines = _CsvLines(handle, source, size, progress)
         metadata, header, header_line = _read_csv_head(lines, source)
         joints, with_stiffness = _joint_layout(header, f"{source}, line {header_line}")
         with naming_file(source):
