@@ -103,6 +103,7 @@ class SampleChecker:
         if not (math.isfinite(gap_factor) and gap_factor > 1):
             raise InvalidInputError(f"gap_factor: must be above 1, got {gap_factor}")
         self.joints = joints
+        self._joint_set = frozenset(joints)  # membership in O(1): checks stay linear in names
         self.nominal_period_s = 1.0 / nominal_rate_hz
         self.gap_threshold_s = gap_factor / nominal_rate_hz
         self.last_stamp: float | None = None
@@ -188,7 +189,8 @@ class SampleChecker:
         if layout is None:
             position_of = {name: i for i, name in enumerate(key)}
             missing = any(joint not in position_of for joint in self.joints)
-            unknown = any(name not in self.joints for name in key) or len(position_of) != len(key)
+            unknown = (any(name not in self._joint_set for name in key)
+                       or len(position_of) != len(key))
             index = None
             if not missing and key != self.joints:
                 index = tuple(position_of[joint] for joint in self.joints)
