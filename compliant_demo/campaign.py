@@ -17,6 +17,8 @@ import json
 import math
 import multiprocessing
 import os
+import re
+import socket
 import sys
 import time
 from collections.abc import Callable, Generator, Mapping, Sequence
@@ -441,12 +443,33 @@ def _dask_client(scheduler: str) -> Any:
             f"scheduler = {scheduler!r}: Dask is not installed; "
             "install the extra with pip install 'compliant_demo[dask]'"
         ) from None
+    host, port = _scheduler_address(scheduler)
     try:
+        # A plain connection first, bounded in time: a Client that cannot reach its scheduler
+        # spends another 20 s closing itself when it is collected.
+        socket.create_connection((host, port), timeout=_CONNECT_TIMEOUT_S).close()
         return Client(scheduler, set_as_default=False, timeout="10s")
     except (OSError, TimeoutError, ValueError) as exc:
+        reason = str(exc) or type(exc).__name__
         raise InvalidInputError(
-            f"scheduler = {scheduler!r}: cannot connect to the Dask scheduler ({exc})"
+            f"scheduler = {scheduler!r}: cannot connect to the Dask scheduler ({reason})"
         ) from None
+
+
+_CONNECT_TIMEOUT_S = 5.0
+_ADDRESS = re.compile(r"^(?:tcp://)?(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})$")
+
+
+def _scheduler_address(scheduler: str) -> tuple[str, int]:
+    """(host, port) of a Dask scheduler address ``[tcp://]host:port``; InvalidInputError
+    naming the value otherwise."""
+    match = _ADDRESS.match(scheduler)
+    port = int(match.group(2)) if match else 0
+    if match is None or not 1 <= port <= 65535:
+        raise InvalidInputError(
+            f"scheduler = {scheduler!r}: expected an address tcp://HOST:PORT (port 1 to 65535)"
+        )
+    return match.group(1).strip("[]"), port
 
 
 def _dask_results(

@@ -244,3 +244,17 @@ def test_resume_with_other_settings_or_batches_is_refused(tmp_path):
         with pytest.raises(InvalidInputError, match=r"replays skill .*, not 'other-skill'"):
             run_campaign(store, campaign_job(n_scenarios=4), skill_id="other-skill",
                          campaign_id=first.campaign_id, workers=0)
+
+
+@pytest.mark.parametrize("address, message", [
+    ("localhost:notaport", r"scheduler = 'localhost:notaport': expected an address tcp://HOST:PORT"),
+    ("tcp://127.0.0.1:99999", r"expected an address tcp://HOST:PORT \(port 1 to 65535\)"),
+    ("tcp://127.0.0.1:1", r"scheduler = 'tcp://127.0.0.1:1': cannot connect to the Dask scheduler"),
+])
+def test_a_bad_or_unreachable_scheduler_is_refused_at_once(tmp_path, address, message):
+    # Port 1 on loopback has no listener here: the refusal comes from the plain connection
+    # attempt, before a Dask client exists (one that cannot connect takes 20 s to close).
+    skill_id = store_with_demos_and_skill(tmp_path / "s.sqlite")
+    with DemoStore(tmp_path / "s.sqlite", durable=False) as store:
+        with pytest.raises(InvalidInputError, match=message):
+            run_campaign(store, campaign_job(), skill_id=skill_id, scheduler=address)
