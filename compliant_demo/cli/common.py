@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
+
+from compliant_demo.store.location import STORE_ENV, default_store_path
 
 __all__ = [
     "default_store_path",
@@ -18,16 +19,6 @@ __all__ = [
     "emit_json",
     "emit_table",
 ]
-
-STORE_ENV = "COMPLIANT_DEMO_STORE"
-
-
-def default_store_path() -> Path:
-    """The embedded default store: $COMPLIANT_DEMO_STORE, else $XDG_DATA_HOME/compliant_demo."""
-    if os.environ.get(STORE_ENV):
-        return Path(os.environ[STORE_ENV])
-    data_home = Path(os.environ.get("XDG_DATA_HOME") or Path.home() / ".local" / "share")
-    return data_home / "compliant_demo" / "store.sqlite"
 
 
 def add_store_option(parser: argparse.ArgumentParser) -> None:

@@ -8,14 +8,12 @@ import hashlib
 import json
 import sqlite3
 import uuid
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from compliant_demo.exceptions import StoreError
 from compliant_demo.store._schema import read_samples
+from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import MergeConflict, MergeReport
-
-if TYPE_CHECKING:
-    from compliant_demo.store.core import DemoStore
 
 __all__ = ["merge_into", "content_digest"]
 
@@ -91,15 +89,15 @@ def _record(conn: Any, table: str, columns: tuple[str, ...], child: Any, key: st
     return row, rows
 
 
-def _merge_records(target: DemoStore, source: DemoStore, report: MergeReport) -> None:
+def _merge_records(target: StoreSession, source: StoreSession, report: MergeReport) -> None:
     for kind, table, columns, child, added in _RECORDS:
-        with source._snapshot() as src:
+        with source.snapshot() as src:
             keys = [row[0] for row in src.execute(f"SELECT id FROM {table} ORDER BY created, id")]
         for key in keys:
-            with source._snapshot() as src:
+            with source.snapshot() as src:
                 theirs = _record(src, table, columns, child, key)
             try:
-                with target._transaction() as dst:
+                with target.transaction() as dst:
                     ours = _record(dst, table, columns, child, key)
                     if ours[0] is not None:
                         if ours == theirs:
@@ -127,16 +125,16 @@ def _insert(conn: Any, table: str, columns: tuple[str, ...], rows: Any) -> None:
     )
 
 
-def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
+def merge_into(target: StoreSession, source: StoreSession) -> MergeReport:
     """Copy every finished demonstration, then every skill version, campaign and replay result
     of ``source`` missing from ``target``."""
     report = MergeReport()
-    with source._snapshot() as src:
+    with source.snapshot() as src:
         ids = [
             row[0] for row in src.execute("SELECT id FROM demonstrations ORDER BY created_at, id")
         ]
     for demo_id in ids:
-        with source._snapshot() as src, target._transaction() as dst:
+        with source.snapshot() as src, target.transaction() as dst:
             theirs = _identity(src, demo_id)
             if theirs is None:  # deleted in the source since we listed it
                 continue
@@ -160,7 +158,7 @@ def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
                 continue
             # verifies the checksums: damaged samples are never copied
             read_samples(src, demo_id, len(json.loads(theirs["joints"])),
-                         bool(theirs["has_stiffness"]), label=source._label)  # fmt: skip
+                         bool(theirs["has_stiffness"]), label=source.label)  # fmt: skip
             row = src.execute(
                 f"SELECT {', '.join(_COPY_COLUMNS)} FROM demonstrations WHERE id = ?", (demo_id,)
             ).fetchone()
