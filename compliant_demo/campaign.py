@@ -39,6 +39,7 @@ from compliant_demo.perturbation import (
 from compliant_demo.primitives import Rollout, Skill
 from compliant_demo.runtime import ReplayPlant
 from compliant_demo.sim import simulate
+from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
     "TRACE_CHANNELS",
@@ -641,7 +642,9 @@ def _store_outcomes(
         store.save_replay_result(
             skill_id=skill_id,
             metrics=outcome.metrics,
-            parameters=dict(outcome.parameters, kind=outcome.kind),
+            parameters=ReplayParameters(source="campaign", kind=outcome.kind,
+                                        schedule=outcome.parameters,
+                                        scenario_index=outcome.index),
             status=outcome.status,
             reason=outcome.reason,
             trace=outcome.trace,

@@ -115,7 +115,7 @@ def test_replay_with_a_schedule_stores_the_result(store, tmp_path, capsys):
     assert len(data["metrics"]["recovery_time_s"]) == 1  # one perturbation, one recovery
     with DemoStore(store, read_only=True) as opened:
         result = opened.load_replay_result(data["result_id"])
-    assert result.info.parameters["kind"] == "torque_window"
+    assert result.info.parameters.kind == "torque_window"
     assert result.trace["q"].shape[1] == 2
 
 

@@ -11,7 +11,7 @@ import pytest
 from store_support import add_demo, integrity
 
 from compliant_demo.cli import main
-from compliant_demo.store import DemoStore
+from compliant_demo.store import SCHEMA_VERSION, DemoStore
 
 
 @pytest.fixture
@@ -101,7 +101,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
         "results 0 added, 1 already here"
     )
     status, out, _ = _run(capsys, "verify", "--store", path)
-    assert status == 0 and out.strip() == "schema version 3: ok"
+    assert status == 0 and out.strip() == f"schema version {SCHEMA_VERSION}: ok"
     status, out, _ = _run(capsys, "skills", "--store", other, "--json")
     assert [(s["name"], s["version"]) for s in json.loads(out)] == [("cork_seat", 1)]
 

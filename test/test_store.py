@@ -24,7 +24,7 @@ from compliant_demo.exceptions import (
     StoreFullError,
     StoreReadOnlyError,
 )
-from compliant_demo.store import SCHEMA_VERSION, DemoStore
+from compliant_demo.store import SCHEMA_VERSION, DemoStore, ReplayParameters
 
 
 @pytest.fixture
@@ -231,7 +231,9 @@ def test_damaged_json_is_store_corrupt_error(tmp_path, table, column, action, me
         demo_id = add_demo(store)
         skill = store.save_skill("cork_seat", {"w": [1.0]}, demonstration_ids=[demo_id],
                                  parameters={})  # fmt: skip
-        result_id = store.save_replay_result(skill_id=skill.id, metrics={"e": 1}, parameters={})
+        result_id = store.save_replay_result(
+            skill_id=skill.id, metrics={"e": 1}, parameters=PARAMETERS
+        )
     conn = sqlite3.connect(path)
     conn.execute(f"UPDATE {table} SET {column} = '{{\"cut'")  # a write cut short
     conn.commit()
@@ -502,6 +504,18 @@ def test_skill_versions_and_provenance(store):
     assert len(store.list_skills()) == 3
 
 
+PARAMETERS = ReplayParameters(source="command", dt=0.001, seed=1)
+
+
+def test_replay_parameters_refuse_unknown_fields_and_infinities():
+    with pytest.raises(ValueError, match="control_rate_hz"):
+        ReplayParameters(source="node", control_rate_hz=1000.0)
+    with pytest.raises(ValueError, match="source"):
+        ReplayParameters(source="script")
+    with pytest.raises(ValueError, match="max_stiffness_rate"):
+        ReplayParameters(source="command", max_stiffness_rate=float("inf"))
+
+
 def test_campaign_results_and_resume(store):
     skill = store.save_skill("cork_seat", {}, demonstration_ids=[add_demo(store)], parameters={})
     campaign = store.create_campaign(skill.id, {"scenarios": 3, "seed": 5})
@@ -511,19 +525,22 @@ def test_campaign_results_and_resume(store):
     trace = {"t": np.linspace(0, 1, 5), "q": np.arange(10.0).reshape(5, 2)}
     first = store.save_replay_result(
         skill_id=skill.id, metrics={"final_error_rad": 0.01, "seated": True},
-        parameters={"mass_kg": 0.2}, trace=trace, campaign_id=campaign, scenario_index=0,
+        parameters=ReplayParameters(source="campaign", seed=3, kind="wall"), trace=trace,
+        campaign_id=campaign, scenario_index=0,
     )  # fmt: skip
     store.save_replay_result(
-        skill_id=skill.id, metrics={"final_error_rad": float("nan")}, parameters={},
+        skill_id=skill.id, metrics={"final_error_rad": float("nan")}, parameters=PARAMETERS,
         status="unstable", reason="diverged", campaign_id=campaign, scenario_index=2,
     )  # fmt: skip
     assert store.completed_scenarios(campaign) == {0, 2}
     with pytest.raises(InvalidInputError, match="scenario_index 0 of campaign .* already has"):
         store.save_replay_result(
-            skill_id=skill.id, metrics={}, parameters={}, campaign_id=campaign, scenario_index=0
+            skill_id=skill.id, metrics={}, parameters=PARAMETERS, campaign_id=campaign,
+            scenario_index=0,
         )
     loaded = store.load_replay_result(first)
     assert loaded.info.metrics == {"final_error_rad": 0.01, "seated": True}
+    assert loaded.info.parameters == ReplayParameters(source="campaign", seed=3, kind="wall")
     assert loaded.info.trace_channels == ("q", "t")
     assert np.array_equal(loaded.trace["q"], trace["q"]) and loaded.trace["q"].shape == (5, 2)
     results = list(store.find_replay_results(campaign_id=campaign))
@@ -532,9 +549,14 @@ def test_campaign_results_and_resume(store):
     assert [r.id for r in store.find_replay_results(status="ok")] == [first]
     assert store.get_campaign(campaign).config == {"scenarios": 3, "seed": 5}
     with pytest.raises(NotFoundError, match="skill id 'missing' not found"):
-        store.save_replay_result(skill_id="missing", metrics={}, parameters={})
+        store.save_replay_result(skill_id="missing", metrics={}, parameters=PARAMETERS)
     with pytest.raises(InvalidInputError, match="scenario_index given without campaign_id"):
-        store.save_replay_result(skill_id=skill.id, metrics={}, parameters={}, scenario_index=1)
+        store.save_replay_result(
+            skill_id=skill.id, metrics={}, parameters=PARAMETERS, scenario_index=1
+        )
+    with pytest.raises(InvalidInputError, match="parameters must be a ReplayParameters, got dict"):
+        store.save_replay_result(skill_id=skill.id, metrics={}, parameters={"source": "node"})
+    assert len(list(store.find_replay_results())) == 2
 
 
 # -- bad input on append: a clear error, nothing lost ------------------------------------------

@@ -101,7 +101,7 @@ def _run(args: argparse.Namespace) -> int:
         results = list(store.find_replay_results(campaign_id=summary.campaign_id))
     by_kind: dict[str, list[int]] = {}
     for result in results:
-        counts = by_kind.setdefault(result.parameters.get("kind", "none"), [0, 0])
+        counts = by_kind.setdefault(result.parameters.kind, [0, 0])
         counts[0] += 1
         counts[1] += result.status != "ok"
     if args.json:

@@ -29,7 +29,7 @@ from compliant_demo.cli.common import (
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import load_schedule_yaml
 from compliant_demo.runtime import ReplayRun
-from compliant_demo.store import DemoStore
+from compliant_demo.store import DemoStore, ReplayParameters
 
 __all__ = ["register"]
 
@@ -89,14 +89,15 @@ def _run(args: argparse.Namespace) -> int:
                 run.step()
                 bar.update(1)
         status, reason, metrics, trace = run.outcome()
-        parameters = {
-            "skill_version": record.version,
-            "schedule": None if schedule is None else schedule.model_dump(mode="json"),
-            "plant": plant.model_dump(mode="json"),
-            "duration_s": args.duration, "settle_s": args.settle, "dt": args.dt,
-            "seed": args.seed,
-            "kind": "+".join(schedule.kinds) if schedule and schedule.kinds else "none",
-        }
+        parameters = ReplayParameters(
+            source="command", skill_version=record.version,
+            schedule=None if schedule is None else schedule.model_dump(mode="json"),
+            plant=plant.model_dump(mode="json"),
+            duration_s=args.duration, settle_s=args.settle, dt=args.dt, seed=args.seed,
+            max_stiffness_rate=(args.max_stiffness_rate
+                                if args.max_stiffness_rate < float("inf") else None),
+            kind="+".join(schedule.kinds) if schedule and schedule.kinds else "none",
+        )  # fmt: skip
         result_id = store.save_replay_result(skill_id=record.id, metrics=metrics,
                                              parameters=parameters, status=status,
                                              reason=reason, trace=trace)

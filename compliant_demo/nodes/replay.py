@@ -20,6 +20,7 @@ from compliant_demo.nodes._common import (
     to_stamp,
 )
 from compliant_demo.runtime import ReplayRun, load_plant
+from compliant_demo.store import ReplayParameters
 
 __all__ = ["ReplayNode", "main"]
 
@@ -74,7 +75,7 @@ class ReplayNode(Node):
         self.exit_status = 0
         self._run: ReplayRun | None = None
         self._skill_id = ""
-        self._replay_parameters: dict = {}
+        self._replay_parameters: ReplayParameters | None = None
         self._live: list[float] | None = None
         self._waiting_for_skill = self.get_parameter("run_when_available").value
         self._end_after_run = False
@@ -112,13 +113,21 @@ class ReplayNode(Node):
         except CompliantDemoError as exc:
             return False, str(exc)
         self._skill_id = record.id
-        self._replay_parameters = {
-            key: self._value(key)
-            for key in ("skill", "plant_file", "schedule_file", "control_rate_hz", "duration_s",
-                        "settle_s", "seed", "method", "max_stiffness_rate", "real_time")
-        }
-        self._replay_parameters.update(
-            skill_version=record.version, goal=list_parameter(self, "goal", float)
+        self._replay_parameters = ReplayParameters(
+            source="node",
+            kind="+".join(schedule.kinds) if schedule and schedule.kinds else "none",
+            schedule=None if schedule is None else schedule.model_dump(mode="json"),
+            skill_version=record.version,
+            plant_file=self._value("plant_file") or None,
+            schedule_file=schedule_file or None,
+            dt=self._run.dt,
+            duration_s=self._value("duration_s") or None,
+            settle_s=self._value("settle_s"),
+            goal=list_parameter(self, "goal", float) or None,
+            seed=self._value("seed"),
+            method=self._value("method"),
+            max_stiffness_rate=self._value("max_stiffness_rate"),
+            real_time=self._value("real_time"),
         )
         self._started_wall = time.monotonic()
         self._stamp_origin = time.time()

@@ -17,6 +17,7 @@ from compliant_demo.exceptions import InvalidInputError, StoreCorruptError
 from compliant_demo.store import _codec
 from compliant_demo.store.records import (
     DemonstrationInfo,
+    ReplayParameters,
     ReplayResultInfo,
     SkillRecord,
 )
@@ -35,6 +36,7 @@ __all__ = [
     "choice",
     "uuid_text",
     "mapping",
+    "parameters_document",
 ]
 
 _T = TypeVar("_T")
@@ -134,7 +136,7 @@ def _build_result(row: Sequence[Any]) -> ReplayResultInfo:
         status=row[4],
         reason=row[5],
         metrics=_codec.loads(row[6]),
-        parameters=_codec.loads(row[7]),
+        parameters=ReplayParameters.model_validate(_codec.loads(row[7])),
         created=row[8],
         trace_channels=tuple(json.loads(row[9])),
     )
@@ -191,3 +193,12 @@ def mapping(name: str, value: object) -> dict[str, Any]:
     if not isinstance(value, Mapping):
         raise InvalidInputError(f"{name} must be a mapping, got {type(value).__name__}")
     return dict(value)
+
+
+def parameters_document(parameters: object) -> dict[str, Any]:
+    """The JSON document stored for a replay's ``parameters`` (a ReplayParameters)."""
+    if not isinstance(parameters, ReplayParameters):
+        raise InvalidInputError(
+            f"parameters must be a ReplayParameters, got {type(parameters).__name__}"
+        )
+    return parameters.model_dump(mode="json")

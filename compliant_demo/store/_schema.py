@@ -17,6 +17,7 @@ import numpy as np
 
 from compliant_demo.exceptions import SchemaVersionError, StoreCorruptError, StoreReadOnlyError
 from compliant_demo.store._codec import CHANNELS, chunk_checksum, from_blobs
+from compliant_demo.store._legacy import legacy_replay_parameters
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -28,9 +29,9 @@ __all__ = [
     "refresh_summary",
 ]
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
-# Current (version 3) layout. A migration creates a table from these statements only when its
+# Current (version 4) layout. A migration creates a table from these statements only when its
 # layout is the current one; older layouts a migration still needs are kept beside it
 # (``_CHUNKS_V2``).
 _TABLES: dict[str, str] = {
@@ -253,10 +254,30 @@ def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
     conn.execute("DROP TABLE chunks_v2")
 
 
+def _migrate_3_to_4(conn: sqlite3.Connection) -> None:
+    """Version 4 stores every replay's parameters as one ReplayParameters document; version 3
+    held three shapes (campaign scenarios, ``compliant-demo replay``, the replay node)."""
+    rows = conn.execute("SELECT id, campaign_id, scenario_index, parameters FROM replay_results")
+    for result_id, campaign_id, scenario_index, text in rows.fetchall():
+        try:
+            old = json.loads(text)
+            new = legacy_replay_parameters(old, campaign_id is not None, scenario_index)
+        except (ValueError, TypeError, AttributeError) as exc:
+            raise StoreCorruptError(
+                f"replay result {result_id!r}: parameters cannot be migrated ({exc}); nothing "
+                "was changed"
+            ) from None
+        conn.execute(
+            "UPDATE replay_results SET parameters = ? WHERE id = ?",
+            (json.dumps(new, sort_keys=True, separators=(",", ":")), result_id),
+        )
+
+
 # from-version -> (description, migration to from-version + 1)
 MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
     1: ("summaries, tag index, writer leases, skills and replay results", _migrate_1_to_2),
     2: ("chunk checksums", _migrate_2_to_3),
+    3: ("one typed record for replay parameters", _migrate_3_to_4),
 }
 
 

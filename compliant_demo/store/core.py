@@ -23,13 +23,14 @@ import sqlite_utils
 from compliant_demo.exceptions import NotFoundError, StoreError
 from compliant_demo.store import _codec, _curation, _queries, _recording, _results
 from compliant_demo.store._recording import CHUNK_SAMPLES, FINAL_STATUSES
-from compliant_demo.store._rows import choice, finite, mapping
+from compliant_demo.store._rows import choice, finite, parameters_document
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import (
     CampaignInfo,
     Demonstration,
     DemonstrationInfo,
     MergeReport,
+    ReplayParameters,
     ReplayResult,
     ReplayResultInfo,
     SkillRecord,
@@ -497,7 +498,7 @@ class DemoStore:
         *,
         skill_id: str,
         metrics: Mapping[str, Any],
-        parameters: Mapping[str, Any],
+        parameters: ReplayParameters,
         status: str = "ok",
         reason: str | None = None,
         trace: Mapping[str, np.ndarray] | None = None,
@@ -510,8 +511,10 @@ class DemoStore:
         ----------
         skill_id : str
             Id of the replayed skill version.
-        metrics, parameters : mapping
-            Outcome metrics and the replay's parameters (perturbation, mechanism, seed ...).
+        metrics : mapping
+            Outcome metrics.
+        parameters : ReplayParameters
+            What the replay was run with (perturbation, plant, step, seed ...).
         status : str
             "ok" or a short word for what went wrong; ``reason`` explains it.
         trace : mapping of str to array, optional
@@ -524,7 +527,7 @@ class DemoStore:
             self._session,
             skill_id=skill_id,
             metrics=metrics,
-            parameters_text=_codec.dumps(mapping("parameters", parameters)),
+            parameters_text=_codec.dumps(parameters_document(parameters)),
             status=status,
             reason=reason,
             trace=trace,
