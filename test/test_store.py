@@ -722,7 +722,7 @@ def test_non_sqlite_file_is_refused_and_left_alone(tmp_path):
     conn.execute("CREATE TABLE recipes (name TEXT)")
     conn.commit()
     conn.close()
-    with pytest.raises(StoreCorruptError, match="no schema_migrations table \\(tables: recipes"):
+    with pytest.raises(StoreCorruptError, match="no store_schema_history table \\(tables: recipes"):
         DemoStore(foreign)
     assert integrity(foreign) == "ok"
 
@@ -732,7 +732,7 @@ def test_newer_schema_is_refused(tmp_path):
     with DemoStore(path) as store:
         kept = add_demo(store)
     conn = sqlite3.connect(path)
-    conn.execute("INSERT INTO schema_migrations VALUES (?, 0, 'from the future')", [99])
+    conn.execute("INSERT INTO store_schema_history VALUES (?, 0, 'from the future')", [99])
     conn.commit()
     conn.close()
     for read_only in (False, True):

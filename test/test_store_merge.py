@@ -80,7 +80,7 @@ def test_merge_refuses_itself_missing_and_foreign_files(tmp_path):
     foreign = tmp_path / "foreign.sqlite"
     sqlite3.connect(foreign).execute("CREATE TABLE x (y)").connection.commit()
     with DemoStore(path) as store:
-        with pytest.raises(StoreCorruptError, match="no schema_migrations table"):
+        with pytest.raises(StoreCorruptError, match="no store_schema_history table"):
             store.merge_from(foreign)
         assert len(list(store.find_demonstrations())) == 1
 

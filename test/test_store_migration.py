@@ -30,7 +30,7 @@ CREATE TABLE chunks (
 INSERT INTO schema_migrations VALUES (1, 1700000000.0, 'created');
 """
 
-VERSION_TABLE = "schema_migrations"
+VERSION_TABLE = "store_schema_history"
 IDS = ("0b9c3a4e-7a51-4c49-9d43-8b2f5a9e0c11", "5f0e2d6c-1b8a-4f3e-a7c9-2d4b6e8f0a12")
 
 
@@ -91,7 +91,7 @@ def _schema_of(path):
 def test_version_one_store_is_migrated(tmp_path):
     path = tmp_path / "v1.sqlite"
     data = write_v1_store(path)
-    assert SCHEMA_VERSION == 4 and set(MIGRATIONS) == {1, 2, 3}
+    assert SCHEMA_VERSION == 5 and set(MIGRATIONS) == {1, 2, 3, 4}
     with DemoStore(path) as store:
         assert store.schema_version == SCHEMA_VERSION
         versions = store.db.execute(f"SELECT version FROM {VERSION_TABLE} ORDER BY version")
@@ -235,3 +235,31 @@ def test_replay_parameters_of_an_unknown_shape_stop_the_migration(tmp_path):
     (text,) = conn.execute("SELECT parameters FROM replay_results").fetchone()
     conn.close()
     assert json.loads(text) == {"dt": 0.001, "mass_kg": 0.2}
+
+
+def test_version_four_store_gets_a_version_table_of_our_own(tmp_path):
+    path = tmp_path / "v4.sqlite"
+    write_v1_store(path)
+    _migrate_to(path, 4)
+    with DemoStore(path) as store:
+        assert store.schema_version == SCHEMA_VERSION
+        tables = store.db.table_names()
+        assert VERSION_TABLE in tables and "schema_migrations" not in tables
+        history = store.db.execute(f"SELECT version, description FROM {VERSION_TABLE}").fetchall()
+        assert history[-1] == (5, "version table renamed store_schema_history")
+        assert [row[0] for row in history] == [1, 2, 3, 4, 5]
+        assert len(list(store.find_demonstrations())) == 2
+
+
+def test_a_web_application_database_is_not_taken_for_an_old_store(tmp_path):
+    path = tmp_path / "app.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE schema_migrations (version VARCHAR NOT NULL PRIMARY KEY)")
+    conn.execute("INSERT INTO schema_migrations VALUES ('20240101120000')")
+    conn.commit()
+    conn.close()
+    with pytest.raises(StoreCorruptError, match="no store_schema_history table"):
+        DemoStore(path)
+    conn = sqlite3.connect(path)
+    assert conn.execute("SELECT version FROM schema_migrations").fetchall() == [("20240101120000",)]
+    conn.close()

@@ -9,7 +9,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.store import _codec, _schema, _sql
+from compliant_demo.store import _codec, _samples, _schema, _sql
 from compliant_demo.store._rows import INFO_COLUMNS, checked_infos, choice, finite, texts, timestamp
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import DEMO_STATUSES, Demonstration, DemonstrationInfo
@@ -150,7 +150,7 @@ def load(session: StoreSession, demo_id: str, joints: Sequence[str] | None) -> D
     """Samples of one demonstration, optionally only some joints, from one snapshot."""
     with session.snapshot() as conn:
         meta = info(session, conn, demo_id)
-        t, arrays = _schema.read_samples(
+        t, arrays = _samples.read_samples(
             conn, demo_id, len(meta.joints), meta.has_stiffness, label=session.label
         )
     names = meta.joints

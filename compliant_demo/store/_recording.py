@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreError
-from compliant_demo.store import _codec, _schema, _sql
+from compliant_demo.store import _codec, _samples, _sql
 from compliant_demo.store._lease import ABANDONED_TOKENS, Lease, lease_alive, own_lease
 from compliant_demo.store._rows import choice, decoded, finite, timestamp, uuid_text
 from compliant_demo.store._session import StoreSession
@@ -271,7 +271,7 @@ def end_recording(
     session: StoreSession, conn: Any, demo_id: str, status: str, reason: str | None
 ) -> None:
     """Compute the summary columns, set the final status and drop the writer."""
-    _schema.refresh_summary(conn, demo_id, label=session.label)
+    _samples.refresh_summary(conn, demo_id, label=session.label)
     conn.execute(
         "UPDATE demonstrations SET status = ?, status_reason = ?, writer_token = NULL WHERE id = ?",
         (status, reason, demo_id),

@@ -11,7 +11,7 @@ import uuid
 from typing import Any
 
 from compliant_demo.exceptions import StoreError
-from compliant_demo.store._schema import read_samples
+from compliant_demo.store._samples import read_samples
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import MergeConflict, MergeReport
 
