@@ -91,7 +91,7 @@ def _schema_of(path):
 def test_version_one_store_is_migrated(tmp_path):
     path = tmp_path / "v1.sqlite"
     data = write_v1_store(path)
-    assert SCHEMA_VERSION == 5 and set(MIGRATIONS) == {1, 2, 3, 4}
+    assert SCHEMA_VERSION == 6 and set(MIGRATIONS) == {1, 2, 3, 4, 5}
     with DemoStore(path) as store:
         assert store.schema_version == SCHEMA_VERSION
         versions = store.db.execute(f"SELECT version FROM {VERSION_TABLE} ORDER BY version")
@@ -152,9 +152,8 @@ def _migrate_to(path, version: int) -> None:
     for start in range(1, version):
         conn.execute("BEGIN")
         MIGRATIONS[start][1](conn)
-        conn.execute(
-            "INSERT INTO schema_migrations VALUES (?, 1700000000.0, ?)", (start + 1, "older")
-        )
+        table = VERSION_TABLE if start + 1 >= 5 else "schema_migrations"  # renamed at 5
+        conn.execute(f"INSERT INTO {table} VALUES (?, 1700000000.0, 'older')", (start + 1,))
         conn.execute("COMMIT")
     conn.close()
 
@@ -246,8 +245,8 @@ def test_version_four_store_gets_a_version_table_of_our_own(tmp_path):
         tables = store.db.table_names()
         assert VERSION_TABLE in tables and "schema_migrations" not in tables
         history = store.db.execute(f"SELECT version, description FROM {VERSION_TABLE}").fetchall()
-        assert history[-1] == (5, "version table renamed store_schema_history")
-        assert [row[0] for row in history] == [1, 2, 3, 4, 5]
+        assert history[4] == (5, "version table renamed store_schema_history")
+        assert [row[0] for row in history] == list(range(1, SCHEMA_VERSION + 1))
         assert len(list(store.find_demonstrations())) == 2
 
 
@@ -263,3 +262,34 @@ def test_a_web_application_database_is_not_taken_for_an_old_store(tmp_path):
     conn = sqlite3.connect(path)
     assert conn.execute("SELECT version FROM schema_migrations").fetchall() == [("20240101120000",)]
     conn.close()
+
+
+def test_checksums_become_digests_and_damaged_chunks_are_flagged(tmp_path):
+    path = tmp_path / "v5.sqlite"
+    data = write_v1_store(path)
+    _migrate_to(path, 5)
+    conn = sqlite3.connect(path)
+    (blob,) = conn.execute(
+        "SELECT torque FROM chunks WHERE demo_id = ? AND seq = 1", (IDS[0],)
+    ).fetchone()
+    damaged = bytearray(blob)
+    damaged[21] ^= 0x04  # bit rot that the version-5 checksum still sees
+    conn.execute(
+        "UPDATE chunks SET torque = ? WHERE demo_id = ? AND seq = 1", (bytes(damaged), IDS[0])
+    )
+    conn.commit()
+    conn.close()
+    with pytest.warns(UserWarning, match=rf"demonstration '{IDS[0]}' chunk\(s\) \[1\]"):
+        store = DemoStore(path)
+    with store:
+        sound = store.load_demonstration(IDS[1])
+        assert np.array_equal(sound.position, data["position"])
+        with pytest.raises(StoreCorruptError, match="chunk 1 was found damaged when the store"):
+            store.load_demonstration(IDS[0])
+        assert store.get_info(IDS[0]).flags == {"damaged_chunks": 1}
+        assert store.verify() == [
+            f"demonstration {IDS[0]}: chunk 1 was found damaged when the store was migrated "
+            "(no digest)"
+        ]
+        digests = store.db.execute("SELECT length(digest) FROM chunks ORDER BY demo_id, seq")
+        assert [row[0] for row in digests] == [32, 0, 32, 32]

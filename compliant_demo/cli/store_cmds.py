@@ -257,14 +257,17 @@ def _cmd_skills(args: argparse.Namespace) -> int:
 
 def _cmd_verify(args: argparse.Namespace) -> int:
     with _open(args, write=False) as store:
-        problems = store.integrity_check()
+        problems = store.verify()
         version = store.schema_version
-    ok = problems == ["ok"]
     if args.json:
-        emit_json({"ok": ok, "schema_version": version, "problems": [] if ok else problems})
+        emit_json({"ok": not problems, "schema_version": version, "problems": problems})
+    elif not problems:
+        print(f"schema version {version}: ok")
     else:
-        print(f"schema version {version}: " + ("ok" if ok else "; ".join(problems)))
-    return 0 if ok else 1
+        print(f"schema version {version}: {len(problems)} finding(s)")
+        for problem in problems:
+            print(problem)
+    return 1 if problems else 0
 
 
 def _sub(
@@ -337,4 +340,5 @@ def register(subparsers: Any) -> None:
     p.add_argument("--reason")
 
     _sub(subparsers, "skills", _cmd_skills, "list saved skill versions")
-    _sub(subparsers, "verify", _cmd_verify, "check the store file's integrity")
+    _sub(subparsers, "verify", _cmd_verify,
+         "read every stored chunk and check the file; exit 1 with one line per finding")

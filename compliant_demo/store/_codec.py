@@ -18,7 +18,6 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = [
     "SAMPLE_DTYPE",
     "CHANNELS",
-    "chunk_checksum",
     "to_blob",
     "from_blobs",
     "dumps",
@@ -32,26 +31,6 @@ __all__ = [
 SAMPLE_DTYPE = np.dtype("<f8")
 CHANNELS: tuple[str, ...] = ("position", "velocity", "torque", "stiffness")
 _ARRAY_TAG = "__ndarray__"
-
-
-_MASK64 = (1 << 64) - 1
-
-
-def chunk_checksum(blobs: Sequence[bytes | None]) -> int:
-    """Checksum of one chunk's blobs ``(t, position, velocity, torque, stiffness)``.
-
-    The sum, modulo 2**64, over channels c = 0..4 of ``(2c + 1) * S_c``, where ``S_c`` is the sum
-    modulo 2**64 of the blob read as little-endian unsigned 64-bit words (0 for an absent blob),
-    returned as a signed 64-bit integer (two's complement) for SQLite. The odd weights make every
-    single-bit flip change the sum; one pass of additions keeps loading fast.
-    """
-    total = 0
-    for index, blob in enumerate(blobs):
-        if blob:
-            words = np.frombuffer(blob, dtype="<u8")
-            total += (2 * index + 1) * int(np.add.reduce(words, dtype=np.uint64))
-    total &= _MASK64
-    return total - (1 << 64) if total >= 1 << 63 else total
 
 
 def to_blob(array: np.ndarray) -> bytes:

@@ -1,5 +1,5 @@
 """Curation of stored demonstrations: marking a status, deleting, discarding a failed recording,
-and merging another store file in (see ``merge``)."""
+merging another store file in (see ``merge``), and verifying every stored sample."""
 
 from __future__ import annotations
 
@@ -7,14 +7,14 @@ import os
 import time
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreError
-from compliant_demo.store import _codec
+from compliant_demo.store import _codec, _samples
 from compliant_demo.store._recording import FINAL_STATUSES, status_of
 from compliant_demo.store._rows import choice
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.merge import merge_into
 from compliant_demo.store.records import MergeReport
 
-__all__ = ["mark_status", "delete", "discard", "merge_from"]
+__all__ = ["mark_status", "delete", "discard", "merge_from", "integrity_problems", "verify"]
 
 
 def mark_status(session: StoreSession, demo_id: str, status: str, reason: str | None) -> None:
@@ -92,3 +92,30 @@ def merge_from(session: StoreSession, other_path: str | os.PathLike[str]) -> Mer
         return merge_into(session, source)
     finally:
         source.close()
+
+
+def integrity_problems(session: StoreSession) -> list[str]:
+    """``PRAGMA integrity_check`` and ``foreign_key_check``; ``["ok"]`` for a sound file."""
+    with session.snapshot() as conn:
+        result = [row[0] for row in conn.execute("PRAGMA integrity_check")]
+        dangling = conn.execute("PRAGMA foreign_key_check").fetchall()
+    return result + [f"dangling reference: {row}" for row in dangling]
+
+
+def verify(session: StoreSession) -> list[str]:
+    """Every finding in the store: SQLite's own checks, then every chunk of every demonstration
+    read and checked against its metadata (one line each, ``[]`` for a sound store)."""
+    problems = integrity_problems(session)
+    findings = [] if problems == ["ok"] else [f"file: {problem}" for problem in problems]
+    with session.snapshot() as conn:
+        ids = [row[0] for row in conn.execute("SELECT id FROM demonstrations ORDER BY id")]
+    for demo_id in ids:
+        with session.snapshot() as conn:
+            rows = _samples.chunk_rows(conn, demo_id)
+            try:
+                meta = _samples.demonstration_layout(conn, demo_id)
+            except StoreError:  # deleted since it was listed
+                continue
+        found = _samples.sample_findings(rows, meta)
+        findings += [f"demonstration {demo_id}: {finding}" for finding in found]
+    return findings

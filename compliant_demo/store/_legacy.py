@@ -1,14 +1,18 @@
-"""Shapes of stored data that older versions of the store wrote, and their conversion to the
-current records (used by the schema migrations only)."""
+"""Shapes of stored data that older versions of the store wrote, their conversion to the current
+records, and the additive chunk checksum of versions 3 to 5 (used by the schema migrations
+only)."""
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from typing import Any, Literal
+
+import numpy as np
 
 from compliant_demo.store.records import ReplayParameters
 
-__all__ = ["legacy_replay_parameters"]
+__all__ = ["legacy_replay_parameters", "chunk_checksum"]
 
 # Keys of the three shapes a version-3 store held in ``replay_results.parameters``.
 _CAMPAIGN_KEYS = frozenset(("name", "perturbations", "kind"))
@@ -86,3 +90,23 @@ def legacy_replay_parameters(
     else:
         fields = _node_fields(old)
     return ReplayParameters(source=source, **fields).model_dump(mode="json")
+
+
+_MASK64 = (1 << 64) - 1
+
+
+def chunk_checksum(blobs: Sequence[bytes | None]) -> int:
+    """Checksum of one chunk's blobs ``(t, position, velocity, torque, stiffness)``.
+
+    The sum, modulo 2**64, over channels c = 0..4 of ``(2c + 1) * S_c``, where ``S_c`` is the sum
+    modulo 2**64 of the blob read as little-endian unsigned 64-bit words (0 for an absent blob),
+    returned as a signed 64-bit integer (two's complement) for SQLite. The odd weights make every
+    single-bit flip change the sum; one pass of additions keeps loading fast.
+    """
+    total = 0
+    for index, blob in enumerate(blobs):
+        if blob:
+            words = np.frombuffer(blob, dtype="<u8")
+            total += (2 * index + 1) * int(np.add.reduce(words, dtype=np.uint64))
+    total &= _MASK64
+    return total - (1 << 64) if total >= 1 << 63 else total

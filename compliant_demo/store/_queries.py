@@ -29,6 +29,11 @@ FILTER_KEYWORDS = frozenset(
 )  # fmt: skip
 
 
+def _where_args(filters: Mapping[str, Any]) -> Sequence[object] | Mapping[str, object]:
+    args = filters.get("where_args")
+    return () if args is None else args
+
+
 def filters_query(filters: Mapping[str, Any]) -> _sql.QueryBuilder:
     """WHERE conditions for the filters of ``find_demonstrations`` (given by name)."""
     unknown = set(filters) - FILTER_KEYWORDS
@@ -73,15 +78,40 @@ def filters_query(filters: Mapping[str, Any]) -> _sql.QueryBuilder:
     return query
 
 
+def _probe_where(
+    conn: sqlite3.Connection, where: str, where_args: Sequence[object] | Mapping[str, object]
+) -> None:
+    """Compile (never run) the caller's condition alone, allowed only to read the columns of
+    ``demonstrations`` and call plain functions; InvalidInputError naming ``where`` otherwise."""
+    authorizer = _sql.RawWhereAuthorizer("demonstrations", _schema.DEMONSTRATION_COLUMNS)
+    conn.set_authorizer(authorizer)
+    try:
+        condition = _sql.check_raw_where(where)
+        conn.execute(f"EXPLAIN SELECT 1 FROM demonstrations WHERE {condition}", where_args)
+    except (sqlite3.Warning, sqlite3.ProgrammingError, sqlite3.DatabaseError) as exc:
+        reason = str(exc)
+        if authorizer.refused is not None:
+            reason = (
+                f"{authorizer.refused} is not allowed (a raw filter may only read the columns "
+                "of demonstrations and call plain functions)"
+            )
+        raise InvalidInputError(f"where = {where!r} was refused: {reason}") from None
+    finally:
+        conn.set_authorizer(None)
+
+
 def _guarded_query(
     session: StoreSession,
     sql: str,
     params: Sequence[object] | Mapping[str, object],
     where: str | None,
     timeout_s: float,
+    where_args: Sequence[object] | Mapping[str, object] = (),
 ) -> list[Any]:
     with session.lock:
         conn = session.open_connection()
+        if where is not None:
+            _probe_where(conn, where, where_args)
         conn.set_authorizer(_sql.read_only_authorizer)
         deadline = time.monotonic() + timeout_s
         if where is not None:
@@ -118,7 +148,9 @@ def find(
         if isinstance(limit, bool) or not isinstance(limit, int) or limit < 0:
             raise InvalidInputError(f"limit must be a non-negative integer, got {limit!r}")
         sql += f" LIMIT {int(limit)}"
-    rows = _guarded_query(session, sql, query.params(), filters.get("where"), timeout_s)
+    rows = _guarded_query(
+        session, sql, query.params(), filters.get("where"), timeout_s, _where_args(filters)
+    )
     with _sql.translated(session.label):
         return checked_infos(rows, session.label)
 
@@ -132,6 +164,7 @@ def count(session: StoreSession, filters: Mapping[str, Any], timeout_s: float) -
         query.params(),
         filters.get("where"),
         timeout_s,
+        _where_args(filters),
     )
     return int(rows[0][0])
 
@@ -150,9 +183,7 @@ def load(session: StoreSession, demo_id: str, joints: Sequence[str] | None) -> D
     """Samples of one demonstration, optionally only some joints, from one snapshot."""
     with session.snapshot() as conn:
         meta = info(session, conn, demo_id)
-        t, arrays = _samples.read_samples(
-            conn, demo_id, len(meta.joints), meta.has_stiffness, label=session.label
-        )
+        t, arrays = _samples.read_samples(conn, demo_id, label=session.label)
     names = meta.joints
     if joints is not None:
         wanted = _codec.validate_joints(joints)

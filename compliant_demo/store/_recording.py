@@ -231,9 +231,9 @@ def append(
     ]
     conn.execute(
         "INSERT INTO chunks (demo_id, seq, n, t_first, t_last, t, position, velocity, torque, "
-        "stiffness, checksum) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        "stiffness, digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
         (demo_id, seq, times.size, float(times[0]), float(times[-1]), *blobs,
-         _codec.chunk_checksum(blobs)),
+         _samples.chunk_digest(seq, times.size, blobs)),
     )  # fmt: skip
     first = float(times[0]) if t_first is None else t_first
     total = n_samples + times.size

@@ -11,12 +11,13 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
+import warnings
 from collections.abc import Callable
 
 from compliant_demo.exceptions import SchemaVersionError, StoreCorruptError, StoreReadOnlyError
-from compliant_demo.store._codec import chunk_checksum, from_blobs
-from compliant_demo.store._legacy import legacy_replay_parameters
-from compliant_demo.store._samples import refresh_summary
+from compliant_demo.store._codec import from_blobs
+from compliant_demo.store._legacy import chunk_checksum, legacy_replay_parameters
+from compliant_demo.store._samples import chunk_digest, refresh_summary
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -27,13 +28,13 @@ __all__ = [
     "schema_version",
 ]
 
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 VERSION_TABLE = "store_schema_history"
 # The version table's name up to version 4, a name web frameworks use for their own tables.
 _OLD_VERSION_TABLE = "schema_migrations"
 _VERSION_COLUMNS = ["version", "applied_at", "description"]
 
-# Current (version 5) layout. A migration creates a table from these statements only when its
+# Current (version 6) layout. A migration creates a table from these statements only when its
 # layout is the current one; older layouts a migration still needs are kept beside it
 # (``_CHUNKS_V2``).
 _TABLES: dict[str, str] = {
@@ -104,7 +105,7 @@ _TABLES: dict[str, str] = {
             velocity BLOB NOT NULL,
             torque BLOB NOT NULL,
             stiffness BLOB,
-            checksum INTEGER NOT NULL,
+            digest BLOB NOT NULL,
             UNIQUE (demo_id, seq)
         )""",
     "skills": """
@@ -154,8 +155,11 @@ _TABLES: dict[str, str] = {
         )""",
 }
 
-# Version 2 chunks: the current layout without its checksum column.
-_CHUNKS_V2 = _TABLES["chunks"].replace("            checksum INTEGER NOT NULL,\n", "")
+# Older chunk layouts: version 2 without any check column, versions 3 to 5 with an additive
+# checksum in its place.
+_DIGEST_COLUMN = "            digest BLOB NOT NULL,\n"
+_CHUNKS_V2 = _TABLES["chunks"].replace(_DIGEST_COLUMN, "")
+_CHUNKS_V3 = _TABLES["chunks"].replace(_DIGEST_COLUMN, "            checksum INTEGER NOT NULL,\n")
 
 # Every column a caller may filter or sort on with ``where`` / ``order_by``.
 DEMONSTRATION_COLUMNS: tuple[str, ...] = (
@@ -242,7 +246,7 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
 def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
     """Version 3 adds a checksum to every chunk, verified whenever samples are read."""
     conn.execute("ALTER TABLE chunks RENAME TO chunks_v2")
-    conn.execute(_TABLES["chunks"])
+    conn.execute(_CHUNKS_V3)
     rows = conn.execute(
         "SELECT demo_id, seq, n, t_first, t_last, t, position, velocity, torque, stiffness "
         "FROM chunks_v2"
@@ -284,12 +288,52 @@ def _migrate_4_to_5(conn: sqlite3.Connection) -> None:
     conn.execute(f"DROP TABLE {_OLD_VERSION_TABLE}")
 
 
+def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
+    """Version 6 replaces the additive chunk checksum, blind to reordered words, by a SHA-256
+    digest. Only chunks whose checksum still holds get one; the others keep an empty digest (they
+    never load) and their demonstration the flag ``damaged_chunks``, and a warning names them."""
+    conn.execute("ALTER TABLE chunks RENAME TO chunks_v5")
+    conn.execute(_TABLES["chunks"])
+    damaged: dict[str, list[int]] = {}
+    rows = conn.execute(
+        "SELECT demo_id, seq, n, t_first, t_last, t, position, velocity, torque, stiffness, "
+        "checksum FROM chunks_v5 ORDER BY demo_id, seq"
+    )
+    for *row, checksum in rows:
+        demo_id, seq, n, blobs = row[0], row[1], row[2], row[5:]
+        if chunk_checksum(blobs) == checksum:
+            digest = chunk_digest(seq, n, blobs)
+        else:
+            digest = b""
+            damaged.setdefault(demo_id, []).append(seq)
+        conn.execute(
+            "INSERT INTO chunks (demo_id, seq, n, t_first, t_last, t, position, velocity, torque, "
+            "stiffness, digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (*row, digest),
+        )
+    conn.execute("DROP TABLE chunks_v5")
+    for demo_id, seqs in damaged.items():
+        conn.execute(
+            "UPDATE demonstrations SET flags = json_set(flags, '$.damaged_chunks', ?) "
+            "WHERE id = ?",
+            (len(seqs), demo_id),
+        )
+    if damaged:
+        warnings.warn(
+            "chunks failing their checksum while migrating to SHA-256 digests were kept "
+            "unverifiable (they never load; 'compliant-demo verify' lists them): "
+            + "; ".join(f"demonstration {d!r} chunk(s) {seqs}" for d, seqs in damaged.items()),
+            stacklevel=2,
+        )
+
+
 # from-version -> (description, migration to from-version + 1)
 MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
     1: ("summaries, tag index, writer leases, skills and replay results", _migrate_1_to_2),
     2: ("chunk checksums", _migrate_2_to_3),
     3: ("one typed record for replay parameters", _migrate_3_to_4),
     4: ("version table renamed store_schema_history", _migrate_4_to_5),
+    5: ("SHA-256 chunk digests", _migrate_5_to_6),
 }
 
 

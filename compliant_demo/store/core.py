@@ -125,10 +125,16 @@ class DemoStore:
 
     def integrity_check(self) -> list[str]:
         """``PRAGMA integrity_check`` and ``foreign_key_check``; ``["ok"]`` for a sound file."""
-        with self._session.snapshot() as conn:
-            result = [row[0] for row in conn.execute("PRAGMA integrity_check")]
-            dangling = conn.execute("PRAGMA foreign_key_check").fetchall()
-        return result + [f"dangling reference: {row}" for row in dangling]
+        return _curation.integrity_problems(self._session)
+
+    def verify(self) -> list[str]:
+        """Every finding in the store, one line each (``[]`` for a sound store).
+
+        Runs :meth:`integrity_check`, then reads every chunk of every demonstration and checks
+        it against the demonstration's metadata: the chunk sequence 0, 1, ... without gaps, the
+        sample counts, blob sizes, each chunk's SHA-256 digest and the time order.
+        """
+        return _curation.verify(self._session)
 
     # -- writer leases and recording ----------------------------------------------------------
 

@@ -5,7 +5,6 @@ conflicts and left as they are."""
 from __future__ import annotations
 
 import hashlib
-import json
 import sqlite3
 import uuid
 from typing import Any
@@ -32,7 +31,7 @@ _COPY_COLUMNS = (
 )  # fmt: skip
 _CHUNK_COLUMNS = (
     "demo_id", "seq", "n", "t_first", "t_last", "t", "position", "velocity", "torque", "stiffness",
-    "checksum",
+    "digest",
 )  # fmt: skip
 
 
@@ -156,9 +155,8 @@ def merge_into(target: StoreSession, source: StoreSession) -> MergeReport:
                 else:
                     report.skipped_duplicates.append(demo_id)
                 continue
-            # verifies the checksums: damaged samples are never copied
-            read_samples(src, demo_id, len(json.loads(theirs["joints"])),
-                         bool(theirs["has_stiffness"]), label=source.label)  # fmt: skip
+            # checks digests, chunk sequence and counts: damaged samples are never copied
+            read_samples(src, demo_id, label=source.label)
             row = src.execute(
                 f"SELECT {', '.join(_COPY_COLUMNS)} FROM demonstrations WHERE id = ?", (demo_id,)
             ).fetchone()
