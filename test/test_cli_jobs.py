@@ -198,7 +198,7 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
 def test_resume_of_an_unknown_campaign_is_a_one_line_error(store, capsys):
     status, _, err = _run(capsys, "campaign", "--store", store, "--resume", "no-such-id")
     assert status == 2
-    _one_line_error(err, "campaign", "campaign 'no-such-id' not found")
+    _one_line_error(err, "campaign", "no campaign id starts with 'no-such-id'")
 
 
 def test_campaign_with_a_bad_spec_file_is_a_one_line_error(store, tmp_path, capsys):

@@ -110,7 +110,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
     ("argv", "message"),
     [
         (["show", "zzzzzzzz"], "no demonstration id starts with 'zzzzzzzz'"),
-        (["show", "ab"], "demonstration id 'ab' is too short"),
+        (["show", " "], "demonstration id must not be empty"),
         (["list", "--order-by", "start_time; DROP TABLE chunks"], "order_by term"),
         (["list", "--since", "yesterday"], "time 'yesterday' is not ISO 8601"),
         (["list", "--where", "1; DELETE FROM demonstrations"], "where = .* holds ';'"),

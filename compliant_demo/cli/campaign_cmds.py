@@ -3,7 +3,11 @@
 from __future__ import annotations
 
 import argparse
+import shlex
+import sys
+from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 from compliant_demo.campaign import ReplayCampaign, default_campaign_spec, run_campaign
 from compliant_demo.cli._job_options import (
@@ -67,17 +71,49 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="scenarios per vectorised batch (default: about three batches "
                              "per worker, 8 to 100 each)")
     parser.add_argument("--resume", default=None, metavar="CAMPAIGN_ID",
-                        help="continue this campaign with its stored settings; scenarios "
+                        help="continue this campaign (its id or a unique prefix; see "
+                             "'compliant-demo campaigns') with its stored settings; scenarios "
                              "already in the store are skipped")
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
     parser.set_defaults(handler=_run)
+    listing = subparsers.add_parser(
+        "campaigns",
+        help="list the stored campaigns with their progress",
+        description=(
+            "List every campaign: its id (any unique prefix names it in --resume and "
+            "--campaign), skill name and version, scenarios stored of those planned, and when "
+            "it was created (UTC)."
+        ),
+    )
+    add_store_option(listing)
+    add_json_option(listing)
+    listing.set_defaults(handler=_list)
 
 
-def _job(store: DemoStore, args: argparse.Namespace) -> tuple[str, ReplayCampaign]:
-    if args.resume is not None:
-        campaign = store.get_campaign(args.resume)
+def _list(args: argparse.Namespace) -> int:
+    with DemoStore(store_path_of(args), read_only=True, create=False) as store:
+        campaigns = store.list_campaigns()
+    if args.json:
+        emit_json([campaign.to_dict() for campaign in campaigns])
+        return 0
+    emit_table(
+        [{"id": c.id, "skill": c.skill_name, "version": c.skill_version,
+          "stored": c.scenarios_stored,
+          "planned": "?" if c.scenarios_planned is None else c.scenarios_planned,
+          "created": datetime.fromtimestamp(c.created, tz=UTC).strftime("%Y-%m-%d %H:%M:%SZ")}
+         for c in campaigns],
+        ("id", "skill", "version", "stored", "planned", "created"),
+    )  # fmt: skip
+    return 0
+
+
+def _job(
+    store: DemoStore, args: argparse.Namespace, resume: str | None
+) -> tuple[str, ReplayCampaign]:
+    if resume is not None:
+        campaign = store.get_campaign(resume)
         record = store.get_skill(campaign.skill_id)
         return record.id, ReplayCampaign.from_config(
             Skill.model_validate(record.payload), campaign.config)
@@ -92,12 +128,49 @@ def _job(store: DemoStore, args: argparse.Namespace) -> tuple[str, ReplayCampaig
                                      duration_s=args.duration, settle_s=args.settle)
 
 
+class _AnnouncingStore:
+    """The store as ``run_campaign`` sees it: a campaign's id is printed (stderr) the moment the
+    campaign exists, so an interrupted run can always be resumed."""
+
+    def __init__(self, store: DemoStore, campaign_id: str | None) -> None:
+        self._store = store
+        self.campaign_id = campaign_id
+
+    def create_campaign(self, *args: Any, **kwargs: Any) -> str:
+        self.campaign_id = self._store.create_campaign(*args, **kwargs)
+        print(f"campaign {self.campaign_id}: started", file=sys.stderr)
+        return self.campaign_id
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._store, name)
+
+
+def _resume_hint(store: DemoStore, path: Path, campaign_id: str, planned: int) -> str:
+    stored = len(store.completed_scenarios(campaign_id))
+    return (
+        f"campaign {campaign_id}: interrupted with {stored} of {planned} scenarios stored; "
+        f"resume with: compliant-demo campaign --store {shlex.quote(str(path.absolute()))} "
+        f"--resume {campaign_id}"
+    )
+
+
 def _run(args: argparse.Namespace) -> int:
-    with DemoStore(store_path_of(args), create=False, durable=False) as store:
-        skill_id, job = _job(store, args)
-        summary = run_campaign(store, job, skill_id=skill_id, campaign_id=args.resume,
-                               batch_size=args.batch_size, workers=args.workers,
-                               scheduler=args.scheduler, progress=show_progress(args))
+    path = store_path_of(args)
+    with DemoStore(path, create=False, durable=False) as store:
+        resume = None if args.resume is None else store.resolve_id("campaign", args.resume)
+        skill_id, job = _job(store, args, resume)
+        announcing = _AnnouncingStore(store, resume)
+        if resume is not None:
+            print(f"campaign {resume}: resuming", file=sys.stderr)
+        try:
+            summary = run_campaign(announcing, job, skill_id=skill_id, campaign_id=resume,
+                                   batch_size=args.batch_size, workers=args.workers,
+                                   scheduler=args.scheduler, progress=show_progress(args))
+        except KeyboardInterrupt:
+            if announcing.campaign_id is not None:
+                print(_resume_hint(store, path, announcing.campaign_id, job.n_scenarios),
+                      file=sys.stderr)
+            raise
         results = list(store.find_replay_results(campaign_id=summary.campaign_id))
     by_kind: dict[str, list[int]] = {}
     for result in results:

@@ -18,7 +18,7 @@ from compliant_demo.cli.common import (
     emit_table,
     store_path_of,
 )
-from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.store import DemoStore
 from compliant_demo.store.bags import STORAGES, export_bag, import_bag
 from compliant_demo.store.io import export_csv, export_npz, import_csv, import_npz
@@ -40,22 +40,8 @@ def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
 
 
 def resolve_demo_id(store: DemoStore, prefix: str) -> str:
-    """The full id of the one demonstration whose id starts with ``prefix``."""
-    if len(prefix) < 4:
-        raise InvalidInputError(f"demonstration id {prefix!r} is too short: give 4+ characters")
-    matches = [
-        info.id
-        for info in store.find_demonstrations(
-            where="id LIKE ? ESCAPE '\\'",
-            where_args=[prefix.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_") + "%"],
-            limit=2,
-        )
-    ]
-    if not matches:
-        raise NotFoundError(f"no demonstration id starts with {prefix!r}")
-    if len(matches) > 1:
-        raise InvalidInputError(f"demonstration id prefix {prefix!r} is ambiguous")
-    return matches[0]
+    """The full id of the one demonstration whose id is or starts with ``prefix``."""
+    return store.resolve_id("demonstration", prefix)
 
 
 def _iso(unix_s: float) -> str:

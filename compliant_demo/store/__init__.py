@@ -9,6 +9,7 @@ from compliant_demo.store._schema import SCHEMA_VERSION
 from compliant_demo.store.core import DemoStore
 from compliant_demo.store.records import (
     CampaignInfo,
+    CampaignProgress,
     Demonstration,
     DemonstrationInfo,
     MergeConflict,
@@ -26,6 +27,7 @@ __all__ = [
     "DemonstrationInfo",
     "SkillRecord",
     "CampaignInfo",
+    "CampaignProgress",
     "ReplayParameters",
     "ReplayResultInfo",
     "ReplayResult",

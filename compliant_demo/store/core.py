@@ -21,12 +21,13 @@ import numpy as np
 import sqlite_utils
 
 from compliant_demo.exceptions import NotFoundError, StoreError
-from compliant_demo.store import _codec, _curation, _queries, _recording, _results
+from compliant_demo.store import _codec, _curation, _ids, _queries, _recording, _results
 from compliant_demo.store._recording import CHUNK_SAMPLES, FINAL_STATUSES
 from compliant_demo.store._rows import choice, finite, parameters_document
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import (
     CampaignInfo,
+    CampaignProgress,
     Demonstration,
     DemonstrationInfo,
     MergeReport,
@@ -494,6 +495,24 @@ class DemoStore:
         unchanged (so an interrupted campaign resumes); a different config is refused.
         """
         return _results.create_campaign(self._session, skill_id, config, campaign_id)
+
+    def list_campaigns(self) -> list[CampaignProgress]:
+        """Every campaign with its skill name and version, creation time and how many of its
+        planned scenarios have a stored result, oldest first."""
+        return _ids.list_campaigns(self._session)
+
+    def resolve_id(self, kind: str, prefix: str) -> str:
+        """The full id of the one record of ``kind`` ("demonstration", "skill", "campaign" or
+        "result") whose id is or starts with ``prefix``.
+
+        Raises
+        ------
+        NotFoundError
+            No such id (the message names the prefix).
+        InvalidInputError
+            Several ids start with ``prefix`` (the message names it and lists candidates).
+        """
+        return _ids.resolve_prefix(self._session, kind, prefix)
 
     def get_campaign(self, campaign_id: str) -> CampaignInfo:
         """One campaign's skill and configuration."""

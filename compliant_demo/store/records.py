@@ -17,6 +17,7 @@ __all__ = [
     "Demonstration",
     "SkillRecord",
     "CampaignInfo",
+    "CampaignProgress",
     "ReplayParameters",
     "ReplayResultInfo",
     "ReplayResult",
@@ -167,6 +168,36 @@ class CampaignInfo:
     skill_id: str
     config: dict[str, Any]
     created: float
+
+
+@dataclass(frozen=True, slots=True)
+class CampaignProgress:
+    """A campaign as listed for people: its skill and how far it got.
+
+    Attributes
+    ----------
+    id, skill_id : str
+    skill_name : str
+    skill_version : int
+    created : float
+        Unix time, s.
+    scenarios_stored : int
+        Scenarios with a stored result.
+    scenarios_planned : int or None
+        Scenarios its configuration asks for (None when the configuration does not say).
+    """
+
+    id: str
+    skill_id: str
+    skill_name: str
+    skill_version: int
+    created: float
+    scenarios_stored: int
+    scenarios_planned: int | None
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict."""
+        return asdict(self)
 
 
 class ReplayParameters(BaseModel):
