@@ -1,5 +1,6 @@
 """The store package stays a tree of small modules: no import cycle among its modules (counting
-every import, lazy or for type checking only) and no file over 800 lines."""
+every import, lazy or for type checking only), no module reaching into another object's private
+members, and no file over 800 lines."""
 
 from __future__ import annotations
 
@@ -75,3 +76,26 @@ def test_cycle_finder_finds_a_cycle():
 def test_store_module_is_short(path):
     lines = len(path.read_text(encoding="utf-8").splitlines())
     assert lines <= MAX_LINES, f"{path.name} has {lines} lines (at most {MAX_LINES})"
+
+
+def _private_reaches(path: Path) -> list[str]:
+    """``x._name`` in ``path`` where ``x`` is not ``self`` or ``cls``."""
+    return [
+        f"{path.name}:{node.lineno}: {ast.unparse(node)}"
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8")))
+        if isinstance(node, ast.Attribute)
+        and node.attr.startswith("_")
+        and not node.attr.startswith("__")
+        and not (isinstance(node.value, ast.Name) and node.value.id in ("self", "cls"))
+    ]
+
+
+def test_no_store_module_uses_private_members_of_another_object():
+    found = [line for path in sorted(STORE.glob("*.py")) for line in _private_reaches(path)]
+    assert found == []
+
+
+def test_private_reach_finder_finds_one(tmp_path):
+    probe = tmp_path / "probe.py"
+    probe.write_text("def f(store):\n    return store._snapshot(), self._ok\n")
+    assert _private_reaches(probe) == ["probe.py:2: store._snapshot"]

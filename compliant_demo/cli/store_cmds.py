@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 import uuid
 from collections.abc import Callable
 from datetime import UTC, datetime
@@ -19,7 +20,7 @@ from compliant_demo.cli.common import (
     store_path_of,
 )
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.store import DemoStore
+from compliant_demo.store import DemoStore, store_folder_writable
 from compliant_demo.store.bags import STORAGES, export_bag, import_bag
 from compliant_demo.store.io import export_csv, export_npz, import_csv, import_npz
 
@@ -36,6 +37,12 @@ def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
     if write and args.store is None:
         path.parent.mkdir(mode=0o750, parents=True, exist_ok=True)  # first use of the default
     writable = write or (path.is_file() and os.access(path, os.W_OK))
+    if writable and not write and not store_folder_writable(path):
+        print(
+            f"note: the folder of {str(path)!r} is not writable: store opened read-only",
+            file=sys.stderr,
+        )
+        writable = False
     return DemoStore(path, read_only=not writable, create=write)
 
 

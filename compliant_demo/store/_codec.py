@@ -18,6 +18,7 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = [
     "SAMPLE_DTYPE",
     "CHANNELS",
+    "MAX_JOINTS",
     "to_blob",
     "from_blobs",
     "dumps",
@@ -31,6 +32,9 @@ __all__ = [
 SAMPLE_DTYPE = np.dtype("<f8")
 CHANNELS: tuple[str, ...] = ("position", "velocity", "torque", "stiffness")
 _ARRAY_TAG = "__ndarray__"
+# Joints of one demonstration: far above any arm (7) or hand (about 20), small enough that every
+# per-joint JSON summary and sample row stays small.
+MAX_JOINTS = 64
 
 
 def to_blob(array: np.ndarray) -> bytes:
@@ -92,17 +96,20 @@ def validate_text(name: str, value: object, *, allow_empty: bool = True) -> str:
 
 
 def validate_joints(joints: object) -> tuple[str, ...]:
-    """Joint names: a non-empty sequence of distinct non-empty strings."""
+    """Joint names: a sequence of 1 to :data:`MAX_JOINTS` distinct non-empty strings."""
     if isinstance(joints, str) or not isinstance(joints, Sequence):
         raise InvalidInputError(f"joints must be a sequence of names, got {joints!r}")
+    if len(joints) > MAX_JOINTS:
+        raise InvalidInputError(f"joints must name at most {MAX_JOINTS} joints, got {len(joints)}")
     names = tuple(joints)
     if not names:
         raise InvalidInputError("joints must name at least one joint, got []")
+    seen: set[str] = set()
     for name in names:
         validate_text("joint name", name, allow_empty=False)
-    duplicates = sorted({n for n in names if names.count(n) > 1})
-    if duplicates:
-        raise InvalidInputError(f"joints must be distinct, got {duplicates[0]!r} twice")
+        if name in seen:
+            raise InvalidInputError(f"joints must be distinct, got {name!r} twice")
+        seen.add(name)
     return names
 
 

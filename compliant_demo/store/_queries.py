@@ -121,7 +121,7 @@ def _guarded_query(
         try:
             return conn.execute(sql, params).fetchall()
         except (sqlite3.Warning, sqlite3.ProgrammingError, sqlite3.DatabaseError) as exc:
-            if where is None:
+            if where is None or _sql.damaged_text(exc):
                 with _sql.translated(session.label):
                     raise
             reason = str(exc)

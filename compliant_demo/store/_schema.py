@@ -189,7 +189,8 @@ _INDEXES: tuple[str, ...] = (
 
 def _record_version(conn: sqlite3.Connection, version: int, description: str) -> None:
     conn.execute(
-        f"INSERT INTO {_version_table(conn)} (version, applied_at, description) VALUES (?, ?, ?)",
+        f"INSERT INTO {_version_table(conn, _tables(conn))} (version, applied_at, description) "
+        "VALUES (?, ?, ?)",
         (version, time.time(), description),
     )
 
@@ -337,10 +338,14 @@ MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
 }
 
 
-def _version_table(conn: sqlite3.Connection) -> str | None:
-    """The version table of a store file: the current one, else the one up to version 4 when it
-    has our columns; None when there is neither."""
-    tables = {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+def _tables(conn: sqlite3.Connection) -> set[str]:
+    return {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+
+
+def _version_table(conn: sqlite3.Connection, tables: set[str]) -> str | None:
+    """The version table among ``tables`` (one read of the schema, so a store another process is
+    creating right now is seen whole or not at all): the current one, else the one up to version
+    4 when it has our columns; None when there is neither."""
     if VERSION_TABLE in tables:
         return VERSION_TABLE
     if _OLD_VERSION_TABLE in tables:
@@ -352,15 +357,13 @@ def _version_table(conn: sqlite3.Connection) -> str | None:
 
 def schema_version(conn: sqlite3.Connection) -> int | None:
     """The store's schema version, or None for an empty database."""
-    table = _version_table(conn)
+    tables = _tables(conn)
+    table = _version_table(conn, tables)
     if table is None:
-        tables = sorted(
-            row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")
-        )
         if tables:
             raise StoreCorruptError(
                 f"not a demonstration store: no {VERSION_TABLE} table (tables: "
-                f"{', '.join(tables)})"
+                f"{', '.join(sorted(tables))})"
             )
         return None
     (version,) = conn.execute(f"SELECT max(version) FROM {table}").fetchone()

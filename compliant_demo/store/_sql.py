@@ -27,7 +27,9 @@ __all__ = [
     "FILE_MODE",
     "PAGE_SIZE",
     "connect",
+    "folder_writable",
     "translated",
+    "damaged_text",
     "QueryBuilder",
     "parse_order_by",
     "read_only_authorizer",
@@ -53,6 +55,8 @@ def translated(label: str) -> Iterator[None]:
     except sqlite3.Error as exc:
         name = getattr(exc, "sqlite_errorname", "") or ""
         text = str(exc)
+        if damaged_text(exc):
+            raise StoreCorruptError(f"{label}: damaged text in the store: {text}") from exc
         if name.startswith(("SQLITE_BUSY", "SQLITE_LOCKED")) or "locked" in text:
             raise StoreBusyError(f"{label}: store busy (another writer holds it): {text}") from exc
         if name.startswith("SQLITE_FULL") or "full" in text:
@@ -64,6 +68,11 @@ def translated(label: str) -> Iterator[None]:
         if name.startswith(("SQLITE_NOTADB", "SQLITE_CORRUPT")) or "not a database" in text:
             raise StoreCorruptError(f"{label}: not a usable SQLite store: {text}") from exc
         raise StoreError(f"{label}: {text}") from exc
+
+
+def damaged_text(exc: BaseException) -> bool:
+    """Whether sqlite3 raised ``exc`` because stored text is not valid UTF-8."""
+    return isinstance(exc, sqlite3.OperationalError) and "decode to UTF-8" in str(exc)
 
 
 def _check_file(path: Path) -> None:
@@ -130,6 +139,11 @@ def connect(
             raise StoreReadOnlyError(
                 f"store {str(resolved)!r} is read-only (file or file system): open it read-only"
             )
+        if not read_only and not folder_writable(resolved):
+            raise StoreReadOnlyError(
+                f"store {str(resolved)!r}: its folder is not writable and SQLite keeps the "
+                "store's -wal and -shm files beside it: open it read-only"
+            )
         if read_only and _needs_immutable(resolved):
             mode = "ro&immutable=1"
         with translated(str(resolved)):
@@ -147,6 +161,14 @@ def connect(
         conn.close()
         raise
     return conn, resolved
+
+
+def folder_writable(path: Path) -> bool:
+    """Whether a writable connection to the store ``path`` can work: its folder is writable, or
+    the -wal and -shm files it needs already exist there."""
+    return os.access(path.parent, os.W_OK) or (
+        Path(f"{path}-wal").exists() and Path(f"{path}-shm").exists()
+    )
 
 
 def _needs_immutable(path: Path) -> bool:

@@ -10,9 +10,11 @@ import uuid
 from typing import Any
 
 from compliant_demo.exceptions import StoreError
+from compliant_demo.store import _codec
+from compliant_demo.store._rows import INFO_COLUMNS, checked_infos, decoded
 from compliant_demo.store._samples import read_samples
 from compliant_demo.store._session import StoreSession
-from compliant_demo.store.records import MergeConflict, MergeReport
+from compliant_demo.store.records import MergeConflict, MergeReport, ReplayParameters
 
 __all__ = ["merge_into", "content_digest"]
 
@@ -88,6 +90,25 @@ def _record(conn: Any, table: str, columns: tuple[str, ...], child: Any, key: st
     return row, rows
 
 
+# JSON columns of each record's row, decoded in the source before a copy: damage is reported
+# against the store that holds it, never copied into the target.
+_JSON_COLUMNS = {
+    "skills": ("payload", "parameters"),
+    "campaigns": ("config",),
+    "replay_results": ("metrics", "parameters"),
+}
+
+
+def _check_record(source: StoreSession, kind: str, table: str, columns: tuple, row: Any) -> None:
+    def decode() -> None:
+        for name in _JSON_COLUMNS[table]:
+            document = _codec.loads(row[columns.index(name)])
+            if table == "replay_results" and name == "parameters":
+                ReplayParameters.model_validate(document)
+
+    decoded(source.label, f"{kind} {row[0]!r}", decode)
+
+
 def _merge_records(target: StoreSession, source: StoreSession, report: MergeReport) -> None:
     for kind, table, columns, child, added in _RECORDS:
         with source.snapshot() as src:
@@ -106,6 +127,7 @@ def _merge_records(target: StoreSession, source: StoreSession, report: MergeRepo
                         continue
                     if theirs[0] is None:  # deleted in the source since we listed it
                         continue
+                    _check_record(source, kind, table, columns, theirs[0])
                     _insert(dst, table, columns, [theirs[0]])
                     if child is not None:
                         _insert(dst, child[0], child[2], theirs[1])
@@ -155,7 +177,12 @@ def merge_into(target: StoreSession, source: StoreSession) -> MergeReport:
                 else:
                     report.skipped_duplicates.append(demo_id)
                 continue
-            # checks digests, chunk sequence and counts: damaged samples are never copied
+            # damaged metadata or samples are never copied: the error names the source
+            checked_infos(
+                [src.execute(f"SELECT {INFO_COLUMNS} FROM demonstrations WHERE id = ?",
+                             (demo_id,)).fetchone()],
+                source.label,
+            )  # fmt: skip
             read_samples(src, demo_id, label=source.label)
             row = src.execute(
                 f"SELECT {', '.join(_COPY_COLUMNS)} FROM demonstrations WHERE id = ?", (demo_id,)
