@@ -132,6 +132,11 @@ def test_cli_options_take_unique_prefixes(job_store, capsys):
                             campaign_id[:5], "--json", "--workers", "0")  # fmt: skip
     assert status == 0, err
     assert json.loads(out)["campaign_id"] == campaign_id
+    status, out, err = _run(capsys, "report", "--store", job_store, "--campaign",
+                            campaign_id[:6], "--out", job_store.parent / "rep", "--json",
+                            "--quiet")  # fmt: skip
+    assert status == 0, err
+    assert campaign_id in json.loads(out)["summary"]["campaign"]
     with DemoStore(job_store, read_only=True) as store:
         demo_id = next(store.find_demonstrations()).id
     status, out, err = _run(capsys, "show", demo_id[:6], "--store", job_store, "--json")
