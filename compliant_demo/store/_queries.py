@@ -9,7 +9,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.store import _codec, _samples, _schema, _sql
+from compliant_demo.store import _codec, _filters, _samples, _schema, _sql
 from compliant_demo.store._rows import INFO_COLUMNS, checked_infos, choice, finite, texts, timestamp
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import DEMO_STATUSES, Demonstration, DemonstrationInfo
@@ -34,7 +34,7 @@ def _where_args(filters: Mapping[str, Any]) -> Sequence[object] | Mapping[str, o
     return () if args is None else args
 
 
-def filters_query(filters: Mapping[str, Any]) -> _sql.QueryBuilder:
+def filters_query(filters: Mapping[str, Any]) -> _filters.QueryBuilder:
     """WHERE conditions for the filters of ``find_demonstrations`` (given by name)."""
     unknown = set(filters) - FILTER_KEYWORDS
     if unknown:
@@ -49,7 +49,7 @@ def filters_query(filters: Mapping[str, Any]) -> _sql.QueryBuilder:
         raise InvalidInputError("where_args given without where")
     if where is not None and not isinstance(where, str):
         raise InvalidInputError(f"where must be an SQL string, got {where!r}")
-    query = _sql.QueryBuilder(named=isinstance(where_args, Mapping))
+    query = _filters.QueryBuilder(named=isinstance(where_args, Mapping))
     for column, value in (("skill", skill), ("operator", operator), ("source", source)):
         if value is not None:
             query.add(f"{column} = {{}}", _codec.validate_text(column, value))
@@ -83,10 +83,10 @@ def _probe_where(
 ) -> None:
     """Compile (never run) the caller's condition alone, allowed only to read the columns of
     ``demonstrations`` and call plain functions; InvalidInputError naming ``where`` otherwise."""
-    authorizer = _sql.RawWhereAuthorizer("demonstrations", _schema.DEMONSTRATION_COLUMNS)
+    authorizer = _filters.RawWhereAuthorizer("demonstrations", _schema.DEMONSTRATION_COLUMNS)
     conn.set_authorizer(authorizer)
     try:
-        condition = _sql.check_raw_where(where)
+        condition = _filters.check_raw_where(where)
         conn.execute(f"EXPLAIN SELECT 1 FROM demonstrations WHERE {condition}", where_args)
     except (sqlite3.Warning, sqlite3.ProgrammingError, sqlite3.DatabaseError) as exc:
         reason = str(exc)
@@ -112,7 +112,7 @@ def _guarded_query(
         conn = session.open_connection()
         if where is not None:
             _probe_where(conn, where, where_args)
-        conn.set_authorizer(_sql.read_only_authorizer)
+        conn.set_authorizer(_filters.read_only_authorizer)
         deadline = time.monotonic() + timeout_s
         if where is not None:
             # SQLite interrupts the statement once this returns true (checked every 10000
@@ -142,7 +142,8 @@ def find(
 ) -> list[DemonstrationInfo]:
     """Metadata of the demonstrations matching ``filters``, sorted and limited."""
     query = filters_query(filters)
-    order = _sql.parse_order_by(order_by, _schema.DEMONSTRATION_COLUMNS, "start_time ASC, id ASC")
+    columns = _schema.DEMONSTRATION_COLUMNS
+    order = _filters.parse_order_by(order_by, columns, "start_time ASC, id ASC")
     sql = f"SELECT {INFO_COLUMNS} FROM demonstrations{query.sql()} ORDER BY {order}"
     if limit is not None:
         if isinstance(limit, bool) or not isinstance(limit, int) or limit < 0:

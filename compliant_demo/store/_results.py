@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.store import _codec, _sql
+from compliant_demo.store import _codec, _filters
 from compliant_demo.store._recording import status_of
 from compliant_demo.store._rows import (
     RESULT_COLUMNS,
@@ -194,7 +194,7 @@ def find_replay_results(
     session: StoreSession, filters: Mapping[str, str | None]
 ) -> list[ReplayResultInfo]:
     """Replay results whose columns equal the given non-None ``filters``."""
-    query = _sql.QueryBuilder(named=False)
+    query = _filters.QueryBuilder(named=False)
     for column, value in filters.items():
         if value is not None:
             query.add(f"r.{column} = {{}}", _codec.validate_text(column, value))
