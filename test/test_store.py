@@ -540,7 +540,9 @@ def test_campaign_results_and_resume(store):
         )
     loaded = store.load_replay_result(first)
     assert loaded.info.metrics == {"final_error_rad": 0.01, "seated": True}
-    assert loaded.info.parameters == ReplayParameters(source="campaign", seed=3, kind="wall")
+    assert loaded.parameters == loaded.info.parameters == ReplayParameters(
+        source="campaign", seed=3, kind="wall"
+    )
     assert loaded.info.trace_channels == ("q", "t")
     assert np.array_equal(loaded.trace["q"], trace["q"]) and loaded.trace["q"].shape == (5, 2)
     results = list(store.find_replay_results(campaign_id=campaign))

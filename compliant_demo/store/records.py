@@ -296,6 +296,11 @@ class ReplayResult:
     info: ReplayResultInfo
     trace: dict[str, np.ndarray]
 
+    @property
+    def parameters(self) -> ReplayParameters:
+        """What the replay was run with (``info.parameters``)."""
+        return self.info.parameters
+
 
 @dataclass(frozen=True, slots=True)
 class MergeConflict:
