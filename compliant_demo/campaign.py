@@ -39,6 +39,7 @@ from compliant_demo.perturbation import (
 from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import Skill
 from compliant_demo.replay import UNPERTURBED, ReplaySetup
+from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
     "TRACE_CHANNELS",
@@ -646,7 +647,9 @@ def _store_outcomes(
         store.save_replay_result(
             skill_id=skill_id,
             metrics=outcome.metrics,
-            parameters=dict(outcome.parameters, kind=outcome.kind),
+            parameters=ReplayParameters(source="campaign", kind=outcome.kind,
+                                        schedule=outcome.parameters,
+                                        scenario_index=outcome.index),
             status=outcome.status,
             reason=outcome.reason,
             trace=outcome.trace,

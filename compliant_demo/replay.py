@@ -19,7 +19,7 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -31,6 +31,7 @@ from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import Rollout, Skill
 from compliant_demo.sim import SimResult, Simulator, StepState
+from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
     "DEFAULT_SETTLE_S",
@@ -156,6 +157,38 @@ class ReplaySetup:
             stiffness=stiffness,
             damping=damping_command(self.plant.mechanism, rollout.damping[:n]),
             stiffness_rate=rate,
+        )
+
+    def parameters(
+        self,
+        source: Literal["command", "node"],
+        schedule: PerturbationSchedule | None,
+        seed: int,
+        *,
+        skill_version: int | None = None,
+        plant_file: str | None = None,
+        schedule_file: str | None = None,
+        real_time: bool | None = None,
+    ) -> ReplayParameters:
+        """The record a replay result stores about how it was run (one shape for every source:
+        ``"command"`` or ``"node"``; campaign rows keep their settings in the campaign)."""
+        return ReplayParameters(
+            source=source,
+            kind="none" if schedule is None else schedule.kind_label,
+            schedule=None if schedule is None else schedule.model_dump(mode="json"),
+            skill_version=skill_version,
+            plant=self.plant.model_dump(mode="json"),
+            plant_file=plant_file or None,
+            schedule_file=schedule_file or None,
+            dt=self.dt,
+            duration_s=self.duration_s,
+            settle_s=self.settle_s,
+            goal=None if self.goal is None else list(self.goal),
+            seed=int(seed),
+            method=self.method,
+            max_stiffness_rate=(self.max_stiffness_rate if math.isfinite(self.max_stiffness_rate)
+                                else None),
+            real_time=real_time,
         )
 
     def simulator(self, schedules: Sequence[PerturbationSchedule] | None, seed: int) -> Simulator:

@@ -11,7 +11,7 @@ import pytest
 from store_support import add_demo, integrity
 
 from compliant_demo.cli import main
-from compliant_demo.store import DemoStore
+from compliant_demo.store import SCHEMA_VERSION, DemoStore
 
 
 @pytest.fixture
@@ -102,7 +102,7 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
         "results 0 added, 1 already here"
     )
     status, out, _ = _run(capsys, "verify", "--store", path)
-    assert status == 0 and out.strip() == "schema version 3: ok"
+    assert status == 0 and out.strip() == f"schema version {SCHEMA_VERSION}: ok"
     status, out, _ = _run(capsys, "skills", "--store", other, "--json")
     assert [(s["name"], s["version"]) for s in json.loads(out)] == [("cork_seat", 1)]
 
@@ -111,10 +111,10 @@ def test_merge_verify_skills(populated, tmp_path, capsys):
     ("argv", "message"),
     [
         (["show", "zzzzzzzz"], "no demonstration id starts with 'zzzzzzzz'"),
-        (["show", "ab"], "demonstration id 'ab' is too short"),
+        (["show", " "], "demonstration id must not be empty"),
         (["list", "--order-by", "start_time; DROP TABLE chunks"], "--order-by term"),
         (["list", "--since", "yesterday"], "time 'yesterday' is not ISO 8601"),
-        (["list", "--where", "1; DELETE FROM demonstrations"], "was refused"),
+        (["list", "--where", "1; DELETE FROM demonstrations"], "where = .* holds ';'"),
         (["import", "notes.txt"], "cannot tell the format of 'notes.txt': give --format"),
         (["import", "missing.csv"], "CSV file 'missing.csv' does not exist"),
         (["import", "some_bag", "--format", "bag"], "bag 'some_bag' does not exist"),

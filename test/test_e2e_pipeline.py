@@ -224,7 +224,7 @@ def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: P
             def stored():
                 with DemoStore(store, read_only=True) as db:
                     return [r for r in db.find_replay_results()
-                            if r.parameters.get("duration_s") == 1.5]
+                            if r.parameters.duration_s == 1.5]
 
             (info,) = client.spin_until(stored, 30.0, "the replay result")
             assert nodes.interrupt("replay") == 0, nodes.all_logs()
@@ -232,7 +232,7 @@ def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: P
         client.close()
     with DemoStore(store, read_only=True) as db:
         trace = db.load_replay_result(info.id).trace
-    assert info.status == "ok" and info.parameters["real_time"] is True
+    assert info.status == "ok" and info.parameters.real_time is True
     assert info.metrics["energy_injected_J"] is None  # live pushes: no energy rerun
     assert trace["q"].shape == (1800, 2)  # (1.5 s + 0.3 s) at 1 kHz
     pushed = trace["tau_external"][:, 0] == 0.5

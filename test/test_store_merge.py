@@ -9,7 +9,7 @@ import pytest
 from store_support import JOINTS, add_demo, integrity, samples
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreCorruptError
-from compliant_demo.store import DemoStore
+from compliant_demo.store import DemoStore, ReplayParameters
 
 
 def test_merge_two_stores(tmp_path):
@@ -80,7 +80,7 @@ def test_merge_refuses_itself_missing_and_foreign_files(tmp_path):
     foreign = tmp_path / "foreign.sqlite"
     sqlite3.connect(foreign).execute("CREATE TABLE x (y)").connection.commit()
     with DemoStore(path) as store:
-        with pytest.raises(StoreCorruptError, match="no schema_migrations table"):
+        with pytest.raises(StoreCorruptError, match="no store_schema_history table"):
             store.merge_from(foreign)
         assert len(list(store.find_demonstrations())) == 1
 
@@ -91,7 +91,8 @@ def _skill_campaign_results(store, demo_ids, name="cork_seat"):
     campaign = store.create_campaign(skill.id, {"scenarios": 2})
     results = [
         store.save_replay_result(
-            skill_id=skill.id, metrics={"goal_error_rad": 0.01 * i}, parameters={"seed": i},
+            skill_id=skill.id, metrics={"goal_error_rad": 0.01 * i},
+            parameters=ReplayParameters(source="campaign", seed=i),
             trace={"q": np.full((4, 2), float(i))}, campaign_id=campaign, scenario_index=i,
         )  # fmt: skip
         for i in range(2)

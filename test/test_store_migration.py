@@ -13,7 +13,7 @@ import pytest
 from store_support import integrity
 
 from compliant_demo.exceptions import SchemaVersionError, StoreCorruptError
-from compliant_demo.store import SCHEMA_VERSION, DemoStore
+from compliant_demo.store import SCHEMA_VERSION, DemoStore, ReplayParameters
 from compliant_demo.store._schema import MIGRATIONS
 
 _V1_SCHEMA = """
@@ -30,6 +30,7 @@ CREATE TABLE chunks (
 INSERT INTO schema_migrations VALUES (1, 1700000000.0, 'created');
 """
 
+VERSION_TABLE = "store_schema_history"
 IDS = ("0b9c3a4e-7a51-4c49-9d43-8b2f5a9e0c11", "5f0e2d6c-1b8a-4f3e-a7c9-2d4b6e8f0a12")
 
 
@@ -90,11 +91,11 @@ def _schema_of(path):
 def test_version_one_store_is_migrated(tmp_path):
     path = tmp_path / "v1.sqlite"
     data = write_v1_store(path)
-    assert SCHEMA_VERSION == 3 and set(MIGRATIONS) == {1, 2}
+    assert SCHEMA_VERSION == 6 and set(MIGRATIONS) == {1, 2, 3, 4, 5}
     with DemoStore(path) as store:
         assert store.schema_version == SCHEMA_VERSION
-        versions = store.db.execute("SELECT version FROM schema_migrations ORDER BY version")
-        assert [row[0] for row in versions] == [1, 2, 3]
+        versions = store.db.execute(f"SELECT version FROM {VERSION_TABLE} ORDER BY version")
+        assert [row[0] for row in versions] == list(range(1, SCHEMA_VERSION + 1))
         with_k = store.load_demonstration(IDS[0])
         without_k = store.load_demonstration(IDS[1])
         for name in ("t", "position", "velocity", "torque", "stiffness"):
@@ -120,7 +121,8 @@ def test_version_one_store_is_migrated(tmp_path):
 def test_old_store_opened_read_only_asks_for_a_migration(tmp_path):
     path = tmp_path / "v1.sqlite"
     write_v1_store(path)
-    with pytest.raises(SchemaVersionError, match="schema version 1 is older than 3; open it"):
+    older = f"schema version 1 is older than {SCHEMA_VERSION}; open it"
+    with pytest.raises(SchemaVersionError, match=older):
         DemoStore(path, read_only=True)
     assert _schema_of(path) == _schema_of_v1(tmp_path)
 
@@ -141,3 +143,153 @@ def test_failed_migration_leaves_version_one_intact(tmp_path):
     assert conn.execute("SELECT max(version) FROM schema_migrations").fetchone() == (1,)
     assert conn.execute("SELECT count(*) FROM chunks").fetchone() == (5,)
     conn.close()
+
+
+def _migrate_to(path, version: int) -> None:
+    """Bring a version-1 store to ``version`` with the registered migrations (as older code did)."""
+    conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA foreign_keys = OFF")
+    for start in range(1, version):
+        conn.execute("BEGIN")
+        MIGRATIONS[start][1](conn)
+        table = VERSION_TABLE if start + 1 >= 5 else "schema_migrations"  # renamed at 5
+        conn.execute(f"INSERT INTO {table} VALUES (?, 1700000000.0, 'older')", (start + 1,))
+        conn.execute("COMMIT")
+    conn.close()
+
+
+SKILL_ID = "7d1e4a3b-2c5f-4e6a-9b8c-0d1e2f3a4b5c"
+CAMPAIGN_ID = "3a2b1c0d-9e8f-4a7b-8c6d-5e4f3a2b1c0d"
+SCHEDULE = {"name": "wall_and_impulse", "perturbations": [{"kind": "wall", "onset_s": 0.4}]}
+# Version-3 replay parameters in the three shapes older code wrote (result id -> parameters).
+OLD_PARAMETERS = {
+    "campaign": dict(SCHEDULE, kind="wall"),
+    "command": {"skill_version": 1, "schedule": None, "plant": {"joints": ["shoulder"]},
+                "duration_s": 1.5, "settle_s": 0.5, "dt": 0.001, "seed": 4, "kind": "none"},
+    "node": {"skill": "cork_seat", "plant_file": "", "schedule_file": "/tmp/wall.yaml",
+             "control_rate_hz": 500.0, "duration_s": 0.0, "settle_s": 0.25, "seed": 2,
+             "method": "rk4", "max_stiffness_rate": float("inf"), "real_time": True,
+             "skill_version": 1, "goal": []},
+    "node_limited": {"skill": "cork_seat", "plant_file": "plant.yaml", "schedule_file": "",
+                     "control_rate_hz": 1000.0, "duration_s": 2.0, "settle_s": 0.5, "seed": 0,
+                     "method": "rk4", "max_stiffness_rate": 5000.0, "real_time": False,
+                     "skill_version": 1, "goal": [0.3]},
+}  # fmt: skip
+RESULT_IDS = {
+    name: f"00000000-0000-4000-8000-00000000000{i}" for i, name in enumerate(OLD_PARAMETERS)
+}
+
+
+def write_v3_store(path, parameters=OLD_PARAMETERS) -> None:
+    """A version-3 store (version 1 migrated as version-3 code did) with one skill, one campaign
+    and one replay result per shape of ``parameters``."""
+    write_v1_store(path)
+    _migrate_to(path, 3)
+    conn = sqlite3.connect(path)
+    conn.execute(
+        "INSERT INTO skills VALUES (?, 'cork_seat', 1, '{}', '{}', 1700000300.0)", (SKILL_ID,)
+    )
+    conn.execute(
+        "INSERT INTO campaigns VALUES (?, ?, '{}', 1700000400.0)", (CAMPAIGN_ID, SKILL_ID)
+    )
+    for index, (name, document) in enumerate(parameters.items()):
+        in_campaign = name == "campaign"
+        conn.execute(
+            "INSERT INTO replay_results VALUES (?, ?, ?, ?, 'ok', NULL, '{}', ?, 1700000500.0)",
+            (RESULT_IDS[name], SKILL_ID, CAMPAIGN_ID if in_campaign else None,
+             index if in_campaign else None, json.dumps(document)),
+        )  # fmt: skip
+    conn.commit()
+    conn.close()
+
+
+def test_replay_parameters_of_every_old_shape_are_migrated(tmp_path):
+    path = tmp_path / "v3.sqlite"
+    write_v3_store(path)
+    with DemoStore(path) as store:
+        found = {r.id: r.parameters for r in store.find_replay_results()}
+    by_name = {name: found[result_id] for name, result_id in RESULT_IDS.items()}
+    assert by_name["campaign"] == ReplayParameters(
+        source="campaign", kind="wall", schedule=SCHEDULE, scenario_index=0
+    )
+    assert by_name["command"] == ReplayParameters(source="command", **OLD_PARAMETERS["command"])
+    assert by_name["node"] == ReplayParameters(
+        source="node", kind="unrecorded", skill_version=1, schedule_file="/tmp/wall.yaml",
+        dt=1 / 500.0, settle_s=0.25, seed=2, method="rk4", real_time=True,
+    )  # fmt: skip
+    assert by_name["node_limited"] == ReplayParameters(
+        source="node", skill_version=1, plant_file="plant.yaml", dt=1e-3, duration_s=2.0,
+        settle_s=0.5, goal=[0.3], seed=0, method="rk4", max_stiffness_rate=5000.0,
+        real_time=False,
+    )  # fmt: skip
+
+
+def test_replay_parameters_of_an_unknown_shape_stop_the_migration(tmp_path):
+    path = tmp_path / "v3.sqlite"
+    write_v3_store(path, {"command": {"dt": 0.001, "mass_kg": 0.2}})
+    with pytest.raises(StoreCorruptError, match=r"parameters cannot be migrated.*'mass_kg'"):
+        DemoStore(path)
+    conn = sqlite3.connect(path)
+    assert conn.execute("SELECT max(version) FROM schema_migrations").fetchone() == (3,)
+    (text,) = conn.execute("SELECT parameters FROM replay_results").fetchone()
+    conn.close()
+    assert json.loads(text) == {"dt": 0.001, "mass_kg": 0.2}
+
+
+def test_version_four_store_gets_a_version_table_of_our_own(tmp_path):
+    path = tmp_path / "v4.sqlite"
+    write_v1_store(path)
+    _migrate_to(path, 4)
+    with DemoStore(path) as store:
+        assert store.schema_version == SCHEMA_VERSION
+        tables = store.db.table_names()
+        assert VERSION_TABLE in tables and "schema_migrations" not in tables
+        history = store.db.execute(f"SELECT version, description FROM {VERSION_TABLE}").fetchall()
+        assert history[4] == (5, "version table renamed store_schema_history")
+        assert [row[0] for row in history] == list(range(1, SCHEMA_VERSION + 1))
+        assert len(list(store.find_demonstrations())) == 2
+
+
+def test_a_web_application_database_is_not_taken_for_an_old_store(tmp_path):
+    path = tmp_path / "app.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE schema_migrations (version VARCHAR NOT NULL PRIMARY KEY)")
+    conn.execute("INSERT INTO schema_migrations VALUES ('20240101120000')")
+    conn.commit()
+    conn.close()
+    with pytest.raises(StoreCorruptError, match="no store_schema_history table"):
+        DemoStore(path)
+    conn = sqlite3.connect(path)
+    assert conn.execute("SELECT version FROM schema_migrations").fetchall() == [("20240101120000",)]
+    conn.close()
+
+
+def test_checksums_become_digests_and_damaged_chunks_are_flagged(tmp_path):
+    path = tmp_path / "v5.sqlite"
+    data = write_v1_store(path)
+    _migrate_to(path, 5)
+    conn = sqlite3.connect(path)
+    (blob,) = conn.execute(
+        "SELECT torque FROM chunks WHERE demo_id = ? AND seq = 1", (IDS[0],)
+    ).fetchone()
+    damaged = bytearray(blob)
+    damaged[21] ^= 0x04  # bit rot that the version-5 checksum still sees
+    conn.execute(
+        "UPDATE chunks SET torque = ? WHERE demo_id = ? AND seq = 1", (bytes(damaged), IDS[0])
+    )
+    conn.commit()
+    conn.close()
+    with pytest.warns(UserWarning, match=rf"demonstration '{IDS[0]}' chunk\(s\) \[1\]"):
+        store = DemoStore(path)
+    with store:
+        sound = store.load_demonstration(IDS[1])
+        assert np.array_equal(sound.position, data["position"])
+        with pytest.raises(StoreCorruptError, match="chunk 1 was found damaged when the store"):
+            store.load_demonstration(IDS[0])
+        assert store.get_info(IDS[0]).flags == {"damaged_chunks": 1}
+        assert store.verify() == [
+            f"demonstration {IDS[0]}: chunk 1 was found damaged when the store was migrated "
+            "(no digest)"
+        ]
+        digests = store.db.execute("SELECT length(digest) FROM chunks ORDER BY demo_id, seq")
+        assert [row[0] for row in digests] == [32, 0, 32, 32]

@@ -3,6 +3,7 @@ what the store does: a reader that follows only the README gets the same arrays.
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 import sqlite3
@@ -45,19 +46,17 @@ def _readme_reader(path, demo_id):
         "SELECT joints, n_joints FROM demonstrations WHERE id = ?", [demo_id]
     ).fetchone()
     rows = conn.execute(
-        "SELECT n, t, position, velocity, torque, stiffness, checksum FROM chunks "
+        "SELECT seq, n, t, position, velocity, torque, stiffness, digest FROM chunks "
         "WHERE demo_id = ? ORDER BY seq",
         [demo_id],
     ).fetchall()
     conn.close()
     channels = {name: [] for name in ("t", "position", "velocity", "torque", "stiffness")}
-    for n, *blobs, checksum in rows:
-        total = 0
-        for c, blob in enumerate(blobs):
-            words = np.frombuffer(blob or b"", dtype="<u8")
-            total += (2 * c + 1) * (int(words.astype(object).sum()) % 2**64)
-        total %= 2**64
-        assert total - 2**64 * (total >= 2**63) == checksum
+    for seq, n, *blobs, digest in rows:
+        text = seq.to_bytes(8, "little") + n.to_bytes(8, "little")
+        for blob in blobs:
+            text += len(blob or b"").to_bytes(8, "little") + (blob or b"")
+        assert hashlib.sha256(text).digest() == digest  # FIPS 180-4 SHA-256, from hashlib
         for name, blob in zip(channels, blobs, strict=True):
             channels[name].append(np.frombuffer(blob, dtype="<f8"))
         assert channels["t"][-1].size == n

@@ -52,7 +52,7 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     assert skill.id == result["skill"]["id"]
     assert sorted(skill.demonstration_ids) == sorted(result["demonstration_ids"])
     assert len(results) == 28
-    assert sorted({r.parameters["kind"] for r in results}) == sorted(PERTURBATION_KINDS)
+    assert sorted({r.parameters.kind for r in results}) == sorted(PERTURBATION_KINDS)
     assert set(result["timings_s"]) == {"record", "learn", "campaign", "report", "total"}
     # The default target has antagonistic springs: no damping input, so the checks flag the
     # teacher's stiffness as under-damped on it.

@@ -116,7 +116,7 @@ def _representative_traces(
         order = members[np.argsort(np.nan_to_num(deviation[members]), kind="stable")]
         chosen = results[int(order[len(order) // 2])]
         trace = store.load_replay_result(chosen.id).trace
-        perturbations = chosen.parameters.get("perturbations") or [{}]
+        perturbations = (chosen.parameters.schedule or {}).get("perturbations") or [{}]
         onset = perturbations[0].get("onset_s")
         window = None
         if onset is not None:
@@ -225,7 +225,7 @@ def collect_report_content(
         results = list(store.find_replay_results(campaign_id=campaign_id))
         if not results:
             raise NotFoundError(f"campaign {campaign_id!r} has no results yet")
-        kinds = np.array([r.parameters.get("kind", "none") for r in results])
+        kinds = np.array([r.parameters.kind for r in results])
         t_nominal, q_nominal = job.unperturbed()
         figures.append(ReportFigure(
             "replay_traces", "Replays under each perturbation kind",
@@ -244,7 +244,7 @@ def collect_report_content(
         violations = [r for r in results if r.status != "ok"]
         tables.insert(0, ReportTable(
             "Limit violations in the campaign", ("scenario", "kind", "status", "first violation"),
-            tuple((r.scenario_index, r.parameters.get("kind"), r.status, r.reason)
+            tuple((r.scenario_index, r.parameters.kind, r.status, r.reason)
                   for r in violations),
             caption="Scenarios whose mechanism torque or joint angle left the joint's limits.",
             empty_text="no scenario left the joint limits"))

@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import argparse
+import shlex
+import sys
+from datetime import UTC, datetime
 from pathlib import Path
 
 from compliant_demo.app.progress import campaign_progress
@@ -71,17 +74,49 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="scenarios per vectorised batch (default: about three batches "
                              "per worker, 8 to 100 each)")
     parser.add_argument("--resume", default=None, metavar="CAMPAIGN_ID",
-                        help="continue this campaign with its stored settings; scenarios "
+                        help="continue this campaign (its id or a unique prefix; see "
+                             "'compliant-demo campaigns') with its stored settings; scenarios "
                              "already in the store are skipped")
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
     parser.set_defaults(handler=_run)
+    listing = subparsers.add_parser(
+        "campaigns",
+        help="list the stored campaigns with their progress",
+        description=(
+            "List every campaign: its id (any unique prefix names it in --resume and "
+            "--campaign), skill name and version, scenarios stored of those planned, and when "
+            "it was created (UTC)."
+        ),
+    )
+    add_store_option(listing)
+    add_json_option(listing)
+    listing.set_defaults(handler=_list)
 
 
-def _job(store: DemoStore, args: argparse.Namespace) -> tuple[str, ReplayCampaign]:
-    if args.resume is not None:
-        campaign = store.get_campaign(args.resume)
+def _list(args: argparse.Namespace) -> int:
+    with DemoStore(store_path_of(args), read_only=True, create=False) as store:
+        campaigns = store.list_campaigns()
+    if args.json:
+        emit_json([campaign.to_dict() for campaign in campaigns])
+        return 0
+    emit_table(
+        [{"id": c.id, "skill": c.skill_name, "version": c.skill_version,
+          "stored": c.scenarios_stored,
+          "planned": "?" if c.scenarios_planned is None else c.scenarios_planned,
+          "created": datetime.fromtimestamp(c.created, tz=UTC).strftime("%Y-%m-%d %H:%M:%SZ")}
+         for c in campaigns],
+        ("id", "skill", "version", "stored", "planned", "created"),
+    )  # fmt: skip
+    return 0
+
+
+def _job(
+    store: DemoStore, args: argparse.Namespace, resume: str | None
+) -> tuple[str, ReplayCampaign]:
+    if resume is not None:
+        campaign = store.get_campaign(resume)
         stored = load_skill_by_id(store, campaign.skill_id)
         return stored.record.id, ReplayCampaign.from_config(stored.skill, campaign.config)
     stored = read_skill(store, args)
@@ -94,18 +129,42 @@ def _job(store: DemoStore, args: argparse.Namespace) -> tuple[str, ReplayCampaig
     return stored.record.id, ReplayCampaign(setup, spec, args.scenarios, seed=args.seed)
 
 
+def _resume_hint(store: DemoStore, path: Path, campaign_id: str, planned: int) -> str:
+    stored = len(store.completed_scenarios(campaign_id))
+    return (
+        f"campaign {campaign_id}: interrupted with {stored} of {planned} scenarios stored; "
+        f"resume with: compliant-demo campaign --store {shlex.quote(str(path.absolute()))} "
+        f"--resume {campaign_id}"
+    )
+
+
 def _run(args: argparse.Namespace) -> int:
-    with DemoStore(store_path_of(args), create=False, durable=False) as store:
-        skill_id, job = _job(store, args)
-        with campaign_progress(show_progress(args)) as progress:
-            summary = run_campaign(store, job, skill_id=skill_id, campaign_id=args.resume,
-                                   batch_size=args.batch_size, workers=args.workers,
-                                   scheduler=args.scheduler, on_start=progress.on_start,
-                                   on_batch=progress.on_batch)
+    path = store_path_of(args)
+    with DemoStore(path, create=False, durable=False) as store:
+        resume = None if args.resume is None else store.resolve_id("campaign", args.resume)
+        skill_id, job = _job(store, args, resume)
+        started: list[str] = []
+
+        def announce(campaign_id: str) -> None:
+            # the id on stderr the moment the campaign exists: an interrupted run can resume
+            started.append(campaign_id)
+            word = "resuming" if resume is not None else "started"
+            print(f"campaign {campaign_id}: {word}", file=sys.stderr)
+
+        try:
+            with campaign_progress(show_progress(args), announce) as progress:
+                summary = run_campaign(store, job, skill_id=skill_id, campaign_id=resume,
+                                       batch_size=args.batch_size, workers=args.workers,
+                                       scheduler=args.scheduler, on_start=progress.on_start,
+                                       on_batch=progress.on_batch)
+        except KeyboardInterrupt:
+            if started:
+                print(_resume_hint(store, path, started[0], job.n_scenarios), file=sys.stderr)
+            raise
         results = list(store.find_replay_results(campaign_id=summary.campaign_id))
     by_kind: dict[str, list[int]] = {}
     for result in results:
-        counts = by_kind.setdefault(result.parameters.get("kind", "none"), [0, 0])
+        counts = by_kind.setdefault(result.parameters.kind, [0, 0])
         counts[0] += 1
         counts[1] += result.status != "ok"
     if args.json:

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import re
 import sys
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -14,6 +13,7 @@ from typing import Any
 
 from compliant_demo.cautions import SAFETY_CAUTION
 from compliant_demo.display import format_value, printable
+from compliant_demo.store.location import STORE_ENV, default_store_path
 
 __all__ = [
     "DASH_VALUE_OPTIONS",
@@ -36,17 +36,6 @@ INT64_MAX = 2**63 - 1
 DASH_VALUE_OPTIONS: frozenset[str] = frozenset({"--order-by", "--arg"})
 
 _INTEGER = re.compile(r"[+-]?[0-9]+")
-
-STORE_ENV = "COMPLIANT_DEMO_STORE"
-
-
-def default_store_path() -> Path:
-    """The embedded default store: $COMPLIANT_DEMO_STORE, else $XDG_DATA_HOME/compliant_demo."""
-    if os.environ.get(STORE_ENV):
-        return Path(os.environ[STORE_ENV])
-    data_home = Path(os.environ.get("XDG_DATA_HOME") or Path.home() / ".local" / "share")
-    return data_home / "compliant_demo" / "store.sqlite"
-
 
 def add_store_option(parser: argparse.ArgumentParser) -> None:
     """``--store PATH``: the store file (default: the embedded default store)."""

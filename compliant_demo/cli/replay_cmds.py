@@ -92,14 +92,8 @@ def _run(args: argparse.Namespace) -> int:
                 run.step()
                 bar.update(1)
         status, reason, metrics, trace = run.outcome()
-        parameters = {
-            "skill_version": record.version,
-            "schedule": None if schedule is None else schedule.model_dump(mode="json"),
-            "plant": plant.model_dump(mode="json"),
-            "duration_s": args.duration, "settle_s": args.settle, "dt": args.dt,
-            "seed": args.seed,
-            "kind": "none" if schedule is None else schedule.kind_label,
-        }
+        parameters = setup.parameters("command", schedule, args.seed,
+                                      skill_version=record.version)
         result_id = store.save_replay_result(skill_id=record.id, metrics=metrics,
                                              parameters=parameters, status=status,
                                              reason=reason, trace=trace)

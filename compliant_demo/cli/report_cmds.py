@@ -49,7 +49,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     add_store_option(parser)
     add_skill_options(parser)
     parser.add_argument("--campaign", default=None, metavar="CAMPAIGN_ID",
-                        help="campaign to show (default: the skill version's latest)")
+                        help="campaign to show, its id or a unique prefix of it (default: the "
+                             "skill version's latest)")
     parser.add_argument("--truth", type=Path, default=None, metavar="FILE",
                         help="the teacher's ground-truth .npz (t_<i>, stiffness_<i> N*m/rad "
                              "per demonstration, in recording order)")
@@ -75,7 +76,9 @@ def _run(args: argparse.Namespace) -> int:
     with progress_bar("report", 2, "step", show_progress(args)) as bar:
         with DemoStore(store_path_of(args), read_only=True, create=False) as store:
             content = collect_report_content(
-                store, args.skill, version=args.skill_version, campaign_id=args.campaign,
+                store, args.skill, version=args.skill_version,
+                campaign_id=(None if args.campaign is None
+                             else store.resolve_id("campaign", args.campaign)),
                 plant=plant, truth=truth, min_damping_ratio=args.min_damping_ratio)
         bar.update(1)
         files = write_report(content, args.out or RUNS_FOLDER / run_tag("report"))

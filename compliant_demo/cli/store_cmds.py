@@ -24,8 +24,8 @@ from compliant_demo.cli.common import (
     store_path_of,
 )
 from compliant_demo.display import printable
-from compliant_demo.exceptions import CompliantDemoError, InvalidInputError, NotFoundError
-from compliant_demo.store import DemoStore
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
+from compliant_demo.store import DemoStore, store_folder_writable
 from compliant_demo.store.bags import STORAGES, export_bag, import_bag
 from compliant_demo.store.io import export_csv, export_npz, import_csv, import_npz
 
@@ -43,26 +43,18 @@ def _open(args: argparse.Namespace, *, write: bool) -> DemoStore:
     if write and args.store is None:
         path.parent.mkdir(mode=0o750, parents=True, exist_ok=True)  # first use of the default
     writable = write or (path.is_file() and os.access(path, os.W_OK))
+    if writable and not write and not store_folder_writable(path):
+        print(
+            f"note: the folder of {str(path)!r} is not writable: store opened read-only",
+            file=sys.stderr,
+        )
+        writable = False
     return DemoStore(path, read_only=not writable, create=write)
 
 
 def resolve_demo_id(store: DemoStore, prefix: str) -> str:
-    """The full id of the one demonstration whose id starts with ``prefix``."""
-    if len(prefix) < 4:
-        raise InvalidInputError(f"demonstration id {prefix!r} is too short: give 4+ characters")
-    matches = [
-        info.id
-        for info in store.find_demonstrations(
-            where="id LIKE ? ESCAPE '\\'",
-            where_args=[prefix.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_") + "%"],
-            limit=2,
-        )
-    ]
-    if not matches:
-        raise NotFoundError(f"no demonstration id starts with {prefix!r}")
-    if len(matches) > 1:
-        raise InvalidInputError(f"demonstration id prefix {prefix!r} is ambiguous")
-    return matches[0]
+    """The full id of the one demonstration whose id is or starts with ``prefix``."""
+    return store.resolve_id("demonstration", prefix)
 
 
 _TIME_FIELDS = ("start_time", "created_at", "updated_at")
@@ -296,14 +288,17 @@ def _cmd_skills(args: argparse.Namespace) -> int:
 
 def _cmd_verify(args: argparse.Namespace) -> int:
     with _open(args, write=False) as store:
-        problems = store.integrity_check()
+        problems = store.verify()
         version = store.schema_version
-    ok = problems == ["ok"]
     if args.json:
-        emit_json({"ok": ok, "schema_version": version, "problems": [] if ok else problems})
+        emit_json({"ok": not problems, "schema_version": version, "problems": problems})
+    elif not problems:
+        print(f"schema version {version}: ok")
     else:
-        print(f"schema version {version}: " + ("ok" if ok else printable("; ".join(problems))))
-    return 0 if ok else 1
+        print(f"schema version {version}: {len(problems)} finding(s)")
+        for problem in problems:
+            print(printable(problem))
+    return 1 if problems else 0
 
 
 def _sub(
@@ -392,4 +387,5 @@ def register(subparsers: Any) -> None:
     p.add_argument("--reason", help="why, kept with the status (e.g. 'cork fell')")
 
     _sub(subparsers, "skills", _cmd_skills, "list saved skill versions")
-    _sub(subparsers, "verify", _cmd_verify, "check the store file's integrity")
+    _sub(subparsers, "verify", _cmd_verify,
+         "read every stored chunk and check the file; exit 1 with one line per finding")

@@ -269,8 +269,8 @@ def diagnostic_array(
 
 def open_store(path: str, read_only: bool = False) -> Any:
     """The demonstration store at ``path`` (empty: the default store), as a context manager."""
-    from compliant_demo.cli.common import default_store_path
     from compliant_demo.store import DemoStore
+    from compliant_demo.store.location import default_store_path
 
     return DemoStore(path or default_store_path(), read_only=read_only)
 

@@ -26,7 +26,6 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
-from compliant_demo.cli.common import default_store_path
 from compliant_demo.exceptions import CompliantDemoError
 from compliant_demo.ingest import (
     ChunkWriter,
@@ -48,6 +47,7 @@ from compliant_demo.nodes._common import (
     text_problem,
 )
 from compliant_demo.nodes._common import stamp_seconds as _seconds
+from compliant_demo.store.location import default_store_path
 
 __all__ = ["RecorderNode", "main"]
 

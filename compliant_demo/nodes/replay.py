@@ -37,6 +37,7 @@ from compliant_demo.nodes._common import (
 from compliant_demo.nodes._files import load_file_parameter
 from compliant_demo.plant import load_plant
 from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
+from compliant_demo.store import ReplayParameters
 
 __all__ = ["ReplayNode", "main"]
 
@@ -112,7 +113,7 @@ class ReplayNode(Node):
         self.exit_status = 0
         self._run: ReplayRun | None = None
         self._skill_id = ""
-        self._replay_parameters: dict = {}
+        self._replay_parameters: ReplayParameters | None = None
         self._live: list[float] | None = None
         self._waiting_for_skill = self.get_parameter("run_when_available").value
         self._end_after_run = False
@@ -153,13 +154,10 @@ class ReplayNode(Node):
         except CompliantDemoError as exc:
             return False, str(exc)
         self._skill_id = record.id
-        self._replay_parameters = {
-            key: self._value(key)
-            for key in ("skill", "plant_file", "schedule_file", "control_rate_hz", "duration_s",
-                        "settle_s", "seed", "method", "max_stiffness_rate", "real_time")
-        }
-        self._replay_parameters.update(
-            skill_version=record.version, goal=list_parameter(self, "goal", float)
+        self._replay_parameters = setup.parameters(
+            "node", self._schedule, self._value("seed"), skill_version=record.version,
+            plant_file=self._value("plant_file"), schedule_file=self._value("schedule_file"),
+            real_time=self._value("real_time"),
         )
         self._started_wall = time.monotonic()
         self._stamp_origin = time.time()

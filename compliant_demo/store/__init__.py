@@ -6,13 +6,16 @@ documented in the README ("Demonstration store") so that other languages can rea
 """
 
 from compliant_demo.store._schema import SCHEMA_VERSION
+from compliant_demo.store._sql import folder_writable as store_folder_writable
 from compliant_demo.store.core import DemoStore
 from compliant_demo.store.records import (
     CampaignInfo,
+    CampaignProgress,
     Demonstration,
     DemonstrationInfo,
     MergeConflict,
     MergeReport,
+    ReplayParameters,
     ReplayResult,
     ReplayResultInfo,
     SkillRecord,
@@ -20,11 +23,14 @@ from compliant_demo.store.records import (
 
 __all__ = [
     "SCHEMA_VERSION",
+    "store_folder_writable",
     "DemoStore",
     "Demonstration",
     "DemonstrationInfo",
     "SkillRecord",
     "CampaignInfo",
+    "CampaignProgress",
+    "ReplayParameters",
     "ReplayResultInfo",
     "ReplayResult",
     "MergeConflict",

@@ -18,7 +18,7 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = [
     "SAMPLE_DTYPE",
     "CHANNELS",
-    "chunk_checksum",
+    "MAX_JOINTS",
     "to_blob",
     "from_blobs",
     "dumps",
@@ -32,26 +32,9 @@ __all__ = [
 SAMPLE_DTYPE = np.dtype("<f8")
 CHANNELS: tuple[str, ...] = ("position", "velocity", "torque", "stiffness")
 _ARRAY_TAG = "__ndarray__"
-
-
-_MASK64 = (1 << 64) - 1
-
-
-def chunk_checksum(blobs: Sequence[bytes | None]) -> int:
-    """Checksum of one chunk's blobs ``(t, position, velocity, torque, stiffness)``.
-
-    The sum, modulo 2**64, over channels c = 0..4 of ``(2c + 1) * S_c``, where ``S_c`` is the sum
-    modulo 2**64 of the blob read as little-endian unsigned 64-bit words (0 for an absent blob),
-    returned as a signed 64-bit integer (two's complement) for SQLite. The odd weights make every
-    single-bit flip change the sum; one pass of additions keeps loading fast.
-    """
-    total = 0
-    for index, blob in enumerate(blobs):
-        if blob:
-            words = np.frombuffer(blob, dtype="<u8")
-            total += (2 * index + 1) * int(np.add.reduce(words, dtype=np.uint64))
-    total &= _MASK64
-    return total - (1 << 64) if total >= 1 << 63 else total
+# Joints of one demonstration: far above any arm (7) or hand (about 20), small enough that every
+# per-joint JSON summary and sample row stays small.
+MAX_JOINTS = 64
 
 
 def to_blob(array: np.ndarray) -> bytes:
@@ -113,17 +96,20 @@ def validate_text(name: str, value: object, *, allow_empty: bool = True) -> str:
 
 
 def validate_joints(joints: object) -> tuple[str, ...]:
-    """Joint names: a non-empty sequence of distinct non-empty strings."""
+    """Joint names: a sequence of 1 to :data:`MAX_JOINTS` distinct non-empty strings."""
     if isinstance(joints, str) or not isinstance(joints, Sequence):
         raise InvalidInputError(f"joints must be a sequence of names, got {joints!r}")
+    if len(joints) > MAX_JOINTS:
+        raise InvalidInputError(f"joints must name at most {MAX_JOINTS} joints, got {len(joints)}")
     names = tuple(joints)
     if not names:
         raise InvalidInputError("joints must name at least one joint, got []")
+    seen: set[str] = set()
     for name in names:
         validate_text("joint name", name, allow_empty=False)
-    duplicates = sorted({n for n in names if names.count(n) > 1})
-    if duplicates:
-        raise InvalidInputError(f"joints must be distinct, got {duplicates[0]!r} twice")
+        if name in seen:
+            raise InvalidInputError(f"joints must be distinct, got {name!r} twice")
+        seen.add(name)
     return names
 
 

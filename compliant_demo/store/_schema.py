@@ -1,9 +1,9 @@
-"""Schema of the demonstration store: table definitions, the version table, registered migrations,
-and the low-level sample reads and summary updates that both the store and the migrations need.
+"""Schema of the demonstration store: table definitions, the version table and the registered
+migrations.
 
-A store records every schema version it went through in ``schema_migrations``; its version is the
-largest one. Migrations run in one transaction each, so a failed migration leaves the file at its
-old version.
+A store records every schema version it went through in ``store_schema_history`` (named
+``schema_migrations`` up to version 4); its version is the largest one. Migrations run in one
+transaction each, so a failed migration leaves the file at its old version.
 """
 
 from __future__ import annotations
@@ -11,31 +11,35 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
+import warnings
 from collections.abc import Callable
 
-import numpy as np
-
 from compliant_demo.exceptions import SchemaVersionError, StoreCorruptError, StoreReadOnlyError
-from compliant_demo.store._codec import CHANNELS, chunk_checksum, from_blobs
+from compliant_demo.store._codec import from_blobs
+from compliant_demo.store._legacy import chunk_checksum, legacy_replay_parameters
+from compliant_demo.store._samples import chunk_digest, refresh_summary
 
 __all__ = [
     "SCHEMA_VERSION",
     "MIGRATIONS",
     "DEMONSTRATION_COLUMNS",
     "ensure_schema",
+    "VERSION_TABLE",
     "schema_version",
-    "read_samples",
-    "refresh_summary",
 ]
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 6
+VERSION_TABLE = "store_schema_history"
+# The version table's name up to version 4, a name web frameworks use for their own tables.
+_OLD_VERSION_TABLE = "schema_migrations"
+_VERSION_COLUMNS = ["version", "applied_at", "description"]
 
-# Current (version 3) layout. A migration creates a table from these statements only when its
+# Current (version 6) layout. A migration creates a table from these statements only when its
 # layout is the current one; older layouts a migration still needs are kept beside it
 # (``_CHUNKS_V2``).
 _TABLES: dict[str, str] = {
-    "schema_migrations": """
-        CREATE TABLE schema_migrations (
+    VERSION_TABLE: """
+        CREATE TABLE store_schema_history (
             version INTEGER PRIMARY KEY,
             applied_at REAL NOT NULL,
             description TEXT NOT NULL
@@ -101,7 +105,7 @@ _TABLES: dict[str, str] = {
             velocity BLOB NOT NULL,
             torque BLOB NOT NULL,
             stiffness BLOB,
-            checksum INTEGER NOT NULL,
+            digest BLOB NOT NULL,
             UNIQUE (demo_id, seq)
         )""",
     "skills": """
@@ -151,8 +155,11 @@ _TABLES: dict[str, str] = {
         )""",
 }
 
-# Version 2 chunks: the current layout without its checksum column.
-_CHUNKS_V2 = _TABLES["chunks"].replace("            checksum INTEGER NOT NULL,\n", "")
+# Older chunk layouts: version 2 without any check column, versions 3 to 5 with an additive
+# checksum in its place.
+_DIGEST_COLUMN = "            digest BLOB NOT NULL,\n"
+_CHUNKS_V2 = _TABLES["chunks"].replace(_DIGEST_COLUMN, "")
+_CHUNKS_V3 = _TABLES["chunks"].replace(_DIGEST_COLUMN, "            checksum INTEGER NOT NULL,\n")
 
 # Every column a caller may filter or sort on with ``where`` / ``order_by``.
 DEMONSTRATION_COLUMNS: tuple[str, ...] = (
@@ -182,7 +189,8 @@ _INDEXES: tuple[str, ...] = (
 
 def _record_version(conn: sqlite3.Connection, version: int, description: str) -> None:
     conn.execute(
-        "INSERT INTO schema_migrations (version, applied_at, description) VALUES (?, ?, ?)",
+        f"INSERT INTO {_version_table(conn, _tables(conn))} (version, applied_at, description) "
+        "VALUES (?, ?, ?)",
         (version, time.time(), description),
     )
 
@@ -201,7 +209,7 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
     conn.execute("ALTER TABLE demonstrations RENAME TO demonstrations_v1")
     conn.execute("ALTER TABLE chunks RENAME TO chunks_v1")
     for name, ddl in _TABLES.items():
-        if name != "schema_migrations":
+        if name != VERSION_TABLE:
             conn.execute(_CHUNKS_V2 if name == "chunks" else ddl)
     conn.execute(
         """INSERT INTO demonstrations (
@@ -239,7 +247,7 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
 def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
     """Version 3 adds a checksum to every chunk, verified whenever samples are read."""
     conn.execute("ALTER TABLE chunks RENAME TO chunks_v2")
-    conn.execute(_TABLES["chunks"])
+    conn.execute(_CHUNKS_V3)
     rows = conn.execute(
         "SELECT demo_id, seq, n, t_first, t_last, t, position, velocity, torque, stiffness "
         "FROM chunks_v2"
@@ -253,26 +261,119 @@ def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
     conn.execute("DROP TABLE chunks_v2")
 
 
+def _migrate_3_to_4(conn: sqlite3.Connection) -> None:
+    """Version 4 stores every replay's parameters as one ReplayParameters document; version 3
+    held three shapes (campaign scenarios, ``compliant-demo replay``, the replay node)."""
+    rows = conn.execute("SELECT id, campaign_id, scenario_index, parameters FROM replay_results")
+    for result_id, campaign_id, scenario_index, text in rows.fetchall():
+        try:
+            old = json.loads(text)
+            new = legacy_replay_parameters(old, campaign_id is not None, scenario_index)
+        except (ValueError, TypeError, AttributeError) as exc:
+            raise StoreCorruptError(
+                f"replay result {result_id!r}: parameters cannot be migrated ({exc}); nothing "
+                "was changed"
+            ) from None
+        conn.execute(
+            "UPDATE replay_results SET parameters = ? WHERE id = ?",
+            (json.dumps(new, sort_keys=True, separators=(",", ":")), result_id),
+        )
+
+
+def _migrate_4_to_5(conn: sqlite3.Connection) -> None:
+    """Version 5 names the version table ``store_schema_history``, a name of our own."""
+    # a copy rather than ALTER TABLE ... RENAME, which would quote the name in the stored
+    # definition: a migrated file keeps the schema text of a fresh one
+    conn.execute(_TABLES[VERSION_TABLE])
+    conn.execute(f"INSERT INTO {VERSION_TABLE} SELECT * FROM {_OLD_VERSION_TABLE}")
+    conn.execute(f"DROP TABLE {_OLD_VERSION_TABLE}")
+
+
+def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
+    """Version 6 replaces the additive chunk checksum, blind to reordered words, by a SHA-256
+    digest. Only chunks whose checksum still holds get one; the others keep an empty digest (they
+    never load) and their demonstration the flag ``damaged_chunks``, and a warning names them."""
+    conn.execute("ALTER TABLE chunks RENAME TO chunks_v5")
+    conn.execute(_TABLES["chunks"])
+    damaged: dict[str, list[int]] = {}
+    rows = conn.execute(
+        "SELECT demo_id, seq, n, t_first, t_last, t, position, velocity, torque, stiffness, "
+        "checksum FROM chunks_v5 ORDER BY demo_id, seq"
+    )
+    for *row, checksum in rows:
+        demo_id, seq, n, blobs = row[0], row[1], row[2], row[5:]
+        if chunk_checksum(blobs) == checksum:
+            digest = chunk_digest(seq, n, blobs)
+        else:
+            digest = b""
+            damaged.setdefault(demo_id, []).append(seq)
+        conn.execute(
+            "INSERT INTO chunks (demo_id, seq, n, t_first, t_last, t, position, velocity, torque, "
+            "stiffness, digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (*row, digest),
+        )
+    conn.execute("DROP TABLE chunks_v5")
+    for demo_id, seqs in damaged.items():
+        conn.execute(
+            "UPDATE demonstrations SET flags = json_set(flags, '$.damaged_chunks', ?) "
+            "WHERE id = ?",
+            (len(seqs), demo_id),
+        )
+    if damaged:
+        warnings.warn(
+            "chunks failing their checksum while migrating to SHA-256 digests were kept "
+            "unverifiable (they never load; 'compliant-demo verify' lists them): "
+            + "; ".join(f"demonstration {d!r} chunk(s) {seqs}" for d, seqs in damaged.items()),
+            stacklevel=2,
+        )
+
+
 # from-version -> (description, migration to from-version + 1)
 MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
     1: ("summaries, tag index, writer leases, skills and replay results", _migrate_1_to_2),
     2: ("chunk checksums", _migrate_2_to_3),
+    3: ("one typed record for replay parameters", _migrate_3_to_4),
+    4: ("version table renamed store_schema_history", _migrate_4_to_5),
+    5: ("SHA-256 chunk digests", _migrate_5_to_6),
 }
+
+
+def _tables(conn: sqlite3.Connection) -> set[str]:
+    return {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+
+
+def _version_table(conn: sqlite3.Connection, tables: set[str]) -> str | None:
+    """The version table among ``tables`` (one read of the schema, so a store another process is
+    creating right now is seen whole or not at all): the current one, else the one up to version
+    4 when it has our columns; None when there is neither."""
+    if VERSION_TABLE in tables:
+        return VERSION_TABLE
+    if _OLD_VERSION_TABLE in tables:
+        columns = [row[1] for row in conn.execute(f"PRAGMA table_info({_OLD_VERSION_TABLE})")]
+        if columns == _VERSION_COLUMNS:
+            return _OLD_VERSION_TABLE
+    return None
 
 
 def schema_version(conn: sqlite3.Connection) -> int | None:
     """The store's schema version, or None for an empty database."""
-    tables = {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
-    if "schema_migrations" not in tables:
+    tables = _tables(conn)
+    table = _version_table(conn, tables)
+    if table is None:
         if tables:
             raise StoreCorruptError(
-                f"not a demonstration store: no schema_migrations table (tables: "
+                f"not a demonstration store: no {VERSION_TABLE} table (tables: "
                 f"{', '.join(sorted(tables))})"
             )
         return None
-    (version,) = conn.execute("SELECT max(version) FROM schema_migrations").fetchone()
+    (version,) = conn.execute(f"SELECT max(version) FROM {table}").fetchone()
     if version is None:
-        raise StoreCorruptError("schema_migrations table is empty")
+        raise StoreCorruptError(f"{table} table is empty")
+    if table == _OLD_VERSION_TABLE and not (isinstance(version, int) and 1 <= version <= 4):
+        raise StoreCorruptError(
+            f"not a demonstration store: its {table} table holds version {version!r}, not one "
+            "of ours (1 to 4)"
+        )
     return int(version)
 
 
@@ -339,133 +440,3 @@ def _migrate(conn: sqlite3.Connection, version: int, label: str) -> int:
     finally:
         conn.execute("PRAGMA foreign_keys = ON")
     return version
-
-
-def read_samples(
-    conn: sqlite3.Connection,
-    demo_id: str,
-    n_joints: int,
-    has_stiffness: bool,
-    *,
-    label: str = "store",
-    verify: bool = True,
-) -> tuple[np.ndarray, dict[str, np.ndarray | None]]:
-    """All samples of one demonstration: ``t`` (n,) and channel arrays (n, n_joints).
-
-    One SELECT over the demonstration's chunks; each channel is one join of blobs and one
-    ``np.frombuffer``, so the arrays are read-only views of fresh memory. Every chunk's blob
-    sizes and checksum are verified (unless ``verify`` is off, for layouts without checksums).
-
-    Raises
-    ------
-    StoreCorruptError
-        A chunk's bytes do not match its sample count or checksum.
-    """
-    rows = conn.execute(
-        "SELECT seq, n, t, position, velocity, torque, stiffness"
-        f"{', checksum' if verify else ''} FROM chunks WHERE demo_id = ? ORDER BY seq",
-        (demo_id,),
-    ).fetchall()
-    if not rows:
-        empty = np.empty((0, n_joints))
-        return np.empty(0), {
-            name: (empty if name != "stiffness" or has_stiffness else None) for name in CHANNELS
-        }
-    if verify:
-        for row in rows:
-            _verify_chunk(row, n_joints, has_stiffness, demo_id, label)
-    columns = list(zip(*rows, strict=True))
-    t = from_blobs(columns[2], None)
-    arrays: dict[str, np.ndarray | None] = {}
-    for name, blobs in zip(CHANNELS, columns[3:7], strict=True):
-        arrays[name] = (
-            from_blobs(blobs, n_joints) if (name != "stiffness" or has_stiffness) else None
-        )
-    return t, arrays
-
-
-def _verify_chunk(row: tuple, n_joints: int, has_stiffness: bool, demo_id: str, label: str) -> None:
-    seq, n, t, *channels, checksum = row
-    sizes = [len(t) if isinstance(t, bytes) else -1] + [
-        len(b) if isinstance(b, bytes) else (0 if b is None else -1) for b in channels
-    ]
-    expected = [8 * n] + [8 * n * n_joints] * 3 + [8 * n * n_joints if has_stiffness else 0]
-    if sizes != expected:
-        raise StoreCorruptError(
-            f"{label}: chunk {seq} of demonstration {demo_id!r} has blobs of {sizes} bytes, "
-            f"expected {expected}"
-        )
-    if chunk_checksum([t, *channels]) != checksum:
-        raise StoreCorruptError(
-            f"{label}: chunk {seq} of demonstration {demo_id!r} fails its checksum (damaged file)"
-        )
-
-
-def _finite_or_none(value: float) -> float | None:
-    # A range can overflow for finite samples near the float64 limits; SQL and JSON get NULL.
-    return float(value) if np.isfinite(value) else None
-
-
-def _per_joint(joints: list[str], values: np.ndarray) -> str:
-    return json.dumps({name: _finite_or_none(v) for name, v in zip(joints, values, strict=True)})
-
-
-def refresh_summary(
-    conn: sqlite3.Connection, demo_id: str, *, label: str = "store", verify: bool = True
-) -> None:
-    """Recompute the summary columns of one demonstration from its stored samples.
-
-    Stiffness extremes ignore NaN ("no estimate") samples; a joint without any estimate gets
-    None.
-    """
-    row = conn.execute(
-        "SELECT joints, n_joints, has_stiffness FROM demonstrations WHERE id = ?", (demo_id,)
-    ).fetchone()
-    joints_json, n_joints, has_stiffness = row
-    joints = json.loads(joints_json)
-    t, arrays = read_samples(
-        conn, demo_id, n_joints, bool(has_stiffness), label=label, verify=verify
-    )
-    summary: dict[str, object] = {
-        "n_samples": int(t.size),
-        "t_first": float(t[0]) if t.size else None,
-        "t_last": float(t[-1]) if t.size else None,
-        "duration_s": float(t[-1] - t[0]) if t.size else 0.0,
-        "mean_rate_hz": _finite_or_none((t.size - 1) / (t[-1] - t[0])) if t.size > 1 else None,
-        "range_of_motion": None,
-        "peak_abs_torque": None,
-        "stiffness_min": None,
-        "stiffness_max": None,
-        "range_of_motion_json": "{}",
-        "peak_abs_torque_json": "{}",
-        "stiffness_min_json": "{}",
-        "stiffness_max_json": "{}",
-    }
-    if t.size:
-        position, torque = arrays["position"], arrays["torque"]
-        assert position is not None and torque is not None
-        with np.errstate(over="ignore"):
-            rom = position.max(axis=0) - position.min(axis=0)
-        peak = np.abs(torque).max(axis=0)
-        summary.update(
-            range_of_motion=_finite_or_none(rom.max()),
-            peak_abs_torque=float(peak.max()),
-            range_of_motion_json=_per_joint(joints, rom),
-            peak_abs_torque_json=_per_joint(joints, peak),
-        )
-        stiffness = arrays["stiffness"]
-        if stiffness is not None:
-            estimated = ~np.isnan(stiffness)
-            low = np.where(estimated, stiffness, np.inf).min(axis=0)
-            high = np.where(estimated, stiffness, -np.inf).max(axis=0)
-            summary.update(
-                stiffness_min=_finite_or_none(low.min()),
-                stiffness_max=_finite_or_none(high.max()),
-                stiffness_min_json=_per_joint(joints, low),
-                stiffness_max_json=_per_joint(joints, high),
-            )
-    assignments = ", ".join(f"{name} = ?" for name in summary)
-    conn.execute(
-        f"UPDATE demonstrations SET {assignments}, updated_at = ? WHERE id = ?",
-        (*summary.values(), time.time(), demo_id),
-    )

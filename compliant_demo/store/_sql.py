@@ -1,5 +1,5 @@
-"""Connection handling for the store: opening files safely, translating SQLite errors into our
-named exceptions, and building filtered queries with every value bound as a parameter."""
+"""Connection handling for the store: opening files safely and translating SQLite errors into our
+named exceptions."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import json
 import os
 import sqlite3
 import time
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from urllib.parse import quote
@@ -26,10 +26,9 @@ __all__ = [
     "FILE_MODE",
     "PAGE_SIZE",
     "connect",
+    "folder_writable",
     "translated",
-    "QueryBuilder",
-    "parse_order_by",
-    "read_only_authorizer",
+    "damaged_text",
 ]
 
 FILE_MODE = 0o640
@@ -50,6 +49,8 @@ def translated(label: str) -> Iterator[None]:
     except sqlite3.Error as exc:
         name = getattr(exc, "sqlite_errorname", "") or ""
         text = str(exc)
+        if damaged_text(exc):
+            raise StoreCorruptError(f"{label}: damaged text in the store: {text}") from exc
         if name.startswith(("SQLITE_BUSY", "SQLITE_LOCKED")) or "locked" in text:
             raise StoreBusyError(f"{label}: store busy (another writer holds it): {text}") from exc
         if name.startswith("SQLITE_FULL") or "full" in text:
@@ -61,6 +62,11 @@ def translated(label: str) -> Iterator[None]:
         if name.startswith(("SQLITE_NOTADB", "SQLITE_CORRUPT")) or "not a database" in text:
             raise StoreCorruptError(f"{label}: not a usable SQLite store: {text}") from exc
         raise StoreError(f"{label}: {text}") from exc
+
+
+def damaged_text(exc: BaseException) -> bool:
+    """Whether sqlite3 raised ``exc`` because stored text is not valid UTF-8."""
+    return isinstance(exc, sqlite3.OperationalError) and "decode to UTF-8" in str(exc)
 
 
 def _check_file(path: Path) -> None:
@@ -127,6 +133,11 @@ def connect(
             raise StoreReadOnlyError(
                 f"store {str(resolved)!r} is read-only (file or file system): open it read-only"
             )
+        if not read_only and not folder_writable(resolved):
+            raise StoreReadOnlyError(
+                f"store {str(resolved)!r}: its folder is not writable and SQLite keeps the "
+                "store's -wal and -shm files beside it: open it read-only"
+            )
         if read_only and _needs_immutable(resolved):
             mode = "ro&immutable=1"
         with translated(str(resolved)):
@@ -144,6 +155,14 @@ def connect(
         conn.close()
         raise
     return conn, resolved
+
+
+def folder_writable(path: Path) -> bool:
+    """Whether a writable connection to the store ``path`` can work: its folder is writable, or
+    the -wal and -shm files it needs already exist there."""
+    return os.access(path.parent, os.W_OK) or (
+        Path(f"{path}-wal").exists() and Path(f"{path}-shm").exists()
+    )
 
 
 def _needs_immutable(path: Path) -> bool:
@@ -193,92 +212,3 @@ def _execute_waiting(conn: sqlite3.Connection, sql: str, timeout_s: float) -> No
                 raise
         time.sleep(pause_s)
         pause_s = min(2.0 * pause_s, 0.05)
-
-
-def parse_order_by(order_by: str | None, allowed: Sequence[str], default: str) -> str:
-    """Validate ``"col [asc|desc], -col2"`` against ``allowed`` column names; return SQL."""
-    if order_by is None:
-        return default
-    if not isinstance(order_by, str) or not order_by.strip():
-        raise InvalidInputError(f"order_by must be a non-empty string, got {order_by!r}")
-    terms = []
-    for raw in order_by.split(","):
-        words = raw.split()
-        direction = "ASC"
-        if len(words) == 2 and words[1].lower() in ("asc", "desc"):
-            direction = words[1].upper()
-            words = words[:1]
-        if len(words) != 1:
-            raise InvalidInputError(f"order_by term {raw.strip()!r} is not 'column [asc|desc]'")
-        column = words[0]
-        if column.startswith("-"):
-            column, direction = column[1:], "DESC"
-        if column not in allowed:
-            raise InvalidInputError(
-                f"order_by column {column!r} is unknown; choose from {', '.join(allowed)}"
-            )
-        terms.append(f"{column} {direction}")
-    return ", ".join(terms)
-
-
-class QueryBuilder:
-    """Collects WHERE conditions with bound values, positional or named as ``where_args`` needs.
-
-    Parameters
-    ----------
-    named : bool
-        Use ``:name`` placeholders (when the caller's raw ``where`` uses named parameters).
-    """
-
-    def __init__(self, named: bool) -> None:
-        self.conditions: list[str] = []
-        self.named = named
-        self.positional: list[object] = []
-        self.by_name: dict[str, object] = {}
-
-    def value(self, value: object) -> str:
-        """Bind ``value``; return its placeholder."""
-        if self.named:
-            key = f"_cd_{len(self.by_name)}"
-            self.by_name[key] = value
-            return f":{key}"
-        self.positional.append(value)
-        return "?"
-
-    def add(self, condition: str, *values: object) -> None:
-        """Add a condition whose ``{}`` slots receive the placeholders of ``values``."""
-        self.conditions.append(condition.format(*(self.value(v) for v in values)))
-
-    def add_raw(self, where: str, where_args: Sequence[object] | Mapping[str, object]) -> None:
-        """Add the caller's own SQL condition with its parameters."""
-        self.conditions.append(f"({where})")
-        if isinstance(where_args, Mapping):
-            clash = [k for k in where_args if k.startswith("_cd_")]
-            if clash:
-                raise InvalidInputError(
-                    f"where_args key {clash[0]!r} uses the reserved prefix _cd_"
-                )
-            self.by_name.update(where_args)
-        else:
-            self.positional.extend(where_args)
-
-    def sql(self) -> str:
-        """The WHERE clause (empty when there are no conditions)."""
-        return f" WHERE {' AND '.join(self.conditions)}" if self.conditions else ""
-
-    def params(self) -> Sequence[object] | Mapping[str, object]:
-        """The bound values, in the form sqlite3 expects."""
-        return self.by_name if self.named else self.positional
-
-
-_READ_ONLY_ACTIONS = {
-    sqlite3.SQLITE_SELECT,
-    sqlite3.SQLITE_READ,
-    sqlite3.SQLITE_FUNCTION,
-    getattr(sqlite3, "SQLITE_RECURSIVE", 33),
-}
-
-
-def read_only_authorizer(action: int, *_args: object) -> int:
-    """sqlite3 authorizer that lets a statement read but never write, attach or set pragmas."""
-    return sqlite3.SQLITE_OK if action in _READ_ONLY_ACTIONS else sqlite3.SQLITE_DENY

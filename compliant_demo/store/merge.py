@@ -5,17 +5,16 @@ conflicts and left as they are."""
 from __future__ import annotations
 
 import hashlib
-import json
 import sqlite3
 import uuid
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 from compliant_demo.exceptions import StoreError
-from compliant_demo.store._schema import read_samples
-from compliant_demo.store.records import MergeConflict, MergeReport
-
-if TYPE_CHECKING:
-    from compliant_demo.store.core import DemoStore
+from compliant_demo.store import _codec
+from compliant_demo.store._rows import INFO_COLUMNS, checked_infos, decoded
+from compliant_demo.store._samples import read_samples
+from compliant_demo.store._session import StoreSession
+from compliant_demo.store.records import MergeConflict, MergeReport, ReplayParameters
 
 __all__ = ["merge_into", "content_digest"]
 
@@ -34,7 +33,7 @@ _COPY_COLUMNS = (
 )  # fmt: skip
 _CHUNK_COLUMNS = (
     "demo_id", "seq", "n", "t_first", "t_last", "t", "position", "velocity", "torque", "stiffness",
-    "checksum",
+    "digest",
 )  # fmt: skip
 
 
@@ -91,15 +90,34 @@ def _record(conn: Any, table: str, columns: tuple[str, ...], child: Any, key: st
     return row, rows
 
 
-def _merge_records(target: DemoStore, source: DemoStore, report: MergeReport) -> None:
+# JSON columns of each record's row, decoded in the source before a copy: damage is reported
+# against the store that holds it, never copied into the target.
+_JSON_COLUMNS = {
+    "skills": ("payload", "parameters"),
+    "campaigns": ("config",),
+    "replay_results": ("metrics", "parameters"),
+}
+
+
+def _check_record(source: StoreSession, kind: str, table: str, columns: tuple, row: Any) -> None:
+    def decode() -> None:
+        for name in _JSON_COLUMNS[table]:
+            document = _codec.loads(row[columns.index(name)])
+            if table == "replay_results" and name == "parameters":
+                ReplayParameters.model_validate(document)
+
+    decoded(source.label, f"{kind} {row[0]!r}", decode)
+
+
+def _merge_records(target: StoreSession, source: StoreSession, report: MergeReport) -> None:
     for kind, table, columns, child, added in _RECORDS:
-        with source._snapshot() as src:
+        with source.snapshot() as src:
             keys = [row[0] for row in src.execute(f"SELECT id FROM {table} ORDER BY created, id")]
         for key in keys:
-            with source._snapshot() as src:
+            with source.snapshot() as src:
                 theirs = _record(src, table, columns, child, key)
             try:
-                with target._transaction() as dst:
+                with target.transaction() as dst:
                     ours = _record(dst, table, columns, child, key)
                     if ours[0] is not None:
                         if ours == theirs:
@@ -109,6 +127,7 @@ def _merge_records(target: DemoStore, source: DemoStore, report: MergeReport) ->
                         continue
                     if theirs[0] is None:  # deleted in the source since we listed it
                         continue
+                    _check_record(source, kind, table, columns, theirs[0])
                     _insert(dst, table, columns, [theirs[0]])
                     if child is not None:
                         _insert(dst, child[0], child[2], theirs[1])
@@ -127,16 +146,16 @@ def _insert(conn: Any, table: str, columns: tuple[str, ...], rows: Any) -> None:
     )
 
 
-def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
+def merge_into(target: StoreSession, source: StoreSession) -> MergeReport:
     """Copy every finished demonstration, then every skill version, campaign and replay result
     of ``source`` missing from ``target``."""
     report = MergeReport()
-    with source._snapshot() as src:
+    with source.snapshot() as src:
         ids = [
             row[0] for row in src.execute("SELECT id FROM demonstrations ORDER BY created_at, id")
         ]
     for demo_id in ids:
-        with source._snapshot() as src, target._transaction() as dst:
+        with source.snapshot() as src, target.transaction() as dst:
             theirs = _identity(src, demo_id)
             if theirs is None:  # deleted in the source since we listed it
                 continue
@@ -158,9 +177,13 @@ def merge_into(target: DemoStore, source: DemoStore) -> MergeReport:
                 else:
                     report.skipped_duplicates.append(demo_id)
                 continue
-            # verifies the checksums: damaged samples are never copied
-            read_samples(src, demo_id, len(json.loads(theirs["joints"])),
-                         bool(theirs["has_stiffness"]), label=source._label)  # fmt: skip
+            # damaged metadata or samples are never copied: the error names the source
+            checked_infos(
+                [src.execute(f"SELECT {INFO_COLUMNS} FROM demonstrations WHERE id = ?",
+                             (demo_id,)).fetchone()],
+                source.label,
+            )  # fmt: skip
+            read_samples(src, demo_id, label=source.label)
             row = src.execute(
                 f"SELECT {', '.join(_COPY_COLUMNS)} FROM demonstrations WHERE id = ?", (demo_id,)
             ).fetchone()

@@ -1,12 +1,14 @@
 """Records the demonstration store hands back: demonstration metadata and samples, skills, replay
-results and the outcome of a merge. Plain frozen dataclasses, cheap to build by the thousand."""
+results with their parameters, and the outcome of a merge. Plain frozen dataclasses, cheap to
+build by the thousand; the replay parameters are a validated pydantic model."""
 
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
+from pydantic import BaseModel, ConfigDict
 
 __all__ = [
     "DEMO_SOURCES",
@@ -15,6 +17,8 @@ __all__ = [
     "Demonstration",
     "SkillRecord",
     "CampaignInfo",
+    "CampaignProgress",
+    "ReplayParameters",
     "ReplayResultInfo",
     "ReplayResult",
     "MergeConflict",
@@ -167,6 +171,93 @@ class CampaignInfo:
 
 
 @dataclass(frozen=True, slots=True)
+class CampaignProgress:
+    """A campaign as listed for people: its skill and how far it got.
+
+    Attributes
+    ----------
+    id, skill_id : str
+    skill_name : str
+    skill_version : int
+    created : float
+        Unix time, s.
+    scenarios_stored : int
+        Scenarios with a stored result.
+    scenarios_planned : int or None
+        Scenarios its configuration asks for (None when the configuration does not say).
+    """
+
+    id: str
+    skill_id: str
+    skill_name: str
+    skill_version: int
+    created: float
+    scenarios_stored: int
+    scenarios_planned: int | None
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict."""
+        return asdict(self)
+
+
+class ReplayParameters(BaseModel):
+    """What one replay was run with, whichever face ran it.
+
+    Attributes
+    ----------
+    source : {"campaign", "command", "node"}
+        What ran it: a campaign scenario, ``compliant-demo replay`` or the replay node.
+    kind : str
+        ``"+".join`` of the schedule's perturbation kinds, or ``"none"``.
+    schedule : dict or None
+        The perturbation schedule as its JSON dump (``PerturbationSchedule.model_dump``).
+    scenario_index : int or None
+        Index of the scenario within its campaign.
+    skill_version : int or None
+    plant : dict or None
+        Plant description as JSON; None where the campaign's config holds it.
+    plant_file, schedule_file : str or None
+        Files the replay node read them from.
+    dt : float or None, s
+        Integrator step.
+    duration_s : float or None, s
+        Movement duration; None = the demonstrated one.
+    settle_s : float or None, s
+        Time simulated after the movement.
+    goal : list of float or None, rad
+        New goal per joint; None = the demonstrated one.
+    seed : int or None
+    method : str or None
+        Integrator.
+    max_stiffness_rate : float or None, N*m/rad/s
+        Largest commanded stiffness rate before a safety stop; None = no limit.
+    feedforward : bool or None
+    real_time : bool or None
+        Whether steps were paced by the wall clock.
+    """
+
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
+
+    source: Literal["campaign", "command", "node"]
+    kind: str = "none"
+    schedule: dict[str, Any] | None = None
+    scenario_index: int | None = None
+    skill_version: int | None = None
+    plant: dict[str, Any] | None = None
+    plant_file: str | None = None
+    schedule_file: str | None = None
+    dt: float | None = None
+    duration_s: float | None = None
+    settle_s: float | None = None
+    goal: list[float] | None = None
+    seed: int | None = None
+    method: str | None = None
+    max_stiffness_rate: float | None = None
+    feedforward: bool | None = None
+    real_time: bool | None = None
+
+
+@dataclass(frozen=True, slots=True)
 class ReplayResultInfo:
     """Metrics of one replay, without its trace arrays.
 
@@ -178,7 +269,8 @@ class ReplayResultInfo:
     status : str
         ``"ok"`` or a short word chosen by the replay code (e.g. ``"unstable"``).
     reason : str or None
-    metrics, parameters : dict
+    metrics : dict
+    parameters : ReplayParameters
     trace_channels : tuple of str
         Names of the stored trace arrays.
     created : float
@@ -192,7 +284,7 @@ class ReplayResultInfo:
     status: str
     reason: str | None
     metrics: dict[str, Any]
-    parameters: dict[str, Any]
+    parameters: ReplayParameters
     trace_channels: tuple[str, ...]
     created: float
 
@@ -203,6 +295,11 @@ class ReplayResult:
 
     info: ReplayResultInfo
     trace: dict[str, np.ndarray]
+
+    @property
+    def parameters(self) -> ReplayParameters:
+        """What the replay was run with (``info.parameters``)."""
+        return self.info.parameters
 
 
 @dataclass(frozen=True, slots=True)
