@@ -20,9 +20,10 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from compliant_demo.arrays import finite_array, time_axis
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, JointParams
-from compliant_demo.primitives import Rollout, _finite_array, _time_axis
+from compliant_demo.primitives import Rollout
 from compliant_demo.sim import GRAVITY
 
 __all__ = [
@@ -223,7 +224,7 @@ def check_schedule(
         raise InvalidInputError(f"min_damping_ratio: must be positive, got {min_damping_ratio!r}")
     if not energy_budget >= 0:
         raise InvalidInputError(f"energy_budget: must be >= 0 J, got {energy_budget!r}")
-    extra = np.broadcast_to(_finite_array(extra_deflection, "extra_deflection"), (len(names),))
+    extra = np.broadcast_to(finite_array(extra_deflection, "extra_deflection"), (len(names),))
     if np.any(extra < 0):
         raise InvalidInputError(f"extra_deflection: must be >= 0 rad, got {extra.tolist()}")
 
@@ -308,7 +309,7 @@ def _tank(t: NDArray[np.float64], power: NDArray[np.float64], budget: float) -> 
 
 
 def _samples(value: ArrayLike, n_samples: int, n_joints: int | None, name: str) -> NDArray:
-    array = _finite_array(value, name)
+    array = finite_array(value, name)
     if array.ndim == 1:
         array = array[:, np.newaxis]
     if array.ndim != 2 or array.shape[0] != n_samples or (
@@ -387,19 +388,19 @@ def outcome_metrics(
     peak_mechanism_torque_Nm, energy_J (terms as given), energy_injected_J, limit_violations
     (per kind: samples, duration_s, worst excess per joint) and n_limit_violations.
     """
-    times = _time_axis(t)
+    times = time_axis(t)
     position = _samples(q, times.size, None, "q")
     n_joints = position.shape[1]
     nominal = _samples(q_nominal, times.size, n_joints, "q_nominal")
     external = _samples(tau_external, times.size, n_joints, "tau_external")
     mechanism = _samples(tau_mechanism, times.size, n_joints, "tau_mechanism")
-    target = _finite_array(goal, "goal").reshape(-1)
+    target = finite_array(goal, "goal").reshape(-1)
     if target.shape != (n_joints,):
         raise InvalidInputError(f"goal: expected shape ({n_joints},), got {target.shape}")
     if not recovery_band > 0:
         raise InvalidInputError(f"recovery_band: must be positive (rad), got {recovery_band!r}")
-    onsets = _finite_array(perturbation_onsets, "perturbation_onsets").reshape(-1)
-    ends = onsets if perturbation_ends is None else _finite_array(
+    onsets = finite_array(perturbation_onsets, "perturbation_onsets").reshape(-1)
+    ends = onsets if perturbation_ends is None else finite_array(
         perturbation_ends, "perturbation_ends").reshape(-1)
     if ends.shape != onsets.shape or np.any(ends < onsets):
         raise InvalidInputError(f"perturbation_ends: need one end at or after each onset "

@@ -12,6 +12,7 @@ __all__ = [
     "StoreFullError",
     "UnstableStepError",
     "LaunchFileError",
+    "one_line",
 ]
 
 
@@ -57,3 +58,8 @@ class UnstableStepError(InvalidInputError):
 
 class LaunchFileError(InvalidInputError):
     """A launch file uses something our reader does not support or names a missing file."""
+
+
+def one_line(exc: BaseException) -> str:
+    """An exception's text on one line (a library's message may span several)."""
+    return " ".join(str(exc).split())

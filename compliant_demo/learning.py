@@ -23,20 +23,13 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from compliant_demo.alignment import DemoArrays, align_demonstrations
+from compliant_demo.arrays import finite_array, ranges, time_axis
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
 from compliant_demo.estimation import stiffness_from_variability
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.models import model_from_mapping
-from compliant_demo.primitives import (
-    DampingPolicy,
-    FitMethod,
-    Formulation,
-    Skill,
-    _finite_array,
-    _ranges,
-    _time_axis,
-    fit_skill,
-)
+from compliant_demo.phase_basis import FitMethod
+from compliant_demo.primitives import DampingPolicy, Formulation, Skill, fit_skill
 from compliant_demo.store.records import SkillRecord
 
 __all__ = [
@@ -164,8 +157,8 @@ def _advance(times: NDArray[np.float64], values: NDArray[np.float64],
 def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
     label = f"demos[{index}]"
     t, position, stiffness, names, demo_id = _fields(item, label)
-    times = _time_axis(t, f"{label}.t")
-    q = _finite_array(position, f"{label}.position")
+    times = time_axis(t, f"{label}.t")
+    q = finite_array(position, f"{label}.position")
     if q.ndim == 1:
         q = q[:, np.newaxis]
     k = None if stiffness is None else _stiffness_channel(stiffness, f"{label}.stiffness")
@@ -335,7 +328,7 @@ def learn_skill(
         # A sliding-window estimate can stray outside any physical range in a noisy window (even
         # to zero or below); the learned profile is clamped to this range anyway, so clamp the
         # samples first: the log is then defined and no stray sample refuses the fit.
-        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
+        k_range = ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
         normalised = [d if d.stiffness is None else
                       replace(d, stiffness=np.clip(d.stiffness, k_range[:, 0], k_range[:, 1]))
                       for d in normalised]
@@ -348,7 +341,7 @@ def learn_skill(
         if stiffness_range is None:
             raise InvalidInputError("stiffness_range: stiffness from variability needs the "
                                     "target joint's (k_min, k_max), got None")
-        k_range = _ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
+        k_range = ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
 
     time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
     stiffness: NDArray[np.float64] | None = recorded

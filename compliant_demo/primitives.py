@@ -22,11 +22,29 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from pydantic import BaseModel, ConfigDict, Field, model_validator
-from scipy.signal import lfilter, savgol_filter
+from scipy.signal import lfilter
 
 from compliant_demo import __version__
+from compliant_demo.arrays import (
+    as_demo_stack,
+    channel_stack,
+    derivatives,
+    finite_array,
+    per_joint,
+    ranges,
+    time_axis,
+    uniform_step,
+)
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import model_from_mapping
+from compliant_demo.phase_basis import (
+    FitMethod,
+    PhaseBasis,
+    euler_filter,
+    normalise_activations,
+    on_basis,
+    solve_weights,
+)
 
 __all__ = [
     "DMP",
@@ -40,7 +58,6 @@ __all__ = [
 ]
 
 Formulation = Literal["classic", "goal_robust"]
-FitMethod = Literal["lwr", "ridge"]
 
 ALPHA_Z = 25.0
 BETA_Z = ALPHA_Z / 4.0
@@ -50,240 +67,6 @@ ALPHA_X = ALPHA_Z / 3.0
 # Amplitude |g - y0| below this fraction of a joint's range of motion makes the classic scaling
 # x*(g - y0) meaningless; the joint is then fitted and rolled out without amplitude scaling.
 _DEGENERATE_AMPLITUDE = 1e-3
-
-
-def _finite_array(value: ArrayLike, name: str) -> NDArray[np.float64]:
-    try:
-        array = np.asarray(value, dtype=float)
-    except (TypeError, ValueError):
-        raise InvalidInputError(f"{name}: cannot convert {value!r} to a float array") from None
-    if not np.all(np.isfinite(array)):
-        bad = tuple(int(i) for i in np.argwhere(~np.isfinite(array))[0])
-        raise InvalidInputError(f"{name}: non-finite value {float(array[bad])!r} at index {bad}")
-    return array
-
-
-def _time_axis(t: ArrayLike, name: str = "t") -> NDArray[np.float64]:
-    """Validate a strictly increasing time vector with a positive duration, s."""
-    times = _finite_array(t, name)
-    if times.ndim != 1 or times.size < 2:
-        raise InvalidInputError(f"{name}: expected a 1-D array of at least 2 samples, got shape "
-                                f"{times.shape}")
-    steps = np.diff(times)
-    if np.any(steps <= 0):
-        k = int(np.argmax(steps <= 0))
-        raise InvalidInputError(
-            f"{name}: time must be strictly increasing; {name}[{k + 1}] = {times[k + 1]!r} "
-            f"follows {name}[{k}] = {times[k]!r}"
-        )
-    return times
-
-
-def _uniform_step(times: NDArray[np.float64]) -> float | None:
-    """The common step of a uniformly sampled time vector, s, or None if it is not uniform."""
-    steps = np.diff(times)
-    mean_step = (times[-1] - times[0]) / steps.size
-    return float(mean_step) if np.ptp(steps) <= 1e-9 * mean_step else None
-
-
-def _derivatives(
-    times: NDArray[np.float64], demos: NDArray[np.float64], smoothing_window: int | None
-) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Velocity and acceleration of (d, n, j) positions along axis 1, rad/s and rad/s^2.
-
-    Central differences by default; with ``smoothing_window`` a cubic Savitzky-Golay filter
-    (Savitzky and Golay, Analytical Chemistry 36(8), 1964), which keeps the plateaus and steps
-    of a warped time axis out of the acceleration the forcing term is fitted to.
-    """
-    step = _uniform_step(times)
-    if smoothing_window is None:
-        velocity = np.gradient(demos, times if step is None else step, axis=1)
-        return velocity, np.gradient(velocity, times if step is None else step, axis=1)
-    if (isinstance(smoothing_window, bool) or not isinstance(smoothing_window, int | np.integer)
-            or smoothing_window < 5 or smoothing_window % 2 == 0
-            or smoothing_window > times.size):
-        raise InvalidInputError(
-            f"smoothing_window: need an odd sample count from 5 to {times.size}, got "
-            f"{smoothing_window!r}"
-        )
-    if step is None:
-        raise InvalidInputError("smoothing_window: needs uniformly sampled t, got uneven steps")
-    window = int(smoothing_window)
-    velocity = savgol_filter(demos, window, 3, deriv=1, delta=step, axis=1)
-    return velocity, savgol_filter(demos, window, 3, deriv=2, delta=step, axis=1)
-
-
-def _per_joint(value: ArrayLike | None, n_joints: int, name: str) -> NDArray[np.float64] | None:
-    if value is None:
-        return None
-    array = _finite_array(value, name)
-    if array.ndim == 0:
-        array = np.full(n_joints, float(array))
-    if array.shape != (n_joints,):
-        raise InvalidInputError(f"{name}: expected shape ({n_joints},), got {array.shape}")
-    return array
-
-
-def _ranges(
-    value: ArrayLike, n_joints: int, name: str, *, positive: bool = False
-) -> NDArray[np.float64]:
-    """Broadcast a (low, high) pair or a (n_joints, 2) table and check low <= high (and, with
-    ``positive``, low > 0)."""
-    array = _finite_array(value, name)
-    if array.shape == (2,):
-        array = np.tile(array, (n_joints, 1))
-    if array.shape != (n_joints, 2):
-        raise InvalidInputError(f"{name}: expected (low, high) or shape ({n_joints}, 2), got "
-                                f"{array.shape}")
-    if np.any(array[:, 0] > array[:, 1]):
-        j = int(np.argmax(array[:, 0] > array[:, 1]))
-        raise InvalidInputError(
-            f"{name}: low {float(array[j, 0])!r} above high {float(array[j, 1])!r} for joint {j}"
-        )
-    if positive and np.any(array[:, 0] <= 0):
-        j = int(np.argmax(array[:, 0] <= 0))
-        raise InvalidInputError(f"{name}: low {float(array[j, 0])!r} for joint {j} must be "
-                                "positive")
-    return array
-
-
-def _as_demo_stack(value: ArrayLike, n_samples: int, name: str) -> NDArray[np.float64]:
-    """Return (n_demos, n_samples, n_joints) from (n, j) or (d, n, j)."""
-    array = _finite_array(value, name)
-    if array.ndim == 2:
-        array = array[np.newaxis]
-    if array.ndim != 3 or array.shape[1] != n_samples:
-        raise InvalidInputError(
-            f"{name}: expected shape ({n_samples}, n_joints) or (n_demos, {n_samples}, n_joints), "
-            f"got {array.shape}"
-        )
-    return array
-
-
-def _channel_stack(value: ArrayLike, demos: NDArray[np.float64], name: str) -> NDArray:
-    """A per-sample channel as (n_demos, n_samples, n_joints) like ``demos``; one (n, j) profile
-    is shared by all demonstrations."""
-    array = _as_demo_stack(value, demos.shape[1], name)
-    if array.shape[0] == 1 and array.shape[2] == demos.shape[2]:
-        return np.broadcast_to(array, demos.shape)
-    if array.shape != demos.shape:
-        raise InvalidInputError(f"{name}: shape {array.shape} does not match position "
-                                f"{demos.shape}")
-    return array
-
-
-class _PhaseBasis:
-    """Gaussian basis functions in the phase x = exp(-alpha_x * s), s = t / tau in [0, 1].
-
-    Centres are spaced evenly in time (so evenly in s), widths from the spacing of neighbouring
-    centres: h_i = 1 / (c_{i+1} - c_i)^2, so each has fallen to exp(-1) at its neighbour's centre.
-    """
-
-    def __init__(self, n_basis: int, alpha_x: float) -> None:
-        self.alpha_x = alpha_x
-        self.centres = np.exp(-alpha_x * np.linspace(0.0, 1.0, n_basis))
-        spacing = np.abs(np.diff(self.centres))
-        self.widths = 1.0 / np.append(spacing, spacing[-1]) ** 2
-
-    def phase(self, s: NDArray[np.float64]) -> NDArray[np.float64]:
-        return np.exp(-self.alpha_x * s)
-
-    def activations(self, x: NDArray[np.float64]) -> NDArray[np.float64]:
-        """Unnormalised activations psi, (n_samples, n_basis)."""
-        return np.exp(-self.widths * (x[:, np.newaxis] - self.centres) ** 2)
-
-
-def _normalise(psi: NDArray[np.float64]) -> NDArray[np.float64]:
-    # Clamp the sum so a phase far beyond the last centre keeps the last weight instead of 0/0.
-    return psi / np.maximum(psi.sum(axis=1, keepdims=True), 1e-300)
-
-
-# Samples per block when a sum runs over (n_samples x n_basis) activations: the work arrays stay
-# about 1.6 MB at 50 basis functions however long the time base.
-_BLOCK = 4096
-
-
-def _blocks(n_samples: int) -> list[slice]:
-    return [slice(i, min(i + _BLOCK, n_samples)) for i in range(0, n_samples, _BLOCK)]
-
-
-def _on_basis(
-    basis: _PhaseBasis, x: NDArray[np.float64], weights: NDArray[np.float64]
-) -> NDArray[np.float64]:
-    """sum(psi*w)/sum(psi) at the phases ``x``, (n_samples, n_joints), built block by block."""
-    out = np.empty((x.size, weights.shape[0]))
-    for block in _blocks(x.size):
-        out[block] = _normalise(basis.activations(x[block])) @ weights.T
-    return out
-
-
-def _solve_weights(
-    basis: _PhaseBasis,
-    x: NDArray[np.float64],
-    regressor: NDArray[np.float64],
-    n_demos: int,
-    target_sum: NDArray[np.float64],
-    method: FitMethod,
-    regularisation: float,
-) -> NDArray[np.float64]:
-    """Weights (n_joints, n_basis) for target = sum_i w_i * phi_i * regressor.
-
-    Parameters
-    ----------
-    basis : the phase basis; its activations at ``x`` are built block by block
-    x : (n_samples,) phase
-    regressor : (n_samples,) phase-dependent factor shared by all demonstrations
-    n_demos : number of demonstrations summed in ``target_sum``
-    target_sum : (n_samples, n_joints) sum over demonstrations of the target
-
-    Notes
-    -----
-    Because the demonstrations share one time base, the normal equations of the stacked problem
-    reduce to products with the single-demonstration design matrix, weighted by n_demos: the
-    weights fit the demonstrations' mean target.
-    """
-    scale_sq = np.full(target_sum.shape[1], float(n_demos))
-    n_basis = basis.centres.size
-    # Sums over samples, accumulated block by block (the full design matrix is never built).
-    rhs = np.zeros((n_basis, target_sum.shape[1]))
-    gram = np.zeros((n_basis, n_basis))
-    denominator = np.zeros(n_basis)
-    for block in _blocks(x.size):
-        psi = basis.activations(x[block])
-        if method == "lwr":
-            # Locally weighted regression: each weight solves its own 1-D problem with
-            # weights psi_i.
-            weighted = psi * regressor[block, np.newaxis]
-            rhs += weighted.T @ target_sum[block]
-            denominator += weighted.T @ regressor[block]
-        else:
-            design = _normalise(psi) * regressor[block, np.newaxis]
-            gram += design.T @ design
-            rhs += design.T @ target_sum[block]
-    if method == "lwr":
-        return (rhs / (denominator[:, np.newaxis] * scale_sq)).T
-    weights = np.empty((target_sum.shape[1], n_basis))
-    ridge = regularisation * np.trace(gram) / n_basis
-    for j in range(target_sum.shape[1]):
-        weights[j] = np.linalg.solve(scale_sq[j] * gram + ridge * np.eye(n_basis), rhs[:, j])
-    return weights
-
-
-def _euler_filter(h: float, alpha_z: float, beta_z: float) -> tuple[NDArray, NDArray, NDArray]:
-    """Transfer function of one semi-implicit Euler step of the transformation system.
-
-    With e = y - g and K = alpha_z * beta_z, D = alpha_z, h = dt / tau:
-    z[k+1] = z[k] + h * (-K e[k] - D z[k] + u[k]),  e[k+1] = e[k] + h * z[k+1].
-    Returns (b, a, A) with e = lfilter(b, a, u) for zero initial state and A the state matrix
-    of [e, z].
-    """
-    k_gain, d_gain = alpha_z * beta_z, alpha_z
-    state = np.array([[1.0 - h * h * k_gain, h - h * h * d_gain], [-h * k_gain, 1.0 - h * d_gain]])
-    a = np.array([1.0, -np.trace(state), np.linalg.det(state)])
-    # e[k] = C (zI - A)^-1 B u with B = [h^2, h], C = [1, 0]:
-    # numerator = h^2 z + (h * A01 - h^2 * A11), delayed one step.
-    b = np.array([0.0, h * h, h * state[0, 1] - h * h * state[1, 1]])
-    return b, a, state
 
 
 @dataclass(frozen=True)
@@ -357,7 +140,7 @@ class DMP:
         self.alpha_z = float(alpha_z)
         self.beta_z = float(alpha_z / 4.0 if beta_z is None else beta_z)
         self.alpha_x = float(alpha_x)
-        self.basis = _PhaseBasis(self.n_basis, self.alpha_x)
+        self.basis = PhaseBasis(self.n_basis, self.alpha_x)
         self.weights: NDArray[np.float64] | None = None
         self.amplitude: NDArray[np.float64] | None = None
 
@@ -393,12 +176,12 @@ class DMP:
         self, t: ArrayLike, position: ArrayLike, method: str
     ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
         """Validate fit inputs; return times, (d, n, j) demos and the phase."""
-        times = _time_axis(t)
+        times = time_axis(t)
         if times.size < self.n_basis:
             raise InvalidInputError(
                 f"t: {times.size} samples are fewer than n_basis = {self.n_basis}"
             )
-        demos = _as_demo_stack(position, times.size, "position")
+        demos = as_demo_stack(position, times.size, "position")
         if method not in ("lwr", "ridge"):
             raise InvalidInputError(f"method: expected 'lwr' or 'ridge', got {method!r}")
         x = self.basis.phase((times - times[0]) / (times[-1] - times[0]))
@@ -440,7 +223,7 @@ class DMP:
         # Savitzky-Golay filtering included), so the sum of the demonstrations is differentiated
         # once instead of every demonstration.
         summed = demos.sum(axis=0)
-        velocity, acceleration = (d[0] for d in _derivatives(times, summed[None],
+        velocity, acceleration = (d[0] for d in derivatives(times, summed[None],
                                                              smoothing_window))
         inertial = tau * tau * acceleration + d_gain * tau * velocity
         to_goal = goal.sum(axis=0) - summed
@@ -449,7 +232,7 @@ class DMP:
         else:
             target_sum = (inertial / k_gain - to_goal
                           + (goal - start).sum(axis=0) * x[:, np.newaxis])
-        self.weights = _solve_weights(self.basis, x, x, demos.shape[0], target_sum, method,
+        self.weights = solve_weights(self.basis, x, x, demos.shape[0], target_sum, method,
                                       regularisation)
         self.amplitude = amplitude
 
@@ -526,7 +309,7 @@ class DMP:
         position, velocity, acceleration : (n_samples, m) rad, rad/s, rad/s^2
         """
         h = dt / tau
-        b, a, state = _euler_filter(h, self.alpha_z, self.beta_z)
+        b, a, state = euler_filter(h, self.alpha_z, self.beta_z)
         z0 = np.zeros_like(start) if start_velocity is None else tau * start_velocity
         # Initial conditions as the two past outputs of the recurrence with zero past input.
         back = np.linalg.inv(state)
@@ -695,7 +478,7 @@ class Skill(BaseModel):
         Rollout with samples at t = 0, dt, ..., horizon_s
         """
         n_joints = len(self.joints)
-        start_arr = _per_joint(start, n_joints, "start")
+        start_arr = per_joint(start, n_joints, "start")
         start_arr = np.asarray(self.start) if start_arr is None else start_arr
         self._check_limits(start_arr, "start")
         tau = self.duration_s if duration_s is None else float(duration_s)
@@ -706,7 +489,7 @@ class Skill(BaseModel):
             raise InvalidInputError(f"horizon_s: need a positive time span, got {horizon_s!r}")
         if not (isinstance(dt, int | float) and math.isfinite(dt) and 0 < dt <= horizon):
             raise InvalidInputError(f"dt: need 0 < dt <= horizon ({horizon} s), got {dt!r}")
-        k_range = _ranges(self.stiffness_range if stiffness_range is None else stiffness_range,
+        k_range = ranges(self.stiffness_range if stiffness_range is None else stiffness_range,
                           n_joints, "stiffness_range", positive=True)
 
         n_samples = int(round(horizon / dt)) + 1
@@ -714,7 +497,7 @@ class Skill(BaseModel):
         t = np.asarray(np.arange(n_samples) * dt, dtype=np.float64)
         dmp = self.dmp
         x = dmp.basis.phase(t / tau)
-        phi = _normalise(dmp.basis.activations(x))
+        phi = normalise_activations(dmp.basis.activations(x))
         # The forcing is learned over the demonstrated phase only and ends at t = tau: the phase
         # has decayed to exp(-alpha_x) there, but demonstrations that end still moving (a
         # recording stopped while the arm lags the hand) leave weights of order 1e4 on the last
@@ -744,13 +527,13 @@ class Skill(BaseModel):
         n_joints = len(self.joints)
         if goal is None:
             return np.asarray(self.goal, dtype=float)
-        array = _finite_array(goal, "goal")
+        array = finite_array(goal, "goal")
         if array.ndim == 2:
             if array.shape != (n_samples, n_joints):
                 raise InvalidInputError(f"goal: a moving goal needs shape ({n_samples}, "
                                         f"{n_joints}), got {array.shape}")
         else:
-            fixed = _per_joint(array, n_joints, "goal")
+            fixed = per_joint(array, n_joints, "goal")
             assert fixed is not None
             array = fixed
         self._check_limits(array, "goal")
@@ -777,7 +560,7 @@ class Skill(BaseModel):
     ) -> NDArray[np.float64]:
         if self.damping_policy.kind == "learned":
             return np.exp(phi @ np.asarray(self.damping_log_weights).T)
-        inertia = _per_joint(target_inertia, len(self.joints), "target_inertia")
+        inertia = per_joint(target_inertia, len(self.joints), "target_inertia")
         if inertia is None and self.target_inertia is not None:
             inertia = np.asarray(self.target_inertia)
         if inertia is None or np.any(inertia <= 0):
@@ -789,7 +572,7 @@ class Skill(BaseModel):
 
 
 def _log_profile(
-    basis: _PhaseBasis,
+    basis: PhaseBasis,
     x: NDArray[np.float64],
     values: NDArray[np.float64],
     method: FitMethod,
@@ -803,9 +586,9 @@ def _log_profile(
         )
     log_values = np.log(values)
     ones = np.ones(x.size)
-    weights = _solve_weights(basis, x, ones, values.shape[0], log_values.sum(axis=0), method,
+    weights = solve_weights(basis, x, ones, values.shape[0], log_values.sum(axis=0), method,
                              regularisation)
-    return weights, _on_basis(basis, x, weights)
+    return weights, on_basis(basis, x, weights)
 
 
 def _fit_errors(
@@ -827,12 +610,12 @@ def _fit_errors(
     mean = demos.mean(axis=0)
     tau = times[-1] - times[0]
     grid = np.linspace(0.0, tau, n_samples)
-    uniform = _uniform_step(times) is not None
+    uniform = uniform_step(times) is not None
     if not uniform:
         x = dmp.basis.phase(grid / tau)
     start, goal = mean[0], mean[-1]
     assert dmp.weights is not None
-    shape = _on_basis(dmp.basis, x, dmp.weights) * x[:, np.newaxis]
+    shape = on_basis(dmp.basis, x, dmp.weights) * x[:, np.newaxis]
     forcing = dmp._forcing_from_shape(shape, x, (start, goal))
     position = dmp.integrate(forcing, start, goal, grid[1], tau)[0]
     if not uniform:
@@ -912,15 +695,15 @@ def fit_skill(
             raise InvalidInputError(
                 "stiffness_range: required when no stiffness channel is given, got None"
             )
-        k_range = _ranges(stiffness_range, n_joints, "stiffness_range", positive=True)
+        k_range = ranges(stiffness_range, n_joints, "stiffness_range", positive=True)
         log_weights = np.tile(np.log(k_range[:, 1])[:, None], (1, dmp.n_basis))
         stiffness_rmse = None
         extra.setdefault("stiffness_source", "constant")
     else:
-        recorded = _channel_stack(stiffness, demos, "stiffness")
+        recorded = channel_stack(stiffness, demos, "stiffness")
         log_weights, fitted = _log_profile(dmp.basis, x, recorded, method, regularisation)
         default_range = np.stack([recorded.min(axis=(0, 1)), recorded.max(axis=(0, 1))], axis=1)
-        k_range = _ranges(default_range if stiffness_range is None else stiffness_range,
+        k_range = ranges(default_range if stiffness_range is None else stiffness_range,
                           n_joints, "stiffness_range", positive=True)
         residual = np.clip(np.exp(fitted), k_range[:, 0], k_range[:, 1]) - recorded
         stiffness_rmse = np.sqrt((residual**2).mean(axis=(0, 1))).tolist()
@@ -930,11 +713,11 @@ def fit_skill(
         if damping is None:
             raise InvalidInputError("damping: a learned damping policy needs a damping channel, "
                                     "got None")
-        recorded_damping = _channel_stack(damping, demos, "damping")
+        recorded_damping = channel_stack(damping, demos, "damping")
         damping_weights = _log_profile(dmp.basis, x, recorded_damping, method,
                                        regularisation)[0].tolist()
-    inertia = _per_joint(target_inertia, n_joints, "target_inertia")
-    limits = None if position_limits is None else _ranges(position_limits, n_joints,
+    inertia = per_joint(target_inertia, n_joints, "target_inertia")
+    limits = None if position_limits is None else ranges(position_limits, n_joints,
                                                           "position_limits")
     assert dmp.weights is not None and dmp.amplitude is not None
     fit_rmse, spread_rmse = _fit_errors(dmp, times, demos, x)

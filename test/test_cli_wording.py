@@ -12,12 +12,12 @@ import pytest
 import yaml
 from campaign_support import store_with_demos_and_skill
 from cli_support import run_cli
-from compliant_demo.runtime import load_plant
 from store_support import REPO, add_demo
 
 from compliant_demo.cli import _build
 from compliant_demo.estimation import SlidingStiffnessEstimator
 from compliant_demo.exceptions import NotFoundError
+from compliant_demo.plant import load_plant
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import cork_seat_scenario
 

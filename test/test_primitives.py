@@ -438,15 +438,15 @@ def test_bad_step_and_shapes(demo):
 def test_sums_in_blocks_equal_one_full_design_matrix(method, monkeypatch):
     # The regression sums run over blocks of samples; one block holding every sample (the full
     # n_samples x n_basis design matrix) must give the same skill up to rounding.
-    from compliant_demo import primitives
+    from compliant_demo import phase_basis
 
     t = np.linspace(0.0, 1.0, 10_001)
     q = minimum_jerk(t, START, GOAL, 1.0)
     k = bell_stiffness(t, 1.0)
     kwargs = {"joints": JOINTS, "method": method, "target_inertia": [0.05, 0.02]}
     blocked = fit_skill(t, q, k, **kwargs)
-    assert t.size > 2 * primitives._BLOCK
-    monkeypatch.setattr(primitives, "_BLOCK", t.size)
+    assert t.size > 2 * phase_basis.REGRESSION_BLOCK
+    monkeypatch.setattr(phase_basis, "REGRESSION_BLOCK", t.size)
     whole = fit_skill(t, q, k, **kwargs)
     for field in ("weights", "stiffness_log_weights"):
         np.testing.assert_allclose(getattr(blocked, field), getattr(whole, field), rtol=1e-9,

@@ -8,6 +8,7 @@ import ast
 from pathlib import Path
 
 import pytest
+from structure_support import find_cycle
 
 STORE = Path(__file__).resolve().parents[1] / "compliant_demo" / "store"
 MAX_LINES = 800
@@ -39,37 +40,14 @@ def _graph() -> dict[str, set[str]]:
     return {path.stem: _imports(path, modules) for path in STORE.glob("*.py")}
 
 
-def _cycle(graph: dict[str, set[str]]) -> list[str] | None:
-    """One import cycle of ``graph`` (a path that returns to its start), or None."""
-    state: dict[str, int] = {}  # 1: on the current path, 2: finished
-    path: list[str] = []
-
-    def visit(node: str) -> list[str] | None:
-        state[node] = 1
-        path.append(node)
-        for target in sorted(graph.get(node, ())):
-            if state.get(target) == 1:
-                return path[path.index(target) :] + [target]
-            if target not in state and (found := visit(target)):
-                return found
-        path.pop()
-        state[node] = 2
-        return None
-
-    for start in sorted(graph):
-        if start not in state and (found := visit(start)):
-            return found
-    return None
-
-
 def test_store_package_has_no_import_cycle():
     graph = _graph()
-    assert _cycle(graph) is None, " -> ".join(_cycle(graph) or [])
+    assert find_cycle(graph) is None, " -> ".join(find_cycle(graph) or [])
 
 
 def test_cycle_finder_finds_a_cycle():
-    assert _cycle({"a": {"b"}, "b": {"c"}, "c": {"a"}}) == ["a", "b", "c", "a"]
-    assert _cycle({"a": {"b"}, "b": set()}) is None
+    assert find_cycle({"a": {"b"}, "b": {"c"}, "c": {"a"}}) == ["a", "b", "c", "a"]
+    assert find_cycle({"a": {"b"}, "b": set()}) is None
 
 
 @pytest.mark.parametrize("path", sorted(STORE.glob("*.py")), ids=lambda p: p.name)

@@ -17,8 +17,7 @@ from typing import IO
 import numpy as np
 from numpy.lib import format as npy_format
 
-from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.store.io import one_line
+from compliant_demo.exceptions import InvalidInputError, one_line
 
 __all__ = ["NPZ_MEMBERS", "MAX_TEXT_BYTES", "read_npz"]
 

@@ -30,7 +30,7 @@ from rosbags.highlevel import AnyReader, AnyReaderError
 from rosbags.rosbag2 import StoragePlugin, Writer, WriterError
 from rosbags.typesys import Stores, get_typestore
 
-from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.exceptions import InvalidInputError, NotFoundError, one_line
 from compliant_demo.store.core import CHUNK_SAMPLES, DemoStore
 from compliant_demo.store.io import (
     MAX_IMPORT_BYTES,
@@ -42,7 +42,6 @@ from compliant_demo.store.io import (
     check_metadata,
     demonstration_metadata,
     naming_file,
-    one_line,
     parse_json,
     store_import,
 )

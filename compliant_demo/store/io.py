@@ -36,8 +36,9 @@ from typing import IO, Any
 
 import numpy as np
 
-from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.exceptions import InvalidInputError, NotFoundError, one_line
 from compliant_demo.store._codec import CHANNELS, validate_flags
+from compliant_demo.store._npz_reader import read_npz
 from compliant_demo.store.core import CHUNK_SAMPLES, DemoStore
 from compliant_demo.store.records import DEMO_SOURCES, DEMO_STATUSES, Demonstration
 
@@ -54,7 +55,6 @@ __all__ = [
     "check_budget",
     "begin_fields",
     "parse_json",
-    "one_line",
     "store_import",
     "export_csv",
     "import_csv",
@@ -105,11 +105,6 @@ def writing(path: str | os.PathLike[str], mode: str) -> Iterator[IO[Any]]:
         raise InvalidInputError(f"cannot write {str(path)!r}: {exc.strerror}") from None
     with handle:
         yield handle
-
-
-def one_line(exc: BaseException) -> str:
-    """An exception's text on one line (a library's message may span several)."""
-    return " ".join(str(exc).split())
 
 
 def _regular_file(path: str | os.PathLike[str], kind: str) -> Path:
@@ -614,7 +609,6 @@ def import_npz(
     :data:`MAX_IMPORT_BYTES` of arrays, or more than :data:`MAX_JOINTS` joints, is refused.
     """
     source = str(path)
-    from compliant_demo.store._npz_reader import read_npz  # it uses this module's helpers
 
     file = _regular_file(path, "NPZ file")
     with _reading(file, source) as handle:
