@@ -108,7 +108,10 @@ def _dithered_spring(seed, n=4000, rate=1000.0, stiffness=None):
     t = np.arange(n) / rate
     k = np.full(n, 20.0) if stiffness is None else stiffness
     intended = 0.3 * np.sin(2 * np.pi * 0.2 * t)
-    response = 0.002 * np.sin(2 * np.pi * 8 * t + rng.uniform(0, 6))
+    # Three tones, as the robot's dither: one tone would make deflection and acceleration
+    # collinear, and the estimator, which also fits an inertia, would refuse every window.
+    tones = 2 * np.pi * 8 * np.array([0.7, 1.0, 1.4])
+    response = 0.002 / 3 * np.sin(tones * t[:, None] + rng.uniform(0, 6, 3)).sum(axis=1)
     q = intended - response
     dq = np.gradient(q, t)
     tau = k * (intended - q) + 0.2 * (np.gradient(intended, t) - dq)
@@ -117,7 +120,7 @@ def _dithered_spring(seed, n=4000, rate=1000.0, stiffness=None):
     return t, np.column_stack([q_meas, q_meas]), np.column_stack([tau_meas, 2 * tau_meas])
 
 
-SETTINGS = dict(window_s=0.5, noise_variance_ratio=(0.005 / 2e-5) ** 2, band_hz=(6.0, 11.0))
+SETTINGS = dict(window_s=0.5, noise_variance_ratio=(0.005 / 2e-5) ** 2, band_hz=(4.8, 12.8))
 
 
 def test_sliding_equals_batch_for_any_chunking():
@@ -139,7 +142,7 @@ def test_sliding_equals_batch_for_any_chunking():
     assert estimator.samples_seen == len(t)
 
 
-@pytest.mark.parametrize("k", [832, 1234, 3999])
+@pytest.mark.parametrize("k", [916, 1234, 3999])
 def test_series_equals_direct_fit_on_each_window(k):
     t, q, tau = _dithered_spring(5)
     series = estimate_stiffness_series(t, q, tau, **SETTINGS)
@@ -150,6 +153,7 @@ def test_series_equals_direct_fit_on_each_window(k):
             series.torque[window, joint],
             SETTINGS["noise_variance_ratio"],
             deflection_rate=series.deflection_rate[window, joint],
+            deflection_acceleration=series.deflection_acceleration[window, joint],
         )
         assert series.stiffness[k, joint] == pytest.approx(fit.stiffness, rel=1e-9)
         assert series.excitation[k, joint] == pytest.approx(fit.excitation, rel=1e-9)
@@ -158,15 +162,21 @@ def test_series_equals_direct_fit_on_each_window(k):
 def test_series_recovers_constant_hand_stiffness():
     t, q, tau = _dithered_spring(6)
     series = estimate_stiffness_series(t, q, tau, **SETTINGS)
-    # Excited from one window plus the settling time (2 / 6 Hz) on, never before.
-    first = 499 + 333
+    # Excited from one window plus the settling time (2 / 4.8 Hz) on, never before.
+    first = 499 + 417
     assert series.excited[first:].all() and not series.excited[:first].any()
     # Closed form: the torque channel of joint 1 is twice that of joint 0, so 40 and 20 N*m/rad.
-    # Stated bound: 3 % once the band-pass has settled on the slow motion (after 1 s).
-    np.testing.assert_allclose(series.stiffness[1000:, 0], 20.0, rtol=0.03)
-    np.testing.assert_allclose(series.stiffness[1000:, 1], 40.0, rtol=0.03)
+    # Stated bound: 7 % once the band-pass has settled on the slow motion (after 1 s); the
+    # two-regressor fit stays within 3 %, the inertia regressor costs a variance inflation of
+    # 1 / conditioning (about 2.5 with this dither).
+    np.testing.assert_allclose(series.stiffness[1000:, 0], 20.0, rtol=0.07)
+    np.testing.assert_allclose(series.stiffness[1000:, 1], 40.0, rtol=0.07)
     ols = estimate_stiffness_series(t, q, tau, method="ols", **SETTINGS)
-    np.testing.assert_allclose(ols.stiffness[1000:, 0], 20.0, rtol=0.03)
+    np.testing.assert_allclose(ols.stiffness[1000:, 0], 20.0, rtol=0.07)
+    two = estimate_stiffness_series(t, q, tau, model_inertia=False, **SETTINGS)
+    np.testing.assert_allclose(two.stiffness[1000:, 0], 20.0, rtol=0.03)
+    # The rate is nearly orthogonal to the deflection, the acceleration nearly collinear.
+    assert (two.conditioning[1000:] > 0.9).all() and (series.conditioning[1000:] < 0.7).all()
 
 
 def test_unexcited_windows_are_flagged_not_estimated():
@@ -182,7 +192,9 @@ def test_first_window_is_never_excited():
     t, q, tau = _dithered_spring(7, n=800)
     estimator = SlidingStiffnessEstimator(2, rate_hz=1000.0, settle_s=0.0, **SETTINGS)
     stiffness, _, excited = estimator.update(q, tau)
-    assert not excited[:499].any() and excited[499:].all()
+    # Without settling time the band-pass start-up transient leaves a few early windows without
+    # a positive slope; from 0.6 s on every window holds an estimate.
+    assert not excited[:499].any() and excited[600:].all()
     assert np.isnan(stiffness[:499]).all()
     estimator.reset()
     assert estimator.samples_seen == 0
@@ -234,9 +246,11 @@ def test_latency_is_the_mean_delay_of_a_stiffness_step(k_before, k_after):
     q = slow + 2e-3 * np.sin(2 * np.pi * 8 * t) + 1.5e-3 * np.sin(2 * np.pi * 9.3 * t + 1)
     step_at = 3.0
     k = np.where(t < step_at, k_before, k_after)
+    # Two tones: too close for the inertia to be told from the stiffness, and the latency does
+    # not depend on which regressors are fitted, so the two-regressor model is used.
     estimator = SlidingStiffnessEstimator(1, window_s=0.5, rate_hz=rate,
                                           noise_variance_ratio=62500.0, band_hz=(6.0, 11.2),
-                                          min_excitation_rad=2e-4)
+                                          min_excitation_rad=2e-4, model_inertia=False)
     estimate = estimator.update(q[:, None], (k * (slow - q))[:, None])[0][:, 0]
     progress = (estimate - k_before) / (k_after - k_before)
     after = (t >= step_at) & (t < step_at + 1.5)
@@ -392,7 +406,9 @@ def test_link_inertia_term_closed_form():
     w = 2 * np.pi * freq
     q = -0.002 * np.sin(w * t)
     tau_m = (stiffness - inertia * w**2) * 0.002 * np.sin(w * t)
-    settings = dict(window_s=0.5, noise_variance_ratio=1e5, band_hz=(6.0, 11.0))
+    # One tone: deflection and acceleration are collinear, so the inertia is given, not fitted.
+    settings = dict(window_s=0.5, noise_variance_ratio=1e5, band_hz=(6.0, 11.0),
+                    model_inertia=False)
     plain = estimate_stiffness_series(t, q[:, None], tau_m[:, None], **settings)
     fixed = estimate_stiffness_series(
         t, q[:, None], tau_m[:, None], link_inertia=inertia, **settings
