@@ -31,6 +31,7 @@ __all__ = [
     "SlidingStiffnessEstimator",
     "estimate_stiffness_series",
     "stiffness_from_variability",
+    "VARIABILITY_REFERENCE_STD",
 ]
 
 STIFFNESS_LATENCY_FLAG = "stiffness_latency_s"
@@ -769,12 +770,22 @@ def estimate_stiffness_series(
     )
 
 
+VARIABILITY_REFERENCE_STD = 0.02
+"""Default spread, rad, at which :func:`stiffness_from_variability` gives its reference stiffness.
+
+Our own choice: about the spread of a relaxed operator's repeated guiding motions on a bench arm.
+"""
+
+
 def stiffness_from_variability(
     variance: object,
     k_min: float | np.ndarray,
     k_max: float | np.ndarray,
     *,
     n_demos: int,
+    reference_std: float = VARIABILITY_REFERENCE_STD,
+    reference_stiffness: float | np.ndarray | None = None,
+    exponent: float = 1.0,
     variance_floor: float | None = None,
 ) -> np.ndarray:
     """Stiffness schedule from the spread of aligned demonstrations: stiff where they agree.
@@ -782,25 +793,41 @@ def stiffness_from_variability(
     Parameters
     ----------
     variance : (n_samples, n_joints) array, rad^2
-        Per-sample variance across aligned demonstrations (``AlignedSet.variance``).
+        Per-sample sample variance (ddof=1) across aligned demonstrations
+        (``AlignedSet.variance``).
     k_min, k_max : float or (n_joints,) array, N*m/rad
-        Target joint's stiffness range.
+        Target joint's stiffness range; the schedule is clipped to it.
     n_demos : int
         Number of demonstrations the variance came from; at least 2.
+    reference_std : float, rad
+        Spread at which the schedule equals ``reference_stiffness``
+        (default :data:`VARIABILITY_REFERENCE_STD`).
+    reference_stiffness : float or (n_joints,) array, N*m/rad, optional
+        Stiffness at ``reference_std``; default ``k_min`` (a joint whose demonstrations vary by
+        the reference spread is held as softly as the mechanism allows).
+    exponent : float
+        ``p`` of the law below; 1 is the inverse-variance law.
     variance_floor : float, rad^2, optional
-        Lower bound on the variance before inversion (default 1e-6 times the largest variance
-        of each joint), so that a sample where all demonstrations coincide does not dominate.
+        Lower bound on the variance before inversion; default none (a zero variance gives
+        ``k_max`` through the clipping).
 
     Returns
     -------
     (n_samples, n_joints) array, N*m/rad
-        ``k_min + (k_max - k_min) * (p - min p) / (max p - min p)`` with precision
-        ``p = 1 / max(variance, floor)``, per joint; a joint with constant variance gets k_max.
+        ``clip(K_ref * (c * reference_std^2 / variance)^p, k_min, k_max)`` per joint, with
+        ``c = (n - 3) / (n - 1)`` for n > 3 demonstrations and 1 otherwise.
 
     Notes
     -----
-    Stiffness follows the inverse of the variance, scaled linearly so that its extremes over
-    the movement meet the joint's range (Calinon, Sardellitti, Caldwell, IROS 2010).
+    Anchored levels instead of stretching the precision over the whole range: twice the spread
+    gives a quarter of the stiffness (p = 1) wherever it occurs, so a profile learned from
+    other demonstrations of the same task lands at the same level. The law is our own choice,
+    after the inverse-variance weighting of Calinon, Sardellitti and Caldwell (IROS 2010) and
+    the minimum-intervention principle of optimal feedback control (Todorov and Jordan, Nature
+    Neuroscience 5(11), 1226-1235, 2002): an operator corrects deviations, so varies least,
+    where the task needs stiffness. ``c`` makes ``c / s^2`` an unbiased estimate of
+    ``1 / sigma^2`` for normal deviations, since ``(n - 1) s^2 / sigma^2`` is chi-square with
+    n - 1 degrees of freedom and ``E[1 / chi^2_k] = 1 / (k - 2)`` (common practice).
     """
     var = np.asarray(variance, dtype=float)
     if var.ndim == 1:
@@ -825,15 +852,21 @@ def stiffness_from_variability(
         raise InvalidInputError(f"k_min = {k_min!r} and k_max = {k_max!r} must be positive")
     if (low > high).any():
         raise InvalidInputError(f"k_min = {k_min!r} is above k_max = {k_max!r}")
-    if variance_floor is None:
-        floor = 1e-6 * var.max(axis=0)
-        floor = np.where(floor > 0, floor, np.finfo(float).tiny)
-    elif math.isfinite(variance_floor) and variance_floor > 0:
-        floor = np.full(var.shape[1], float(variance_floor))
-    else:
-        raise InvalidInputError(f"variance_floor must be positive, got {variance_floor!r}")
-    precision = 1.0 / np.maximum(var, floor)
-    span = precision.max(axis=0) - precision.min(axis=0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        scaled = np.where(span > 0, (precision - precision.min(axis=0)) / span, 1.0)
-    return low + (high - low) * scaled
+    reference = low if reference_stiffness is None else np.broadcast_to(
+        np.asarray(reference_stiffness, dtype=float), (var.shape[1],)
+    )
+    if not (np.isfinite(reference).all() and (reference > 0).all()):
+        raise InvalidInputError(
+            f"reference_stiffness must be positive and finite, got {reference_stiffness!r}"
+        )
+    for name, value in (("reference_std", reference_std), ("exponent", exponent)):
+        if not (math.isfinite(value) and value > 0):
+            raise InvalidInputError(f"{name} must be positive and finite, got {value!r}")
+    if variance_floor is not None:
+        if not (math.isfinite(variance_floor) and variance_floor > 0):
+            raise InvalidInputError(f"variance_floor must be positive, got {variance_floor!r}")
+        var = np.maximum(var, variance_floor)
+    unbiased = (n_demos - 3) / (n_demos - 1) if n_demos > 3 else 1.0
+    with np.errstate(divide="ignore"):
+        ratio = unbiased * reference_std**2 / var
+    return np.clip(reference * ratio**exponent, low, high)

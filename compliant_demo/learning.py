@@ -270,6 +270,7 @@ def learn_skill(
     target_inertia: ArrayLike | None = None,
     position_limits: ArrayLike | None = None,
     variance_floor: float | None = None,
+    variability_reference: tuple[float, float] | None = None,
     smoothing_window: int | None = None,
     name: str = "skill",
 ) -> Skill:
@@ -303,6 +304,9 @@ def learn_skill(
     n_basis, method, formulation, damping_policy, target_inertia, position_limits :
         as in :func:`compliant_demo.primitives.fit_skill`
     variance_floor : rad^2, passed to ``stiffness_from_variability``
+    variability_reference : (std rad, stiffness N*m/rad), the anchor of
+        ``stiffness_from_variability``: demonstrations that vary by this spread give this
+        stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
     smoothing_window : odd sample count of the Savitzky-Golay derivative filter of
         :func:`~compliant_demo.primitives.fit_skill`. Default: about 10 % of the samples after DTW
         alignment (whose warped time has plateaus and steps), none otherwise
@@ -353,9 +357,12 @@ def learn_skill(
     time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
     stiffness: NDArray[np.float64] | None = recorded
     if source == "variability":
+        anchor = {} if variability_reference is None else {
+            "reference_std": variability_reference[0],
+            "reference_stiffness": variability_reference[1]}
         profile = stiffness_from_variability(variance, k_range[:, 0], k_range[:, 1],
                                              n_demos=len(normalised),
-                                             variance_floor=variance_floor)
+                                             variance_floor=variance_floor, **anchor)
         stiffness = np.broadcast_to(profile, positions.shape)
     if smoothing_window is None and summary.get("dtw_costs") is not None:
         # About 10 % of the samples: the warped mean moves in steps (several demonstration

@@ -319,8 +319,10 @@ def _demo_variation(
     return duration, times, stiffness * scale, phases
 
 
-# Cycles per movement of the deviation's tones: slow against the motion, so that it reads as
-# another way of doing the task rather than as tremor.
+# Cycles per movement of the deviation's tones: slow against the dither (at most 0.4 Hz for
+# the 6 s task). Faster tones (tried: up to 1.3 Hz) make the spread of a few demonstrations a
+# better sample of the variance, but leak into the estimator's band as motion of the hand's
+# set point and cost the estimate several % of accuracy.
 _DEVIATION_CYCLES = np.array([0.6, 1.1, 1.7, 2.3])
 
 
