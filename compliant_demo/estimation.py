@@ -547,14 +547,16 @@ class SlidingStiffnessEstimator:
             ``stiffness_latency_s`` (s, :attr:`latency_s`), ``stiffness_excited_fraction`` (share
             of settled windows, over all joints, with an estimate) and
             ``stiffness_rel_halfwidth_mean`` (mean half-width of the interval at
-            :attr:`confidence` over the estimate, excited windows only; NaN without any).
+            :attr:`confidence` over the estimate, excited windows only; left out without any).
         """
         settled, excited, halfwidth = self._tally
-        return {
+        flags = {
             STIFFNESS_LATENCY_FLAG: self.latency_s,
             "stiffness_excited_fraction": excited / settled if settled else 0.0,
-            "stiffness_rel_halfwidth_mean": halfwidth / excited if excited else math.nan,
         }
+        if excited:
+            flags["stiffness_rel_halfwidth_mean"] = halfwidth / excited
+        return flags
 
     def _filter(self, xy: np.ndarray) -> np.ndarray:
         """Band-pass (n, 2, n_joints) deflection and torque with filter state kept across calls."""
