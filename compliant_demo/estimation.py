@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -436,7 +437,7 @@ class SlidingStiffnessEstimator:
         order: int = 2,
         model_damping: bool = True,
         settle_s: float | None = None,
-        link_inertia: float | np.ndarray | None = None,
+        link_inertia: float | Sequence[float] | np.ndarray | None = None,
         model_inertia: bool = True,
         min_conditioning: float = 0.02,
         confidence: float = 0.95,
