@@ -469,3 +469,117 @@ def test_jittered_stamps_are_accepted_without_warning():
     reference = estimate_stiffness_series(t, q, tau, **SETTINGS)
     # The rate comes from the median step, so the numbers move only by the tiny rate change.
     np.testing.assert_allclose(series.stiffness[1000:], reference.stiffness[1000:], rtol=1e-3)
+
+
+# ----- second-order joint impedance -----
+# Model: torque = K x + D x' + M x'' (stiffness, viscosity, inertia), identified by least squares
+# under a small perturbation, as reviewed by Kearney and Hunter (1990, Critical Reviews in
+# Biomedical Engineering; from memory) and used for the arm by Perreault, Kirsch and Crago
+# (2004, Experimental Brain Research; from memory).
+
+IMPEDANCE = dict(window_s=0.5, noise_variance_ratio=(0.005 / 2e-5) ** 2, band_hz=(4.8, 12.8),
+                 min_excitation_rad=2e-4)
+
+
+def _impedance_response(stiffness, damping, inertia, seed, n=3000, n_trials=1, rate=1000.0,
+                        tones=(0.7, 1.0, 1.4)):
+    """Deflection as a sum of dither tones about 8 Hz and the torque of a mass-spring-damper
+    that produces it (exact derivatives), with seeded sensor noise; columns are trials."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n) / rate
+    w = 2 * np.pi * 8.0 * np.asarray(tones)
+    phase = rng.uniform(0, 2 * np.pi, (len(w), n_trials))
+    angle = w[:, None, None] * t[None, :, None] + phase[:, None, :]
+    x = 1e-3 * np.sin(angle).sum(axis=0)
+    dx = 1e-3 * (w[:, None, None] * np.cos(angle)).sum(axis=0)
+    ddx = -1e-3 * (w[:, None, None] ** 2 * np.sin(angle)).sum(axis=0)
+    tau = stiffness * x + damping * dx + inertia * ddx
+    q = -x + rng.normal(0, 2e-5, x.shape)
+    return t, q, tau + rng.normal(0, 0.005, x.shape)
+
+
+@pytest.mark.parametrize(("stiffness", "damping", "inertia"),
+                         [(20.0, 0.3, 0.02), (5.0, 0.1, 0.05), (150.0, 1.5, 0.0),
+                          (150.0, 1.5, 0.02)])
+def test_mass_spring_damper_is_identified(stiffness, damping, inertia):
+    t, q, tau = _impedance_response(stiffness, damping, inertia, seed=21)
+    series = estimate_stiffness_series(t, q, tau, **IMPEDANCE)
+    steady = slice(1500, None)
+    assert series.excited[steady].all()
+    # Stated tolerances over the windows after the band-pass settled (noise 2e-5 rad and
+    # 0.005 N*m): median K within 3 %, median M within 0.003 kg*m^2, median D within 0.1 N*m*s/rad
+    # (the central differences add (w dt)^2 / 12 to M's and (w dt)^2 / 6 to D's relative error).
+    assert np.median(series.stiffness[steady]) == pytest.approx(stiffness, rel=0.03)
+    assert np.median(series.inertia[steady]) == pytest.approx(inertia, abs=0.003)
+    assert np.median(series.damping[steady]) == pytest.approx(damping, abs=0.1)
+
+
+def test_two_regressor_slope_is_stiffness_less_inertia_times_omega_squared():
+    # Closed form: with the inertia left out the slope is K - M w^2, w between the outer tones
+    # (K = 150, M = 0.02: between 51 and 138 N*m/rad); the second-order fit finds K.
+    t, q, tau = _impedance_response(150.0, 1.5, 0.02, seed=25)
+    plain = estimate_stiffness_series(t, q, tau, model_inertia=False, **IMPEDANCE)
+    full = estimate_stiffness_series(t, q, tau, **IMPEDANCE)
+    w_low, w_high = 2 * np.pi * 8.0 * np.array([0.7, 1.4])
+    slope = np.median(plain.stiffness[1500:])
+    assert 150.0 - 0.02 * w_high**2 < slope < 150.0 - 0.02 * w_low**2
+    assert np.median(full.stiffness[1500:]) == pytest.approx(150.0, rel=0.03)
+
+
+def test_conditioning_refuses_a_single_tone_however_large():
+    # One tone: x'' = -w^2 x exactly, so K and M cannot be told apart; the deflection is 100
+    # times the least excitation, yet no window is excited.
+    t, q, tau = _impedance_response(20.0, 0.3, 0.02, seed=22, tones=(1.0,))
+    series = estimate_stiffness_series(t, q, tau, **IMPEDANCE)
+    assert not series.excited.any()
+    assert np.nanmax(series.conditioning[1000:]) < 1e-3
+    assert np.isnan(series.stiffness).all() and np.isnan(series.inertia).all()
+    # With the inertia given and subtracted instead, the same windows are excited and K is
+    # found (3 %, as above).
+    given = estimate_stiffness_series(
+        t, q, tau, model_inertia=False, link_inertia=0.02, **IMPEDANCE
+    )
+    assert given.excited[1500:].all()
+    np.testing.assert_allclose(given.stiffness[1500:], 20.0, rtol=0.03)
+
+
+def test_interval_contains_the_truth_at_the_stated_rate():
+    # 400 seeded trials (columns) of one mass-spring-damper; the 95 % interval of the last
+    # window must contain K in at least 92 % of them (binomial standard error 1.1 %), and be
+    # informative: median half-width below 15 % of K.
+    stiffness = 20.0
+    t, q, tau = _impedance_response(stiffness, 0.3, 0.02, seed=23, n=1500, n_trials=400)
+    series = estimate_stiffness_series(t, q, tau, **IMPEDANCE)
+    low, high = series.stiffness_low[-1], series.stiffness_high[-1]
+    assert series.excited[-1].all()
+    inside = (low <= stiffness) & (stiffness <= high)
+    assert inside.mean() >= 0.92
+    assert np.median((high - low) / 2) < 0.15 * stiffness
+    estimator = SlidingStiffnessEstimator(1, rate_hz=1000.0, **IMPEDANCE)
+    np.testing.assert_allclose(
+        (high - low) / 2, estimator.interval_quantile * series.stiffness_std[-1], rtol=1e-9
+    )
+
+
+def test_summary_flags_count_excited_windows():
+    t, q, tau = _impedance_response(20.0, 0.3, 0.02, seed=24, n=2000)
+    estimator = SlidingStiffnessEstimator(1, rate_hz=1000.0, **IMPEDANCE)
+    assert "stiffness_rel_halfwidth_mean" not in estimator.summary_flags()
+    _, std, excited = estimator.update(q, tau)
+    flags = estimator.summary_flags()
+    settled = 2000 - (500 + round(2 / 4.8 * 1000)) + 1
+    assert flags["stiffness_excited_fraction"] == pytest.approx(excited.sum() / settled)
+    assert flags["stiffness_latency_s"] == estimator.latency_s
+    assert 0 < flags["stiffness_rel_halfwidth_mean"] < 0.2
+    estimator.reset()
+    assert estimator.summary_flags()["stiffness_excited_fraction"] == 0.0
+
+
+def test_error_impedance_settings():
+    with pytest.raises(InvalidInputError, match="min_conditioning must be between 0 and 1, got 2"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, min_conditioning=2)
+    with pytest.raises(InvalidInputError, match="confidence must be between 0 and 1, got 1.0"):
+        SlidingStiffnessEstimator(1, 0.5, 1000.0, 1.0, confidence=1.0)
+    with pytest.raises(InvalidInputError, match=r"deflection_acceleration is constant \(0.0"):
+        tls_fit([0.0, 1.0, 2.0, 3.0, 4.0], [0.0, 1.0, 2.0, 3.0, 5.0], 1.0,
+                deflection_acceleration=np.zeros(5))
