@@ -41,7 +41,6 @@ from scipy import stats  # noqa: E402
 from compliant_demo.estimation import (  # noqa: E402
     SlidingStiffnessEstimator,
     estimate_stiffness_series,
-    stiffness_from_variability,
 )
 from compliant_demo.learning import learn_skill  # noqa: E402
 from compliant_demo.models import JointParams  # noqa: E402
@@ -52,6 +51,7 @@ from compliant_demo.teaching import (  # noqa: E402
     teaching_series,
     windowed_truth,
 )
+from compliant_demo.variability import stiffness_from_variability  # noqa: E402
 
 LEVELS = (5.0, 15.0, 40.0, 90.0, 150.0)
 HAND_INERTIA = 0.02

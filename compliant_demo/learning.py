@@ -4,7 +4,7 @@
 arrays, keeps the requested joints, warps the demonstrations onto one time axis (banded DTW from
 :mod:`compliant_demo.alignment`, or plain resampling in normalised time), takes the stiffness
 schedule from the recorded stiffness channel or derives it from the spread of the demonstrations
-(:func:`compliant_demo.estimation.stiffness_from_variability`), and fits a
+(:func:`compliant_demo.variability.stiffness_from_variability`), and fits a
 :class:`~compliant_demo.primitives.Skill` whose provenance records all of it. :func:`save_skill`
 and :func:`load_skill` keep skills, versioned, in the demonstration store, and
 :func:`learn_from_store` does it all for the demonstrations a :class:`LearnRequest` selects.
@@ -24,7 +24,6 @@ from numpy.typing import ArrayLike, NDArray
 
 from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
-from compliant_demo.estimation import stiffness_from_variability
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.models import model_from_mapping
 from compliant_demo.primitives import (
@@ -38,6 +37,7 @@ from compliant_demo.primitives import (
     fit_skill,
 )
 from compliant_demo.store.records import SkillRecord
+from compliant_demo.variability import stiffness_from_variability
 
 __all__ = [
     "DEFAULT_MAX_SAMPLES",

@@ -12,10 +12,10 @@ from compliant_demo.estimation import (
     SlidingStiffnessEstimator,
     estimate_stiffness_series,
     ols_fit,
-    stiffness_from_variability,
     tls_fit,
 )
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.variability import stiffness_from_variability
 
 
 def _noisy_line(seed, n=2000, stiffness=40.0, intercept=0.3, x_std=0.01, u_std=0.005, e_std=0.1):
