@@ -5,19 +5,21 @@ estimated by Deming (total least squares) regression with the noise-variance rat
 sensor specification; ordinary least squares stays available for comparison. A sliding-window form
 keeps running sums so that each new sample costs the same whatever the window length, band-passes
 both channels around the dither the robot superimposes during teaching, reports its own
-uncertainty and returns NaN with a flag where the window holds too little excitation. A second
-route derives a stiffness schedule from the spread of aligned demonstrations.
+uncertainty and returns NaN with a flag where the window holds too little excitation. The other
+routes to a stiffness channel live in :mod:`compliant_demo.variability` (spread of aligned
+demonstrations) and :mod:`compliant_demo.model_stiffness` (a mechanism's own state).
 """
 
 from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import signal
+from scipy import signal, stats
 
 from compliant_demo.exceptions import InvalidInputError
 
@@ -30,7 +32,6 @@ __all__ = [
     "design_band_pass",
     "SlidingStiffnessEstimator",
     "estimate_stiffness_series",
-    "stiffness_from_variability",
 ]
 
 STIFFNESS_LATENCY_FLAG = "stiffness_latency_s"
@@ -71,69 +72,108 @@ class StiffnessSeries:
         NaN where ``excited`` is False.
     stiffness_std : (n_samples, n_joints) array, N*m/rad
         NaN where ``excited`` is False.
+    stiffness_low, stiffness_high : (n_samples, n_joints) arrays, N*m/rad
+        Interval at the estimator's ``confidence``; NaN where ``excited`` is False.
     excited : (n_samples, n_joints) bool array
-        Full window, band-pass settled, deflection std at least ``min_excitation_rad`` and a
-        positive slope (a non-positive one is no spring's stiffness).
+        Full window, band-pass settled, ``excitation`` at least ``min_excitation_rad``,
+        ``conditioning`` at least ``min_conditioning`` and a positive slope (a non-positive one
+        is no spring's stiffness).
     excitation : (n_samples, n_joints) array, rad
-        Standard deviation of the (band-passed) deflection over the window.
+        Standard deviation of the (band-passed) deflection over the window, less the part the
+        rate and acceleration regressors explain.
+    conditioning : (n_samples, n_joints) array
+        Share of the deflection's variance not explained by the other regressors (1 without).
+    damping : (n_samples, n_joints) array, N*m*s/rad
+        Coefficient of the rate (0 when not modelled); NaN where ``excited`` is False.
+    inertia : (n_samples, n_joints) array, kg*m^2
+        Coefficient of the acceleration: inertia between the torque sensor and the spring not
+        given as ``link_inertia`` (0 when not modelled); NaN where ``excited`` is False.
     deflection : (n_samples, n_joints) array, rad
         The regressor: minus the (band-passed) joint angle, one sample late.
     torque : (n_samples, n_joints) array, N*m
         The regressand: the (band-passed) hand torque, one sample late (with ``link_inertia``,
         the measured torque plus the link's inertial torque).
     deflection_rate : (n_samples, n_joints) array, rad/s
-        The nuisance regressor (zero when damping is not modelled).
+    deflection_acceleration : (n_samples, n_joints) array, rad/s^2
+        The nuisance regressors (computed whether they are fitted or not).
     """
 
     t: np.ndarray
     stiffness: np.ndarray
     stiffness_std: np.ndarray
+    stiffness_low: np.ndarray
+    stiffness_high: np.ndarray
     excited: np.ndarray
     excitation: np.ndarray
+    conditioning: np.ndarray
+    damping: np.ndarray
+    inertia: np.ndarray
     deflection: np.ndarray
     torque: np.ndarray
     deflection_rate: np.ndarray
+    deflection_acceleration: np.ndarray
 
 
+# Regression channels in the running sums: deflection x, torque y, rate v, acceleration a.
+_X, _Y, _V, _A = range(4)
+_N_CHANNELS = 4
 # Order of the running sums: first moments, then the products named by the pairs.
-_PAIRS = ((0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2))
+_PAIRS = tuple((i, j) for i in range(_N_CHANNELS) for j in range(i, _N_CHANNELS))
 
 
 def _terms(channels: np.ndarray) -> np.ndarray:
-    """Per-sample summands (x, y, v, xx, yy, vv, xy, xv, yv) of channels stacked on axis 1."""
+    """Per-sample summands: the four channels (axis 1), then their products in ``_PAIRS`` order."""
     products = [channels[:, a] * channels[:, b] for a, b in _PAIRS]
     return np.concatenate([channels, np.stack(products, axis=1)], axis=1)
 
 
-def _fit_from_sums(sums, n, ratio, n_effective, method: str, with_rate: bool):
-    """Slope, intercept, slope std and deflection std from running sums; arrays broadcast.
+@dataclass(frozen=True)
+class _WindowFit:
+    """Arrays of one batch of window fits (see :func:`_fit_from_sums`)."""
 
-    ``sums`` holds (x, y, v, xx, yy, vv, xy, xv, yv) over ``n`` samples. With ``with_rate`` the
-    deflection rate v enters as an error-free nuisance regressor and is partialled out of the
-    second moments first (Frisch-Waugh-Lovell; Fuller 1987, section 2.2, from memory). ``ratio``
-    is var(torque noise) / var(deflection noise). The Deming slope std follows Fuller (1987),
-    Theorem 1.3.1 (from memory), with ``n_effective`` independent samples in place of n.
+    slope: Any
+    intercept: Any
+    std: Any
+    excitation: Any
+    conditioning: Any
+    nuisance: dict
+
+
+def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int, ...]):
+    """Window fit from running sums; arrays broadcast.
+
+    ``sums`` holds the first moments of (x, y, v, a) and their products (``_PAIRS``) over ``n``
+    samples. The channels named in ``nuisance`` (rate, acceleration) enter as error-free
+    regressors and are partialled out of the second moments one after the other first
+    (Frisch-Waugh-Lovell; Fuller 1987, section 2.2, from memory); their coefficients follow by
+    back substitution. ``ratio`` is var(torque noise) / var(deflection noise). The Deming slope
+    std follows Fuller (1987), Theorem 1.3.1 (from memory), with ``n_effective`` independent
+    samples in place of n. ``conditioning`` is the share of the deflection's variance that the
+    nuisance regressors do not explain (1 / variance inflation factor; 1 without nuisance) and
+    ``excitation`` the standard deviation of that share, rad.
     """
-    sx, sy, sv, sxx, syy, svv, sxy, sxv, syv = sums
+    first = sums[:_N_CHANNELS]
     with np.errstate(divide="ignore", invalid="ignore"):
         dof = n - 1.0
-        mean_x, mean_y, mean_v = sx / n, sy / n, sv / n
-        m_xx = (sxx - sx * mean_x) / dof
-        m_yy = (syy - sy * mean_y) / dof
-        m_xy = (sxy - sx * mean_y) / dof
-        excitation = np.sqrt(np.maximum(m_xx, 0.0))
-        n_params = 2
-        if with_rate:
-            m_vv = (svv - sv * mean_v) / dof
-            m_xv = (sxv - sx * mean_v) / dof
-            m_yv = (syv - sy * mean_v) / dof
-            m_xx = m_xx - m_xv * m_xv / m_vv
-            m_yy = m_yy - m_yv * m_yv / m_vv
-            m_xy = m_xy - m_xv * m_yv / m_vv
-            n_params = 3
-        m_xx = np.maximum(m_xx, 0.0)
-        m_yy = np.maximum(m_yy, 0.0)
-        df_scale = dof / np.maximum(n - n_params, 1.0)
+        mean = [first[i] / n for i in range(_N_CHANNELS)]
+        moments = {}
+        for k, (a, b) in enumerate(_PAIRS):
+            moments[a, b] = moments[b, a] = (sums[_N_CHANNELS + k] - first[a] * mean[b]) / dof
+        raw_xx = moments[_X, _X]
+        stages = []
+        kept = list(range(_N_CHANNELS))
+        for pivot in nuisance:
+            stages.append((pivot, dict(moments)))
+            kept.remove(pivot)
+            scale = moments[pivot, pivot]
+            moments = dict(moments)
+            for i in kept:
+                for j in kept:
+                    moments[i, j] = moments[i, j] - moments[i, pivot] * moments[pivot, j] / scale
+        m_xx = np.maximum(moments[_X, _X], 0.0)
+        m_yy = np.maximum(moments[_Y, _Y], 0.0)
+        m_xy = moments[_X, _Y]
+        df_scale = dof / np.maximum(n - 2.0 - len(nuisance), 1.0)
         samples = np.maximum(n_effective, 2.0) - 1.0
         if method == "tls":
             spread = m_yy - ratio * m_xx
@@ -150,11 +190,19 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, with_rate: bool):
         else:
             slope = m_xy / m_xx
             variance = np.maximum(m_yy - slope * m_xy, 0.0) * df_scale / (m_xx * samples)
-        std = np.sqrt(np.abs(variance))
-        intercept = mean_y - slope * mean_x
-        if with_rate:
-            intercept = intercept - (m_yv - slope * m_xv) / m_vv * mean_v
-    return slope, intercept, std, excitation
+        coefficients: dict[int, Any] = {}
+        for pivot, stage in reversed(stages):
+            residual = stage[pivot, _Y] - slope * stage[pivot, _X]
+            for later, value in coefficients.items():
+                residual = residual - value * stage[pivot, later]
+            coefficients[pivot] = residual / stage[pivot, pivot]
+        intercept = mean[_Y] - slope * mean[_X]
+        for pivot, value in coefficients.items():
+            intercept = intercept - value * mean[pivot]
+        conditioning = m_xx / raw_xx if nuisance else np.ones_like(raw_xx)
+    return _WindowFit(
+        slope, intercept, np.sqrt(np.abs(variance)), np.sqrt(m_xx), conditioning, coefficients
+    )
 
 
 def _finite_1d(name: str, values: object, size: int | None = None) -> np.ndarray:
@@ -178,22 +226,38 @@ def _check_ratio(noise_variance_ratio: float) -> float:
 
 
 def _fit_arrays(
-    deflection: object, torque: object, deflection_rate: object | None, ratio: float, method: str
+    deflection: object,
+    torque: object,
+    extra: dict[str, object | None],
+    ratio: float,
+    method: str,
 ) -> StiffnessFit:
-    """Validate the samples and fit one straight line (with the rate partialled out if given)."""
+    """Validate the samples and fit one straight line, partialling out the given nuisances."""
     x = _finite_1d("deflection", deflection)
     y = _finite_1d("torque", torque, x.size)
-    with_rate = deflection_rate is not None
-    v = _finite_1d("deflection_rate", deflection_rate, x.size) if with_rate else np.zeros_like(x)
-    if x.size < 3 + with_rate:
-        raise InvalidInputError(f"deflection: need at least {3 + with_rate} samples, got {x.size}")
+    channels = [x, y, np.zeros_like(x), np.zeros_like(x)]
+    nuisance = []
+    for (name, values), index, unit in zip(extra.items(), (_V, _A), ("rad/s", "rad/s^2"),
+                                           strict=True):
+        if values is None:
+            continue
+        channels[index] = _finite_1d(name, values, x.size)
+        if np.ptp(channels[index]) == 0:
+            raise InvalidInputError(
+                f"{name} is constant ({channels[index][0]} {unit}): drop it or vary it"
+            )
+        nuisance.append(index)
+    if x.size < 3 + len(nuisance):
+        raise InvalidInputError(
+            f"deflection: need at least {3 + len(nuisance)} samples, got {x.size}"
+        )
     if np.ptp(x) == 0:
         raise InvalidInputError(f"deflection is constant ({x[0]} rad): the slope is undefined")
-    if with_rate and np.ptp(v) == 0:
-        raise InvalidInputError(f"deflection_rate is constant ({v[0]} rad/s): drop it or vary it")
-    sums = _terms(np.stack([x, y, v], axis=1)[:, :, None]).sum(axis=0)[:, 0]
-    slope, intercept, std, spread = _fit_from_sums(sums, x.size, ratio, x.size, method, with_rate)
-    return StiffnessFit(float(slope), float(intercept), float(std), x.size, float(spread))
+    sums = _terms(np.stack(channels, axis=1)[:, :, None]).sum(axis=0)[:, 0]
+    fit = _fit_from_sums(sums, x.size, ratio, x.size, method, tuple(nuisance))
+    return StiffnessFit(
+        float(fit.slope), float(fit.intercept), float(fit.std), x.size, float(fit.excitation)
+    )
 
 
 def tls_fit(
@@ -201,6 +265,7 @@ def tls_fit(
     torque: object,
     noise_variance_ratio: float,
     deflection_rate: object | None = None,
+    deflection_acceleration: object | None = None,
 ) -> StiffnessFit:
     """Deming (total least squares) fit of torque against deflection.
 
@@ -213,10 +278,16 @@ def tls_fit(
     deflection_rate : (n,) array, rad/s, optional
         Taken as an error-free second regressor (torque = K x + D v + c) and partialled out, so
         that a damping term in quadrature does not leak into the stiffness.
+    deflection_acceleration : (n,) array, rad/s^2, optional
+        Taken as a further error-free regressor (torque = K x + D v + M a + c) and partialled
+        out, so that an inertia between the torque sensor and the spring does not enter the
+        slope as K - M w^2.
 
     Returns
     -------
     StiffnessFit
+        ``excitation`` is the standard deviation of the part of the deflection that the
+        nuisance regressors do not explain.
 
     Notes
     -----
@@ -227,11 +298,15 @@ def tls_fit(
     ``b = (m_yy - r m_xx + sqrt((m_yy - r m_xx)^2 + 4 r m_xy^2)) / (2 m_xy)``.
     """
     ratio = _check_ratio(noise_variance_ratio)
-    return _fit_arrays(deflection, torque, deflection_rate, ratio, "tls")
+    extra = {"deflection_rate": deflection_rate, "deflection_acceleration": deflection_acceleration}
+    return _fit_arrays(deflection, torque, extra, ratio, "tls")
 
 
 def ols_fit(
-    deflection: object, torque: object, deflection_rate: object | None = None
+    deflection: object,
+    torque: object,
+    deflection_rate: object | None = None,
+    deflection_acceleration: object | None = None,
 ) -> StiffnessFit:
     """Ordinary least squares fit of torque against deflection (noise on torque only).
 
@@ -240,7 +315,8 @@ def ols_fit(
     deflection : (n,) array, rad
     torque : (n,) array, N*m
     deflection_rate : (n,) array, rad/s, optional
-        Second regressor, as for :func:`tls_fit`.
+    deflection_acceleration : (n,) array, rad/s^2, optional
+        Further regressors, as for :func:`tls_fit`.
 
     Returns
     -------
@@ -248,7 +324,8 @@ def ols_fit(
         With noise on the deflection too, its stiffness is attenuated by
         var(x) / (var(x) + var(noise)) (Fuller 1987, section 1.1).
     """
-    return _fit_arrays(deflection, torque, deflection_rate, 1.0, "ols")
+    extra = {"deflection_rate": deflection_rate, "deflection_acceleration": deflection_acceleration}
+    return _fit_arrays(deflection, torque, extra, 1.0, "ols")
 
 
 def design_band_pass(band_hz: tuple[float, float], rate_hz: float, order: int = 2) -> np.ndarray:
@@ -278,7 +355,7 @@ def design_band_pass(band_hz: tuple[float, float], rate_hz: float, order: int = 
 
 
 class SlidingStiffnessEstimator:
-    """Online sliding-window stiffness estimate per joint with constant cost per sample.
+    """Online sliding-window joint impedance estimate per joint with constant cost per sample.
 
     Parameters
     ----------
@@ -293,14 +370,15 @@ class SlidingStiffnessEstimator:
         Band-pass around the dither. None regresses the raw channels (a static spring about a
         fixed equilibrium within the window; the intercept absorbs the equilibrium).
     min_excitation_rad : float, rad
-        Windows whose deflection standard deviation is below this are not excited: NaN stiffness.
-        A window whose slope comes out zero or negative is reported as not excited too.
+        Windows in which the deflection not explained by the rate and acceleration regressors
+        has a standard deviation below this are not excited: NaN stiffness. A window whose
+        slope comes out zero or negative is reported as not excited too.
     method : {"tls", "ols"}
     order : int
         Butterworth order of the band-pass edges.
     model_damping : bool
-        Fit torque = K x + D dx/dt + c with the rate partialled out (default), so that the hand's
-        damping, in quadrature at the dither, cannot leak into K through the window ends.
+        Fit the deflection rate as a regressor (default), so that the hand's damping, in
+        quadrature at the dither, cannot leak into K through the window ends.
     settle_s : float, s, optional
         Time after the first sample before any window counts as excited, for the band-pass to
         settle on the slow motion; default two periods of the band's lower edge (0 without band).
@@ -308,26 +386,42 @@ class SlidingStiffnessEstimator:
         Give it when ``torque`` is measured on the robot side of the link (a joint torque sensor
         between drive and link): the link's inertial torque I q'' is then added back to recover
         the hand's torque. None (default): ``torque`` is the hand's torque on the link.
+    model_inertia : bool
+        Fit the deflection acceleration as a regressor too (default): the second-order joint
+        impedance torque = K x + D x' + M x'', whose M takes the inertia on the operator's side
+        of the sensor (hand, forearm, handle) and any error of ``link_inertia``. False gives
+        the two-regressor fit, whose slope is K - M w^2 at the dither.
+    min_conditioning : float
+        Least share of the deflection's variance not explained by the other regressors
+        (1 / variance inflation factor) for a window to count as excited: a dither whose tones
+        are too close makes deflection and acceleration collinear and K unidentifiable.
+    confidence : float
+        Level of the interval returned by :meth:`update_interval` and stored in the series.
 
     Notes
     -----
-    The regressor is the deflection ``-q`` and the regressand the interaction torque ``tau``
-    (torque of the hand on the link), both band-passed by the same causal filter, so a hand
-    modelled as ``tau = K (q_h - q) + D (dq_h - dq)`` with slow ``q_h`` gives slope K. The damping
-    part is in quadrature at the dither frequency; with ``model_damping`` the deflection rate is
-    a second regressor and is partialled out; without it, the part of the damping torque that
-    correlates with x through the window ends leaks into K (about D / window_s).
-    If the torque is measured on the robot side of the link, it is the hand torque minus
-    I q'': at the dither angular frequency w the slope would be K - I w^2 (for the default
-    shoulder, 0.08 kg*m^2 at 8 Hz: about 200 N*m/rad, far more than the hand's stiffness), which
-    is why ``link_inertia`` adds I q'' back from the central second difference of the
-    band-passed angle (amplitude error (w dt)^2 / 12, 2e-4 at 8 Hz and 1 kHz). Bearing friction
-    on that side is viscous and is partialled out with the rate. All channels refer to the
-    sample before the newest, so the estimate lags the input by one sample.
-    With a band-pass the filtered samples are correlated: the reported std uses
+    Model and method: the second-order (stiffness, viscosity, inertia) joint impedance
+    identified by least squares on torque and angle under a small external perturbation, as
+    reviewed by Kearney and Hunter (1990, Critical Reviews in Biomedical Engineering, from
+    memory) and used for the multi-joint arm by Perreault, Kirsch and Crago (2004, Experimental
+    Brain Research, from memory). The regressor is the deflection ``x = -q`` and the
+    regressand the interaction torque ``tau`` (torque of the hand on the link), both
+    band-passed by the same causal filter; a hand modelled as
+    ``tau = K (q_h - q) + D (q_h' - q') - M q''`` with slow ``q_h`` gives
+    ``tau = K x + D x' + M x''`` in the band. Rate and acceleration come from central
+    differences of the band-passed angle (acceleration amplitude error (w dt)^2 / 12, 2e-4 at
+    8 Hz and 1 kHz) and are partialled out before the Deming slope is taken, so the
+    collinearity of x and x'' (x'' = -w^2 x for a single tone) shows directly as the share of
+    x left: the ``conditioning`` test. A dither of several tones spread over the band keeps it
+    away from zero. With a torque sensor on the robot side of the link the measured torque is
+    the hand torque minus I q'': ``link_inertia`` adds I q'' back; whatever it misses ends up
+    in M, not in K. Bearing friction on that side is viscous and is partialled out with the
+    rate. All channels refer to the sample before the newest, so the estimate lags the input
+    by one sample. With a band-pass the filtered samples are correlated: the reported std uses
     ``n_eff = min(n, 2 * (high - low) * window_s)`` independent samples (noise-bandwidth rule,
-    common practice). Running sums are recomputed from the window buffer once per window length
-    so that rounding does not accumulate.
+    common practice) and the interval Student's t with ``n_eff - p`` degrees of freedom (p the
+    number of fitted parameters). Running sums are recomputed from the window buffer once per
+    window length so that rounding does not accumulate.
     """
 
     def __init__(
@@ -342,7 +436,10 @@ class SlidingStiffnessEstimator:
         order: int = 2,
         model_damping: bool = True,
         settle_s: float | None = None,
-        link_inertia: float | np.ndarray | None = None,
+        link_inertia: float | Sequence[float] | np.ndarray | None = None,
+        model_inertia: bool = True,
+        min_conditioning: float = 0.02,
+        confidence: float = 0.95,
     ) -> None:
         if not isinstance(n_joints, int | np.integer) or n_joints < 1:
             raise InvalidInputError(f"n_joints must be a positive integer, got {n_joints!r}")
@@ -359,6 +456,12 @@ class SlidingStiffnessEstimator:
             raise InvalidInputError(
                 f"min_excitation_rad must be non-negative, got {min_excitation_rad!r}"
             )
+        if not (math.isfinite(min_conditioning) and 0 <= min_conditioning <= 1):
+            raise InvalidInputError(
+                f"min_conditioning must be between 0 and 1, got {min_conditioning!r}"
+            )
+        if not (math.isfinite(confidence) and 0 < confidence < 1):
+            raise InvalidInputError(f"confidence must be between 0 and 1, got {confidence!r}")
         ratio = np.broadcast_to(np.asarray(noise_variance_ratio, dtype=float), (n_joints,))
         for value in ratio:
             _check_ratio(value)
@@ -367,9 +470,15 @@ class SlidingStiffnessEstimator:
         self.rate_hz = float(rate_hz)
         self.method = method
         self.min_excitation_rad = float(min_excitation_rad)
+        self.min_conditioning = float(min_conditioning)
+        self.confidence = float(confidence)
         self.noise_variance_ratio = ratio.copy()
         self.band_hz = band_hz
         self.model_damping = bool(model_damping)
+        self.model_inertia = bool(model_inertia)
+        self.nuisance = tuple(
+            index for index, used in ((_V, model_damping), (_A, model_inertia)) if used
+        )
         if link_inertia is None:
             self.link_inertia: np.ndarray | None = None
         else:
@@ -390,16 +499,21 @@ class SlidingStiffnessEstimator:
         else:
             self._sos = design_band_pass(band_hz, rate_hz, order)
             self.n_effective = min(float(window), 2.0 * (band_hz[1] - band_hz[0]) * window_s)
+        n_params = 2 + len(self.nuisance)
+        self.interval_quantile = float(
+            stats.t.ppf(0.5 + 0.5 * confidence, max(self.n_effective - n_params, 1.0))
+        )
         self.reset()
 
     def reset(self) -> None:
-        """Forget all samples and filter state (start of a new demonstration)."""
-        self._buffer = np.zeros((self.window, 3, self.n_joints))
+        """Forget all samples, filter state and summaries (start of a new demonstration)."""
+        self._buffer = np.zeros((self.window, _N_CHANNELS, self.n_joints))
         self._count = 0
         self._since_refresh = 0
-        self._sums = np.zeros((9, self.n_joints))
+        self._sums = np.zeros((_N_CHANNELS + len(_PAIRS), self.n_joints))
         self._history: np.ndarray | None = None
         self._zi: np.ndarray | None = None
+        self._tally = np.zeros(3)  # settled windows, excited windows, sum of relative half-widths
 
     @property
     def samples_seen(self) -> int:
@@ -424,6 +538,26 @@ class SlidingStiffnessEstimator:
             samples += float(delay[0])
         return samples / self.rate_hz
 
+    def summary_flags(self) -> dict[str, float]:
+        """Demonstration flags that summarise the estimate since the last :meth:`reset`.
+
+        Returns
+        -------
+        dict
+            ``stiffness_latency_s`` (s, :attr:`latency_s`), ``stiffness_excited_fraction`` (share
+            of settled windows, over all joints, with an estimate) and
+            ``stiffness_rel_halfwidth_mean`` (mean half-width of the interval at
+            :attr:`confidence` over the estimate, excited windows only; left out without any).
+        """
+        settled, excited, halfwidth = self._tally
+        flags = {
+            STIFFNESS_LATENCY_FLAG: self.latency_s,
+            "stiffness_excited_fraction": excited / settled if settled else 0.0,
+        }
+        if excited:
+            flags["stiffness_rel_halfwidth_mean"] = halfwidth / excited
+        return flags
+
     def _filter(self, xy: np.ndarray) -> np.ndarray:
         """Band-pass (n, 2, n_joints) deflection and torque with filter state kept across calls."""
         if self._sos is None:
@@ -436,11 +570,10 @@ class SlidingStiffnessEstimator:
         return filtered
 
     def _channels(self, filtered: np.ndarray) -> np.ndarray:
-        """Regression channels (x, y, v) per sample, (n, 3, n_joints), one sample late.
+        """Regression channels (x, y, v, a) per sample, (n, 4, n_joints), one sample late.
 
         Each output refers to the sample before the newest one, so the deflection rate and
-        acceleration come from central differences with no phase error of their own: any
-        amplitude error of the rate stays in quadrature and is partialled out with it.
+        acceleration come from central differences with no phase error of their own.
         """
         history = self._history if self._history is not None else np.repeat(filtered[:1], 2, 0)
         padded = np.concatenate([history, filtered])
@@ -448,14 +581,12 @@ class SlidingStiffnessEstimator:
         centre = padded[1:-1]
         x_next, x_prev = padded[2:, 0], padded[:-2, 0]
         rate = 0.5 * (x_next - x_prev) * self.rate_hz
+        accel = (x_next - 2.0 * centre[:, 0] + x_prev) * self.rate_hz**2
         torque = centre[:, 1]
         if self.link_inertia is not None:
             # Hand torque = measured link-side torque + I q'' and q'' = -x'' in the band.
-            accel = (x_next - 2.0 * centre[:, 0] + x_prev) * self.rate_hz**2
             torque = torque - self.link_inertia * accel
-        if not self.model_damping:
-            rate = np.zeros_like(rate)
-        return np.stack([centre[:, 0], torque, rate], axis=1)
+        return np.stack([centre[:, 0], torque, rate, accel], axis=1)
 
     def update(self, position: object, torque: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Add samples and return the window estimate after each of them.
@@ -472,13 +603,13 @@ class SlidingStiffnessEstimator:
         stiffness : (n, n_joints) array, N*m/rad
             NaN where not excited.
         stiffness_std : (n, n_joints) array, N*m/rad
-            NaN where not excited.
+            NaN where not excited; the interval is ``stiffness +- interval_quantile * std``.
         excited : (n, n_joints) bool array
         """
-        stiffness, std, excited, _, _ = self._update(position, torque)
-        return stiffness, std, excited
+        result = self._update(position, torque)
+        return result["stiffness"], result["stiffness_std"], result["excited"]
 
-    def _update(self, position: object, torque: object):
+    def _update(self, position: object, torque: object) -> dict[str, np.ndarray]:
         q = np.atleast_2d(np.asarray(position, dtype=float))
         tau = np.atleast_2d(np.asarray(torque, dtype=float))
         if q.ndim != 2 or q.shape[1] != self.n_joints or tau.shape != q.shape:
@@ -492,8 +623,10 @@ class SlidingStiffnessEstimator:
                 raise InvalidInputError(f"{name}[{row}, {col}] = {values[row, col]} is not finite")
         if q.shape[0] == 0:
             empty = np.empty((0, self.n_joints))
-            channels = np.empty((0, 3, self.n_joints))
-            return empty, empty.copy(), empty.astype(bool), empty.copy(), channels
+            result = {name: empty.copy() for name in _SERIES_FIELDS}
+            result["excited"] = empty.astype(bool)
+            result["channels"] = np.empty((0, _N_CHANNELS, self.n_joints))
+            return result
         channels = self._channels(self._filter(np.stack([-q, tau], axis=1)))
         n_new, window = channels.shape[0], self.window
         slots = (self._count + np.arange(n_new)) % window
@@ -511,28 +644,60 @@ class SlidingStiffnessEstimator:
             self._since_refresh = 0
         else:
             self._sums = running[-1]
-        n_in = np.minimum(self._count - n_new + np.arange(1, n_new + 1), window)[:, None]
-        n_in = n_in.astype(float)
-        slope, _, std, spread = _fit_from_sums(
+        seen = (self._count - n_new + np.arange(1, n_new + 1))[:, None]
+        n_in = np.minimum(seen, window).astype(float)
+        fit = _fit_from_sums(
             np.moveaxis(running, 1, 0),
             n_in,
             self.noise_variance_ratio,
             np.minimum(n_in, self.n_effective),
             self.method,
-            self.model_damping,
+            self.nuisance,
         )
-        seen = (self._count - n_new + np.arange(1, n_new + 1))[:, None]
+        settled = seen >= window + self.settle
         # A spring cannot have a non-positive stiffness: such a slope (a noisy window about a
-        # soft hand) carries no estimate, like a window with too little excitation.
+        # soft hand) carries no estimate, like a window with too little excitation or one in
+        # which the deflection is nearly collinear with the other regressors.
         excited = (
-            (seen >= window + self.settle)
-            & (spread >= self.min_excitation_rad)
-            & np.isfinite(slope)
-            & (slope > 0)
+            settled
+            & (fit.excitation >= self.min_excitation_rad)
+            & (fit.conditioning >= self.min_conditioning)
+            & np.isfinite(fit.slope)
+            & (fit.slope > 0)
         )
-        stiffness = np.where(excited, slope, np.nan)
-        std = np.where(excited, std, np.nan)
-        return stiffness, std, excited, spread, channels
+        stiffness = np.where(excited, fit.slope, np.nan)
+        std = np.where(excited, fit.std, np.nan)
+        halfwidth = self.interval_quantile * std
+        self._tally += np.array([
+            np.count_nonzero(np.broadcast_to(settled, excited.shape)),
+            np.count_nonzero(excited),
+            np.sum(halfwidth[excited] / stiffness[excited]),
+        ], dtype=float)
+        zeros = np.zeros_like(stiffness)
+        return {
+            "stiffness": stiffness,
+            "stiffness_std": std,
+            "stiffness_low": stiffness - halfwidth,
+            "stiffness_high": stiffness + halfwidth,
+            "excited": excited,
+            "excitation": fit.excitation,
+            "conditioning": fit.conditioning,
+            "damping": np.where(excited, fit.nuisance.get(_V, zeros), np.nan),
+            "inertia": np.where(excited, fit.nuisance.get(_A, zeros), np.nan),
+            "channels": channels,
+        }
+
+
+_SERIES_FIELDS = (
+    "stiffness",
+    "stiffness_std",
+    "stiffness_low",
+    "stiffness_high",
+    "excitation",
+    "conditioning",
+    "damping",
+    "inertia",
+)
 
 
 def estimate_stiffness_series(
@@ -551,7 +716,7 @@ def estimate_stiffness_series(
         Keyword arguments of :class:`SlidingStiffnessEstimator` other than ``n_joints`` and
         ``rate_hz``: ``window_s`` and ``noise_variance_ratio`` (required), ``band_hz``,
         ``min_excitation_rad``, ``method``, ``order``, ``model_damping``, ``settle_s``,
-        ``link_inertia``.
+        ``link_inertia``, ``model_inertia``, ``min_conditioning``, ``confidence``.
 
     Returns
     -------
@@ -595,79 +760,13 @@ def estimate_stiffness_series(
         )
         for start in range(0, q.shape[0], estimator.window)
     ]
-    stiffness, std, excited, spread, channels = (
-        np.concatenate(column) for column in zip(*parts, strict=True)
-    )
+    joined = {name: np.concatenate([part[name] for part in parts]) for name in parts[0]}
+    channels = joined.pop("channels")
     return StiffnessSeries(
-        times, stiffness, std, excited, spread, channels[:, 0], channels[:, 1], channels[:, 2]
+        t=times,
+        deflection=channels[:, _X],
+        torque=channels[:, _Y],
+        deflection_rate=channels[:, _V],
+        deflection_acceleration=channels[:, _A],
+        **joined,
     )
-
-
-def stiffness_from_variability(
-    variance: object,
-    k_min: float | np.ndarray,
-    k_max: float | np.ndarray,
-    *,
-    n_demos: int,
-    variance_floor: float | None = None,
-) -> np.ndarray:
-    """Stiffness schedule from the spread of aligned demonstrations: stiff where they agree.
-
-    Parameters
-    ----------
-    variance : (n_samples, n_joints) array, rad^2
-        Per-sample variance across aligned demonstrations (``AlignedSet.variance``).
-    k_min, k_max : float or (n_joints,) array, N*m/rad
-        Target joint's stiffness range.
-    n_demos : int
-        Number of demonstrations the variance came from; at least 2.
-    variance_floor : float, rad^2, optional
-        Lower bound on the variance before inversion (default 1e-6 times the largest variance
-        of each joint), so that a sample where all demonstrations coincide does not dominate.
-
-    Returns
-    -------
-    (n_samples, n_joints) array, N*m/rad
-        ``k_min + (k_max - k_min) * (p - min p) / (max p - min p)`` with precision
-        ``p = 1 / max(variance, floor)``, per joint; a joint with constant variance gets k_max.
-
-    Notes
-    -----
-    Stiffness follows the inverse of the variance, scaled linearly so that its extremes over
-    the movement meet the joint's range (Calinon, Sardellitti, Caldwell, IROS 2010).
-    """
-    var = np.asarray(variance, dtype=float)
-    if var.ndim == 1:
-        var = var[:, None]
-    if var.ndim != 2 or var.shape[0] < 1:
-        raise InvalidInputError(
-            f"variance must be an (n_samples, n_joints) array, got shape {var.shape}"
-        )
-    if not isinstance(n_demos, int | np.integer) or n_demos < 2:
-        raise InvalidInputError(
-            f"n_demos = {n_demos!r}: stiffness from variability needs at least 2 demonstrations"
-        )
-    if not np.isfinite(var).all():
-        row, col = np.argwhere(~np.isfinite(var))[0]
-        raise InvalidInputError(f"variance[{row}, {col}] = {var[row, col]} is not finite")
-    if (var < 0).any():
-        row, col = np.argwhere(var < 0)[0]
-        raise InvalidInputError(f"variance[{row}, {col}] = {var[row, col]} is negative")
-    low = np.broadcast_to(np.asarray(k_min, dtype=float), (var.shape[1],))
-    high = np.broadcast_to(np.asarray(k_max, dtype=float), (var.shape[1],))
-    if not (np.isfinite(low).all() and np.isfinite(high).all() and (low > 0).all()):
-        raise InvalidInputError(f"k_min = {k_min!r} and k_max = {k_max!r} must be positive")
-    if (low > high).any():
-        raise InvalidInputError(f"k_min = {k_min!r} is above k_max = {k_max!r}")
-    if variance_floor is None:
-        floor = 1e-6 * var.max(axis=0)
-        floor = np.where(floor > 0, floor, np.finfo(float).tiny)
-    elif math.isfinite(variance_floor) and variance_floor > 0:
-        floor = np.full(var.shape[1], float(variance_floor))
-    else:
-        raise InvalidInputError(f"variance_floor must be positive, got {variance_floor!r}")
-    precision = 1.0 / np.maximum(var, floor)
-    span = precision.max(axis=0) - precision.min(axis=0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        scaled = np.where(span > 0, (precision - precision.min(axis=0)) / span, 1.0)
-    return low + (high - low) * scaled

@@ -21,7 +21,6 @@ from typing import Any, Literal
 
 import numpy as np
 
-from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
@@ -546,10 +545,11 @@ class ChunkWriter:
             status = "incomplete"
         if demonstration.demonstration_id is not None:
             flags = dict(flags, stored_samples=demonstration.stored_samples)
-            latency = getattr(demonstration.estimator, "latency_s", None)
-            if latency is not None:
-                # Learners and reports advance the stored estimate by this to undo its lag.
-                flags[STIFFNESS_LATENCY_FLAG] = float(latency)
+            summary = getattr(demonstration.estimator, "summary_flags", None)
+            if summary is not None:
+                # Learners and reports advance the stored estimate by its latency to undo its
+                # lag; the excited share and interval width say how far to trust it.
+                flags.update(summary())
             if demonstration.write_error is not None:
                 flags["store_write_failed"] = 1  # the error text is logged and in diagnostics
             try:

@@ -4,7 +4,7 @@
 arrays, keeps the requested joints, warps the demonstrations onto one time axis (banded DTW from
 :mod:`compliant_demo.alignment`, or plain resampling in normalised time), takes the stiffness
 schedule from the recorded stiffness channel or derives it from the spread of the demonstrations
-(:func:`compliant_demo.estimation.stiffness_from_variability`), and fits a
+(:func:`compliant_demo.variability.stiffness_from_variability`), and fits a
 :class:`~compliant_demo.primitives.Skill` whose provenance records all of it. :func:`save_skill`
 and :func:`load_skill` keep skills, versioned, in the demonstration store, and
 :func:`learn_from_store` does it all for the demonstrations a :class:`LearnRequest` selects.
@@ -25,12 +25,12 @@ from numpy.typing import ArrayLike, NDArray
 from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.arrays import finite_array, ranges, time_axis
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
-from compliant_demo.estimation import stiffness_from_variability
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.models import model_from_mapping
 from compliant_demo.phase_basis import FitMethod
 from compliant_demo.primitives import DampingPolicy, Formulation, Skill, fit_skill
 from compliant_demo.store.records import SkillRecord
+from compliant_demo.variability import stiffness_from_variability
 
 __all__ = [
     "DEFAULT_MAX_SAMPLES",
@@ -263,6 +263,7 @@ def learn_skill(
     target_inertia: ArrayLike | None = None,
     position_limits: ArrayLike | None = None,
     variance_floor: float | None = None,
+    variability_reference: tuple[float, float] | None = None,
     smoothing_window: int | None = None,
     name: str = "skill",
 ) -> Skill:
@@ -296,6 +297,9 @@ def learn_skill(
     n_basis, method, formulation, damping_policy, target_inertia, position_limits :
         as in :func:`compliant_demo.primitives.fit_skill`
     variance_floor : rad^2, passed to ``stiffness_from_variability``
+    variability_reference : (std rad, stiffness N*m/rad), the anchor of
+        ``stiffness_from_variability``: demonstrations that vary by this spread give this
+        stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
     smoothing_window : odd sample count of the Savitzky-Golay derivative filter of
         :func:`~compliant_demo.primitives.fit_skill`. Default: about 10 % of the samples after DTW
         alignment (whose warped time has plateaus and steps), none otherwise
@@ -346,9 +350,12 @@ def learn_skill(
     time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
     stiffness: NDArray[np.float64] | None = recorded
     if source == "variability":
+        anchor = {} if variability_reference is None else {
+            "reference_std": variability_reference[0],
+            "reference_stiffness": variability_reference[1]}
         profile = stiffness_from_variability(variance, k_range[:, 0], k_range[:, 1],
                                              n_demos=len(normalised),
-                                             variance_floor=variance_floor)
+                                             variance_floor=variance_floor, **anchor)
         stiffness = np.broadcast_to(profile, positions.shape)
     if smoothing_window is None and summary.get("dtw_costs") is not None:
         # About 10 % of the samples: the warped mean moves in steps (several demonstration

@@ -1,12 +1,15 @@
 """Simulated kinesthetic teaching: an operator's hand guides the joints while the robot dithers.
 
-The operator is modelled per joint as a spring-damper of stiffness K_h(t) and damping D_h pulling
-the link toward the trajectory the operator intends; the robot, in gravity-compensated teaching
-mode, superimposes a small seeded dither torque. The joint torque channel reports the interaction
-torque between hand and link, with sensor noise, so that band-passing both channels around the
-dither exposes the hand's stiffness, which is known here as ground truth. Scenarios are pydantic
-records; one seed fixes a demonstration, including its natural variation from the nominal task,
-and :class:`TeachingStream` hands the same samples out in chunks for the teacher node.
+The operator is modelled per joint as a hand and forearm of inertia M_h(t) held by a
+spring-damper of stiffness K_h(t) and damping D_h(t) toward the trajectory the operator intends;
+inertia and damping rise with the stiffness (co-contraction). The robot, in gravity-compensated
+teaching mode, superimposes a small seeded dither torque. The joint torque channel reports the
+interaction torque between hand and link, with sensor noise, so that band-passing both channels
+around the dither exposes the hand's impedance, which is known here as ground truth. Between
+demonstrations the intended trajectory varies least where the operator is stiff (the
+minimum-intervention idea of optimal feedback control). Scenarios are pydantic records; one seed
+fixes a demonstration, including its natural variation from the nominal task, and
+:class:`TeachingStream` hands the same samples out in chunks for the teacher node.
 """
 
 from __future__ import annotations
@@ -88,7 +91,24 @@ class TeachingScenario(BaseModel):
         description="Task waypoints; the first at fraction 0, the last at 1, increasing.",
     )
     hand_damping: tuple[float, ...] = Field(
-        (0.3, 0.2), description="Hand damping per joint, N*m*s/rad."
+        (0.3, 0.2), description="Hand damping per joint at zero stiffness, N*m*s/rad."
+    )
+    # Invented values (no measurement behind them), of plausible size for a hand and forearm
+    # on a bench arm's handle: what matters is that the inertia is not negligible against
+    # K / w^2 at the dither and that both rise with the stiffness.
+    hand_damping_per_stiffness: float = Field(
+        0.01, ge=0, allow_inf_nan=False,
+        description="Rise of the hand damping with the hand stiffness, s (invented value).",
+    )
+    hand_inertia: tuple[float, ...] = Field(
+        (0.012, 0.006),
+        description="Hand and forearm inertia about each joint at zero stiffness, kg*m^2 "
+        "(invented values).",
+    )
+    hand_inertia_per_stiffness: float = Field(
+        2e-4, ge=0, allow_inf_nan=False,
+        description="Rise of the hand inertia with the hand stiffness, kg*m^2 per N*m/rad "
+        "(invented value).",
     )
     torque_sensor: Literal["hand", "joint"] = Field(
         "hand",
@@ -114,7 +134,14 @@ class TeachingScenario(BaseModel):
         0.06, ge=0, lt=0.5, description="Relative std of duration and segment timing between demos."
     )
     amplitude_variation: float = Field(
-        0.02, ge=0, allow_inf_nan=False, description="Std of waypoint offsets between demos, rad."
+        0.02, ge=0, allow_inf_nan=False,
+        description="Std of the intended trajectory between demos where the hand stiffness "
+        "equals variation_reference_stiffness, rad.",
+    )
+    variation_reference_stiffness: float = Field(
+        6.0, gt=0, allow_inf_nan=False,
+        description="Hand stiffness at which the trajectory varies by amplitude_variation; the "
+        "variance scales with its inverse, N*m/rad.",
     )
     stiffness_variation: float = Field(
         0.1, ge=0, lt=0.5, description="Relative std of the hand stiffness between demos."
@@ -126,10 +153,10 @@ class TeachingScenario(BaseModel):
         names = [joint.name for joint in self.joints]
         if len(set(names)) != n_joints:
             raise ValueError(f"joint names must be distinct, got {names}")
-        if len(self.hand_damping) != n_joints or min(self.hand_damping) < 0:
-            raise ValueError(
-                f"hand_damping = {list(self.hand_damping)} needs {n_joints} non-negative values"
-            )
+        for name in ("hand_damping", "hand_inertia"):
+            values = list(getattr(self, name))
+            if len(values) != n_joints or min(values) < 0:
+                raise ValueError(f"{name} = {values} needs {n_joints} non-negative values")
         fractions = [w.time_fraction for w in self.waypoints]
         if (
             fractions[0] != 0
@@ -168,14 +195,14 @@ class TeachingScenario(BaseModel):
     def estimator_settings(self) -> dict[str, object]:
         """Keyword arguments for the sliding-window estimator that suit this scenario.
 
-        A band of 0.75 to 1.4 times the dither frequency, a window of four dither periods, the
+        A band of 0.6 to 1.6 times the dither frequency, a window of four dither periods, the
         sensor noise-variance ratio and a minimum excitation of ten times the angle noise; with
         a joint-side torque sensor also the link inertias.
         """
         f = self.dither_frequency_hz
         settings: dict[str, object] = {
             "window_s": 4.0 / f,
-            "band_hz": (0.75 * f, 1.4 * f),
+            "band_hz": (0.6 * f, 1.6 * f),
             "noise_variance_ratio": self.noise_variance_ratio,
             "min_excitation_rad": max(10 * self.position_noise_std, 1e-5),
         }
@@ -205,7 +232,8 @@ class TeachingRecord:
         Measured torque (with noise): the hand's torque on the link, or with a joint-side sensor
         the hand's torque less the link's inertial torque I q''.
     hand_stiffness_truth : (n_samples, n_joints) array, N*m/rad
-    hand_damping : (n_joints,) array, N*m*s/rad
+    hand_damping : (n_samples, n_joints) array, N*m*s/rad
+    hand_inertia_truth : (n_samples, n_joints) array, kg*m^2
     intended_position : (n_samples, n_joints) array, rad
         The trajectory the operator's hand pulls toward.
     intended_velocity : (n_samples, n_joints) array, rad/s
@@ -221,6 +249,7 @@ class TeachingRecord:
     torque: np.ndarray
     hand_stiffness_truth: np.ndarray
     hand_damping: np.ndarray
+    hand_inertia_truth: np.ndarray
     intended_position: np.ndarray
     intended_velocity: np.ndarray
     dither_torque: np.ndarray
@@ -278,17 +307,50 @@ def _through_waypoints(
 def _demo_variation(
     scenario: TeachingScenario, rng: np.random.Generator
 ) -> tuple[float, np.ndarray, np.ndarray, np.ndarray]:
-    """Draw one demonstration's duration, waypoint times, positions and stiffness."""
+    """Draw one demonstration's duration, waypoint times and stiffness, and deviation phases."""
     fractions = np.array([w.time_fraction for w in scenario.waypoints])
-    positions = np.array([w.position for w in scenario.waypoints])
     stiffness = np.array([w.hand_stiffness for w in scenario.waypoints])
     spread = scenario.timing_variation
     duration = scenario.duration_s * float(np.clip(1 + spread * rng.normal(), 0.5, 1.5))
     widths = np.diff(fractions) * np.clip(1 + spread * rng.normal(size=fractions.size - 1), 0.3, 3)
     times = duration * np.concatenate([[0.0], np.cumsum(widths) / widths.sum()])
-    positions = positions + scenario.amplitude_variation * rng.normal(size=positions.shape)
     scale = np.clip(1 + scenario.stiffness_variation * rng.normal(size=stiffness.shape), 0.3, 3)
-    return duration, times, positions, stiffness * scale
+    phases = rng.uniform(0, 2 * math.pi, size=(_DEVIATION_CYCLES.size, len(scenario.joints)))
+    return duration, times, stiffness * scale, phases
+
+
+# Cycles per movement of the deviation's tones: slow against the dither (at most 0.4 Hz for
+# the 6 s task). Faster tones (tried: up to 1.3 Hz) make the spread of a few demonstrations a
+# better sample of the variance, but leak into the estimator's band as motion of the hand's
+# set point and cost the estimate several % of accuracy.
+_DEVIATION_CYCLES = np.array([0.6, 1.1, 1.7, 2.3])
+
+
+def _deviation(
+    scenario: TeachingScenario,
+    t: np.ndarray,
+    duration: float,
+    phases: np.ndarray,
+    stiffness: tuple[np.ndarray, np.ndarray],
+) -> tuple[np.ndarray, np.ndarray]:
+    """This demonstration's deviation from the nominal trajectory and its rate, (n, n_joints).
+
+    ``z(t) = sqrt(2 / m) sum_i cos(2 pi c_i t / duration + phi_i)`` with seeded phases has unit
+    variance at every t over demonstrations; it is scaled by
+    ``amplitude_variation * sqrt(K_ref / K_h(t))``, so the variance between demonstrations is
+    inversely proportional to the hand stiffness: the minimum-intervention idea of optimal
+    feedback control (Todorov and Jordan, Nature Neuroscience 5(11), 1226-1235, 2002), with
+    this particular law our own choice.
+    """
+    k, k_rate = stiffness
+    omega = 2 * math.pi * _DEVIATION_CYCLES / duration
+    angle = omega[:, None, None] * t[None, :, None] + phases[:, None, :]
+    norm = math.sqrt(2.0 / _DEVIATION_CYCLES.size)
+    z = norm * np.cos(angle).sum(axis=0)
+    z_rate = -norm * (omega[:, None, None] * np.sin(angle)).sum(axis=0)
+    size = scenario.amplitude_variation * np.sqrt(scenario.variation_reference_stiffness / k)
+    size_rate = -0.5 * size * k_rate / k
+    return size * z, size_rate * z + size * z_rate
 
 
 def _dither(scenario: TeachingScenario, rng: np.random.Generator, times: np.ndarray) -> np.ndarray:
@@ -296,7 +358,7 @@ def _dither(scenario: TeachingScenario, rng: np.random.Generator, times: np.ndar
 
     Returns an array of shape ``times.shape + (n_joints,)`` whose peak is at most the amplitude.
     """
-    frequencies = scenario.dither_frequency_hz * np.array([0.9, 1.0, 1.15])
+    frequencies = scenario.dither_frequency_hz * np.array([0.7, 1.0, 1.4])
     phases = rng.uniform(0, 2 * math.pi, size=(3, len(scenario.joints)))
     angle = 2 * math.pi * times[..., None, None] * frequencies[:, None] + phases
     return scenario.dither_amplitude / 3.0 * np.sin(angle).sum(axis=-2)
@@ -304,22 +366,22 @@ def _dither(scenario: TeachingScenario, rng: np.random.Generator, times: np.ndar
 
 @numba.njit(cache=True, nogil=True)
 def _accel(j, index, q, dq, inputs, params):  # pragma: no cover - compiled
-    intended, intended_velocity, hand_k, dither = inputs
-    inertia, bearing, coulomb, smoothing, lower, upper, stop_k, stop_d, hand_d = params
-    hand = hand_k[index, j] * (intended[index, j] - q) + hand_d[j] * (
+    intended, intended_velocity, hand_k, hand_d, hand_m, dither = inputs
+    inertia, bearing, coulomb, smoothing, lower, upper, stop_k, stop_d = params
+    hand = hand_k[index, j] * (intended[index, j] - q) + hand_d[index, j] * (
         intended_velocity[index, j] - dq
     )
     over = max(q - upper[j], 0.0) + min(q - lower[j], 0.0)
     stop = -stop_k[j] * over - (stop_d[j] * dq if over != 0.0 else 0.0)
     friction = bearing[j] * dq + coulomb[j] * math.tanh(dq / smoothing[j])
-    return (hand + dither[index, j] - friction + stop) / inertia[j]
+    # The hand's mass moves with the handle: link and hand accelerate together.
+    return (hand + dither[index, j] - friction + stop) / (inertia[j] + hand_m[index, j])
 
 
 @numba.njit(cache=True, nogil=True)
 def _integrate(inputs, params, dt, steps, n_samples):  # pragma: no cover - compiled
     """Classical RK4 per joint on inputs sampled every dt/2; states at every sample."""
-    intended, intended_velocity, hand_k, _ = inputs
-    hand_d = params[8]
+    intended, intended_velocity, hand_k, hand_d, hand_m, _ = inputs
     n_joints = intended.shape[1]
     true_q = np.empty((n_samples, n_joints))
     true_dq = np.empty((n_samples, n_joints))
@@ -332,10 +394,13 @@ def _integrate(inputs, params, dt, steps, n_samples):  # pragma: no cover - comp
         for k in range(n_samples):
             true_q[k, j] = q
             true_dq[k, j] = dq
-            true_tau[k, j] = hand_k[index, j] * (intended[index, j] - q) + hand_d[j] * (
-                intended_velocity[index, j] - dq
-            )
             true_acc[k, j] = _accel(j, index, q, dq, inputs, params)
+            # The torque on the link is what the spring-damper pulls less what moves the hand.
+            true_tau[k, j] = (
+                hand_k[index, j] * (intended[index, j] - q)
+                + hand_d[index, j] * (intended_velocity[index, j] - dq)
+                - hand_m[index, j] * true_acc[k, j]
+            )
             if k == n_samples - 1:
                 break
             for _ in range(steps):
@@ -370,24 +435,35 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
     Notes
     -----
     Per joint, with the robot's gravity compensation cancelling the link's weight:
-    ``I q'' = tau_h + tau_d - b q' - f_c tanh(q'/v_s) + tau_stop`` and
-    ``tau_h = K_h(t) (q_h - q) + D_h (q_h' - q')``, integrated by the classical fourth-order
-    Runge-Kutta method with ``scenario.substeps`` steps per sample, so that the sampled angle and
-    velocity are consistent to O(dt^4) (a first-order scheme would shift the damping torque by
-    half a step against the angle). ``q_h`` and ``K_h`` follow minimum-jerk segments between
-    waypoints. The reported torque is ``tau_h`` at the sample plus noise.
+    ``(I + M_h) q'' = tau_s + tau_d - b q' - f_c tanh(q'/v_s) + tau_stop`` with the hand's
+    spring-damper ``tau_s = K_h(t) (q_h - q) + D_h(t) (q_h' - q')``, ``D_h = D_0 + c_D K_h`` and
+    ``M_h = M_0 + c_M K_h`` (invented values, quasi-static: the rate of change of M_h is not
+    modelled), integrated by the classical fourth-order Runge-Kutta method with
+    ``scenario.substeps`` steps per sample, so that the sampled angle and velocity are
+    consistent to O(dt^4) (a first-order scheme would shift the damping torque by half a step
+    against the angle). ``K_h`` and the nominal ``q_h`` follow minimum-jerk segments between
+    waypoints; ``q_h`` carries this demonstration's deviation (see ``amplitude_variation``).
+    The reported torque is the hand's torque on the link, ``tau_s - M_h q''``, plus noise.
     """
     if not isinstance(seed, int | np.integer) or seed < 0:
         raise InvalidInputError(f"seed must be a non-negative integer, got {seed!r}")
     rng = np.random.default_rng(int(seed))
-    duration, times, positions, stiffness = _demo_variation(scenario, rng)
+    duration, times, stiffness, phases = _demo_variation(scenario, rng)
     n_samples = int(round(duration * scenario.rate_hz)) + 1
     steps = scenario.substeps
     dt = 1.0 / (scenario.rate_hz * steps)
     # Inputs on a grid of half integration steps: Runge-Kutta evaluates at t, t + dt/2, t + dt.
     fine_t = np.arange(2 * steps * (n_samples - 1) + 1) * (dt / 2)
+    positions = np.array([w.position for w in scenario.waypoints])
     intended, intended_velocity = _through_waypoints(fine_t, times, positions)
-    hand_k, _ = _through_waypoints(fine_t, times, stiffness)
+    hand_k, hand_k_rate = _through_waypoints(fine_t, times, stiffness)
+    deviation, deviation_rate = _deviation(
+        scenario, fine_t, duration, phases, (hand_k, hand_k_rate)
+    )
+    intended = intended + deviation
+    intended_velocity = intended_velocity + deviation_rate
+    hand_d = np.asarray(scenario.hand_damping) + scenario.hand_damping_per_stiffness * hand_k
+    hand_m = np.asarray(scenario.hand_inertia) + scenario.hand_inertia_per_stiffness * hand_k
     dither = _dither(scenario, rng, fine_t)
     joints = scenario.joints
     params = tuple(
@@ -402,8 +478,8 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
             "limit_stiffness",
             "limit_damping",
         )
-    ) + (np.array(scenario.hand_damping, dtype=float),)
-    inputs = (intended, intended_velocity, hand_k, dither)
+    )
+    inputs = (intended, intended_velocity, hand_k, hand_d, hand_m, dither)
     true_q, true_dq, true_tau, true_acc = _integrate(inputs, params, dt, steps, n_samples)
     if scenario.torque_sensor == "joint":
         # A sensor between drive and link sees the hand torque less what accelerates the link.
@@ -416,7 +492,8 @@ def simulate_teaching(scenario: TeachingScenario, seed: int) -> TeachingRecord:
         velocity=true_dq + scenario.velocity_noise_std * rng.normal(size=shape),
         torque=true_tau + scenario.torque_noise_std * rng.normal(size=shape),
         hand_stiffness_truth=hand_k[samples].copy(),
-        hand_damping=params[-1],
+        hand_damping=hand_d[samples].copy(),
+        hand_inertia_truth=hand_m[samples].copy(),
         intended_position=intended[samples].copy(),
         intended_velocity=intended_velocity[samples].copy(),
         dither_torque=dither[samples].copy(),

@@ -363,3 +363,4 @@ def test_estimated_stiffness_is_stored_with_the_estimators_latency(tmp_path) -> 
         demo = store.load_demonstration(info.id)
     assert demo.stiffness is not None and demo.stiffness.shape == (300, 2)
     assert info.flags["stiffness_latency_s"] == make_estimator(2).latency_s
+    assert 0.0 <= info.flags["stiffness_excited_fraction"] <= 1.0

@@ -364,11 +364,13 @@ def test_primitive_follows_the_aligned_mean_of_teaching_demonstrations(seed, ali
     # fit_rmse is exactly this comparison: the skill's default rollout against the aligned mean.
     np.testing.assert_allclose(skill.provenance.fit_rmse, error, rtol=1e-6)
     # Stated bounds: 0.015 rad RMSE (about 2.5 % of the range of motion) and no offset beyond
-    # 8 mrad. Before the demonstrations were averaged instead of rescaled one by one by
+    # 10 mrad (below). Before the demonstrations were averaged instead of rescaled one by one by
     # (g_d - y0_d) / amplitude: 0.017-0.018 rad on the shoulder, an offset of 0.011-0.014 rad;
     # with DTW and the former 3 % derivative window, 0.028 rad on the elbow for seed 11.
     assert np.all(error < 0.015), error
-    assert np.all(np.abs(residual.mean(axis=0)) < 0.008), residual.mean(axis=0)
+    # 10 mrad since the simulated teacher's variation became smooth and largest where it is
+    # soft (seed 11 with DTW: 9.0 mrad on the elbow).
+    assert np.all(np.abs(residual.mean(axis=0)) < 0.010), residual.mean(axis=0)
     assert skill.provenance.demo_spread_rmse is not None
     assert np.all(np.asarray(skill.provenance.demo_spread_rmse) > 0.005)
 
@@ -448,3 +450,27 @@ def test_bad_stiffness_latency_flag(value):
     demo = {"t": t, "position": q, "stiffness": k, "stiffness_latency_s": value}
     with pytest.raises(InvalidInputError, match=r"demos\[0\]\.stiffness_latency_s"):
         learn_skill([demo], joints=JOINTS, alignment="none", target_inertia=[1, 1])
+
+
+@pytest.mark.parametrize("seed", [101, 303])
+def test_variability_profile_is_stiff_where_the_simulated_teacher_is(seed):
+    # The simulated teacher varies between demonstrations with a variance inversely proportional
+    # to its stiffness (minimum-intervention idea: Todorov and Jordan, Nature Neuroscience 5(11),
+    # 2002; the law is our own choice): 6 / 4 N*m/rad in the approach and retreat, 40 / 30 in the
+    # press. From 8 demonstrations the sample variance has 7 degrees of freedom (its 90 % range
+    # spans a factor of 6, as wide as the teacher's own range), so the stated bound is modest:
+    # the learned profile's median in the press exceeds its medians in the approach and in the
+    # retreat by at least 1.3 on both joints.
+    from compliant_demo.teaching import cork_seat_scenario, teaching_series
+
+    scenario = cork_seat_scenario()
+    demos = [(r.t - r.t[0], r.position) for r in teaching_series(scenario, 8, seed)]
+    skill = learn_skill(demos, joints=list(scenario.joint_names), alignment="resample",
+                        stiffness_source="variability", stiffness_range=(2.0, 200.0),
+                        variability_reference=(0.02, 6.0), target_inertia=[0.08, 0.03])
+    k = skill.rollout(dt=0.002).stiffness
+    n = len(k)
+    press = np.median(k[int(0.5 * n):int(0.6 * n)], axis=0)
+    approach = np.median(k[int(0.05 * n):int(0.3 * n)], axis=0)
+    retreat = np.median(k[int(0.8 * n):int(0.95 * n)], axis=0)
+    assert np.all(press > 1.3 * approach) and np.all(press > 1.3 * retreat)

@@ -141,6 +141,18 @@ class RecorderNode(Node):
                 self, "estimator_min_excitation_rad", 1e-3,
                 "Least angle excitation in a window for an estimate, rad.",
                 low=0.0, high=1.0),
+            "estimator_torque_sensor": d(
+                self, "estimator_torque_sensor", "hand",
+                "Where the torque is measured: hand (operator side) or joint (drive side)."),
+            "estimator_link_inertia": d(
+                self, "estimator_link_inertia", [],
+                "Link inertia to subtract per joint, joint-side sensor only, 0-100 kg*m^2."),
+            "estimator_model_inertia": d(self, "estimator_model_inertia", True,
+                                         "Identify an inertia with stiffness and damping."),
+            "estimator_min_conditioning": d(
+                self, "estimator_min_conditioning", 0.02,
+                "Least share of deflection not explained by rate and acceleration.",
+                low=0.0, high=1.0),
             "auto_start": d(self, "auto_start", False, "Start and stop on motion."),
             "auto_start_speed": d(self, "auto_start_speed", 0.05,
                                   "Speed that starts a demonstration, rad/s.",
@@ -276,12 +288,25 @@ def _estimator_factory(p: dict):
         noise_variance_ratio=p["estimator_noise_variance_ratio"],
         band_hz=band if band[1] > band[0] else None,
         min_excitation_rad=p["estimator_min_excitation_rad"],
+        link_inertia=list(p["estimator_link_inertia"]) or None,
+        model_inertia=p["estimator_model_inertia"],
+        min_conditioning=p["estimator_min_conditioning"],
     )
 
 
 def _check_parameters(values: dict) -> str | None:
     if not values["skill"]:
         return "skill must not be empty"
+    sensor, inertia = values["estimator_torque_sensor"], list(values["estimator_link_inertia"])
+    if sensor not in ("hand", "joint"):
+        return f"estimator_torque_sensor must be hand or joint, got {sensor!r}"
+    if inertia and (sensor != "joint" or len(inertia) != len(values["joints"])
+                    or not all(isinstance(v, float | int) and 0.0 <= v <= 100.0
+                               for v in inertia)):
+        return (f"estimator_link_inertia = {inertia}: one value per joint, 0 to 100 kg*m^2, "
+                "with estimator_torque_sensor joint")
+    if sensor == "joint" and not (inertia or values["estimator_model_inertia"]):
+        return "estimator_torque_sensor joint needs estimator_link_inertia or model_inertia"
     return text_problem(values, ("skill", "operator", "tags")) or text_problem(
         values, ("notes",), _MAX_NOTES_CHARS
     )

@@ -1,0 +1,56 @@
+"""Tests of the model-based stiffness channel (antagonistic springs) against closed forms."""
+
+import numpy as np
+import pytest
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.model_stiffness import model_stiffness
+from compliant_demo.models import AntagonisticParams, IdealImpedanceParams
+from compliant_demo.sim.mechanisms import antagonistic_motor_angles, antagonistic_torque
+
+SPRINGS = (
+    AntagonisticParams(k1=10.0, k2=100.0, pretension_offset=0.05),
+    AntagonisticParams(k1=5.0, k2=40.0),
+)
+
+
+def test_both_springs_taut_closed_form():
+    # Migliore, Brown and DeWeerth (ICRA 2005): K = 2 k1 + 2 k2 (theta1 - theta2 + 2 d0) while
+    # both springs are taut, independent of the link angle.
+    q = np.array([[0.1, -0.2], [0.12, -0.18]])
+    motors = np.array([[[0.3, -0.1], [0.0, -0.4]], [[0.35, -0.05], [0.05, -0.45]]])
+    k = model_stiffness(SPRINGS, q, motors)
+    expected_0 = 2 * 10.0 + 2 * 100.0 * (motors[:, 0, 0] - motors[:, 0, 1] + 0.1)
+    expected_1 = 2 * 5.0 + 2 * 40.0 * (motors[:, 1, 0] - motors[:, 1, 1])
+    np.testing.assert_allclose(k, np.column_stack([expected_0, expected_1]), rtol=1e-12)
+
+
+def test_round_trip_with_the_commanded_stiffness_and_the_torque_slope():
+    # The motor angles the mechanism sets for a commanded (equilibrium, stiffness) give back
+    # that stiffness at the equilibrium, and it is minus the slope of the spring torque
+    # (central difference, step 1e-6 rad; the torque is quadratic, so the difference is exact
+    # up to rounding).
+    params = SPRINGS[0]
+    theta1, theta2, _, _ = antagonistic_motor_angles(params, 0.2, np.array([40.0, 120.0]))
+    k = model_stiffness([params], np.full((2, 1), 0.2), np.stack([theta1, theta2], -1)[:, None])
+    np.testing.assert_allclose(k[:, 0], [40.0, 120.0], rtol=1e-9)
+    h = 1e-6
+    slope = (antagonistic_torque(params, 0.2 + h, theta1, theta2)
+             - antagonistic_torque(params, 0.2 - h, theta1, theta2)) / (2 * h)
+    np.testing.assert_allclose(k[:, 0], -slope, rtol=1e-6)
+
+
+def test_slack_spring_adds_nothing():
+    # theta1 - q + d0 < 0: spring 1 is slack, only spring 2 (elongation 0.3) contributes
+    # k1 + 2 k2 phi = 5 + 80 * 0.3 = 29.
+    k = model_stiffness([SPRINGS[1]], [0.2], [[0.1, -0.1]])
+    np.testing.assert_allclose(k, [[29.0]])
+
+
+def test_bad_input():
+    with pytest.raises(InvalidInputError, match="one antagonistic mechanism per joint, got"):
+        model_stiffness([IdealImpedanceParams()], [0.0], [[0.0, 0.0]])
+    with pytest.raises(InvalidInputError, match=r"motor_position \(n, 2, 2\) expected"):
+        model_stiffness(SPRINGS, np.zeros((3, 2)), np.zeros((3, 2)))
+    with pytest.raises(InvalidInputError, match=r"motor_position\[0, 1, 0\] = nan is not finite"):
+        model_stiffness(SPRINGS, np.zeros((1, 2)), np.array([[[0.0, 0.0], [np.nan, 0.0]]]))
