@@ -193,11 +193,13 @@ def test_core_warnings_are_one_line_without_source_paths(tmp_path, capsys):
     ("edit", "pattern"),
     [
         (("# flags: {}", "# flags: " + "[" * 50_000 + "]" * 50_000),
-         r"'bad\.csv': metadata nested too deeply"),
+         r"bad\.csv, line \d+, metadata 'flags': JSON nested too deeply"),
         (("# nominal_rate_hz: 1000.0", "# nominal_rate_hz: " + "9" * 5000),
-         r"'bad\.csv': unreadable metadata \(Exceeds the limit \(4300 digits\)"),
-        (("# flags: {}", "# flags: [1]"), r"'bad\.csv': unreadable metadata \(cannot convert"),
-        (("# tags: []", '# tags: {"a": 1}'), r"bad\.csv: tags must be a sequence of strings"),
+         r"bad\.csv, line \d+, metadata 'nominal_rate_hz': not valid JSON \(Exceeds the limit"),
+        (("# flags: {}", "# flags: [1]"),
+         r"bad\.csv, line \d+: metadata 'flags' must be an object of counters, got \[1\]"),
+        (("# tags: []", '# tags: {"a": 1}'),
+         r"bad\.csv, line \d+: metadata 'tags' must be a list of strings"),
     ],
 )
 def test_hostile_csv_metadata_is_one_line_naming_the_file(demos, tmp_path, capsys, monkeypatch,

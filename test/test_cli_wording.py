@@ -70,7 +70,7 @@ def test_readme_and_help_give_the_estimators_true_latency():
         band_hz=(params["estimator_band_low_hz"], params["estimator_band_high_hz"]),
     )  # fmt: skip
     shown = f"{estimator.latency_s:.2f} s"
-    assert shown == "0.34 s"
+    assert shown == "0.31 s"  # half the 0.5 s window plus the 4.8-12.8 Hz band-pass delay
     assert _flowing(README).count(f"({shown} with the defaults") == 2
     assert "by about the estimator's window" not in README
     assert f"{shown} with its defaults" in _help_text("report")

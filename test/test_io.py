@@ -438,7 +438,6 @@ def _page_limited(store):
 @pytest.mark.parametrize("file_format", ["csv", "npz"])
 @pytest.mark.parametrize("failure", ["store_full", "interrupt_while_reading", "reason_refused"])
 def test_failed_import_at_any_point_leaves_nothing(tmp_path, monkeypatch, file_format, failure):
-    from compliant_demo.store import _npz_reader
     from compliant_demo.store import io as store_io
 
     exported = _exported(tmp_path, file_format, n=CHUNK_SAMPLES * 2 + 5)
@@ -450,7 +449,7 @@ def test_failed_import_at_any_point_leaves_nothing(tmp_path, monkeypatch, file_f
             expected = StoreFullError
         elif failure == "interrupt_while_reading":
             calls = []
-            module = _npz_reader if file_format == "npz" else store_io
+            module = store_io  # io calls read_npz by its own name
             name = "read_npz" if file_format == "npz" else "_parse_rows"
             real = getattr(module, name)
 

@@ -179,8 +179,8 @@ def test_a_running_replay_refuses_changes_to_limits_and_files(
         nodes.close()
     with DemoStore(store, read_only=True) as db:
         (result,) = db.find_replay_results()
-    assert result.parameters["max_stiffness_rate"] == 5000.0 and result.parameters["seed"] == 7
-    assert result.parameters["goal"] == [0.3, 0.5]
+    assert result.parameters.max_stiffness_rate == 5000.0 and result.parameters.seed == 7
+    assert result.parameters.goal == [0.3, 0.5]
 
 
 @pytest.mark.ros

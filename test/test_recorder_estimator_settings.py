@@ -12,6 +12,9 @@ from compliant_demo.nodes.recorder import _check_parameters, _estimator_factory
 
 BASE = {
     "skill": "cork_seat",
+    "operator": "operator_a",
+    "tags": [],
+    "notes": "",
     "joints": ["shoulder", "elbow"],
     "stiffness_channel": "estimate",
     "nominal_rate_hz": 1000.0,

@@ -40,7 +40,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "Write report.html (self-contained: figures embedded, no external resources) and "
             "one PNG per figure into --out: the demonstrations with their aligned mean and "
             "spread, the stiffness estimate (N*m/rad) against the teacher's ground truth (drawn "
-            "earlier by the latency the recorder stored with it: 0.34 s with its defaults), the "
+            "earlier by the latency the recorder stored with it: 0.31 s with its defaults), the "
             "learned stiffness and damping ratio with flagged stretches, replays per "
             "perturbation kind against the unperturbed replay (rad), the campaign's metric "
             "distributions and a table of limit violations, with the safety cautions."
