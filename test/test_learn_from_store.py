@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import warnings
 from pathlib import Path
 
 import pytest
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.learning import LearnRequest, learn_from_store
+from compliant_demo.learning import LearnRequest, learn_from_store, load_skill
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import cork_seat_scenario, teaching_series
 
@@ -102,3 +103,41 @@ def test_learn_request_refuses_bad_fields(kwargs: dict, match: str) -> None:
         LearnRequest(**arguments)
 
 
+
+
+def test_learning_from_copies_warns_and_the_report_names_what_it_used(scenario, tmp_path):
+    # The same seed recorded twice gives identical samples (a repeated run); a third
+    # demonstration comes from another operator. The learner warns about the copies, returns
+    # the skill it fitted (no reload needed) and its report names every operator and id.
+    path = tmp_path / "store.sqlite"
+    _store_with_demos(path, scenario, 1)
+    _store_with_demos(path, scenario, 1)
+    with DemoStore(path) as store:
+        (record,) = teaching_series(scenario, 1, seed=9)
+        other = store.add_demonstration(skill="cork_seat", joints=JOINTS, operator="operator_c",
+                                        t=record.t, position=record.position,
+                                        velocity=record.velocity, torque=record.torque,
+                                        stiffness=record.hand_stiffness_truth)
+        request = LearnRequest(skill="cork_seat", joints=tuple(JOINTS), min_demonstrations=3,
+                               options={"n_basis": 15, "alignment": "resample"})
+        with pytest.warns(UserWarning, match=r"demonstrations .+, .+ hold identical samples"):
+            outcome = learn_from_store(store, request)
+        stored = load_skill(store, "cork_seat")
+    (copies,) = outcome.duplicates
+    assert len(copies) == 2 and other not in copies
+    assert set(outcome.demonstration_ids) == set(copies) | {other}
+    assert "operators: 'operator_b', 'operator_c'" in outcome.report
+    assert all(demo_id in outcome.report for demo_id in outcome.demonstration_ids)
+    assert outcome.stored.skill.model_dump() == stored.skill.model_dump()
+    assert outcome.stored.record.id == stored.record.id
+
+
+def test_distinct_demonstrations_learn_without_a_warning(scenario, tmp_path):
+    path = tmp_path / "store.sqlite"
+    _store_with_demos(path, scenario, 2)
+    request = LearnRequest(skill="cork_seat", joints=tuple(JOINTS),
+                           options={"n_basis": 15, "alignment": "resample"})
+    with DemoStore(path) as store, warnings.catch_warnings():
+        warnings.simplefilter("error")
+        outcome = learn_from_store(store, request)
+    assert outcome.duplicates == ()
