@@ -7,6 +7,12 @@ held constant over a step (zero-order hold, as a digital controller applies them
 integrals are integrated by the same method as the state, so the energy balance closes to the
 method's accuracy; :class:`Simulator` steps one command at a time for a real-time replay node,
 :func:`simulate` runs whole command arrays and records at a decimation.
+
+Without a chain each joint is an independent pendulum (inertia, gravity load ``m*g*l*sin``).
+With a :class:`compliant_demo.models.ChainParams` the links are one coupled serial arm: the
+joint torques (mechanism, friction, end stops, perturbations) go through the compiled forward
+dynamics of :mod:`compliant_demo.sim.rigid_body` (mass matrix, Coriolis and centrifugal terms,
+gravity), and each joint's ``inertia`` serves only the step-size check and the damping policy.
 """
 
 from __future__ import annotations
@@ -18,10 +24,11 @@ from collections.abc import Sequence
 import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.models import JointParams
+from compliant_demo.models import ChainParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.sim.mechanisms import MechanismLike, make_mechanism
 from compliant_demo.sim.results import EnergyTraces, SimResult, StepState
+from compliant_demo.sim.rigid_body import ChainKernel
 from compliant_demo.sim.schedule import compile_schedules
 from compliant_demo.sim.stability import METHODS, check_step_stability
 
@@ -132,6 +139,36 @@ def _chunk_commands(arr: np.ndarray | None, k0: int, k1: int) -> np.ndarray | No
     return part[:, :, None] if part.ndim == 2 else part.transpose(0, 2, 1)
 
 
+def _chain_kernel(chain: ChainParams, joints: Sequence[JointParams]) -> ChainKernel:
+    """The compiled chain model, after checking it moves exactly these joints."""
+    names = tuple(j.name for j in joints)
+    if chain.joint_names != names:
+        raise InvalidInputError(
+            f"chain: joints {list(chain.joint_names)} differ from the simulated joints "
+            f"{list(names)} (same names in the same order)"
+        )
+    loaded = [j.name for j in joints if j.gravity_mass * j.com_distance > 0]
+    if loaded:
+        raise InvalidInputError(
+            f"joints {loaded}: gravity_mass and com_distance must be 0 with a chain (its links "
+            "carry the gravity load)"
+        )
+    return ChainKernel(chain)
+
+
+def _apparent(joints: Sequence[JointParams], kernel: ChainKernel) -> list[JointParams]:
+    """Joints with the smallest apparent inertia ``1 / (M^-1)_jj`` over their range (64 seeded
+    configurations and the zero one): the stiffest a step of the coupled arm can meet."""
+    rng = np.random.default_rng(0)
+    lower = np.array([[j.lower_limit] for j in joints])
+    upper = np.array([[j.upper_limit] for j in joints])
+    q = lower + (upper - lower) * rng.random((len(joints), 64))
+    q = np.concatenate([np.zeros((len(joints), 1)), q], axis=1)
+    apparent = 1.0 / np.linalg.inv(kernel.mass_matrix(q)).diagonal(axis1=1, axis2=2).max(axis=0)
+    return [j.model_copy(update={"inertia": float(a)}) for j, a in zip(joints, apparent,
+                                                                        strict=True)]
+
+
 class Simulator:
     """A batch of scenarios of the same joints and mechanism, advanced one step at a time.
 
@@ -149,10 +186,17 @@ class Simulator:
     check_stability : refuse a step above the largest stable one (UnstableStepError)
     horizon_steps : steps the run will last, if known; a perturbation that would start at or
         after it is reported with a warning (it can never act)
+    chain : the coupled rigid-body model of the joints (same names, same order), or None for
+        independent joints; the joints then carry no gravity load of their own
 
     Notes
     -----
     Actuator states start at the targets of the first command, so a run starts in steady state.
+    With a chain, an impulse on a joint changes every free joint's velocity by
+    ``M(q)^-1 * impulse`` (held joints locked), and a hold stops its joint alone; the energy
+    channels ``kinetic`` and ``gravity_potential`` are split per joint as
+    ``1/2 * dq_j * (M dq)_j`` and the potential of the link each joint moves, so only their sum
+    over joints balances the work done (energy flows between joints through the coupling).
     """
 
     def __init__(
@@ -168,10 +212,12 @@ class Simulator:
         seed: int | None = None,
         check_stability: bool = True,
         horizon_steps: int | None = None,
+        chain: ChainParams | None = None,
     ) -> None:
         joints = list(joints)
         if not joints or not all(isinstance(j, JointParams) for j in joints):
             raise InvalidInputError("joints: expected a non-empty sequence of JointParams")
+        self._chain = None if chain is None else _chain_kernel(chain, joints)
         if method not in METHODS:
             raise InvalidInputError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
         if not isinstance(n_scenarios, int) or n_scenarios < 1:
@@ -206,7 +252,8 @@ class Simulator:
             )
         if check_stability:
             wall_k, wall_b = self._perturb.wall_stiffness()
-            check_step_stability(joints, mechanism, self.dt, method, wall_k, wall_b)
+            stability_joints = joints if self._chain is None else _apparent(joints, self._chain)
+            check_step_stability(stability_joints, mechanism, self.dt, method, wall_k, wall_b)
         # sensor noise of the sample at step k comes from its own stream (seed, k), so a run
         # stepped one command at a time measures exactly what a whole-array run does
         self._noise_seed = (
@@ -296,7 +343,7 @@ class Simulator:
         self._spring_potential0 = self._kernel.potential(self._y[0], act, targets)
         self._stop_potential0 = self._stop_potential(self._y[0])
         self._initial_total = (
-            0.5 * self._inertia * self._y[1] ** 2
+            self._kinetic(self._y[0], self._y[1])
             + self._spring_potential0
             + self._gravity_potential(self._y[0])
             + self._stop_potential0
@@ -316,7 +363,14 @@ class Simulator:
             row *= neg_mgl
             out[i] += row
 
+    def _kinetic(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
+        if self._chain is not None:
+            return self._chain.kinetic_split(q, dq)
+        return 0.5 * self._inertia * dq * dq
+
     def _gravity_potential(self, q: np.ndarray) -> np.ndarray:
+        if self._chain is not None:
+            return self._chain.gravity_potential(q)
         potential = np.zeros_like(q)
         for i, neg_mgl, offset in self._gravity_joints:
             potential[i] = -neg_mgl * (1.0 - np.cos(q[i] - offset))
@@ -378,9 +432,12 @@ class Simulator:
         accel = f[1]
         np.add(spring, passive, out=accel)
         accel += external
-        if self._gravity_joints:
-            self._add_gravity(q, accel)
-        accel *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
+        if self._chain is not None:
+            self._chain.forward(q, dq, accel, self._free, accel)
+        else:
+            if self._gravity_joints:
+                self._add_gravity(q, accel)
+            accel *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
         np.copyto(f[0], dq)
         self._kernel.actuator_rates(act, targets, f[2:n_dyn])
         np.multiply(torques, dq, out=f[n_dyn:])
@@ -437,7 +494,9 @@ class Simulator:
         walls_changed = False
         for event in self._events.get(step, ()):
             name = event[1]
-            if name == "impulse":
+            if name == "impulse" and self._chain is not None:
+                self._chain_impulse(*event[2:])
+            elif name == "impulse":
                 _, _, j, s, impulse = event
                 if self._free[j, s]:
                     before = y[1, j, s]
@@ -445,8 +504,10 @@ class Simulator:
                     self._jumps[j, s] += 0.5 * self._inertia[j, 0] * (y[1, j, s] ** 2 - before**2)
             elif name == "hold_on":
                 _, _, j, s = event
-                self._jumps[j, s] -= 0.5 * self._inertia[j, 0] * y[1, j, s] ** 2
+                before = self._kinetic(y[0, :, s : s + 1], y[1, :, s : s + 1]).sum()
                 y[1, j, s] = 0.0
+                after = self._kinetic(y[0, :, s : s + 1], y[1, :, s : s + 1]).sum()
+                self._jumps[j, s] += after - before
                 self._free[j, s] = 0.0
             elif name == "hold_off":
                 self._free[event[2], event[3]] = 1.0
@@ -475,6 +536,20 @@ class Simulator:
             else:
                 self._walls = None
 
+    def _chain_impulse(self, j: int, s: int, impulse: float) -> None:
+        """Velocity jump M^-1 * impulse on the free joints of scenario s (none if j is held)."""
+        if not self._free[j, s]:
+            return
+        assert self._chain is not None
+        q, dq = self._y[0, :, s : s + 1], self._y[1, :, s : s + 1]
+        free = self._free[:, s] != 0
+        mass = self._chain.mass_matrix(q)[0][np.ix_(free, free)]
+        kick = np.zeros(int(free.sum()))
+        kick[int(free[:j].sum())] = impulse
+        before = self._kinetic(q, dq).sum()
+        dq[free, 0] += np.linalg.solve(mass, kick)
+        self._jumps[j, s] += self._kinetic(q, dq).sum() - before
+
     # ----------------------------------------------------------------- observation
     def _observe(
         self, targets: np.ndarray, ext: np.ndarray | None, clamped: np.ndarray
@@ -488,7 +563,10 @@ class Simulator:
         tau_external = torques[_EXTERNAL]
         if held.any():  # a hold's reaction cancels every other torque on the still link
             net = torques.sum(axis=0)
-            self._add_gravity(q, net)
+            if self._chain is not None:
+                net -= self._chain.inverse(q, dq, self._stages[0][1])
+            else:
+                self._add_gravity(q, net)
             tau_external = tau_external - np.where(held, net, 0.0)
         tau_mech = torques[_SPRING] + self._mech_damping if self._has_damping else torques[_SPRING]
         tau_measured = tau_mech
@@ -520,7 +598,7 @@ class Simulator:
             "commands_clamped": np.broadcast_to(clamped, shape),
             "held": held,
             "in_contact": contact,
-            "kinetic": 0.5 * self._inertia * dq * dq,
+            "kinetic": self._kinetic(q, dq),
             "spring_potential": spring_potential,
             "gravity_potential": self._gravity_potential(q),
             "end_stop_potential": stop_potential,
@@ -706,6 +784,7 @@ def simulate(
     decimation: int = 1,
     seed: int | None = None,
     check_stability: bool = True,
+    chain: ChainParams | None = None,
 ) -> SimResult:
     """Simulate a batch of perturbed scenarios under zero-order-held commands.
 
@@ -724,6 +803,7 @@ def simulate(
     decimation : record every ``decimation`` steps (n_rec = n_steps // decimation + 1)
     seed : seeds sensor noise and unseeded random torques
     check_stability : raise UnstableStepError when ``dt`` is above the largest stable step
+    chain : coupled rigid-body model of the joints, or None (see :class:`Simulator`)
 
     Returns
     -------
@@ -742,5 +822,6 @@ def simulate(
         joints, mechanism, n_scenarios=n_scen, dt=dt, method=method, q0=q0, dq0=dq0,
         schedules=schedules, seed=seed, check_stability=check_stability,
         horizon_steps=np.shape(equilibrium)[0] if np.ndim(equilibrium) >= 1 else None,
+        chain=chain,
     )
     return sim.run(equilibrium, stiffness, damping, decimation=decimation)
