@@ -28,7 +28,7 @@ from compliant_demo.models import ChainParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.sim.mechanisms import MechanismLike, make_mechanism
 from compliant_demo.sim.results import EnergyTraces, SimResult, StepState
-from compliant_demo.sim.rigid_body import ChainKernel
+from compliant_demo.sim.rigid_body import apparent_inertia, chain_kernel
 from compliant_demo.sim.schedule import compile_schedules
 from compliant_demo.sim.stability import METHODS, check_step_stability
 
@@ -139,36 +139,6 @@ def _chunk_commands(arr: np.ndarray | None, k0: int, k1: int) -> np.ndarray | No
     return part[:, :, None] if part.ndim == 2 else part.transpose(0, 2, 1)
 
 
-def _chain_kernel(chain: ChainParams, joints: Sequence[JointParams]) -> ChainKernel:
-    """The compiled chain model, after checking it moves exactly these joints."""
-    names = tuple(j.name for j in joints)
-    if chain.joint_names != names:
-        raise InvalidInputError(
-            f"chain: joints {list(chain.joint_names)} differ from the simulated joints "
-            f"{list(names)} (same names in the same order)"
-        )
-    loaded = [j.name for j in joints if j.gravity_mass * j.com_distance > 0]
-    if loaded:
-        raise InvalidInputError(
-            f"joints {loaded}: gravity_mass and com_distance must be 0 with a chain (its links "
-            "carry the gravity load)"
-        )
-    return ChainKernel(chain)
-
-
-def _apparent(joints: Sequence[JointParams], kernel: ChainKernel) -> list[JointParams]:
-    """Joints with the smallest apparent inertia ``1 / (M^-1)_jj`` over their range (64 seeded
-    configurations and the zero one): the stiffest a step of the coupled arm can meet."""
-    rng = np.random.default_rng(0)
-    lower = np.array([[j.lower_limit] for j in joints])
-    upper = np.array([[j.upper_limit] for j in joints])
-    q = lower + (upper - lower) * rng.random((len(joints), 64))
-    q = np.concatenate([np.zeros((len(joints), 1)), q], axis=1)
-    apparent = 1.0 / np.linalg.inv(kernel.mass_matrix(q)).diagonal(axis1=1, axis2=2).max(axis=0)
-    return [j.model_copy(update={"inertia": float(a)}) for j, a in zip(joints, apparent,
-                                                                        strict=True)]
-
-
 class Simulator:
     """A batch of scenarios of the same joints and mechanism, advanced one step at a time.
 
@@ -217,7 +187,7 @@ class Simulator:
         joints = list(joints)
         if not joints or not all(isinstance(j, JointParams) for j in joints):
             raise InvalidInputError("joints: expected a non-empty sequence of JointParams")
-        self._chain = None if chain is None else _chain_kernel(chain, joints)
+        self._chain = None if chain is None else chain_kernel(chain, joints)
         if method not in METHODS:
             raise InvalidInputError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
         if not isinstance(n_scenarios, int) or n_scenarios < 1:
@@ -252,8 +222,8 @@ class Simulator:
             )
         if check_stability:
             wall_k, wall_b = self._perturb.wall_stiffness()
-            stability_joints = joints if self._chain is None else _apparent(joints, self._chain)
-            check_step_stability(stability_joints, mechanism, self.dt, method, wall_k, wall_b)
+            checked = joints if self._chain is None else apparent_inertia(joints, self._chain)
+            check_step_stability(checked, mechanism, self.dt, method, wall_k, wall_b)
         # sensor noise of the sample at step k comes from its own stream (seed, k), so a run
         # stepped one command at a time measures exactly what a whole-array run does
         self._noise_seed = (

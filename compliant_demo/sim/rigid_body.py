@@ -14,13 +14,15 @@ the system and their acceleration is zero. The tests check every function agains
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import numba
 import numpy as np
 
-from compliant_demo.models import ChainParams
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import ChainParams, JointParams
 
-__all__ = ["ChainKernel"]
+__all__ = ["ChainKernel", "chain_kernel", "apparent_inertia"]
 
 
 
@@ -351,3 +353,34 @@ class ChainKernel:
             centre = origin + rot @ self._com[i]
             out[i] = -self._mass[i] * (centre @ self._gravity)
         return out
+
+
+def chain_kernel(chain: ChainParams, joints: Sequence[JointParams]) -> ChainKernel:
+    """The compiled model of ``chain`` after checking it moves exactly ``joints`` (same names and
+    order) and that they carry no gravity load of their own; InvalidInputError otherwise."""
+    names = tuple(j.name for j in joints)
+    if chain.joint_names != names:
+        raise InvalidInputError(
+            f"chain: joints {list(chain.joint_names)} differ from the simulated joints "
+            f"{list(names)} (same names in the same order)"
+        )
+    loaded = [j.name for j in joints if j.gravity_mass * j.com_distance > 0]
+    if loaded:
+        raise InvalidInputError(
+            f"joints {loaded}: gravity_mass and com_distance must be 0 with a chain (its links "
+            "carry the gravity load)"
+        )
+    return ChainKernel(chain)
+
+
+def apparent_inertia(joints: Sequence[JointParams], kernel: ChainKernel) -> list[JointParams]:
+    """Joints with the smallest apparent inertia ``1 / (M^-1)_jj`` over their range (64 seeded
+    configurations and the zero one): the stiffest a step of the coupled arm can meet."""
+    rng = np.random.default_rng(0)
+    lower = np.array([[j.lower_limit] for j in joints])
+    upper = np.array([[j.upper_limit] for j in joints])
+    q = lower + (upper - lower) * rng.random((len(joints), 64))
+    q = np.concatenate([np.zeros((len(joints), 1)), q], axis=1)
+    apparent = 1.0 / np.linalg.inv(kernel.mass_matrix(q)).diagonal(axis1=1, axis2=2).max(axis=0)
+    return [j.model_copy(update={"inertia": float(a)}) for j, a in zip(joints, apparent,
+                                                                        strict=True)]
