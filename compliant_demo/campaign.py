@@ -164,6 +164,8 @@ class ReplayCampaign:
             config["goal"] = list(setup.goal)
         if math.isfinite(setup.max_stiffness_rate):
             config["max_stiffness_rate"] = setup.max_stiffness_rate
+        if not setup.feedforward:
+            config["feedforward"] = False
         return config
 
     @classmethod
@@ -187,6 +189,7 @@ class ReplayCampaign:
             settle_s=config["settle_s"], method=config["method"],
             goal=None if goal is None else tuple(goal),
             max_stiffness_rate=config.get("max_stiffness_rate", math.inf),
+            feedforward=config.get("feedforward", True),
         )
         return cls(setup, spec, config["n_scenarios"], seed=config["seed"],
                    decimation=config["decimation"], stratify_kinds=config["stratify_kinds"],
