@@ -25,6 +25,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from compliant_demo.evaluation import ACTUATOR_LOADS
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import (
     CampaignSpec,
@@ -227,7 +228,8 @@ class ReplayCampaign:
                 schedule, {name: value[column] for name, value in final_energy.items()},
                 recovery_band=self.recovery_band,
             )
-            reason = setup.violation(result.t, q, tau_mechanism, steps)
+            loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}
+            reason = setup.violation(result.t, q, tau_mechanism, steps, loads)
             trace = {"t": result.t.copy()}
             trace.update({name: getattr(result, name)[:, column, :].copy()
                           for name in TRACE_CHANNELS})

@@ -21,7 +21,12 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, JointParams
+from compliant_demo.models import (
+    AntagonisticParams,
+    IdealImpedanceParams,
+    JointParams,
+    MechanismParams,
+)
 from compliant_demo.primitives import Rollout, _finite_array, _time_axis
 from compliant_demo.sim import GRAVITY
 
@@ -30,6 +35,7 @@ __all__ = [
     "ScheduleReport",
     "check_schedule",
     "outcome_metrics",
+    "ACTUATOR_LOADS",
     "limit_excess",
     "first_limit_violation",
 ]
@@ -432,8 +438,14 @@ def outcome_metrics(
     return metrics
 
 
+#: Actuator loads checked against the antagonistic mechanism's limits: (load, limit field).
+ACTUATOR_LOADS = {"spring_tension": "spring_tension_limit", "motor_torque": "motor_torque_limit"}
+
+
 def limit_excess(
-    position: NDArray[np.float64], torque: NDArray[np.float64], joints: Sequence[JointParams]
+    position: NDArray[np.float64], torque: NDArray[np.float64], joints: Sequence[JointParams],
+    *, loads: Mapping[str, NDArray[np.float64]] | None = None,
+    mechanisms: Sequence[MechanismParams] | None = None,
 ) -> dict[str, NDArray[np.float64]]:
     """How far each sample lies beyond a joint's limits (positive: beyond).
 
@@ -442,19 +454,31 @@ def limit_excess(
     position : (n_samples, n_joints) rad
     torque : (n_samples, n_joints) N*m, the mechanism's torque on the link
     joints : JointParams per column
+    loads : {"spring_tension" | "motor_torque": (n_samples, n_joints) N*m}, optional: the
+        actuator loads the simulator records (:class:`compliant_demo.sim.SimResult`)
+    mechanisms : mechanism record per column, whose limits the loads are checked against
+        (a record without such a limit: none)
 
     Returns
     -------
-    dict with ``"position"`` (distance outside [lower_limit, upper_limit], rad) and ``"torque"``
-    (|torque| - torque_limit, N*m), each (n_samples, n_joints).
+    dict with ``"position"`` (distance outside [lower_limit, upper_limit], rad), ``"torque"``
+    (|torque| - torque_limit, N*m) and each given load minus its limit (N*m), each
+    (n_samples, n_joints).
     """
     lower = np.array([j.lower_limit for j in joints])
     upper = np.array([j.upper_limit for j in joints])
     limit = np.array([j.torque_limit for j in joints])
-    return {
+    excess = {
         "position": np.maximum(lower - position, position - upper),
         "torque": np.abs(torque) - limit,
     }
+    for name, values in (loads or {}).items():
+        field = ACTUATOR_LOADS[name]
+        bound = np.array([getattr(m, field, np.inf) for m in mechanisms or ()])
+        if bound.shape != (len(joints),):
+            raise InvalidInputError(f"mechanisms: one record per joint needed to check {name}")
+        excess[name] = np.asarray(values, dtype=float) - bound
+    return excess
 
 
 def first_limit_violation(
@@ -465,6 +489,8 @@ def first_limit_violation(
     *,
     stiffness_rate: ArrayLike | None = None,
     max_stiffness_rate: float = float("inf"),
+    loads: Mapping[str, NDArray[np.float64]] | None = None,
+    mechanisms: Sequence[MechanismParams] | None = None,
 ) -> str | None:
     """The first sample beyond a joint's torque limit or range, or whose commanded stiffness
     changes faster than ``max_stiffness_rate``, described in one line; None when there is none.
@@ -478,17 +504,20 @@ def first_limit_violation(
     stiffness_rate : (n_samples, n_joints) N*m/rad/s, |rate| of the stiffness command in force
         at each sample, optional
     max_stiffness_rate : N*m/rad/s
+    loads, mechanisms : actuator loads and the records with their limits (see
+        :func:`limit_excess`)
 
     Notes
     -----
-    Within the first offending sample the joints are taken in order, torque before range, and
-    the stiffness rate last: the order a controller checking one period at a time meets them.
+    Within the first offending sample the joints are taken in order, torque before range before
+    spring tension before motor torque, and the stiffness rate last: the order a controller
+    checking one period at a time meets them.
     """
     times = np.asarray(t, dtype=float).reshape(-1)
     q = np.asarray(position, dtype=float)
     tau = np.asarray(torque, dtype=float)
-    excess = limit_excess(q, tau, joints)
-    bad = (excess["torque"] > 0) | (excess["position"] > 0)
+    excess = limit_excess(q, tau, joints, loads=loads, mechanisms=mechanisms)
+    bad = np.logical_or.reduce([value > 0 for value in excess.values()])
     rate = None
     if stiffness_rate is not None and np.isfinite(max_stiffness_rate):
         rate = np.asarray(stiffness_rate, dtype=float)
@@ -505,6 +534,12 @@ def first_limit_violation(
         if excess["position"][k, j] > 0:
             return (f"joint range: {joint.name} at {q[k, j]:.3g} rad outside "
                     f"[{joint.lower_limit:.3g}, {joint.upper_limit:.3g}] rad {when}")
+        for name, field in ACTUATOR_LOADS.items():
+            if name in excess and excess[name][k, j] > 0:
+                assert loads is not None and mechanisms is not None
+                return (f"{name.replace('_', ' ')} limit: {joint.name} "
+                        f"{float(loads[name][k, j]):.3g} N*m beyond "
+                        f"{getattr(mechanisms[j], field):.3g} N*m {when}")
     assert rate is not None
     j = int(np.argmax(rate[k]))
     return (f"stiffness rate: {joints[j].name} commanded at {rate[k, j]:.3g} N*m/rad/s beyond "

@@ -11,7 +11,15 @@ from pathlib import Path
 from typing import Annotated, Any, ClassVar, Literal, TypeVar
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SerializerFunctionWrapHandler,
+    ValidationError,
+    model_serializer,
+    model_validator,
+)
 
 from compliant_demo.exceptions import InvalidInputError
 
@@ -37,6 +45,20 @@ FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
 
 class _Record(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+#: Fields added after records were first stored: left out of a dump while at their defaults, so
+#: stored records (campaign configs) still compare equal and infinite limits never reach JSON.
+_ACTUATOR_LIMITS = ("spring_tension_limit", "motor_torque_limit", "motor_inertia")
+
+
+def _without_defaults(data: dict[str, Any], record: BaseModel, names: tuple[str, ...]
+                      ) -> dict[str, Any]:
+    fields = type(record).model_fields
+    for name in names:
+        if getattr(record, name) == fields[name].default:
+            data.pop(name, None)
+    return data
 
 
 class JointParams(_Record):
@@ -156,6 +178,20 @@ class AntagonisticParams(_Record):
     stiffness_max: PositiveFloat = Field(
         200.0, description="Highest stiffness commands are clamped to, N*m/rad."
     )
+    spring_tension_limit: PositiveLimit = Field(
+        float("inf"),
+        description="Largest tension of either spring, as torque about the joint, N*m (inf: none).",
+    )
+    motor_torque_limit: PositiveLimit = Field(
+        float("inf"), description="Largest torque either motor gives, N*m (inf: none)."
+    )
+    motor_inertia: NonNegativeFloat = Field(
+        0.0, description="Reflected inertia of each motor at the spring, kg*m^2."
+    )
+
+    @model_serializer(mode="wrap")
+    def _drop_unset_limits(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        return _without_defaults(handler(self), self, _ACTUATOR_LIMITS)
 
     @model_validator(mode="after")
     def _ranges_ordered(self) -> AntagonisticParams:
@@ -230,6 +266,10 @@ class BodyParams(_Record):
     velocity_limit: PositiveLimit = Field(
         float("inf"), description="Largest joint speed, rad/s (inf = none)."
     )
+
+    @model_serializer(mode="wrap")
+    def _drop_unset_limit(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        return _without_defaults(handler(self), self, ("velocity_limit",))
 
     @model_validator(mode="after")
     def _unit_axis(self) -> BodyParams:

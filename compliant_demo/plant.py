@@ -23,7 +23,6 @@ from pydantic import (
     ConfigDict,
     Field,
     SerializerFunctionWrapHandler,
-    ValidationError,
     model_serializer,
     model_validator,
 )
@@ -37,7 +36,6 @@ from compliant_demo.models import (
     MechanismParams,
     model_from_mapping,
     read_yaml,
-    validation_message,
 )
 from compliant_demo.resources import package_file
 
@@ -201,11 +199,9 @@ def plant_from_urdf(urdf: str | Path, actuators: object, *, source: str = "actua
         for i, (u, a) in enumerate(zip(urdf_joints, records, strict=True))
     )
     mechanisms = tuple(a.mechanism for a in records)
-    try:
-        return ReplayPlant(joints=joints, mechanism=mechanisms[0], mechanisms=mechanisms,
-                           chain=chain)
-    except ValidationError as exc:
-        raise InvalidInputError(f"{source}: {validation_message(exc)}") from None
+    return model_from_mapping(ReplayPlant, {"joints": joints, "mechanism": mechanisms[0],
+                                            "mechanisms": mechanisms, "chain": chain},
+                              source=source)
 
 
 def load_plant(path: str | Path | None = None) -> ReplayPlant:

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from compliant_demo.evaluation import first_limit_violation, outcome_metrics
+from compliant_demo.evaluation import ACTUATOR_LOADS, first_limit_violation, outcome_metrics
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import JointParams, MechanismParams
 from compliant_demo.perturbation import PerturbationSchedule
@@ -206,13 +206,15 @@ class ReplaySetup:
 
     def violation(
         self, t: NDArray[np.float64], q: NDArray[np.float64], torque: NDArray[np.float64],
-        steps: NDArray[np.intp],
+        steps: NDArray[np.intp], loads: Mapping[str, NDArray[np.float64]] | None = None,
     ) -> str | None:
         """The first limit violation among samples at times ``t`` (s) reached after control
-        periods ``steps`` (index of the command in force), or None."""
+        periods ``steps`` (index of the command in force), or None; ``loads`` are the samples'
+        spring tensions and motor torques (N*m), checked against the mechanism's limits."""
         rate = self.commands.stiffness_rate[np.clip(steps, 0, self.n_steps - 1)]
         return first_limit_violation(t, q, torque, self.joints, stiffness_rate=rate,
-                                     max_stiffness_rate=self.max_stiffness_rate)
+                                     max_stiffness_rate=self.max_stiffness_rate, loads=loads,
+                                     mechanisms=self.plant.mechanisms_for(self.skill.joints))
 
     def metrics(
         self,
@@ -321,7 +323,8 @@ class ReplayRun:
             self._trace[name][k] = getattr(state, name)[0]
         self.steps_done = k + 1
         self.stop_reason = self.setup.violation(
-            np.array([state.t]), state.q, state.tau_mechanism, np.array([k])
+            np.array([state.t]), state.q, state.tau_mechanism, np.array([k]),
+            {name: getattr(state, name) for name in ACTUATOR_LOADS},
         )
         return state
 

@@ -56,7 +56,7 @@ _CHANNELS = (
     "stiffness_realised", "damping_realised", "equilibrium_realised", "commands_clamped",
     "held", "in_contact", "kinetic", "spring_potential", "gravity_potential",
     "end_stop_potential", "actuator_work", "perturbation_work", "dissipated",
-    "stiffness_injection",
+    "stiffness_injection", "spring_tension", "motor_torque",
 )
 _BOOLEAN = ("commands_clamped", "held", "in_contact")
 
@@ -549,6 +549,7 @@ class Simulator:
             q_measured = np.where(self._resolution > 0, np.round(q / resolution) * resolution, q)
         spring_potential = kernel.potential(q, act, targets)
         stop_potential = self._stop_potential(q)
+        tension, motor_torque = kernel.loads(q, act, self._stages[0][2 : self._n_dyn])
         works = y[self._n_dyn :]
         contact = (q < self._lower) | (q > self._upper)
         if self._walls is not None:
@@ -576,6 +577,8 @@ class Simulator:
             "perturbation_work": works[_EXTERNAL] + self._jumps,
             "dissipated": -works[_PASSIVE] - (stop_potential - self._stop_potential0),
             "stiffness_injection": self._injection,
+            "spring_tension": tension,
+            "motor_torque": motor_torque,
         }
 
     # ----------------------------------------------------------------- public API
