@@ -23,12 +23,14 @@ from numpy.typing import ArrayLike, NDArray
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import (
     AntagonisticParams,
+    ChainParams,
     IdealImpedanceParams,
     JointParams,
     MechanismParams,
 )
 from compliant_demo.primitives import Rollout, _finite_array, _time_axis
-from compliant_demo.sim import GRAVITY
+from compliant_demo.sim.feedforward import inverse_dynamics
+from compliant_demo.sim.rigid_body import ChainKernel
 
 __all__ = [
     "Stretch",
@@ -158,20 +160,19 @@ def _mechanism_limits(
     return {name: table[:, i] for i, name in enumerate(names)}
 
 
-def _required_torque(joints: Sequence[JointParams], rollout: Rollout) -> NDArray[np.float64]:
+def _required_torque(joints: Sequence[JointParams], rollout: Rollout,
+                     chain: ChainParams | None) -> NDArray[np.float64]:
     """Torque the spring must supply to move the link along the rollout, N*m.
 
-    I*q'' + b*q' + c*tanh(q'/v_s) + m*g*l*sin(q - q_g): inertia, viscous and smoothed Coulomb
-    friction, and gravity (whose potential m*g*l*(1 - cos(q - q_g)) the simulator uses).
+    The path's inverse dynamics on the target (:func:`compliant_demo.sim.feedforward.
+    inverse_dynamics`: I*q'' + b*q' + m*g*l*sin(q - q_g) per joint, or the coupled arm's
+    M(q)q'' + C(q, q')q' + g(q) + b*q') plus the smoothed Coulomb friction c*tanh(q'/v_s).
     """
-    column = {name: np.array([getattr(j, name) for j in joints]) for name in (
-        "inertia", "viscous_damping", "coulomb_friction", "friction_smoothing_velocity",
-        "gravity_mass", "com_distance", "gravity_offset")}
-    q, dq = rollout.position, rollout.velocity
-    return (column["inertia"] * rollout.acceleration + column["viscous_damping"] * dq
-            + column["coulomb_friction"] * np.tanh(dq / column["friction_smoothing_velocity"])
-            + column["gravity_mass"] * GRAVITY * column["com_distance"]
-            * np.sin(q - column["gravity_offset"]))
+    coulomb = np.array([j.coulomb_friction for j in joints])
+    smoothing = np.array([j.friction_smoothing_velocity for j in joints])
+    dq = rollout.velocity
+    return (inverse_dynamics(joints, rollout.position, dq, rollout.acceleration, chain=chain)
+            + coulomb * np.tanh(dq / smoothing))
 
 
 def check_schedule(
@@ -183,6 +184,7 @@ def check_schedule(
     min_damping_ratio: float = 0.5,
     extra_deflection: ArrayLike = 0.0,
     energy_budget: float = 0.05,
+    chain: ChainParams | None = None,
 ) -> ScheduleReport:
     """Check a rollout's impedance schedule against the target joints and their mechanism.
 
@@ -196,6 +198,7 @@ def check_schedule(
     extra_deflection : deflection assumed on top of the predicted one, rad, scalar or (n_joints,);
         e.g. the press depth of a contact phase
     energy_budget : energy tank capacity per joint, J
+    chain : the coupled arm of the joints, or None (independent joints)
 
     Returns
     -------
@@ -203,7 +206,11 @@ def check_schedule(
 
     Notes
     -----
-    Damping ratio zeta = d / (2*sqrt(k*I)) of the joint's second-order dynamics. The deflection is
+    Damping ratio zeta = d / (2*sqrt(k*I)) of the joint's second-order dynamics. On a coupled
+    arm I is the diagonal entry M_jj(q) of the mass matrix at each sample of the path: the
+    inertia joint j moves with the others held still, matched to the per-joint (diagonal)
+    stiffness and damping being checked; the eigen-decomposition of M would mix joints whose
+    stiffness and damping differ. The deflection is
     the spring torque the joint needs along the path (:func:`_required_torque`) divided by the
     stiffness, plus ``extra_deflection``. Raising stiffness K while deflected by x changes the
     spring energy 1/2*K*x^2 by 1/2*dK/dt*x^2 per second without any motion, which breaks
@@ -235,7 +242,8 @@ def check_schedule(
 
     t = rollout.t
     limits = _mechanism_limits(mechanisms)
-    inertia = np.array([j.inertia for j in params])
+    inertia = (np.array([j.inertia for j in params]) if chain is None
+               else ChainKernel(chain).mass_matrix(rollout.position.T).diagonal(axis1=1, axis2=2))
     viscous = np.array([j.viscous_damping for j in params])
     controllable = ~np.isnan(limits["d_min"])
     stiffness = np.clip(rollout.stiffness, limits["k_min"], limits["k_max"])
@@ -248,7 +256,7 @@ def check_schedule(
     ratio = damping / (2.0 * np.sqrt(stiffness * inertia))
     k_rate = np.gradient(rollout.stiffness, t, axis=0)
     d_rate = np.gradient(rollout.damping, t, axis=0)
-    torque = _required_torque(params, rollout)
+    torque = _required_torque(params, rollout, chain)
     deflection = np.abs(torque) / stiffness + extra
     # The energy follows the stiffness the mechanism realises, not the command beyond its range.
     power = 0.5 * np.gradient(stiffness, t, axis=0) * deflection**2

@@ -305,3 +305,40 @@ def test_coupled_simulation_equals_an_rk4_loop_on_pinocchio_aba():
     with pytest.raises(InvalidInputError, match="impulses and holds are not in the coupled"):
         reference_solve(plant.joints, plant.mechanism, equilibrium, stiffness, schedules=held,
                         method="RK4", forward_dynamics=lambda q, dq, tau: tau)
+
+
+def test_schedule_check_on_the_coupled_arm_uses_the_mass_matrix_diagonal():
+    """Damping ratio d / (2*sqrt(K*M_jj(q))) along the path and deflection from the arm's
+    inverse dynamics plus smoothed Coulomb friction, M and tau from Pinocchio (pin.crba,
+    pin.rnea)."""
+    from compliant_demo.evaluation import check_schedule
+    from compliant_demo.primitives import Rollout
+
+    plant = load_plant(ARM_PLANT)
+    model = pinocchio_model(ARMS["arm_cork_seat"])
+    data = model.createData()
+    t = np.linspace(0.0, 1.0, 201)
+    position = np.stack([0.5 * np.sin(2 * t), 0.3 + 0.4 * t], axis=1)
+    velocity = np.stack([np.cos(2 * t), 0.4 + 0 * t], axis=1)
+    acceleration = np.stack([-2 * np.sin(2 * t), 0 * t], axis=1)
+    stiffness = np.full((201, 2), 60.0)
+    rollout = Rollout(t=t, position=position, velocity=velocity, acceleration=acceleration,
+                      stiffness=stiffness, damping=np.zeros((201, 2)),
+                      joints=("shoulder", "elbow"), duration_s=1.0)
+    report = check_schedule(rollout, plant.joints, list(plant.mechanisms or ()),
+                            chain=plant.chain)
+    diagonal = np.array([pin.crba(model, data, q).diagonal() for q in position])
+    viscous = np.array([j.viscous_damping for j in plant.joints])
+    np.testing.assert_allclose(report.damping_ratio, viscous / (2 * np.sqrt(60.0 * diagonal)),
+                               rtol=1e-10)
+    torque = np.array([pin.rnea(model, data, q, dq, ddq)
+                       for q, dq, ddq in zip(position, velocity, acceleration, strict=True)])
+    coulomb = np.array([j.coulomb_friction for j in plant.joints])
+    smoothing = np.array([j.friction_smoothing_velocity for j in plant.joints])
+    torque += viscous * velocity + coulomb * np.tanh(velocity / smoothing)
+    np.testing.assert_allclose(report.deflection, np.abs(torque) / 60.0, rtol=1e-10)
+    independent = check_schedule(rollout, plant.joints, list(plant.mechanisms or ()))
+    np.testing.assert_allclose(independent.damping_ratio[0],
+                               viscous / (2 * np.sqrt(60.0 * np.array(
+                                   [j.inertia for j in plant.joints]))),
+                               rtol=1e-12)
