@@ -8,7 +8,10 @@ memory), gravity entering as an upward acceleration of the base; the mass matrix
 composite-rigid-body algorithm (Walker and Orin, J. Dyn. Sys. Meas. Control 104, 1982;
 Featherstone, Rigid Body Dynamics Algorithms, 2008, ch. 6, from memory); forward dynamics solves
 ``M(q) qdd = tau - h(q, dq)`` by Cholesky. Held joints are locked: their rows and columns leave
-the system and their acceleration is zero. The tests check every function against Pinocchio.
+the system and their acceleration is zero. Scenarios are processed in blocks laid out
+scenario-last, so each arithmetic loop runs over the scenarios of a block and compiles to SIMD
+instructions (``fastmath`` lets the compiler fuse multiply-adds); blocks run in parallel over
+the cores (``numba.prange``). The tests check every function against Pinocchio.
 """
 
 from __future__ import annotations
@@ -26,239 +29,295 @@ __all__ = ["ChainKernel", "chain_kernel", "apparent_inertia"]
 
 
 
-@numba.njit(cache=True, nogil=True)
-def _cross(a0, a1, a2, b0, b1, b2):
-    return a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0
+# Scenarios go through in blocks: every loop over a block's scenarios is the innermost one, so
+# the compiler vectorises it (one SIMD lane per scenario); blocks run in parallel.
+_BLOCK = 64
+_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
+_parallel_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+                              parallel=True)
 
 
-@numba.njit(cache=True, nogil=True)
-def _rotations(q, s, place, axis, rot):
-    """rot[i] = placement rotation of joint i times the rotation by q[i, s] about its axis."""
+@_kernel
+def _block_rotations(q, s0, nb, place, axis, rot):
+    """rot[i, 3*a + b, k] for scenarios s0 + k, k < nb."""
     n = q.shape[0]
     for i in range(n):
-        c, sn = math.cos(q[i, s]), math.sin(q[i, s])
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        t = 1.0 - c
-        # Rodrigues' formula: c*I + sin*[k]x + (1 - c)*k*k^T
-        r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
-        r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
-        r20, r21, r22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
-        for a in range(3):
-            p0, p1, p2 = place[i, a, 0], place[i, a, 1], place[i, a, 2]
-            rot[i, a, 0] = p0 * r00 + p1 * r10 + p2 * r20
-            rot[i, a, 1] = p0 * r01 + p1 * r11 + p2 * r21
-            rot[i, a, 2] = p0 * r02 + p1 * r12 + p2 * r22
+        p = place[i]
+        for k in range(nb):
+            c = math.cos(q[i, s0 + k])
+            sn = math.sin(q[i, s0 + k])
+            t = 1.0 - c
+            r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
+            r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
+            r20, r21, r22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
+            for a in range(3):
+                p0, p1, p2 = p[a, 0], p[a, 1], p[a, 2]
+                rot[i, 3 * a, k] = p0 * r00 + p1 * r10 + p2 * r20
+                rot[i, 3 * a + 1, k] = p0 * r01 + p1 * r11 + p2 * r21
+                rot[i, 3 * a + 2, k] = p0 * r02 + p1 * r12 + p2 * r22
 
 
-@numba.njit(cache=True, nogil=True)
-def _rnea(dq, ddq, gravity_on, rot, pos, axis, mass, com, inertia, gravity, work, tau):
-    """Joint torques tau (n,) at velocities dq (n,) and accelerations ddq (n,); rot from
-    _rotations at the angles. work : (n, 6) scratch, force and moment of each subtree."""
+@_kernel
+def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity, st,
+                fm, tau):
+    """tau[i, k] = inverse dynamics of scenarios s0 + k at (rot, dq, ddq); st (9, B) and
+    fm (n, 6, B) scratch."""
     n = dq.shape[0]
-    w0 = w1 = w2 = 0.0
-    dw0 = dw1 = dw2 = 0.0
-    a0 = a1 = a2 = 0.0
-    if gravity_on:
-        a0, a1, a2 = -gravity[0], -gravity[1], -gravity[2]
+    g0, g1, g2 = (-gravity[0], -gravity[1], -gravity[2]) if gravity_on else (0.0, 0.0, 0.0)
+    for k in range(nb):
+        for c in range(6):
+            st[c, k] = 0.0
+        st[6, k], st[7, k], st[8, k] = g0, g1, g2
     for i in range(n):
         p0, p1, p2 = pos[i, 0], pos[i, 1], pos[i, 2]
-        # parent's point at the joint origin, in the parent frame
-        c0, c1, c2 = _cross(dw0, dw1, dw2, p0, p1, p2)
-        e0, e1, e2 = _cross(w0, w1, w2, p0, p1, p2)
-        f0, f1, f2 = _cross(w0, w1, w2, e0, e1, e2)
-        b0, b1, b2 = a0 + c0 + f0, a1 + c1 + f1, a2 + c2 + f2
-        # rotate into the child frame (R^T x)
-        r = rot[i]
-        a0 = r[0, 0] * b0 + r[1, 0] * b1 + r[2, 0] * b2
-        a1 = r[0, 1] * b0 + r[1, 1] * b1 + r[2, 1] * b2
-        a2 = r[0, 2] * b0 + r[1, 2] * b1 + r[2, 2] * b2
-        u0 = r[0, 0] * w0 + r[1, 0] * w1 + r[2, 0] * w2
-        u1 = r[0, 1] * w0 + r[1, 1] * w1 + r[2, 1] * w2
-        u2 = r[0, 2] * w0 + r[1, 2] * w1 + r[2, 2] * w2
-        v0 = r[0, 0] * dw0 + r[1, 0] * dw1 + r[2, 0] * dw2
-        v1 = r[0, 1] * dw0 + r[1, 1] * dw1 + r[2, 1] * dw2
-        v2 = r[0, 2] * dw0 + r[1, 2] * dw1 + r[2, 2] * dw2
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        qd, qdd = dq[i], ddq[i]
-        x0, x1, x2 = _cross(u0, u1, u2, k0 * qd, k1 * qd, k2 * qd)
-        w0, w1, w2 = u0 + k0 * qd, u1 + k1 * qd, u2 + k2 * qd
-        dw0, dw1, dw2 = v0 + k0 * qdd + x0, v1 + k1 * qdd + x1, v2 + k2 * qdd + x2
-        # acceleration of the centre of mass, force and moment about it
         m = mass[i]
         cc0, cc1, cc2 = com[i, 0], com[i, 1], com[i, 2]
-        c0, c1, c2 = _cross(dw0, dw1, dw2, cc0, cc1, cc2)
-        e0, e1, e2 = _cross(w0, w1, w2, cc0, cc1, cc2)
-        f0, f1, f2 = _cross(w0, w1, w2, e0, e1, e2)
-        fx, fy, fz = m * (a0 + c0 + f0), m * (a1 + c1 + f1), m * (a2 + c2 + f2)
-        ii = inertia[i]
-        h0 = ii[0, 0] * w0 + ii[0, 1] * w1 + ii[0, 2] * w2
-        h1 = ii[1, 0] * w0 + ii[1, 1] * w1 + ii[1, 2] * w2
-        h2 = ii[2, 0] * w0 + ii[2, 1] * w1 + ii[2, 2] * w2
-        g0, g1, g2 = _cross(w0, w1, w2, h0, h1, h2)
-        m0 = ii[0, 0] * dw0 + ii[0, 1] * dw1 + ii[0, 2] * dw2 + g0
-        m1 = ii[1, 0] * dw0 + ii[1, 1] * dw1 + ii[1, 2] * dw2 + g1
-        m2 = ii[2, 0] * dw0 + ii[2, 1] * dw1 + ii[2, 2] * dw2 + g2
-        # moment about the joint origin
-        l0, l1, l2 = _cross(cc0, cc1, cc2, fx, fy, fz)
-        work[i, 0], work[i, 1], work[i, 2] = fx, fy, fz
-        work[i, 3], work[i, 4], work[i, 5] = m0 + l0, m1 + l1, m2 + l2
-    # backward: add each child's force and moment, carried into the parent frame
+        i00, i01, i02 = inertia[i, 0, 0], inertia[i, 0, 1], inertia[i, 0, 2]
+        i11, i12, i22 = inertia[i, 1, 1], inertia[i, 1, 2], inertia[i, 2, 2]
+        r = rot[i]
+        for k in range(nb):
+            w0, w1, w2 = st[0, k], st[1, k], st[2, k]
+            dw0, dw1, dw2 = st[3, k], st[4, k], st[5, k]
+            a0, a1, a2 = st[6, k], st[7, k], st[8, k]
+            # parent's point at the joint origin
+            e0 = w1 * p2 - w2 * p1
+            e1 = w2 * p0 - w0 * p2
+            e2 = w0 * p1 - w1 * p0
+            b0 = a0 + dw1 * p2 - dw2 * p1 + w1 * e2 - w2 * e1
+            b1 = a1 + dw2 * p0 - dw0 * p2 + w2 * e0 - w0 * e2
+            b2 = a2 + dw0 * p1 - dw1 * p0 + w0 * e1 - w1 * e0
+            r00, r01, r02 = r[0, k], r[1, k], r[2, k]
+            r10, r11, r12 = r[3, k], r[4, k], r[5, k]
+            r20, r21, r22 = r[6, k], r[7, k], r[8, k]
+            a0 = r00 * b0 + r10 * b1 + r20 * b2
+            a1 = r01 * b0 + r11 * b1 + r21 * b2
+            a2 = r02 * b0 + r12 * b1 + r22 * b2
+            u0 = r00 * w0 + r10 * w1 + r20 * w2
+            u1 = r01 * w0 + r11 * w1 + r21 * w2
+            u2 = r02 * w0 + r12 * w1 + r22 * w2
+            v0 = r00 * dw0 + r10 * dw1 + r20 * dw2
+            v1 = r01 * dw0 + r11 * dw1 + r21 * dw2
+            v2 = r02 * dw0 + r12 * dw1 + r22 * dw2
+            qd = dq[i, s0 + k]
+            qdd = ddq[i, s0 + k]
+            x0 = (u1 * k2 - u2 * k1) * qd
+            x1 = (u2 * k0 - u0 * k2) * qd
+            x2 = (u0 * k1 - u1 * k0) * qd
+            w0, w1, w2 = u0 + k0 * qd, u1 + k1 * qd, u2 + k2 * qd
+            dw0, dw1, dw2 = v0 + k0 * qdd + x0, v1 + k1 * qdd + x1, v2 + k2 * qdd + x2
+            e0 = w1 * cc2 - w2 * cc1
+            e1 = w2 * cc0 - w0 * cc2
+            e2 = w0 * cc1 - w1 * cc0
+            fx = m * (a0 + dw1 * cc2 - dw2 * cc1 + w1 * e2 - w2 * e1)
+            fy = m * (a1 + dw2 * cc0 - dw0 * cc2 + w2 * e0 - w0 * e2)
+            fz = m * (a2 + dw0 * cc1 - dw1 * cc0 + w0 * e1 - w1 * e0)
+            h0 = i00 * w0 + i01 * w1 + i02 * w2
+            h1 = i01 * w0 + i11 * w1 + i12 * w2
+            h2 = i02 * w0 + i12 * w1 + i22 * w2
+            fm[i, 0, k], fm[i, 1, k], fm[i, 2, k] = fx, fy, fz
+            fm[i, 3, k] = (i00 * dw0 + i01 * dw1 + i02 * dw2 + w1 * h2 - w2 * h1
+                           + cc1 * fz - cc2 * fy)
+            fm[i, 4, k] = (i01 * dw0 + i11 * dw1 + i12 * dw2 + w2 * h0 - w0 * h2
+                           + cc2 * fx - cc0 * fz)
+            fm[i, 5, k] = (i02 * dw0 + i12 * dw1 + i22 * dw2 + w0 * h1 - w1 * h0
+                           + cc0 * fy - cc1 * fx)
+            st[0, k], st[1, k], st[2, k] = w0, w1, w2
+            st[3, k], st[4, k], st[5, k] = dw0, dw1, dw2
+            st[6, k], st[7, k], st[8, k] = a0, a1, a2
     for i in range(n - 1, -1, -1):
+        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
         if i + 1 < n:
             r = rot[i + 1]
-            cf0, cf1, cf2 = work[i + 1, 0], work[i + 1, 1], work[i + 1, 2]
-            cn0, cn1, cn2 = work[i + 1, 3], work[i + 1, 4], work[i + 1, 5]
-            f0 = r[0, 0] * cf0 + r[0, 1] * cf1 + r[0, 2] * cf2
-            f1 = r[1, 0] * cf0 + r[1, 1] * cf1 + r[1, 2] * cf2
-            f2 = r[2, 0] * cf0 + r[2, 1] * cf1 + r[2, 2] * cf2
-            l0, l1, l2 = _cross(pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2], f0, f1, f2)
-            work[i, 0] += f0
-            work[i, 1] += f1
-            work[i, 2] += f2
-            work[i, 3] += r[0, 0] * cn0 + r[0, 1] * cn1 + r[0, 2] * cn2 + l0
-            work[i, 4] += r[1, 0] * cn0 + r[1, 1] * cn1 + r[1, 2] * cn2 + l1
-            work[i, 5] += r[2, 0] * cn0 + r[2, 1] * cn1 + r[2, 2] * cn2 + l2
-        tau[i] = axis[i, 0] * work[i, 3] + axis[i, 1] * work[i, 4] + axis[i, 2] * work[i, 5]
+            p0, p1, p2 = pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2]
+            for k in range(nb):
+                cf0, cf1, cf2 = fm[i + 1, 0, k], fm[i + 1, 1, k], fm[i + 1, 2, k]
+                cn0, cn1, cn2 = fm[i + 1, 3, k], fm[i + 1, 4, k], fm[i + 1, 5, k]
+                f0 = r[0, k] * cf0 + r[1, k] * cf1 + r[2, k] * cf2
+                f1 = r[3, k] * cf0 + r[4, k] * cf1 + r[5, k] * cf2
+                f2 = r[6, k] * cf0 + r[7, k] * cf1 + r[8, k] * cf2
+                fm[i, 0, k] += f0
+                fm[i, 1, k] += f1
+                fm[i, 2, k] += f2
+                fm[i, 3, k] += r[0, k] * cn0 + r[1, k] * cn1 + r[2, k] * cn2 + p1 * f2 - p2 * f1
+                fm[i, 4, k] += r[3, k] * cn0 + r[4, k] * cn1 + r[5, k] * cn2 + p2 * f0 - p0 * f2
+                fm[i, 5, k] += r[6, k] * cn0 + r[7, k] * cn1 + r[8, k] * cn2 + p0 * f1 - p1 * f0
+        for k in range(nb):
+            tau[i, k] = k0 * fm[i, 3, k] + k1 * fm[i, 4, k] + k2 * fm[i, 5, k]
 
 
-@numba.njit(cache=True, nogil=True)
-def _crba(rot, pos, axis, mass, com, inertia, comp, mm):
-    """Mass matrix mm (n, n) from rot; comp (n, 13) scratch: mass, first moment, 3x3 inertia
-    about the joint origin of each subtree, in its joint frame."""
+@_kernel
+def _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, fn):
+    """mm[i, j, k] mass matrix of scenarios k < nb; comp (n, 13, B), fn (6, B) scratch."""
     n = rot.shape[0]
     for i in range(n):
         m = mass[i]
         c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
-        comp[i, 0] = m
-        comp[i, 1], comp[i, 2], comp[i, 3] = m * c0, m * c1, m * c2
         cc = c0 * c0 + c1 * c1 + c2 * c2
+        own = np.empty(13)
+        own[0], own[1], own[2], own[3] = m, m * c0, m * c1, m * c2
         cv = (c0, c1, c2)
         for a in range(3):
             for b in range(3):
-                # parallel axis: I_c + m*(|c|^2 * 1 - c c^T)
-                comp[i, 4 + 3 * a + b] = inertia[i, a, b] + m * (
-                    (cc if a == b else 0.0) - cv[a] * cv[b])
+                own[4 + 3 * a + b] = inertia[i, a, b] + m * ((cc if a == b else 0.0)
+                                                            - cv[a] * cv[b])
+        for c in range(13):
+            v = own[c]
+            for k in range(nb):
+                comp[i, c, k] = v
     for i in range(n - 1, 0, -1):
         # carry subtree i into frame i - 1: h' = R h, I' = R I R^T, then shift to origin i - 1
+        # by m*(|p|^2 1 - p p^T) + 2 (p.h') 1 - h' p^T - p h'^T
         r = rot[i]
-        m = comp[i, 0]
-        hx, hy, hz = comp[i, 1], comp[i, 2], comp[i, 3]
-        h0 = r[0, 0] * hx + r[0, 1] * hy + r[0, 2] * hz
-        h1 = r[1, 0] * hx + r[1, 1] * hy + r[1, 2] * hz
-        h2 = r[2, 0] * hx + r[2, 1] * hy + r[2, 2] * hz
-        p = (pos[i, 0], pos[i, 1], pos[i, 2])
-        h = (h0, h1, h2)
-        pp = p[0] * p[0] + p[1] * p[1] + p[2] * p[2]
-        ph = p[0] * h0 + p[1] * h1 + p[2] * h2
+        pp = pos[i, 0] ** 2 + pos[i, 1] ** 2 + pos[i, 2] ** 2
+        for a in range(3):
+            for k in range(nb):
+                fn[a, k] = (r[3 * a, k] * comp[i, 1, k] + r[3 * a + 1, k] * comp[i, 2, k]
+                            + r[3 * a + 2, k] * comp[i, 3, k])
+        for k in range(nb):
+            fn[3, k] = pos[i, 0] * fn[0, k] + pos[i, 1] * fn[1, k] + pos[i, 2] * fn[2, k]
         for a in range(3):
             for b in range(3):
-                rir = 0.0
-                for c in range(3):
-                    row = 0.0
-                    for d in range(3):
-                        row += comp[i, 4 + 3 * c + d] * r[b, d]
-                    rir += r[a, c] * row
-                # -m[p]x[p]x - [p]x[h]x - [h]x[p]x, with [u]x[v]x = v u^T - (u.v) 1
-                shift = m * ((pp if a == b else 0.0) - p[a] * p[b])
-                shift += 2.0 * (ph if a == b else 0.0) - h[a] * p[b] - p[a] * h[b]
-                comp[i - 1, 4 + 3 * a + b] += rir + shift
-        comp[i - 1, 0] += m
-        comp[i - 1, 1] += m * p[0] + h0
-        comp[i - 1, 2] += m * p[1] + h1
-        comp[i - 1, 3] += m * p[2] + h2
+                pa, pb = pos[i, a], pos[i, b]
+                diag = 1.0 if a == b else 0.0
+                for k in range(nb):
+                    turned = 0.0
+                    for c in range(3):
+                        for d in range(3):
+                            turned += r[3 * a + c, k] * comp[i, 4 + 3 * c + d, k] * r[3 * b + d, k]
+                    comp[i - 1, 4 + 3 * a + b, k] += (
+                        turned + comp[i, 0, k] * (diag * pp - pa * pb)
+                        + diag * 2.0 * fn[3, k] - fn[a, k] * pb - pa * fn[b, k])
+        for k in range(nb):
+            comp[i - 1, 0, k] += comp[i, 0, k]
+        for a in range(3):
+            for k in range(nb):
+                comp[i - 1, 1 + a, k] += comp[i, 0, k] * pos[i, a] + fn[a, k]
     for i in range(n):
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        # force and moment (about origin i) of subtree i under a unit acceleration of joint i
-        f0, f1, f2 = _cross(k0, k1, k2, comp[i, 1], comp[i, 2], comp[i, 3])
-        n0 = comp[i, 4] * k0 + comp[i, 5] * k1 + comp[i, 6] * k2
-        n1 = comp[i, 7] * k0 + comp[i, 8] * k1 + comp[i, 9] * k2
-        n2 = comp[i, 10] * k0 + comp[i, 11] * k1 + comp[i, 12] * k2
-        mm[i, i] = k0 * n0 + k1 * n1 + k2 * n2
+        for k in range(nb):
+            hx, hy, hz = comp[i, 1, k], comp[i, 2, k], comp[i, 3, k]
+            fn[0, k] = k1 * hz - k2 * hy
+            fn[1, k] = k2 * hx - k0 * hz
+            fn[2, k] = k0 * hy - k1 * hx
+            n0 = comp[i, 4, k] * k0 + comp[i, 5, k] * k1 + comp[i, 6, k] * k2
+            n1 = comp[i, 7, k] * k0 + comp[i, 8, k] * k1 + comp[i, 9, k] * k2
+            n2 = comp[i, 10, k] * k0 + comp[i, 11, k] * k1 + comp[i, 12, k] * k2
+            fn[3, k], fn[4, k], fn[5, k] = n0, n1, n2
+            mm[i, i, k] = k0 * n0 + k1 * n1 + k2 * n2
         for j in range(i - 1, -1, -1):
             r = rot[j + 1]
-            g0 = r[0, 0] * f0 + r[0, 1] * f1 + r[0, 2] * f2
-            g1 = r[1, 0] * f0 + r[1, 1] * f1 + r[1, 2] * f2
-            g2 = r[2, 0] * f0 + r[2, 1] * f1 + r[2, 2] * f2
-            l0, l1, l2 = _cross(pos[j + 1, 0], pos[j + 1, 1], pos[j + 1, 2], g0, g1, g2)
-            e0 = r[0, 0] * n0 + r[0, 1] * n1 + r[0, 2] * n2 + l0
-            e1 = r[1, 0] * n0 + r[1, 1] * n1 + r[1, 2] * n2 + l1
-            e2 = r[2, 0] * n0 + r[2, 1] * n1 + r[2, 2] * n2 + l2
-            f0, f1, f2, n0, n1, n2 = g0, g1, g2, e0, e1, e2
-            value = axis[j, 0] * n0 + axis[j, 1] * n1 + axis[j, 2] * n2
-            mm[i, j] = value
-            mm[j, i] = value
+            p0, p1, p2 = pos[j + 1, 0], pos[j + 1, 1], pos[j + 1, 2]
+            a0, a1, a2 = axis[j, 0], axis[j, 1], axis[j, 2]
+            for k in range(nb):
+                f0, f1, f2 = fn[0, k], fn[1, k], fn[2, k]
+                n0, n1, n2 = fn[3, k], fn[4, k], fn[5, k]
+                g0 = r[0, k] * f0 + r[1, k] * f1 + r[2, k] * f2
+                g1 = r[3, k] * f0 + r[4, k] * f1 + r[5, k] * f2
+                g2 = r[6, k] * f0 + r[7, k] * f1 + r[8, k] * f2
+                e0 = r[0, k] * n0 + r[1, k] * n1 + r[2, k] * n2 + p1 * g2 - p2 * g1
+                e1 = r[3, k] * n0 + r[4, k] * n1 + r[5, k] * n2 + p2 * g0 - p0 * g2
+                e2 = r[6, k] * n0 + r[7, k] * n1 + r[8, k] * n2 + p0 * g1 - p1 * g0
+                fn[0, k], fn[1, k], fn[2, k] = g0, g1, g2
+                fn[3, k], fn[4, k], fn[5, k] = e0, e1, e2
+                value = a0 * e0 + a1 * e1 + a2 * e2
+                mm[i, j, k] = value
+                mm[j, i, k] = value
 
 
-@numba.njit(cache=True, nogil=True)
-def _solve_locked(mm, rhs, free, s, out):
-    """Solve mm x = rhs over the free joints (free[i, s] != 0), x = 0 on locked ones, in place
-    by Cholesky (mm is symmetric positive definite); writes out[:, s]."""
+@_kernel
+def _block_solve(mm, rhs, free, s0, nb, out):
+    """Cholesky solve of mm x = rhs per scenario over its free joints; out[:, s0 + k] = x."""
     n = mm.shape[0]
     for i in range(n):
-        if free[i, s] == 0.0:
-            for j in range(n):
-                mm[i, j] = 0.0
-                mm[j, i] = 0.0
-            mm[i, i] = 1.0
-            rhs[i] = 0.0
+        for k in range(nb):
+            if free[i, s0 + k] == 0.0:
+                for j in range(n):
+                    mm[i, j, k] = 0.0
+                    mm[j, i, k] = 0.0
+                mm[i, i, k] = 1.0
+                rhs[i, k] = 0.0
     for j in range(n):
-        d = mm[j, j]
-        for k in range(j):
-            d -= mm[j, k] * mm[j, k]
-        d = math.sqrt(d)
-        mm[j, j] = d
+        for k in range(nb):
+            d = mm[j, j, k]
+            for c in range(j):
+                d -= mm[j, c, k] * mm[j, c, k]
+            mm[j, j, k] = math.sqrt(d)
         for i in range(j + 1, n):
-            v = mm[i, j]
-            for k in range(j):
-                v -= mm[i, k] * mm[j, k]
-            mm[i, j] = v / d
+            for k in range(nb):
+                v = mm[i, j, k]
+                for c in range(j):
+                    v -= mm[i, c, k] * mm[j, c, k]
+                mm[i, j, k] = v / mm[j, j, k]
     for i in range(n):
-        v = rhs[i]
-        for k in range(i):
-            v -= mm[i, k] * rhs[k]
-        rhs[i] = v / mm[i, i]
+        for k in range(nb):
+            v = rhs[i, k]
+            for c in range(i):
+                v -= mm[i, c, k] * rhs[c, k]
+            rhs[i, k] = v / mm[i, i, k]
     for i in range(n - 1, -1, -1):
-        v = rhs[i]
-        for k in range(i + 1, n):
-            v -= mm[k, i] * rhs[k]
-        rhs[i] = v / mm[i, i]
-    for i in range(n):
-        out[i, s] = rhs[i]
+        for k in range(nb):
+            v = rhs[i, k]
+            for c in range(i + 1, n):
+                v -= mm[c, i, k] * rhs[c, k]
+            rhs[i, k] = v / mm[i, i, k]
+            out[i, s0 + k] = rhs[i, k]
 
 
-@numba.njit(cache=True, nogil=True, parallel=True)
-def _forward_batch(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, rot, work,
-                   comp, mm, vec, out):
+@_parallel_kernel
+def _forward_batch(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
     n, n_scen = q.shape
-    zero = np.zeros(n)
-    for s in numba.prange(n_scen):
-        _rotations(q, s, place, axis, rot[s])
-        _rnea(dq[:, s], zero, True, rot[s], pos, axis, mass, com, inertia, gravity, work[s],
-              vec[s])
+    zero = np.zeros((n, n_scen))
+    for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
+        s0 = b * _BLOCK
+        nb = min(_BLOCK, n_scen - s0)
+        rot = np.empty((n, 9, _BLOCK))
+        vec = np.empty((n, _BLOCK))
+        mm = np.empty((n, n, _BLOCK))
+        _block_rotations(q, s0, nb, place, axis, rot)
+        _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity,
+                    np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
         for i in range(n):
-            vec[s, i] = tau[i, s] - vec[s, i]
-        _crba(rot[s], pos, axis, mass, com, inertia, comp[s], mm[s])
-        _solve_locked(mm[s], vec[s], free, s, out)
+            for k in range(nb):
+                vec[i, k] = tau[i, s0 + k] - vec[i, k]
+        _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
+                    np.empty((6, _BLOCK)))
+        _block_solve(mm, vec, free, s0, nb, out)
 
 
-@numba.njit(cache=True, nogil=True, parallel=True)
-def _inverse_batch(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity, rot,
-                   work, vec, out):
+@_parallel_kernel
+def _inverse_batch(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
+                   out):
     n, n_scen = q.shape
-    for s in numba.prange(n_scen):
-        _rotations(q, s, place, axis, rot[s])
-        _rnea(dq[:, s], ddq[:, s], gravity_on, rot[s], pos, axis, mass, com, inertia, gravity,
-              work[s], vec[s])
+    for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
+        s0 = b * _BLOCK
+        nb = min(_BLOCK, n_scen - s0)
+        rot = np.empty((n, 9, _BLOCK))
+        vec = np.empty((n, _BLOCK))
+        _block_rotations(q, s0, nb, place, axis, rot)
+        _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity,
+                    np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
         for i in range(n):
-            out[i, s] = vec[s, i]
+            for k in range(nb):
+                out[i, s0 + k] = vec[i, k]
 
 
-@numba.njit(cache=True, nogil=True, parallel=True)
-def _mass_batch(q, place, pos, axis, mass, com, inertia, rot, comp, out):
-    n_scen = q.shape[1]
-    for s in numba.prange(n_scen):
-        _rotations(q, s, place, axis, rot[s])
-        _crba(rot[s], pos, axis, mass, com, inertia, comp[s], out[s])
+@_parallel_kernel
+def _mass_batch(q, place, pos, axis, mass, com, inertia, out):
+    n, n_scen = q.shape
+    for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
+        s0 = b * _BLOCK
+        nb = min(_BLOCK, n_scen - s0)
+        rot = np.empty((n, 9, _BLOCK))
+        mm = np.empty((n, n, _BLOCK))
+        _block_rotations(q, s0, nb, place, axis, rot)
+        _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
+                    np.empty((6, _BLOCK)))
+        for k in range(nb):
+            for i in range(n):
+                for j in range(n):
+                    out[s0 + k, i, j] = mm[i, j, k]
 
 
 class ChainKernel:
@@ -285,18 +344,6 @@ class ChainKernel:
         self._gravity = np.array(chain.gravity, dtype=float)
         self._model = (self._place, self._pos, self._axis, self._mass, self._com,
                        self._inertia)
-        self._scratch: dict[int, dict[str, np.ndarray]] = {}
-
-    def _work(self, n_scen: int) -> dict[str, np.ndarray]:
-        """Per-scenario scratch arrays, one set per batch size met."""
-        n = self.n_joints
-        if n_scen not in self._scratch:
-            self._scratch[n_scen] = {
-                "rot": np.zeros((n_scen, n, 3, 3)), "work": np.zeros((n_scen, n, 6)),
-                "comp": np.zeros((n_scen, n, 13)), "mm": np.zeros((n_scen, n, n)),
-                "vec": np.zeros((n_scen, n)),
-            }
-        return self._scratch[n_scen]
 
     def forward(self, q: np.ndarray, dq: np.ndarray, tau: np.ndarray, free: np.ndarray,
                 out: np.ndarray) -> None:
@@ -304,9 +351,7 @@ class ChainKernel:
 
         q (rad), dq (rad/s), tau (N*m), free (1 free, 0 locked), out: ``(n_joints, n_scen)``.
         """
-        w = self._work(q.shape[1])
-        _forward_batch(q, dq, tau, free, *self._model, self._gravity, w["rot"], w["work"],
-                       w["comp"], w["mm"], w["vec"], out)
+        _forward_batch(q, dq, tau, free, *self._model, self._gravity, out)
 
     def inverse(self, q: np.ndarray, dq: np.ndarray, ddq: np.ndarray,
                 gravity: bool = True) -> np.ndarray:
@@ -314,17 +359,14 @@ class ChainKernel:
         for ``(n_joints, n_scen)`` arrays."""
         q, dq, ddq = (np.ascontiguousarray(x, dtype=float) for x in (q, dq, ddq))
         out = np.empty_like(q)
-        w = self._work(q.shape[1])
-        _inverse_batch(q, dq, ddq, gravity, *self._model, self._gravity, w["rot"], w["work"],
-                       w["vec"], out)
+        _inverse_batch(q, dq, ddq, gravity, *self._model, self._gravity, out)
         return out
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         """Mass matrices ``(n_scen, n_joints, n_joints)``, kg*m^2, at ``(n_joints, n_scen)`` q."""
         q = np.ascontiguousarray(q, dtype=float)
         out = np.zeros((q.shape[1], self.n_joints, self.n_joints))
-        w = self._work(q.shape[1])
-        _mass_batch(q, *self._model, w["rot"], w["comp"], out)
+        _mass_batch(q, *self._model, out)
         return out
 
     def kinetic_split(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
