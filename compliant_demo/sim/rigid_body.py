@@ -37,6 +37,32 @@ _parallel_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastm
                               parallel=True)
 
 
+# sin and cos in a form the compiler vectorises (libm's are opaque calls): Cody-Waite reduction by
+# pi/2 and the fdlibm kernel polynomials on [-pi/4, pi/4] (Sun Microsystems' fdlibm, k_sin.c and
+# k_cos.c coefficients; about one ulp there)
+_PIO2_HI, _PIO2_LO = 1.57079632673412561417e+00, 6.07710050650619224932e-11
+_S = (-1.66666666666666324348e-01, 8.33333333332248946124e-03, -1.98412698298579493134e-04,
+      2.75573137070700676789e-06, -2.50507602534068634195e-08, 1.58969099521155010221e-10)
+_C = (4.16666666666666019037e-02, -1.38888888888741095749e-03, 2.48015872894767294178e-05,
+      -2.75573143513906633035e-07, 2.08757232129817482790e-09, -1.13596475577881948265e-11)
+
+
+@_kernel
+def _sincos(x):
+    turns = np.rint(x * (2.0 / math.pi))
+    r = (x - turns * _PIO2_HI) - turns * _PIO2_LO
+    z = r * r
+    sine = r + r * z * (_S[0] + z * (_S[1] + z * (_S[2] + z * (_S[3] + z * (_S[4] + z * _S[5])))))
+    cosine = 1.0 - 0.5 * z + z * z * (_C[0] + z * (_C[1] + z * (_C[2] + z * (_C[3] + z * (
+        _C[4] + z * _C[5])))))
+    quadrant = np.int64(turns) & 3
+    odd = float(quadrant & 1)  # a blend, not a branch, keeps the loop vectorisable
+    s_sign = 1.0 - 2.0 * ((quadrant >> 1) & 1)
+    c_sign = 1.0 - 2.0 * (((quadrant + 1) >> 1) & 1)
+    return (s_sign * (odd * cosine + (1.0 - odd) * sine),
+            c_sign * (odd * sine + (1.0 - odd) * cosine))
+
+
 @_kernel
 def _block_rotations(q, s0, nb, place, axis, rot):
     """rot[i, 3*a + b, k] for scenarios s0 + k, k < nb."""
@@ -45,8 +71,7 @@ def _block_rotations(q, s0, nb, place, axis, rot):
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
         p = place[i]
         for k in range(nb):
-            c = math.cos(q[i, s0 + k])
-            sn = math.sin(q[i, s0 + k])
+            sn, c = _sincos(q[i, s0 + k])
             t = 1.0 - c
             r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
             r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
