@@ -10,7 +10,8 @@ The coupled part runs the same campaign on the cork_seat arm read from its URDF 
 chain, compiled kernel) on one numba thread, times a per-scenario RK4 loop calling Pinocchio's
 ``aba`` at every stage on a sample of those scenarios (torques and walls only: that loop has no
 impulses or holds), runs a seven-joint example arm, checks accelerations against ``pin.aba``,
-and times the coupled batch on two threads. CPU times come from ``time.process_time`` (all
+and times the coupled batch with its kernel on two threads (``parallel=True``; by default the
+kernel runs on one). CPU times come from ``time.process_time`` (all
 threads of this process); the machine is shared, so the load average is reported beside them.
 One JSON object per line; the last line is ``{"bench": "sim", ...}``.
 """
@@ -159,20 +160,19 @@ def coupled(equilibrium: np.ndarray, stiffness: np.ndarray, schedules: list) -> 
                             / "arm_cork_seat.urdf")
     data = model.createData()
 
-    def batch():
+    def batch(parallel: bool = False):
         return simulate(plant.joints, plant.mechanism, equilibrium, stiffness,
                         schedules=schedules, decimation=DECIMATION, seed=SEED,
-                        chain=plant.chain)
+                        chain=plant.chain, parallel=parallel)
 
-    numba.set_num_threads(1)
-    simulate(plant.joints, plant.mechanism, equilibrium[:200], stiffness[:200],
-             chain=plant.chain)  # warm-up: compiled kernels load from the cache
+    for parallel in (False, True):  # warm-up: compiled kernels load from the cache
+        simulate(plant.joints, plant.mechanism, equilibrium[:200], stiffness[:200],
+                 chain=plant.chain, parallel=parallel)
     runs = [_timed(batch) for _ in range(2)]
     result = runs[0][0]
     wall_1, cpu_1 = min(r[1] for r in runs), min(r[2] for r in runs)
     numba.set_num_threads(2)
-    wall_2 = min(_timed(batch)[1] for _ in range(2))
-    numba.set_num_threads(1)
+    wall_2 = min(_timed(lambda: batch(parallel=True))[1] for _ in range(2))
     simulated_s = N_SCENARIOS * DURATION_S
     emit({"bench": "sim_coupled", "n_scenarios": N_SCENARIOS, "threads": 1,
           "wall_s": round(wall_1, 3), "cpu_s": round(cpu_1, 3), "wall_2_threads_s":

@@ -353,3 +353,45 @@ def test_vectorisable_sine_and_cosine_match_libm():
     values = np.array([_sincos(x) for x in angles])
     assert np.max(np.abs(values[:, 0] - np.sin(angles))) <= 2e-15
     assert np.max(np.abs(values[:, 1] - np.cos(angles))) <= 2e-15
+
+
+def _child_forward(q: np.ndarray) -> float:
+    kernel = ChainKernel(read_urdf(ARMS["arm_cork_seat"])[0])
+    out = np.zeros_like(q)
+    kernel.forward(q, np.zeros_like(q), np.zeros_like(q), np.ones_like(q), out)
+    return float(out.sum())
+
+
+def test_serial_kernel_leaves_forked_workers_working():
+    """Campaign workers are forked: the default (serial) kernel must not start a threading
+    runtime that a forked child cannot use (GNU OpenMP aborts such a child)."""
+    import multiprocessing
+
+    q = np.full((2, 100), 0.3)
+    expected = _child_forward(q)
+    with multiprocessing.get_context("fork").Pool(2) as pool:
+        assert pool.map_async(_child_forward, [q, q]).get(timeout=120) == [expected, expected]
+
+
+def test_parallel_kernel_equals_the_serial_one():
+    """In a separate interpreter (a parallel kernel starts numba's threads in its process)."""
+    import subprocess
+    import sys
+
+    script = (
+        "import numpy as np\n"
+        "from compliant_demo.plant import load_plant\n"
+        "from compliant_demo.sim.rigid_body import ChainKernel\n"
+        f"plant = load_plant({str(ROOT / 'config' / 'arm7_example.yaml')!r})\n"
+        "rng = np.random.default_rng(4)\n"
+        "q, dq, tau = (rng.uniform(-2, 2, (7, 300)) for _ in range(3))\n"
+        "free = np.ones((7, 300)); free[2, :50] = 0\n"
+        "a, b = np.zeros((7, 300)), np.zeros((7, 300))\n"
+        "ChainKernel(plant.chain).forward(q, dq, tau, free, a)\n"
+        "ChainKernel(plant.chain, parallel=True).forward(q, dq, tau, free, b)\n"
+        "assert np.array_equal(a, b), np.abs(a - b).max()\n"
+        "print('equal')\n"
+    )
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          timeout=600, check=False)
+    assert done.returncode == 0 and done.stdout.strip() == "equal", done.stderr[-2000:]

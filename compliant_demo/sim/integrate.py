@@ -8,11 +8,8 @@ integrals are integrated by the same method as the state, so the energy balance 
 method's accuracy; :class:`Simulator` steps one command at a time for a real-time replay node,
 :func:`simulate` runs whole command arrays and records at a decimation.
 
-Without a chain each joint is an independent pendulum (inertia, gravity load ``m*g*l*sin``).
-With a :class:`compliant_demo.models.ChainParams` the links are one coupled serial arm: the
-joint torques (mechanism, friction, end stops, perturbations) go through the compiled forward
-dynamics of :mod:`compliant_demo.sim.rigid_body` (mass matrix, Coriolis and centrifugal terms,
-gravity), and each joint's ``inertia`` serves only the step-size check and the damping policy.
+Without a chain each joint is an independent pendulum; with a :class:`ChainParams` the joint
+torques go through the coupled arm's compiled forward dynamics (:mod:`.rigid_body`).
 """
 
 from __future__ import annotations
@@ -158,15 +155,15 @@ class Simulator:
         after it is reported with a warning (it can never act)
     chain : the coupled rigid-body model of the joints (same names, same order), or None for
         independent joints; the joints then carry no gravity load of their own
+    parallel : run the chain's dynamics on all of numba's threads (default: one)
 
     Notes
     -----
     Actuator states start at the targets of the first command, so a run starts in steady state.
     With a chain, an impulse on a joint changes every free joint's velocity by
-    ``M(q)^-1 * impulse`` (held joints locked), and a hold stops its joint alone; the energy
-    channels ``kinetic`` and ``gravity_potential`` are split per joint as
-    ``1/2 * dq_j * (M dq)_j`` and the potential of the link each joint moves, so only their sum
-    over joints balances the work done (energy flows between joints through the coupling).
+    ``M(q)^-1 * impulse``, a hold stops its joint alone; ``kinetic`` is split per joint as
+    ``1/2 * dq_j * (M dq)_j`` and ``gravity_potential`` per link, so only their sum over joints
+    balances the work done (energy flows between joints through the coupling).
     """
 
     def __init__(
@@ -183,11 +180,12 @@ class Simulator:
         check_stability: bool = True,
         horizon_steps: int | None = None,
         chain: ChainParams | None = None,
+        parallel: bool = False,
     ) -> None:
         joints = list(joints)
         if not joints or not all(isinstance(j, JointParams) for j in joints):
             raise InvalidInputError("joints: expected a non-empty sequence of JointParams")
-        self._chain = None if chain is None else chain_kernel(chain, joints)
+        self._chain = None if chain is None else chain_kernel(chain, joints, parallel)
         if method not in METHODS:
             raise InvalidInputError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
         if not isinstance(n_scenarios, int) or n_scenarios < 1:
@@ -758,6 +756,7 @@ def simulate(
     seed: int | None = None,
     check_stability: bool = True,
     chain: ChainParams | None = None,
+    parallel: bool = False,
 ) -> SimResult:
     """Simulate a batch of perturbed scenarios under zero-order-held commands.
 
@@ -777,6 +776,7 @@ def simulate(
     seed : seeds sensor noise and unseeded random torques
     check_stability : raise UnstableStepError when ``dt`` is above the largest stable step
     chain : coupled rigid-body model of the joints, or None (see :class:`Simulator`)
+    parallel : run the chain's dynamics on all of numba's threads
 
     Returns
     -------
@@ -795,6 +795,6 @@ def simulate(
         joints, mechanism, n_scenarios=n_scen, dt=dt, method=method, q0=q0, dq0=dq0,
         schedules=schedules, seed=seed, check_stability=check_stability,
         horizon_steps=np.shape(equilibrium)[0] if np.ndim(equilibrium) >= 1 else None,
-        chain=chain,
+        chain=chain, parallel=parallel,
     )
     return sim.run(equilibrium, stiffness, damping, decimation=decimation)

@@ -10,8 +10,9 @@ Featherstone, Rigid Body Dynamics Algorithms, 2008, ch. 6, from memory); forward
 ``M(q) qdd = tau - h(q, dq)`` by Cholesky. Held joints are locked: their rows and columns leave
 the system and their acceleration is zero. Scenarios are processed in blocks laid out
 scenario-last, so each arithmetic loop runs over the scenarios of a block and compiles to SIMD
-instructions (``fastmath`` lets the compiler fuse multiply-adds); blocks run in parallel over
-the cores (``numba.prange``). The tests check every function against Pinocchio.
+instructions (``fastmath`` lets the compiler fuse multiply-adds); on request
+(``ChainKernel(parallel=True)``) blocks run in parallel over the cores (``numba.prange``). The
+tests check every function against Pinocchio.
 """
 
 from __future__ import annotations
@@ -290,8 +291,7 @@ def _block_solve(mm, rhs, free, s0, nb, out):
             out[i, s0 + k] = rhs[i, k]
 
 
-@_parallel_kernel
-def _forward_batch(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
+def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
     n, n_scen = q.shape
     zero = np.zeros((n, n_scen))
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
@@ -311,8 +311,7 @@ def _forward_batch(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravi
         _block_solve(mm, vec, free, s0, nb, out)
 
 
-@_parallel_kernel
-def _inverse_batch(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
+def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
                    out):
     n, n_scen = q.shape
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
@@ -328,8 +327,7 @@ def _inverse_batch(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia,
                 out[i, s0 + k] = vec[i, k]
 
 
-@_parallel_kernel
-def _mass_batch(q, place, pos, axis, mass, com, inertia, out):
+def _mass_blocks(q, place, pos, axis, mass, com, inertia, out):
     n, n_scen = q.shape
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
         s0 = b * _BLOCK
@@ -345,15 +343,24 @@ def _mass_batch(q, place, pos, axis, mass, com, inertia, out):
                     out[s0 + k, i, j] = mm[i, j, k]
 
 
+# Serial builds by default: campaigns already run one process per core, and GNU OpenMP (numba's
+# threading layer here) aborts a process forked after it started, as campaign workers are.
+_SERIAL = tuple(_kernel(f) for f in (_forward_blocks, _inverse_blocks, _mass_blocks))
+_PARALLEL = tuple(_parallel_kernel(f) for f in (_forward_blocks, _inverse_blocks, _mass_blocks))
+
+
 class ChainKernel:
     """Compiled dynamics of one chain for batches of ``(n_joints, n_scenarios)`` states.
 
     Parameters
     ----------
     chain : the serial arm
+    parallel : spread the blocks of scenarios over numba's threads (``numba.prange``); off by
+        default (see the note above ``_SERIAL``)
     """
 
-    def __init__(self, chain: ChainParams) -> None:
+    def __init__(self, chain: ChainParams, parallel: bool = False) -> None:
+        self._kernels = _PARALLEL if parallel else _SERIAL
         bodies = chain.bodies
         self.chain = chain
         self.n_joints = len(bodies)
@@ -376,7 +383,7 @@ class ChainKernel:
 
         q (rad), dq (rad/s), tau (N*m), free (1 free, 0 locked), out: ``(n_joints, n_scen)``.
         """
-        _forward_batch(q, dq, tau, free, *self._model, self._gravity, out)
+        self._kernels[0](q, dq, tau, free, *self._model, self._gravity, out)
 
     def inverse(self, q: np.ndarray, dq: np.ndarray, ddq: np.ndarray,
                 gravity: bool = True) -> np.ndarray:
@@ -384,14 +391,14 @@ class ChainKernel:
         for ``(n_joints, n_scen)`` arrays."""
         q, dq, ddq = (np.ascontiguousarray(x, dtype=float) for x in (q, dq, ddq))
         out = np.empty_like(q)
-        _inverse_batch(q, dq, ddq, gravity, *self._model, self._gravity, out)
+        self._kernels[1](q, dq, ddq, gravity, *self._model, self._gravity, out)
         return out
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         """Mass matrices ``(n_scen, n_joints, n_joints)``, kg*m^2, at ``(n_joints, n_scen)`` q."""
         q = np.ascontiguousarray(q, dtype=float)
         out = np.zeros((q.shape[1], self.n_joints, self.n_joints))
-        _mass_batch(q, *self._model, out)
+        self._kernels[2](q, *self._model, out)
         return out
 
     def kinetic_split(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
@@ -422,7 +429,8 @@ class ChainKernel:
         return out
 
 
-def chain_kernel(chain: ChainParams, joints: Sequence[JointParams]) -> ChainKernel:
+def chain_kernel(chain: ChainParams, joints: Sequence[JointParams], parallel: bool = False
+                 ) -> ChainKernel:
     """The compiled model of ``chain`` after checking it moves exactly ``joints`` (same names and
     order) and that they carry no gravity load of their own; InvalidInputError otherwise."""
     names = tuple(j.name for j in joints)
@@ -437,7 +445,7 @@ def chain_kernel(chain: ChainParams, joints: Sequence[JointParams]) -> ChainKern
             f"joints {loaded}: gravity_mass and com_distance must be 0 with a chain (its links "
             "carry the gravity load)"
         )
-    return ChainKernel(chain)
+    return ChainKernel(chain, parallel)
 
 
 def apparent_inertia(joints: Sequence[JointParams], kernel: ChainKernel) -> list[JointParams]:
