@@ -42,6 +42,7 @@ setup(
         "tqdm>=4.66,<5",
         "psutil>=5.9,<8",
         "numba>=0.61,<1",
+        "pin>=4,<5",
     ],
     extras_require={
         "ros": ROS_WHEELS,

@@ -4,8 +4,16 @@
 retreat; 5 s at 1 kHz) on the antagonistic mechanism with a mixed campaign of perturbations.
 Reports simulated seconds per wall second on one core, the per-scenario speed-up over
 ``solve_ivp`` (RK45, rtol 1e-8) timed on a sample of the same scenarios in the same run, and the
-largest angle error against it, separately for scenarios with and without contact. One JSON
-object per line; the last line is ``{"bench": "sim", ...}``.
+largest angle error against it, separately for scenarios with and without contact.
+
+The coupled part runs the same campaign on the cork_seat arm read from its URDF (one rigid-body
+chain, compiled kernel) on one numba thread, times a per-scenario RK4 loop calling Pinocchio's
+``aba`` at every stage on a sample of those scenarios (torques and walls only: that loop has no
+impulses or holds), runs a seven-joint example arm, checks accelerations against ``pin.aba``,
+and times the coupled batch with its kernel on two threads (``parallel=True``; by default the
+kernel runs on one). CPU times come from ``time.process_time`` (all
+threads of this process); the machine is shared, so the load average is reported beside them.
+One JSON object per line; the last line is ``{"bench": "sim", ...}``.
 """
 
 from __future__ import annotations
@@ -18,8 +26,11 @@ os.environ["OPENBLAS_NUM_THREADS"] = "1"
 os.environ["MKL_NUM_THREADS"] = "1"
 
 import time  # noqa: E402
+from pathlib import Path  # noqa: E402
 
+import numba  # noqa: E402
 import numpy as np  # noqa: E402
+import pinocchio as pin  # noqa: E402
 from _timing import emit  # noqa: E402
 
 from compliant_demo.models import AntagonisticParams, JointParams  # noqa: E402
@@ -30,8 +41,11 @@ from compliant_demo.perturbation import (  # noqa: E402
     Uniform,
     draw_scenarios,
 )
+from compliant_demo.plant import load_plant  # noqa: E402
 from compliant_demo.sim import simulate  # noqa: E402
 from compliant_demo.sim.reference import reference_solve  # noqa: E402
+from compliant_demo.sim.rigid_body import ChainKernel  # noqa: E402
+from compliant_demo.sim.urdf import pinocchio_model  # noqa: E402
 
 N_SCENARIOS = 1000
 DURATION_S = 5.0
@@ -87,6 +101,117 @@ CAMPAIGN = CampaignSpec(
 )
 
 
+CONFIG = Path(__file__).resolve().parent.parent / "config"
+N_ARM7 = 200
+N_PIN_LOOP = 3
+# the per-scenario Pinocchio loop has no impulses or holds (the coupled arm handles them through
+# its mass matrix inside the batched simulator only)
+LOOP_KINDS = {"torque_step", "torque_window", "sinusoid", "random_torque", "wall"}
+
+
+def arm7_commands(plant) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Equilibrium (rad), stiffness (N*m/rad) and damping (N*m*s/rad) for the 7-joint arm, 5 s:
+    every joint swings a third of its range about its middle, stiffness at 40 % of its range,
+    damping for a damping ratio of 0.5 on its apparent inertia (diagonal of M at zero)."""
+    n = int(round(DURATION_S / DT))
+    t = np.arange(n)[:, None] * DT
+    lower = np.array([j.lower_limit for j in plant.joints])
+    upper = np.array([j.upper_limit for j in plant.joints])
+    middle, swing = 0.5 * (lower + upper), (upper - lower) / 6
+    phase = np.arange(len(plant.joints)) * 0.7
+    equilibrium = middle + swing * np.sin(2 * np.pi * 0.4 * t + phase)
+    mechanisms = plant.mechanisms
+    k = np.array([m.stiffness_min + 0.4 * (m.stiffness_max - m.stiffness_min) for m in mechanisms])
+    inertia = np.array([j.inertia for j in plant.joints])
+    damping = np.clip(2 * 0.5 * np.sqrt(k * inertia), [m.damping_min for m in mechanisms],
+                      [m.damping_max for m in mechanisms])
+    return equilibrium, np.broadcast_to(k, (n, k.size)), np.broadcast_to(damping, (n, k.size))
+
+
+def max_rel_accel_error() -> float:
+    """Largest |ours - pin.aba| / |pin.aba| over 500 random states of each shipped arm."""
+    worst = 0.0
+    for name in ("arm_cork_seat", "arm7_example"):
+        plant = load_plant(CONFIG / f"{name}.yaml")
+        model = pinocchio_model(Path(__file__).resolve().parent.parent / "compliant_demo"
+                                / "data" / f"{name}.urdf")
+        data = model.createData()
+        rng = np.random.default_rng(SEED)
+        n = model.nv
+        q, dq, tau = (rng.uniform(-lim, lim, (n, 500)) for lim in (np.pi, 4.0, 6.0))
+        ours = np.zeros((n, 500))
+        ChainKernel(plant.chain).forward(q, dq, tau, np.ones((n, 500)), ours)
+        ref = np.array([pin.aba(model, data, q[:, s], dq[:, s], tau[:, s])
+                        for s in range(500)]).T
+        worst = max(worst, float(np.max(np.abs(ours - ref) / np.abs(ref))))
+    return worst
+
+
+def _timed(run) -> tuple[object, float, float]:
+    start, start_cpu = time.perf_counter(), time.process_time()
+    result = run()
+    return result, time.perf_counter() - start, time.process_time() - start_cpu
+
+
+def coupled(equilibrium: np.ndarray, stiffness: np.ndarray, schedules: list) -> dict:
+    """The coupled keys of the last line (see the module docstring)."""
+    plant = load_plant(CONFIG / "arm_cork_seat.yaml")
+    model = pinocchio_model(Path(__file__).resolve().parent.parent / "compliant_demo" / "data"
+                            / "arm_cork_seat.urdf")
+    data = model.createData()
+
+    def batch(parallel: bool = False):
+        return simulate(plant.joints, plant.mechanism, equilibrium, stiffness,
+                        schedules=schedules, decimation=DECIMATION, seed=SEED,
+                        chain=plant.chain, parallel=parallel)
+
+    for parallel in (False, True):  # warm-up: compiled kernels load from the cache
+        simulate(plant.joints, plant.mechanism, equilibrium[:200], stiffness[:200],
+                 chain=plant.chain, parallel=parallel)
+    runs = [_timed(batch) for _ in range(2)]
+    result = runs[0][0]
+    wall_1, cpu_1 = min(r[1] for r in runs), min(r[2] for r in runs)
+    numba.set_num_threads(2)
+    wall_2 = min(_timed(lambda: batch(parallel=True))[1] for _ in range(2))
+    simulated_s = N_SCENARIOS * DURATION_S
+    emit({"bench": "sim_coupled", "n_scenarios": N_SCENARIOS, "threads": 1,
+          "wall_s": round(wall_1, 3), "cpu_s": round(cpu_1, 3), "wall_2_threads_s":
+          round(wall_2, 3), "load_average": os.getloadavg()})
+
+    eligible = [s for s, schedule in enumerate(schedules)
+                if set(schedule.kinds) <= LOOP_KINDS and schedule.kinds]
+    loop_cpu, loop_error = [], 0.0
+    for s in eligible[:N_PIN_LOOP]:
+        (q_ref, _), _, cpu = _timed(lambda s=s: reference_solve(
+            plant.joints, plant.mechanism, equilibrium, stiffness, schedules=schedules,
+            scenario=s, dt=DT, seed=SEED, method="RK4",
+            forward_dynamics=lambda q, dq, tau: pin.aba(model, data, q, dq, tau)))
+        loop_cpu.append(cpu)
+        loop_error = max(loop_error, float(np.max(np.abs(result.q[:, s] - q_ref[::DECIMATION]))))
+        emit({"bench": "sim_pinocchio_loop", "scenario": s, "kinds": schedules[s].kinds,
+              "cpu_s": round(cpu, 3)})
+
+    arm7 = load_plant(CONFIG / "arm7_example.yaml")
+    eq7, k7, d7 = arm7_commands(arm7)
+    spec7 = CAMPAIGN.model_copy(update={"joints": list(range(7))})
+    schedules7 = draw_scenarios(spec7, N_ARM7, SEED)
+    simulate(arm7.joints, arm7.mechanisms, eq7[:100], k7[:100], d7[:100], chain=arm7.chain)
+    _, wall7, cpu7 = _timed(lambda: simulate(
+        arm7.joints, arm7.mechanisms, eq7, k7, d7, schedules=schedules7,
+        decimation=DECIMATION, seed=SEED, chain=arm7.chain))
+    emit({"bench": "sim_arm7", "n_scenarios": N_ARM7, "threads": 1, "wall_s": round(wall7, 3),
+          "cpu_s": round(cpu7, 3)})
+    return {
+        "coupled_realtime_factor_cpu": round(simulated_s / cpu_1, 1),
+        "speedup_vs_pinocchio_loop": round(float(np.mean(loop_cpu)) / (cpu_1 / N_SCENARIOS), 1),
+        "max_abs_angle_error_vs_pinocchio_loop_rad": loop_error,
+        "arm7_realtime_factor_cpu": round(N_ARM7 * DURATION_S / cpu7, 1),
+        "max_rel_accel_error_vs_pinocchio": max_rel_accel_error(),
+        "parallel_scaling_2_cores": round(wall_1 / wall_2, 2),
+        "load_average_1_5_15_min": [round(x, 2) for x in os.getloadavg()],
+    }
+
+
 def main() -> None:
     equilibrium, stiffness = cork_seat_commands()
     schedules = draw_scenarios(CAMPAIGN, N_SCENARIOS, SEED)
@@ -134,6 +259,7 @@ def main() -> None:
                           "kinds": schedules[s].kinds, "solve_ivp_s": round(ref_times[-1], 3),
                           "max_abs_angle_error_rad": error})
 
+    coupled_keys = coupled(equilibrium, stiffness, schedules)
     residual = np.abs(result.energy.balance_residual()[-1])
     scale = np.abs(result.energy.actuator_work[-1]) + result.energy.dissipated[-1] + 1e-12
     emit({
@@ -148,6 +274,7 @@ def main() -> None:
         "scenarios_with_contact": int(contact.sum()),
         "reference_scenarios": len(sample),
         "median_energy_balance_residual_rel": float(np.median(residual / scale)),
+        **coupled_keys,
     })
 
 

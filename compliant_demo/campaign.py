@@ -27,6 +27,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from compliant_demo.evaluation import ACTUATOR_LOADS
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import (
     CampaignSpec,
@@ -167,6 +168,8 @@ class ReplayCampaign:
             config["goal"] = list(setup.goal)
         if math.isfinite(setup.max_stiffness_rate):
             config["max_stiffness_rate"] = setup.max_stiffness_rate
+        if not setup.feedforward:
+            config["feedforward"] = False
         return config
 
     @classmethod
@@ -190,6 +193,7 @@ class ReplayCampaign:
             settle_s=config["settle_s"], method=config["method"],
             goal=None if goal is None else tuple(goal),
             max_stiffness_rate=config.get("max_stiffness_rate", math.inf),
+            feedforward=config.get("feedforward", True),
         )
         return cls(setup, spec, config["n_scenarios"], seed=config["seed"],
                    decimation=config["decimation"], stratify_kinds=config["stratify_kinds"],
@@ -227,7 +231,8 @@ class ReplayCampaign:
                 schedule, {name: value[column] for name, value in final_energy.items()},
                 recovery_band=self.recovery_band,
             )
-            reason = setup.violation(result.t, q, tau_mechanism, steps)
+            loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}
+            reason = setup.violation(result.t, q, tau_mechanism, steps, loads)
             trace = {"t": result.t.copy()}
             trace.update({name: getattr(result, name)[:, column, :].copy()
                           for name in TRACE_CHANNELS})

@@ -22,15 +22,23 @@ from numpy.typing import ArrayLike, NDArray
 
 from compliant_demo.arrays import finite_array, time_axis
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, JointParams
+from compliant_demo.models import (
+    AntagonisticParams,
+    ChainParams,
+    IdealImpedanceParams,
+    JointParams,
+    MechanismParams,
+)
 from compliant_demo.primitives import Rollout
-from compliant_demo.sim import GRAVITY
+from compliant_demo.sim.feedforward import inverse_dynamics
+from compliant_demo.sim.rigid_body import ChainKernel
 
 __all__ = [
     "Stretch",
     "ScheduleReport",
     "check_schedule",
     "outcome_metrics",
+    "ACTUATOR_LOADS",
     "limit_excess",
     "first_limit_violation",
 ]
@@ -153,20 +161,19 @@ def _mechanism_limits(
     return {name: table[:, i] for i, name in enumerate(names)}
 
 
-def _required_torque(joints: Sequence[JointParams], rollout: Rollout) -> NDArray[np.float64]:
+def _required_torque(joints: Sequence[JointParams], rollout: Rollout,
+                     chain: ChainParams | None) -> NDArray[np.float64]:
     """Torque the spring must supply to move the link along the rollout, N*m.
 
-    I*q'' + b*q' + c*tanh(q'/v_s) + m*g*l*sin(q - q_g): inertia, viscous and smoothed Coulomb
-    friction, and gravity (whose potential m*g*l*(1 - cos(q - q_g)) the simulator uses).
+    The path's inverse dynamics on the target (:func:`compliant_demo.sim.feedforward.
+    inverse_dynamics`: I*q'' + b*q' + m*g*l*sin(q - q_g) per joint, or the coupled arm's
+    M(q)q'' + C(q, q')q' + g(q) + b*q') plus the smoothed Coulomb friction c*tanh(q'/v_s).
     """
-    column = {name: np.array([getattr(j, name) for j in joints]) for name in (
-        "inertia", "viscous_damping", "coulomb_friction", "friction_smoothing_velocity",
-        "gravity_mass", "com_distance", "gravity_offset")}
-    q, dq = rollout.position, rollout.velocity
-    return (column["inertia"] * rollout.acceleration + column["viscous_damping"] * dq
-            + column["coulomb_friction"] * np.tanh(dq / column["friction_smoothing_velocity"])
-            + column["gravity_mass"] * GRAVITY * column["com_distance"]
-            * np.sin(q - column["gravity_offset"]))
+    coulomb = np.array([j.coulomb_friction for j in joints])
+    smoothing = np.array([j.friction_smoothing_velocity for j in joints])
+    dq = rollout.velocity
+    return (inverse_dynamics(joints, rollout.position, dq, rollout.acceleration, chain=chain)
+            + coulomb * np.tanh(dq / smoothing))
 
 
 def check_schedule(
@@ -178,6 +185,7 @@ def check_schedule(
     min_damping_ratio: float = 0.5,
     extra_deflection: ArrayLike = 0.0,
     energy_budget: float = 0.05,
+    chain: ChainParams | None = None,
 ) -> ScheduleReport:
     """Check a rollout's impedance schedule against the target joints and their mechanism.
 
@@ -191,6 +199,7 @@ def check_schedule(
     extra_deflection : deflection assumed on top of the predicted one, rad, scalar or (n_joints,);
         e.g. the press depth of a contact phase
     energy_budget : energy tank capacity per joint, J
+    chain : the coupled arm of the joints, or None (independent joints)
 
     Returns
     -------
@@ -198,7 +207,11 @@ def check_schedule(
 
     Notes
     -----
-    Damping ratio zeta = d / (2*sqrt(k*I)) of the joint's second-order dynamics. The deflection is
+    Damping ratio zeta = d / (2*sqrt(k*I)) of the joint's second-order dynamics. On a coupled
+    arm I is the diagonal entry M_jj(q) of the mass matrix at each sample of the path: the
+    inertia joint j moves with the others held still, matched to the per-joint (diagonal)
+    stiffness and damping being checked; the eigen-decomposition of M would mix joints whose
+    stiffness and damping differ. The deflection is
     the spring torque the joint needs along the path (:func:`_required_torque`) divided by the
     stiffness, plus ``extra_deflection``. Raising stiffness K while deflected by x changes the
     spring energy 1/2*K*x^2 by 1/2*dK/dt*x^2 per second without any motion, which breaks
@@ -230,7 +243,8 @@ def check_schedule(
 
     t = rollout.t
     limits = _mechanism_limits(mechanisms)
-    inertia = np.array([j.inertia for j in params])
+    inertia = (np.array([j.inertia for j in params]) if chain is None
+               else ChainKernel(chain).mass_matrix(rollout.position.T).diagonal(axis1=1, axis2=2))
     viscous = np.array([j.viscous_damping for j in params])
     controllable = ~np.isnan(limits["d_min"])
     stiffness = np.clip(rollout.stiffness, limits["k_min"], limits["k_max"])
@@ -243,7 +257,7 @@ def check_schedule(
     ratio = damping / (2.0 * np.sqrt(stiffness * inertia))
     k_rate = np.gradient(rollout.stiffness, t, axis=0)
     d_rate = np.gradient(rollout.damping, t, axis=0)
-    torque = _required_torque(params, rollout)
+    torque = _required_torque(params, rollout, chain)
     deflection = np.abs(torque) / stiffness + extra
     # The energy follows the stiffness the mechanism realises, not the command beyond its range.
     power = 0.5 * np.gradient(stiffness, t, axis=0) * deflection**2
@@ -433,8 +447,14 @@ def outcome_metrics(
     return metrics
 
 
+#: Actuator loads checked against the antagonistic mechanism's limits: (load, limit field).
+ACTUATOR_LOADS = {"spring_tension": "spring_tension_limit", "motor_torque": "motor_torque_limit"}
+
+
 def limit_excess(
-    position: NDArray[np.float64], torque: NDArray[np.float64], joints: Sequence[JointParams]
+    position: NDArray[np.float64], torque: NDArray[np.float64], joints: Sequence[JointParams],
+    *, loads: Mapping[str, NDArray[np.float64]] | None = None,
+    mechanisms: Sequence[MechanismParams] | None = None,
 ) -> dict[str, NDArray[np.float64]]:
     """How far each sample lies beyond a joint's limits (positive: beyond).
 
@@ -443,19 +463,31 @@ def limit_excess(
     position : (n_samples, n_joints) rad
     torque : (n_samples, n_joints) N*m, the mechanism's torque on the link
     joints : JointParams per column
+    loads : {"spring_tension" | "motor_torque": (n_samples, n_joints) N*m}, optional: the
+        actuator loads the simulator records (:class:`compliant_demo.sim.SimResult`)
+    mechanisms : mechanism record per column, whose limits the loads are checked against
+        (a record without such a limit: none)
 
     Returns
     -------
-    dict with ``"position"`` (distance outside [lower_limit, upper_limit], rad) and ``"torque"``
-    (|torque| - torque_limit, N*m), each (n_samples, n_joints).
+    dict with ``"position"`` (distance outside [lower_limit, upper_limit], rad), ``"torque"``
+    (|torque| - torque_limit, N*m) and each given load minus its limit (N*m), each
+    (n_samples, n_joints).
     """
     lower = np.array([j.lower_limit for j in joints])
     upper = np.array([j.upper_limit for j in joints])
     limit = np.array([j.torque_limit for j in joints])
-    return {
+    excess = {
         "position": np.maximum(lower - position, position - upper),
         "torque": np.abs(torque) - limit,
     }
+    for name, values in (loads or {}).items():
+        field = ACTUATOR_LOADS[name]
+        bound = np.array([getattr(m, field, np.inf) for m in mechanisms or ()])
+        if bound.shape != (len(joints),):
+            raise InvalidInputError(f"mechanisms: one record per joint needed to check {name}")
+        excess[name] = np.asarray(values, dtype=float) - bound
+    return excess
 
 
 def first_limit_violation(
@@ -466,6 +498,8 @@ def first_limit_violation(
     *,
     stiffness_rate: ArrayLike | None = None,
     max_stiffness_rate: float = float("inf"),
+    loads: Mapping[str, NDArray[np.float64]] | None = None,
+    mechanisms: Sequence[MechanismParams] | None = None,
 ) -> str | None:
     """The first sample beyond a joint's torque limit or range, or whose commanded stiffness
     changes faster than ``max_stiffness_rate``, described in one line; None when there is none.
@@ -479,17 +513,20 @@ def first_limit_violation(
     stiffness_rate : (n_samples, n_joints) N*m/rad/s, |rate| of the stiffness command in force
         at each sample, optional
     max_stiffness_rate : N*m/rad/s
+    loads, mechanisms : actuator loads and the records with their limits (see
+        :func:`limit_excess`)
 
     Notes
     -----
-    Within the first offending sample the joints are taken in order, torque before range, and
-    the stiffness rate last: the order a controller checking one period at a time meets them.
+    Within the first offending sample the joints are taken in order, torque before range before
+    spring tension before motor torque, and the stiffness rate last: the order a controller
+    checking one period at a time meets them.
     """
     times = np.asarray(t, dtype=float).reshape(-1)
     q = np.asarray(position, dtype=float)
     tau = np.asarray(torque, dtype=float)
-    excess = limit_excess(q, tau, joints)
-    bad = (excess["torque"] > 0) | (excess["position"] > 0)
+    excess = limit_excess(q, tau, joints, loads=loads, mechanisms=mechanisms)
+    bad = np.logical_or.reduce([value > 0 for value in excess.values()])
     rate = None
     if stiffness_rate is not None and np.isfinite(max_stiffness_rate):
         rate = np.asarray(stiffness_rate, dtype=float)
@@ -510,6 +547,12 @@ def first_limit_violation(
             reached, _ = _apart(q[k, j], bound)
             return (f"joint range: {joint.name} at {reached} rad outside "
                     f"[{joint.lower_limit:.4g}, {joint.upper_limit:.4g}] rad {when}")
+        for name, field in ACTUATOR_LOADS.items():
+            if name in excess and excess[name][k, j] > 0:
+                assert loads is not None and mechanisms is not None
+                reached, limit = _apart(float(loads[name][k, j]), getattr(mechanisms[j], field))
+                return (f"{name.replace('_', ' ')} limit: {joint.name} {reached} N*m beyond "
+                        f"the {limit} N*m limit {when}")
     assert rate is not None
     j = int(np.argmax(rate[k]))
     reached, limit = _apart(rate[k, j], max_stiffness_rate)

@@ -7,11 +7,20 @@ from YAML through :func:`load_yaml_model` (safe loading only).
 from __future__ import annotations
 
 import re
+from copy import copy
 from pathlib import Path
-from typing import Annotated, ClassVar, Literal, TypeVar
+from typing import Annotated, Any, ClassVar, Literal, TypeVar
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SerializerFunctionWrapHandler,
+    ValidationError,
+    model_serializer,
+    model_validator,
+)
 
 from compliant_demo.exceptions import InvalidInputError
 
@@ -20,6 +29,9 @@ __all__ = [
     "IdealImpedanceParams",
     "AntagonisticParams",
     "MechanismParams",
+    "ActuatorParams",
+    "BodyParams",
+    "ChainParams",
     "load_yaml_model",
     "model_from_mapping",
     "read_yaml",
@@ -28,12 +40,27 @@ __all__ = [
 ]
 
 PositiveFloat = Annotated[float, Field(gt=0, allow_inf_nan=False)]
+PositiveLimit = Annotated[float, Field(gt=0)]
 NonNegativeFloat = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
 
 
 class _Record(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+#: Fields added after records were first stored: left out of a dump while at their defaults, so
+#: stored records (campaign configs) still compare equal and infinite limits never reach JSON.
+_ACTUATOR_LIMITS = ("spring_tension_limit", "motor_torque_limit", "motor_inertia")
+
+
+def _without_defaults(data: dict[str, Any], record: BaseModel, names: tuple[str, ...]
+                      ) -> dict[str, Any]:
+    fields = type(record).model_fields
+    for name in names:
+        if getattr(record, name) == fields[name].default:
+            data.pop(name, None)
+    return data
 
 
 class JointParams(_Record):
@@ -153,6 +180,20 @@ class AntagonisticParams(_Record):
     stiffness_max: PositiveFloat = Field(
         200.0, description="Highest stiffness commands are clamped to, N*m/rad."
     )
+    spring_tension_limit: PositiveLimit = Field(
+        float("inf"),
+        description="Largest tension of either spring, as torque about the joint, N*m (inf: none).",
+    )
+    motor_torque_limit: PositiveLimit = Field(
+        float("inf"), description="Largest torque either motor gives, N*m (inf: none)."
+    )
+    motor_inertia: NonNegativeFloat = Field(
+        0.0, description="Reflected inertia of each motor at the spring, kg*m^2."
+    )
+
+    @model_serializer(mode="wrap")
+    def _drop_unset_limits(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        return _without_defaults(handler(self), self, _ACTUATOR_LIMITS)
 
     @model_validator(mode="after")
     def _ranges_ordered(self) -> AntagonisticParams:
@@ -176,6 +217,84 @@ class AntagonisticParams(_Record):
 MechanismParams = Annotated[
     IdealImpedanceParams | AntagonisticParams, Field(discriminator="kind")
 ]
+
+def _joint_field(name: str) -> Any:
+    """A copy of JointParams' field ``name`` (default, description) for another record."""
+    return copy(JointParams.model_fields[name])
+
+
+class ActuatorParams(_Record):
+    """What a URDF does not say about one joint: its actuator mechanism, end stops and sensors.
+
+    A plant read from a URDF takes inertias, limits, damping and friction from the URDF and
+    these fields from our own YAML (see :func:`compliant_demo.plant.load_plant`).
+    """
+
+    mechanism: MechanismParams = Field(..., description="Variable-stiffness mechanism.")
+    friction_smoothing_velocity: PositiveFloat = _joint_field("friction_smoothing_velocity")
+    limit_stiffness: PositiveFloat = _joint_field("limit_stiffness")
+    limit_damping: NonNegativeFloat = _joint_field("limit_damping")
+    torque_noise_std: NonNegativeFloat = _joint_field("torque_noise_std")
+    encoder_resolution: NonNegativeFloat = _joint_field("encoder_resolution")
+
+
+Vector3 = tuple[FiniteFloat, FiniteFloat, FiniteFloat]
+
+
+class BodyParams(_Record):
+    """One revolute joint of a serial chain and the rigid link it moves.
+
+    Frames follow the URDF: the joint frame sits at ``placement_xyz`` in the previous joint's
+    frame, rotated by ``placement_rotation``; the joint turns about ``axis`` (in its own frame)
+    through its origin. Inertial data are in the joint frame.
+    """
+
+    joint: str = Field(..., min_length=1, description="Joint name.")
+    placement_xyz: Vector3 = Field(
+        (0.0, 0.0, 0.0), description="Joint origin in the parent joint frame, m."
+    )
+    placement_rotation: tuple[FiniteFloat, ...] = Field(
+        (1.0, 0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 1.0),
+        min_length=9, max_length=9,
+        description="Rotation of the joint frame in the parent frame, row-major 3x3, 1.",
+    )
+    axis: Vector3 = Field(..., description="Unit rotation axis in the joint frame, 1.")
+    mass: PositiveFloat = Field(..., description="Mass of the moved link, kg.")
+    com: Vector3 = Field((0.0, 0.0, 0.0), description="Centre of mass in the joint frame, m.")
+    inertia: tuple[FiniteFloat, ...] = Field(
+        ..., min_length=6, max_length=6,
+        description="Inertia about the centre of mass (ixx, ixy, ixz, iyy, iyz, izz), kg*m^2.",
+    )
+    velocity_limit: PositiveLimit = Field(
+        float("inf"), description="Largest joint speed, rad/s (inf = none)."
+    )
+
+    @model_serializer(mode="wrap")
+    def _drop_unset_limit(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        return _without_defaults(handler(self), self, ("velocity_limit",))
+
+    @model_validator(mode="after")
+    def _unit_axis(self) -> BodyParams:
+        norm = sum(a * a for a in self.axis) ** 0.5
+        if abs(norm - 1.0) > 1e-9:
+            raise ValueError(f"axis {self.axis} of joint {self.joint!r} is not a unit vector")
+        return self
+
+
+class ChainParams(_Record):
+    """A serial chain of revolute joints from a fixed base: the coupled rigid-body model."""
+
+    bodies: tuple[BodyParams, ...] = Field(..., min_length=1, description="Base to tip.")
+    gravity: Vector3 = Field(
+        (0.0, 0.0, -9.80665), description="Gravity in the base frame, m/s^2 (ISO 80000-3)."
+    )
+    source: str = Field("", description="Where the model came from (a URDF file name).")
+
+    @property
+    def joint_names(self) -> tuple[str, ...]:
+        """Joint names, base to tip."""
+        return tuple(body.joint for body in self.bodies)
+
 
 ModelT = TypeVar("ModelT", bound=BaseModel)
 

@@ -8,6 +8,12 @@ settle time, one limit check (:func:`compliant_demo.evaluation.first_limit_viola
 find perturbation windows (:meth:`PerturbationSchedule.windows`) and one set of outcome metrics,
 measured against the unperturbed replay of the same setup.
 
+The equilibrium command carries the path's inverse dynamics on the target plant by default
+(``feedforward``, see :mod:`compliant_demo.sim.feedforward`): ``q_eq = q_d + K^-1 * tau_ID``, so
+gravity and the path's accelerations no longer make the joint sag behind its commanded path and
+an unperturbed replay's goal error measures tracking, not sag. ``feedforward=False`` sends the
+taught path itself as the equilibrium, to show the sag.
+
 The damping rule: a mechanism without a damping input (antagonistic springs) is sent no damping
 command at all. It could not realise one; sending it anyway only draws a warning from the
 simulator, and a trace listing a damping the joint never had would mislead whoever reads it.
@@ -24,13 +30,14 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import NDArray
 
-from compliant_demo.evaluation import first_limit_violation, outcome_metrics
+from compliant_demo.evaluation import ACTUATOR_LOADS, first_limit_violation, outcome_metrics
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import JointParams, MechanismParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import Rollout, Skill
 from compliant_demo.sim import SimResult, Simulator, StepState
+from compliant_demo.sim.feedforward import feedforward_equilibrium, inverse_dynamics
 from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
@@ -93,6 +100,7 @@ class ReplaySetup:
     goal : new goal per joint, rad; None = the demonstrated one
     method : integrator of :class:`compliant_demo.sim.Simulator`
     max_stiffness_rate : a commanded stiffness changing faster is a violation, N*m/rad/s
+    feedforward : add the path's inverse dynamics to the equilibrium command (module docstring)
     """
 
     skill: Skill
@@ -103,6 +111,7 @@ class ReplaySetup:
     goal: tuple[float, ...] | None = None
     method: str = "rk4"
     max_stiffness_rate: float = math.inf
+    feedforward: bool = True
 
     def __post_init__(self) -> None:
         if not (math.isfinite(self.dt) and self.dt > 0):
@@ -152,10 +161,23 @@ class ReplaySetup:
         stiffness = rollout.stiffness[:n]
         rate = np.zeros_like(stiffness)
         rate[1:] = np.abs(np.diff(stiffness, axis=0)) / self.dt
+        damping = damping_command(self.plant.mechanism, rollout.damping[:n])
+        equilibrium = rollout.position[:n]
+        if self.feedforward:
+            torque = inverse_dynamics(
+                self.joints, equilibrium, rollout.velocity[:n], rollout.acceleration[:n],
+                chain=self.plant.chain, damping=damping,
+            )
+            mechanisms = self.plant.mechanisms_for(self.skill.joints)
+            lowest = np.array([m.stiffness_min for m in mechanisms])
+            highest = np.array([m.stiffness_max for m in mechanisms])
+            # divide by the stiffness the mechanism will realise, not a command it clamps
+            equilibrium = feedforward_equilibrium(
+                equilibrium, np.clip(stiffness, lowest, highest), torque)
         return ReplayCommands(
-            equilibrium=rollout.position[:n],
+            equilibrium=equilibrium,
             stiffness=stiffness,
-            damping=damping_command(self.plant.mechanism, rollout.damping[:n]),
+            damping=damping,
             stiffness_rate=rate,
         )
 
@@ -195,7 +217,7 @@ class ReplaySetup:
         """A simulator of this setup for one scenario per schedule (one unperturbed if None)."""
         return Simulator(
             self.joints,
-            self.plant.mechanism,
+            self.plant.mechanisms_for(self.skill.joints),
             n_scenarios=1 if schedules is None else len(schedules),
             dt=self.dt,
             method=self.method,
@@ -203,6 +225,7 @@ class ReplaySetup:
             schedules=None if schedules is None else list(schedules),
             seed=int(seed),
             horizon_steps=self.n_steps,
+            chain=self.plant.chain,
         )
 
     def simulate(
@@ -216,13 +239,15 @@ class ReplaySetup:
 
     def violation(
         self, t: NDArray[np.float64], q: NDArray[np.float64], torque: NDArray[np.float64],
-        steps: NDArray[np.intp],
+        steps: NDArray[np.intp], loads: Mapping[str, NDArray[np.float64]] | None = None,
     ) -> str | None:
         """The first limit violation among samples at times ``t`` (s) reached after control
-        periods ``steps`` (index of the command in force), or None."""
+        periods ``steps`` (index of the command in force), or None; ``loads`` are the samples'
+        spring tensions and motor torques (N*m), checked against the mechanism's limits."""
         rate = self.commands.stiffness_rate[np.clip(steps, 0, self.n_steps - 1)]
         return first_limit_violation(t, q, torque, self.joints, stiffness_rate=rate,
-                                     max_stiffness_rate=self.max_stiffness_rate)
+                                     max_stiffness_rate=self.max_stiffness_rate, loads=loads,
+                                     mechanisms=self.plant.mechanisms_for(self.skill.joints))
 
     def metrics(
         self,
@@ -331,7 +356,8 @@ class ReplayRun:
             self._trace[name][k] = getattr(state, name)[0]
         self.steps_done = k + 1
         self.stop_reason = self.setup.violation(
-            np.array([state.t]), state.q, state.tau_mechanism, np.array([k])
+            np.array([state.t]), state.q, state.tau_mechanism, np.array([k]),
+            {name: getattr(state, name) for name in ACTUATOR_LOADS},
         )
         return state
 

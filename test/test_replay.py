@@ -64,7 +64,9 @@ def test_replay_run_steps_the_same_trajectory_as_simulate(skill) -> None:
         }
     )
     plant = _ideal()
-    run = ReplayRun(ReplaySetup(skill, plant, dt=1e-3, settle_s=0.3), schedule, seed=9)
+    # without feedforward the equilibrium command is the rollout's path, as simulate_rollout sends
+    setup = ReplaySetup(skill, plant, dt=1e-3, settle_s=0.3, feedforward=False)
+    run = ReplayRun(setup, schedule, seed=9)
     while not run.finished:
         run.step()
     status, reason, metrics, trace = run.outcome()
@@ -94,7 +96,9 @@ def _narrow(joint: JointParams, **changes) -> JointParams:
 @pytest.mark.parametrize(
     "plant_changes, run_kwargs, reason",
     [
-        ({"torque_limit": 0.05}, {}, r"torque limit: \w+ mechanism torque"),
+        # the raw path: torque builds up as the joint sags (with feedforward the springs carry
+        # gravity, above this limit, from the first step)
+        ({"torque_limit": 0.05}, {"feedforward": False}, r"torque limit: \w+ mechanism torque"),
         ({"upper_limit": 0.6}, {}, r"joint range: elbow at 0.6"),
         ({}, {"max_stiffness_rate": 1.0}, r"stiffness rate: \w+ commanded at"),
     ],
@@ -219,3 +223,136 @@ def test_node_stepping_the_command_and_a_campaign_give_identical_traces(
         np.testing.assert_array_equal(node_trace[name], scenario.trace[name][1 : n + 1],
                                       err_msg=name)
     np.testing.assert_array_equal(node_trace["t"], scenario.trace["t"][1 : n + 1])
+
+
+# ---------------------------------------------------------------- feedforward
+# Elastic-joint feedforward q_eq = q_d + K^-1 * tau_ID(q_d, dq_d, ddq_d) (Spong, J. Dyn. Sys.
+# Meas. Control 109, 1987; De Luca and Book, Springer Handbook of Robotics, 2008, ch. 13; from
+# memory). Static sag of a spring of stiffness K holding a pendulum m*g*l*sin(q) against
+# gravity: K * (q_eq - q) = m*g*l*sin(q) (common practice).
+
+def _realised(plant: ReplayPlant, stiffness: np.ndarray) -> np.ndarray:
+    """The stiffness the mechanism realises: the command clamped to its range, N*m/rad."""
+    return np.clip(stiffness, plant.mechanism.stiffness_min, plant.mechanism.stiffness_max)
+
+
+def _goal_errors(setup: ReplaySetup) -> np.ndarray:
+    from compliant_demo.replay import UNPERTURBED
+
+    result = setup.simulate([UNPERTURBED], seed=1)
+    return np.abs(result.q[-1, 0, :] - setup.rollout.position[-1])
+
+
+def test_feedforward_equilibrium_leads_the_path_by_its_inverse_dynamics(skill):
+    """Independent joints: tau_ID = I*ddq + m*g*l*sin(q) + b*dq (the elbow has no gravity)."""
+    plant = load_plant()
+    on, off = ReplaySetup(skill, plant), ReplaySetup(skill, plant, feedforward=False)
+    n = on.n_steps
+    np.testing.assert_array_equal(off.commands.equilibrium, off.rollout.position[:n])
+    q, dq, ddq = (getattr(on.rollout, name)[:n] for name in ("position", "velocity",
+                                                                "acceleration"))
+    inertia = np.array([j.inertia for j in plant.joints])
+    viscous = np.array([j.viscous_damping for j in plant.joints])
+    shoulder = plant.joints[0]
+    gravity = np.zeros_like(q)
+    gravity[:, 0] = (shoulder.gravity_mass * 9.80665 * shoulder.com_distance
+                     * np.sin(q[:, 0]))
+    torque = inertia * ddq + gravity + viscous * dq
+    lead = (on.commands.equilibrium - q) * _realised(plant, on.commands.stiffness)
+    np.testing.assert_allclose(lead, torque, rtol=1e-9, atol=1e-12)
+
+
+@pytest.fixture(scope="module")
+def stiff_skill(scenario):
+    """The cork_seat skill held at 40 N*m/rad or more: both antagonistic springs stay taut under
+    the shoulder's gravity load, so the joint is the linear spring of the closed forms."""
+    records = teaching_series(scenario, 2, seed=3)
+    demos = [{"t": r.t, "position": r.position, "stiffness": r.hand_stiffness_truth}
+             for r in records]
+    return learn_skill(demos, joints=JOINTS, n_basis=20, alignment="resample",
+                       stiffness_range=(40.0, 200.0), name="cork_seat")
+
+
+def test_feedforward_removes_the_sag_from_the_unperturbed_goal_error(stiff_skill):
+    """Default plant (antagonistic springs, Coulomb friction c = 0.03 N*m on the shoulder), 3 s
+    to settle: without feedforward the shoulder's goal error is the static sag
+    m*g*l*sin(q)/K within the friction band c/K; with it what is left is tracking, far inside
+    that band."""
+    plant = load_plant()
+    off = ReplaySetup(stiff_skill, plant, feedforward=False, settle_s=3.0)
+    on = ReplaySetup(stiff_skill, plant, settle_s=3.0)
+    goal = off.rollout.position[-1]
+    stiffness = _realised(plant, off.commands.stiffness[-1])
+    shoulder = plant.joints[0]
+    sag = shoulder.gravity_mass * 9.80665 * shoulder.com_distance * np.sin(goal[0]) / stiffness[0]
+    band = shoulder.coulomb_friction / stiffness[0]
+    error_off, error_on = _goal_errors(off), _goal_errors(on)
+    assert abs(error_off[0] - abs(sag)) <= band
+    assert error_on[0] <= 0.05 * abs(sag)
+
+
+def test_feedforward_on_a_frictionless_ideal_plant_reaches_the_goal(skill):
+    """Ideal actuator without Coulomb friction, linear spring: with feedforward the steady state
+    is the goal itself (the sag term cancelled), up to what 3 s of settling leaves of the
+    transient (it decays exponentially: 1e-5 rad is a generous bound)."""
+    plant = load_plant(Path(__file__).resolve().parent.parent / "config"
+                       / "joint_cork_seat_ideal.yaml")
+    assert _goal_errors(ReplaySetup(skill, plant, settle_s=3.0)).max() <= 1e-5
+    assert _goal_errors(ReplaySetup(skill, plant, feedforward=False, settle_s=3.0)).max() >= 1e-3
+
+
+def test_feedforward_on_the_coupled_arm_carries_pinocchio_gravity(skill):
+    """Coupled arm: the lead times K is the arm's inverse dynamics, which at rest equals
+    Pinocchio's generalized gravity g(q) (reference library: pin.computeGeneralizedGravity)."""
+    import pinocchio as pin
+
+    from compliant_demo.sim.feedforward import inverse_dynamics
+    from compliant_demo.sim.urdf import pinocchio_model
+
+    root = Path(__file__).resolve().parent.parent
+    plant = load_plant(root / "config" / "arm_cork_seat.yaml")
+    setup = ReplaySetup(skill, plant)
+    goal = setup.rollout.position[-2]
+    model = pinocchio_model(root / "compliant_demo" / "data" / "arm_cork_seat.urdf")
+    gravity = pin.computeGeneralizedGravity(model, model.createData(), goal)
+    stiffness = _realised(plant, setup.commands.stiffness[-1])
+    rest = inverse_dynamics(setup.joints, goal[None], setup.rollout.velocity[-2:-1],
+                            setup.rollout.acceleration[-2:-1], chain=plant.chain)[0]
+    lead = (setup.commands.equilibrium[-1] - goal) * stiffness
+    np.testing.assert_allclose(lead, rest, rtol=1e-12, atol=1e-12)
+    # at rest (velocity and acceleration set to zero) the torque is Pinocchio's gravity alone
+    still = inverse_dynamics(setup.joints, goal[None], np.zeros((1, 2)), np.zeros((1, 2)),
+                             chain=plant.chain)[0]
+    np.testing.assert_allclose(still, gravity, rtol=1e-10, atol=1e-12)
+    error_on = _goal_errors(setup)
+    assert error_on.max() < 0.25 * _goal_errors(ReplaySetup(skill, plant, feedforward=False)).max()
+
+
+def test_campaign_config_names_feedforward_only_when_off(skill):
+    from compliant_demo.campaign import ReplayCampaign, default_campaign_spec
+
+    spec = default_campaign_spec(movement_s=1.0)
+    on = ReplayCampaign(ReplaySetup(skill, _ideal()), spec, n_scenarios=1, seed=1)
+    off = ReplayCampaign(ReplaySetup(skill, _ideal(), feedforward=False), spec, n_scenarios=1,
+                         seed=1)
+    assert "feedforward" not in on.config()
+    assert off.config()["feedforward"] is False
+    assert ReplayCampaign.from_config(skill, off.config()).setup.feedforward is False
+    assert ReplayCampaign.from_config(skill, on.config()).setup.feedforward is True
+
+
+def test_limit_messages_tell_the_reached_value_from_its_limit() -> None:
+    # A torque 0.0004 N*m past a 10 N*m limit must not read "10 N*m beyond 10 N*m".
+    from compliant_demo.evaluation import first_limit_violation
+
+    joints = [JointParams(name="shoulder", torque_limit=10.0, lower_limit=-1.0, upper_limit=1.0)]
+    message = first_limit_violation([0.5, 0.6], [[0.0], [0.0]], [[9.0], [-10.0004]], joints)
+    assert message == ("torque limit: shoulder mechanism torque -10.0004 N*m beyond the "
+                       "10 N*m limit at t = 0.600 s")
+    message = first_limit_violation([0.1], [[1.00002]], [[0.0]], joints)
+    assert message == "joint range: shoulder at 1.00002 rad outside [-1, 1] rad at t = 0.100 s"
+    rate = first_limit_violation([0.2], [[0.0]], [[0.0]], joints, stiffness_rate=[[120.0]],
+                                 max_stiffness_rate=100.0)
+    assert rate == ("stiffness rate: shoulder commanded at 120 N*m/rad/s beyond the 100 "
+                    "N*m/rad/s limit at t = 0.200 s")
+    assert first_limit_violation([0.1], [[0.5]], [[9.99]], joints) is None

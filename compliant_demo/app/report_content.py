@@ -207,7 +207,8 @@ def collect_report_content(
 
     target = plant.for_joints(joints)
     rollout = (job.setup if job else ReplaySetup(skill, plant)).rollout
-    checks = check_schedule(rollout, target, plant.mechanism, min_damping_ratio=min_damping_ratio)
+    checks = check_schedule(rollout, target, plant.mechanisms_for(joints),
+                            min_damping_ratio=min_damping_ratio, chain=plant.chain)
     figures.append(ReportFigure(
         "schedule_checks", "Learned stiffness and damping ratio along the skill",
         "The stiffness the skill commands (clamped to the mechanism's range) and the damping "

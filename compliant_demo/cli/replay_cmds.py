@@ -105,7 +105,8 @@ def _run(args: argparse.Namespace) -> int:
         print(f"replay of {skill.name} version {record.version} on the "
               f"{plant.describe()}: {status}"
               + (f" ({reason})" if reason else "") + f"; result {result_id}")
-        emit_table([{"metric": key, "value": metrics[key]} for key in _SHOWN],
+        # a replay stopped at its first step has no outcome metrics (they need two steps)
+        emit_table([{"metric": key, "value": metrics[key]} for key in _SHOWN if key in metrics],
                    ("metric", "value"), joints=skill.joints)
         emit_caution()
     return 0 if status == "ok" else 1

@@ -7,6 +7,9 @@ held constant over a step (zero-order hold, as a digital controller applies them
 integrals are integrated by the same method as the state, so the energy balance closes to the
 method's accuracy; :class:`Simulator` steps one command at a time for a real-time replay node,
 :func:`simulate` runs whole command arrays and records at a decimation.
+
+Without a chain each joint is an independent pendulum; with a :class:`ChainParams` the joint
+torques go through the coupled arm's compiled forward dynamics (:mod:`.rigid_body`).
 """
 
 from __future__ import annotations
@@ -18,10 +21,11 @@ from collections.abc import Sequence
 import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.models import JointParams
+from compliant_demo.models import ChainParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.sim.mechanisms import MechanismLike, make_mechanism
 from compliant_demo.sim.results import EnergyTraces, SimResult, StepState
+from compliant_demo.sim.rigid_body import apparent_inertia, chain_kernel
 from compliant_demo.sim.schedule import compile_schedules
 from compliant_demo.sim.stability import METHODS, check_step_stability
 
@@ -49,7 +53,7 @@ _CHANNELS = (
     "stiffness_realised", "damping_realised", "equilibrium_realised", "commands_clamped",
     "held", "in_contact", "kinetic", "spring_potential", "gravity_potential",
     "end_stop_potential", "actuator_work", "perturbation_work", "dissipated",
-    "stiffness_injection",
+    "stiffness_injection", "spring_tension", "motor_torque",
 )
 _BOOLEAN = ("commands_clamped", "held", "in_contact")
 
@@ -149,10 +153,17 @@ class Simulator:
     check_stability : refuse a step above the largest stable one (UnstableStepError)
     horizon_steps : steps the run will last, if known; a perturbation that would start at or
         after it is reported with a warning (it can never act)
+    chain : the coupled rigid-body model of the joints (same names, same order), or None for
+        independent joints; the joints then carry no gravity load of their own
+    parallel : run the chain's dynamics on all of numba's threads (default: one)
 
     Notes
     -----
     Actuator states start at the targets of the first command, so a run starts in steady state.
+    With a chain, an impulse on a joint changes every free joint's velocity by
+    ``M(q)^-1 * impulse``, a hold stops its joint alone; ``kinetic`` is split per joint as
+    ``1/2 * dq_j * (M dq)_j`` and ``gravity_potential`` per link, so only their sum over joints
+    balances the work done (energy flows between joints through the coupling).
     """
 
     def __init__(
@@ -168,10 +179,13 @@ class Simulator:
         seed: int | None = None,
         check_stability: bool = True,
         horizon_steps: int | None = None,
+        chain: ChainParams | None = None,
+        parallel: bool = False,
     ) -> None:
         joints = list(joints)
         if not joints or not all(isinstance(j, JointParams) for j in joints):
             raise InvalidInputError("joints: expected a non-empty sequence of JointParams")
+        self._chain = None if chain is None else chain_kernel(chain, joints, parallel)
         if method not in METHODS:
             raise InvalidInputError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
         if not isinstance(n_scenarios, int) or n_scenarios < 1:
@@ -206,7 +220,8 @@ class Simulator:
             )
         if check_stability:
             wall_k, wall_b = self._perturb.wall_stiffness()
-            check_step_stability(joints, mechanism, self.dt, method, wall_k, wall_b)
+            checked = joints if self._chain is None else apparent_inertia(joints, self._chain)
+            check_step_stability(checked, mechanism, self.dt, method, wall_k, wall_b)
         # sensor noise of the sample at step k comes from its own stream (seed, k), so a run
         # stepped one command at a time measures exactly what a whole-array run does
         self._noise_seed = (
@@ -296,7 +311,7 @@ class Simulator:
         self._spring_potential0 = self._kernel.potential(self._y[0], act, targets)
         self._stop_potential0 = self._stop_potential(self._y[0])
         self._initial_total = (
-            0.5 * self._inertia * self._y[1] ** 2
+            self._kinetic(self._y[0], self._y[1])
             + self._spring_potential0
             + self._gravity_potential(self._y[0])
             + self._stop_potential0
@@ -316,7 +331,14 @@ class Simulator:
             row *= neg_mgl
             out[i] += row
 
+    def _kinetic(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
+        if self._chain is not None:
+            return self._chain.kinetic_split(q, dq)
+        return 0.5 * self._inertia * dq * dq
+
     def _gravity_potential(self, q: np.ndarray) -> np.ndarray:
+        if self._chain is not None:
+            return self._chain.gravity_potential(q)
         potential = np.zeros_like(q)
         for i, neg_mgl, offset in self._gravity_joints:
             potential[i] = -neg_mgl * (1.0 - np.cos(q[i] - offset))
@@ -378,9 +400,12 @@ class Simulator:
         accel = f[1]
         np.add(spring, passive, out=accel)
         accel += external
-        if self._gravity_joints:
-            self._add_gravity(q, accel)
-        accel *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
+        if self._chain is not None:
+            self._chain.forward(q, dq, accel, self._free, accel)
+        else:
+            if self._gravity_joints:
+                self._add_gravity(q, accel)
+            accel *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
         np.copyto(f[0], dq)
         self._kernel.actuator_rates(act, targets, f[2:n_dyn])
         np.multiply(torques, dq, out=f[n_dyn:])
@@ -437,7 +462,9 @@ class Simulator:
         walls_changed = False
         for event in self._events.get(step, ()):
             name = event[1]
-            if name == "impulse":
+            if name == "impulse" and self._chain is not None:
+                self._chain_impulse(*event[2:])
+            elif name == "impulse":
                 _, _, j, s, impulse = event
                 if self._free[j, s]:
                     before = y[1, j, s]
@@ -445,8 +472,10 @@ class Simulator:
                     self._jumps[j, s] += 0.5 * self._inertia[j, 0] * (y[1, j, s] ** 2 - before**2)
             elif name == "hold_on":
                 _, _, j, s = event
-                self._jumps[j, s] -= 0.5 * self._inertia[j, 0] * y[1, j, s] ** 2
+                before = self._kinetic(y[0, :, s : s + 1], y[1, :, s : s + 1]).sum()
                 y[1, j, s] = 0.0
+                after = self._kinetic(y[0, :, s : s + 1], y[1, :, s : s + 1]).sum()
+                self._jumps[j, s] += after - before
                 self._free[j, s] = 0.0
             elif name == "hold_off":
                 self._free[event[2], event[3]] = 1.0
@@ -475,6 +504,20 @@ class Simulator:
             else:
                 self._walls = None
 
+    def _chain_impulse(self, j: int, s: int, impulse: float) -> None:
+        """Velocity jump M^-1 * impulse on the free joints of scenario s (none if j is held)."""
+        if not self._free[j, s]:
+            return
+        assert self._chain is not None
+        q, dq = self._y[0, :, s : s + 1], self._y[1, :, s : s + 1]
+        free = self._free[:, s] != 0
+        mass = self._chain.mass_matrix(q)[0][np.ix_(free, free)]
+        kick = np.zeros(int(free.sum()))
+        kick[int(free[:j].sum())] = impulse
+        before = self._kinetic(q, dq).sum()
+        dq[free, 0] += np.linalg.solve(mass, kick)
+        self._jumps[j, s] += self._kinetic(q, dq).sum() - before
+
     # ----------------------------------------------------------------- observation
     def _observe(
         self, targets: np.ndarray, ext: np.ndarray | None, clamped: np.ndarray
@@ -488,7 +531,10 @@ class Simulator:
         tau_external = torques[_EXTERNAL]
         if held.any():  # a hold's reaction cancels every other torque on the still link
             net = torques.sum(axis=0)
-            self._add_gravity(q, net)
+            if self._chain is not None:
+                net -= self._chain.inverse(q, dq, self._stages[0][1])
+            else:
+                self._add_gravity(q, net)
             tau_external = tau_external - np.where(held, net, 0.0)
         tau_mech = torques[_SPRING] + self._mech_damping if self._has_damping else torques[_SPRING]
         tau_measured = tau_mech
@@ -501,6 +547,7 @@ class Simulator:
             q_measured = np.where(self._resolution > 0, np.round(q / resolution) * resolution, q)
         spring_potential = kernel.potential(q, act, targets)
         stop_potential = self._stop_potential(q)
+        tension, motor_torque = kernel.loads(q, act, self._stages[0][2 : self._n_dyn])
         works = y[self._n_dyn :]
         contact = (q < self._lower) | (q > self._upper)
         if self._walls is not None:
@@ -520,7 +567,7 @@ class Simulator:
             "commands_clamped": np.broadcast_to(clamped, shape),
             "held": held,
             "in_contact": contact,
-            "kinetic": 0.5 * self._inertia * dq * dq,
+            "kinetic": self._kinetic(q, dq),
             "spring_potential": spring_potential,
             "gravity_potential": self._gravity_potential(q),
             "end_stop_potential": stop_potential,
@@ -528,6 +575,8 @@ class Simulator:
             "perturbation_work": works[_EXTERNAL] + self._jumps,
             "dissipated": -works[_PASSIVE] - (stop_potential - self._stop_potential0),
             "stiffness_injection": self._injection,
+            "spring_tension": tension,
+            "motor_torque": motor_torque,
         }
 
     # ----------------------------------------------------------------- public API
@@ -706,6 +755,8 @@ def simulate(
     decimation: int = 1,
     seed: int | None = None,
     check_stability: bool = True,
+    chain: ChainParams | None = None,
+    parallel: bool = False,
 ) -> SimResult:
     """Simulate a batch of perturbed scenarios under zero-order-held commands.
 
@@ -724,6 +775,8 @@ def simulate(
     decimation : record every ``decimation`` steps (n_rec = n_steps // decimation + 1)
     seed : seeds sensor noise and unseeded random torques
     check_stability : raise UnstableStepError when ``dt`` is above the largest stable step
+    chain : coupled rigid-body model of the joints, or None (see :class:`Simulator`)
+    parallel : run the chain's dynamics on all of numba's threads
 
     Returns
     -------
@@ -742,5 +795,6 @@ def simulate(
         joints, mechanism, n_scenarios=n_scen, dt=dt, method=method, q0=q0, dq0=dq0,
         schedules=schedules, seed=seed, check_stability=check_stability,
         horizon_steps=np.shape(equilibrium)[0] if np.ndim(equilibrium) >= 1 else None,
+        chain=chain, parallel=parallel,
     )
     return sim.run(equilibrium, stiffness, damping, decimation=decimation)

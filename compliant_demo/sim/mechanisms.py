@@ -201,6 +201,18 @@ class Mechanism:
         """Actuator states as reported (``SimResult.actuators``)."""
         return act
 
+    def loads(
+        self, q: np.ndarray, act: np.ndarray, rates: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Largest spring tension and largest |motor torque| per joint, N*m, at the state with
+        actuator rates ``rates``; zero for a mechanism without separate springs and motors."""
+        return np.zeros_like(q), np.zeros_like(q)
+
+    def load_limits(self) -> tuple[np.ndarray, np.ndarray]:
+        """Spring-tension and motor-torque limits per joint (n_joints,), N*m (inf: none)."""
+        unlimited = np.full(len(self.records), np.inf)
+        return unlimited, unlimited
+
     def damping_range(self) -> tuple[np.ndarray, np.ndarray]:
         """Lowest and highest mechanism damping per joint, N*m*s/rad."""
         zeros = np.zeros(len(self.records))
@@ -295,6 +307,9 @@ class Antagonistic(Mechanism):
         self.time_constant = _column(records, "motor_time_constant")
         speed = _column(records, "motor_speed_limit")
         self.rate_limit = np.stack([speed, speed])
+        self.tension_limit = _column(records, "spring_tension_limit")
+        self.motor_torque_limit = _column(records, "motor_torque_limit")
+        self.motor_inertia = _column(records, "motor_inertia")
 
     def expand(self, n_scenarios: int) -> None:
         super().expand(n_scenarios)
@@ -369,6 +384,20 @@ class Antagonistic(Mechanism):
     def actuator_output(self, act: np.ndarray) -> np.ndarray:
         """Motor angles (theta1, theta2) from the internal rows, rad."""
         return np.stack([act[0] - self.d0, act[1] + self.d0])
+
+    def loads(self, q, act, rates):
+        """Tensions t(phi) of the two springs; motor i gives J_m * dd(theta_i) plus the tension
+        of its spring (motor 1 pulls, motor 2 pushes, see :func:`antagonistic_torque`). Within a
+        step the commands are held, so a motor off its rate limit accelerates at
+        -d(theta)/dt / T (derivative of the first-order lag) and one on it not at all."""
+        t1, t2 = (_spring_tension(phi, self.k1, self.k2) for phi in self._elongations(q, act))
+        free = np.abs(rates) < self.rate_limit
+        accel = np.where(free, -rates / self.time_constant, 0.0) * self.motor_inertia
+        motor = np.maximum(np.abs(accel[0] + t1), np.abs(accel[1] - t2))
+        return np.maximum(t1, t2), motor
+
+    def load_limits(self):
+        return self.tension_limit[:, 0], self.motor_torque_limit[:, 0]
 
     def highest_stiffness(self, torque_limit):
         # beyond the taut range only one spring carries the load; its local stiffness at the

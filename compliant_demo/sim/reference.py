@@ -9,11 +9,12 @@ the perturbation profiles and the antagonistic inverse map (tested on their own)
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 from scipy.integrate import solve_ivp
 
+from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import AntagonisticParams, IdealImpedanceParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.sim.integrate import CONTACT_DAMPING_DEPTH, GRAVITY
@@ -66,12 +67,17 @@ def reference_solve(
     rtol: float = 1e-8,
     atol: float = 1e-10,
     method: str = "RK45",
+    forward_dynamics: Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray] | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Angle and velocity of one scenario at every step boundary, by ``solve_ivp``.
 
     Parameters are those of :func:`simulate` (one mechanism record shared by the joints);
     ``scenario`` picks the schedule and, for 3-D commands, the command slice; ``seed`` must be
-    the one given to :func:`simulate` when schedules hold unseeded random torques.
+    the one given to :func:`simulate` when schedules hold unseeded random torques. ``method``
+    "RK4" takes fixed classical Runge-Kutta steps of ``dt`` instead (stage times as the
+    simulator's). ``forward_dynamics(q, dq, tau)`` gives the accelerations (rad/s^2) of a
+    coupled arm (for example Pinocchio's ``aba``; it carries gravity, so the joints must not):
+    then impulses and holds, which the coupled arm handles through its mass matrix, are refused.
 
     Returns
     -------
@@ -126,7 +132,8 @@ def reference_solve(
                 damping_force = b_wall * side * dq[j] * min(penetration / CONTACT_DAMPING_DEPTH, 1)
                 tau[j] -= side * max(k_wall * penetration + damping_force, 0.0)
         act_rate = np.clip((targets - act) / lag, -rate, rate)
-        return np.concatenate([dq * free, tau / inertia * free, act_rate])
+        accel = tau / inertia if forward_dynamics is None else forward_dynamics(q, dq, tau)
+        return np.concatenate([dq * free, accel * free, act_rate])
 
     # steps where something changes: commands, impulses, holds, walls, torque terms
     changes = {0, n_steps}
@@ -136,6 +143,9 @@ def reference_solve(
     mine_impulses = [(j, k, imp) for s, j, k, imp in compiled.impulses if s == scenario]
     mine_holds = [(j, a, b) for s, j, a, b in compiled.holds if s == scenario]
     mine_walls = [w for w in compiled.walls if w.scenario == scenario]
+    if forward_dynamics is not None and (mine_impulses or mine_holds):
+        raise InvalidInputError(
+            f"scenario {scenario}: impulses and holds are not in the coupled reference")
     for _, k, _ in mine_impulses:
         changes.add(k)
     for _, a, b in mine_holds:
@@ -179,18 +189,31 @@ def reference_solve(
             if w.stop == a:
                 active_walls.pop(index, None)
         targets = row(a)
-        steps = np.arange(a, b + 1)
-        solution = solve_ivp(
-            rhs,
-            (a * dt, b * dt),
-            state,
-            method=method,
-            t_eval=steps * dt,
-            rtol=rtol,
-            atol=atol,
-            args=(a, targets, list(active_walls.values()), free),
-        )
-        q_out[a : b + 1] = solution.y[:n_joints].T
-        dq_out[a : b + 1] = solution.y[n_joints : 2 * n_joints].T
-        state = solution.y[:, -1].copy()
+        args = (a, targets, list(active_walls.values()), free)
+        if method == "RK4":
+            states = _fixed_rk4(rhs, a, b, dt, state, args)
+        else:
+            states = solve_ivp(rhs, (a * dt, b * dt), state, method=method,
+                               t_eval=np.arange(a, b + 1) * dt, rtol=rtol, atol=atol,
+                               args=args).y.T
+        q_out[a : b + 1] = states[:, :n_joints]
+        dq_out[a : b + 1] = states[:, n_joints : 2 * n_joints]
+        state = states[-1].copy()
     return q_out, dq_out
+
+
+def _fixed_rk4(rhs, a: int, b: int, dt: float, state: np.ndarray, args: tuple) -> np.ndarray:
+    """States at steps a..b of classical RK4 with step dt (Hairer, Norsett, Wanner, Solving
+    ODEs I, sec. II.1, from memory)."""
+    states = np.empty((b - a + 1, state.size))
+    states[0] = state
+    y = state
+    for i in range(b - a):
+        t = (a + i) * dt
+        k1 = rhs(t, y, *args)
+        k2 = rhs(t + 0.5 * dt, y + 0.5 * dt * k1, *args)
+        k3 = rhs(t + 0.5 * dt, y + 0.5 * dt * k2, *args)
+        k4 = rhs(t + dt, y + dt * k3, *args)
+        y = y + dt / 6.0 * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
+        states[i + 1] = y
+    return states

@@ -78,6 +78,8 @@ class _Channels:
     damping_realised: np.ndarray
     commands_clamped: np.ndarray
     held: np.ndarray
+    spring_tension: np.ndarray
+    motor_torque: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -98,6 +100,10 @@ class SimResult(_Channels):
     damping_realised : N*m*s/rad; mechanism damping (zero for the antagonistic springs)
     commands_clamped : bool; the command in force at the sample was clamped
     held : bool; the link is blocked by a hold
+    spring_tension : N*m; the larger tension of the joint's two antagonistic springs (0 for the
+        ideal mechanism)
+    motor_torque : N*m; the larger |torque| of its two motors, reflected inertia included (0 for
+        the ideal mechanism)
     actuators : (n_rec, 2, n_scen, n_joints); ideal: realised stiffness and damping;
         antagonistic: motor angles theta1, theta2 (rad)
     equilibrium_realised : rad; link angle the actuators are set to

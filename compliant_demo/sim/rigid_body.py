@@ -1,0 +1,461 @@
+"""Coupled rigid-body dynamics of a serial arm, compiled and batched over scenarios.
+
+A :class:`ChainKernel` holds a chain's constant arrays (the model); its methods take joint-major
+``(n_joints, n_scenarios)`` arrays (the data) and run compiled loops, parallel over scenarios.
+Per scenario, inverse dynamics is the recursive Newton-Euler algorithm (Luh, Walker, Paul,
+J. Dyn. Sys. Meas. Control 102, 1980; Craig, Introduction to Robotics, 3rd ed., sec. 6.5, from
+memory), gravity entering as an upward acceleration of the base; the mass matrix is the
+composite-rigid-body algorithm (Walker and Orin, J. Dyn. Sys. Meas. Control 104, 1982;
+Featherstone, Rigid Body Dynamics Algorithms, 2008, ch. 6, from memory); forward dynamics solves
+``M(q) qdd = tau - h(q, dq)`` by Cholesky. Held joints are locked: their rows and columns leave
+the system and their acceleration is zero. Scenarios are processed in blocks laid out
+scenario-last, so each arithmetic loop runs over the scenarios of a block and compiles to SIMD
+instructions (``fastmath`` lets the compiler fuse multiply-adds); on request
+(``ChainKernel(parallel=True)``) blocks run in parallel over the cores (``numba.prange``). The
+tests check every function against Pinocchio.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numba
+import numpy as np
+
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.models import ChainParams, JointParams
+
+__all__ = ["ChainKernel", "chain_kernel", "apparent_inertia"]
+
+
+
+# Scenarios go through in blocks: every loop over a block's scenarios is the innermost one, so
+# the compiler vectorises it (one SIMD lane per scenario); blocks run in parallel.
+_BLOCK = 64
+_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
+_parallel_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+                              parallel=True)
+
+
+# sin and cos in a form the compiler vectorises (libm's are opaque calls): Cody-Waite reduction by
+# pi/2 and the fdlibm kernel polynomials on [-pi/4, pi/4] (Sun Microsystems' fdlibm, k_sin.c and
+# k_cos.c coefficients; about one ulp there)
+_PIO2_HI, _PIO2_LO = 1.57079632673412561417e+00, 6.07710050650619224932e-11
+_S = (-1.66666666666666324348e-01, 8.33333333332248946124e-03, -1.98412698298579493134e-04,
+      2.75573137070700676789e-06, -2.50507602534068634195e-08, 1.58969099521155010221e-10)
+_C = (4.16666666666666019037e-02, -1.38888888888741095749e-03, 2.48015872894767294178e-05,
+      -2.75573143513906633035e-07, 2.08757232129817482790e-09, -1.13596475577881948265e-11)
+
+
+@_kernel
+def _sincos(x):
+    turns = np.rint(x * (2.0 / math.pi))
+    r = (x - turns * _PIO2_HI) - turns * _PIO2_LO
+    z = r * r
+    sine = r + r * z * (_S[0] + z * (_S[1] + z * (_S[2] + z * (_S[3] + z * (_S[4] + z * _S[5])))))
+    cosine = 1.0 - 0.5 * z + z * z * (_C[0] + z * (_C[1] + z * (_C[2] + z * (_C[3] + z * (
+        _C[4] + z * _C[5])))))
+    quadrant = np.int64(turns) & 3
+    odd = float(quadrant & 1)  # a blend, not a branch, keeps the loop vectorisable
+    s_sign = 1.0 - 2.0 * ((quadrant >> 1) & 1)
+    c_sign = 1.0 - 2.0 * (((quadrant + 1) >> 1) & 1)
+    return (s_sign * (odd * cosine + (1.0 - odd) * sine),
+            c_sign * (odd * sine + (1.0 - odd) * cosine))
+
+
+@_kernel
+def _block_rotations(q, s0, nb, place, axis, rot):
+    """rot[i, 3*a + b, k] for scenarios s0 + k, k < nb."""
+    n = q.shape[0]
+    for i in range(n):
+        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        p = place[i]
+        for k in range(nb):
+            sn, c = _sincos(q[i, s0 + k])
+            t = 1.0 - c
+            r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
+            r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
+            r20, r21, r22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
+            for a in range(3):
+                p0, p1, p2 = p[a, 0], p[a, 1], p[a, 2]
+                rot[i, 3 * a, k] = p0 * r00 + p1 * r10 + p2 * r20
+                rot[i, 3 * a + 1, k] = p0 * r01 + p1 * r11 + p2 * r21
+                rot[i, 3 * a + 2, k] = p0 * r02 + p1 * r12 + p2 * r22
+
+
+@_kernel
+def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity, st,
+                fm, tau):
+    """tau[i, k] = inverse dynamics of scenarios s0 + k at (rot, dq, ddq); st (9, B) and
+    fm (n, 6, B) scratch."""
+    n = dq.shape[0]
+    g0, g1, g2 = (-gravity[0], -gravity[1], -gravity[2]) if gravity_on else (0.0, 0.0, 0.0)
+    for k in range(nb):
+        for c in range(6):
+            st[c, k] = 0.0
+        st[6, k], st[7, k], st[8, k] = g0, g1, g2
+    for i in range(n):
+        p0, p1, p2 = pos[i, 0], pos[i, 1], pos[i, 2]
+        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        m = mass[i]
+        cc0, cc1, cc2 = com[i, 0], com[i, 1], com[i, 2]
+        i00, i01, i02 = inertia[i, 0, 0], inertia[i, 0, 1], inertia[i, 0, 2]
+        i11, i12, i22 = inertia[i, 1, 1], inertia[i, 1, 2], inertia[i, 2, 2]
+        r = rot[i]
+        for k in range(nb):
+            w0, w1, w2 = st[0, k], st[1, k], st[2, k]
+            dw0, dw1, dw2 = st[3, k], st[4, k], st[5, k]
+            a0, a1, a2 = st[6, k], st[7, k], st[8, k]
+            # parent's point at the joint origin
+            e0 = w1 * p2 - w2 * p1
+            e1 = w2 * p0 - w0 * p2
+            e2 = w0 * p1 - w1 * p0
+            b0 = a0 + dw1 * p2 - dw2 * p1 + w1 * e2 - w2 * e1
+            b1 = a1 + dw2 * p0 - dw0 * p2 + w2 * e0 - w0 * e2
+            b2 = a2 + dw0 * p1 - dw1 * p0 + w0 * e1 - w1 * e0
+            r00, r01, r02 = r[0, k], r[1, k], r[2, k]
+            r10, r11, r12 = r[3, k], r[4, k], r[5, k]
+            r20, r21, r22 = r[6, k], r[7, k], r[8, k]
+            a0 = r00 * b0 + r10 * b1 + r20 * b2
+            a1 = r01 * b0 + r11 * b1 + r21 * b2
+            a2 = r02 * b0 + r12 * b1 + r22 * b2
+            u0 = r00 * w0 + r10 * w1 + r20 * w2
+            u1 = r01 * w0 + r11 * w1 + r21 * w2
+            u2 = r02 * w0 + r12 * w1 + r22 * w2
+            v0 = r00 * dw0 + r10 * dw1 + r20 * dw2
+            v1 = r01 * dw0 + r11 * dw1 + r21 * dw2
+            v2 = r02 * dw0 + r12 * dw1 + r22 * dw2
+            qd = dq[i, s0 + k]
+            qdd = ddq[i, s0 + k]
+            x0 = (u1 * k2 - u2 * k1) * qd
+            x1 = (u2 * k0 - u0 * k2) * qd
+            x2 = (u0 * k1 - u1 * k0) * qd
+            w0, w1, w2 = u0 + k0 * qd, u1 + k1 * qd, u2 + k2 * qd
+            dw0, dw1, dw2 = v0 + k0 * qdd + x0, v1 + k1 * qdd + x1, v2 + k2 * qdd + x2
+            e0 = w1 * cc2 - w2 * cc1
+            e1 = w2 * cc0 - w0 * cc2
+            e2 = w0 * cc1 - w1 * cc0
+            fx = m * (a0 + dw1 * cc2 - dw2 * cc1 + w1 * e2 - w2 * e1)
+            fy = m * (a1 + dw2 * cc0 - dw0 * cc2 + w2 * e0 - w0 * e2)
+            fz = m * (a2 + dw0 * cc1 - dw1 * cc0 + w0 * e1 - w1 * e0)
+            h0 = i00 * w0 + i01 * w1 + i02 * w2
+            h1 = i01 * w0 + i11 * w1 + i12 * w2
+            h2 = i02 * w0 + i12 * w1 + i22 * w2
+            fm[i, 0, k], fm[i, 1, k], fm[i, 2, k] = fx, fy, fz
+            fm[i, 3, k] = (i00 * dw0 + i01 * dw1 + i02 * dw2 + w1 * h2 - w2 * h1
+                           + cc1 * fz - cc2 * fy)
+            fm[i, 4, k] = (i01 * dw0 + i11 * dw1 + i12 * dw2 + w2 * h0 - w0 * h2
+                           + cc2 * fx - cc0 * fz)
+            fm[i, 5, k] = (i02 * dw0 + i12 * dw1 + i22 * dw2 + w0 * h1 - w1 * h0
+                           + cc0 * fy - cc1 * fx)
+            st[0, k], st[1, k], st[2, k] = w0, w1, w2
+            st[3, k], st[4, k], st[5, k] = dw0, dw1, dw2
+            st[6, k], st[7, k], st[8, k] = a0, a1, a2
+    for i in range(n - 1, -1, -1):
+        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        if i + 1 < n:
+            r = rot[i + 1]
+            p0, p1, p2 = pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2]
+            for k in range(nb):
+                cf0, cf1, cf2 = fm[i + 1, 0, k], fm[i + 1, 1, k], fm[i + 1, 2, k]
+                cn0, cn1, cn2 = fm[i + 1, 3, k], fm[i + 1, 4, k], fm[i + 1, 5, k]
+                f0 = r[0, k] * cf0 + r[1, k] * cf1 + r[2, k] * cf2
+                f1 = r[3, k] * cf0 + r[4, k] * cf1 + r[5, k] * cf2
+                f2 = r[6, k] * cf0 + r[7, k] * cf1 + r[8, k] * cf2
+                fm[i, 0, k] += f0
+                fm[i, 1, k] += f1
+                fm[i, 2, k] += f2
+                fm[i, 3, k] += r[0, k] * cn0 + r[1, k] * cn1 + r[2, k] * cn2 + p1 * f2 - p2 * f1
+                fm[i, 4, k] += r[3, k] * cn0 + r[4, k] * cn1 + r[5, k] * cn2 + p2 * f0 - p0 * f2
+                fm[i, 5, k] += r[6, k] * cn0 + r[7, k] * cn1 + r[8, k] * cn2 + p0 * f1 - p1 * f0
+        for k in range(nb):
+            tau[i, k] = k0 * fm[i, 3, k] + k1 * fm[i, 4, k] + k2 * fm[i, 5, k]
+
+
+@_kernel
+def _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, fn):
+    """mm[i, j, k] mass matrix of scenarios k < nb; comp (n, 13, B), fn (6, B) scratch."""
+    n = rot.shape[0]
+    for i in range(n):
+        m = mass[i]
+        c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
+        cc = c0 * c0 + c1 * c1 + c2 * c2
+        own = np.empty(13)
+        own[0], own[1], own[2], own[3] = m, m * c0, m * c1, m * c2
+        cv = (c0, c1, c2)
+        for a in range(3):
+            for b in range(3):
+                own[4 + 3 * a + b] = inertia[i, a, b] + m * ((cc if a == b else 0.0)
+                                                            - cv[a] * cv[b])
+        for c in range(13):
+            v = own[c]
+            for k in range(nb):
+                comp[i, c, k] = v
+    for i in range(n - 1, 0, -1):
+        # carry subtree i into frame i - 1: h' = R h, I' = R I R^T, then shift to origin i - 1
+        # by m*(|p|^2 1 - p p^T) + 2 (p.h') 1 - h' p^T - p h'^T
+        r = rot[i]
+        pp = pos[i, 0] ** 2 + pos[i, 1] ** 2 + pos[i, 2] ** 2
+        for a in range(3):
+            for k in range(nb):
+                fn[a, k] = (r[3 * a, k] * comp[i, 1, k] + r[3 * a + 1, k] * comp[i, 2, k]
+                            + r[3 * a + 2, k] * comp[i, 3, k])
+        for k in range(nb):
+            fn[3, k] = pos[i, 0] * fn[0, k] + pos[i, 1] * fn[1, k] + pos[i, 2] * fn[2, k]
+        for a in range(3):
+            for b in range(3):
+                pa, pb = pos[i, a], pos[i, b]
+                diag = 1.0 if a == b else 0.0
+                for k in range(nb):
+                    turned = 0.0
+                    for c in range(3):
+                        for d in range(3):
+                            turned += r[3 * a + c, k] * comp[i, 4 + 3 * c + d, k] * r[3 * b + d, k]
+                    comp[i - 1, 4 + 3 * a + b, k] += (
+                        turned + comp[i, 0, k] * (diag * pp - pa * pb)
+                        + diag * 2.0 * fn[3, k] - fn[a, k] * pb - pa * fn[b, k])
+        for k in range(nb):
+            comp[i - 1, 0, k] += comp[i, 0, k]
+        for a in range(3):
+            for k in range(nb):
+                comp[i - 1, 1 + a, k] += comp[i, 0, k] * pos[i, a] + fn[a, k]
+    for i in range(n):
+        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        for k in range(nb):
+            hx, hy, hz = comp[i, 1, k], comp[i, 2, k], comp[i, 3, k]
+            fn[0, k] = k1 * hz - k2 * hy
+            fn[1, k] = k2 * hx - k0 * hz
+            fn[2, k] = k0 * hy - k1 * hx
+            n0 = comp[i, 4, k] * k0 + comp[i, 5, k] * k1 + comp[i, 6, k] * k2
+            n1 = comp[i, 7, k] * k0 + comp[i, 8, k] * k1 + comp[i, 9, k] * k2
+            n2 = comp[i, 10, k] * k0 + comp[i, 11, k] * k1 + comp[i, 12, k] * k2
+            fn[3, k], fn[4, k], fn[5, k] = n0, n1, n2
+            mm[i, i, k] = k0 * n0 + k1 * n1 + k2 * n2
+        for j in range(i - 1, -1, -1):
+            r = rot[j + 1]
+            p0, p1, p2 = pos[j + 1, 0], pos[j + 1, 1], pos[j + 1, 2]
+            a0, a1, a2 = axis[j, 0], axis[j, 1], axis[j, 2]
+            for k in range(nb):
+                f0, f1, f2 = fn[0, k], fn[1, k], fn[2, k]
+                n0, n1, n2 = fn[3, k], fn[4, k], fn[5, k]
+                g0 = r[0, k] * f0 + r[1, k] * f1 + r[2, k] * f2
+                g1 = r[3, k] * f0 + r[4, k] * f1 + r[5, k] * f2
+                g2 = r[6, k] * f0 + r[7, k] * f1 + r[8, k] * f2
+                e0 = r[0, k] * n0 + r[1, k] * n1 + r[2, k] * n2 + p1 * g2 - p2 * g1
+                e1 = r[3, k] * n0 + r[4, k] * n1 + r[5, k] * n2 + p2 * g0 - p0 * g2
+                e2 = r[6, k] * n0 + r[7, k] * n1 + r[8, k] * n2 + p0 * g1 - p1 * g0
+                fn[0, k], fn[1, k], fn[2, k] = g0, g1, g2
+                fn[3, k], fn[4, k], fn[5, k] = e0, e1, e2
+                value = a0 * e0 + a1 * e1 + a2 * e2
+                mm[i, j, k] = value
+                mm[j, i, k] = value
+
+
+@_kernel
+def _block_solve(mm, rhs, free, s0, nb, out):
+    """Cholesky solve of mm x = rhs per scenario over its free joints; out[:, s0 + k] = x."""
+    n = mm.shape[0]
+    for i in range(n):
+        for k in range(nb):
+            if free[i, s0 + k] == 0.0:
+                for j in range(n):
+                    mm[i, j, k] = 0.0
+                    mm[j, i, k] = 0.0
+                mm[i, i, k] = 1.0
+                rhs[i, k] = 0.0
+    for j in range(n):
+        for k in range(nb):
+            d = mm[j, j, k]
+            for c in range(j):
+                d -= mm[j, c, k] * mm[j, c, k]
+            mm[j, j, k] = math.sqrt(d)
+        for i in range(j + 1, n):
+            for k in range(nb):
+                v = mm[i, j, k]
+                for c in range(j):
+                    v -= mm[i, c, k] * mm[j, c, k]
+                mm[i, j, k] = v / mm[j, j, k]
+    for i in range(n):
+        for k in range(nb):
+            v = rhs[i, k]
+            for c in range(i):
+                v -= mm[i, c, k] * rhs[c, k]
+            rhs[i, k] = v / mm[i, i, k]
+    for i in range(n - 1, -1, -1):
+        for k in range(nb):
+            v = rhs[i, k]
+            for c in range(i + 1, n):
+                v -= mm[c, i, k] * rhs[c, k]
+            rhs[i, k] = v / mm[i, i, k]
+            out[i, s0 + k] = rhs[i, k]
+
+
+def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
+    n, n_scen = q.shape
+    zero = np.zeros((n, n_scen))
+    for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
+        s0 = b * _BLOCK
+        nb = min(_BLOCK, n_scen - s0)
+        rot = np.empty((n, 9, _BLOCK))
+        vec = np.empty((n, _BLOCK))
+        mm = np.empty((n, n, _BLOCK))
+        _block_rotations(q, s0, nb, place, axis, rot)
+        _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity,
+                    np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
+        for i in range(n):
+            for k in range(nb):
+                vec[i, k] = tau[i, s0 + k] - vec[i, k]
+        _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
+                    np.empty((6, _BLOCK)))
+        _block_solve(mm, vec, free, s0, nb, out)
+
+
+def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
+                   out):
+    n, n_scen = q.shape
+    for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
+        s0 = b * _BLOCK
+        nb = min(_BLOCK, n_scen - s0)
+        rot = np.empty((n, 9, _BLOCK))
+        vec = np.empty((n, _BLOCK))
+        _block_rotations(q, s0, nb, place, axis, rot)
+        _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity,
+                    np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
+        for i in range(n):
+            for k in range(nb):
+                out[i, s0 + k] = vec[i, k]
+
+
+def _mass_blocks(q, place, pos, axis, mass, com, inertia, out):
+    n, n_scen = q.shape
+    for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
+        s0 = b * _BLOCK
+        nb = min(_BLOCK, n_scen - s0)
+        rot = np.empty((n, 9, _BLOCK))
+        mm = np.empty((n, n, _BLOCK))
+        _block_rotations(q, s0, nb, place, axis, rot)
+        _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
+                    np.empty((6, _BLOCK)))
+        for k in range(nb):
+            for i in range(n):
+                for j in range(n):
+                    out[s0 + k, i, j] = mm[i, j, k]
+
+
+# Serial builds by default: campaigns already run one process per core, and GNU OpenMP (numba's
+# threading layer here) aborts a process forked after it started, as campaign workers are.
+_SERIAL = tuple(_kernel(f) for f in (_forward_blocks, _inverse_blocks, _mass_blocks))
+_PARALLEL = tuple(_parallel_kernel(f) for f in (_forward_blocks, _inverse_blocks, _mass_blocks))
+
+
+class ChainKernel:
+    """Compiled dynamics of one chain for batches of ``(n_joints, n_scenarios)`` states.
+
+    Parameters
+    ----------
+    chain : the serial arm
+    parallel : spread the blocks of scenarios over numba's threads (``numba.prange``); off by
+        default (see the note above ``_SERIAL``)
+    """
+
+    def __init__(self, chain: ChainParams, parallel: bool = False) -> None:
+        self._kernels = _PARALLEL if parallel else _SERIAL
+        bodies = chain.bodies
+        self.chain = chain
+        self.n_joints = len(bodies)
+        self._place = np.array([np.reshape(b.placement_rotation, (3, 3)) for b in bodies])
+        self._pos = np.array([b.placement_xyz for b in bodies], dtype=float)
+        self._axis = np.array([b.axis for b in bodies], dtype=float)
+        self._mass = np.array([b.mass for b in bodies], dtype=float)
+        self._com = np.array([b.com for b in bodies], dtype=float)
+        self._inertia = np.array([
+            [[b.inertia[0], b.inertia[1], b.inertia[2]],
+             [b.inertia[1], b.inertia[3], b.inertia[4]],
+             [b.inertia[2], b.inertia[4], b.inertia[5]]] for b in bodies])
+        self._gravity = np.array(chain.gravity, dtype=float)
+        self._model = (self._place, self._pos, self._axis, self._mass, self._com,
+                       self._inertia)
+
+    def forward(self, q: np.ndarray, dq: np.ndarray, tau: np.ndarray, free: np.ndarray,
+                out: np.ndarray) -> None:
+        """Joint accelerations ``M(q)^-1 (tau - h(q, dq))`` into ``out``, rad/s^2.
+
+        q (rad), dq (rad/s), tau (N*m), free (1 free, 0 locked), out: ``(n_joints, n_scen)``.
+        """
+        self._kernels[0](q, dq, tau, free, *self._model, self._gravity, out)
+
+    def inverse(self, q: np.ndarray, dq: np.ndarray, ddq: np.ndarray,
+                gravity: bool = True) -> np.ndarray:
+        """Joint torques ``M(q) ddq + C(q, dq) dq + g(q)`` (without g if not ``gravity``), N*m,
+        for ``(n_joints, n_scen)`` arrays."""
+        q, dq, ddq = (np.ascontiguousarray(x, dtype=float) for x in (q, dq, ddq))
+        out = np.empty_like(q)
+        self._kernels[1](q, dq, ddq, gravity, *self._model, self._gravity, out)
+        return out
+
+    def mass_matrix(self, q: np.ndarray) -> np.ndarray:
+        """Mass matrices ``(n_scen, n_joints, n_joints)``, kg*m^2, at ``(n_joints, n_scen)`` q."""
+        q = np.ascontiguousarray(q, dtype=float)
+        out = np.zeros((q.shape[1], self.n_joints, self.n_joints))
+        self._kernels[2](q, *self._model, out)
+        return out
+
+    def kinetic_split(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
+        """``1/2 * dq_j * (M(q) dq)_j`` per joint, J: sums over joints to the kinetic energy."""
+        momentum = self.inverse(q, np.zeros_like(q), dq, gravity=False)
+        return 0.5 * dq * momentum
+
+    def gravity_potential(self, q: np.ndarray) -> np.ndarray:
+        """``-m_i g . (c_i(q) - c_i(0))`` of the link each joint moves, J, ``(n_joints, n_scen)``:
+        sums over joints to the potential energy, zero at q = 0."""
+        return self._heights(q) - self._heights(np.zeros_like(q))
+
+    def _heights(self, q: np.ndarray) -> np.ndarray:
+        n, n_scen = q.shape
+        rot = np.broadcast_to(np.eye(3), (n_scen, 3, 3))
+        origin = np.zeros((n_scen, 3))
+        out = np.empty((n, n_scen))
+        for i in range(n):
+            angle = q[i][:, None, None]
+            k = self._axis[i]
+            skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
+            turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
+                    + (1 - np.cos(angle)) * np.outer(k, k))
+            origin = origin + rot @ self._pos[i]
+            rot = rot @ self._place[i] @ turn
+            centre = origin + rot @ self._com[i]
+            out[i] = -self._mass[i] * (centre @ self._gravity)
+        return out
+
+
+def chain_kernel(chain: ChainParams, joints: Sequence[JointParams], parallel: bool = False
+                 ) -> ChainKernel:
+    """The compiled model of ``chain`` after checking it moves exactly ``joints`` (same names and
+    order) and that they carry no gravity load of their own; InvalidInputError otherwise."""
+    names = tuple(j.name for j in joints)
+    if chain.joint_names != names:
+        raise InvalidInputError(
+            f"chain: joints {list(chain.joint_names)} differ from the simulated joints "
+            f"{list(names)} (same names in the same order)"
+        )
+    loaded = [j.name for j in joints if j.gravity_mass * j.com_distance > 0]
+    if loaded:
+        raise InvalidInputError(
+            f"joints {loaded}: gravity_mass and com_distance must be 0 with a chain (its links "
+            "carry the gravity load)"
+        )
+    return ChainKernel(chain, parallel)
+
+
+def apparent_inertia(joints: Sequence[JointParams], kernel: ChainKernel) -> list[JointParams]:
+    """Joints with the smallest apparent inertia ``1 / (M^-1)_jj`` over their range (64 seeded
+    configurations and the zero one): the stiffest a step of the coupled arm can meet."""
+    rng = np.random.default_rng(0)
+    lower = np.array([[j.lower_limit] for j in joints])
+    upper = np.array([[j.upper_limit] for j in joints])
+    q = lower + (upper - lower) * rng.random((len(joints), 64))
+    q = np.concatenate([np.zeros((len(joints), 1)), q], axis=1)
+    apparent = 1.0 / np.linalg.inv(kernel.mass_matrix(q)).diagonal(axis1=1, axis2=2).max(axis=0)
+    return [j.model_copy(update={"inertia": float(a)}) for j, a in zip(joints, apparent,
+                                                                        strict=True)]
