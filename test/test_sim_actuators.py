@@ -81,8 +81,8 @@ def test_actuator_limit_fields_are_validated(field, value):
 
 
 @pytest.mark.parametrize("field, reason", [
-    ("spring_tension_limit", r"spring tension limit: joint1 22.4 N\*m beyond 20 N\*m"),
-    ("motor_torque_limit", r"motor torque limit: joint1 22.4 N\*m beyond 20 N\*m"),
+    ("spring_tension_limit", r"spring tension limit: joint1 22.4 N\*m beyond the 20 N\*m limit"),
+    ("motor_torque_limit", r"motor torque limit: joint1 22.4 N\*m beyond the 20 N\*m limit"),
 ])
 def test_first_limit_violation_names_the_actuator_limit(field, reason):
     n = 50
