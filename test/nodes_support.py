@@ -232,8 +232,17 @@ def set_parameter(client: TestClient, node: str, name: str, value: Any) -> Any:
     client.spin_until(service.service_is_ready, 30.0, f"the parameter service of {node}")
     request = SetParameters.Request(parameters=[Parameter(name=name,
                                                           value=parameter_value(value))])
-    future = service.call_async(request)
-    client.spin_until(future.done, 20.0, "set_parameters")
+    # A response can be lost while the node's response writer has not yet matched this fresh
+    # client's reader (service_is_ready only sees the request side); setting a parameter is
+    # idempotent, so ask again, a bounded number of times.
+    for attempt in range(4):
+        future = service.call_async(request)
+        try:
+            client.spin_until(future.done, 5.0, "set_parameters")
+            break
+        except AssertionError:
+            if attempt == 3:
+                raise
     (result,) = future.result().results
     return result
 
