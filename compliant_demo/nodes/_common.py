@@ -19,6 +19,7 @@ from rcl_interfaces.msg import (
 from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
+from rclpy.signals import SignalHandlerOptions
 from std_msgs.msg import Float64MultiArray
 
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
@@ -293,6 +294,21 @@ def _ignore_stop_signals() -> None:
             return
 
 
+def _stop_on_signals() -> list[int]:
+    """Have SIGINT and SIGTERM only ask the spin loop to end (the list collects the signals).
+
+    No exception is raised into the loop, so no signal can land between catching the first one
+    and the clean finish; rclpy's own handlers, which raise KeyboardInterrupt, are not installed.
+    """
+    received: list[int] = []
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        try:
+            signal.signal(signum, lambda number, _frame: received.append(number))
+        except ValueError:  # not the main thread: the caller handles signals
+            break
+    return received
+
+
 def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> int:
     """Create, spin and tear down one node; Ctrl-C and external shutdown end it cleanly.
 
@@ -301,16 +317,18 @@ def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> in
     end on its own and ``exit_status`` to report failure. Returns the process exit status: 0, the
     node's ``exit_status``, or 2 when a parameter or file was refused (the reason is logged).
     """
-    rclpy.init(args=args)
+    rclpy.init(args=args, signal_handler_options=SignalHandlerOptions.NO)
+    stop_signals = _stop_on_signals()
     node = None
     status = 0
     try:
         node = make_node()
         executor = _executor()
         executor.add_node(node)
-        while rclpy.ok() and not getattr(node, "done", False):
+        while rclpy.ok() and not stop_signals and not getattr(node, "done", False):
             executor.spin_once(timeout_sec=0.1)
-        status = int(getattr(node, "exit_status", 0))
+        if not stop_signals:
+            status = int(getattr(node, "exit_status", 0))
     except (KeyboardInterrupt, ExternalShutdownException):
         pass
     except CompliantDemoError as exc:
