@@ -38,6 +38,8 @@ __all__ = [
     "ScheduleReport",
     "check_schedule",
     "outcome_metrics",
+    "SETTLING_WINDOW_S",
+    "SETTLING_TOLERANCE_RAD",
     "ACTUATOR_LOADS",
     "limit_excess",
     "first_limit_violation",
@@ -362,6 +364,14 @@ def _recovery(
     return times
 
 
+#: Default final window of a replay over which goal error is judged, s (the shipped readiness
+#: criteria's ``settling_window``).
+SETTLING_WINDOW_S = 0.5
+#: Default peak-to-peak angle in that window up to which a joint counts as settled, rad (the
+#: shipped readiness criteria's ``settling_tolerance``).
+SETTLING_TOLERANCE_RAD = 0.005
+
+
 def outcome_metrics(
     t: ArrayLike,
     q: ArrayLike,
@@ -375,6 +385,8 @@ def outcome_metrics(
     energy: Mapping[str, Any] | None = None,
     joints: Sequence[JointParams] | None = None,
     recovery_band: float = 0.02,
+    settling_window_s: float = SETTLING_WINDOW_S,
+    settling_tolerance: float = SETTLING_TOLERANCE_RAD,
 ) -> dict[str, Any]:
     """Outcome of one replay from plain arrays.
 
@@ -393,10 +405,18 @@ def outcome_metrics(
         for one scenario); ``stiffness_injection`` is reported as ``energy_injected_J``
     joints : JointParams per column, for position and torque limit violations
     recovery_band : max over joints of |q - q_nominal| that counts as recovered, rad
+    settling_window_s : the final stretch of the replay goal error is judged over, s (the whole
+        replay when it is shorter)
+    settling_tolerance : peak-to-peak of a joint's angle in the settling window up to which it
+        counts as settled, rad
 
     Returns
     -------
-    dict with goal_error_rad (per joint), goal_error_max_rad, peak_deviation_rad (per joint),
+    dict with goal_error_rad (per joint, mean |q - goal| over the settling window),
+    goal_error_max_rad (worst joint of it), goal_error_window_max_rad (per joint, max |q - goal|
+    over the window), settling_from_s and settling_to_s (the window), settling_peak_to_peak_rad
+    (per joint), settling_tolerance_rad, settled (every joint within the tolerance),
+    peak_deviation_rad (per joint),
     peak_deviation_time_s, recovery_band_rad, recovery_time_s (per perturbation, None when not
     recovered inside its window), recovered (per perturbation), peak_interaction_torque_Nm,
     peak_mechanism_torque_Nm, energy_J (terms as given), energy_injected_J, limit_violations
@@ -413,6 +433,12 @@ def outcome_metrics(
         raise InvalidInputError(f"goal: expected shape ({n_joints},), got {target.shape}")
     if not recovery_band > 0:
         raise InvalidInputError(f"recovery_band: must be positive (rad), got {recovery_band!r}")
+    if not settling_window_s > 0:
+        raise InvalidInputError(f"settling_window_s: must be positive (s), got "
+                                f"{settling_window_s!r}")
+    if not settling_tolerance > 0:
+        raise InvalidInputError(f"settling_tolerance: must be positive (rad), got "
+                                f"{settling_tolerance!r}")
     onsets = finite_array(perturbation_onsets, "perturbation_onsets").reshape(-1)
     ends = onsets if perturbation_ends is None else finite_array(
         perturbation_ends, "perturbation_ends").reshape(-1)
@@ -425,10 +451,19 @@ def outcome_metrics(
     deviation = np.abs(position - nominal)
     worst = deviation.max(axis=1)
     recovery = _recovery(times, worst, onsets, ends, recovery_band)
-    goal_error = np.abs(position[-1] - target)
+    window = times >= times[-1] - settling_window_s
+    error = np.abs(position[window] - target)
+    goal_error = error.mean(axis=0)
+    swing = np.ptp(position[window], axis=0)
     metrics: dict[str, Any] = {
         "goal_error_rad": goal_error.tolist(),
         "goal_error_max_rad": float(goal_error.max()),
+        "goal_error_window_max_rad": error.max(axis=0).tolist(),
+        "settling_from_s": float(times[window][0]),
+        "settling_to_s": float(times[-1]),
+        "settling_peak_to_peak_rad": swing.tolist(),
+        "settling_tolerance_rad": float(settling_tolerance),
+        "settled": bool(np.all(swing <= settling_tolerance)),
         "peak_deviation_rad": deviation.max(axis=0).tolist(),
         "peak_deviation_time_s": float(times[int(np.argmax(worst))]),
         "recovery_band_rad": float(recovery_band),

@@ -16,15 +16,20 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
+from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, Stretch, check_schedule
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.models import model_from_mapping, read_yaml
+from compliant_demo.models import JointParams, MechanismParams, model_from_mapping, read_yaml
+from compliant_demo.plant import ReplayPlant
+from compliant_demo.primitives import Rollout
 from compliant_demo.resources import package_file
+from compliant_demo.store.records import ReplayResultInfo
 
 __all__ = [
     "CRITERIA_FILE",
@@ -35,6 +40,10 @@ __all__ = [
     "load_criteria",
     "Reason",
     "Verdict",
+    "schedule_report",
+    "assess",
+    "scenario_anchor",
+    "stretch_anchor",
 ]
 
 #: The shipped acceptance criteria (in ``config/``).
@@ -65,11 +74,15 @@ class Threshold(BaseModel):
 
 
 class ScheduleRule(BaseModel):
-    """How a kind of flagged schedule stretch counts: why it blocks readiness."""
+    """How a kind of flagged schedule stretch counts: why it blocks readiness and, for checks
+    whose threshold is neither a plant limit nor ``min_damping_ratio``, the threshold."""
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
     why: str = Field(..., description="One line: what a stretch of this kind means.")
+    threshold: float | None = Field(
+        None, description="Threshold in the unit of the check's figure; None: the plant's limit."
+    )
 
     @field_validator("why")
     @classmethod
@@ -209,3 +222,245 @@ class Verdict:
     def to_dict(self) -> dict[str, Any]:
         """``{"verdict": ..., "reasons": [Reason.to_dict(), ...]}``, JSON-ready."""
         return {"verdict": self.verdict, "reasons": [r.to_dict() for r in self.reasons]}
+
+
+def schedule_report(rollout: Rollout, plant: ReplayPlant, criteria: Criteria) -> ScheduleReport:
+    """The schedule checks of a rollout on a plant with the criteria's damping ratio floor
+    (:func:`compliant_demo.evaluation.check_schedule`)."""
+    joints = list(rollout.joints)
+    return check_schedule(rollout, plant.for_joints(joints), plant.mechanisms_for(joints),
+                          min_damping_ratio=criteria.thresholds.min_damping_ratio.value,
+                          chain=plant.chain)
+
+
+def stretch_anchor(index: int) -> str:
+    """HTML id of flagged stretch ``index`` of a :class:`ScheduleReport` (in the report)."""
+    return f"stretch-{index}"
+
+
+def scenario_anchor(result: ReplayResultInfo) -> str:
+    """HTML id of a replay result in the report: its campaign scenario, else its id."""
+    if result.scenario_index is not None:
+        return f"scenario-{result.scenario_index}"
+    return f"replay-{result.id}"
+
+
+def _relative_excess(value: float, threshold: float) -> float:
+    """How far ``value`` lies past ``threshold``, relative to the larger of the two, in (0, 1]."""
+    scale = max(abs(value), abs(threshold))
+    return abs(value - threshold) / scale if scale > 0 else 0.0
+
+
+def _nearer(value: float, low: float, high: float) -> float:
+    return low if abs(value - low) <= abs(value - high) else high
+
+
+# A stretch's threshold from its joint and mechanism, for checks of a plant's limits.
+_PLANT_LIMITS: dict[str, Callable[[Stretch, JointParams, MechanismParams], float]] = {
+    "torque_limit": lambda s, joint, m: joint.torque_limit,
+    "position_range": lambda s, joint, m: _nearer(s.worst, joint.lower_limit, joint.upper_limit),
+    "stiffness_range": lambda s, joint, m: _nearer(s.worst, m.stiffness_min, m.stiffness_max),
+    "damping_range": lambda s, joint, m: _nearer(s.worst, getattr(m, "damping_min", math.nan),
+                                                 getattr(m, "damping_max", math.nan)),
+    "damping_rate": lambda s, joint, m: getattr(m, "damping_rate_limit", math.nan),
+}
+
+
+def _stretch_threshold(
+    stretch: Stretch, column: int, schedule: ScheduleReport, rule: ScheduleRule,
+    joint: JointParams, mechanism: MechanismParams,
+) -> float:
+    if rule.threshold is not None:
+        return rule.threshold
+    if stretch.kind == "under_damped":
+        return float(schedule.summary["thresholds"]["min_damping_ratio"])
+    if stretch.kind == "stiffness_rate":
+        return float(schedule.summary["stiffness_rate_limit"][column])
+    if stretch.kind in _PLANT_LIMITS:
+        return float(_PLANT_LIMITS[stretch.kind](stretch, joint, mechanism))
+    raise InvalidInputError(
+        f"criteria schedule_checks.{stretch.kind}: no threshold, and the check is not one of a "
+        f"plant limit ({', '.join(sorted(_PLANT_LIMITS))}, stiffness_rate, under_damped)"
+    )
+
+
+def _schedule_reasons(
+    criteria: Criteria, plant: ReplayPlant, schedule: ScheduleReport
+) -> list[Reason]:
+    missing = [kind for kind in FLAG_KINDS if kind not in criteria.schedule_checks]
+    missing += sorted({s.kind for s in schedule.stretches} - set(FLAG_KINDS) - set(missing))
+    if missing:
+        raise InvalidInputError(
+            f"criteria schedule_checks: no entry for check(s) {missing}; every check the "
+            "schedule can flag needs one"
+        )
+    joints = list(schedule.joints)
+    params = plant.for_joints(joints)
+    mechanisms = plant.mechanisms_for(joints)
+    span = float(schedule.t[-1] - schedule.t[0]) or 1.0
+    shortest = criteria.thresholds.min_stretch_duration.value
+    reasons = []
+    for index, stretch in enumerate(schedule.stretches):
+        duration = stretch.t_end - stretch.t_start
+        if duration < shortest:
+            continue
+        column = joints.index(stretch.joint)
+        threshold = _stretch_threshold(stretch, column, schedule,
+                                       criteria.schedule_checks[stretch.kind], params[column],
+                                       mechanisms[column])
+        if not math.isfinite(threshold):
+            raise InvalidInputError(f"schedule check {stretch.kind!r} on {stretch.joint}: the "
+                                    f"plant gives no finite threshold ({threshold!r})")
+        reasons.append(Reason(
+            check=stretch.kind, joint=stretch.joint, from_s=stretch.t_start, to_s=stretch.t_end,
+            value=stretch.worst, threshold=threshold, unit=stretch.unit,
+            severity=_relative_excess(stretch.worst, threshold) * min(duration / span, 1.0),
+            link=stretch_anchor(index),
+            detail=(f"{stretch.kind.replace('_', ' ')} on {stretch.joint} for {duration:.3g} s "
+                    f"({stretch.t_start:.3g} to {stretch.t_end:.3g} s): worst {stretch.worst:.3g} "
+                    f"against {threshold:.3g} {stretch.unit}"),
+        ))
+    return reasons
+
+
+def _per_joint(result: ReplayResultInfo, name: str, n_joints: int) -> list[float] | None:
+    values = result.metrics.get(name)
+    if values is None:
+        return None
+    if not isinstance(values, list) or len(values) != n_joints:
+        raise InvalidInputError(f"scenario {scenario_anchor(result)}: metric {name} = "
+                                f"{values!r}: expected {n_joints} values")
+    return [float(v) for v in values]
+
+
+def _scenario_reason(
+    check: str, joint: str | None, failing: list[tuple[ReplayResultInfo, float]],
+    n_scenarios: int, *, cap: Threshold | None = None, limit: Threshold | None = None,
+    span: tuple[float | None, float | None] = (None, None), what: str,
+) -> Reason | None:
+    """One reason for the scenarios ``failing`` (each with its figure), or None.
+
+    With ``limit`` every failing scenario counts: the value is the worst figure against that
+    limit. With ``cap`` the value is the share of failing scenarios against that cap.
+    """
+    share = len(failing) / n_scenarios
+    if not failing or (cap is not None and share <= cap.value):
+        return None
+    worst, figure = max(failing, key=lambda item: item[1])
+    where = "" if joint is None else f" on {joint}"
+    label = ("scenario " + str(worst.scenario_index) if worst.scenario_index is not None
+             else "replay " + worst.id)
+    if limit is not None:
+        value, threshold, unit = figure, limit.value, limit.unit
+        detail = (f"{what}{where} beyond {limit.value:.3g} {limit.unit} in {len(failing)} of "
+                  f"{n_scenarios} scenarios; worst {figure:.3g} {limit.unit} ({label})")
+    else:
+        assert cap is not None
+        value, threshold, unit = share, cap.value, cap.unit
+        detail = (f"{what}{where} in {len(failing)} of {n_scenarios} scenarios "
+                  f"({100 * share:.3g} %, at most {100 * cap.value:.3g} % allowed; first "
+                  f"{label})")
+    return Reason(check=check, joint=joint, from_s=span[0], to_s=span[1], value=value,
+                  threshold=threshold, unit=unit,
+                  severity=_relative_excess(value, threshold) * share,
+                  link=scenario_anchor(worst), detail=detail)
+
+
+def _settling_window(result: ReplayResultInfo) -> tuple[float | None, float | None]:
+    start, end = result.metrics.get("settling_from_s"), result.metrics.get("settling_to_s")
+    return (None if start is None else float(start), None if end is None else float(end))
+
+
+def _campaign_reasons(
+    criteria: Criteria, joints: Sequence[str], scenarios: Sequence[ReplayResultInfo]
+) -> list[Reason]:
+    limits = criteria.thresholds
+    n = len(scenarios)
+    window = limits.settling_window.value
+    for result in scenarios:
+        start, end = _settling_window(result)
+        if start is not None and end is not None and end - start < window - 1e-6 and start > 0:
+            raise InvalidInputError(
+                f"scenario {scenario_anchor(result)}: goal error was measured over the last "
+                f"{end - start:.3g} s; criteria settling_window asks for {window:.3g} s (replay "
+                "again with that window)"
+            )
+    reasons: list[Reason | None] = []
+    by_joint: dict[str, list[list[tuple[ReplayResultInfo, float]]]] = {
+        name: [[], [], [], []] for name in joints}
+    for result in scenarios:
+        torque = (result.metrics.get("limit_violations") or {}).get("torque")
+        peaks = _per_joint(result, "peak_interaction_torque_Nm", len(joints))
+        errors = _per_joint(result, "goal_error_rad", len(joints))
+        swings = _per_joint(result, "settling_peak_to_peak_rad", len(joints))
+        for j, name in enumerate(joints):
+            lists = by_joint[name]
+            if torque is not None and torque["samples"][j] > 0:
+                lists[0].append((result, float(torque["worst_excess"][j])))
+            if peaks is not None and peaks[j] > limits.max_interaction_torque.value:
+                lists[1].append((result, peaks[j]))
+            if errors is not None and errors[j] > limits.max_goal_error.value:
+                lists[2].append((result, errors[j]))
+            if swings is not None and swings[j] > limits.settling_tolerance.value:
+                lists[3].append((result, swings[j]))
+    for name, (exceeding, pushing, missing, ringing) in by_joint.items():
+        reasons += [
+            _scenario_reason("torque_limit_scenarios", name, exceeding, n,
+                             cap=limits.max_torque_limit_scenarios,
+                             what="mechanism torque beyond the joint's torque limit"),
+            _scenario_reason("interaction_torque", name, pushing, n,
+                             limit=limits.max_interaction_torque,
+                             what="peak interaction torque"),
+            _scenario_reason("goal_error", name, missing, n, limit=limits.max_goal_error,
+                             span=_settling_window(missing[0][0]) if missing else (None, None),
+                             what="mean goal error over the settling window"),
+            _scenario_reason("unsettled", name, ringing, n, cap=limits.max_unsettled,
+                             span=_settling_window(ringing[0][0]) if ringing else (None, None),
+                             what="still moving in the settling window"),
+        ]
+    unrecovered = [(r, 1.0) for r in scenarios if not all(r.metrics.get("recovered") or [True])]
+    stopped = [(r, 1.0) for r in scenarios if r.status != "ok"]
+    reasons += [
+        _scenario_reason("failed_recovery", None, unrecovered, n, cap=limits.max_failed_recovery,
+                         what="not back within the recovery band before the next perturbation"),
+        _scenario_reason("safety_stops", None, stopped, n, cap=limits.max_safety_stops,
+                         what="a limit stopped the replay (or would have)"),
+    ]
+    return [reason for reason in reasons if reason is not None]
+
+
+def assess(
+    criteria: Criteria,
+    plant: ReplayPlant,
+    schedule: ScheduleReport,
+    scenarios: Sequence[ReplayResultInfo] = (),
+) -> Verdict:
+    """The readiness verdict of a skill on a plant.
+
+    Parameters
+    ----------
+    criteria : acceptance criteria
+    plant : the target the skill was checked and replayed on
+    schedule : the skill's schedule checks on that plant (:func:`schedule_report`)
+    scenarios : replay results on that plant (a campaign's, or one replay), with the metrics of
+        :meth:`compliant_demo.replay.ReplaySetup.metrics`
+
+    Returns
+    -------
+    Verdict
+        Not ready when any criterion fails, with one reason per flagged stretch at least
+        ``min_stretch_duration`` long and per failing campaign criterion (per joint where it
+        has one), most severe first.
+
+    Notes
+    -----
+    Severity is how far the figure lies past its threshold relative to the larger of the two
+    (in (0, 1]) times the share it covers: the stretch's share of the skill's duration, or the
+    share of scenarios that fail (a share-of-scenarios criterion counts the share past its cap
+    relative to the share). A damping ratio of 0.011 against 0.5 along the whole skill has
+    severity 0.98; a 1 ms stretch, next to none.
+    """
+    reasons = _schedule_reasons(criteria, plant, schedule)
+    if scenarios:
+        reasons += _campaign_reasons(criteria, schedule.joints, scenarios)
+    return Verdict.from_reasons(reasons)

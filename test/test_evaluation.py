@@ -262,9 +262,15 @@ def test_recovery_time_of_exponential_decay():
     assert metrics["recovery_band_rad"] == 0.01
     np.testing.assert_allclose(metrics["peak_deviation_rad"], [0.3, 0.15])
     assert metrics["peak_deviation_time_s"] == pytest.approx(1.2)
-    np.testing.assert_allclose(
-        metrics["goal_error_rad"], [0.3 * np.exp(-2.8 / 0.25), 0.15 * np.exp(-2.8 / 0.25)]
-    )
+    # goal error: mean over the last 0.5 s (samples 3.5 to 4.0 s, 501 of them) of the decay
+    # a*r^k, a geometric series a*(1 - r^501)/(1 - r)/501 (closed form)
+    a, r = 0.3 * np.exp(-(3.5 - 1.2) / 0.25), np.exp(-0.001 / 0.25)
+    mean_decay = a * (1 - r**501) / (1 - r) / 501
+    np.testing.assert_allclose(metrics["goal_error_rad"], [mean_decay, 0.5 * mean_decay],
+                               rtol=1e-9)
+    np.testing.assert_allclose(metrics["goal_error_window_max_rad"], [a, 0.5 * a], rtol=1e-9)
+    assert (metrics["settling_from_s"], metrics["settling_to_s"]) == pytest.approx((3.5, 4.0))
+    assert metrics["settled"] is True
     np.testing.assert_allclose(metrics["peak_interaction_torque_Nm"], [3.0, 0.0])
     np.testing.assert_allclose(metrics["peak_mechanism_torque_Nm"], [1.0, 2.5], rtol=1e-6)
     assert metrics["limit_violations"] == {} and metrics["n_limit_violations"] == 0
@@ -399,3 +405,33 @@ def test_recovery_after_impulse_in_simulation_is_bracketed_by_the_envelope():
     phase = np.arctan(np.sqrt(1 - zeta**2) / zeta)
     peak = amplitude * np.exp(-zeta * omega * phase / damped) * np.sin(phase)
     assert metrics["peak_deviation_rad"][0] == pytest.approx(peak, rel=0.01)
+
+
+def test_a_ringing_joint_is_neither_settled_nor_judged_by_its_last_sample():
+    """q = goal + A*sin(2*pi*4*t) ends at a zero crossing: the last sample shows no error, the
+    window's mean |error| over two whole periods is 2A/pi (closed form) and its peak-to-peak 2A."""
+    t = np.linspace(0.0, 4.0, 4001)
+    amplitude, goal = 0.031, np.array([0.2])
+    q = goal + amplitude * np.sin(2 * np.pi * 4.0 * t)[:, None]
+    zeros = np.zeros_like(q)
+    metrics = outcome_metrics(t, q, q, zeros, zeros, goal)
+    assert abs(q[-1, 0] - goal[0]) < 1e-12
+    # 125 samples per period and both window ends: the sampled mean is within 0.5 % of 2A/pi
+    assert metrics["goal_error_rad"][0] == pytest.approx(2 * amplitude / np.pi, rel=5e-3)
+    assert metrics["settling_peak_to_peak_rad"][0] == pytest.approx(2 * amplitude, rel=1e-3)
+    assert metrics["settled"] is False
+    wide = outcome_metrics(t, q, q, zeros, zeros, goal, settling_tolerance=0.07)
+    assert wide["settled"] is True and wide["settling_tolerance_rad"] == 0.07
+    short = outcome_metrics(t[:100], q[:100], q[:100], zeros[:100], zeros[:100], goal)
+    assert short["settling_from_s"] == 0.0  # a replay shorter than the window: all of it
+
+
+@pytest.mark.parametrize(("option", "match"), [
+    ({"settling_window_s": 0.0}, r"settling_window_s: must be positive \(s\), got 0\.0"),
+    ({"settling_tolerance": -1.0}, r"settling_tolerance: must be positive \(rad\), got -1\.0"),
+])
+def test_settling_options_are_checked(option, match):
+    t = np.linspace(0.0, 1.0, 11)
+    q = np.zeros((11, 1))
+    with pytest.raises(InvalidInputError, match=match):
+        outcome_metrics(t, q, q, q, q, [0.0], **option)

@@ -7,14 +7,25 @@ import json
 import shutil
 from pathlib import Path
 
+import numpy as np
 import pytest
 import yaml
 from store_support import add_demo
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
-from compliant_demo.plant import load_plant
-from compliant_demo.readiness import Criteria, Reason, Verdict, load_criteria
-from compliant_demo.store import DemoStore
+from compliant_demo.models import IdealImpedanceParams, JointParams
+from compliant_demo.plant import ReplayPlant, load_plant
+from compliant_demo.primitives import Rollout
+from compliant_demo.readiness import (
+    Criteria,
+    Reason,
+    Verdict,
+    assess,
+    load_criteria,
+    schedule_report,
+    stretch_anchor,
+)
+from compliant_demo.store import DemoStore, ReplayParameters, ReplayResultInfo
 
 REPO = Path(__file__).resolve().parents[1]
 CRITERIA = REPO / "config" / "readiness_criteria.yaml"
@@ -194,3 +205,127 @@ def test_save_verdict_errors_store_nothing(store_with_skill):
     with pytest.raises(InvalidInputError, match="latest|criteria_digest must be a SHA-256"):
         store.latest_verdict(skill_id, plant_digest=keys["plant_digest"], criteria_digest="x")
     assert store.db.execute("SELECT count(*) FROM verdicts").fetchone() == (0,)
+
+
+# --- assess ------------------------------------------------------------------------------------
+
+ELBOW = JointParams(name="elbow", inertia=0.04, viscous_damping=0.0, torque_limit=20.0)
+IDEAL = IdealImpedanceParams(stiffness_min=5.0, stiffness_max=150.0, damping_max=20.0,
+                             stiffness_rate_limit=1e9, damping_rate_limit=1e9)
+PLANT = ReplayPlant(joints=(ELBOW,), mechanism=IDEAL)
+
+
+def _hold(stiffness, damping) -> Rollout:
+    """One joint holding still at 0 rad for 2 s at 1 kHz: no torque, only the schedule counts."""
+    t = np.linspace(0.0, 2.0, 2001)
+    k = np.broadcast_to(np.asarray(stiffness, dtype=float), t.shape).reshape(-1, 1).copy()
+    d = np.broadcast_to(np.asarray(damping, dtype=float), t.shape).reshape(-1, 1).copy()
+    zeros = np.zeros_like(k)
+    return Rollout(t, zeros, zeros, zeros, k, d, ("elbow",), 2.0)
+
+
+def test_an_undamped_hold_is_not_ready_with_the_damping_ratio_first():
+    criteria = load_criteria()
+    t = np.linspace(0.0, 2.0, 2001)
+    stiffness = np.full(t.shape, 100.0)
+    stiffness[(t >= 1.0) & (t <= 1.2)] = 180.0  # 0.2 s beyond the 150 N*m/rad range
+    stiffness[1500] = 160.0  # a 1-sample blip: not a stretch worth a reason
+    # zeta = d / (2 sqrt(k I)) = 0.2 / (2 sqrt(100 * 0.04)) = 0.05 (common practice)
+    report = schedule_report(_hold(stiffness, 0.2), PLANT, criteria)
+    verdict = assess(criteria, PLANT, report)
+    assert verdict.verdict == "not_ready"
+    first = verdict.reasons[0]
+    assert (first.check, first.joint, first.from_s, first.to_s) == ("under_damped", "elbow",
+                                                                     0.0, 2.0)
+    # the worst ratio is where the realisable stiffness peaks: clamped to 150 N*m/rad
+    assert first.threshold == 0.5
+    assert first.value == pytest.approx(0.2 / (2 * np.sqrt(150 * 0.04)), rel=1e-12)
+    # severity: (0.5 - zeta) / 0.5 over the whole skill
+    assert first.severity == pytest.approx((0.5 - first.value) / 0.5)
+    assert first.link == stretch_anchor(report.stretches.index(next(
+        s for s in report.stretches if s.kind == "under_damped")))
+    ranges = [r for r in verdict.reasons if r.check == "stiffness_range"]
+    assert len(ranges) == 1  # the blip is left out
+    (band,) = ranges
+    assert (band.from_s, band.to_s) == pytest.approx((1.0, 1.2))
+    assert (band.value, band.threshold, band.unit) == (180.0, 150.0, "N*m/rad")
+    # (180 - 150) / 180 over 0.2 of 2 s
+    assert band.severity == pytest.approx(30 / 180 * 0.1)
+    assert [r.check for r in verdict.reasons] == ["under_damped", "stiffness_range"]
+
+
+def test_a_well_damped_hold_with_a_clean_campaign_is_ready():
+    criteria = load_criteria()
+    # zeta = 2.0 / (2 sqrt(100 * 0.04)) = 0.5 exactly on the floor is not below it; take 2.4
+    report = schedule_report(_hold(100.0, 2.4), PLANT, criteria)
+    scenarios = [_result(i, {}) for i in range(10)]
+    verdict = assess(criteria, PLANT, report, scenarios)
+    assert verdict.to_dict() == {"verdict": "ready", "reasons": []}
+
+
+def _result(index: int, changes: dict, status: str = "ok") -> ReplayResultInfo:
+    metrics = {
+        "goal_error_rad": [0.001], "settling_peak_to_peak_rad": [0.0001],
+        "settling_from_s": 2.0, "settling_to_s": 2.5, "peak_interaction_torque_Nm": [5.0],
+        "recovered": [True],
+        "limit_violations": {"torque": {"samples": [0], "duration_s": [0.0],
+                                        "worst_excess": [0.0]}},
+    }  # fmt: skip
+    metrics.update(changes)
+    return ReplayResultInfo(
+        id=f"00000000-0000-4000-8000-{index:012d}", skill_id="s", campaign_id="c",
+        scenario_index=index, status=status, reason=None, metrics=metrics,
+        parameters=ReplayParameters(source="campaign", scenario_index=index), trace_channels=(),
+        created=0.0,
+    )  # fmt: skip
+
+
+def test_campaign_criteria_give_reasons_per_joint_with_their_worst_scenario():
+    criteria = load_criteria()
+    report = schedule_report(_hold(100.0, 2.4), PLANT, criteria)
+    over = {"torque": {"samples": [3], "duration_s": [0.003], "worst_excess": [1.5]}}
+    scenarios = [_result(i, {}) for i in range(20)]
+    scenarios[3] = _result(3, {"limit_violations": over}, status="violation")
+    scenarios[4] = _result(4, {"peak_interaction_torque_Nm": [95.0]})
+    scenarios[5] = _result(5, {"peak_interaction_torque_Nm": [45.0]})
+    scenarios[6] = _result(6, {"goal_error_rad": [0.057], "settling_peak_to_peak_rad": [0.062]})
+    for i in (7, 8):
+        scenarios[i] = _result(i, {"recovered": [True, False]})
+    verdict = assess(criteria, PLANT, report, scenarios)
+    by_check = {r.check: r for r in verdict.reasons}
+    assert set(by_check) == {"torque_limit_scenarios", "interaction_torque", "goal_error",
+                             "safety_stops"}
+    push = by_check["interaction_torque"]
+    assert (push.joint, push.value, push.threshold, push.unit, push.link) == (
+        "elbow", 95.0, 40.0, "N*m", "scenario-4")
+    # (95 - 40) / 95 times 2 of 20 scenarios
+    assert push.severity == pytest.approx(55 / 95 * 0.1)
+    goal = by_check["goal_error"]
+    assert (goal.value, goal.threshold, goal.from_s, goal.to_s) == (0.057, 0.02, 2.0, 2.5)
+    torque = by_check["torque_limit_scenarios"]
+    assert (torque.value, torque.threshold, torque.link) == (0.05, 0.0, "scenario-3")
+    assert by_check["safety_stops"].joint is None
+    # one unsettled and two unrecovered of 20 stay within their caps (10 %)
+    assert "unsettled" not in by_check and "failed_recovery" not in by_check
+    severities = [r.severity for r in verdict.reasons]
+    assert severities == sorted(severities, reverse=True)
+
+
+def test_assess_refuses_checks_the_criteria_do_not_know(tmp_path):
+    data = yaml.safe_load(CRITERIA.read_text(encoding="utf-8"))
+    del data["schedule_checks"]["torque_limit"]
+    criteria = load_criteria(_write(tmp_path, data))
+    report = schedule_report(_hold(100.0, 2.4), PLANT, criteria)
+    with pytest.raises(InvalidInputError, match=r"no entry for check\(s\) \['torque_limit'\]"):
+        assess(criteria, PLANT, report)
+
+
+def test_assess_refuses_goal_errors_measured_over_another_window():
+    criteria = load_criteria()
+    report = schedule_report(_hold(100.0, 2.4), PLANT, criteria)
+    short = _result(0, {"settling_from_s": 2.3, "settling_to_s": 2.5})
+    with pytest.raises(InvalidInputError, match=r"scenario-0: goal error was measured over the "
+                                                r"last 0\.2 s; criteria settling_window asks"):
+        assess(criteria, PLANT, report, [short])
+    with pytest.raises(InvalidInputError, match=r"metric goal_error_rad = \[0\.1, 0\.2\]"):
+        assess(criteria, PLANT, report, [_result(0, {"goal_error_rad": [0.1, 0.2]})])
