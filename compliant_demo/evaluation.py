@@ -414,7 +414,8 @@ def outcome_metrics(
     -------
     dict with goal_error_rad (per joint, mean |q - goal| over the settling window),
     goal_error_max_rad (worst joint of it), goal_error_window_max_rad (per joint, max |q - goal|
-    over the window), settling_from_s and settling_to_s (the window), settling_peak_to_peak_rad
+    over the window), settling_window_s (as asked), settling_from_s and settling_to_s (the window
+    taken), settling_peak_to_peak_rad
     (per joint), settling_tolerance_rad, settled (every joint within the tolerance),
     peak_deviation_rad (per joint),
     peak_deviation_time_s, recovery_band_rad, recovery_time_s (per perturbation, None when not
@@ -459,6 +460,7 @@ def outcome_metrics(
         "goal_error_rad": goal_error.tolist(),
         "goal_error_max_rad": float(goal_error.max()),
         "goal_error_window_max_rad": error.max(axis=0).tolist(),
+        "settling_window_s": float(settling_window_s),
         "settling_from_s": float(times[window][0]),
         "settling_to_s": float(times[-1]),
         "settling_peak_to_peak_rad": swing.tolist(),

@@ -28,7 +28,9 @@ from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import JointParams, MechanismParams, model_from_mapping, read_yaml
 from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import Rollout
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.resources import package_file
+from compliant_demo.store.core import DemoStore
 from compliant_demo.store.records import ReplayResultInfo
 
 __all__ = [
@@ -42,6 +44,8 @@ __all__ = [
     "Verdict",
     "schedule_report",
     "assess",
+    "assess_replays",
+    "record_verdict",
     "scenario_anchor",
     "stretch_anchor",
 ]
@@ -378,12 +382,12 @@ def _campaign_reasons(
     n = len(scenarios)
     window = limits.settling_window.value
     for result in scenarios:
-        start, end = _settling_window(result)
-        if start is not None and end is not None and end - start < window - 1e-6 and start > 0:
+        asked = result.metrics.get("settling_window_s")
+        if asked is not None and not math.isclose(float(asked), window, rel_tol=1e-9):
             raise InvalidInputError(
                 f"scenario {scenario_anchor(result)}: goal error was measured over the last "
-                f"{end - start:.3g} s; criteria settling_window asks for {window:.3g} s (replay "
-                "again with that window)"
+                f"{float(asked):.3g} s; criteria settling_window asks for {window:.3g} s "
+                "(replay again with that window)"
             )
     reasons: list[Reason | None] = []
     by_joint: dict[str, list[list[tuple[ReplayResultInfo, float]]]] = {
@@ -464,3 +468,22 @@ def assess(
     if scenarios:
         reasons += _campaign_reasons(criteria, schedule.joints, scenarios)
     return Verdict.from_reasons(reasons)
+
+
+def assess_replays(
+    criteria: Criteria, setup: ReplaySetup, results: Sequence[ReplayResultInfo]
+) -> Verdict:
+    """The verdict of the skill ``setup`` replays on its plant: its schedule checks
+    (:func:`schedule_report`) and ``results``, the replays it ran (see :func:`assess`)."""
+    schedule = schedule_report(setup.rollout, setup.plant, criteria)
+    return assess(criteria, setup.plant, schedule, results)
+
+
+def record_verdict(
+    store: DemoStore, verdict: Verdict, *, skill_id: str, plant: ReplayPlant, criteria: Criteria,
+    campaign_id: str | None,
+) -> str:
+    """Store ``verdict`` with the plant's and the criteria's digests and the criteria; its id."""
+    return store.save_verdict(verdict, skill_id=skill_id, plant_digest=plant.digest,
+                              criteria_digest=criteria.digest, campaign_id=campaign_id,
+                              criteria=criteria.model_dump(mode="json"))

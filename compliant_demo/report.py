@@ -27,6 +27,7 @@ from compliant_demo import __version__
 from compliant_demo.cautions import SAFETY_CAUTION
 from compliant_demo.display import format_value
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.readiness import Reason, Verdict
 
 __all__ = [
     "SAFETY_CAUTIONS",
@@ -375,23 +376,32 @@ class ReportFigure:
 
 @dataclass(frozen=True)
 class ReportTable:
-    """A table of the report; ``rows`` are sequences of cells in ``columns`` order."""
+    """A table of the report; ``rows`` are sequences of cells in ``columns`` order, and
+    ``row_ids`` (empty, or one per row) the HTML ids the verdict's reasons link to."""
 
     title: str
     columns: tuple[str, ...]
     rows: tuple[tuple[object, ...], ...]
     caption: str = ""
     empty_text: str = "none"
+    row_ids: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.row_ids and len(self.row_ids) != len(self.rows):
+            raise InvalidInputError(f"row_ids: {len(self.row_ids)} ids for {len(self.rows)} rows "
+                                    f"of table {self.title!r}")
 
 
 @dataclass(frozen=True)
 class ReportContent:
-    """Everything a report shows, in order: summary facts, figures, tables, cautions."""
+    """Everything a report shows, in order: the readiness verdict, cautions, summary facts,
+    figures, tables."""
 
     title: str
     summary: tuple[tuple[str, str], ...]
     figures: tuple[ReportFigure, ...]
     tables: tuple[ReportTable, ...] = ()
+    verdict: Verdict | None = None
     cautions: tuple[str, ...] = SAFETY_CAUTIONS
     created: str = field(
         default_factory=lambda: datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S UTC")
@@ -416,17 +426,44 @@ figcaption { font-size: 0.9rem; color: #333; }
 table { border-collapse: collapse; margin: 0.5rem 0; font-size: 0.9rem; }
 th, td { border: 1px solid #777; padding: 0.2rem 0.5rem; text-align: left; }
 th { background: #eee; }
-.cautions { border: 2px solid #000; padding: 0.5rem 1rem; }
-.cautions h2 { margin-top: 0.5rem; }
+.cautions, .verdict { border: 2px solid #000; padding: 0.5rem 1rem; }
+.cautions h2, .verdict h2 { margin-top: 0.5rem; }
+.verdict { border-width: 4px; }
 """
+
+
+def _span_text(reason: Reason) -> str:
+    if reason.from_s is None or reason.to_s is None:
+        return ""
+    return f", {reason.from_s:.3g} to {reason.to_s:.3g} s"
+
+
+def _verdict_html(verdict: Verdict) -> str:
+    """The verdict and its reasons, each linking to the stretch or scenario it comes from."""
+    heading = "ready" if verdict.ready else "NOT READY"
+    items = "".join(
+        f'<li><a href="#{html.escape(r.link)}">{html.escape(r.check)}'
+        f"{html.escape('' if r.joint is None else ' on ' + r.joint)}"
+        f"{html.escape(_span_text(r))}</a>: {html.escape(format_value(r.value))} against "
+        f"{html.escape(format_value(r.threshold))} {html.escape(r.unit)}. "
+        f"{html.escape(r.detail)}</li>"
+        for r in verdict.reasons
+    )
+    body = (f"<ol>{items}</ol>" if items else
+            "<p>Every acceptance criterion was met in simulation.</p>")
+    return (f'<section class="verdict" id="verdict"><h2>Readiness verdict: {heading}</h2>'
+            f"<p>Reasons, most severe first; each links to the stretch or scenario it comes "
+            f"from.</p>{body}</section>")
 
 
 def _table_html(table: ReportTable) -> str:
     head = "".join(f"<th>{html.escape(c)}</th>" for c in table.columns)
     if table.rows:
+        ids = table.row_ids or ("",) * len(table.rows)
         body = "".join(
-            "<tr>" + "".join(f"<td>{html.escape(format_value(v))}</td>" for v in row) + "</tr>"
-            for row in table.rows
+            (f'<tr id="{html.escape(row_id)}">' if row_id else "<tr>")
+            + "".join(f"<td>{html.escape(format_value(v))}</td>" for v in row) + "</tr>"
+            for row_id, row in zip(ids, table.rows, strict=True)
         )
     else:
         body = f'<tr><td colspan="{len(table.columns)}">{html.escape(table.empty_text)}</td></tr>'
@@ -466,6 +503,7 @@ def write_report(content: ReportContent, out_dir: str | Path) -> ReportFiles:
         f"<title>{html.escape(content.title)}</title><style>{_CSS}</style></head><body>",
         f"<h1>{html.escape(content.title)}</h1>",
         f"<p>Written {html.escape(content.created)} by compliant_demo {__version__}.</p>",
+        "" if content.verdict is None else _verdict_html(content.verdict),
         '<section class="cautions"><h2>Safety cautions</h2><ul>',
         *(f"<li>{html.escape(c)}</li>" for c in content.cautions),
         "</ul></section>",

@@ -270,6 +270,7 @@ def test_recovery_time_of_exponential_decay():
                                rtol=1e-9)
     np.testing.assert_allclose(metrics["goal_error_window_max_rad"], [a, 0.5 * a], rtol=1e-9)
     assert (metrics["settling_from_s"], metrics["settling_to_s"]) == pytest.approx((3.5, 4.0))
+    assert metrics["settling_window_s"] == 0.5
     assert metrics["settled"] is True
     np.testing.assert_allclose(metrics["peak_interaction_torque_Nm"], [3.0, 0.0])
     np.testing.assert_allclose(metrics["peak_mechanism_torque_Nm"], [1.0, 2.5], rtol=1e-6)

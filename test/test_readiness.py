@@ -323,7 +323,7 @@ def test_assess_refuses_checks_the_criteria_do_not_know(tmp_path):
 def test_assess_refuses_goal_errors_measured_over_another_window():
     criteria = load_criteria()
     report = schedule_report(_hold(100.0, 2.4), PLANT, criteria)
-    short = _result(0, {"settling_from_s": 2.3, "settling_to_s": 2.5})
+    short = _result(0, {"settling_window_s": 0.2})
     with pytest.raises(InvalidInputError, match=r"scenario-0: goal error was measured over the "
                                                 r"last 0\.2 s; criteria settling_window asks"):
         assess(criteria, PLANT, report, [short])

@@ -3,6 +3,8 @@ teacher's truth file, a campaign; and the error paths of collecting it."""
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 from _chromium import visit
@@ -61,6 +63,15 @@ def test_report_from_recorded_demonstrations_and_truth_opens_cleanly(tmp_path):
     seen = visit(files.html)
     assert seen.errors == []
     assert len(seen.images) == 5 and all(i["complete"] and i["width"] > 0 for i in seen.images)
+    # the verdict opens the page, and every reason links to a row of the stretch or scenario
+    page = files.html.read_text(encoding="utf-8")
+    assert content.verdict is not None and not content.verdict.ready
+    assert page.index('id="verdict"') < page.index('class="cautions"') < page.index("Summary")
+    links = re.findall(r'<a href="#([^"]+)">', page)
+    assert links == [reason.link for reason in content.verdict.reasons]
+    ids = set(re.findall(r'<tr id="([^"]+)">', page))
+    assert set(links) <= ids
+    assert summary["readiness"].startswith("not ready")
 
 
 def test_report_without_campaign_shows_what_exists(tmp_path):

@@ -34,21 +34,36 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     monkeypatch.setenv("ROS_AUTOMATIC_DISCOVERY_RANGE", "LOCALHOST")
     monkeypatch.setenv("ROS_DOMAIN_ID", str(DOMAIN_ID))
     store, out = tmp_path / "store.sqlite", tmp_path / "tour"
-    status = main(["tour", "--store", str(store), "--out", str(out), "--demos", "2",
-                   "--demo-duration", "3",
-                   "--scenarios", "28", "--seed", "3", "--domain-id", str(DOMAIN_ID),
-                   "--workers", "2", "--json"])
+    # the readiness verdict's done-when command, with this test's store, folder, seed and domain
+    plant = Path(__file__).resolve().parents[1] / "config" / "joint_cork_seat_antagonistic.yaml"
+    status = main(["tour", "--demos", "2", "--scenarios", "28", "--json", "--plant", str(plant),
+                   "--store", str(store), "--out", str(out), "--seed", "3",
+                   "--domain-id", str(DOMAIN_ID), "--workers", "2"])
     captured = capsys.readouterr()
     assert status == 0, captured.err
-    result = json.loads(captured.out)
+    result = json.loads(captured.out)  # exactly one JSON object on stdout
+    # antagonistic springs have no damping input: the skill's damping ratio stays near 0.01
+    # along the whole skill against the criteria's 0.5, the first and most severe reason
+    assert result["verdict"] == "not_ready"
+    first = result["reasons"][0]
+    assert first["check"] == "under_damped" and first["threshold"] == 0.5
+    assert first["value"] < 0.05 and first["from_s"] == 0.0 and first["to_s"] > 5.0
+    assert all({"check", "joint", "from_s", "to_s", "value", "threshold", "unit"} <= set(r)
+               for r in result["reasons"])
 
     with DemoStore(store, read_only=True) as opened:
         demos = [opened.get_info(i) for i in result["demonstration_ids"]]
         skill = opened.load_skill_record("cork_seat")
         results = list(opened.find_replay_results(campaign_id=result["campaign"]["id"]))
+        stored = opened.latest_verdict(skill_id=result["skill"]["id"],
+                                       plant_digest=result["plant_digest"],
+                                       criteria_digest=result["criteria_digest"])
+    assert stored is not None and stored.id == result["verdict_id"]
+    assert (stored.verdict, stored.reasons) == (result["verdict"], result["reasons"])
+    assert stored.campaign_id == result["campaign"]["id"] and stored.skill_version == 1
     assert [d.status for d in demos] == ["complete", "complete"]
     assert all(d.tags == (result["tag"],) for d in demos)  # this run's demonstrations only
-    assert all(d.has_stiffness and 2500 < d.n_samples < 4000 for d in demos)  # 3 s at 1 kHz
+    assert all(d.has_stiffness and 5500 < d.n_samples < 7500 for d in demos)  # 6 s at 1 kHz
     assert skill.id == result["skill"]["id"]
     assert sorted(skill.demonstration_ids) == sorted(result["demonstration_ids"])
     assert len(results) == 28
@@ -71,6 +86,8 @@ def test_tour_records_learns_runs_the_campaign_and_writes_the_report(tmp_path, c
     assert "estimate coverage" in page and "cork_seat version 1" in page
     assert "ISO/TS 15066" in page and "Limit violations in the campaign" in page
     assert "<td>under_damped</td>" in page
+    assert page.index('id="verdict"') < page.index("Safety cautions")
+    assert f'<a href="#{first["link"]}">' in page and f'<tr id="{first["link"]}">' in page
 
 
 def test_node_processes_get_loopback_discovery_and_their_domain(monkeypatch):

@@ -19,10 +19,19 @@ import numpy as np
 from compliant_demo.alignment import align_demonstrations
 from compliant_demo.campaign import ReplayCampaign
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
-from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, check_schedule
+from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import load_skill
 from compliant_demo.plant import ReplayPlant, load_plant
+from compliant_demo.readiness import (
+    Criteria,
+    Verdict,
+    assess,
+    load_criteria,
+    scenario_anchor,
+    schedule_report,
+    stretch_anchor,
+)
 from compliant_demo.replay import ReplaySetup
 from compliant_demo.report import (
     ReportContent,
@@ -135,7 +144,7 @@ def collect_report_content(
     campaign_id: str | None = None,
     plant: ReplayPlant | None = None,
     truth: GroundTruth | None = None,
-    min_damping_ratio: float = 0.5,
+    criteria: Criteria | None = None,
 ) -> ReportContent:
     """Build the report of one skill version and one of its campaigns from the store.
 
@@ -147,12 +156,17 @@ def collect_report_content(
     plant : target joints and mechanism for the schedule checks; None takes the campaign's
         plant, else the cork_seat default
     truth : the teacher's ground truth for the demonstrations (recording order), if known
-    min_damping_ratio : damping ratio below which a stretch is flagged under-damped, 1
+    criteria : acceptance criteria of the readiness verdict that opens the report (and whose
+        ``min_damping_ratio`` flags under-damped stretches); None: the shipped ones
 
     Returns
     -------
     ReportContent
+        With the readiness verdict of the skill on the plant: its schedule checks and the
+        campaign's scenarios.
     """
+    criteria = load_criteria() if criteria is None else criteria
+    min_damping_ratio = criteria.thresholds.min_damping_ratio.value
     stored = load_skill(store, skill_name, version)
     record, skill = stored.record, stored.skill
     joints = list(skill.joints)
@@ -205,10 +219,8 @@ def collect_report_content(
         summary.append(("estimate coverage",
                         f"{100 * excited.mean():.0f} % of samples excited enough"))
 
-    target = plant.for_joints(joints)
     rollout = (job.setup if job else ReplaySetup(skill, plant)).rollout
-    checks = check_schedule(rollout, target, plant.mechanisms_for(joints),
-                            min_damping_ratio=min_damping_ratio, chain=plant.chain)
+    checks = schedule_report(rollout, plant, criteria)
     figures.append(ReportFigure(
         "schedule_checks", "Learned stiffness and damping ratio along the skill",
         "The stiffness the skill commands (clamped to the mechanism's range) and the damping "
@@ -220,7 +232,9 @@ def collect_report_content(
         "Flagged stretches of the schedule", ("joint", "check", "from [s]", "to [s]", "worst",
                                               "unit"),
         tuple((s.joint, s.kind, s.t_start, s.t_end, s.worst, s.unit) for s in checks.stretches),
-        caption=f"Checks: {', '.join(FLAG_KINDS)}.", empty_text="no stretch flagged")]
+        caption=f"Checks: {', '.join(FLAG_KINDS)}.", empty_text="no stretch flagged",
+        row_ids=tuple(stretch_anchor(i) for i in range(len(checks.stretches))))]
+    results: list[ReplayResultInfo] = []
 
     if campaign is not None and job is not None:
         results = list(store.find_replay_results(campaign_id=campaign_id))
@@ -264,5 +278,30 @@ def collect_report_content(
         ]
     summary.append(("schedule checks", "passed" if checks.ok else
                     f"{len(checks.stretches)} flagged stretch(es)"))
+    verdict = assess(criteria, plant, checks, results)
+    tables.append(_named_scenarios(verdict, results))
+    summary.insert(0, ("readiness", _verdict_line(verdict)))
     return ReportContent(f"compliant_demo report: {skill.name} v{record.version}",
-                         tuple(summary), tuple(figures), tuple(tables))
+                         tuple(summary), tuple(figures), tuple(tables), verdict=verdict)
+
+
+def _verdict_line(verdict: Verdict) -> str:
+    if verdict.ready:
+        return "ready: every acceptance criterion met in simulation"
+    return f"not ready: {len(verdict.reasons)} reason(s), first {verdict.reasons[0].check}"
+
+
+def _named_scenarios(verdict: Verdict, results: Sequence[ReplayResultInfo]) -> ReportTable:
+    """The scenarios the verdict's reasons link to, each row with its anchor."""
+    links = {reason.link for reason in verdict.reasons}
+    named = [r for r in results if scenario_anchor(r) in links]
+    return ReportTable(
+        "Scenarios the verdict names",
+        ("scenario", "kind", "status", "goal error [rad]", "settled",
+         "peak interaction torque [N*m]", "first violation"),
+        tuple((r.scenario_index, r.parameters.kind, r.status, r.metrics.get("goal_error_rad"),
+               r.metrics.get("settled"), r.metrics.get("peak_interaction_torque_Nm"), r.reason)
+              for r in named),
+        caption="The worst scenario of each campaign criterion the skill fails (goal error is "
+                "the mean over the final settling window, per joint).",
+        empty_text="no campaign criterion failed", row_ids=tuple(scenario_anchor(r) for r in named))

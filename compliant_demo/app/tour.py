@@ -32,6 +32,7 @@ from compliant_demo.campaign import (
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.plant import load_plant
+from compliant_demo.readiness import Verdict, load_criteria, record_verdict
 from compliant_demo.replay import ReplaySetup
 from compliant_demo.report import write_report
 from compliant_demo.resources import package_launch_file
@@ -77,6 +78,8 @@ class TourSettings:
         :func:`compliant_demo.plant.load_plant`); None uses the package's
         ``config/joint_cork_seat_antagonistic.yaml``: antagonistic springs, whose damping is
         not coupled to stiffness, on a bench arm with gravity, friction and torque limits
+    criteria : readiness acceptance criteria (YAML, see
+        :func:`compliant_demo.readiness.load_criteria`); None uses the shipped ones
     """
 
     store: Path
@@ -92,6 +95,7 @@ class TourSettings:
     record_timeout_s: float = 150.0
     launch_file: Path | None = None
     plant: Path | None = None
+    criteria: Path | None = None
 
     def __post_init__(self) -> None:
         if not 2 <= self.n_demonstrations <= 50:
@@ -119,7 +123,8 @@ class TourSettings:
 
 @dataclass(frozen=True)
 class TourResult:
-    """What the tour produced: the run's tag and ids in the store, the campaign, the report and
+    """What the tour produced: the run's tag and ids in the store, the campaign, the report, the
+    readiness verdict (stored as ``verdict_id`` with the plant's and the criteria's digests) and
     step timings (s)."""
 
     store: Path
@@ -131,11 +136,19 @@ class TourResult:
     report: Path
     figures: tuple[Path, ...]
     summary: tuple[tuple[str, str], ...]
+    verdict: Verdict
+    verdict_id: str
+    plant_digest: str
+    criteria_digest: str
     timings_s: dict[str, float] = field(default_factory=dict)
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-ready form."""
         return {
+            **self.verdict.to_dict(),
+            "verdict_id": self.verdict_id,
+            "plant_digest": self.plant_digest,
+            "criteria_digest": self.criteria_digest,
             "store": str(self.store),
             **plan_dict(self.plan),
             "demonstration_ids": list(self.demonstration_ids),
@@ -280,6 +293,9 @@ def run_tour(
     if settings.plant is not None and not Path(settings.plant).is_file():
         raise InvalidInputError(f"plant = {str(settings.plant)!r}: no such file")
     plant = load_plant(settings.plant)
+    if settings.criteria is not None and not Path(settings.criteria).is_file():
+        raise InvalidInputError(f"criteria = {str(settings.criteria)!r}: no such file")
+    criteria = load_criteria(settings.criteria)
     with planned_run(run_tag("tour"), seed=settings.seed, domain_id=settings.domain_id,
                      out_dir=settings.out_dir) as plan:
         if announce is not None:
@@ -320,13 +336,16 @@ def run_tour(
             with progress_bar("report", 2, "step", progress) as bar:
                 content = collect_report_content(
                     store, SKILL, version=record.version, campaign_id=campaign.campaign_id,
-                    plant=plant, truth=GroundTruth.from_npz(plan.truth_path))
+                    plant=plant, truth=GroundTruth.from_npz(plan.truth_path), criteria=criteria)
                 bar.update(1)
                 files = write_report(content, plan.out_dir)
                 bar.update(1)
             return content, files
 
         content, files = _timed(timings, "report", report)
+        assert content.verdict is not None  # collect_report_content always judges the skill
+        verdict_id = record_verdict(store, content.verdict, skill_id=record.id, plant=plant,
+                                    criteria=criteria, campaign_id=campaign.campaign_id)
     timings["total"] = round(time.perf_counter() - started, 3)
     return TourResult(
         store=settings.store,
@@ -338,5 +357,9 @@ def run_tour(
         report=files.html,
         figures=files.figures,
         summary=content.summary,
+        verdict=content.verdict,
+        verdict_id=verdict_id,
+        plant_digest=plant.digest,
+        criteria_digest=criteria.digest,
         timings_s=timings,
     )

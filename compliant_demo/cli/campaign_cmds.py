@@ -23,6 +23,7 @@ from compliant_demo.cli._job_options import (
     read_skill,
     show_progress,
 )
+from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
@@ -34,6 +35,7 @@ from compliant_demo.cli.common import (
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.learning import load_skill_by_id
 from compliant_demo.perturbation import load_campaign_yaml
+from compliant_demo.readiness import assess_replays, record_verdict
 from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
 from compliant_demo.store import DemoStore
 
@@ -77,6 +79,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="continue this campaign (its id or a unique prefix; see "
                              "'compliant-demo campaigns') with its stored settings; scenarios "
                              "already in the store are skipped")
+    add_criteria_option(parser)
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
@@ -140,6 +143,7 @@ def _resume_hint(store: DemoStore, path: Path, campaign_id: str, planned: int) -
 
 def _run(args: argparse.Namespace) -> int:
     path = store_path_of(args)
+    criteria = read_criteria(args)
     with DemoStore(path, create=False, durable=False) as store:
         resume = None if args.resume is None else store.resolve_id("campaign", args.resume)
         skill_id, job = _job(store, args, resume)
@@ -162,6 +166,9 @@ def _run(args: argparse.Namespace) -> int:
                 print(_resume_hint(store, path, started[0], job.n_scenarios), file=sys.stderr)
             raise
         results = list(store.find_replay_results(campaign_id=summary.campaign_id))
+        verdict = assess_replays(criteria, job.setup, results)
+        verdict_id = record_verdict(store, verdict, skill_id=skill_id, plant=job.plant,
+                                    criteria=criteria, campaign_id=summary.campaign_id)
     by_kind: dict[str, list[int]] = {}
     for result in results:
         counts = by_kind.setdefault(result.parameters.kind, [0, 0])
@@ -182,6 +189,10 @@ def _run(args: argparse.Namespace) -> int:
             "scenarios_per_s": summary.scenarios_per_s,
             "per_kind": {kind: {"scenarios": c[0], "violations": c[1]}
                          for kind, c in sorted(by_kind.items())},
+            **verdict.to_dict(),
+            "verdict_id": verdict_id,
+            "criteria_digest": criteria.digest,
+            "plant_digest": job.plant.digest,
         })
     else:
         print(f"campaign {summary.campaign_id} on the {job.plant.describe()}: "
@@ -190,5 +201,6 @@ def _run(args: argparse.Namespace) -> int:
               f"{summary.backend} ({summary.workers} workers)")
         emit_table([{"kind": kind, "scenarios": c[0], "violations": c[1]}
                     for kind, c in sorted(by_kind.items())], ("kind", "scenarios", "violations"))
+        print_verdict(verdict)
         emit_caution()
     return 0

@@ -19,6 +19,7 @@ from compliant_demo.cli._job_options import (
     read_skill,
     show_progress,
 )
+from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
@@ -29,6 +30,7 @@ from compliant_demo.cli.common import (
 )
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import load_schedule_yaml
+from compliant_demo.readiness import assess_replays
 from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
 from compliant_demo.store import DemoStore
 
@@ -70,6 +72,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                              "(default: no limit beyond the mechanism's own)")
     parser.add_argument("--seed", type=non_negative_int, default=0,
                         help="seed of sensor noise and unseeded random torques (default: 0)")
+    add_criteria_option(parser)
     add_progress_option(parser)
     add_json_option(parser)
     parser.set_defaults(handler=_run)
@@ -77,6 +80,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def _run(args: argparse.Namespace) -> int:
     plant = read_plant(args)
+    criteria = read_criteria(args)
     if args.schedule is not None and not args.schedule.is_file():
         raise InvalidInputError(f"--schedule {str(args.schedule)!r}: no such file")
     schedule = None if args.schedule is None else load_schedule_yaml(args.schedule)
@@ -97,10 +101,12 @@ def _run(args: argparse.Namespace) -> int:
         result_id = store.save_replay_result(skill_id=record.id, metrics=metrics,
                                              parameters=parameters, status=status,
                                              reason=reason, trace=trace)
+        # the verdict of the skill on this one replay (a campaign judges it on many)
+        verdict = assess_replays(criteria, setup, [store.load_replay_result(result_id).info])
     if args.json:
         emit_json({"result_id": result_id, "skill": skill.name, "version": record.version,
                    "plant": plant.describe(), "status": status, "reason": reason,
-                   "metrics": metrics})
+                   "metrics": metrics, **verdict.to_dict()})
     else:
         print(f"replay of {skill.name} version {record.version} on the "
               f"{plant.describe()}: {status}"
@@ -108,5 +114,6 @@ def _run(args: argparse.Namespace) -> int:
         # a replay stopped at its first step has no outcome metrics (they need two steps)
         emit_table([{"metric": key, "value": metrics[key]} for key in _SHOWN if key in metrics],
                    ("metric", "value"), joints=skill.joints)
+        print_verdict(verdict)
         emit_caution()
     return 0 if status == "ok" else 1

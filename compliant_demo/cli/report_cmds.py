@@ -12,10 +12,10 @@ from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
     add_skill_options,
-    positive_float,
     read_plant,
     show_progress,
 )
+from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
@@ -57,9 +57,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     add_plant_option(parser, default_text="the plant the campaign ran on; without a campaign, "
                                           "the cork_seat bench arm on the ideal "
                                           "variable-impedance mechanism")
-    parser.add_argument("--min-damping-ratio", type=positive_float, default=0.5,
-                        metavar="ZETA",
-                        help="flag stretches whose damping ratio is below this (default: 0.5)")
+    add_criteria_option(parser)
     parser.add_argument("--out", type=Path, default=None, metavar="DIR",
                         help=f"output directory (default: a folder of its own, "
                              f"{RUNS_FOLDER}/report-<UTC>-<pid>, printed)")
@@ -79,16 +77,19 @@ def _run(args: argparse.Namespace) -> int:
                 store, args.skill, version=args.skill_version,
                 campaign_id=(None if args.campaign is None
                              else store.resolve_id("campaign", args.campaign)),
-                plant=plant, truth=truth, min_damping_ratio=args.min_damping_ratio)
+                plant=plant, truth=truth, criteria=read_criteria(args))
         bar.update(1)
         files = write_report(content, args.out or RUNS_FOLDER / run_tag("report"))
         bar.update(1)
     if args.json:
         emit_json({"report": str(files.html), "figures": [str(p) for p in files.figures],
-                   "summary": dict(content.summary)})
+                   "summary": dict(content.summary),
+                   **(content.verdict.to_dict() if content.verdict is not None else {})})
     else:
         for key, value in content.summary:
             print(f"{printable(key)}: {printable(value)}")
         print(f"report: {printable(files.html.resolve())}")
+        if content.verdict is not None:
+            print_verdict(content.verdict)
         emit_caution()
     return 0

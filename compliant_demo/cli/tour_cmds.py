@@ -18,6 +18,7 @@ from compliant_demo.cli._job_options import (
     positive_int,
     show_progress,
 )
+from compliant_demo.cli._verdict import add_criteria_option, print_verdict
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
@@ -98,6 +99,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="perturbed scenarios in the campaign (default: 350, 50 per kind)")
     add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "
                                           "bench arm on antagonistic spring pairs")
+    add_criteria_option(parser)
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
@@ -106,7 +108,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def _run(args: argparse.Namespace) -> int:
     settings = recording_settings(args, n_scenarios=args.scenarios, workers=args.workers,
-                                  scheduler=args.scheduler, plant=args.plant)
+                                  scheduler=args.scheduler, plant=args.plant,
+                                  criteria=args.criteria)
     result = run_tour(settings, progress=show_progress(args), announce=announce_plan)
     if args.json:
         emit_json(result.as_dict())
@@ -126,5 +129,6 @@ def _run(args: argparse.Namespace) -> int:
                    "schedule checks"):
             print(f"  {key}: {value}")
     print(f"report: {result.report.resolve()}")
+    print_verdict(result.verdict)
     emit_caution()
     return 0
