@@ -13,6 +13,7 @@ from cli_support import one_line_error, run_cli
 
 from compliant_demo.cli import main
 from compliant_demo.perturbation import PERTURBATION_KINDS
+from compliant_demo.resources import package_file
 from compliant_demo.store import DemoStore
 
 _SHORT = ["--duration", "1.5", "--settle", "0.3"]
@@ -167,6 +168,13 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
     }
     assert data["violations"] == sum(c["violations"] for c in data["per_kind"].values())
     assert data["plant"] == "antagonistic mechanism on joints shoulder, elbow"  # the default
+    # the verdict closes the document and is stored with the campaign, plant and criteria
+    assert data["verdict"] == "not_ready" and data["reasons"][0]["check"] == "under_damped"
+    with DemoStore(store, read_only=True) as opened:
+        stored = opened.latest_verdict(data["skill_id"], plant_digest=data["plant_digest"],
+                                       criteria_digest=data["criteria_digest"])
+    assert stored is not None and stored.id == data["verdict_id"]
+    assert (stored.campaign_id, stored.reasons) == (data["campaign_id"], data["reasons"])
     status, out, err = run_cli(
         capsys, "campaign", "--store", store, "--resume", data["campaign_id"], "--json"
     )
@@ -188,6 +196,23 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
     ]
     assert report["summary"]["within limits"] == f"{14 - data['violations']} of 14"
     assert data["campaign_id"] in report["summary"]["campaign"]
+
+
+@pytest.mark.parametrize("command", ["campaign", "replay", "report", "tour"])
+def test_a_missing_criteria_file_is_a_one_line_error(store, tmp_path, capsys, command):
+    missing = tmp_path / "none.yaml"
+    status, _, err = run_cli(capsys, command, "--store", store, "--criteria", missing)
+    assert status == 2
+    one_line_error(err, command, re.escape(f"--criteria {str(missing)!r}: no such file"))
+
+
+def test_a_bad_criteria_file_names_the_field_and_value(store, tmp_path, capsys):
+    criteria = tmp_path / "criteria.yaml"
+    text = package_file("config", "readiness_criteria.yaml").read_text(encoding="utf-8")
+    criteria.write_text(text.replace("value: 0.02\n", "value: -0.02\n"), encoding="utf-8")
+    status, _, err = run_cli(capsys, "replay", "--store", store, "--criteria", criteria)
+    assert status == 2
+    one_line_error(err, "replay", r"thresholds\.max_goal_error\.value.*-0\.02")
 
 
 def test_resume_of_an_unknown_campaign_is_a_one_line_error(store, capsys):

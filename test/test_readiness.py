@@ -12,6 +12,7 @@ import pytest
 import yaml
 from store_support import add_demo
 
+from compliant_demo.cli._verdict import SHOWN_REASONS, print_verdict
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.models import IdealImpedanceParams, JointParams
 from compliant_demo.plant import ReplayPlant, load_plant
@@ -25,6 +26,7 @@ from compliant_demo.readiness import (
     schedule_report,
     stretch_anchor,
 )
+from compliant_demo.report import ReportContent, ReportTable, write_report
 from compliant_demo.store import DemoStore, ReplayParameters, ReplayResultInfo
 
 REPO = Path(__file__).resolve().parents[1]
@@ -329,3 +331,33 @@ def test_assess_refuses_goal_errors_measured_over_another_window():
         assess(criteria, PLANT, report, [short])
     with pytest.raises(InvalidInputError, match=r"metric goal_error_rad = \[0\.1, 0\.2\]"):
         assess(criteria, PLANT, report, [_result(0, {"goal_error_rad": [0.1, 0.2]})])
+
+
+# --- where the verdict shows -------------------------------------------------------------------
+
+
+def test_summary_lines_show_the_most_severe_reasons(capsys):
+    reasons = [_reason(f"check_{i}", severity=i / 10, link=f"stretch-{i}") for i in range(10)]
+    print_verdict(Verdict.from_reasons(reasons))
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0] == "verdict: NOT READY (10 reason(s), most severe first)"
+    assert lines[1] == ("  1. check_9 on elbow, 0 to 6.2 s: 0.011 against 0.5 1")
+    assert len(lines) == 1 + SHOWN_REASONS + 1
+    assert lines[-1] == "  ... and 2 more (--json and the report list them all)"
+    print_verdict(Verdict.from_reasons([]))
+    assert capsys.readouterr().out.startswith("verdict: ready")
+
+
+def test_report_page_opens_with_the_verdict_and_links_its_reasons(tmp_path):
+    reason = _reason(link="stretch-0")
+    table = ReportTable("Flagged", ("joint",), (("elbow",),), row_ids=("stretch-0",))
+    content = ReportContent("t", (("skill", "x"),), (), (table,), verdict=Verdict.from_reasons(
+        [reason]))
+    page = write_report(content, tmp_path).html.read_text(encoding="utf-8")
+    assert page.index("Readiness verdict: NOT READY") < page.index("Safety cautions")
+    assert '<a href="#stretch-0">under_damped on elbow, 0 to 6.2 s</a>' in page
+    assert '<tr id="stretch-0"><td>elbow</td></tr>' in page
+    ready = ReportContent("t", (), (), verdict=Verdict.from_reasons([]))
+    assert "Readiness verdict: ready" in write_report(ready, tmp_path).html.read_text("utf-8")
+    with pytest.raises(InvalidInputError, match=r"row_ids: 2 ids for 1 rows of table 'Flagged'"):
+        ReportTable("Flagged", ("joint",), (("elbow",),), row_ids=("a", "b"))

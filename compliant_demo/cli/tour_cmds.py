@@ -18,7 +18,7 @@ from compliant_demo.cli._job_options import (
     positive_int,
     show_progress,
 )
-from compliant_demo.cli._verdict import add_criteria_option, print_verdict
+from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
@@ -107,6 +107,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
+    read_criteria(args)  # a bad criteria file is refused before anything is recorded
     settings = recording_settings(args, n_scenarios=args.scenarios, workers=args.workers,
                                   scheduler=args.scheduler, plant=args.plant,
                                   criteria=args.criteria)

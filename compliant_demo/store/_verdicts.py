@@ -8,7 +8,7 @@ import re
 import time
 import uuid
 from collections.abc import Mapping
-from typing import TYPE_CHECKING, Any
+from typing import Any, Protocol
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.store import _codec
@@ -16,10 +16,16 @@ from compliant_demo.store._rows import decoded, mapping
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import VerdictRecord
 
-if TYPE_CHECKING:
-    from compliant_demo.readiness import Verdict
+__all__ = ["VerdictDocument", "save_verdict", "latest_verdict"]
 
-__all__ = ["save_verdict", "latest_verdict"]
+
+class VerdictDocument(Protocol):
+    """What the store needs of a verdict (:class:`compliant_demo.readiness.Verdict`, which the
+    store does not import: readiness builds on the store)."""
+
+    def to_dict(self) -> dict[str, Any]:
+        """``{"verdict": "ready" | "not_ready", "reasons": [{...}, ...]}``."""
+        ...
 
 _DIGEST = re.compile(r"[0-9a-f]{64}")
 _COLUMNS = (
@@ -35,7 +41,7 @@ def _digest(name: str, value: object) -> str:
     return value
 
 
-def _verdict_document(verdict: Verdict) -> tuple[str, list[dict[str, Any]]]:
+def _verdict_document(verdict: VerdictDocument) -> tuple[str, list[dict[str, Any]]]:
     document = verdict.to_dict()
     if document.get("verdict") not in ("ready", "not_ready"):
         raise InvalidInputError(f"verdict must be 'ready' or 'not_ready', got "
@@ -48,7 +54,7 @@ def _verdict_document(verdict: Verdict) -> tuple[str, list[dict[str, Any]]]:
 
 def save_verdict(
     session: StoreSession,
-    verdict: Verdict,
+    verdict: VerdictDocument,
     *,
     skill_id: str,
     plant_digest: str,

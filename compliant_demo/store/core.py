@@ -33,6 +33,7 @@ from compliant_demo.store import (
 from compliant_demo.store._recording import CHUNK_SAMPLES, FINAL_STATUSES
 from compliant_demo.store._rows import choice, finite, parameters_document
 from compliant_demo.store._session import StoreSession
+from compliant_demo.store._verdicts import VerdictDocument
 from compliant_demo.store.records import (
     CampaignInfo,
     CampaignProgress,
@@ -48,8 +49,6 @@ from compliant_demo.store.records import (
 
 if TYPE_CHECKING:
     import pandas
-
-    from compliant_demo.readiness import Verdict
 
 __all__ = ["DemoStore", "CHUNK_SAMPLES"]
 
@@ -594,7 +593,7 @@ class DemoStore:
 
     def save_verdict(
         self,
-        verdict: Verdict,
+        verdict: VerdictDocument,
         *,
         skill_id: str,
         plant_digest: str,
