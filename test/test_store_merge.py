@@ -9,6 +9,7 @@ import pytest
 from store_support import JOINTS, add_demo, integrity, samples
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreCorruptError
+from compliant_demo.readiness import Verdict, load_criteria
 from compliant_demo.store import DemoStore, ReplayParameters
 
 
@@ -102,11 +103,19 @@ def _skill_campaign_results(store, demo_ids, name="cork_seat"):
 
 def test_merge_copies_skills_campaigns_and_results_with_provenance(tmp_path):
     bench_a, bench_b = tmp_path / "bench_a.sqlite", tmp_path / "bench_b.sqlite"
+    criteria = load_criteria()
+    digests = {"plant_digest": "ab" * 32, "criteria_digest": criteria.digest}
     with DemoStore(bench_b) as b:
         demo_id = add_demo(b, seed=1)
         skill, campaign, results = _skill_campaign_results(b, [demo_id])
+        verdict_id = b.save_verdict(Verdict.from_reasons([]), skill_id=skill.id,
+                                    campaign_id=campaign, criteria=criteria.model_dump(),
+                                    **digests)
     with DemoStore(bench_a) as a:
         report = a.merge_from(bench_b)
+        assert report.verdicts_added == [verdict_id]
+        latest = a.latest_verdict(skill.id, **digests)
+        assert latest is not None and (latest.id, latest.campaign_id) == (verdict_id, campaign)
         assert report.added == [demo_id]
         assert (report.skills_added, report.campaigns_added) == ([skill.id], [campaign])
         assert report.results_added == results and report.conflicts == []
@@ -116,7 +125,7 @@ def test_merge_copies_skills_campaigns_and_results_with_provenance(tmp_path):
         assert a.completed_scenarios(campaign) == {0, 1}
         assert np.array_equal(a.load_replay_result(results[1]).trace["q"], np.full((4, 2), 1.0))
         again = a.merge_from(bench_b)
-        assert again.records_skipped == 1 + 1 + 2 and again.results_added == []
+        assert again.records_skipped == 1 + 1 + 2 + 1 and again.results_added == []
         assert again.conflicts == []
         assert a.integrity_check() == ["ok"]
 

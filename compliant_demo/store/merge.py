@@ -73,6 +73,9 @@ _RECORDS = (
      ("id", "skill_id", "campaign_id", "scenario_index", "status", "reason", "metrics",
       "parameters", "created"),
      ("replay_traces", "result_id", ("result_id", "channel", "shape", "data")), "results_added"),
+    ("verdict", "verdicts",
+     ("id", "skill_id", "campaign_id", "plant_digest", "criteria_digest", "verdict", "reasons",
+      "criteria", "created"), None, "verdicts_added"),
 )  # fmt: skip
 
 
@@ -96,6 +99,7 @@ _JSON_COLUMNS = {
     "skills": ("payload", "parameters"),
     "campaigns": ("config",),
     "replay_results": ("metrics", "parameters"),
+    "verdicts": ("reasons", "criteria"),
 }
 
 

@@ -365,10 +365,11 @@ class MergeReport:
         Ids already here with different content, still recording in the other store, or
         (skills, campaigns, results) clashing with a record here or lacking the record they
         refer to; nothing was changed for them.
-    skills_added, campaigns_added, results_added : list of str
-        Ids of skill versions, campaigns and replay results copied (with provenance and traces).
+    skills_added, campaigns_added, results_added, verdicts_added : list of str
+        Ids of skill versions, campaigns, replay results (with provenance and traces) and
+        readiness verdicts copied.
     records_skipped : int
-        Skill versions, campaigns and results already here, identical.
+        Skill versions, campaigns, results and verdicts already here, identical.
     """
 
     added: list[str] = field(default_factory=list)
@@ -377,6 +378,7 @@ class MergeReport:
     skills_added: list[str] = field(default_factory=list)
     campaigns_added: list[str] = field(default_factory=list)
     results_added: list[str] = field(default_factory=list)
+    verdicts_added: list[str] = field(default_factory=list)
     records_skipped: int = 0
 
     def to_dict(self) -> dict[str, Any]:
