@@ -229,10 +229,13 @@ def collect_report_content(
         plot_schedule_checks(checks.t, checks.stiffness, checks.damping_ratio,
                              _flag_masks(checks), joints, damping_ratio_floor=min_damping_ratio)))
     tables = [ReportTable(
-        "Flagged stretches of the schedule", ("joint", "check", "from [s]", "to [s]", "worst",
-                                              "unit"),
-        tuple((s.joint, s.kind, s.t_start, s.t_end, s.worst, s.unit) for s in checks.stretches),
-        caption=f"Checks: {', '.join(FLAG_KINDS)}.", empty_text="no stretch flagged",
+        "Flagged stretches of the schedule", ("joint", "check", "from [s]", "to [s]",
+                                              "duration [s]", "worst", "unit"),
+        tuple((s.joint, s.kind, s.t_start, s.t_end, s.t_end - s.t_start, s.worst, s.unit)
+              for s in checks.stretches),
+        caption=f"Checks: {', '.join(FLAG_KINDS)}. The verdict counts stretches at least "
+                f"{criteria.thresholds.min_stretch_duration.value:g} s long.",
+        empty_text="no stretch flagged",
         row_ids=tuple(stretch_anchor(i) for i in range(len(checks.stretches))))]
     results: list[ReplayResultInfo] = []
 
