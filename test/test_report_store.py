@@ -15,7 +15,9 @@ from compliant_demo.campaign import run_campaign
 from compliant_demo.estimation import estimate_stiffness_series
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import save_skill
+from compliant_demo.plant import load_plant
 from compliant_demo.report import write_report
+from compliant_demo.resources import package_file
 from compliant_demo.store import DemoStore
 from compliant_demo.teaching import cork_seat_scenario
 
@@ -50,6 +52,12 @@ def test_report_from_recorded_demonstrations_and_truth_opens_cleanly(tmp_path):
     with DemoStore(path, durable=False) as store:
         run_campaign(store, campaign_job(n_scenarios=14), skill_id=skill_id, workers=0)
         content = collect_report_content(store, "cork_seat", truth=truth)
+        ideal = load_plant(package_file("config", "joint_cork_seat_ideal.yaml"))
+        elsewhere = collect_report_content(store, "cork_seat", plant=ideal)
+    # on another plant than the campaign's, its scenarios do not count in the verdict
+    assert dict(elsewhere.summary)["verdict basis"].startswith("schedule checks only")
+    assert elsewhere.verdict is not None
+    assert all(r.link.startswith("stretch-") for r in elsewhere.verdict.reasons)
     summary = dict(content.summary)
     coverage = float(summary["estimate coverage"].split(" %")[0])
     assert 50 < coverage < 100  # the first window and the settling of the band-pass have no value

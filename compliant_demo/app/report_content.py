@@ -281,7 +281,13 @@ def collect_report_content(
         ]
     summary.append(("schedule checks", "passed" if checks.ok else
                     f"{len(checks.stretches)} flagged stretch(es)"))
-    verdict = assess(criteria, plant, checks, results)
+    # scenarios count only on the plant they ran on (a --plant other than the campaign's judges
+    # the schedule alone)
+    same_plant = job is not None and job.plant.digest == plant.digest
+    verdict = assess(criteria, plant, checks, results if same_plant else [])
+    if results and not same_plant:
+        summary.append(("verdict basis", "schedule checks only: the campaign ran on another "
+                                         "plant"))
     tables.append(_named_scenarios(verdict, results))
     summary.insert(0, ("readiness", _verdict_line(verdict)))
     return ReportContent(f"compliant_demo report: {skill.name} v{record.version}",
