@@ -43,7 +43,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "earlier by the latency the recorder stored with it: 0.31 s with its defaults), the "
             "learned stiffness and damping ratio with flagged stretches, replays per "
             "perturbation kind against the unperturbed replay (rad), the campaign's metric "
-            "distributions and a table of limit violations, with the safety cautions."
+            "distributions and a table of limit violations, with the safety cautions; it opens "
+            "with the readiness verdict against --criteria, each reason linked to its stretch "
+            "or scenario."
         ),
     )
     add_store_option(parser)

@@ -90,7 +90,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "learn the skill, replay it in a campaign of perturbed scenarios over every "
             "perturbation kind on the target arm (default: antagonistic spring pairs, whose "
             "damping does not follow the stiffness), and write the HTML report. Prints a short "
-            "summary with the report's path. Takes one to two minutes on two cores."
+            "summary with the report's path and the readiness verdict (stored with the "
+            "campaign). Takes one to two minutes on two cores."
         ),
     )
     add_store_option(parser)
