@@ -16,11 +16,11 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from compliant_demo.alignment import align_demonstrations
+from compliant_demo.alignment import AlignedSet, align_demonstrations
 from compliant_demo.arrays import finite_array, time_axis
 from compliant_demo.exceptions import InvalidInputError
 
-__all__ = ["DemonstrationBand", "demonstration_band", "tracking_metrics"]
+__all__ = ["DemonstrationBand", "demonstration_band", "band_from_aligned", "tracking_metrics"]
 
 
 @dataclass(frozen=True)
@@ -75,11 +75,21 @@ def demonstration_band(
     if len(demonstrations) < 2:
         raise InvalidInputError(f"demonstrations: need at least 2 for a spread, got "
                                 f"{len(demonstrations)}")
+    return band_from_aligned(align_demonstrations(demonstrations, band=band),
+                             n_sigma=n_sigma, min_tolerance=min_tolerance)
+
+
+def band_from_aligned(
+    aligned: AlignedSet, *, n_sigma: float = 2.0, min_tolerance: float = 0.01
+) -> DemonstrationBand:
+    """The band of demonstrations already aligned (see :func:`demonstration_band`)."""
+    if aligned.n_demos < 2:
+        raise InvalidInputError(f"demonstrations: need at least 2 for a spread, got "
+                                f"{aligned.n_demos}")
     if not (np.isfinite(n_sigma) and n_sigma > 0):
         raise InvalidInputError(f"n_sigma: must be positive, got {n_sigma!r}")
     if not (np.isfinite(min_tolerance) and min_tolerance > 0):
         raise InvalidInputError(f"min_tolerance: must be positive (rad), got {min_tolerance!r}")
-    aligned = align_demonstrations(demonstrations, band=band)
     spread = np.sqrt(aligned.variance)
     return DemonstrationBand(
         phase=aligned.phase,
