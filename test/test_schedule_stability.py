@@ -11,7 +11,7 @@ from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.impedance_stability import common_alpha, gravity_stiffness
 from compliant_demo.models import BodyParams, ChainParams, IdealImpedanceParams, JointParams
 from compliant_demo.primitives import Rollout
-from compliant_demo.sim import GRAVITY
+from compliant_demo.sim import GRAVITY, simulate
 
 IDEAL = IdealImpedanceParams(stiffness_min=1.0, stiffness_max=500.0, damping_max=20.0)
 
@@ -59,6 +59,24 @@ def test_pendulum_damping_ratio_and_static_instability():
     for stretch in report.stretches:
         if stretch.kind == "under_damped":
             assert stretch.t_end < crossing
+
+
+@pytest.mark.parametrize(("stiffness", "unstable"), [(1.5, True), (6.0, False)])
+def test_statically_unstable_flag_predicts_the_upright_pendulum_falling(stiffness, unstable):
+    # Upright (gravity_offset = pi: gravity stiffness -m g l = -2.94 N*m/rad at q = 0): a weaker
+    # spring lets it fall, a stiffer one holds it (linearised I e'' + d e' + (k - m g l) e = 0,
+    # common practice), in the simulator from a 0.01 rad offset.
+    joint = JointParams(name="elbow", inertia=0.05, gravity_mass=1.0, com_distance=0.3,
+                        gravity_offset=np.pi, viscous_damping=0.0)
+    t = np.linspace(0.0, 1.0, 101)
+    report = check_schedule(_path(t, 0.0, stiffness, 0.2), [joint], IDEAL)
+    flagged = any(s.kind == "statically_unstable" for s in report.stretches)
+    assert flagged == unstable
+    n = 2000
+    result = simulate([joint], IDEAL, np.zeros((n, 1)), np.full((n, 1), stiffness),
+                      np.full((n, 1), 0.2), q0=[0.01], dt=1e-3)
+    drift = np.abs(result.q[:, 0, 0]).max()
+    assert (drift > 0.3) == unstable and (drift < 0.02) == (not unstable)
 
 
 def test_chain_gravity_stiffness_equals_the_pendulum_closed_form():

@@ -45,7 +45,8 @@ CAMPAIGN_METRICS: dict[str, str] = {
     "peak_deviation_max_rad": "peak deviation, worst joint [rad]",
     "recovery_time_max_s": "recovery time, slowest [s]",
     "peak_interaction_torque_max_Nm": "peak interaction torque [N*m]",
-    "energy_injected_J": "energy injected by stiffness changes [J]",
+    "energy_injected_J": "energy injected by stiffening while deflected [J]",
+    "energy_tank_deficit_J": "energy tank deficit, worst joint [J]",
 }
 
 # Schedule-check kinds grouped into the stretches the report hatches.
@@ -269,7 +270,9 @@ def collect_report_content(
             "campaign_metrics", "Distributions of the campaign metrics",
             "Per perturbation kind: goal error and peak deviation (worst joint), recovery time "
             "(slowest perturbation; scenarios that did not recover within the band are left "
-            "out), peak interaction torque and energy injected by stiffness changes.",
+            "out), peak interaction torque, energy injected by stiffening while deflected "
+            "(positive part: softening does not cancel it) and how far the passivity energy "
+            "tank would go below zero.",
             plot_metric_distributions(metrics, kinds, CAMPAIGN_METRICS)))
         violations = [r for r in results if r.status != "ok"]
         tables.insert(0, ReportTable(
