@@ -462,7 +462,7 @@ def outcome_metrics(
     goal : (n_joints,) rad
     perturbation_onsets, perturbation_ends : (n_perturbations,) s; ends default to the onsets
         (impulses)
-    energy : energy terms, J, each (n_samples, n_joints) running from the start (e.g.
+    energy : energy terms, J, each (n_rows, n_joints) running from the start of the run (e.g.
         :func:`compliant_demo.energy_tank.scenario_energy`), or a final scalar or (n_joints,)
         value; ``energy_J`` reports each term's final value. The injected-energy and tank keys
         need the per-sample ``stiffness_injection`` (and ``damping_dissipated``, the tank's

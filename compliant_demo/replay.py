@@ -403,8 +403,8 @@ class ReplayRun:
         n = self.steps_done
         schedule = self.schedule or UNPERTURBED
         rerun = self.setup.simulate([schedule, UNPERTURBED], self.seed)
-        # rerun row k + 1 is trace row k
-        energy = None if self.live_pushes else scenario_energy(rerun, 0, slice(1, n + 1))
+        # rows 0..n: from the start of the run (row 0) to the state after the last step done
+        energy = None if self.live_pushes else scenario_energy(rerun, 0, slice(0, n + 1))
         return self.setup.metrics(
             trace["t"], trace["q"], rerun.q[1 : n + 1, 1, :], trace["tau_external"],
             trace["tau_mechanism"], self.schedule, energy,
