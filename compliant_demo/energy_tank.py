@@ -7,6 +7,12 @@ stiffness", ICRA 2013), that power is paid from an energy tank which the impedan
 with the power it dissipates, D*dq^2; the tank starts at a stated level and never holds more than a
 stated upper bound. Where the tank would run dry, the schedule asks for more energy than the joint
 has dissipated and been given: a passive implementation would have to refuse that stiffening.
+The paper could not be consulted here: the tank's structure (damping inflow, initial level, upper
+bound, no outflow when empty) is from memory, and, as remembered, it books the varying part of
+the stiffness as a port with power -x*K_var(t)*dx/dt against a constant-stiffness storage. This
+module books 1/2*dK/dt*x^2 instead, the one non-passive term of the storage 1/2*I*dq^2 +
+1/2*K(t)*x^2 (d/dt of 1/2*K*x^2 is K*x*dx/dt + 1/2*dK/dt*x^2): the same passivity accounting with
+the whole spring in the storage, and the term the simulator records as ``stiffness_injection``.
 :func:`tank_levels` runs the tank on energy increments; :func:`replay_energy_metrics` scores a
 simulated replay from its cumulative energy traces (:func:`scenario_energy` takes them from a
 simulation).
