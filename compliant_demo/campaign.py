@@ -27,6 +27,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from compliant_demo.energy_tank import scenario_energy
 from compliant_demo.evaluation import ACTUATOR_LOADS
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import (
@@ -220,7 +221,6 @@ class ReplayCampaign:
         result = setup.simulate([*schedules, UNPERTURBED], scenario_seed(self.seed, batch_index),
                                 decimation=self.decimation)
         nominal = result.q[:, -1, :]
-        final_energy = result.energy.final()
         # the command in force at recorded sample r (t = r * decimation * dt) is the one before
         steps = np.arange(len(result.t)) * self.decimation - 1
         outcomes = []
@@ -228,7 +228,7 @@ class ReplayCampaign:
             q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
             metrics = setup.metrics(
                 result.t, q, nominal, result.tau_external[:, column, :], tau_mechanism,
-                schedule, {name: value[column] for name, value in final_energy.items()},
+                schedule, scenario_energy(result, column),
                 recovery_band=self.recovery_band,
             )
             loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}

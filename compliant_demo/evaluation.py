@@ -2,13 +2,14 @@
 
 :func:`check_schedule` looks along a :class:`~compliant_demo.primitives.Rollout` at what the
 target joint and its mechanism will actually do: the damping ratio on the joint's own inertia and
-the damping it can realise (a teacher's stiffness copied onto a joint whose damping is not tied to
-stiffness oscillates), the energy that raising stiffness while deflected injects (passivity), and
-stiffness and damping rates and ranges against the mechanism's limits. It returns a plain
-:class:`ScheduleReport` with per-sample arrays, flagged stretches and a summary dict.
-:func:`outcome_metrics` takes plain arrays of a replay (so it does not depend on the simulator's
-types) and returns goal error, deviation from the nominal path, recovery after perturbations,
-interaction torque, energy and limit violations as a JSON-ready dict.
+stiffness, gravity's included (a teacher's stiffness copied onto a joint whose damping is not tied
+to stiffness oscillates), where gravity outweighs the spring, the sufficient stability condition of
+Kronander and Billard for varying stiffness and damping, the energy tank of Ferraguti, Secchi and
+Fantuzzi (:mod:`compliant_demo.energy_tank`), and stiffness and damping rates and ranges against
+the mechanism's limits. It returns a plain :class:`ScheduleReport` with per-sample arrays, flagged
+stretches and a summary dict. :func:`outcome_metrics` takes plain arrays of a replay (so it does
+not depend on the simulator's types) and returns goal error, deviation from the nominal path,
+recovery after perturbations, interaction torque, energy and limit violations as a JSON-ready dict.
 """
 
 from __future__ import annotations
@@ -21,7 +22,15 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from compliant_demo.arrays import finite_array, time_axis
+from compliant_demo.energy_tank import (
+    TANK_INITIAL_ENERGY_J,
+    TANK_MAX_ENERGY_J,
+    check_tank_bounds,
+    replay_energy_metrics,
+    tank_levels,
+)
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.impedance_stability import common_alpha, damping_ratio, gravity_stiffness
 from compliant_demo.models import (
     AntagonisticParams,
     ChainParams,
@@ -47,7 +56,8 @@ __all__ = [
 
 FLAG_KINDS = (
     "under_damped", "energy_tank_empty", "stiffness_range", "stiffness_rate", "damping_range",
-    "damping_rate", "position_range", "torque_limit",
+    "damping_rate", "position_range", "torque_limit", "statically_unstable",
+    "varying_impedance_unproven",
 )
 
 
@@ -83,15 +93,24 @@ class ScheduleReport:
     stiffness : realisable stiffness (command clamped to the mechanism's range), N*m/rad
     damping : damping acting on the link (realisable mechanism damping plus the joint's own
         viscous friction), N*m*s/rad
-    damping_ratio : d / (2*sqrt(k*I)) on the target joint, 1
+    damping_ratio : d / (2*sqrt((k + dtau_g/dq)*I)) on the target joint, 1; NaN where
+        k + dtau_g/dq <= 0 (statically unstable)
     stiffness_rate : dK/dt of the commanded schedule, N*m/rad/s
-    deflection : predicted spring deflection, rad (inverse dynamics along the path plus the
-        assumed extra deflection)
+    deflection : predicted spring deflection, rad: (|path torque| + interaction torque) / K plus
+        the extra deflection (see :func:`check_schedule`)
     injection_power : 1/2 * dK/dt * deflection^2 with the realisable K, W (positive: energy put
-        into the joint)
-    tank_energy : energy tank level, J (starts at the budget, never above it)
+        into the joint; the tank's outflow)
+    tank_energy : energy tank level, J (starts at the initial energy, never above the upper
+        bound; below zero where the tank would have run dry)
     stretches : flagged stretches, ordered by joint then time
     summary : JSON-ready dict of per-joint extremes, thresholds and counts
+    gravity_stiffness : dtau_g/dq along the path, N*m/rad (positive: gravity pulls back)
+    dissipation_power : D*dq^2 of the mechanism's damper on the path's velocity, W (the tank's
+        inflow)
+    stability_alpha : (n_joints,) 1/s; the alpha of Kronander and Billard's condition that holds
+        at the most samples (NaN: at none)
+    stability_excess : how far that alpha lies outside each sample's admissible interval, 1/s
+        (<= 0 where the condition holds, on a non-empty interval)
     """
 
     t: NDArray[np.float64]
@@ -105,6 +124,10 @@ class ScheduleReport:
     tank_energy: NDArray[np.float64]
     stretches: list[Stretch]
     summary: dict[str, Any]
+    gravity_stiffness: NDArray[np.float64]
+    dissipation_power: NDArray[np.float64]
+    stability_alpha: NDArray[np.float64]
+    stability_excess: NDArray[np.float64]
 
     @property
     def ok(self) -> bool:
@@ -186,7 +209,9 @@ def check_schedule(
     *,
     min_damping_ratio: float = 0.5,
     extra_deflection: ArrayLike = 0.0,
-    energy_budget: float = 0.05,
+    interaction_torque: ArrayLike = 0.0,
+    energy_budget: float = TANK_INITIAL_ENERGY_J,
+    tank_max_energy: float = TANK_MAX_ENERGY_J,
     chain: ChainParams | None = None,
 ) -> ScheduleReport:
     """Check a rollout's impedance schedule against the target joints and their mechanism.
@@ -198,9 +223,15 @@ def check_schedule(
     mechanism : one mechanism for all joints, or one per joint
     min_damping_ratio : damping ratio below which a sample is flagged under-damped, 1. The
         default 0.5 allows about 16 % overshoot, exp(-pi*zeta/sqrt(1 - zeta^2)) (common practice)
-    extra_deflection : deflection assumed on top of the predicted one, rad, scalar or (n_joints,);
-        e.g. the press depth of a contact phase
-    energy_budget : energy tank capacity per joint, J
+    extra_deflection : deflection the commands themselves impose on top of the predicted one, rad,
+        scalar or (n_joints,); e.g. the depth an equilibrium is set into an obstacle. Default 0
+    interaction_torque : the largest torque the surroundings may put on the link, N*m, scalar or
+        (n_joints,), e.g. the criteria's interaction torque limit; it deflects the spring by
+        interaction_torque / K on top of what the path needs. Default 0: free space
+    energy_budget : the energy tank's initial level, J (default
+        :data:`~compliant_demo.energy_tank.TANK_INITIAL_ENERGY_J`, 0.05 J)
+    tank_max_energy : the energy tank's upper bound, J (default
+        :data:`~compliant_demo.energy_tank.TANK_MAX_ENERGY_J`, 0.5 J); at least ``energy_budget``
     chain : the coupled arm of the joints, or None (independent joints)
 
     Returns
@@ -209,17 +240,31 @@ def check_schedule(
 
     Notes
     -----
-    Damping ratio zeta = d / (2*sqrt(k*I)) of the joint's second-order dynamics. On a coupled
-    arm I is the diagonal entry M_jj(q) of the mass matrix at each sample of the path: the
-    inertia joint j moves with the others held still, matched to the per-joint (diagonal)
-    stiffness and damping being checked; the eigen-decomposition of M would mix joints whose
-    stiffness and damping differ. The deflection is
-    the spring torque the joint needs along the path (:func:`_required_torque`) divided by the
-    stiffness, plus ``extra_deflection``. Raising stiffness K while deflected by x changes the
-    spring energy 1/2*K*x^2 by 1/2*dK/dt*x^2 per second without any motion, which breaks
-    passivity; following Ferraguti, Secchi, Fantuzzi (ICRA 2013) that power is drawn from an
-    energy tank of capacity ``energy_budget`` that lowering stiffness refills, and the samples
-    where the tank would be empty are flagged.
+    Everything is evaluated on the deviation dynamics about the path, assuming the link follows
+    it. Stiffness k is the realisable spring stiffness plus the gravity stiffness dtau_g/dq
+    (:func:`compliant_demo.impedance_stability.gravity_stiffness`); where k <= 0 gravity
+    outweighs the spring and the sample is flagged ``statically_unstable``. The damping ratio is
+    zeta = d / (2*sqrt(k*I)) (common practice), d the realisable mechanism damping plus the
+    joint's viscous friction; on a coupled arm I is the diagonal entry M_jj(q) of the mass matrix
+    at each sample: the inertia joint j moves with the others held still, matched to the
+    per-joint (diagonal) stiffness and damping being checked. ``varying_impedance_unproven``
+    flags samples where Kronander and Billard's sufficient condition (IEEE T-RO 2016) fails for
+    the joint's best constant alpha (:func:`compliant_demo.impedance_stability.common_alpha`):
+    stability is not shown there, which is not the same as instability.
+
+    Predicted deflection x = (|tau_path| + interaction_torque) / K + extra_deflection, with K the
+    realisable spring stiffness and tau_path the torque the spring must supply to move the link
+    along the rollout (:func:`_required_torque`: inverse dynamics plus smoothed Coulomb friction).
+    It assumes the link tracks the path (tracking error adds deflection), the spring is linear
+    about its equilibrium, and the interaction torque is at its bound and on the side that adds
+    to the path torque at every sample: a bound, not a forecast.
+
+    Energy tank (Ferraguti, Secchi, Fantuzzi, ICRA 2013; :mod:`compliant_demo.energy_tank`):
+    raising K while deflected changes the spring energy 1/2*K*x^2 by 1/2*dK/dt*x^2 per second
+    without any motion. The tank pays that power (and takes it back when K falls), is filled by
+    what the mechanism's damper dissipates on the path, D*dq^2 (the joint's own friction is left
+    out: a controller cannot meter it), starts at ``energy_budget`` and holds at most
+    ``tank_max_energy``. Samples where it would be below zero are flagged ``energy_tank_empty``.
     """
     names = tuple(rollout.joints)
     params = list(joints)
@@ -237,11 +282,9 @@ def check_schedule(
                                 "joints")
     if not 0 < min_damping_ratio:
         raise InvalidInputError(f"min_damping_ratio: must be positive, got {min_damping_ratio!r}")
-    if not energy_budget >= 0:
-        raise InvalidInputError(f"energy_budget: must be >= 0 J, got {energy_budget!r}")
-    extra = np.broadcast_to(finite_array(extra_deflection, "extra_deflection"), (len(names),))
-    if np.any(extra < 0):
-        raise InvalidInputError(f"extra_deflection: must be >= 0 rad, got {extra.tolist()}")
+    check_tank_bounds(energy_budget, tank_max_energy)
+    extra = _per_joint(extra_deflection, "extra_deflection", "rad", len(names))
+    pushing = _per_joint(interaction_torque, "interaction_torque", "N*m", len(names))
 
     t = rollout.t
     limits = _mechanism_limits(mechanisms)
@@ -256,17 +299,26 @@ def check_schedule(
         0.0,
     )
     damping = mech_damping + viscous
-    ratio = damping / (2.0 * np.sqrt(stiffness * inertia))
+    gravity = gravity_stiffness(params, rollout.position, chain)
+    effective = stiffness + gravity
+    ratio = damping_ratio(damping, effective, inertia)
+    alpha, lower, upper = common_alpha(t, inertia, effective, damping)
+    alpha_excess = _outside(alpha, lower, upper)
     k_rate = np.gradient(rollout.stiffness, t, axis=0)
     d_rate = np.gradient(rollout.damping, t, axis=0)
     torque = _required_torque(params, rollout, chain)
-    deflection = np.abs(torque) / stiffness + extra
+    deflection = (np.abs(torque) + pushing) / stiffness + extra
     # The energy follows the stiffness the mechanism realises, not the command beyond its range.
     power = 0.5 * np.gradient(stiffness, t, axis=0) * deflection**2
-    tank = _tank(t, power, energy_budget)
+    dissipation = mech_damping * rollout.velocity**2
+    dt = np.diff(t, prepend=t[0])
+    tank = tank_levels((dissipation - power) * dt[:, None], energy_budget, tank_max_energy)
 
     # (checked value, severity: positive where the check fails, unit) per kind.
     not_controllable = np.where(controllable, 0.0, -np.inf)
+    no_interval = lower >= upper
+    # how far the common alpha misses the interval; without one, how empty the interval is
+    alpha_gap = np.where(np.isnan(alpha_excess), lower - upper, alpha_excess)
     checks = {
         "under_damped": (ratio, min_damping_ratio - ratio, "dimensionless (damping ratio)"),
         "energy_tank_empty": (tank, -tank, "J"),
@@ -287,41 +339,60 @@ def check_schedule(
                            "rad"),
         "torque_limit": (np.abs(torque), np.abs(torque) - [j.torque_limit for j in params],
                          "N*m"),
+        "statically_unstable": (effective, -effective,
+                                "N*m/rad (spring plus gravity stiffness)"),
+        "varying_impedance_unproven": (
+            alpha_gap, np.where(no_interval, np.maximum(alpha_gap, _TINY), alpha_gap),
+            "1/s (alpha outside the admissible interval)"),
     }
     stretches: list[Stretch] = []
     for kind, (value, severity, unit) in checks.items():
         stretches.extend(_stretches(t, names, kind, value, severity, unit))
     stretches.sort(key=lambda s: (names.index(s.joint), s.t_start, FLAG_KINDS.index(s.kind)))
-    dt = np.diff(t, prepend=t[0])
     summary = {
         "ok": not stretches,
         "joints": list(names),
-        "min_damping_ratio": ratio.min(axis=0).tolist(),
+        "min_damping_ratio": [None if np.isnan(column).all() else float(np.nanmin(column))
+                              for column in ratio.T],
         "under_damped_fraction": (ratio < min_damping_ratio).mean(axis=0).tolist(),
+        "statically_unstable_fraction": (effective <= 0).mean(axis=0).tolist(),
+        "min_effective_stiffness_Nm_per_rad": effective.min(axis=0).tolist(),
         "injected_energy_J": (np.maximum(power, 0.0) * dt[:, None]).sum(axis=0).tolist(),
+        "dissipated_energy_J": (dissipation * dt[:, None]).sum(axis=0).tolist(),
         "tank_minimum_J": tank.min(axis=0).tolist(),
+        "tank_deficit_J": np.maximum(-tank.min(axis=0), 0.0).tolist(),
+        "stability_alpha_per_s": [None if np.isnan(a) else float(a) for a in alpha],
+        "varying_impedance_unproven_fraction": (
+            ~(alpha_excess < 0) | no_interval).mean(axis=0).tolist(),
         "max_stiffness_rate": np.abs(k_rate).max(axis=0).tolist(),
         "stiffness_rate_limit": limits["k_rate"].tolist(),
         "max_predicted_deflection_rad": deflection.max(axis=0).tolist(),
         "damping_controllable": controllable.tolist(),
         "thresholds": {"min_damping_ratio": min_damping_ratio, "energy_budget_J": energy_budget,
-                       "extra_deflection_rad": extra.tolist()},
+                       "tank_max_energy_J": tank_max_energy,
+                       "extra_deflection_rad": extra.tolist(),
+                       "interaction_torque_Nm": pushing.tolist()},
         "stretch_counts": {kind: sum(s.kind == kind for s in stretches) for kind in FLAG_KINDS},
     }
     return ScheduleReport(t, names, stiffness, damping, ratio, k_rate, deflection, power, tank,
-                          stretches, summary)
+                          stretches, summary, gravity, dissipation, alpha, alpha_excess)
 
 
-def _tank(t: NDArray[np.float64], power: NDArray[np.float64], budget: float) -> NDArray:
-    """Tank level per sample, J: starts full, drained by injection, refilled up to capacity.
+# Severity of a sample whose admissible alpha interval is empty but touches the common alpha.
+_TINY = float(np.finfo(float).tiny)
 
-    The deficit D_k = max(0, D_{k-1} + p_k*dt_k) is Lindley's recursion, whose closed form is
-    S_k - min(0, min_{i<=k} S_i) with S the running sum of p*dt (common practice).
-    """
-    dt = np.diff(t, prepend=t[0])[:, None]
-    drained = np.cumsum(power * dt, axis=0)
-    deficit = drained - np.minimum(np.minimum.accumulate(drained, axis=0), 0.0)
-    return budget - deficit
+
+def _per_joint(value: ArrayLike, name: str, unit: str, n_joints: int) -> NDArray[np.float64]:
+    """A non-negative scalar or (n_joints,) value broadcast to (n_joints,)."""
+    array = finite_array(value, name)
+    try:
+        array = np.broadcast_to(array, (n_joints,))
+    except ValueError:
+        raise InvalidInputError(f"{name}: expected a scalar or {n_joints} values, got shape "
+                                f"{array.shape}") from None
+    if np.any(array < 0):
+        raise InvalidInputError(f"{name}: must be >= 0 {unit}, got {array.tolist()}")
+    return array
 
 
 def _samples(value: ArrayLike, n_samples: int, n_joints: int | None, name: str) -> NDArray:
@@ -387,6 +458,8 @@ def outcome_metrics(
     recovery_band: float = 0.02,
     settling_window_s: float = SETTLING_WINDOW_S,
     settling_tolerance: float = SETTLING_TOLERANCE_RAD,
+    energy_budget: float = TANK_INITIAL_ENERGY_J,
+    tank_max_energy: float = TANK_MAX_ENERGY_J,
 ) -> dict[str, Any]:
     """Outcome of one replay from plain arrays.
 
@@ -401,14 +474,19 @@ def outcome_metrics(
     goal : (n_joints,) rad
     perturbation_onsets, perturbation_ends : (n_perturbations,) s; ends default to the onsets
         (impulses)
-    energy : energy terms, J, each a scalar or (n_joints,) (e.g. ``SimResult.energy.final()``
-        for one scenario); ``stiffness_injection`` is reported as ``energy_injected_J``
+    energy : energy terms, J, each (n_rows, n_joints) running from the start of the run (e.g.
+        :func:`compliant_demo.energy_tank.scenario_energy`), or a final scalar or (n_joints,)
+        value; ``energy_J`` reports each term's final value. The injected-energy and tank keys
+        need the per-sample ``stiffness_injection`` (and ``damping_dissipated``, the tank's
+        inflow, when the mechanism damps), else they are None
     joints : JointParams per column, for position and torque limit violations
     recovery_band : max over joints of |q - q_nominal| that counts as recovered, rad
     settling_window_s : the final stretch of the replay goal error is judged over, s (the whole
         replay when it is shorter)
     settling_tolerance : peak-to-peak of a joint's angle in the settling window up to which it
         counts as settled, rad
+    energy_budget, tank_max_energy : the energy tank's initial level and upper bound, J (see
+        :func:`check_schedule`)
 
     Returns
     -------
@@ -420,8 +498,12 @@ def outcome_metrics(
     peak_deviation_rad (per joint),
     peak_deviation_time_s, recovery_band_rad, recovery_time_s (per perturbation, None when not
     recovered inside its window), recovered (per perturbation), peak_interaction_torque_Nm,
-    peak_mechanism_torque_Nm, energy_J (terms as given), energy_injected_J, limit_violations
-    (per kind: samples, duration_s, worst excess per joint) and n_limit_violations.
+    peak_mechanism_torque_Nm, energy_J (final value of each term), the energy keys of
+    :func:`compliant_demo.energy_tank.replay_energy_metrics` (energy_injected_J: positive part
+    of the injected power's integral, summed over joints; energy_injected_joint_J,
+    energy_tank_minimum_joint_J, energy_tank_deficit_joint_J, energy_tank_deficit_J),
+    limit_violations (per kind: samples, duration_s, worst excess per joint) and
+    n_limit_violations.
     """
     times = time_axis(t)
     position = _samples(q, times.size, None, "q")
@@ -474,14 +556,28 @@ def outcome_metrics(
         "peak_interaction_torque_Nm": np.abs(external).max(axis=0).tolist(),
         "peak_mechanism_torque_Nm": np.abs(mechanism).max(axis=0).tolist(),
     }
-    terms = {key: np.asarray(value, dtype=float).tolist() for key, value in (energy or {}).items()}
-    metrics["energy_J"] = terms
-    injected = terms.get("stiffness_injection")
-    metrics["energy_injected_J"] = None if injected is None else float(np.sum(injected))
+    metrics.update(_energy_outcome(energy or {}, energy_budget, tank_max_energy))
     violations = _limit_violations(times, position, mechanism, joints, n_joints)
     metrics["limit_violations"] = violations
     metrics["n_limit_violations"] = int(sum(sum(v["samples"]) for v in violations.values()))
     return metrics
+
+
+_TANK_KEYS = ("energy_injected_J", "energy_injected_joint_J", "energy_tank_minimum_joint_J",
+              "energy_tank_deficit_joint_J", "energy_tank_deficit_J")
+
+
+def _energy_outcome(energy: Mapping[str, Any], initial: float, upper: float) -> dict[str, Any]:
+    """``energy_J`` (final values) and the injected-energy and tank keys (None without traces)."""
+    terms = {key: np.asarray(value, dtype=float) for key, value in energy.items()}
+    outcome: dict[str, Any] = {"energy_J": {
+        key: (value[-1] if value.ndim == 2 else value).tolist() for key, value in terms.items()}}
+    injection = terms.get("stiffness_injection")
+    if injection is None or injection.ndim != 2:
+        check_tank_bounds(initial, upper)
+        return {**outcome, **dict.fromkeys(_TANK_KEYS)}
+    return {**outcome, **replay_energy_metrics(injection, terms.get("damping_dissipated"),
+                                               initial_energy=initial, max_energy=upper)}
 
 
 #: Actuator loads checked against the antagonistic mechanism's limits: (load, limit field).

@@ -30,6 +30,7 @@ from typing import Any, Literal
 import numpy as np
 from numpy.typing import NDArray
 
+from compliant_demo.energy_tank import scenario_energy
 from compliant_demo.evaluation import ACTUATOR_LOADS, first_limit_violation, outcome_metrics
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import JointParams, MechanismParams
@@ -402,9 +403,8 @@ class ReplayRun:
         n = self.steps_done
         schedule = self.schedule or UNPERTURBED
         rerun = self.setup.simulate([schedule, UNPERTURBED], self.seed)
-        energy = None if self.live_pushes else {
-            name: values[0] for name, values in rerun.energy.at(n).items()
-        }
+        # rows 0..n: from the start of the run (row 0) to the state after the last step done
+        energy = None if self.live_pushes else scenario_energy(rerun, 0, slice(0, n + 1))
         return self.setup.metrics(
             trace["t"], trace["q"], rerun.q[1 : n + 1, 1, :], trace["tau_external"],
             trace["tau_mechanism"], self.schedule, energy,

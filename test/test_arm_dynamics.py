@@ -308,9 +308,9 @@ def test_coupled_simulation_equals_an_rk4_loop_on_pinocchio_aba():
 
 
 def test_schedule_check_on_the_coupled_arm_uses_the_mass_matrix_diagonal():
-    """Damping ratio d / (2*sqrt(K*M_jj(q))) along the path and deflection from the arm's
-    inverse dynamics plus smoothed Coulomb friction, M and tau from Pinocchio (pin.crba,
-    pin.rnea)."""
+    """Damping ratio d / (2*sqrt((K + dg_j/dq_j)*M_jj(q))) along the path and deflection from
+    the arm's inverse dynamics plus smoothed Coulomb friction, M, dg/dq and tau from Pinocchio
+    (pin.crba, pin.computeGeneralizedGravityDerivatives, pin.rnea)."""
     from compliant_demo.evaluation import check_schedule
     from compliant_demo.primitives import Rollout
 
@@ -328,9 +328,13 @@ def test_schedule_check_on_the_coupled_arm_uses_the_mass_matrix_diagonal():
     report = check_schedule(rollout, plant.joints, list(plant.mechanisms or ()),
                             chain=plant.chain)
     diagonal = np.array([pin.crba(model, data, q).diagonal() for q in position])
+    slope = np.array([pin.computeGeneralizedGravityDerivatives(model, data, q).diagonal()
+                      for q in position])
+    # central differences with a 1e-5 rad step: error ~ h^2 times the third derivative / 6
+    np.testing.assert_allclose(report.gravity_stiffness, slope, rtol=0, atol=1e-7)
     viscous = np.array([j.viscous_damping for j in plant.joints])
-    np.testing.assert_allclose(report.damping_ratio, viscous / (2 * np.sqrt(60.0 * diagonal)),
-                               rtol=1e-10)
+    np.testing.assert_allclose(report.damping_ratio,
+                               viscous / (2 * np.sqrt((60.0 + slope) * diagonal)), rtol=1e-8)
     torque = np.array([pin.rnea(model, data, q, dq, ddq)
                        for q, dq, ddq in zip(position, velocity, acceleration, strict=True)])
     coulomb = np.array([j.coulomb_friction for j in plant.joints])
@@ -338,10 +342,10 @@ def test_schedule_check_on_the_coupled_arm_uses_the_mass_matrix_diagonal():
     torque += viscous * velocity + coulomb * np.tanh(velocity / smoothing)
     np.testing.assert_allclose(report.deflection, np.abs(torque) / 60.0, rtol=1e-10)
     independent = check_schedule(rollout, plant.joints, list(plant.mechanisms or ()))
-    np.testing.assert_allclose(independent.damping_ratio[0],
-                               viscous / (2 * np.sqrt(60.0 * np.array(
-                                   [j.inertia for j in plant.joints]))),
-                               rtol=1e-12)
+    inertia = np.array([j.inertia for j in plant.joints])
+    np.testing.assert_allclose(
+        independent.damping_ratio[0],
+        viscous / (2 * np.sqrt((60.0 + independent.gravity_stiffness[0]) * inertia)), rtol=1e-12)
 
 
 def test_vectorisable_sine_and_cosine_match_libm():

@@ -129,7 +129,8 @@ def test_energy_injected_by_raising_stiffness_while_deflected():
     t = np.linspace(0.0, 1.0, 2001)
     stiffness = 10.0 + 100.0 * t
     report = check_schedule(
-        _static_rollout(t, stiffness), [ELBOW], IDEAL, extra_deflection=0.1, energy_budget=0.2
+        _static_rollout(t, stiffness), [ELBOW], IDEAL, extra_deflection=0.1, energy_budget=0.2,
+        tank_max_energy=0.2,
     )
     # Spring energy 1/2 K x^2 at fixed x = 0.1 rad rises by 1/2 (K1 - K0) x^2 = 0.5 J
     # (Ferraguti, Secchi, Fantuzzi, ICRA 2013: power 1/2 dK/dt x^2).
@@ -146,7 +147,8 @@ def test_gravity_load_deflection_gives_closed_form_injection():
     t = np.linspace(0.0, 1.0, 4001)
     stiffness = 20.0 + 80.0 * t
     report = check_schedule(
-        _static_rollout(t, stiffness, position=np.pi / 2), [arm], IDEAL, energy_budget=10.0
+        _static_rollout(t, stiffness, position=np.pi / 2), [arm], IDEAL, energy_budget=10.0,
+        tank_max_energy=10.0,
     )
     mgl = 0.5 * GRAVITY * 0.2
     np.testing.assert_allclose(report.deflection[:, 0], mgl / stiffness)
@@ -160,7 +162,8 @@ def test_tank_refills_when_stiffness_falls():
     t = np.linspace(0.0, 2.0, 2001)
     stiffness = np.where(t < 1.0, 10.0 + 100.0 * t, 110.0 - 100.0 * (t - 1.0))
     report = check_schedule(
-        _static_rollout(t, stiffness), [ELBOW], IDEAL, extra_deflection=0.1, energy_budget=1.0
+        _static_rollout(t, stiffness), [ELBOW], IDEAL, extra_deflection=0.1, energy_budget=1.0,
+        tank_max_energy=1.0,
     )
     # Reference: the tank recursion level = min(budget, level - p dt) written as a loop.
     dt = np.diff(t, prepend=t[0])
@@ -315,12 +318,29 @@ def test_energy_and_limit_violations():
         JointParams(name="shoulder", upper_limit=0.2, torque_limit=5.0),
         JointParams(name="elbow", torque_limit=2.0),
     ]
-    energy = {"stiffness_injection": np.array([0.01, 0.02]), "dissipated": np.array([0.3, 0.1])}
+    # Shoulder stiffens while deflected (0.05 J in by t = 2 s) then softens (0.04 J back); the
+    # elbow takes 0.02 J. The net 0.03 J would hide the shoulder's 0.05 J: the positive part is
+    # 0.05 + 0.02 = 0.07 J (hand computed).
+    injection = np.column_stack([np.interp(t, [0.0, 2.0, 4.0], [0.0, 0.05, 0.01]), 0.005 * t])
+    damped = np.column_stack([np.interp(t, [0.0, 2.0, 4.0], [0.0, 0.01, 0.01]), 0.0 * t])
+    energy = {"stiffness_injection": injection, "damping_dissipated": damped,
+              "dissipated": np.column_stack([0.075 * t, 0.025 * t])}
     metrics = outcome_metrics(
-        t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5], energy=energy, joints=joints
+        t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5], energy=energy, joints=joints,
+        energy_budget=0.03, tank_max_energy=0.1,
     )
-    assert metrics["energy_injected_J"] == pytest.approx(0.03)
-    assert metrics["energy_J"]["dissipated"] == [0.3, 0.1]
+    assert metrics["energy_injected_J"] == pytest.approx(0.07, abs=1e-12)
+    np.testing.assert_allclose(metrics["energy_injected_joint_J"], [0.05, 0.02], atol=1e-12)
+    # Tank (Ferraguti, Secchi, Fantuzzi, ICRA 2013): 0.03 J + 0.01 J damped - 0.05 J paid at
+    # t = 2 s on the shoulder; the elbow's bottoms at 0.03 - 0.02 = 0.01 J at the end.
+    np.testing.assert_allclose(metrics["energy_tank_minimum_joint_J"], [-0.01, 0.01], atol=1e-12)
+    np.testing.assert_allclose(metrics["energy_tank_deficit_joint_J"], [0.01, 0.0], atol=1e-12)
+    assert metrics["energy_tank_deficit_J"] == pytest.approx(0.01, abs=1e-12)
+    assert metrics["energy_J"]["dissipated"] == pytest.approx([0.3, 0.1])
+    finals = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
+                             energy={"stiffness_injection": [0.01, 0.02]})
+    assert finals["energy_injected_J"] is None and finals["energy_tank_deficit_J"] is None
+    assert finals["energy_J"] == {"stiffness_injection": [0.01, 0.02]}
     position = metrics["limit_violations"]["position"]
     above = int(np.sum(q[:, 0] > 0.2))
     assert position["samples"] == [above, 0]
@@ -362,6 +382,12 @@ def test_outcome_metrics_bad_input():
         outcome_metrics(t[::-1], q, nominal, tau_ext, tau_mech, goal=[0, 0])
     with pytest.raises(InvalidInputError, match=r"joints: 1 JointParams for 2 columns"):
         outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0], joints=[SHOULDER])
+    with pytest.raises(InvalidInputError, match=r"tank_max_energy: must be finite and >= the "
+                                                r"initial energy 0.05 J, got 0.01"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0], tank_max_energy=0.01)
+    with pytest.raises(InvalidInputError, match=r"damping_dissipated: expected shape \(4001, 2\)"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0, 0],
+                        energy={"stiffness_injection": q, "damping_dissipated": q[:, :1]})
 
 
 def test_recovery_after_impulse_in_simulation_is_bracketed_by_the_envelope():

@@ -62,6 +62,11 @@ def test_report_from_recorded_demonstrations_and_truth_opens_cleanly(tmp_path):
     coverage = float(summary["estimate coverage"].split(" %")[0])
     assert 50 < coverage < 100  # the first window and the settling of the band-pass have no value
     assert summary["within limits"] == "14 of 14"
+    assert "outside their band" in summary["unperturbed replay vs demonstrations"]
+    tracking = next(t for t in content.tables
+                    if t.title == "The unperturbed replay against the demonstrations")
+    assert [row[0] for row in tracking.rows] == list(JOINTS)
+    assert all(0 <= row[1] <= 100 and row[2] >= 0 for row in tracking.rows)
     estimate = next(f for f in content.figures if f.stem == "stiffness_estimate").figure
     labels = [line.get_label() for line in estimate.axes[0].get_lines()]
     assert labels == ["teacher ground truth", "estimate"]
@@ -90,6 +95,7 @@ def test_report_without_campaign_shows_what_exists(tmp_path):
     assert [f.stem for f in content.figures] == [
         "demonstrations", "stiffness_estimate", "schedule_checks"]
     assert "No ground truth was given" in content.figures[1].caption
+    assert "planned path vs demonstrations" in dict(content.summary)
 
 
 def test_report_errors_name_what_is_missing(tmp_path):

@@ -44,6 +44,7 @@ from compliant_demo.report import (
     plot_stiffness_estimate,
 )
 from compliant_demo.store import DemoStore, ReplayResultInfo
+from compliant_demo.tracking import DemonstrationBand, band_from_aligned, tracking_metrics
 
 __all__ = ["CAMPAIGN_METRICS", "GroundTruth", "collect_report_content"]
 
@@ -53,12 +54,14 @@ CAMPAIGN_METRICS: dict[str, str] = {
     "peak_deviation_max_rad": "peak deviation, worst joint [rad]",
     "recovery_time_max_s": "recovery time, slowest [s]",
     "peak_interaction_torque_max_Nm": "peak interaction torque [N*m]",
-    "energy_injected_J": "energy injected by stiffness changes [J]",
+    "energy_injected_J": "energy injected by stiffening while deflected [J]",
+    "energy_tank_deficit_J": "energy tank deficit, worst joint [J]",
 }
 
 # Schedule-check kinds grouped into the stretches the report hatches.
 _FLAG_GROUPS: dict[str, tuple[str, ...]] = {
     "under-damped": ("under_damped",),
+    "stability not shown": ("statically_unstable", "varying_impedance_unproven"),
     "energy-injecting": ("energy_tank_empty",),
     "rate-limited": ("stiffness_rate", "damping_rate"),
     "out of range": ("stiffness_range", "damping_range", "position_range", "torque_limit"),
@@ -100,6 +103,29 @@ def _flag_masks(checks: ScheduleReport) -> dict[str, np.ndarray]:
                 mask |= (checks.t >= stretch.t_start) & (checks.t <= stretch.t_end)
         masks[label] = mask
     return masks
+
+
+def _tracking_table(band: DemonstrationBand, t: np.ndarray, q: np.ndarray, duration_s: float,
+                    joints: Sequence[str], label: str
+                    ) -> tuple[tuple[str, str], ReportTable]:
+    """The replay against the demonstrations' band: a summary fact and a table per joint."""
+    metrics = tracking_metrics(t, q, band, duration_s=duration_s)
+    width = f"+-{band.n_sigma:g} standard deviations, at least {band.min_tolerance:g} rad"
+    fact = (f"{label} vs demonstrations",
+            f"outside their band ({width}) "
+            f"{100 * metrics['tracking_outside_fraction_any']:.0f} % of the time")
+    rows = tuple(
+        (name, 100 * metrics["tracking_outside_fraction"][j],
+         metrics["tracking_worst_error_rad"][j], metrics["tracking_worst_excess"][j],
+         metrics["tracking_worst_excess_time_s"][j])
+        for j, name in enumerate(joints))
+    return fact, ReportTable(
+        f"The {label} against the demonstrations",
+        ("joint", "outside the band [%]", "worst |error| [rad]", "worst error / tolerance",
+         "at [s]"), rows,
+        caption=f"Error from the demonstrations' aligned mean (DTW), with their spread as the "
+                f"tolerance ({width}); time maps to phase over the skill's duration, after it "
+                "to the goal.", empty_text="no joint")
 
 
 def _latest_campaign(store: DemoStore, skill_id: str) -> str | None:
@@ -188,8 +214,10 @@ def collect_report_content(
         ("joints", ", ".join(joints)),
         ("plant", plant.describe()),
     ]
+    demo_band = None
     if len(demos) >= 2:
         aligned = align_demonstrations([(d.t, d.position) for d in demos], band=0.1)
+        demo_band = band_from_aligned(aligned)
         figures.append(ReportFigure(
             "demonstrations", "Demonstrations and their aligned mean",
             f"{len(demos)} demonstrations in their own time (thin grey), the mean after "
@@ -224,8 +252,10 @@ def collect_report_content(
     figures.append(ReportFigure(
         "schedule_checks", "Learned stiffness and damping ratio along the skill",
         "The stiffness the skill commands (clamped to the mechanism's range) and the damping "
-        "ratio on the target joint's inertia; hatched stretches are flagged: under-damped, "
-        "energy-injecting (the passivity tank would run empty), rate-limited or out of range.",
+        "ratio on the target joint's inertia (gravity stiffness included); hatched stretches are "
+        "flagged: under-damped, stability not shown (gravity outweighs the spring, or the "
+        "Kronander-Billard condition for varying impedance fails), energy-injecting (the "
+        "passivity tank would run empty), rate-limited or out of range.",
         plot_schedule_checks(checks.t, checks.stiffness, checks.damping_ratio,
                              _flag_masks(checks), joints, damping_ratio_floor=min_damping_ratio)))
     tables = [ReportTable(
@@ -257,7 +287,9 @@ def collect_report_content(
             "campaign_metrics", "Distributions of the campaign metrics",
             "Per perturbation kind: goal error and peak deviation (worst joint), recovery time "
             "(slowest perturbation; scenarios that did not recover within the band are left "
-            "out), peak interaction torque and energy injected by stiffness changes.",
+            "out), peak interaction torque, energy injected by stiffening while deflected "
+            "(positive part: softening does not cancel it) and how far the passivity energy "
+            "tank would go below zero.",
             plot_metric_distributions(metrics, kinds, CAMPAIGN_METRICS)))
         violations = [r for r in results if r.status != "ok"]
         tables.insert(0, ReportTable(
@@ -279,6 +311,13 @@ def collect_report_content(
             ("median peak deviation",
              f"{np.nanmedian(metrics['peak_deviation_max_rad']):.3g} rad"),
         ]
+    if demo_band is not None:
+        t_replay, q_replay = (job.unperturbed() if job is not None
+                              else (rollout.t, rollout.position))
+        fact, table = _tracking_table(demo_band, t_replay, q_replay, rollout.duration_s, joints,
+                                      "unperturbed replay" if job is not None else "planned path")
+        summary.append(fact)
+        tables.append(table)
     summary.append(("schedule checks", "passed" if checks.ok else
                     f"{len(checks.stretches)} flagged stretch(es)"))
     # scenarios count only on the plant they ran on (a --plant other than the campaign's judges

@@ -37,7 +37,8 @@ from compliant_demo.store import DemoStore
 __all__ = ["register"]
 
 _SHOWN = ("goal_error_max_rad", "peak_deviation_rad", "recovery_time_s",
-          "peak_interaction_torque_Nm", "energy_injected_J", "n_limit_violations")
+          "peak_interaction_torque_Nm", "energy_injected_J", "energy_tank_deficit_J",
+          "n_limit_violations")
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
