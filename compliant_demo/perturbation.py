@@ -50,6 +50,7 @@ __all__ = [
     "NEVER",
     "random_torque_coefficients",
     "random_torque_value",
+    "raised_cosine_edges",
 ]
 
 NEVER = 2**62  # step index of "never": the stop of open-ended perturbations
@@ -119,12 +120,18 @@ class Sinusoid(_Kind):
 
 
 class RandomTorque(_Kind):
-    """Band-limited random torque: a seeded Fourier series periodic over its duration.
+    """Band-limited random torque: a seeded Fourier series periodic over its duration, tapered.
 
-    The harmonics m/duration_s up to ``bandwidth_hz`` get Gaussian coefficients, scaled so the
-    RMS over the window is exactly ``magnitude`` (spectral representation of a random process,
-    Shinozuka and Deodatis, Appl. Mech. Rev. 44(4), 1991). ``seed`` None draws from the
-    simulation seed and scenario index.
+    The harmonics m/duration_s up to ``bandwidth_hz`` get Gaussian coefficients (spectral
+    representation of a random process, Shinozuka and Deodatis, Appl. Mech. Rev. 44(4), 1991).
+    The series is multiplied by a Tukey (tapered-cosine) window (Harris, Proc. IEEE 66(1),
+    1978): raised-cosine edges that together span ``taper_fraction`` of the duration, so the
+    torque rises from zero and falls back to zero instead of switching on and off with a step.
+    The coefficients are scaled so the RMS over the untapered middle is exactly ``magnitude``.
+    The default 0.2 (each edge 10 % of the window: 50-150 ms for windows of 0.5-1.5 s, at
+    least the half period of the band's highest harmonic at 5 Hz and above) keeps 80 % of the
+    window at full strength (a common Tukey choice; a value from practice, not a standard).
+    ``seed`` None draws from the simulation seed and scenario index.
     """
 
     kind: Literal["random_torque"] = "random_torque"
@@ -133,6 +140,10 @@ class RandomTorque(_Kind):
     sign: _Sign = 1
     bandwidth_hz: _Positive = Field(5.0, description="Highest frequency present, Hz.")
     seed: int | None = Field(None, ge=0, description="Seed of the coefficients.")
+    taper_fraction: float = Field(
+        0.2, ge=0, lt=1, allow_inf_nan=False,
+        description="Fraction of the duration in the two raised-cosine edges, 1 (0: steps).",
+    )
 
 
 class Wall(_Kind):
@@ -298,26 +309,71 @@ def random_torque_coefficients(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Fourier coefficients of a band-limited random torque over one period.
 
+    Scaled so the series' RMS over the untapered middle ``[r, period_s - r]`` of the window,
+    r = taper_fraction * period_s / 2, is exactly ``magnitude`` (:func:`_mean_square`).
+
     Returns
     -------
     frequencies : (m,) array, Hz; the harmonics k/period_s, k = 1..m, up to bandwidth_hz
-    coefficients : (m,) complex array, N*m; the torque is Re(sum c_k exp(2j*pi*f_k*t))
+    coefficients : (m,) complex array, N*m; the torque is Re(sum c_k exp(2j*pi*f_k*t)) times
+        the window's :func:`raised_cosine_edges`
     """
     n_harmonics = max(1, int(math.floor(perturbation.bandwidth_hz * period_s)))
     frequencies = np.arange(1, n_harmonics + 1) / period_s
     coefficients = rng.standard_normal(n_harmonics) + 1j * rng.standard_normal(n_harmonics)
-    # mean square of Re(c exp(i w t)) over a period is |c|^2 / 2
-    rms = math.sqrt(float(np.sum(np.abs(coefficients) ** 2)) / 2.0)
+    ramp = 0.5 * perturbation.taper_fraction * period_s
+    rms = math.sqrt(_mean_square(frequencies, coefficients, ramp, period_s - ramp))
     return frequencies, coefficients * (perturbation.sign * perturbation.magnitude / rms)
+
+
+def _mean_square(
+    frequencies: np.ndarray, coefficients: np.ndarray, start: float, stop: float
+) -> float:
+    """Exact mean of x(t)^2 over [start, stop] for x = Re(sum c_k exp(2j*pi*f_k*t)).
+
+    Notes
+    -----
+    x^2 = (Re(z^2) + |z|^2) / 2 with z = sum c_k exp(2j*pi*f_k*t), and the mean of
+    exp(2j*pi*f*t) over an interval of length L centred on m is exp(2j*pi*f*m) * sinc(f*L)
+    (normalised sinc; common practice). Over whole periods it reduces to sum |c_k|^2 / 2
+    (Parseval).
+    """
+    length, centre = stop - start, 0.5 * (start + stop)
+    total = 0.0
+    for offsets, products in (
+        (np.add.outer(frequencies, frequencies), np.outer(coefficients, coefficients)),
+        (np.subtract.outer(frequencies, frequencies),
+         np.outer(coefficients, coefficients.conj())),
+    ):
+        mean_phase = np.exp(2j * np.pi * offsets * centre) * np.sinc(offsets * length)
+        total += float(np.real(np.sum(products * mean_phase)))
+    return 0.5 * total
 
 
 def random_torque_value(
     frequencies: np.ndarray, coefficients: np.ndarray, t_since_onset: np.ndarray | float
 ) -> np.ndarray:
-    """Evaluate the series of :func:`random_torque_coefficients` at times since onset (s), N*m."""
+    """Evaluate the series of :func:`random_torque_coefficients` at times since onset (s), N*m
+    (untapered: multiply by :func:`raised_cosine_edges` for the applied torque)."""
     t = np.asarray(t_since_onset, dtype=float)
     phase = np.exp(2j * np.pi * np.multiply.outer(t, frequencies))
     return np.real(phase @ coefficients)
+
+
+def raised_cosine_edges(
+    t_since_onset: np.ndarray | float, length_s: float, ramp_s: float, height: float = 1.0
+) -> np.ndarray:
+    """Window of a perturbation of ``length_s`` with raised-cosine edges of ``ramp_s`` each.
+
+    ``height * (1 - cos(pi * e)) / 2`` with e = min(t, length_s - t) / ramp_s clipped to
+    [0, 1]: 0 at both ends, ``height`` between the edges (a Tukey window; ``ramp_s`` 0 gives
+    ``height`` throughout). Times in s; the result has the unit of ``height``.
+    """
+    t = np.asarray(t_since_onset, dtype=float)
+    if ramp_s == 0:
+        return np.full(np.shape(t), height)
+    edge = np.clip(np.minimum(t, length_s - t) / ramp_s, 0.0, 1.0)
+    return height * 0.5 * (1.0 - np.cos(np.pi * edge))
 
 
 class Uniform(BaseModel):

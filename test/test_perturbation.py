@@ -110,7 +110,7 @@ def test_step_span_snaps_to_the_grid():
 
 
 def test_random_torque_has_exact_rms_and_no_power_above_its_band():
-    p = RandomTorque(duration_s=2.0, magnitude=0.4, bandwidth_hz=5.0)
+    p = RandomTorque(duration_s=2.0, magnitude=0.4, bandwidth_hz=5.0, taper_fraction=0.0)
     freqs, coefs = random_torque_coefficients(p, 2.0, np.random.default_rng(3))
     t = np.arange(4000) * 5e-4
     x = random_torque_value(freqs, coefs, t)
@@ -120,6 +120,37 @@ def test_random_torque_has_exact_rms_and_no_power_above_its_band():
     f = np.fft.rfftfreq(t.size, 5e-4)
     assert spectrum[f > 5.0 + 1e-9].sum() <= 1e-20 * spectrum.sum()
     assert freqs.max() <= 5.0
+
+
+@pytest.mark.parametrize(("fraction", "seed"), [(0.2, 3), (0.5, 8), (0.05, 21)])
+def test_random_torque_is_tapered_to_zero_with_the_set_rms_in_its_middle(fraction, seed):
+    length, dt = 1.0, 1e-3
+    p = RandomTorque(duration_s=length, magnitude=0.7, bandwidth_hz=8.0, seed=seed,
+                     taper_fraction=fraction)
+    (term,) = compile_schedules([PerturbationSchedule(perturbations=[p])], 1, [0.05], dt,
+                                seed=0).terms
+    # the first and last stage times of the window: the Tukey window is exactly 0 there
+    assert abs(float(term.profile(np.array(0.0)))) < 1e-12
+    assert abs(float(term.profile(np.array(length)))) < 1e-12
+    # RMS over the untapered middle [r, T - r], r = fraction*T/2, by the midpoint rule on a
+    # fine grid: the rule's error is O(h^2) * max|x''| / 24 (common practice), far below 1e-6
+    ramp, n = 0.5 * fraction * length, 200_000
+    h = (length - 2 * ramp) / n
+    t = ramp + (np.arange(n) + 0.5) * h
+    assert math.sqrt(np.mean(term.profile(t) ** 2)) == pytest.approx(0.7, rel=1e-6)
+    # the edges are raised cosines (1 - cos(pi*t/r))/2 times the untapered series
+    freqs, coefs = random_torque_coefficients(p, length, np.random.default_rng(seed))
+    edge = np.linspace(0.0, ramp, 50)
+    expected = random_torque_value(freqs, coefs, edge) * 0.5 * (1 - np.cos(np.pi * edge / ramp))
+    assert np.allclose(term.profile(edge), expected, rtol=0, atol=1e-12)
+    assert np.allclose(term.profile(length - edge), random_torque_value(
+        freqs, coefs, length - edge) * 0.5 * (1 - np.cos(np.pi * edge / ramp)), rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("bad", [-0.1, 1.0, float("nan")])
+def test_random_torque_taper_outside_zero_to_one_is_refused(bad):
+    with pytest.raises(InvalidInputError, match=rf"taper_fraction' = {bad}"):
+        perturbation_from_mapping({"kind": "random_torque", "taper_fraction": bad})
 
 
 def test_random_torque_is_seeded_per_scenario():
