@@ -36,6 +36,7 @@ from compliant_demo.perturbation import (
     PerturbationSchedule,
     Uniform,
     draw_scenarios,
+    place_relative_walls,
 )
 from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import Skill
@@ -160,7 +161,7 @@ class ReplayCampaign:
             "method": setup.method,
             "stratify_kinds": self.stratify_kinds,
             "recovery_band": self.recovery_band,
-            "spec": self.spec.model_dump(mode="json"),
+            "spec": self.spec.model_dump(mode="json", exclude=self._legacy_spec_fields()),
             "plant": setup.plant.model_dump(mode="json"),
         }
         # only when set, so campaigns stored before these settings existed still resume
@@ -171,6 +172,12 @@ class ReplayCampaign:
         if not setup.feedforward:
             config["feedforward"] = False
         return config
+
+    def _legacy_spec_fields(self) -> set[str]:
+        """Spec fields left out of the stored config: those at the value campaigns stored
+        before the field existed ran with, so their configs still match on resume."""
+        legacy = {"wall_side": "as_drawn"}
+        return {name for name, value in legacy.items() if getattr(self.spec, name) == value}
 
     @classmethod
     def from_config(cls, skill: Skill, config: Mapping[str, Any]) -> ReplayCampaign:
@@ -183,7 +190,8 @@ class ReplayCampaign:
                 f"campaign config: lacks {missing}; not a campaign of perturbed replays")
         try:
             plant = ReplayPlant.model_validate(config["plant"])
-            spec = CampaignSpec.model_validate(config["spec"])
+            # a spec stored before wall_side existed placed its walls as drawn
+            spec = CampaignSpec.model_validate({"wall_side": "as_drawn", **config["spec"]})
         except ValueError as exc:
             raise InvalidInputError(
                 f"campaign config: {str(exc).splitlines()[0]}") from None
@@ -211,7 +219,18 @@ class ReplayCampaign:
             kinds = sorted(spec.kinds)
             spec = spec.model_copy(update={"kinds": {kinds[index % len(kinds)]: 1.0}})
         (drawn,) = draw_scenarios(spec, 1, scenario_seed(self.seed, index))
+        drawn = place_relative_walls(drawn, self._path_excursion, self.spec.wall_side)
         return drawn.model_copy(update={"name": f"{self.spec.name}_{index:05d}"})
+
+    def _path_excursion(self, joint: int, onset_s: float, duration_s: float) -> float:
+        """Largest displacement of the commanded path of ``joint`` from its angle at ``onset_s``
+        within ``[onset_s, onset_s + duration_s]``, signed, rad."""
+        path = self.setup.rollout.position[:, joint]
+        first = min(round(onset_s / self.setup.dt), len(path) - 1)
+        last = len(path) - 1 if math.isinf(duration_s) else min(
+            round((onset_s + duration_s) / self.setup.dt), len(path) - 1)
+        moved = path[first:last + 1] - path[first]
+        return float(moved[int(np.argmax(np.abs(moved)))])
 
     def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
         """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each."""
@@ -259,6 +278,8 @@ class CampaignSummary:
     n_run : scenarios run and stored by this call
     n_skipped : scenarios already in the store (resume) and not run again
     n_violations : scenarios of this call whose replay left a joint's torque or angle limits
+    n_untouched_walls : scenarios of this call with a wall the link never touched (status
+        ``"untouched"`` in their ``perturbation_status``, not counted as recovered)
     wall_s : wall time of this call, s
     backend : ``"inline"``, ``"processes"`` or ``"dask"``
     workers : worker processes used (Dask: workers of the cluster)
@@ -272,6 +293,7 @@ class CampaignSummary:
     wall_s: float
     backend: str
     workers: int
+    n_untouched_walls: int = 0
 
     @property
     def scenarios_per_s(self) -> float:
@@ -590,7 +612,7 @@ def run_campaign(
 
     if on_start is not None:
         on_start(campaign_id, to_run)
-    n_run = n_violations = 0
+    n_run = n_violations = n_untouched = 0
     try:
         for outcomes in results:
             fresh = [o for o in outcomes if o.index not in completed]
@@ -598,6 +620,7 @@ def run_campaign(
             completed.update(o.index for o in fresh)
             n_run += len(fresh)
             n_violations += sum(o.status != "ok" for o in fresh)
+            n_untouched += sum(o.metrics.get("n_untouched", 0) > 0 for o in fresh)
             if on_batch is not None:
                 on_batch(fresh)
     finally:
@@ -611,6 +634,7 @@ def run_campaign(
         wall_s=time.perf_counter() - started,
         backend=backend,
         workers=n_workers,
+        n_untouched_walls=n_untouched,
     )
 
 

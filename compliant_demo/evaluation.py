@@ -375,6 +375,7 @@ def outcome_metrics(
     energy: Mapping[str, Any] | None = None,
     joints: Sequence[JointParams] | None = None,
     recovery_band: float = 0.02,
+    perturbation_acted: Sequence[bool] | None = None,
 ) -> dict[str, Any]:
     """Outcome of one replay from plain arrays.
 
@@ -393,12 +394,17 @@ def outcome_metrics(
         for one scenario); ``stiffness_injection`` is reported as ``energy_injected_J``
     joints : JointParams per column, for position and torque limit violations
     recovery_band : max over joints of |q - q_nominal| that counts as recovered, rad
+    perturbation_acted : (n_perturbations,) bool, optional; False for a perturbation that never
+        acted on the link (a wall it never touched): its recovery is not measured and it is
+        never counted as recovered. Default: every perturbation acted.
 
     Returns
     -------
     dict with goal_error_rad (per joint), goal_error_max_rad, peak_deviation_rad (per joint),
     peak_deviation_time_s, recovery_band_rad, recovery_time_s (per perturbation, None when not
-    recovered inside its window), recovered (per perturbation), peak_interaction_torque_Nm,
+    recovered inside its window or it never acted), recovered (per perturbation),
+    perturbation_status (per perturbation: "recovered", "not_recovered" or "untouched"),
+    n_untouched, peak_interaction_torque_Nm,
     peak_mechanism_torque_Nm, energy_J (terms as given), energy_injected_J, limit_violations
     (per kind: samples, duration_s, worst excess per joint) and n_limit_violations.
     """
@@ -421,10 +427,18 @@ def outcome_metrics(
                                 f"{onsets.tolist()}, got {ends.tolist()}")
     if onsets.size and np.any(np.diff(onsets) < 0):
         raise InvalidInputError(f"perturbation_onsets: must be sorted, got {onsets.tolist()}")
+    acted = [True] * onsets.size if perturbation_acted is None else list(perturbation_acted)
+    if len(acted) != onsets.size:
+        raise InvalidInputError(f"perturbation_acted: need one flag per onset "
+                                f"{onsets.tolist()}, got {acted}")
 
     deviation = np.abs(position - nominal)
     worst = deviation.max(axis=1)
-    recovery = _recovery(times, worst, onsets, ends, recovery_band)
+    recovery = [r if on else None
+                for r, on in zip(_recovery(times, worst, onsets, ends, recovery_band), acted,
+                                 strict=True)]
+    status = ["untouched" if not on else "not_recovered" if r is None else "recovered"
+              for r, on in zip(recovery, acted, strict=True)]
     goal_error = np.abs(position[-1] - target)
     metrics: dict[str, Any] = {
         "goal_error_rad": goal_error.tolist(),
@@ -434,6 +448,8 @@ def outcome_metrics(
         "recovery_band_rad": float(recovery_band),
         "recovery_time_s": recovery,
         "recovered": [r is not None for r in recovery],
+        "perturbation_status": status,
+        "n_untouched": status.count("untouched"),
         "peak_interaction_torque_Nm": np.abs(external).max(axis=0).tolist(),
         "peak_mechanism_torque_Nm": np.abs(mechanism).max(axis=0).tolist(),
     }

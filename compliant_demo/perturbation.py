@@ -12,7 +12,7 @@ grid (see :func:`step_span`), so a simulator and a reference integrator agree on
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal, cast
 
@@ -51,6 +51,8 @@ __all__ = [
     "random_torque_coefficients",
     "random_torque_value",
     "raised_cosine_edges",
+    "WALL_SIDES",
+    "place_relative_walls",
 ]
 
 NEVER = 2**62  # step index of "never": the stop of open-ended perturbations
@@ -164,6 +166,24 @@ class Wall(_Kind):
         description="Position counts from the link angle at onset (an obstacle in the path).",
     )
 
+    def touched(self, t: np.ndarray, q: np.ndarray) -> bool:
+        """Whether the joint went beyond the surface at a sample inside the wall's window.
+
+        Parameters
+        ----------
+        t : (n_samples,) s; q : (n_samples,) rad, the angle of the wall's joint
+
+        Notes
+        -----
+        A relative surface counts from the angle interpolated at ``onset_s``. Only recorded
+        samples are looked at: a graze shorter than the sample spacing can pass unseen.
+        """
+        times, angle = np.asarray(t, dtype=float), np.asarray(q, dtype=float)
+        surface = self.position + (float(np.interp(self.onset_s, times, angle))
+                                   if self.relative else 0.0)
+        inside = (times >= self.onset_s) & (times <= self.onset_s + self.duration_s)
+        return bool(np.any((angle[inside] - surface) * self.sign > 0))
+
 
 class Hold(_Kind):
     """The link is blocked where it is at onset (velocity set to zero) for ``duration_s``."""
@@ -201,15 +221,30 @@ class PerturbationSchedule(BaseModel):
         """The kinds joined by "+" (``"wall+impulse"``), or ``"none"`` for an empty schedule."""
         return "+".join(self.kinds) or "none"
 
+    def _spans(self, end_s: float) -> list[tuple[float, float, Perturbation]]:
+        """(onset, end clipped to ``end_s``, perturbation) of those starting by ``end_s``, s,
+        sorted by onset and end (stable)."""
+        spans = [(p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s), p)
+                 for p in self.perturbations if p.onset_s <= end_s]
+        return sorted(spans, key=lambda span: span[:2])
+
     def windows(self, end_s: float) -> tuple[list[float], list[float]]:
         """Sorted ``(onsets, ends)`` of the perturbations that start by ``end_s``, s; ends are
         clipped to ``end_s`` (an impulse's window is its onset)."""
-        spans = sorted(
-            (p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s))
-            for p in self.perturbations
-            if p.onset_s <= end_s
-        )
-        return [a for a, _ in spans], [b for _, b in spans]
+        spans = self._spans(end_s)
+        return [a for a, _, _ in spans], [b for _, b, _ in spans]
+
+    def acted(self, t: np.ndarray, q: np.ndarray) -> list[bool]:
+        """Per window of :meth:`windows` (same order): False for a wall the link never touched
+        (:meth:`Wall.touched`), True for every other perturbation.
+
+        Parameters
+        ----------
+        t : (n_samples,) s; q : (n_samples, n_joints) rad
+        """
+        angles = np.asarray(q, dtype=float)
+        return [not isinstance(p, Wall) or p.touched(t, angles[:, p.joint])
+                for _, _, p in self._spans(float(t[-1]))]
 
 
 def _check_kind(data: object, where: str) -> type[_Kind]:
@@ -376,6 +411,50 @@ def raised_cosine_edges(
     return height * 0.5 * (1.0 - np.cos(np.pi * edge))
 
 
+#: Where a campaign puts its relative walls (:func:`place_relative_walls`).
+WALL_SIDES: tuple[str, ...] = ("toward", "away", "both", "as_drawn")
+
+
+def place_relative_walls(
+    schedule: PerturbationSchedule,
+    motion: Callable[[int, float, float], float],
+    side: str,
+) -> PerturbationSchedule:
+    """The schedule with its relative walls on the side the joint moves toward (or away from).
+
+    Parameters
+    ----------
+    schedule : drawn schedule
+    motion : ``(joint, onset_s, duration_s) -> displacement`` of the unperturbed motion over the
+        wall's window (rad); only its sign is used: the direction the joint goes
+    side : ``"toward"``: each relative wall sits ``|position|`` from the link's angle at onset
+        in the direction it goes and blocks further motion that way; ``"away"``: as far on the
+        other side, blocking a return; ``"both"``: toward when the drawn sign is +1, away when
+        it is -1; ``"as_drawn"``: sign and position as drawn (campaigns stored before this
+        setting)
+
+    Notes
+    -----
+    The direction is that of the motion over the window rather than the velocity at onset: a
+    joint that turns round just after the onset (near a turning point of the path) would
+    otherwise get a wall on the side it leaves. A displacement of exactly 0 keeps the drawn
+    sign. Walls with absolute positions are left as they are.
+    """
+    if side not in WALL_SIDES:
+        raise InvalidInputError(f"side = {side!r}: expected one of {', '.join(WALL_SIDES)}")
+    if side == "as_drawn":
+        return schedule
+    placed: list[Perturbation] = []
+    for p in schedule.perturbations:
+        if isinstance(p, Wall) and p.relative:
+            moving = int(np.sign(motion(p.joint, p.onset_s, p.duration_s))) or p.sign
+            toward = side == "toward" or (side == "both" and p.sign == 1)
+            sign = moving if toward else -moving
+            p = p.model_copy(update={"sign": sign, "position": sign * abs(p.position)})
+        placed.append(p)
+    return schedule.model_copy(update={"perturbations": placed})
+
+
 class Uniform(BaseModel):
     """Uniform on [low, high]."""
 
@@ -489,7 +568,9 @@ class CampaignSpec(BaseModel):
     kind (weights ``kinds``), joint (uniform over ``joints``), onset, duration (per kind, else
     ``duration_s``), magnitude (per kind), sign (+1 with ``positive_sign_probability``) and any
     further field in ``fields[kind]`` (e.g. a wall's ``position``, a sinusoid's
-    ``frequency_hz``). Fields not drawn keep the kind's default.
+    ``frequency_hz``). Fields not drawn keep the kind's default. A campaign then puts relative
+    walls on the side ``wall_side`` of the motion (:func:`place_relative_walls`; the drawn
+    position's magnitude is kept).
     """
 
     model_config = ConfigDict(extra="forbid", frozen=True)
@@ -507,6 +588,12 @@ class CampaignSpec(BaseModel):
     )
     positive_sign_probability: float = Field(0.5, ge=0, le=1)
     fields: dict[str, dict[str, Distribution]] = Field(default_factory=dict)
+
+    # walls and plant variation: where relative walls go, and model uncertainty
+    wall_side: Literal["toward", "away", "both", "as_drawn"] = Field(
+        default="toward",
+        description="Side of the motion relative walls are put on (place_relative_walls).",
+    )
 
     @model_validator(mode="after")
     def _names_known(self) -> CampaignSpec:

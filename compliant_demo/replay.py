@@ -262,14 +262,18 @@ class ReplaySetup:
     ) -> dict[str, Any]:
         """Outcome metrics of one replay (see :func:`compliant_demo.evaluation.outcome_metrics`)
         plus one number per metric for distributions: the worst joint and the slowest recovery
-        (None when a perturbation was not recovered from, or there was none)."""
+        among the perturbations that acted (None when one of them was not recovered from, or
+        none acted: no perturbation, or only walls the link never touched)."""
         onsets, ends = ([], []) if schedule is None else schedule.windows(float(t[-1]))
         metrics = outcome_metrics(
             t, q, nominal, tau_external, tau_mechanism, self.rollout.position[-1],
             perturbation_onsets=onsets, perturbation_ends=ends, energy=energy,
             joints=self.joints, recovery_band=recovery_band,
+            perturbation_acted=None if schedule is None else schedule.acted(t, q),
         )
-        recovery = metrics["recovery_time_s"]
+        recovery = [r for r, status in zip(metrics["recovery_time_s"],
+                                           metrics["perturbation_status"], strict=True)
+                    if status != "untouched"]
         metrics.update({
             "peak_deviation_max_rad": float(max(metrics["peak_deviation_rad"])),
             "peak_interaction_torque_max_Nm": float(max(metrics["peak_interaction_torque_Nm"])),

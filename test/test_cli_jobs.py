@@ -188,6 +188,9 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
     ]
     assert report["summary"]["within limits"] == f"{14 - data['violations']} of 14"
     assert data["campaign_id"] in report["summary"]["campaign"]
+    # scenarios with a wall never touched: the same count in the campaign's and the report's
+    assert report["summary"]["walls never touched"].startswith(
+        f"{data['untouched_walls']} scenario(s)")
 
 
 def test_resume_of_an_unknown_campaign_is_a_one_line_error(store, capsys):

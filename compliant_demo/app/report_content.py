@@ -249,14 +249,21 @@ def collect_report_content(
                   for r in violations),
             caption="Scenarios whose mechanism torque or joint angle left the joint's limits.",
             empty_text="no scenario left the joint limits"))
-        recovered = np.isfinite(metrics["recovery_time_max_s"]).mean()
+        # scenarios whose only perturbations were walls never touched test no recovery
+        untouched = np.array([r.metrics.get("n_untouched", 0) > 0 for r in results])
+        acted = np.array([len(r.metrics.get("recovered", [])) > r.metrics.get("n_untouched", 0)
+                          for r in results])
+        recovered = (f"{100 * np.isfinite(metrics['recovery_time_max_s'][acted]).mean():.0f} %"
+                     if acted.any() else "no perturbation acted")
         summary += [
             ("campaign", f"{campaign_id}: {len(results)} scenarios over "
                          f"{len(set(kinds.tolist()))} perturbation kinds, seed "
                          f"{campaign.config.get('seed')}"),
             ("within limits", f"{len(results) - len(violations)} of {len(results)}"),
             ("recovered within the band",
-             f"{100 * recovered:.0f} % (band {campaign.config.get('recovery_band')} rad)"),
+             f"{recovered} (band {campaign.config.get('recovery_band')} rad)"),
+            ("walls never touched",
+             f"{int(untouched.sum())} scenario(s), reported as untouched, not as recovered"),
             ("median goal error",
              f"{np.nanmedian(metrics['goal_error_max_rad']):.3g} rad"),
             ("median peak deviation",

@@ -167,6 +167,8 @@ def _run(args: argparse.Namespace) -> int:
         counts = by_kind.setdefault(result.parameters.kind, [0, 0])
         counts[0] += 1
         counts[1] += result.status != "ok"
+    # scenarios with a wall the link never touched: reported as such, not as recovered
+    untouched = sum(result.metrics.get("n_untouched", 0) > 0 for result in results)
     if args.json:
         emit_json({
             "campaign_id": summary.campaign_id,
@@ -176,6 +178,7 @@ def _run(args: argparse.Namespace) -> int:
             "run": summary.n_run,
             "skipped": summary.n_skipped,
             "violations": sum(counts[1] for counts in by_kind.values()),
+            "untouched_walls": untouched,
             "backend": summary.backend,
             "workers": summary.workers,
             "wall_s": summary.wall_s,
@@ -187,7 +190,8 @@ def _run(args: argparse.Namespace) -> int:
         print(f"campaign {summary.campaign_id} on the {job.plant.describe()}: "
               f"{summary.n_run} scenarios run, "
               f"{summary.n_skipped} already stored, {summary.wall_s:.1f} s on "
-              f"{summary.backend} ({summary.workers} workers)")
+              f"{summary.backend} ({summary.workers} workers); {untouched} with a wall "
+              "never touched")
         emit_table([{"kind": kind, "scenarios": c[0], "violations": c[1]}
                     for kind, c in sorted(by_kind.items())], ("kind", "scenarios", "violations"))
         emit_caution()
