@@ -22,7 +22,7 @@ import socket
 import sys
 import time
 from collections.abc import Callable, Generator, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Protocol
 
 import numpy as np
@@ -39,8 +39,15 @@ from compliant_demo.perturbation import (
     place_relative_walls,
 )
 from compliant_demo.plant import ReplayPlant
+from compliant_demo.plant_variation import (
+    FailureDriver,
+    campaign_failure_drivers,
+    check_plant_variation,
+    vary_plant,
+)
 from compliant_demo.primitives import Skill
 from compliant_demo.replay import UNPERTURBED, ReplaySetup
+from compliant_demo.sim import SimResult
 from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
@@ -73,15 +80,17 @@ class ScenarioOutcome:
     metrics : outcome metrics, SI units (see :func:`compliant_demo.evaluation.outcome_metrics`)
     parameters : the scenario's perturbation parameters, JSON-serialisable
     trace : named arrays of the decimated trace; ``t`` in s, angles in rad, torques in N*m
+    plant : the drawn plant the scenario ran on (JSON), or None: the campaign's nominal plant
     """
 
     index: int
     kind: str
     status: str
     reason: str | None
-    metrics: dict[str, float]
+    metrics: dict[str, Any]
     parameters: dict[str, Any]
     trace: dict[str, np.ndarray] = field(default_factory=dict)
+    plant: dict[str, Any] | None = None
 
 
 class CampaignJob(Protocol):
@@ -136,6 +145,7 @@ class ReplayCampaign:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
         if self.decimation < 1:
             raise InvalidInputError(f"decimation = {self.decimation}: must be >= 1")
+        check_plant_variation(self.setup.plant, self.spec.plant_variation)
 
     @property
     def skill(self) -> Skill:
@@ -176,7 +186,7 @@ class ReplayCampaign:
     def _legacy_spec_fields(self) -> set[str]:
         """Spec fields left out of the stored config: those at the value campaigns stored
         before the field existed ran with, so their configs still match on resume."""
-        legacy = {"wall_side": "as_drawn"}
+        legacy: dict[str, Any] = {"wall_side": "as_drawn", "plant_variation": {}}
         return {name for name, value in legacy.items() if getattr(self.spec, name) == value}
 
     @classmethod
@@ -232,39 +242,68 @@ class ReplayCampaign:
         moved = path[first:last + 1] - path[first]
         return float(moved[int(np.argmax(np.abs(moved)))])
 
+    def drawn_plant(self, index: int) -> tuple[ReplayPlant, dict[str, dict[str, float]]]:
+        """The plant scenario ``index`` runs on and its factors per parameter and joint
+        (:func:`compliant_demo.plant_variation.vary_plant`); the same whatever the batching."""
+        rng = np.random.default_rng([int(self.seed), int(index), _PLANT_STREAM])
+        return vary_plant(self.setup.plant, self.spec.plant_variation, rng)
+
     def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
-        """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each."""
-        setup = self.setup
+        """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each.
+
+        With ``plant_variation`` each scenario runs on its own drawn plant together with its
+        unperturbed twin on that plant (deviations are then the perturbation's, not the plant's
+        difference from the nominal one), one simulation per scenario.
+        """
         schedules = [self.schedule(i) for i in indexes]
-        result = setup.simulate([*schedules, UNPERTURBED], scenario_seed(self.seed, batch_index),
-                                decimation=self.decimation)
-        nominal = result.q[:, -1, :]
-        final_energy = result.energy.final()
+        if not self.spec.plant_variation:
+            result = self.setup.simulate([*schedules, UNPERTURBED],
+                                         scenario_seed(self.seed, batch_index),
+                                         decimation=self.decimation)
+            return [self._outcome(result, column, len(schedules), index, schedule)
+                    for column, (index, schedule) in enumerate(zip(indexes, schedules,
+                                                                   strict=True))]
+        outcomes = []
+        for index, schedule in zip(indexes, schedules, strict=True):
+            plant, factors = self.drawn_plant(index)
+            result = self.setup.simulate([schedule, UNPERTURBED], scenario_seed(self.seed, index),
+                                         decimation=self.decimation, plant=plant)
+            outcome = self._outcome(result, 0, 1, index, schedule)
+            outcomes.append(replace(outcome, metrics={**outcome.metrics, "plant_factors": factors},
+                                    plant=plant.model_dump(mode="json")))
+        return outcomes
+
+    def _outcome(self, result: SimResult, column: int, nominal_column: int, index: int,
+                 schedule: PerturbationSchedule) -> ScenarioOutcome:
+        """Metrics, limit check and trace of scenario ``column`` of ``result`` against the
+        unperturbed scenario ``nominal_column``."""
+        setup = self.setup
+        q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
+        energy = {name: value[column] for name, value in result.energy.final().items()}
+        metrics = setup.metrics(
+            result.t, q, result.q[:, nominal_column, :], result.tau_external[:, column, :],
+            tau_mechanism, schedule, energy, recovery_band=self.recovery_band,
+        )
+        loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}
         # the command in force at recorded sample r (t = r * decimation * dt) is the one before
         steps = np.arange(len(result.t)) * self.decimation - 1
-        outcomes = []
-        for column, (index, schedule) in enumerate(zip(indexes, schedules, strict=True)):
-            q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
-            metrics = setup.metrics(
-                result.t, q, nominal, result.tau_external[:, column, :], tau_mechanism,
-                schedule, {name: value[column] for name, value in final_energy.items()},
-                recovery_band=self.recovery_band,
-            )
-            loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}
-            reason = setup.violation(result.t, q, tau_mechanism, steps, loads)
-            trace = {"t": result.t.copy()}
-            trace.update({name: getattr(result, name)[:, column, :].copy()
-                          for name in TRACE_CHANNELS})
-            outcomes.append(ScenarioOutcome(
-                index=index,
-                kind=schedule.kind_label,
-                status="ok" if reason is None else "violation",
-                reason=reason,
-                metrics=metrics,
-                parameters=schedule.model_dump(mode="json"),
-                trace=trace,
-            ))
-        return outcomes
+        reason = setup.violation(result.t, q, tau_mechanism, steps, loads)
+        trace = {"t": result.t.copy()}
+        trace.update({name: getattr(result, name)[:, column, :].copy()
+                      for name in TRACE_CHANNELS})
+        return ScenarioOutcome(
+            index=index,
+            kind=schedule.kind_label,
+            status="ok" if reason is None else "violation",
+            reason=reason,
+            metrics=metrics,
+            parameters=schedule.model_dump(mode="json"),
+            trace=trace,
+        )
+
+
+#: Third entry of the seed of a scenario's plant draw: its own stream, apart from the schedule's.
+_PLANT_STREAM = 1
 
 
 @dataclass(frozen=True)
@@ -280,6 +319,9 @@ class CampaignSummary:
     n_violations : scenarios of this call whose replay left a joint's torque or angle limits
     n_untouched_walls : scenarios of this call with a wall the link never touched (status
         ``"untouched"`` in their ``perturbation_status``, not counted as recovered)
+    failure_drivers : with ``plant_variation``, every drawn factor of the whole campaign ranked
+        by how it separates failed from passed scenarios, strongest first (a screening measure,
+        :func:`compliant_demo.plant_variation.failure_drivers`); empty otherwise
     wall_s : wall time of this call, s
     backend : ``"inline"``, ``"processes"`` or ``"dask"``
     workers : worker processes used (Dask: workers of the cluster)
@@ -294,6 +336,7 @@ class CampaignSummary:
     backend: str
     workers: int
     n_untouched_walls: int = 0
+    failure_drivers: tuple[FailureDriver, ...] = ()
 
     @property
     def scenarios_per_s(self) -> float:
@@ -635,6 +678,8 @@ def run_campaign(
         backend=backend,
         workers=n_workers,
         n_untouched_walls=n_untouched,
+        failure_drivers=tuple(campaign_failure_drivers(
+            store.find_replay_results(campaign_id=campaign_id))),
     )
 
 
@@ -678,7 +723,7 @@ def _store_outcomes(
             metrics=outcome.metrics,
             parameters=ReplayParameters(source="campaign", kind=outcome.kind,
                                         schedule=outcome.parameters,
-                                        scenario_index=outcome.index),
+                                        scenario_index=outcome.index, plant=outcome.plant),
             status=outcome.status,
             reason=outcome.reason,
             trace=outcome.trace,

@@ -53,8 +53,23 @@ __all__ = [
     "raised_cosine_edges",
     "WALL_SIDES",
     "place_relative_walls",
+    "PLANT_PARAMETERS",
 ]
 
+#: Plant parameters a campaign can vary, with what each scales. Joint parameters come from
+#: :class:`compliant_demo.models.JointParams`; spring constants and lags from the mechanism.
+PLANT_PARAMETERS: dict[str, str] = {
+    "inertia": "link inertia about the axis, kg*m^2 (a coupled arm: the link's mass and inertia "
+               "tensor together)",
+    "gravity_mass": "link mass of the gravity load, kg (independent joints only)",
+    "viscous_damping": "viscous friction of the bearing, N*m*s/rad",
+    "coulomb_friction": "Coulomb friction torque, N*m",
+    "torque_noise_std": "torque-sensor noise, N*m",
+    "k1": "linear spring coefficient of the antagonistic springs, N*m/rad",
+    "k2": "quadratic spring coefficient of the antagonistic springs, N*m/rad^2",
+    "motor_time_constant": "lag of the antagonistic mechanism's motors, s",
+    "time_constant": "lag of the ideal mechanism's stiffness and damping, s",
+}
 NEVER = 2**62  # step index of "never": the stop of open-ended perturbations
 _Onset = Annotated[float, Field(ge=0, allow_inf_nan=False, description="Start time, s.")]
 _Duration = Annotated[float, Field(ge=0, description="How long it acts, s (inf: to the end).")]
@@ -594,6 +609,11 @@ class CampaignSpec(BaseModel):
         default="toward",
         description="Side of the motion relative walls are put on (place_relative_walls).",
     )
+    plant_variation: dict[str, Distribution] = Field(
+        default_factory=dict,
+        description="Plant parameter (PLANT_PARAMETERS) -> distribution of the factor on its "
+                    "nominal value, 1 (compliant_demo.plant_variation); empty: the nominal plant.",
+    )
 
     @model_validator(mode="after")
     def _names_known(self) -> CampaignSpec:
@@ -611,7 +631,24 @@ class CampaignSpec(BaseModel):
         for kind in self.magnitude:
             if "magnitude" not in _MODELS[kind].model_fields:
                 raise ValueError(f"magnitude given for {kind!r}, which has no magnitude")
+        for name, factor in self.plant_variation.items():
+            if name not in PLANT_PARAMETERS:
+                raise ValueError(f"plant_variation names {name!r}, not a plant parameter "
+                                 f"(known: {', '.join(PLANT_PARAMETERS)})")
+            if not _smallest(factor) > 0:
+                raise ValueError(f"plant_variation.{name} can draw the factor "
+                                 f"{_smallest(factor)}; factors must be > 0 (bound a normal "
+                                 "with low)")
         return self
+
+
+def _smallest(distribution: Uniform | LogUniform | Normal | Choice | Fixed) -> float:
+    """The smallest value ``distribution`` can draw."""
+    if isinstance(distribution, Choice):
+        return min(distribution.values)
+    if isinstance(distribution, Fixed):
+        return distribution.value
+    return distribution.low
 
 
 def load_campaign_yaml(path: str | Path) -> CampaignSpec:

@@ -213,11 +213,16 @@ class ReplaySetup:
             real_time=real_time,
         )
 
-    def simulator(self, schedules: Sequence[PerturbationSchedule] | None, seed: int) -> Simulator:
-        """A simulator of this setup for one scenario per schedule (one unperturbed if None)."""
+    def simulator(
+        self, schedules: Sequence[PerturbationSchedule] | None, seed: int,
+        plant: ReplayPlant | None = None,
+    ) -> Simulator:
+        """A simulator of this setup for one scenario per schedule (one unperturbed if None), on
+        ``plant`` (default: this setup's; the commands always come from this setup's)."""
+        target = self.plant if plant is None else plant
         return Simulator(
-            self.joints,
-            self.plant.mechanisms_for(self.skill.joints),
+            self.joints if plant is None else target.for_joints(self.skill.joints),
+            target.mechanisms_for(self.skill.joints),
             n_scenarios=1 if schedules is None else len(schedules),
             dt=self.dt,
             method=self.method,
@@ -225,15 +230,21 @@ class ReplaySetup:
             schedules=None if schedules is None else list(schedules),
             seed=int(seed),
             horizon_steps=self.n_steps,
-            chain=self.plant.chain,
+            chain=target.chain,
         )
 
     def simulate(
-        self, schedules: Sequence[PerturbationSchedule], seed: int, *, decimation: int = 1
+        self, schedules: Sequence[PerturbationSchedule], seed: int, *, decimation: int = 1,
+        plant: ReplayPlant | None = None,
     ) -> SimResult:
-        """Simulate one scenario per schedule under this setup's commands, in one batch."""
+        """Simulate one scenario per schedule under this setup's commands, in one batch.
+
+        ``plant`` (same joints) replaces the simulated plant while the commands stay those
+        computed on this setup's plant: a controller built on a nominal model driving a plant
+        whose parameters differ (:mod:`compliant_demo.plant_variation`).
+        """
         commands = self.commands
-        return self.simulator(schedules, seed).run(
+        return self.simulator(schedules, seed, plant).run(
             commands.equilibrium, commands.stiffness, commands.damping, decimation=decimation
         )
 

@@ -23,6 +23,7 @@ from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, check_schedule
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import load_skill
 from compliant_demo.plant import ReplayPlant, load_plant
+from compliant_demo.plant_variation import campaign_failure_drivers
 from compliant_demo.replay import ReplaySetup
 from compliant_demo.report import (
     ReportContent,
@@ -103,6 +104,27 @@ def _latest_campaign(store: DemoStore, skill_id: str) -> str | None:
 def _metric_column(results: Sequence[ReplayResultInfo], name: str) -> np.ndarray:
     return np.array([np.nan if r.metrics.get(name) is None else float(r.metrics[name])
                      for r in results])
+
+
+def _plant_variation_summary(results: Sequence[ReplayResultInfo], tables: list[ReportTable]
+                             ) -> list[tuple[str, str]]:
+    """With plant variation: a summary line naming the factor most associated with failure, and
+    a table of every factor (appended to ``tables``); nothing for a nominal campaign."""
+    drivers = campaign_failure_drivers(results)
+    if not drivers:
+        return []
+    tables.append(ReportTable(
+        "Plant parameters against failures",
+        ("parameter", "joint", "AUC", "rank-biserial", "failed", "passed"),
+        tuple((d.parameter, d.joint, d.auc, d.rank_biserial, d.n_failed, d.n_passed)
+              for d in drivers),
+        caption="Per drawn factor (parameter over its nominal value, per joint): the probability "
+                "that a failed scenario drew a larger factor than a passed one (AUC, 0.5: no "
+                "association) and 2*AUC - 1. A scenario fails when it left a limit or did not "
+                "recover from a perturbation that acted. A screening measure over one campaign, "
+                "not a causal estimate.",
+        empty_text="no factor"))
+    return [("plant variation", f"strongest with failure (screening): {drivers[0].describe()}")]
 
 
 def _representative_traces(
@@ -264,6 +286,7 @@ def collect_report_content(
              f"{recovered} (band {campaign.config.get('recovery_band')} rad)"),
             ("walls never touched",
              f"{int(untouched.sum())} scenario(s), reported as untouched, not as recovered"),
+            *_plant_variation_summary(results, tables),
             ("median goal error",
              f"{np.nanmedian(metrics['goal_error_max_rad']):.3g} rad"),
             ("median peak deviation",

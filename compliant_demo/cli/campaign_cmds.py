@@ -179,6 +179,11 @@ def _run(args: argparse.Namespace) -> int:
             "skipped": summary.n_skipped,
             "violations": sum(counts[1] for counts in by_kind.values()),
             "untouched_walls": untouched,
+            # with plant_variation: drawn factors against failure, strongest first (screening)
+            "failure_drivers": [
+                {"parameter": d.parameter, "joint": d.joint, "auc": d.auc,
+                 "rank_biserial": d.rank_biserial, "failed": d.n_failed, "passed": d.n_passed}
+                for d in summary.failure_drivers],
             "backend": summary.backend,
             "workers": summary.workers,
             "wall_s": summary.wall_s,
@@ -194,5 +199,8 @@ def _run(args: argparse.Namespace) -> int:
               "never touched")
         emit_table([{"kind": kind, "scenarios": c[0], "violations": c[1]}
                     for kind, c in sorted(by_kind.items())], ("kind", "scenarios", "violations"))
+        if summary.failure_drivers:
+            print(f"plant variation, strongest with failure (screening): "
+                  f"{summary.failure_drivers[0].describe()}")
         emit_caution()
     return 0
