@@ -170,6 +170,12 @@ class FailureDriver:
         """Rank-biserial correlation 2*AUC - 1, in [-1, 1] (Kerby, Compr. Psychol. 3, 2014)."""
         return 2.0 * self.auc - 1.0
 
+    def as_dict(self) -> dict[str, Any]:
+        """JSON-ready: parameter, joint, auc, rank_biserial, failed, passed."""
+        return {"parameter": self.parameter, "joint": self.joint, "auc": self.auc,
+                "rank_biserial": self.rank_biserial, "failed": self.n_failed,
+                "passed": self.n_passed}
+
     def describe(self) -> str:
         """One line: the parameter, joint, direction and measure, with the counts."""
         larger = "larger" if self.auc >= 0.5 else "smaller"

@@ -180,10 +180,7 @@ def _run(args: argparse.Namespace) -> int:
             "violations": sum(counts[1] for counts in by_kind.values()),
             "untouched_walls": untouched,
             # with plant_variation: drawn factors against failure, strongest first (screening)
-            "failure_drivers": [
-                {"parameter": d.parameter, "joint": d.joint, "auc": d.auc,
-                 "rank_biserial": d.rank_biserial, "failed": d.n_failed, "passed": d.n_passed}
-                for d in summary.failure_drivers],
+            "failure_drivers": [driver.as_dict() for driver in summary.failure_drivers],
             "backend": summary.backend,
             "workers": summary.workers,
             "wall_s": summary.wall_s,
