@@ -28,7 +28,7 @@ from typing import Any, Protocol
 import numpy as np
 
 from compliant_demo.evaluation import ACTUATOR_LOADS
-from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.exceptions import InvalidInputError, UnstableStepError
 from compliant_demo.perturbation import (
     CampaignSpec,
     Fixed,
@@ -266,8 +266,13 @@ class ReplayCampaign:
         outcomes = []
         for index, schedule in zip(indexes, schedules, strict=True):
             plant, factors = self.drawn_plant(index)
-            result = self.setup.simulate([schedule, UNPERTURBED], scenario_seed(self.seed, index),
-                                         decimation=self.decimation, plant=plant)
+            try:
+                result = self.setup.simulate([schedule, UNPERTURBED],
+                                             scenario_seed(self.seed, index),
+                                             decimation=self.decimation, plant=plant)
+            except UnstableStepError as exc:
+                raise UnstableStepError(
+                    f"scenario {index} on its drawn plant (factors {factors}): {exc}") from None
             outcome = self._outcome(result, 0, 1, index, schedule)
             outcomes.append(replace(outcome, metrics={**outcome.metrics, "plant_factors": factors},
                                     plant=plant.model_dump(mode="json")))

@@ -14,7 +14,7 @@ from scipy.stats import mannwhitneyu
 
 from compliant_demo.app.report_content import collect_report_content
 from compliant_demo.campaign import ReplayCampaign, run_campaign
-from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.exceptions import InvalidInputError, UnstableStepError
 from compliant_demo.perturbation import (
     PLANT_PARAMETERS,
     Fixed,
@@ -250,3 +250,11 @@ def test_a_factor_at_or_below_zero_is_refused_when_drawn():
     with pytest.raises(InvalidInputError,
                        match=r"plant_variation.k2: drew the factor -1.0; factors must be > 0"):
         vary_plant(load_plant(), {"k2": Fixed(value=-1.0)}, np.random.default_rng(0))
+
+
+def test_a_drawn_plant_too_stiff_for_the_step_names_its_scenario_and_factors():
+    # a link 10^4 times lighter: sqrt(K/I)*dt far above RK4's bound 2*sqrt(2) (common practice)
+    job = _varied({"inertia": Fixed(value=1e-4)})
+    with pytest.raises(UnstableStepError, match=r"scenario 0 on its drawn plant \(factors "
+                                                r"\{'inertia': \{'shoulder': 0.0001"):
+        job.run_batch(0, (0,))
