@@ -22,14 +22,14 @@ import socket
 import sys
 import time
 from collections.abc import Callable, Generator, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Protocol
 
 import numpy as np
 
 from compliant_demo.energy_tank import scenario_energy
 from compliant_demo.evaluation import ACTUATOR_LOADS
-from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.exceptions import InvalidInputError, UnstableStepError
 from compliant_demo.perturbation import (
     CampaignSpec,
     Fixed,
@@ -37,10 +37,18 @@ from compliant_demo.perturbation import (
     PerturbationSchedule,
     Uniform,
     draw_scenarios,
+    place_relative_walls,
 )
 from compliant_demo.plant import ReplayPlant
+from compliant_demo.plant_variation import (
+    FailureDriver,
+    campaign_failure_drivers,
+    check_plant_variation,
+    vary_plant,
+)
 from compliant_demo.primitives import Skill
 from compliant_demo.replay import UNPERTURBED, ReplaySetup
+from compliant_demo.sim import SimResult
 from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
@@ -73,15 +81,17 @@ class ScenarioOutcome:
     metrics : outcome metrics, SI units (see :func:`compliant_demo.evaluation.outcome_metrics`)
     parameters : the scenario's perturbation parameters, JSON-serialisable
     trace : named arrays of the decimated trace; ``t`` in s, angles in rad, torques in N*m
+    plant : the drawn plant the scenario ran on (JSON), or None: the campaign's nominal plant
     """
 
     index: int
     kind: str
     status: str
     reason: str | None
-    metrics: dict[str, float]
+    metrics: dict[str, Any]
     parameters: dict[str, Any]
     trace: dict[str, np.ndarray] = field(default_factory=dict)
+    plant: dict[str, Any] | None = None
 
 
 class CampaignJob(Protocol):
@@ -136,6 +146,7 @@ class ReplayCampaign:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
         if self.decimation < 1:
             raise InvalidInputError(f"decimation = {self.decimation}: must be >= 1")
+        check_plant_variation(self.setup.plant, self.spec.plant_variation)
 
     @property
     def skill(self) -> Skill:
@@ -161,7 +172,7 @@ class ReplayCampaign:
             "method": setup.method,
             "stratify_kinds": self.stratify_kinds,
             "recovery_band": self.recovery_band,
-            "spec": self.spec.model_dump(mode="json"),
+            "spec": self.spec.model_dump(mode="json", exclude=self._legacy_spec_fields()),
             "plant": setup.plant.model_dump(mode="json"),
         }
         # only when set, so campaigns stored before these settings existed still resume
@@ -172,6 +183,12 @@ class ReplayCampaign:
         if not setup.feedforward:
             config["feedforward"] = False
         return config
+
+    def _legacy_spec_fields(self) -> set[str]:
+        """Spec fields left out of the stored config: those at the value campaigns stored
+        before the field existed ran with, so their configs still match on resume."""
+        legacy: dict[str, Any] = {"wall_side": "as_drawn", "plant_variation": {}}
+        return {name for name, value in legacy.items() if getattr(self.spec, name) == value}
 
     @classmethod
     def from_config(cls, skill: Skill, config: Mapping[str, Any]) -> ReplayCampaign:
@@ -184,7 +201,8 @@ class ReplayCampaign:
                 f"campaign config: lacks {missing}; not a campaign of perturbed replays")
         try:
             plant = ReplayPlant.model_validate(config["plant"])
-            spec = CampaignSpec.model_validate(config["spec"])
+            # a spec stored before wall_side existed placed its walls as drawn
+            spec = CampaignSpec.model_validate({"wall_side": "as_drawn", **config["spec"]})
         except ValueError as exc:
             raise InvalidInputError(
                 f"campaign config: {str(exc).splitlines()[0]}") from None
@@ -212,40 +230,86 @@ class ReplayCampaign:
             kinds = sorted(spec.kinds)
             spec = spec.model_copy(update={"kinds": {kinds[index % len(kinds)]: 1.0}})
         (drawn,) = draw_scenarios(spec, 1, scenario_seed(self.seed, index))
+        drawn = place_relative_walls(drawn, self._path_excursion, self.spec.wall_side)
         return drawn.model_copy(update={"name": f"{self.spec.name}_{index:05d}"})
 
+    def _path_excursion(self, joint: int, onset_s: float, duration_s: float) -> float:
+        """Largest displacement of the commanded path of ``joint`` from its angle at ``onset_s``
+        within ``[onset_s, onset_s + duration_s]``, signed, rad."""
+        path = self.setup.rollout.position[:, joint]
+        first = min(round(onset_s / self.setup.dt), len(path) - 1)
+        last = len(path) - 1 if math.isinf(duration_s) else min(
+            round((onset_s + duration_s) / self.setup.dt), len(path) - 1)
+        moved = path[first:last + 1] - path[first]
+        return float(moved[int(np.argmax(np.abs(moved)))])
+
+    def drawn_plant(self, index: int) -> tuple[ReplayPlant, dict[str, dict[str, float]]]:
+        """The plant scenario ``index`` runs on and its factors per parameter and joint
+        (:func:`compliant_demo.plant_variation.vary_plant`); the same whatever the batching."""
+        rng = np.random.default_rng([int(self.seed), int(index), _PLANT_STREAM])
+        return vary_plant(self.setup.plant, self.spec.plant_variation, rng)
+
     def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
-        """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each."""
-        setup = self.setup
+        """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each.
+
+        With ``plant_variation`` each scenario runs on its own drawn plant together with its
+        unperturbed twin on that plant (deviations are then the perturbation's, not the plant's
+        difference from the nominal one), one simulation per scenario.
+        """
         schedules = [self.schedule(i) for i in indexes]
-        result = setup.simulate([*schedules, UNPERTURBED], scenario_seed(self.seed, batch_index),
-                                decimation=self.decimation)
-        nominal = result.q[:, -1, :]
+        if not self.spec.plant_variation:
+            result = self.setup.simulate([*schedules, UNPERTURBED],
+                                         scenario_seed(self.seed, batch_index),
+                                         decimation=self.decimation)
+            return [self._outcome(result, column, len(schedules), index, schedule)
+                    for column, (index, schedule) in enumerate(zip(indexes, schedules,
+                                                                   strict=True))]
+        outcomes = []
+        for index, schedule in zip(indexes, schedules, strict=True):
+            plant, factors = self.drawn_plant(index)
+            try:
+                result = self.setup.simulate([schedule, UNPERTURBED],
+                                             scenario_seed(self.seed, index),
+                                             decimation=self.decimation, plant=plant)
+            except UnstableStepError as exc:
+                raise UnstableStepError(
+                    f"scenario {index} on its drawn plant (factors {factors}): {exc}") from None
+            outcome = self._outcome(result, 0, 1, index, schedule)
+            outcomes.append(replace(outcome, metrics={**outcome.metrics, "plant_factors": factors},
+                                    plant=plant.model_dump(mode="json")))
+        return outcomes
+
+    def _outcome(self, result: SimResult, column: int, nominal_column: int, index: int,
+                 schedule: PerturbationSchedule) -> ScenarioOutcome:
+        """Metrics, limit check and trace of scenario ``column`` of ``result`` against the
+        unperturbed scenario ``nominal_column``."""
+        setup = self.setup
+        q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
+        metrics = setup.metrics(
+            result.t, q, result.q[:, nominal_column, :], result.tau_external[:, column, :],
+            tau_mechanism, schedule, scenario_energy(result, column),
+            recovery_band=self.recovery_band,
+        )
+        loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}
         # the command in force at recorded sample r (t = r * decimation * dt) is the one before
         steps = np.arange(len(result.t)) * self.decimation - 1
-        outcomes = []
-        for column, (index, schedule) in enumerate(zip(indexes, schedules, strict=True)):
-            q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
-            metrics = setup.metrics(
-                result.t, q, nominal, result.tau_external[:, column, :], tau_mechanism,
-                schedule, scenario_energy(result, column),
-                recovery_band=self.recovery_band,
-            )
-            loads = {name: getattr(result, name)[:, column, :] for name in ACTUATOR_LOADS}
-            reason = setup.violation(result.t, q, tau_mechanism, steps, loads)
-            trace = {"t": result.t.copy()}
-            trace.update({name: getattr(result, name)[:, column, :].copy()
-                          for name in TRACE_CHANNELS})
-            outcomes.append(ScenarioOutcome(
-                index=index,
-                kind=schedule.kind_label,
-                status="ok" if reason is None else "violation",
-                reason=reason,
-                metrics=metrics,
-                parameters=schedule.model_dump(mode="json"),
-                trace=trace,
-            ))
-        return outcomes
+        reason = setup.violation(result.t, q, tau_mechanism, steps, loads)
+        trace = {"t": result.t.copy()}
+        trace.update({name: getattr(result, name)[:, column, :].copy()
+                      for name in TRACE_CHANNELS})
+        return ScenarioOutcome(
+            index=index,
+            kind=schedule.kind_label,
+            status="ok" if reason is None else "violation",
+            reason=reason,
+            metrics=metrics,
+            parameters=schedule.model_dump(mode="json"),
+            trace=trace,
+        )
+
+
+#: Third entry of the seed of a scenario's plant draw: its own stream, apart from the schedule's.
+_PLANT_STREAM = 1
 
 
 @dataclass(frozen=True)
@@ -259,6 +323,11 @@ class CampaignSummary:
     n_run : scenarios run and stored by this call
     n_skipped : scenarios already in the store (resume) and not run again
     n_violations : scenarios of this call whose replay left a joint's torque or angle limits
+    n_untouched_walls : scenarios of this call with a wall the link never touched (status
+        ``"untouched"`` in their ``perturbation_status``, not counted as recovered)
+    failure_drivers : with ``plant_variation``, every drawn factor of the whole campaign ranked
+        by how it separates failed from passed scenarios, strongest first (a screening measure,
+        :func:`compliant_demo.plant_variation.failure_drivers`); empty otherwise
     wall_s : wall time of this call, s
     backend : ``"inline"``, ``"processes"`` or ``"dask"``
     workers : worker processes used (Dask: workers of the cluster)
@@ -272,6 +341,8 @@ class CampaignSummary:
     wall_s: float
     backend: str
     workers: int
+    n_untouched_walls: int = 0
+    failure_drivers: tuple[FailureDriver, ...] = ()
 
     @property
     def scenarios_per_s(self) -> float:
@@ -590,7 +661,7 @@ def run_campaign(
 
     if on_start is not None:
         on_start(campaign_id, to_run)
-    n_run = n_violations = 0
+    n_run = n_violations = n_untouched = 0
     try:
         for outcomes in results:
             fresh = [o for o in outcomes if o.index not in completed]
@@ -598,6 +669,7 @@ def run_campaign(
             completed.update(o.index for o in fresh)
             n_run += len(fresh)
             n_violations += sum(o.status != "ok" for o in fresh)
+            n_untouched += sum(o.metrics.get("n_untouched", 0) > 0 for o in fresh)
             if on_batch is not None:
                 on_batch(fresh)
     finally:
@@ -611,6 +683,9 @@ def run_campaign(
         wall_s=time.perf_counter() - started,
         backend=backend,
         workers=n_workers,
+        n_untouched_walls=n_untouched,
+        failure_drivers=tuple(campaign_failure_drivers(
+            store.find_replay_results(campaign_id=campaign_id))),
     )
 
 
@@ -654,7 +729,7 @@ def _store_outcomes(
             metrics=outcome.metrics,
             parameters=ReplayParameters(source="campaign", kind=outcome.kind,
                                         schedule=outcome.parameters,
-                                        scenario_index=outcome.index),
+                                        scenario_index=outcome.index, plant=outcome.plant),
             status=outcome.status,
             reason=outcome.reason,
             trace=outcome.trace,

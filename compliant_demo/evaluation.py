@@ -460,6 +460,7 @@ def outcome_metrics(
     settling_tolerance: float = SETTLING_TOLERANCE_RAD,
     energy_budget: float = TANK_INITIAL_ENERGY_J,
     tank_max_energy: float = TANK_MAX_ENERGY_J,
+    perturbation_acted: Sequence[bool] | None = None,
 ) -> dict[str, Any]:
     """Outcome of one replay from plain arrays.
 
@@ -487,6 +488,9 @@ def outcome_metrics(
         counts as settled, rad
     energy_budget, tank_max_energy : the energy tank's initial level and upper bound, J (see
         :func:`check_schedule`)
+    perturbation_acted : (n_perturbations,) bool, optional; False for a perturbation that never
+        acted on the link (a wall it never touched): its recovery is not measured and it is
+        never counted as recovered. Default: every perturbation acted.
 
     Returns
     -------
@@ -497,7 +501,9 @@ def outcome_metrics(
     (per joint), settling_tolerance_rad, settled (every joint within the tolerance),
     peak_deviation_rad (per joint),
     peak_deviation_time_s, recovery_band_rad, recovery_time_s (per perturbation, None when not
-    recovered inside its window), recovered (per perturbation), peak_interaction_torque_Nm,
+    recovered inside its window or it never acted), recovered (per perturbation),
+    perturbation_status (per perturbation: "recovered", "not_recovered" or "untouched"),
+    n_untouched, peak_interaction_torque_Nm,
     peak_mechanism_torque_Nm, energy_J (final value of each term), the energy keys of
     :func:`compliant_demo.energy_tank.replay_energy_metrics` (energy_injected_J: positive part
     of the injected power's integral, summed over joints; energy_injected_joint_J,
@@ -530,10 +536,18 @@ def outcome_metrics(
                                 f"{onsets.tolist()}, got {ends.tolist()}")
     if onsets.size and np.any(np.diff(onsets) < 0):
         raise InvalidInputError(f"perturbation_onsets: must be sorted, got {onsets.tolist()}")
+    acted = [True] * onsets.size if perturbation_acted is None else list(perturbation_acted)
+    if len(acted) != onsets.size:
+        raise InvalidInputError(f"perturbation_acted: need one flag per onset "
+                                f"{onsets.tolist()}, got {acted}")
 
     deviation = np.abs(position - nominal)
     worst = deviation.max(axis=1)
-    recovery = _recovery(times, worst, onsets, ends, recovery_band)
+    recovery = [r if on else None
+                for r, on in zip(_recovery(times, worst, onsets, ends, recovery_band), acted,
+                                 strict=True)]
+    status = ["untouched" if not on else "not_recovered" if r is None else "recovered"
+              for r, on in zip(recovery, acted, strict=True)]
     window = times >= times[-1] - settling_window_s
     error = np.abs(position[window] - target)
     goal_error = error.mean(axis=0)
@@ -553,6 +567,8 @@ def outcome_metrics(
         "recovery_band_rad": float(recovery_band),
         "recovery_time_s": recovery,
         "recovered": [r is not None for r in recovery],
+        "perturbation_status": status,
+        "n_untouched": status.count("untouched"),
         "peak_interaction_torque_Nm": np.abs(external).max(axis=0).tolist(),
         "peak_mechanism_torque_Nm": np.abs(mechanism).max(axis=0).tolist(),
     }

@@ -12,7 +12,7 @@ grid (see :func:`step_span`), so a simulator and a reference integrator agree on
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal, cast
 
@@ -50,8 +50,26 @@ __all__ = [
     "NEVER",
     "random_torque_coefficients",
     "random_torque_value",
+    "raised_cosine_edges",
+    "WALL_SIDES",
+    "place_relative_walls",
+    "PLANT_PARAMETERS",
 ]
 
+#: Plant parameters a campaign can vary, with what each scales. Joint parameters come from
+#: :class:`compliant_demo.models.JointParams`; spring constants and lags from the mechanism.
+PLANT_PARAMETERS: dict[str, str] = {
+    "inertia": "link inertia about the axis, kg*m^2 (a coupled arm: the link's mass and inertia "
+               "tensor together)",
+    "gravity_mass": "link mass of the gravity load, kg (independent joints only)",
+    "viscous_damping": "viscous friction of the bearing, N*m*s/rad",
+    "coulomb_friction": "Coulomb friction torque, N*m",
+    "torque_noise_std": "torque-sensor noise, N*m",
+    "k1": "linear spring coefficient of the antagonistic springs, N*m/rad",
+    "k2": "quadratic spring coefficient of the antagonistic springs, N*m/rad^2",
+    "motor_time_constant": "lag of the antagonistic mechanism's motors, s",
+    "time_constant": "lag of the ideal mechanism's stiffness and damping, s",
+}
 NEVER = 2**62  # step index of "never": the stop of open-ended perturbations
 _Onset = Annotated[float, Field(ge=0, allow_inf_nan=False, description="Start time, s.")]
 _Duration = Annotated[float, Field(ge=0, description="How long it acts, s (inf: to the end).")]
@@ -119,12 +137,18 @@ class Sinusoid(_Kind):
 
 
 class RandomTorque(_Kind):
-    """Band-limited random torque: a seeded Fourier series periodic over its duration.
+    """Band-limited random torque: a seeded Fourier series periodic over its duration, tapered.
 
-    The harmonics m/duration_s up to ``bandwidth_hz`` get Gaussian coefficients, scaled so the
-    RMS over the window is exactly ``magnitude`` (spectral representation of a random process,
-    Shinozuka and Deodatis, Appl. Mech. Rev. 44(4), 1991). ``seed`` None draws from the
-    simulation seed and scenario index.
+    The harmonics m/duration_s up to ``bandwidth_hz`` get Gaussian coefficients (spectral
+    representation of a random process, Shinozuka and Deodatis, Appl. Mech. Rev. 44(4), 1991).
+    The series is multiplied by a Tukey (tapered-cosine) window (Harris, Proc. IEEE 66(1),
+    1978): raised-cosine edges that together span ``taper_fraction`` of the duration, so the
+    torque rises from zero and falls back to zero instead of switching on and off with a step.
+    The coefficients are scaled so the RMS over the untapered middle is exactly ``magnitude``.
+    The default 0.2 (each edge 10 % of the window: 50-150 ms for windows of 0.5-1.5 s, at
+    least the half period of the band's highest harmonic at 5 Hz and above) keeps 80 % of the
+    window at full strength (a common Tukey choice; a value from practice, not a standard).
+    ``seed`` None draws from the simulation seed and scenario index.
     """
 
     kind: Literal["random_torque"] = "random_torque"
@@ -133,6 +157,10 @@ class RandomTorque(_Kind):
     sign: _Sign = 1
     bandwidth_hz: _Positive = Field(5.0, description="Highest frequency present, Hz.")
     seed: int | None = Field(None, ge=0, description="Seed of the coefficients.")
+    taper_fraction: float = Field(
+        0.2, ge=0, lt=1, allow_inf_nan=False,
+        description="Fraction of the duration in the two raised-cosine edges, 1 (0: steps).",
+    )
 
 
 class Wall(_Kind):
@@ -152,6 +180,24 @@ class Wall(_Kind):
         False,
         description="Position counts from the link angle at onset (an obstacle in the path).",
     )
+
+    def touched(self, t: np.ndarray, q: np.ndarray) -> bool:
+        """Whether the joint went beyond the surface at a sample inside the wall's window.
+
+        Parameters
+        ----------
+        t : (n_samples,) s; q : (n_samples,) rad, the angle of the wall's joint
+
+        Notes
+        -----
+        A relative surface counts from the angle interpolated at ``onset_s``. Only recorded
+        samples are looked at: a graze shorter than the sample spacing can pass unseen.
+        """
+        times, angle = np.asarray(t, dtype=float), np.asarray(q, dtype=float)
+        surface = self.position + (float(np.interp(self.onset_s, times, angle))
+                                   if self.relative else 0.0)
+        inside = (times >= self.onset_s) & (times <= self.onset_s + self.duration_s)
+        return bool(np.any((angle[inside] - surface) * self.sign > 0))
 
 
 class Hold(_Kind):
@@ -190,15 +236,30 @@ class PerturbationSchedule(BaseModel):
         """The kinds joined by "+" (``"wall+impulse"``), or ``"none"`` for an empty schedule."""
         return "+".join(self.kinds) or "none"
 
+    def _spans(self, end_s: float) -> list[tuple[float, float, Perturbation]]:
+        """(onset, end clipped to ``end_s``, perturbation) of those starting by ``end_s``, s,
+        sorted by onset and end (stable)."""
+        spans = [(p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s), p)
+                 for p in self.perturbations if p.onset_s <= end_s]
+        return sorted(spans, key=lambda span: span[:2])
+
     def windows(self, end_s: float) -> tuple[list[float], list[float]]:
         """Sorted ``(onsets, ends)`` of the perturbations that start by ``end_s``, s; ends are
         clipped to ``end_s`` (an impulse's window is its onset)."""
-        spans = sorted(
-            (p.onset_s, min(p.onset_s + getattr(p, "duration_s", 0.0), end_s))
-            for p in self.perturbations
-            if p.onset_s <= end_s
-        )
-        return [a for a, _ in spans], [b for _, b in spans]
+        spans = self._spans(end_s)
+        return [a for a, _, _ in spans], [b for _, b, _ in spans]
+
+    def acted(self, t: np.ndarray, q: np.ndarray) -> list[bool]:
+        """Per window of :meth:`windows` (same order): False for a wall the link never touched
+        (:meth:`Wall.touched`), True for every other perturbation.
+
+        Parameters
+        ----------
+        t : (n_samples,) s; q : (n_samples, n_joints) rad
+        """
+        angles = np.asarray(q, dtype=float)
+        return [not isinstance(p, Wall) or p.touched(t, angles[:, p.joint])
+                for _, _, p in self._spans(float(t[-1]))]
 
 
 def _check_kind(data: object, where: str) -> type[_Kind]:
@@ -298,26 +359,115 @@ def random_torque_coefficients(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Fourier coefficients of a band-limited random torque over one period.
 
+    Scaled so the series' RMS over the untapered middle ``[r, period_s - r]`` of the window,
+    r = taper_fraction * period_s / 2, is exactly ``magnitude`` (:func:`_mean_square`).
+
     Returns
     -------
     frequencies : (m,) array, Hz; the harmonics k/period_s, k = 1..m, up to bandwidth_hz
-    coefficients : (m,) complex array, N*m; the torque is Re(sum c_k exp(2j*pi*f_k*t))
+    coefficients : (m,) complex array, N*m; the torque is Re(sum c_k exp(2j*pi*f_k*t)) times
+        the window's :func:`raised_cosine_edges`
     """
     n_harmonics = max(1, int(math.floor(perturbation.bandwidth_hz * period_s)))
     frequencies = np.arange(1, n_harmonics + 1) / period_s
     coefficients = rng.standard_normal(n_harmonics) + 1j * rng.standard_normal(n_harmonics)
-    # mean square of Re(c exp(i w t)) over a period is |c|^2 / 2
-    rms = math.sqrt(float(np.sum(np.abs(coefficients) ** 2)) / 2.0)
+    ramp = 0.5 * perturbation.taper_fraction * period_s
+    rms = math.sqrt(_mean_square(frequencies, coefficients, ramp, period_s - ramp))
     return frequencies, coefficients * (perturbation.sign * perturbation.magnitude / rms)
+
+
+def _mean_square(
+    frequencies: np.ndarray, coefficients: np.ndarray, start: float, stop: float
+) -> float:
+    """Exact mean of x(t)^2 over [start, stop] for x = Re(sum c_k exp(2j*pi*f_k*t)).
+
+    Notes
+    -----
+    x^2 = (Re(z^2) + |z|^2) / 2 with z = sum c_k exp(2j*pi*f_k*t), and the mean of
+    exp(2j*pi*f*t) over an interval of length L centred on m is exp(2j*pi*f*m) * sinc(f*L)
+    (normalised sinc; common practice). Over whole periods it reduces to sum |c_k|^2 / 2
+    (Parseval).
+    """
+    length, centre = stop - start, 0.5 * (start + stop)
+    total = 0.0
+    for offsets, products in (
+        (np.add.outer(frequencies, frequencies), np.outer(coefficients, coefficients)),
+        (np.subtract.outer(frequencies, frequencies),
+         np.outer(coefficients, coefficients.conj())),
+    ):
+        mean_phase = np.exp(2j * np.pi * offsets * centre) * np.sinc(offsets * length)
+        total += float(np.real(np.sum(products * mean_phase)))
+    return 0.5 * total
 
 
 def random_torque_value(
     frequencies: np.ndarray, coefficients: np.ndarray, t_since_onset: np.ndarray | float
 ) -> np.ndarray:
-    """Evaluate the series of :func:`random_torque_coefficients` at times since onset (s), N*m."""
+    """Evaluate the series of :func:`random_torque_coefficients` at times since onset (s), N*m
+    (untapered: multiply by :func:`raised_cosine_edges` for the applied torque)."""
     t = np.asarray(t_since_onset, dtype=float)
     phase = np.exp(2j * np.pi * np.multiply.outer(t, frequencies))
     return np.real(phase @ coefficients)
+
+
+def raised_cosine_edges(
+    t_since_onset: np.ndarray | float, length_s: float, ramp_s: float, height: float = 1.0
+) -> np.ndarray:
+    """Window of a perturbation of ``length_s`` with raised-cosine edges of ``ramp_s`` each.
+
+    ``height * (1 - cos(pi * e)) / 2`` with e = min(t, length_s - t) / ramp_s clipped to
+    [0, 1]: 0 at both ends, ``height`` between the edges (a Tukey window; ``ramp_s`` 0 gives
+    ``height`` throughout). Times in s; the result has the unit of ``height``.
+    """
+    t = np.asarray(t_since_onset, dtype=float)
+    if ramp_s == 0:
+        return np.full(np.shape(t), height)
+    edge = np.clip(np.minimum(t, length_s - t) / ramp_s, 0.0, 1.0)
+    return height * 0.5 * (1.0 - np.cos(np.pi * edge))
+
+
+#: Where a campaign puts its relative walls (:func:`place_relative_walls`).
+WALL_SIDES: tuple[str, ...] = ("toward", "away", "both", "as_drawn")
+
+
+def place_relative_walls(
+    schedule: PerturbationSchedule,
+    motion: Callable[[int, float, float], float],
+    side: str,
+) -> PerturbationSchedule:
+    """The schedule with its relative walls on the side the joint moves toward (or away from).
+
+    Parameters
+    ----------
+    schedule : drawn schedule
+    motion : ``(joint, onset_s, duration_s) -> displacement`` of the unperturbed motion over the
+        wall's window (rad); only its sign is used: the direction the joint goes
+    side : ``"toward"``: each relative wall sits ``|position|`` from the link's angle at onset
+        in the direction it goes and blocks further motion that way; ``"away"``: as far on the
+        other side, blocking a return; ``"both"``: toward when the drawn sign is +1, away when
+        it is -1; ``"as_drawn"``: sign and position as drawn (campaigns stored before this
+        setting)
+
+    Notes
+    -----
+    The direction is that of the motion over the window rather than the velocity at onset: a
+    joint that turns round just after the onset (near a turning point of the path) would
+    otherwise get a wall on the side it leaves. A displacement of exactly 0 keeps the drawn
+    sign. Walls with absolute positions are left as they are.
+    """
+    if side not in WALL_SIDES:
+        raise InvalidInputError(f"side = {side!r}: expected one of {', '.join(WALL_SIDES)}")
+    if side == "as_drawn":
+        return schedule
+    placed: list[Perturbation] = []
+    for p in schedule.perturbations:
+        if isinstance(p, Wall) and p.relative:
+            moving = int(np.sign(motion(p.joint, p.onset_s, p.duration_s))) or p.sign
+            toward = side == "toward" or (side == "both" and p.sign == 1)
+            sign = moving if toward else -moving
+            p = p.model_copy(update={"sign": sign, "position": sign * abs(p.position)})
+        placed.append(p)
+    return schedule.model_copy(update={"perturbations": placed})
 
 
 class Uniform(BaseModel):
@@ -433,7 +583,9 @@ class CampaignSpec(BaseModel):
     kind (weights ``kinds``), joint (uniform over ``joints``), onset, duration (per kind, else
     ``duration_s``), magnitude (per kind), sign (+1 with ``positive_sign_probability``) and any
     further field in ``fields[kind]`` (e.g. a wall's ``position``, a sinusoid's
-    ``frequency_hz``). Fields not drawn keep the kind's default.
+    ``frequency_hz``). Fields not drawn keep the kind's default. A campaign then puts relative
+    walls on the side ``wall_side`` of the motion (:func:`place_relative_walls`; the drawn
+    position's magnitude is kept).
     """
 
     model_config = ConfigDict(extra="forbid", frozen=True)
@@ -452,6 +604,17 @@ class CampaignSpec(BaseModel):
     positive_sign_probability: float = Field(0.5, ge=0, le=1)
     fields: dict[str, dict[str, Distribution]] = Field(default_factory=dict)
 
+    # walls and plant variation: where relative walls go, and model uncertainty
+    wall_side: Literal["toward", "away", "both", "as_drawn"] = Field(
+        default="toward",
+        description="Side of the motion relative walls are put on (place_relative_walls).",
+    )
+    plant_variation: dict[str, Distribution] = Field(
+        default_factory=dict,
+        description="Plant parameter (PLANT_PARAMETERS) -> distribution of the factor on its "
+                    "nominal value, 1 (compliant_demo.plant_variation); empty: the nominal plant.",
+    )
+
     @model_validator(mode="after")
     def _names_known(self) -> CampaignSpec:
         for table in ("kinds", "duration_s", "magnitude", "fields"):
@@ -468,7 +631,24 @@ class CampaignSpec(BaseModel):
         for kind in self.magnitude:
             if "magnitude" not in _MODELS[kind].model_fields:
                 raise ValueError(f"magnitude given for {kind!r}, which has no magnitude")
+        for name, factor in self.plant_variation.items():
+            if name not in PLANT_PARAMETERS:
+                raise ValueError(f"plant_variation names {name!r}, not a plant parameter "
+                                 f"(known: {', '.join(PLANT_PARAMETERS)})")
+            if not _smallest(factor) > 0:
+                raise ValueError(f"plant_variation.{name} can draw the factor "
+                                 f"{_smallest(factor)}; factors must be > 0 (bound a normal "
+                                 "with low)")
         return self
+
+
+def _smallest(distribution: Uniform | LogUniform | Normal | Choice | Fixed) -> float:
+    """The smallest value ``distribution`` can draw."""
+    if isinstance(distribution, Choice):
+        return min(distribution.values)
+    if isinstance(distribution, Fixed):
+        return distribution.value
+    return distribution.low
 
 
 def load_campaign_yaml(path: str | Path) -> CampaignSpec:

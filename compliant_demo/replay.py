@@ -214,11 +214,16 @@ class ReplaySetup:
             real_time=real_time,
         )
 
-    def simulator(self, schedules: Sequence[PerturbationSchedule] | None, seed: int) -> Simulator:
-        """A simulator of this setup for one scenario per schedule (one unperturbed if None)."""
+    def simulator(
+        self, schedules: Sequence[PerturbationSchedule] | None, seed: int,
+        plant: ReplayPlant | None = None,
+    ) -> Simulator:
+        """A simulator of this setup for one scenario per schedule (one unperturbed if None), on
+        ``plant`` (default: this setup's; the commands always come from this setup's)."""
+        target = self.plant if plant is None else plant
         return Simulator(
-            self.joints,
-            self.plant.mechanisms_for(self.skill.joints),
+            self.joints if plant is None else target.for_joints(self.skill.joints),
+            target.mechanisms_for(self.skill.joints),
             n_scenarios=1 if schedules is None else len(schedules),
             dt=self.dt,
             method=self.method,
@@ -226,15 +231,21 @@ class ReplaySetup:
             schedules=None if schedules is None else list(schedules),
             seed=int(seed),
             horizon_steps=self.n_steps,
-            chain=self.plant.chain,
+            chain=target.chain,
         )
 
     def simulate(
-        self, schedules: Sequence[PerturbationSchedule], seed: int, *, decimation: int = 1
+        self, schedules: Sequence[PerturbationSchedule], seed: int, *, decimation: int = 1,
+        plant: ReplayPlant | None = None,
     ) -> SimResult:
-        """Simulate one scenario per schedule under this setup's commands, in one batch."""
+        """Simulate one scenario per schedule under this setup's commands, in one batch.
+
+        ``plant`` (same joints) replaces the simulated plant while the commands stay those
+        computed on this setup's plant: a controller built on a nominal model driving a plant
+        whose parameters differ (:mod:`compliant_demo.plant_variation`).
+        """
         commands = self.commands
-        return self.simulator(schedules, seed).run(
+        return self.simulator(schedules, seed, plant).run(
             commands.equilibrium, commands.stiffness, commands.damping, decimation=decimation
         )
 
@@ -263,14 +274,18 @@ class ReplaySetup:
     ) -> dict[str, Any]:
         """Outcome metrics of one replay (see :func:`compliant_demo.evaluation.outcome_metrics`)
         plus one number per metric for distributions: the worst joint and the slowest recovery
-        (None when a perturbation was not recovered from, or there was none)."""
+        among the perturbations that acted (None when one of them was not recovered from, or
+        none acted: no perturbation, or only walls the link never touched)."""
         onsets, ends = ([], []) if schedule is None else schedule.windows(float(t[-1]))
         metrics = outcome_metrics(
             t, q, nominal, tau_external, tau_mechanism, self.rollout.position[-1],
             perturbation_onsets=onsets, perturbation_ends=ends, energy=energy,
             joints=self.joints, recovery_band=recovery_band,
+            perturbation_acted=None if schedule is None else schedule.acted(t, q),
         )
-        recovery = metrics["recovery_time_s"]
+        recovery = [r for r, status in zip(metrics["recovery_time_s"],
+                                           metrics["perturbation_status"], strict=True)
+                    if status != "untouched"]
         metrics.update({
             "peak_deviation_max_rad": float(max(metrics["peak_deviation_rad"])),
             "peak_interaction_torque_max_Nm": float(max(metrics["peak_interaction_torque_Nm"])),

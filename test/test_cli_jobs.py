@@ -196,6 +196,9 @@ def test_campaign_runs_every_kind_resumes_and_reports(store, tmp_path, capsys):
     ]
     assert report["summary"]["within limits"] == f"{14 - data['violations']} of 14"
     assert data["campaign_id"] in report["summary"]["campaign"]
+    # scenarios with a wall never touched: the same count in the campaign's and the report's
+    assert report["summary"]["walls never touched"].startswith(
+        f"{data['untouched_walls']} scenario(s)")
 
 
 @pytest.mark.parametrize("command", ["campaign", "replay", "report", "tour"])

@@ -462,3 +462,18 @@ def test_settling_options_are_checked(option, match):
     q = np.zeros((11, 1))
     with pytest.raises(InvalidInputError, match=match):
         outcome_metrics(t, q, q, q, q, [0.0], **option)
+
+
+def test_a_perturbation_that_never_acted_is_untouched_not_recovered():
+    t, q, nominal, tau_ext, tau_mech = _decay_case()
+    metrics = outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
+                              perturbation_onsets=[0.5, 1.0], perturbation_ends=[0.8, 1.2],
+                              recovery_band=0.01, perturbation_acted=[False, True])
+    # the first window (0.5-1.0 s) holds no deviation: it would read as recovered at once
+    assert metrics["perturbation_status"] == ["untouched", "recovered"]
+    assert metrics["recovered"] == [False, True] and metrics["n_untouched"] == 1
+    assert metrics["recovery_time_s"][0] is None
+    assert metrics["recovery_time_s"][1] == pytest.approx(0.25 * np.log(30.0), abs=1e-3)
+    with pytest.raises(InvalidInputError, match=r"perturbation_acted: need one flag per onset"):
+        outcome_metrics(t, q, nominal, tau_ext, tau_mech, goal=[0.0, 0.5],
+                        perturbation_onsets=[0.5], perturbation_acted=[True, False])

@@ -23,11 +23,13 @@ from compliant_demo.perturbation import (
     TorqueStep,
     TorqueWindow,
     Uniform,
+    Wall,
     draw_scenarios,
     load_campaign_yaml,
     load_schedule_yaml,
     load_schedules_yaml,
     perturbation_from_mapping,
+    place_relative_walls,
     random_torque_coefficients,
     random_torque_value,
     step_span,
@@ -110,7 +112,7 @@ def test_step_span_snaps_to_the_grid():
 
 
 def test_random_torque_has_exact_rms_and_no_power_above_its_band():
-    p = RandomTorque(duration_s=2.0, magnitude=0.4, bandwidth_hz=5.0)
+    p = RandomTorque(duration_s=2.0, magnitude=0.4, bandwidth_hz=5.0, taper_fraction=0.0)
     freqs, coefs = random_torque_coefficients(p, 2.0, np.random.default_rng(3))
     t = np.arange(4000) * 5e-4
     x = random_torque_value(freqs, coefs, t)
@@ -120,6 +122,37 @@ def test_random_torque_has_exact_rms_and_no_power_above_its_band():
     f = np.fft.rfftfreq(t.size, 5e-4)
     assert spectrum[f > 5.0 + 1e-9].sum() <= 1e-20 * spectrum.sum()
     assert freqs.max() <= 5.0
+
+
+@pytest.mark.parametrize(("fraction", "seed"), [(0.2, 3), (0.5, 8), (0.05, 21)])
+def test_random_torque_is_tapered_to_zero_with_the_set_rms_in_its_middle(fraction, seed):
+    length, dt = 1.0, 1e-3
+    p = RandomTorque(duration_s=length, magnitude=0.7, bandwidth_hz=8.0, seed=seed,
+                     taper_fraction=fraction)
+    (term,) = compile_schedules([PerturbationSchedule(perturbations=[p])], 1, [0.05], dt,
+                                seed=0).terms
+    # the first and last stage times of the window: the Tukey window is exactly 0 there
+    assert abs(float(term.profile(np.array(0.0)))) < 1e-12
+    assert abs(float(term.profile(np.array(length)))) < 1e-12
+    # RMS over the untapered middle [r, T - r], r = fraction*T/2, by the midpoint rule on a
+    # fine grid: the rule's error is O(h^2) * max|x''| / 24 (common practice), far below 1e-6
+    ramp, n = 0.5 * fraction * length, 200_000
+    h = (length - 2 * ramp) / n
+    t = ramp + (np.arange(n) + 0.5) * h
+    assert math.sqrt(np.mean(term.profile(t) ** 2)) == pytest.approx(0.7, rel=1e-6)
+    # the edges are raised cosines (1 - cos(pi*t/r))/2 times the untapered series
+    freqs, coefs = random_torque_coefficients(p, length, np.random.default_rng(seed))
+    edge = np.linspace(0.0, ramp, 50)
+    expected = random_torque_value(freqs, coefs, edge) * 0.5 * (1 - np.cos(np.pi * edge / ramp))
+    assert np.allclose(term.profile(edge), expected, rtol=0, atol=1e-12)
+    assert np.allclose(term.profile(length - edge), random_torque_value(
+        freqs, coefs, length - edge) * 0.5 * (1 - np.cos(np.pi * edge / ramp)), rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("bad", [-0.1, 1.0, float("nan")])
+def test_random_torque_taper_outside_zero_to_one_is_refused(bad):
+    with pytest.raises(InvalidInputError, match=rf"taper_fraction' = {bad}"):
+        perturbation_from_mapping({"kind": "random_torque", "taper_fraction": bad})
 
 
 def test_random_torque_is_seeded_per_scenario():
@@ -208,3 +241,63 @@ def test_draw_that_violates_a_kind_is_named():
         draw_scenarios(spec, 50, seed=1)
     with pytest.raises(InvalidInputError, match="n_scenarios = -1"):
         draw_scenarios(spec, -1, seed=1)
+
+
+# ---------------------------------------------------------------- walls on the side of motion
+def _walls(*walls: Wall) -> PerturbationSchedule:
+    return PerturbationSchedule(perturbations=list(walls))
+
+
+@pytest.mark.parametrize(("side", "drawn_sign", "moved", "expected_sign"), [
+    ("toward", 1, 0.4, 1), ("toward", 1, -0.4, -1), ("toward", -1, 0.4, 1),
+    ("away", 1, 0.4, -1), ("away", -1, -0.4, 1),
+    ("both", 1, -0.4, -1), ("both", -1, -0.4, 1),
+    ("toward", -1, 0.0, -1),  # no motion: the drawn sign stands for the direction
+])
+def test_relative_walls_go_on_the_side_of_the_motion(side, drawn_sign, moved, expected_sign):
+    drawn = _walls(Wall(onset_s=0.5, duration_s=0.4, joint=1, position=0.05, sign=drawn_sign,
+                        relative=True),
+                   Wall(onset_s=0.7, position=0.3, sign=drawn_sign))
+    asked = []
+
+    def direction(joint: int, onset: float, duration: float) -> float:
+        asked.append((joint, onset, duration))
+        return moved
+
+    placed = place_relative_walls(drawn, direction, side)
+    wall, absolute = placed.perturbations
+    assert asked == [(1, 0.5, 0.4)]  # only the relative wall asks for the motion
+    # +1 blocks q > surface, so the surface sits sign*|position| from the angle at onset
+    assert wall.sign == expected_sign and wall.position == expected_sign * 0.05
+    assert absolute == drawn.perturbations[1]
+    assert place_relative_walls(drawn, direction, "as_drawn") == drawn
+
+
+def test_an_unknown_wall_side_is_refused():
+    with pytest.raises(InvalidInputError, match=r"side = 'left': expected one of toward"):
+        place_relative_walls(_walls(), lambda joint, onset, duration: 1.0, "left")
+
+
+def test_wall_side_in_a_campaign_yaml_is_checked(tmp_path):
+    path = tmp_path / "campaign.yaml"
+    path.write_text("kinds: {wall: 1}\nwall_side: sideways\n", encoding="utf-8")
+    with pytest.raises(InvalidInputError, match=r"field 'wall_side' = 'sideways'"):
+        load_campaign_yaml(path)
+    path.write_text("kinds: {wall: 1}\nwall_side: both\n", encoding="utf-8")
+    assert load_campaign_yaml(path).wall_side == "both"
+    assert CampaignSpec(kinds={"wall": 1.0}).wall_side == "toward"  # walls in the path
+
+
+def test_a_wall_is_touched_only_when_the_angle_crosses_its_surface_in_its_window():
+    # q = 0.5 t rises through the window [0.2, 0.4] s: from 0.1 to 0.2 rad (closed form)
+    t = np.linspace(0.0, 1.0, 1001)
+    q = np.column_stack([0.5 * t, np.zeros_like(t)])
+    ahead = Wall(onset_s=0.2, duration_s=0.2, position=0.05, relative=True)
+    behind = Wall(onset_s=0.2, duration_s=0.2, position=-0.05, sign=-1, relative=True)
+    late = Wall(onset_s=0.2, duration_s=0.2, position=0.21)  # absolute, reached at 0.42 s
+    assert ahead.touched(t, q[:, 0]) and not behind.touched(t, q[:, 0])
+    assert not late.touched(t, q[:, 0])
+    schedule = PerturbationSchedule(perturbations=[late, Impulse(onset_s=0.1), ahead])
+    # in the order of windows(): by onset, then end
+    assert schedule.windows(1.0) == ([0.1, 0.2, 0.2], [0.1, 0.4, 0.4])
+    assert schedule.acted(t, q) == [True, False, True]

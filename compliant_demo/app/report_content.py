@@ -23,6 +23,7 @@ from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import load_skill
 from compliant_demo.plant import ReplayPlant, load_plant
+from compliant_demo.plant_variation import campaign_failure_drivers
 from compliant_demo.readiness import (
     Criteria,
     Verdict,
@@ -138,6 +139,27 @@ def _latest_campaign(store: DemoStore, skill_id: str) -> str | None:
 def _metric_column(results: Sequence[ReplayResultInfo], name: str) -> np.ndarray:
     return np.array([np.nan if r.metrics.get(name) is None else float(r.metrics[name])
                      for r in results])
+
+
+def _plant_variation_summary(results: Sequence[ReplayResultInfo], tables: list[ReportTable]
+                             ) -> list[tuple[str, str]]:
+    """With plant variation: a summary line naming the factor most associated with failure, and
+    a table of every factor (appended to ``tables``); nothing for a nominal campaign."""
+    drivers = campaign_failure_drivers(results)
+    if not drivers:
+        return []
+    tables.append(ReportTable(
+        "Plant parameters against failures",
+        ("parameter", "joint", "AUC", "rank-biserial", "failed", "passed"),
+        tuple((d.parameter, d.joint, d.auc, d.rank_biserial, d.n_failed, d.n_passed)
+              for d in drivers),
+        caption="Per drawn factor (parameter over its nominal value, per joint): the probability "
+                "that a failed scenario drew a larger factor than a passed one (AUC, 0.5: no "
+                "association) and 2*AUC - 1. A scenario fails when it left a limit or did not "
+                "recover from a perturbation that acted. A screening measure over one campaign, "
+                "not a causal estimate.",
+        empty_text="no factor"))
+    return [("plant variation", f"strongest with failure (screening): {drivers[0].describe()}")]
 
 
 def _representative_traces(
@@ -298,14 +320,22 @@ def collect_report_content(
                   for r in violations),
             caption="Scenarios whose mechanism torque or joint angle left the joint's limits.",
             empty_text="no scenario left the joint limits"))
-        recovered = np.isfinite(metrics["recovery_time_max_s"]).mean()
+        # scenarios whose only perturbations were walls never touched test no recovery
+        untouched = np.array([r.metrics.get("n_untouched", 0) > 0 for r in results])
+        acted = np.array([len(r.metrics.get("recovered", [])) > r.metrics.get("n_untouched", 0)
+                          for r in results])
+        recovered = (f"{100 * np.isfinite(metrics['recovery_time_max_s'][acted]).mean():.0f} %"
+                     if acted.any() else "no perturbation acted")
         summary += [
             ("campaign", f"{campaign_id}: {len(results)} scenarios over "
                          f"{len(set(kinds.tolist()))} perturbation kinds, seed "
                          f"{campaign.config.get('seed')}"),
             ("within limits", f"{len(results) - len(violations)} of {len(results)}"),
             ("recovered within the band",
-             f"{100 * recovered:.0f} % (band {campaign.config.get('recovery_band')} rad)"),
+             f"{recovered} (band {campaign.config.get('recovery_band')} rad)"),
+            ("walls never touched",
+             f"{int(untouched.sum())} scenario(s), reported as untouched, not as recovered"),
+            *_plant_variation_summary(results, tables),
             ("median goal error",
              f"{np.nanmedian(metrics['goal_error_max_rad']):.3g} rad"),
             ("median peak deviation",

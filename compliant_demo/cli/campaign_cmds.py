@@ -174,6 +174,8 @@ def _run(args: argparse.Namespace) -> int:
         counts = by_kind.setdefault(result.parameters.kind, [0, 0])
         counts[0] += 1
         counts[1] += result.status != "ok"
+    # scenarios with a wall the link never touched: reported as such, not as recovered
+    untouched = sum(result.metrics.get("n_untouched", 0) > 0 for result in results)
     if args.json:
         emit_json({
             "campaign_id": summary.campaign_id,
@@ -183,6 +185,9 @@ def _run(args: argparse.Namespace) -> int:
             "run": summary.n_run,
             "skipped": summary.n_skipped,
             "violations": sum(counts[1] for counts in by_kind.values()),
+            "untouched_walls": untouched,
+            # with plant_variation: drawn factors against failure, strongest first (screening)
+            "failure_drivers": [driver.as_dict() for driver in summary.failure_drivers],
             "backend": summary.backend,
             "workers": summary.workers,
             "wall_s": summary.wall_s,
@@ -198,9 +203,13 @@ def _run(args: argparse.Namespace) -> int:
         print(f"campaign {summary.campaign_id} on the {job.plant.describe()}: "
               f"{summary.n_run} scenarios run, "
               f"{summary.n_skipped} already stored, {summary.wall_s:.1f} s on "
-              f"{summary.backend} ({summary.workers} workers)")
+              f"{summary.backend} ({summary.workers} workers); {untouched} with a wall "
+              "never touched")
         emit_table([{"kind": kind, "scenarios": c[0], "violations": c[1]}
                     for kind, c in sorted(by_kind.items())], ("kind", "scenarios", "violations"))
+        if summary.failure_drivers:
+            print(f"plant variation, strongest with failure (screening): "
+                  f"{summary.failure_drivers[0].describe()}")
         print_verdict(verdict)
         emit_caution()
     return 0

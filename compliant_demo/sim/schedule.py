@@ -22,6 +22,7 @@ from compliant_demo.perturbation import (
     TorqueStep,
     TorqueWindow,
     Wall,
+    raised_cosine_edges,
     random_torque_coefficients,
     random_torque_value,
     step_span,
@@ -137,23 +138,18 @@ def _constant(value: float) -> Callable[[np.ndarray], np.ndarray]:
 
 
 def _window(value: float, ramp: float, length: float) -> Callable[[np.ndarray], np.ndarray]:
-    def profile(t: np.ndarray) -> np.ndarray:
-        if ramp == 0:
-            return np.full(np.shape(t), value)
-        edge = np.clip(np.minimum(t, length - t) / ramp, 0.0, 1.0)
-        return value * 0.5 * (1.0 - np.cos(np.pi * edge))
-
-    return profile
+    return lambda t: raised_cosine_edges(t, length, ramp, value)
 
 
 def _sine(amplitude: float, frequency: float, phase: float) -> Callable[[np.ndarray], np.ndarray]:
     return lambda t: amplitude * np.sin(2 * np.pi * frequency * t + phase)
 
 
-def _series(
-    frequencies: np.ndarray, coefficients: np.ndarray
+def _tapered_series(
+    frequencies: np.ndarray, coefficients: np.ndarray, ramp: float, length: float
 ) -> Callable[[np.ndarray], np.ndarray]:
-    return lambda t: random_torque_value(frequencies, coefficients, t)
+    return lambda t: (random_torque_value(frequencies, coefficients, t)
+                      * raised_cosine_edges(t, length, ramp))
 
 
 def _below_nyquist(frequency_hz: float, name: str, dt: float) -> None:
@@ -216,8 +212,9 @@ def compile_schedules(
                 if stop == start:
                     continue
                 rng = np.random.default_rng(p.seed if p.seed is not None else [base_seed, s, i])
-                freqs, coefs = random_torque_coefficients(p, (stop - start) * dt, rng)
-                profile = _series(freqs, coefs)
+                length = (stop - start) * dt
+                freqs, coefs = random_torque_coefficients(p, length, rng)
+                profile = _tapered_series(freqs, coefs, 0.5 * p.taper_fraction * length, length)
                 compiled.terms.append(TorqueTerm(s, p.joint, start, stop, profile))
             elif isinstance(p, Wall):
                 layer = layer_count.get((s, p.joint), 0)
