@@ -22,13 +22,14 @@ import socket
 import sys
 import time
 from collections.abc import Callable, Generator, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Protocol
 
 import numpy as np
 
 from compliant_demo.evaluation import ACTUATOR_LOADS
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.generalisation import ScenarioTarget, draw_target
 from compliant_demo.perturbation import (
     CampaignSpec,
     Fixed,
@@ -55,6 +56,10 @@ __all__ = [
     "run_campaign",
 ]
 
+#: Third word of the seed sequence of a scenario's goal and duration draw (its schedule uses
+#: the pair (seed, index) alone).
+_TARGET_STREAM = 1
+
 #: Trace channels a campaign keeps per scenario (besides ``t``), each (n_rec, n_joints).
 TRACE_CHANNELS: tuple[str, ...] = ("q", "tau_external", "tau_mechanism", "stiffness_realised")
 
@@ -72,6 +77,7 @@ class ScenarioOutcome:
     metrics : outcome metrics, SI units (see :func:`compliant_demo.evaluation.outcome_metrics`)
     parameters : the scenario's perturbation parameters, JSON-serialisable
     trace : named arrays of the decimated trace; ``t`` in s, angles in rad, torques in N*m
+    target : the scenario's drawn goal and duration, or None when the campaign draws none
     """
 
     index: int
@@ -81,6 +87,7 @@ class ScenarioOutcome:
     metrics: dict[str, float]
     parameters: dict[str, Any]
     trace: dict[str, np.ndarray] = field(default_factory=dict)
+    target: ScenarioTarget | None = None
 
 
 class CampaignJob(Protocol):
@@ -120,6 +127,11 @@ class ReplayCampaign:
     not blamed on the perturbation); goal error against the rollout's goal. A scenario whose
     recorded samples leave a limit (:meth:`ReplaySetup.violation`) gets status ``"violation"``
     and the first violation as its reason.
+
+    A spec that draws goal offsets or a duration scale (:meth:`target`) gives every scenario
+    its own commands: each is then simulated with its own unperturbed replay (same goal and
+    duration), seeded by ``scenario_seed(seed, index)``, at about the cost of a batch of two
+    per scenario. Perturbation onsets are drawn in s as without these draws.
     """
 
     setup: ReplaySetup
@@ -213,12 +225,43 @@ class ReplayCampaign:
         (drawn,) = draw_scenarios(spec, 1, scenario_seed(self.seed, index))
         return drawn.model_copy(update={"name": f"{self.spec.name}_{index:05d}"})
 
+    def target(self, index: int) -> ScenarioTarget | None:
+        """Goal and duration of scenario ``index`` when the spec draws them, else None; drawn
+        from a stream of its own, so the scenario's perturbations stay as without them."""
+        spec, setup = self.spec, self.setup
+        if not spec.goal_offset_rad and spec.duration_scale is None:
+            return None
+        limits = np.array([(j.lower_limit, j.upper_limit) for j in setup.joints])
+        if setup.skill.position_limits is not None:
+            own = np.asarray(setup.skill.position_limits)
+            limits = np.column_stack([np.maximum(limits[:, 0], own[:, 0]),
+                                      np.minimum(limits[:, 1], own[:, 1])])
+        goal = setup.skill.goal if setup.goal is None else setup.goal
+        seed = np.random.SeedSequence([int(self.seed), int(index), _TARGET_STREAM])
+        return draw_target(spec, goal, setup.movement_s, limits,
+                           int(seed.generate_state(1)[0]))
+
     def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
         """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each."""
-        setup = self.setup
         schedules = [self.schedule(i) for i in indexes]
-        result = setup.simulate([*schedules, UNPERTURBED], scenario_seed(self.seed, batch_index),
-                                decimation=self.decimation)
+        targets = [self.target(i) for i in indexes]
+        if all(target is None for target in targets):
+            return self._evaluate(self.setup, indexes, schedules,
+                                  scenario_seed(self.seed, batch_index))
+        outcomes = []
+        for index, schedule, target in zip(indexes, schedules, targets, strict=True):
+            assert target is not None
+            setup = replace(self.setup, goal=target.goal, duration_s=target.duration_s)
+            outcomes += self._evaluate(setup, [index], [schedule],
+                                       scenario_seed(self.seed, index), target)
+        return outcomes
+
+    def _evaluate(
+        self, setup: ReplaySetup, indexes: Sequence[int],
+        schedules: Sequence[PerturbationSchedule], seed: int, target: ScenarioTarget | None = None,
+    ) -> list[ScenarioOutcome]:
+        """Simulate ``schedules`` plus one unperturbed run of ``setup`` and evaluate each."""
+        result = setup.simulate([*schedules, UNPERTURBED], seed, decimation=self.decimation)
         nominal = result.q[:, -1, :]
         final_energy = result.energy.final()
         # the command in force at recorded sample r (t = r * decimation * dt) is the one before
@@ -244,6 +287,7 @@ class ReplayCampaign:
                 metrics=metrics,
                 parameters=schedule.model_dump(mode="json"),
                 trace=trace,
+                target=target,
             ))
         return outcomes
 
@@ -652,9 +696,11 @@ def _store_outcomes(
         store.save_replay_result(
             skill_id=skill_id,
             metrics=outcome.metrics,
-            parameters=ReplayParameters(source="campaign", kind=outcome.kind,
-                                        schedule=outcome.parameters,
-                                        scenario_index=outcome.index),
+            parameters=ReplayParameters(
+                source="campaign", kind=outcome.kind, schedule=outcome.parameters,
+                scenario_index=outcome.index,
+                goal=None if outcome.target is None else list(outcome.target.goal),
+                duration_s=None if outcome.target is None else outcome.target.duration_s),
             status=outcome.status,
             reason=outcome.reason,
             trace=outcome.trace,

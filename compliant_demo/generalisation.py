@@ -168,9 +168,9 @@ def draw_target(
 
     Offsets of the joints ``spec.goal_offset_rad`` names (by index) are added to their goals;
     a goal that lands beyond a joint's range ``limits`` ((n_joints, 2) array, rad) is held at
-    the range's edge (the stored goal is the one replayed). The duration is ``duration_s`` times the drawn ``spec.duration_scale``
-    (1 when not drawn). ``seed`` seeds this draw only, so the scenario's perturbations are drawn
-    exactly as in a campaign without goal and duration draws.
+    the range's edge (the stored goal is the one replayed). The duration is ``duration_s``
+    times the drawn ``spec.duration_scale`` (1 when not drawn). ``seed`` seeds this draw only,
+    so the scenario's perturbations are drawn exactly as in a campaign without these draws.
     """
     rng = np.random.default_rng(seed)
     bounds = np.asarray(limits, dtype=float)

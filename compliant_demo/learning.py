@@ -570,7 +570,9 @@ def _report(skill: Skill, version: int, ids: Sequence[str], operators: Sequence[
     stiffness_rmse: Sequence[float | None] = provenance.stiffness_fit_rmse or [None] * len(
         skill.joints
     )
-    choices = provenance.formulation_choice or [None] * len(skill.joints)
+    choices: list[Any] = [None] * len(skill.joints)
+    if provenance.formulation_choice:
+        choices = list(provenance.formulation_choice)
     for joint, rmse, k_rmse, choice in zip(
         skill.joints, provenance.fit_rmse, stiffness_rmse, choices, strict=True
     ):

@@ -464,7 +464,8 @@ class CampaignSpec(BaseModel):
     goal_offset_rad: dict[_Joint, Distribution] = Field(
         default_factory=dict, description="Joint index -> offset added to its goal, rad.")
     duration_scale: Distribution | None = Field(
-        None, description="Factor on the movement duration, 1; None = the setup's duration.")
+        default=None, description="Factor on the movement duration, 1; None = the setup's "
+        "duration.")
 
     @model_validator(mode="after")
     def _duration_scale_positive(self) -> CampaignSpec:

@@ -15,10 +15,11 @@ from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
     add_skill_options,
+    add_target_options,
     non_negative_float,
     non_negative_int,
-    positive_float,
     positive_int,
+    read_goal,
     read_plant,
     read_skill,
     show_progress,
@@ -65,8 +66,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="perturbed scenarios (default: 350)")
     parser.add_argument("--seed", type=non_negative_int, default=0,
                         help="campaign seed (default: 0)")
-    parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
-                        help="movement duration, s (default: the demonstrated one)")
+    add_target_options(parser)
     parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
                         metavar="S", help="time simulated after the movement, s (default: "
                                           f"{DEFAULT_SETTLE_S:g})")
@@ -123,7 +123,9 @@ def _job(
     skill = stored.skill
     if args.spec is not None and not args.spec.is_file():
         raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
-    setup = ReplaySetup(skill, read_plant(args), duration_s=args.duration, settle_s=args.settle)
+    plant = read_plant(args)
+    setup = ReplaySetup(skill, plant, duration_s=args.duration, settle_s=args.settle,
+                        goal=read_goal(args, plant, skill.joints))
     spec = (default_campaign_spec(len(skill.joints), setup.movement_s) if args.spec is None
             else load_campaign_yaml(args.spec))
     return stored.record.id, ReplayCampaign(setup, spec, args.scenarios, seed=args.seed)

@@ -12,9 +12,11 @@ from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
     add_skill_options,
+    add_target_options,
     non_negative_float,
     non_negative_int,
     positive_float,
+    read_goal,
     read_plant,
     read_skill,
     show_progress,
@@ -57,8 +59,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--schedule", type=Path, default=None, metavar="FILE",
                         help="perturbation schedule YAML {name, perturbations: [{kind, joint, "
                              "onset_s, duration_s, magnitude, sign, ...}]} (default: none)")
-    parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
-                        help="movement duration, s (default: the demonstrated one)")
+    add_target_options(parser)
     parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
                         metavar="S", help="time simulated after the movement, s (default: "
                                           f"{DEFAULT_SETTLE_S:g})")
@@ -84,7 +85,8 @@ def _run(args: argparse.Namespace) -> int:
         stored = read_skill(store, args)
         record, skill = stored.record, stored.skill
         setup = ReplaySetup(skill, plant, dt=args.dt, duration_s=args.duration,
-                            settle_s=args.settle, max_stiffness_rate=args.max_stiffness_rate)
+                            goal=read_goal(args, plant, skill.joints), settle_s=args.settle,
+                            max_stiffness_rate=args.max_stiffness_rate)
         run = ReplayRun(setup, schedule, seed=args.seed)
         with tqdm(total=run.n_steps, desc="replay", unit="step", file=sys.stderr,
                   disable=not show_progress(args), leave=False, mininterval=0.5) as bar:
