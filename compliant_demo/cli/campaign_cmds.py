@@ -9,19 +9,19 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from compliant_demo.app.progress import campaign_progress
-from compliant_demo.campaign import ReplayCampaign, default_campaign_spec, run_campaign
+from compliant_demo.campaign import ReplayCampaign, run_campaign
 from compliant_demo.cli._job_options import (
     add_backend_options,
     add_plant_option,
     add_progress_option,
     add_skill_options,
     add_target_options,
-    non_negative_float,
     non_negative_int,
     positive_int,
     read_goal,
     read_plant,
     read_skill,
+    read_spec,
     show_progress,
 )
 from compliant_demo.cli.common import (
@@ -32,10 +32,8 @@ from compliant_demo.cli.common import (
     emit_table,
     store_path_of,
 )
-from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.learning import load_skill_by_id
-from compliant_demo.perturbation import load_campaign_yaml
-from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]
@@ -67,9 +65,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--seed", type=non_negative_int, default=0,
                         help="campaign seed (default: 0)")
     add_target_options(parser)
-    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
-                        metavar="S", help="time simulated after the movement, s (default: "
-                                          f"{DEFAULT_SETTLE_S:g})")
     parser.add_argument("--batch-size", type=positive_int, default=None, metavar="N",
                         help="scenarios per vectorised batch (default: about three batches "
                              "per worker, 8 to 100 each)")
@@ -121,13 +116,10 @@ def _job(
         return stored.record.id, ReplayCampaign.from_config(stored.skill, campaign.config)
     stored = read_skill(store, args)
     skill = stored.skill
-    if args.spec is not None and not args.spec.is_file():
-        raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
     plant = read_plant(args)
     setup = ReplaySetup(skill, plant, duration_s=args.duration, settle_s=args.settle,
                         goal=read_goal(args, plant, skill.joints))
-    spec = (default_campaign_spec(len(skill.joints), setup.movement_s) if args.spec is None
-            else load_campaign_yaml(args.spec))
+    spec = read_spec(args, setup)
     return stored.record.id, ReplayCampaign(setup, spec, args.scenarios, seed=args.seed)
 
 

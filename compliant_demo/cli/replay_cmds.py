@@ -13,7 +13,6 @@ from compliant_demo.cli._job_options import (
     add_progress_option,
     add_skill_options,
     add_target_options,
-    non_negative_float,
     non_negative_int,
     positive_float,
     read_goal,
@@ -31,7 +30,7 @@ from compliant_demo.cli.common import (
 )
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import load_schedule_yaml
-from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
+from compliant_demo.replay import ReplayRun, ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]
@@ -60,9 +59,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="perturbation schedule YAML {name, perturbations: [{kind, joint, "
                              "onset_s, duration_s, magnitude, sign, ...}]} (default: none)")
     add_target_options(parser)
-    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
-                        metavar="S", help="time simulated after the movement, s (default: "
-                                          f"{DEFAULT_SETTLE_S:g})")
     parser.add_argument("--dt", type=positive_float, default=1e-3, metavar="S",
                         help="control period and integration step, s (default: 0.001)")
     parser.add_argument("--max-stiffness-rate", type=positive_float, default=float("inf"),
