@@ -11,6 +11,8 @@ import yaml
 from campaign_support import store_with_demos_and_skill
 from cli_support import one_line_error, run_cli
 
+from compliant_demo.app.tour import TourSettings, run_tour
+from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.store import DemoStore
 
 _SHORT = ["--settle", "0.3", "--quiet"]
@@ -127,3 +129,16 @@ def test_learn_refuses_unknown_forms_and_joints(tmp_path, capsys, value, pattern
     status, _, err = run_cli(capsys, "learn", "--store", path, "--formulation", value)
     assert status == 2
     one_line_error(err, "learn", pattern)
+
+
+def test_the_tour_refuses_a_goal_outside_the_range_before_recording(tmp_path, capsys):
+    path = tmp_path / "store.sqlite"
+    status, _, err = run_cli(capsys, "tour", "--store", path, "--out", tmp_path / "run",
+                             "--goal", "0.2", "1.9", "--quiet")
+    assert status == 2
+    one_line_error(err, "tour", r"--goal: 1\.9 rad for joint 'elbow' is outside its range")
+    assert not path.exists() and not (tmp_path / "run").exists()
+    settings = TourSettings(store=path, out_dir=tmp_path / "run", goal=(0.2, 1.9))
+    with pytest.raises(InvalidInputError, match=r"goal: 1\.9 rad for joint 'elbow' is outside"):
+        run_tour(settings, progress=False)
+    assert not path.exists() and not (tmp_path / "run").exists()

@@ -13,9 +13,12 @@ from compliant_demo.cli._job_options import (
     add_backend_options,
     add_plant_option,
     add_progress_option,
+    add_target_options,
     non_negative_int,
     positive_float,
     positive_int,
+    read_goal,
+    read_plant,
     show_progress,
 )
 from compliant_demo.cli.common import (
@@ -98,6 +101,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="perturbed scenarios in the campaign (default: 350, 50 per kind)")
     add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "
                                           "bench arm on antagonistic spring pairs")
+    add_target_options(parser)
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
@@ -105,8 +109,11 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
+    plant = read_plant(args)
+    goal = read_goal(args, plant, [joint.name for joint in plant.joints])
     settings = recording_settings(args, n_scenarios=args.scenarios, workers=args.workers,
-                                  scheduler=args.scheduler, plant=args.plant)
+                                  scheduler=args.scheduler, plant=args.plant, goal=goal,
+                                  duration_s=args.duration, settle_s=args.settle)
     result = run_tour(settings, progress=show_progress(args), announce=announce_plan)
     if args.json:
         emit_json(result.as_dict())
