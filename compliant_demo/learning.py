@@ -29,7 +29,7 @@ from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.generalisation import choose_formulations
 from compliant_demo.models import model_from_mapping
 from compliant_demo.phase_basis import FitMethod
-from compliant_demo.primitives import DampingPolicy, Skill, fit_skill
+from compliant_demo.primitives import DampingPolicy, Formulation, Skill, fit_skill
 from compliant_demo.store.records import SkillRecord
 from compliant_demo.variability import stiffness_from_variability
 
@@ -372,9 +372,11 @@ def learn_skill(
         summary["smoothing_window"] = smoothing_window
     ids = [d.demo_id for d in normalised if d.demo_id is not None]
     forms, choice = choose_formulations(positions, joint_names, formulation)
+    # one word when every joint has the same form: stored as before per-joint forms existed
+    form: Formulation | list[Formulation] = forms[0] if len(set(forms)) == 1 else forms
     return fit_skill(
         time, positions, stiffness, joints=joint_names, n_basis=n_basis, method=method,
-        formulation=forms, stiffness_range=stiffness_range, damping_policy=damping_policy,
+        formulation=form, stiffness_range=stiffness_range, damping_policy=damping_policy,
         target_inertia=target_inertia, position_limits=position_limits,
         smoothing_window=smoothing_window, name=name,
         provenance={"demonstration_ids": ids, "alignment": summary, "stiffness_source": source,

@@ -151,7 +151,7 @@ def test_the_chosen_form_keeps_a_new_elbow_goal_inside_the_joint_range():
               "stiffness_range": (5.0, 200.0), "target_inertia": [elbow.inertia],
               "alignment": "resample"}
     chosen = learn_skill(demos, **kwargs)
-    assert chosen.formulation == ["goal_robust"]
+    assert chosen.formulation == "goal_robust"
     assert chosen.provenance.formulation_choice[0]["chosen_by"] == "criterion"
     classic = learn_skill(demos, formulation="classic", **kwargs)
     new_goal = [0.6]
