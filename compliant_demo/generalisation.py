@@ -8,7 +8,8 @@ motion). For a motion that goes straight to its goal (|g_d - y0_d| = E) that is 
 exact spatial scaling the form is made for; for an out-and-back motion (cork_seat's elbow:
 0.136 rad net, 0.73 rad excursion) it is 5.4 dg, and a goal on the other side of the start
 mirrors the motion. The goal-robust form (Hoffmann, Pastor, Park, Schaal, ICRA 2009) keeps the
-demonstrated shape and lets the attractor carry the goal change, at most dg anywhere.
+demonstrated shape and lets its critically damped attractor carry the goal change, which moves
+the path by about dg at most.
 :func:`choose_formulations` picks the classic form where |g_d - y0_d| is at least
 :data:`CLASSIC_MIN_NET_FRACTION` of E, else the goal-robust form; each joint can be overridden.
 """
@@ -18,7 +19,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -31,14 +32,11 @@ from compliant_demo.primitives import Formulation
 __all__ = [
     "CLASSIC_MIN_NET_FRACTION",
     "FORMULATION_CHOICES",
-    "FormulationChoice",
     "ScenarioTarget",
     "choose_formulations",
     "check_goal",
     "draw_target",
 ]
-
-FormulationChoice = Literal["auto", "classic", "goal_robust"]
 
 #: Values a per-joint form request may take: "auto" lets the criterion decide.
 FORMULATION_CHOICES: tuple[str, ...] = ("auto", "classic", "goal_robust")
