@@ -33,6 +33,7 @@ def test_replay_to_a_new_goal_and_duration_stores_both(store, capsys):
     with DemoStore(store, read_only=True) as opened:
         parameters = opened.load_replay_result(data["result_id"]).info.parameters
     assert (parameters.goal, parameters.duration_s) == ([0.2, 0.5], 1.5)
+    assert (data["goal"], data["duration_s"]) == ([0.2, 0.5], 1.5)
     # the trace ends after the new duration and the settling time (recorded per step of 1 ms)
     assert data["metrics"]["steps_planned"] == 1800
 

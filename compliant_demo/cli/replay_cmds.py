@@ -98,6 +98,7 @@ def _run(args: argparse.Namespace) -> int:
     if args.json:
         emit_json({"result_id": result_id, "skill": skill.name, "version": record.version,
                    "plant": plant.describe(), "status": status, "reason": reason,
+                   "goal": list(setup.goal or skill.goal), "duration_s": setup.movement_s,
                    "metrics": metrics})
     else:
         print(f"replay of {skill.name} version {record.version} on the "
