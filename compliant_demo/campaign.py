@@ -30,6 +30,7 @@ import numpy as np
 from compliant_demo.energy_tank import scenario_energy
 from compliant_demo.evaluation import ACTUATOR_LOADS
 from compliant_demo.exceptions import InvalidInputError, UnstableStepError
+from compliant_demo.generalisation import ScenarioTarget, draw_target
 from compliant_demo.perturbation import (
     CampaignSpec,
     Fixed,
@@ -64,6 +65,13 @@ __all__ = [
     "run_campaign",
 ]
 
+#: Third word of the seed sequence of a scenario's goal and duration draw (its schedule uses
+#: the pair (seed, index) alone).
+_TARGET_STREAM = 1
+#: Third word of the seed of a scenario's plant draw: its own stream, apart from the schedule's
+#: and the target's.
+_PLANT_STREAM = 2
+
 #: Trace channels a campaign keeps per scenario (besides ``t``), each (n_rec, n_joints).
 TRACE_CHANNELS: tuple[str, ...] = ("q", "tau_external", "tau_mechanism", "stiffness_realised")
 
@@ -82,6 +90,7 @@ class ScenarioOutcome:
     parameters : the scenario's perturbation parameters, JSON-serialisable
     trace : named arrays of the decimated trace; ``t`` in s, angles in rad, torques in N*m
     plant : the drawn plant the scenario ran on (JSON), or None: the campaign's nominal plant
+    target : the scenario's drawn goal and duration, or None when the campaign draws none
     """
 
     index: int
@@ -92,6 +101,7 @@ class ScenarioOutcome:
     parameters: dict[str, Any]
     trace: dict[str, np.ndarray] = field(default_factory=dict)
     plant: dict[str, Any] | None = None
+    target: ScenarioTarget | None = None
 
 
 class CampaignJob(Protocol):
@@ -131,6 +141,11 @@ class ReplayCampaign:
     not blamed on the perturbation); goal error against the rollout's goal. A scenario whose
     recorded samples leave a limit (:meth:`ReplaySetup.violation`) gets status ``"violation"``
     and the first violation as its reason.
+
+    A spec that draws goal offsets or a duration scale (:meth:`target`) gives every scenario
+    its own commands: each is then simulated with its own unperturbed replay (same goal and
+    duration), seeded by ``scenario_seed(seed, index)``, at about the cost of a batch of two
+    per scenario. Perturbation onsets are drawn in s as without these draws.
     """
 
     setup: ReplaySetup
@@ -233,6 +248,22 @@ class ReplayCampaign:
         drawn = place_relative_walls(drawn, self._path_excursion, self.spec.wall_side)
         return drawn.model_copy(update={"name": f"{self.spec.name}_{index:05d}"})
 
+    def target(self, index: int) -> ScenarioTarget | None:
+        """Goal and duration of scenario ``index`` when the spec draws them, else None; drawn
+        from a stream of its own, so the scenario's perturbations stay as without them."""
+        spec, setup = self.spec, self.setup
+        if not spec.goal_offset_rad and spec.duration_scale is None:
+            return None
+        limits = np.array([(j.lower_limit, j.upper_limit) for j in setup.joints])
+        if setup.skill.position_limits is not None:
+            own = np.asarray(setup.skill.position_limits)
+            limits = np.column_stack([np.maximum(limits[:, 0], own[:, 0]),
+                                      np.minimum(limits[:, 1], own[:, 1])])
+        goal = setup.skill.goal if setup.goal is None else setup.goal
+        seed = np.random.SeedSequence([int(self.seed), int(index), _TARGET_STREAM])
+        return draw_target(spec, goal, setup.movement_s, limits,
+                           int(seed.generate_state(1)[0]))
+
     def _path_excursion(self, joint: int, onset_s: float, duration_s: float) -> float:
         """Largest displacement of the commanded path of ``joint`` from its angle at ``onset_s``
         within ``[onset_s, onset_s + duration_s]``, signed, rad."""
@@ -252,38 +283,48 @@ class ReplayCampaign:
     def run_batch(self, batch_index: int, indexes: Sequence[int]) -> list[ScenarioOutcome]:
         """Simulate scenarios ``indexes`` plus one unperturbed run and evaluate each.
 
-        With ``plant_variation`` each scenario runs on its own drawn plant together with its
-        unperturbed twin on that plant (deviations are then the perturbation's, not the plant's
-        difference from the nominal one), one simulation per scenario.
+        A scenario with a drawn goal and duration, or (``plant_variation``) its own drawn plant,
+        runs alone together with its unperturbed twin on the same target and plant (deviations
+        are then the perturbation's, not the difference from the nominal replay), one
+        simulation per scenario.
         """
         schedules = [self.schedule(i) for i in indexes]
-        if not self.spec.plant_variation:
+        targets = [self.target(i) for i in indexes]
+        if not self.spec.plant_variation and all(target is None for target in targets):
             result = self.setup.simulate([*schedules, UNPERTURBED],
                                          scenario_seed(self.seed, batch_index),
                                          decimation=self.decimation)
-            return [self._outcome(result, column, len(schedules), index, schedule)
+            return [self._outcome(self.setup, result, column, len(schedules), index, schedule)
                     for column, (index, schedule) in enumerate(zip(indexes, schedules,
                                                                    strict=True))]
-        outcomes = []
-        for index, schedule in zip(indexes, schedules, strict=True):
-            plant, factors = self.drawn_plant(index)
-            try:
-                result = self.setup.simulate([schedule, UNPERTURBED],
-                                             scenario_seed(self.seed, index),
-                                             decimation=self.decimation, plant=plant)
-            except UnstableStepError as exc:
-                raise UnstableStepError(
-                    f"scenario {index} on its drawn plant (factors {factors}): {exc}") from None
-            outcome = self._outcome(result, 0, 1, index, schedule)
-            outcomes.append(replace(outcome, metrics={**outcome.metrics, "plant_factors": factors},
-                                    plant=plant.model_dump(mode="json")))
-        return outcomes
+        return [self._run_alone(index, schedule, target)
+                for index, schedule, target in zip(indexes, schedules, targets, strict=True)]
 
-    def _outcome(self, result: SimResult, column: int, nominal_column: int, index: int,
-                 schedule: PerturbationSchedule) -> ScenarioOutcome:
-        """Metrics, limit check and trace of scenario ``column`` of ``result`` against the
-        unperturbed scenario ``nominal_column``."""
-        setup = self.setup
+    def _run_alone(self, index: int, schedule: PerturbationSchedule,
+                   target: ScenarioTarget | None) -> ScenarioOutcome:
+        """Scenario ``index`` on its own target and drawn plant, with its unperturbed twin."""
+        setup = self.setup if target is None else replace(
+            self.setup, goal=target.goal, duration_s=target.duration_s)
+        if not self.spec.plant_variation:
+            result = setup.simulate([schedule, UNPERTURBED], scenario_seed(self.seed, index),
+                                    decimation=self.decimation)
+            return self._outcome(setup, result, 0, 1, index, schedule, target)
+        plant, factors = self.drawn_plant(index)
+        try:
+            result = setup.simulate([schedule, UNPERTURBED], scenario_seed(self.seed, index),
+                                    decimation=self.decimation, plant=plant)
+        except UnstableStepError as exc:
+            raise UnstableStepError(
+                f"scenario {index} on its drawn plant (factors {factors}): {exc}") from None
+        outcome = self._outcome(setup, result, 0, 1, index, schedule, target)
+        return replace(outcome, metrics={**outcome.metrics, "plant_factors": factors},
+                       plant=plant.model_dump(mode="json"))
+
+    def _outcome(self, setup: ReplaySetup, result: SimResult, column: int, nominal_column: int,
+                 index: int, schedule: PerturbationSchedule,
+                 target: ScenarioTarget | None = None) -> ScenarioOutcome:
+        """Metrics, limit check and trace of scenario ``column`` of ``result`` (a simulation of
+        ``setup``) against the unperturbed scenario ``nominal_column``."""
         q, tau_mechanism = result.q[:, column, :], result.tau_mechanism[:, column, :]
         metrics = setup.metrics(
             result.t, q, result.q[:, nominal_column, :], result.tau_external[:, column, :],
@@ -305,11 +346,9 @@ class ReplayCampaign:
             metrics=metrics,
             parameters=schedule.model_dump(mode="json"),
             trace=trace,
+            target=target,
         )
 
-
-#: Third entry of the seed of a scenario's plant draw: its own stream, apart from the schedule's.
-_PLANT_STREAM = 1
 
 
 @dataclass(frozen=True)
@@ -727,9 +766,11 @@ def _store_outcomes(
         store.save_replay_result(
             skill_id=skill_id,
             metrics=outcome.metrics,
-            parameters=ReplayParameters(source="campaign", kind=outcome.kind,
-                                        schedule=outcome.parameters,
-                                        scenario_index=outcome.index, plant=outcome.plant),
+            parameters=ReplayParameters(
+                source="campaign", kind=outcome.kind, schedule=outcome.parameters,
+                scenario_index=outcome.index, plant=outcome.plant,
+                goal=None if outcome.target is None else list(outcome.target.goal),
+                duration_s=None if outcome.target is None else outcome.target.duration_s),
             status=outcome.status,
             reason=outcome.reason,
             trace=outcome.trace,

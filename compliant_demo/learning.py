@@ -26,6 +26,7 @@ from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.arrays import finite_array, ranges, time_axis
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.generalisation import choose_formulations
 from compliant_demo.models import model_from_mapping
 from compliant_demo.phase_basis import FitMethod
 from compliant_demo.primitives import DampingPolicy, Formulation, Skill, fit_skill
@@ -258,7 +259,7 @@ def learn_skill(
     n_samples: int | None = None,
     n_basis: int = 50,
     method: FitMethod = "lwr",
-    formulation: Formulation = "classic",
+    formulation: str | Mapping[str, str] | Sequence[str] = "auto",
     damping_policy: DampingPolicy | None = None,
     target_inertia: ArrayLike | None = None,
     position_limits: ArrayLike | None = None,
@@ -294,7 +295,12 @@ def learn_skill(
     band : Sakoe-Chiba band of the DTW, fraction of the sequence length
     n_samples : samples of the common time axis. Default: the DTW reference's sample count, or
         the median count when resampling, capped at ``DEFAULT_MAX_SAMPLES`` = 20,000
-    n_basis, method, formulation, damping_policy, target_inertia, position_limits :
+    formulation : DMP form per joint: "auto" (the criterion of
+        :func:`compliant_demo.generalisation.choose_formulations` on the aligned
+        demonstrations), "classic" or "goal_robust" for every joint, a mapping joint name ->
+        one of these (joints not named: "auto"), or one per joint. The choice and the
+        criterion's figures go to the provenance (``formulation_choice``)
+    n_basis, method, damping_policy, target_inertia, position_limits :
         as in :func:`compliant_demo.primitives.fit_skill`
     variance_floor : rad^2, passed to ``stiffness_from_variability``
     variability_reference : (std rad, stiffness N*m/rad), the anchor of
@@ -365,12 +371,16 @@ def learn_skill(
         smoothing_window = max(5, 2 * int(0.05 * time.size) + 1)
         summary["smoothing_window"] = smoothing_window
     ids = [d.demo_id for d in normalised if d.demo_id is not None]
+    forms, choice = choose_formulations(positions, joint_names, formulation)
+    # one word when every joint has the same form: stored as before per-joint forms existed
+    form: Formulation | list[Formulation] = forms[0] if len(set(forms)) == 1 else forms
     return fit_skill(
         time, positions, stiffness, joints=joint_names, n_basis=n_basis, method=method,
-        formulation=formulation, stiffness_range=stiffness_range, damping_policy=damping_policy,
+        formulation=form, stiffness_range=stiffness_range, damping_policy=damping_policy,
         target_inertia=target_inertia, position_limits=position_limits,
         smoothing_window=smoothing_window, name=name,
-        provenance={"demonstration_ids": ids, "alignment": summary, "stiffness_source": source},
+        provenance={"demonstration_ids": ids, "alignment": summary, "stiffness_source": source,
+                    "formulation_choice": choice},
     )
 
 
@@ -562,11 +572,24 @@ def _report(skill: Skill, version: int, ids: Sequence[str], operators: Sequence[
     stiffness_rmse: Sequence[float | None] = provenance.stiffness_fit_rmse or [None] * len(
         skill.joints
     )
-    for joint, rmse, k_rmse in zip(
-        skill.joints, provenance.fit_rmse, stiffness_rmse, strict=True
+    choices: list[Any] = [None] * len(skill.joints)
+    if provenance.formulation_choice:
+        choices = list(provenance.formulation_choice)
+    for joint, rmse, k_rmse, choice in zip(
+        skill.joints, provenance.fit_rmse, stiffness_rmse, choices, strict=True
     ):
         k_text = "-" if k_rmse is None else f"{k_rmse:.3g} N*m/rad"
-        lines.append(f"  {joint}: position RMSE {rmse:.3g} rad, stiffness RMSE {k_text}")
+        form = "" if choice is None else f", form {_form_text(choice)}"
+        lines.append(f"  {joint}: position RMSE {rmse:.3g} rad, stiffness RMSE {k_text}{form}")
     lines.append(f"  operators: {', '.join(repr(o) for o in operators) or '-'}")
     lines.append(f"  demonstrations: {', '.join(ids)}")
     return "\n".join(lines)
+
+
+def _form_text(choice: Mapping[str, Any]) -> str:
+    """``goal_robust (net/excursion 0.19 < 0.5)`` or ``classic (requested)``."""
+    if choice["chosen_by"] != "criterion":
+        return f"{choice['formulation']} (requested)"
+    relation = ">=" if choice["formulation"] == "classic" else "<"
+    return (f"{choice['formulation']} (net/excursion {choice['net_fraction']:.2f} {relation} "
+            f"{choice['threshold']:g})")

@@ -17,7 +17,15 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, cast
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SerializerFunctionWrapHandler,
+    ValidationError,
+    model_serializer,
+    model_validator,
+)
 
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import read_yaml, validation_message
@@ -603,6 +611,32 @@ class CampaignSpec(BaseModel):
     )
     positive_sign_probability: float = Field(0.5, ge=0, le=1)
     fields: dict[str, dict[str, Distribution]] = Field(default_factory=dict)
+    # Generalisation (compliant_demo.generalisation.draw_target): new goals and durations per
+    # scenario. Left out of the JSON when not drawn, so nominal campaigns store what they did.
+    goal_offset_rad: dict[_Joint, Distribution] = Field(
+        default_factory=dict, description="Joint index -> offset added to its goal, rad.")
+    duration_scale: Distribution | None = Field(
+        default=None, description="Factor on the movement duration, 1; None = the setup's "
+        "duration.")
+
+    @model_validator(mode="after")
+    def _duration_scale_positive(self) -> CampaignSpec:
+        scale = self.duration_scale
+        lowest = (None if scale is None else scale.value if isinstance(scale, Fixed)
+                  else min(scale.values) if isinstance(scale, Choice) else scale.low)
+        if lowest is not None and not lowest > 0:
+            raise ValueError(f"duration_scale: can draw {lowest}; a duration scale must stay "
+                             "above 0 (give a positive low)")
+        return self
+
+    @model_serializer(mode="wrap")
+    def _drop_undrawn(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        data = handler(self)
+        if not self.goal_offset_rad:
+            data.pop("goal_offset_rad", None)
+        if self.duration_scale is None:
+            data.pop("duration_scale", None)
+        return data
 
     # walls and plant variation: where relative walls go, and model uncertainty
     wall_side: Literal["toward", "away", "both", "as_drawn"] = Field(

@@ -101,7 +101,8 @@ class DMP:
     Parameters
     ----------
     n_basis : number of Gaussian basis functions (>= 2)
-    formulation : "classic" (forcing scaled by x*(g - y0)) or "goal_robust" (Hoffmann et al. 2009)
+    formulation : "classic" (forcing scaled by x*(g - y0)) or "goal_robust" (Hoffmann et al. 2009),
+        for every joint, or a sequence of them, one per joint in column order
     alpha_z, beta_z : transformation-system gains, 1; beta_z = alpha_z/4 is critically damped
     alpha_x : canonical-system decay, 1
 
@@ -123,7 +124,7 @@ class DMP:
     def __init__(
         self,
         n_basis: int,
-        formulation: Formulation = "classic",
+        formulation: Formulation | Sequence[Formulation] = "classic",
         *,
         alpha_z: float = ALPHA_Z,
         beta_z: float | None = None,
@@ -131,18 +132,27 @@ class DMP:
     ) -> None:
         if isinstance(n_basis, bool) or not isinstance(n_basis, int | np.integer) or n_basis < 2:
             raise InvalidInputError(f"n_basis: need an integer of at least 2, got {n_basis!r}")
-        if formulation not in ("classic", "goal_robust"):
-            raise InvalidInputError(
-                f"formulation: expected 'classic' or 'goal_robust', got {formulation!r}"
-            )
+        forms = (formulation,) if isinstance(formulation, str) else tuple(formulation)
+        if not forms or any(form not in ("classic", "goal_robust") for form in forms):
+            raise InvalidInputError(f"formulation: expected 'classic' or 'goal_robust' (or one "
+                                    f"of them per joint), got {formulation!r}")
         self.n_basis = int(n_basis)
-        self.formulation: Formulation = formulation
+        self.formulation: Formulation | list[Formulation] = (
+            forms[0] if isinstance(formulation, str) else list(forms))
         self.alpha_z = float(alpha_z)
         self.beta_z = float(alpha_z / 4.0 if beta_z is None else beta_z)
         self.alpha_x = float(alpha_x)
         self.basis = PhaseBasis(self.n_basis, self.alpha_x)
         self.weights: NDArray[np.float64] | None = None
         self.amplitude: NDArray[np.float64] | None = None
+
+    def goal_robust(self, n_joints: int) -> NDArray[np.bool_]:
+        """(n_joints,) True where a joint uses the goal-robust form."""
+        forms = [self.formulation] if isinstance(self.formulation, str) else self.formulation
+        if len(forms) not in (1, n_joints):
+            raise InvalidInputError(f"formulation: {len(forms)} forms {forms!r} for "
+                                    f"{n_joints} joints")
+        return np.broadcast_to(np.array([form == "goal_robust" for form in forms]), n_joints)
 
     def fit(
         self,
@@ -199,21 +209,21 @@ class DMP:
         tau = times[-1] - times[0]
         start, goal = demos[:, 0, :], demos[:, -1, :]
         k_gain, d_gain = self.alpha_z * self.beta_z, self.alpha_z
-        if self.formulation == "classic":
-            span = demos.max(axis=(0, 1)) - demos.min(axis=(0, 1))
-            amplitude = (goal - start).mean(axis=0)
-            degenerate = np.abs(amplitude) <= _DEGENERATE_AMPLITUDE * np.maximum(span, 1e-12)
-            if np.any(degenerate):
-                warnings.warn(
-                    f"joints {np.flatnonzero(degenerate).tolist()} end where they start "
-                    "(g - y0 ~ 0); the classic form cannot scale them, fitted unscaled. "
-                    "Use formulation='goal_robust' for such motions.",
-                    stacklevel=2,
-                )
-            # Amplitude 0 marks a joint whose forcing is applied unscaled at rollout.
-            amplitude = np.where(degenerate, 0.0, amplitude)
-        else:
-            amplitude = np.ones(demos.shape[2])
+        robust = self.goal_robust(demos.shape[2])
+        span = demos.max(axis=(0, 1)) - demos.min(axis=(0, 1))
+        amplitude = (goal - start).mean(axis=0)
+        degenerate = ~robust & (np.abs(amplitude) <= _DEGENERATE_AMPLITUDE
+                                * np.maximum(span, 1e-12))
+        if np.any(degenerate):
+            warnings.warn(
+                f"joints {np.flatnonzero(degenerate).tolist()} end where they start "
+                "(g - y0 ~ 0); the classic form cannot scale them, fitted unscaled. "
+                "Use formulation='goal_robust' for such motions.",
+                stacklevel=2,
+            )
+        # Amplitude 0 marks a classic joint whose forcing is applied unscaled at rollout; the
+        # goal-robust form folds no amplitude into its weights (1).
+        amplitude = np.where(robust, 1.0, np.where(degenerate, 0.0, amplitude))
         # The demonstrations are averaged, not each rescaled by its own (g_d - y0_d) / amplitude:
         # teaching demonstrations of one skill differ by offsets and timing rather than by a
         # scaling about their start, and where the range of motion is several times |g - y0|
@@ -227,11 +237,11 @@ class DMP:
                                                              smoothing_window))
         inertial = tau * tau * acceleration + d_gain * tau * velocity
         to_goal = goal.sum(axis=0) - summed
-        if self.formulation == "classic":
-            target_sum = inertial - k_gain * to_goal
-        else:
-            target_sum = (inertial / k_gain - to_goal
-                          + (goal - start).sum(axis=0) * x[:, np.newaxis])
+        target_sum = np.where(
+            robust,
+            inertial / k_gain - to_goal + (goal - start).sum(axis=0) * x[:, np.newaxis],
+            inertial - k_gain * to_goal,
+        )
         self.weights = solve_weights(self.basis, x, x, demos.shape[0], target_sum, method,
                                       regularisation)
         self.amplitude = amplitude
@@ -279,12 +289,11 @@ class DMP:
         """Gains (n_sets, n_joints) of the input u = a*shape + b*x for each start/goal set."""
         assert self.amplitude is not None
         span = goal - start
-        if self.formulation == "classic":
-            unscaled = self.amplitude == 0.0
-            ratio = np.where(unscaled, 1.0, span / np.where(unscaled, 1.0, self.amplitude))
-            return ratio, np.zeros_like(span)
+        robust = self.goal_robust(span.shape[-1])
+        unscaled = self.amplitude == 0.0
+        ratio = np.where(unscaled, 1.0, span / np.where(unscaled, 1.0, self.amplitude))
         k_gain = self.alpha_z * self.beta_z
-        return np.full_like(span, k_gain), -k_gain * span
+        return np.where(robust, k_gain, ratio), np.where(robust, -k_gain * span, 0.0)
 
     def integrate(
         self,
@@ -369,6 +378,10 @@ class Provenance(BaseModel):
     stiffness_fit_rmse: list[float] | None = Field(
         None, description="RMSE of the learned stiffness per joint, N*m/rad."
     )
+    formulation_choice: list[dict[str, Any]] | None = Field(
+        None, description="Per joint: the DMP form, whether the criterion or an override chose "
+        "it, and the criterion's figures (see compliant_demo.generalisation)."
+    )
     package_version: str = __version__
     created_utc: str = Field(default_factory=lambda: datetime.now(UTC).isoformat())
 
@@ -384,7 +397,10 @@ class Skill(BaseModel):
 
     name: str = Field("skill", min_length=1)
     joints: list[str] = Field(..., min_length=1)
-    formulation: Formulation = "classic"
+    formulation: Formulation | list[Formulation] = Field(
+        "classic", description="DMP form of every joint, or one per joint (skills stored before "
+        "per-joint forms hold one)."
+    )
     method: FitMethod = "lwr"
     n_basis: int = Field(..., ge=2)
     alpha_z: float = ALPHA_Z
@@ -423,6 +439,8 @@ class Skill(BaseModel):
             "weights": self.weights, "stiffness_log_weights": self.stiffness_log_weights,
             "stiffness_range": self.stiffness_range,
         }
+        if isinstance(self.formulation, list):
+            tables["formulation"] = self.formulation
         for field, rows in tables.items():
             if len(rows) != n_joints:
                 raise ValueError(f"{field} has {len(rows)} rows for {n_joints} joints")
@@ -637,7 +655,7 @@ def fit_skill(
     joints: Sequence[str],
     n_basis: int = 50,
     method: FitMethod = "lwr",
-    formulation: Formulation = "classic",
+    formulation: Formulation | Sequence[Formulation] = "classic",
     stiffness_range: ArrayLike | None = None,
     damping_policy: DampingPolicy | None = None,
     damping: ArrayLike | None = None,
@@ -660,7 +678,8 @@ def fit_skill(
     joints : joint names, one per column
     n_basis : Gaussian basis functions per joint, >= 2 and <= n_samples
     method : "lwr" or "ridge" (regularised global least squares)
-    formulation : "classic" (Ijspeert et al. 2013) or "goal_robust" (Hoffmann et al. 2009)
+    formulation : "classic" (Ijspeert et al. 2013) or "goal_robust" (Hoffmann et al. 2009) for
+        every joint, or one of them per joint
     stiffness_range : (k_min, k_max) or (n_joints, 2), N*m/rad; the target joint's range the
         profile is clamped to. Default: the recorded range (required without ``stiffness``)
     damping_policy : default ``DampingPolicy(kind="ratio", zeta=0.7)``
@@ -724,7 +743,7 @@ def fit_skill(
     data = dict(
         name=name,
         joints=joint_names,
-        formulation=formulation,
+        formulation=dmp.formulation,
         method=method,
         n_basis=dmp.n_basis,
         alpha_z=dmp.alpha_z,

@@ -33,6 +33,7 @@ from numpy.typing import NDArray
 from compliant_demo.energy_tank import scenario_energy
 from compliant_demo.evaluation import ACTUATOR_LOADS, first_limit_violation, outcome_metrics
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.generalisation import check_goal
 from compliant_demo.models import JointParams, MechanismParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.plant import ReplayPlant
@@ -98,7 +99,8 @@ class ReplaySetup:
     dt : control period and integration step, s
     duration_s : movement duration, s; None = the demonstrated one
     settle_s : time simulated after the movement, s
-    goal : new goal per joint, rad; None = the demonstrated one
+    goal : new goal per joint, rad, finite and inside the plant's joint ranges; None = the
+        demonstrated one
     method : integrator of :class:`compliant_demo.sim.Simulator`
     max_stiffness_rate : a commanded stiffness changing faster is a violation, N*m/rad/s
     feedforward : add the path's inverse dynamics to the equilibrium command (module docstring)
@@ -123,11 +125,9 @@ class ReplaySetup:
             raise InvalidInputError(
                 f"max_stiffness_rate: must be positive, got {self.max_stiffness_rate}"
             )
-        if self.goal is not None and len(self.goal) != len(self.skill.joints):
-            raise InvalidInputError(
-                f"goal: need one angle per joint {list(self.skill.joints)}, got {list(self.goal)}"
-            )
-        self.plant.for_joints(self.skill.joints)
+        joints = self.plant.for_joints(self.skill.joints)
+        if self.goal is not None:
+            check_goal(self.goal, joints, "goal")
 
     @cached_property
     def joints(self) -> list[JointParams]:

@@ -100,6 +100,10 @@ def test_learner_saves_a_skill_from_the_recorded_demonstrations(learned) -> None
         record = db.load_skill_record("cork_seat")
         demo_ids = {info.id for info in db.find_demonstrations(status="complete")}
     assert record.version == 1 and set(record.demonstration_ids) == demo_ids
+    # the learner's default formulation ([]) lets the criterion choose every joint's form
+    choices = record.payload["provenance"]["formulation_choice"]
+    assert [(c["joint"], c["chosen_by"]) for c in choices] == [("shoulder", "criterion"),
+                                                                ("elbow", "criterion")]
 
 
 def test_learner_refuses_clearly_when_too_few_demonstrations_match(learned, tmp_path: Path) -> None:

@@ -332,7 +332,7 @@ _WRITABLE = {
     "recorder": {"skill", "operator", "tags", "notes"},
     "teacher": set(),
     "learner": {"skill", "joints", "tags", "operator", "min_demonstrations", "n_basis",
-                "alignment", "stiffness_source"},
+                "alignment", "stiffness_source", "formulation"},
     "replay": {"skill", "skill_version", "control_rate_hz", "duration_s", "settle_s", "goal",
                "seed", "method", "real_time", "publish_decimation"},
 }

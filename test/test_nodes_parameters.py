@@ -57,6 +57,11 @@ def test_a_running_learner_refuses_bad_changes_with_their_reasons(tmp_path: Path
         assert too_long.reason == "operator: at most 200 characters, got 201"
         too_many = set_parameter(client, "/learner", "tags", [f"t{i}" for i in range(65)])
         assert too_many.reason == "tags: at most 64 items, got 65"
+        unknown_form = set_parameter(client, "/learner", "formulation", ["auto", "sideways"])
+        assert unknown_form.reason == ("formulation must list auto, classic, goal_robust: none, "
+                                       "one, or one per joint (2), got ['auto', 'sideways']")
+        assert set_parameter(client, "/learner", "formulation",
+                             ["classic", "goal_robust"]).successful
         assert nodes.interrupt("learner") == 0, nodes.log("learner")
     finally:
         client.close()

@@ -175,7 +175,8 @@ def test_plant_file_errors_name_the_file(tmp_path: Path) -> None:
 
 
 def test_replay_setup_refuses_a_goal_for_other_joints(skill) -> None:
-    with pytest.raises(InvalidInputError, match=r"goal: need one angle per joint"):
+    with pytest.raises(InvalidInputError,
+                       match=r"goal: 1 value\(s\) \[0\.1\] for the 2 joints .*one angle per joint"):
         ReplaySetup(skill, _ideal(), goal=(0.1,))
 
 

@@ -30,10 +30,11 @@ from compliant_demo.campaign import (
     run_campaign,
 )
 from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
+from compliant_demo.generalisation import check_goal
 from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.plant import load_plant
 from compliant_demo.readiness import Verdict, load_criteria, record_verdict
-from compliant_demo.replay import ReplaySetup
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
 from compliant_demo.report import write_report
 from compliant_demo.resources import package_launch_file
 from compliant_demo.store import DemoStore
@@ -80,6 +81,9 @@ class TourSettings:
         not coupled to stiffness, on a bench arm with gravity, friction and torque limits
     criteria : readiness acceptance criteria (YAML, see
         :func:`compliant_demo.readiness.load_criteria`); None uses the shipped ones
+    goal : new goal of the campaign's replays, one angle per plant joint, rad (None: the
+        demonstrated goal); duration_s : their movement duration, s (None: the demonstrated
+        one); settle_s : time simulated after the movement, s
     """
 
     store: Path
@@ -96,6 +100,9 @@ class TourSettings:
     launch_file: Path | None = None
     plant: Path | None = None
     criteria: Path | None = None
+    goal: tuple[float, ...] | None = None
+    duration_s: float | None = None
+    settle_s: float = DEFAULT_SETTLE_S
 
     def __post_init__(self) -> None:
         if not 2 <= self.n_demonstrations <= 50:
@@ -296,6 +303,8 @@ def run_tour(
     if settings.criteria is not None and not Path(settings.criteria).is_file():
         raise InvalidInputError(f"criteria = {str(settings.criteria)!r}: no such file")
     criteria = load_criteria(settings.criteria)
+    if settings.goal is not None:  # before anything is recorded
+        check_goal(settings.goal, plant.joints, "goal")
     with planned_run(run_tag("tour"), seed=settings.seed, domain_id=settings.domain_id,
                      out_dir=settings.out_dir) as plan:
         if announce is not None:
@@ -320,8 +329,9 @@ def run_tour(
             return outcome.stored.skill, outcome.stored.record
 
         skill, record = _timed(timings, "learn", learn)
-        job = ReplayCampaign(ReplaySetup(skill, plant),
-                             default_campaign_spec(len(joints), skill.duration_s),
+        setup = ReplaySetup(skill, plant, duration_s=settings.duration_s,
+                            settle_s=settings.settle_s, goal=settings.goal)
+        job = ReplayCampaign(setup, default_campaign_spec(len(joints), setup.movement_s),
                              settings.n_scenarios, seed=plan.seed)
 
         def campaign_run():

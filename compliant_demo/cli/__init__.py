@@ -35,6 +35,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "compliant_demo.cli.learn_cmds",
     "compliant_demo.cli.replay_cmds",
     "compliant_demo.cli.campaign_cmds",
+    "compliant_demo.cli.compare_cmds",
     "compliant_demo.cli.report_cmds",
 )
 

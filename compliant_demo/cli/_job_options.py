@@ -10,13 +10,18 @@ from __future__ import annotations
 import argparse
 import math
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 
+from compliant_demo.campaign import default_campaign_spec
 from compliant_demo.cli.common import integer_in_range
 from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.generalisation import check_goal
 from compliant_demo.learning import StoredSkill, load_skill
+from compliant_demo.perturbation import CampaignSpec, load_campaign_yaml
 from compliant_demo.plant import DEFAULT_PLANT_FILE, ReplayPlant, load_plant
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = [
@@ -28,7 +33,11 @@ __all__ = [
     "positive_int",
     "non_negative_int",
     "positive_float",
+    "finite_float",
     "non_negative_float",
+    "add_target_options",
+    "read_goal",
+    "read_spec",
     "read_plant",
     "read_skill",
     "show_progress",
@@ -62,6 +71,11 @@ def positive_float(text: str) -> float:
     return _number(0.0, False, text)
 
 
+def finite_float(text: str) -> float:
+    """argparse type: a finite number."""
+    return _number(-math.inf, True, text)
+
+
 def non_negative_float(text: str) -> float:
     """argparse type: a finite number >= 0."""
     return _number(0.0, True, text)
@@ -86,6 +100,36 @@ def add_plant_option(
         help="YAML with 'joints' (inertia kg*m^2, damping N*m*s/rad, limits rad, torque limit "
              f"N*m) and 'mechanism' (kind ideal or antagonistic, stiffness range N*m/rad); "
              f"default: {default_text}")
+
+
+def add_target_options(parser: argparse.ArgumentParser) -> None:
+    """``--goal RAD [RAD ...]``, ``--duration S`` and ``--settle S``: a new goal and movement
+    duration, and the time simulated after the movement."""
+    parser.add_argument("--goal", type=finite_float, nargs="+", default=None, metavar="RAD",
+                        help="new goal, one angle per joint of the skill in its order, rad, "
+                             "inside each joint's range (default: the demonstrated goal)")
+    parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
+                        help="movement duration, s (default: the demonstrated one)")
+    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
+                        metavar="S", help="time simulated after the movement, s (default: "
+                                          f"{DEFAULT_SETTLE_S:g})")
+
+
+def read_spec(args: argparse.Namespace, setup: ReplaySetup) -> CampaignSpec:
+    """The campaign spec of ``--spec``, or the default one sized for ``setup``'s movement."""
+    if args.spec is None:
+        return default_campaign_spec(len(setup.skill.joints), setup.movement_s)
+    if not args.spec.is_file():
+        raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
+    return load_campaign_yaml(args.spec)
+
+
+def read_goal(args: argparse.Namespace, plant: ReplayPlant,
+              joints: Sequence[str]) -> tuple[float, ...] | None:
+    """The goal of ``--goal`` for the skill's ``joints`` on ``plant``, checked, or None."""
+    if args.goal is None:
+        return None
+    return check_goal(args.goal, plant.for_joints(joints), "--goal")
 
 
 def add_backend_options(parser: argparse.ArgumentParser) -> None:

@@ -9,18 +9,19 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from compliant_demo.app.progress import campaign_progress
-from compliant_demo.campaign import ReplayCampaign, default_campaign_spec, run_campaign
+from compliant_demo.campaign import ReplayCampaign, run_campaign
 from compliant_demo.cli._job_options import (
     add_backend_options,
     add_plant_option,
     add_progress_option,
     add_skill_options,
-    non_negative_float,
+    add_target_options,
     non_negative_int,
-    positive_float,
     positive_int,
+    read_goal,
     read_plant,
     read_skill,
+    read_spec,
     show_progress,
 )
 from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
@@ -32,11 +33,9 @@ from compliant_demo.cli.common import (
     emit_table,
     store_path_of,
 )
-from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.learning import load_skill_by_id
-from compliant_demo.perturbation import load_campaign_yaml
 from compliant_demo.readiness import assess_replays, record_verdict
-from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
+from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]
@@ -67,11 +66,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="perturbed scenarios (default: 350)")
     parser.add_argument("--seed", type=non_negative_int, default=0,
                         help="campaign seed (default: 0)")
-    parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
-                        help="movement duration, s (default: the demonstrated one)")
-    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
-                        metavar="S", help="time simulated after the movement, s (default: "
-                                          f"{DEFAULT_SETTLE_S:g})")
+    add_target_options(parser)
     parser.add_argument("--batch-size", type=positive_int, default=None, metavar="N",
                         help="scenarios per vectorised batch (default: about three batches "
                              "per worker, 8 to 100 each)")
@@ -124,11 +119,10 @@ def _job(
         return stored.record.id, ReplayCampaign.from_config(stored.skill, campaign.config)
     stored = read_skill(store, args)
     skill = stored.skill
-    if args.spec is not None and not args.spec.is_file():
-        raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
-    setup = ReplaySetup(skill, read_plant(args), duration_s=args.duration, settle_s=args.settle)
-    spec = (default_campaign_spec(len(skill.joints), setup.movement_s) if args.spec is None
-            else load_campaign_yaml(args.spec))
+    plant = read_plant(args)
+    setup = ReplaySetup(skill, plant, duration_s=args.duration, settle_s=args.settle,
+                        goal=read_goal(args, plant, skill.joints))
+    spec = read_spec(args, setup)
     return stored.record.id, ReplayCampaign(setup, spec, args.scenarios, seed=args.seed)
 
 

@@ -18,6 +18,8 @@ from compliant_demo.cli.common import (
     store_path_of,
 )
 from compliant_demo.display import printable
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.generalisation import CLASSIC_MIN_NET_FRACTION, FORMULATION_CHOICES
 from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.store import DemoStore
 
@@ -54,9 +56,31 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         default="auto",
                         help="recorded stiffness channel, spread of the demonstrations, or "
                              "recorded when every demonstration has it (default: auto)")
+    parser.add_argument(
+        "--formulation", action="append", default=[], metavar="[JOINT=]FORM",
+        help="DMP form: auto, classic or goal_robust, for every joint or, as JOINT=FORM, for "
+             "one (repeat for several). auto picks classic where the demonstrated start-to-goal "
+             f"distance is at least {CLASSIC_MIN_NET_FRACTION:g} of the joint's excursion "
+             "(rad), else goal_robust, which keeps the shape under new goals (default: auto)")
     add_plant_option(parser)
     add_json_option(parser)
     parser.set_defaults(handler=_run)
+
+
+def _formulation(values: list[str], joints: tuple[str, ...]) -> dict[str, str]:
+    """Per-joint requests of ``--formulation`` (joints not named: auto)."""
+    requested: dict[str, str] = {}
+    for value in values:
+        joint, _, form = value.rpartition("=")
+        named = (joint,) if joint else joints
+        if joint and joint not in joints:
+            raise InvalidInputError(f"--formulation {printable(value)!r}: no joint "
+                                    f"{printable(joint)!r} in the plant {list(joints)}")
+        if form not in FORMULATION_CHOICES:
+            raise InvalidInputError(f"--formulation {printable(value)!r}: expected "
+                                    f"{', '.join(FORMULATION_CHOICES)} (or JOINT=one of them)")
+        requested.update(dict.fromkeys(named, form))
+    return requested
 
 
 def _run(args: argparse.Namespace) -> int:
@@ -75,6 +99,7 @@ def _run(args: argparse.Namespace) -> int:
             "stiffness_source": args.stiffness_source,
             "stiffness_range": (mechanism.stiffness_min, mechanism.stiffness_max),
             "target_inertia": [joint.inertia for joint in plant.joints],
+            "formulation": _formulation(args.formulation, joints),
         },
     )
     with DemoStore(store_path_of(args), create=False) as store:

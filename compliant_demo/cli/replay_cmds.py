@@ -12,9 +12,10 @@ from compliant_demo.cli._job_options import (
     add_plant_option,
     add_progress_option,
     add_skill_options,
-    non_negative_float,
+    add_target_options,
     non_negative_int,
     positive_float,
+    read_goal,
     read_plant,
     read_skill,
     show_progress,
@@ -31,7 +32,7 @@ from compliant_demo.cli.common import (
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import load_schedule_yaml
 from compliant_demo.readiness import assess_replays
-from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
+from compliant_demo.replay import ReplayRun, ReplaySetup
 from compliant_demo.store import DemoStore
 
 __all__ = ["register"]
@@ -60,11 +61,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--schedule", type=Path, default=None, metavar="FILE",
                         help="perturbation schedule YAML {name, perturbations: [{kind, joint, "
                              "onset_s, duration_s, magnitude, sign, ...}]} (default: none)")
-    parser.add_argument("--duration", type=positive_float, default=None, metavar="S",
-                        help="movement duration, s (default: the demonstrated one)")
-    parser.add_argument("--settle", type=non_negative_float, default=DEFAULT_SETTLE_S,
-                        metavar="S", help="time simulated after the movement, s (default: "
-                                          f"{DEFAULT_SETTLE_S:g})")
+    add_target_options(parser)
     parser.add_argument("--dt", type=positive_float, default=1e-3, metavar="S",
                         help="control period and integration step, s (default: 0.001)")
     parser.add_argument("--max-stiffness-rate", type=positive_float, default=float("inf"),
@@ -89,7 +86,8 @@ def _run(args: argparse.Namespace) -> int:
         stored = read_skill(store, args)
         record, skill = stored.record, stored.skill
         setup = ReplaySetup(skill, plant, dt=args.dt, duration_s=args.duration,
-                            settle_s=args.settle, max_stiffness_rate=args.max_stiffness_rate)
+                            goal=read_goal(args, plant, skill.joints), settle_s=args.settle,
+                            max_stiffness_rate=args.max_stiffness_rate)
         run = ReplayRun(setup, schedule, seed=args.seed)
         with tqdm(total=run.n_steps, desc="replay", unit="step", file=sys.stderr,
                   disable=not show_progress(args), leave=False, mininterval=0.5) as bar:
@@ -107,6 +105,7 @@ def _run(args: argparse.Namespace) -> int:
     if args.json:
         emit_json({"result_id": result_id, "skill": skill.name, "version": record.version,
                    "plant": plant.describe(), "status": status, "reason": reason,
+                   "goal": list(setup.goal or skill.goal), "duration_s": setup.movement_s,
                    "metrics": metrics, **verdict.to_dict()})
     else:
         print(f"replay of {skill.name} version {record.version} on the "

@@ -13,9 +13,12 @@ from compliant_demo.cli._job_options import (
     add_backend_options,
     add_plant_option,
     add_progress_option,
+    add_target_options,
     non_negative_int,
     positive_float,
     positive_int,
+    read_goal,
+    read_plant,
     show_progress,
 )
 from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
@@ -101,6 +104,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "
                                           "bench arm on antagonistic spring pairs")
     add_criteria_option(parser)
+    add_target_options(parser)
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
@@ -109,9 +113,12 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 def _run(args: argparse.Namespace) -> int:
     read_criteria(args)  # a bad criteria file is refused before anything is recorded
+    plant = read_plant(args)
+    goal = read_goal(args, plant, [joint.name for joint in plant.joints])
     settings = recording_settings(args, n_scenarios=args.scenarios, workers=args.workers,
                                   scheduler=args.scheduler, plant=args.plant,
-                                  criteria=args.criteria)
+                                  criteria=args.criteria, goal=goal,
+                                  duration_s=args.duration, settle_s=args.settle)
     result = run_tour(settings, progress=show_progress(args), announce=announce_plan)
     if args.json:
         emit_json(result.as_dict())

@@ -6,11 +6,13 @@ from rclpy.node import Node
 from std_srvs.srv import Trigger
 
 from compliant_demo.exceptions import CompliantDemoError
+from compliant_demo.generalisation import FORMULATION_CHOICES
 from compliant_demo.learning import LearnRequest, learn_from_store, matching_demonstrations
 from compliant_demo.nodes._common import (
     check_parameter_changes,
     declare,
     guarded_service,
+    is_list,
     list_parameter,
     open_store,
     run_node,
@@ -38,6 +40,10 @@ class LearnerNode(Node):
         d(self, "alignment", "dtw", "Time alignment: dtw, resample or none.", read_only=False)
         d(self, "stiffness_source", "auto", "Stiffness profile: auto, recorded or variability.",
           read_only=False)
+        d(self, "formulation", [],
+          "DMP form per joint in the order of 'joints', each auto, classic or goal_robust; one "
+          "entry applies to every joint; empty = auto for all (classic where start-to-goal is "
+          "at least half the excursion, else goal_robust).", read_only=False)
         # The learned stiffness profile stays inside these limits: set at launch only.
         d(self, "stiffness_min", 5.0, "Target joint's lowest stiffness, N*m/rad.",
           low=1e-3, high=1e5)
@@ -71,6 +77,8 @@ class LearnerNode(Node):
                 "n_basis": value("n_basis").value,
                 "alignment": value("alignment").value,
                 "stiffness_source": value("stiffness_source").value,
+                "formulation": _formulation(list_parameter(self, "formulation", str),
+                                            len(list_parameter(self, "joints", str))),
                 "stiffness_range": (value("stiffness_min").value, value("stiffness_max").value),
             },
         )
@@ -119,10 +127,20 @@ def _check_parameters(values: dict) -> str | None:
     if values["stiffness_source"] not in ("auto", "recorded", "variability"):
         return (f"stiffness_source must be auto, recorded or variability, got "
                 f"{values['stiffness_source'][:40]!r}")
+    forms = values["formulation"]
+    if not is_list(forms) or len(forms) not in (0, 1, len(values["joints"])) or any(
+            form not in FORMULATION_CHOICES for form in forms):
+        return (f"formulation must list {', '.join(FORMULATION_CHOICES)}: none, one, or one per "
+                f"joint ({len(values['joints'])}), got {str(forms)[:80]}")
     if not values["stiffness_min"] < values["stiffness_max"]:
         return (f"stiffness_min ({values['stiffness_min']}) must be below stiffness_max "
                 f"({values['stiffness_max']})")
     return None
+
+
+def _formulation(forms: list[str], n_joints: int) -> str | list[str]:
+    """``formulation`` as :func:`compliant_demo.learning.learn_skill` takes it."""
+    return list(forms) if len(forms) == n_joints and n_joints > 1 else (forms or ["auto"])[0]
 
 
 def main(args: list[str] | None = None) -> int:
