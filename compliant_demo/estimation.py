@@ -30,6 +30,7 @@ __all__ = [
     "tls_fit",
     "ols_fit",
     "design_band_pass",
+    "statistical_bandwidth",
     "SlidingStiffnessEstimator",
     "estimate_stiffness_series",
 ]
@@ -173,8 +174,10 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int
         m_xx = np.maximum(moments[_X, _X], 0.0)
         m_yy = np.maximum(moments[_Y, _Y], 0.0)
         m_xy = moments[_X, _Y]
-        df_scale = dof / np.maximum(n - 2.0 - len(nuisance), 1.0)
-        samples = np.maximum(n_effective, 2.0) - 1.0
+        # n_eff (n - 1) / n sample-sized squares of deviations; the fit takes (1 + p) n / n_eff
+        # of the residual's n - 1 (n - 1 and n - 2 - p for independent samples).
+        samples = np.maximum(n_effective, 2.0) * dof / n
+        df_scale = dof / np.maximum(dof - (1.0 + len(nuisance)) * dof / samples, 1.0)
         if method == "tls":
             spread = m_yy - ratio * m_xx
             root = np.sqrt(spread * spread + 4.0 * ratio * m_xy * m_xy)
@@ -354,6 +357,29 @@ def design_band_pass(band_hz: tuple[float, float], rate_hz: float, order: int = 
     return signal.butter(order, [low, high], btype="bandpass", fs=rate_hz, output="sos")
 
 
+def statistical_bandwidth(sos: np.ndarray, rate_hz: float) -> float:
+    """Statistical bandwidth B_s = (integral |H|^2 df)^2 / integral |H|^4 df of a filter, Hz.
+
+    Products of two signals band-passed by the filter, summed over T seconds, vary like
+    ``2 B_s T`` independent samples (Bendat and Piersol, Random Data, statistical bandwidth,
+    from memory): the estimator's effective sample count. Default band: 1.5 times its width.
+
+    Parameters
+    ----------
+    sos : (n_sections, 6) array
+        Second-order sections (:func:`design_band_pass`).
+    rate_hz : float, Hz
+
+    Returns
+    -------
+    float, Hz
+    """
+    frequency, response = signal.sosfreqz(sos, worN=1 << 16, fs=rate_hz)
+    power = np.abs(response) ** 2
+    step = frequency[1] - frequency[0]
+    return float((power.sum() * step) ** 2 / ((power**2).sum() * step))
+
+
 class SlidingStiffnessEstimator:
     """Online sliding-window joint impedance estimate per joint with constant cost per sample.
 
@@ -418,10 +444,10 @@ class SlidingStiffnessEstimator:
     in M, not in K. Bearing friction on that side is viscous and is partialled out with the
     rate. All channels refer to the sample before the newest, so the estimate lags the input
     by one sample. With a band-pass the filtered samples are correlated: the reported std uses
-    ``n_eff = min(n, 2 * (high - low) * window_s)`` independent samples (noise-bandwidth rule,
-    common practice) and the interval Student's t with ``n_eff - p`` degrees of freedom (p the
-    number of fitted parameters). Running sums are recomputed from the window buffer once per
-    window length so that rounding does not accumulate.
+    ``n_eff = min(n, 2 * B_s * window_s)`` independent samples, B_s the filter's statistical
+    bandwidth (:func:`statistical_bandwidth`), and the interval Student's t with ``n_eff - p``
+    degrees of freedom (p the number of fitted parameters). Running sums are recomputed from
+    the window buffer once per window length so that rounding does not accumulate.
     """
 
     def __init__(
@@ -498,7 +524,8 @@ class SlidingStiffnessEstimator:
             self.n_effective = float(window)
         else:
             self._sos = design_band_pass(band_hz, rate_hz, order)
-            self.n_effective = min(float(window), 2.0 * (band_hz[1] - band_hz[0]) * window_s)
+            bandwidth = statistical_bandwidth(self._sos, rate_hz)
+            self.n_effective = min(float(window), 2.0 * bandwidth * window_s)
         n_params = 2 + len(self.nuisance)
         self.interval_quantile = float(
             stats.t.ppf(0.5 + 0.5 * confidence, max(self.n_effective - n_params, 1.0))

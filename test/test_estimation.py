@@ -7,11 +7,13 @@ import odrpack
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scipy import signal
 
 from compliant_demo.estimation import (
     SlidingStiffnessEstimator,
     estimate_stiffness_series,
     ols_fit,
+    statistical_bandwidth,
     tls_fit,
 )
 from compliant_demo.exceptions import InvalidInputError
@@ -482,7 +484,7 @@ IMPEDANCE = dict(window_s=0.5, noise_variance_ratio=(0.005 / 2e-5) ** 2, band_hz
 
 
 def _impedance_response(stiffness, damping, inertia, seed, n=3000, n_trials=1, rate=1000.0,
-                        tones=(0.7, 1.0, 1.4)):
+                        tones=(0.7, 1.0, 1.4), angle_noise=2e-5):
     """Deflection as a sum of dither tones about 8 Hz and the torque of a mass-spring-damper
     that produces it (exact derivatives), with seeded sensor noise; columns are trials."""
     rng = np.random.default_rng(seed)
@@ -494,7 +496,7 @@ def _impedance_response(stiffness, damping, inertia, seed, n=3000, n_trials=1, r
     dx = 1e-3 * (w[:, None, None] * np.cos(angle)).sum(axis=0)
     ddx = -1e-3 * (w[:, None, None] ** 2 * np.sin(angle)).sum(axis=0)
     tau = stiffness * x + damping * dx + inertia * ddx
-    q = -x + rng.normal(0, 2e-5, x.shape)
+    q = -x + rng.normal(0, angle_noise, x.shape)
     return t, q, tau + rng.normal(0, 0.005, x.shape)
 
 
@@ -559,6 +561,56 @@ def test_interval_contains_the_truth_at_the_stated_rate():
     np.testing.assert_allclose(
         (high - low) / 2, estimator.interval_quantile * series.stiffness_std[-1], rtol=1e-9
     )
+
+
+@pytest.mark.parametrize(("stiffness", "damping", "inertia"),
+                         [(20.0, 0.3, 0.02), (150.0, 1.5, 0.0), (5.0, 0.1, 0.0)])
+def test_interval_is_calibrated_when_the_residual_is_white_in_the_band(stiffness, damping, inertia):
+    # 1,000 seeded windows (independent trials, last window each) whose residual is the torque
+    # sensor's white noise through the band-pass (angle noise 2e-6 rad: its share through the
+    # impedance is negligible). A calibrated 95 % interval covers K in 95 % of them: within
+    # 0.93 to 0.975 (binomial standard error 0.7 %; the statistical bandwidth, Bendat and
+    # Piersol, from memory, is an approximation for a three-tone dither). A calibrated std
+    # gives a median |z| of 0.674 (normal quantile at 0.75; common practice): within 0.6-0.8.
+    t, q, tau = _impedance_response(stiffness, damping, inertia, seed=23, n=1500,
+                                    n_trials=1000, angle_noise=2e-6)
+    settings = dict(IMPEDANCE, noise_variance_ratio=(0.005 / 2e-6) ** 2)
+    series = estimate_stiffness_series(t, q, tau, **settings)
+    assert series.excited[-1].all()
+    low, high = series.stiffness_low[-1], series.stiffness_high[-1]
+    coverage = np.mean((low <= stiffness) & (stiffness <= high))
+    assert 0.93 <= coverage <= 0.975
+    z = (series.stiffness[-1] - stiffness) / series.stiffness_std[-1]
+    assert 0.6 <= np.median(np.abs(z)) <= 0.8
+
+
+def test_interval_stays_conservative_when_angle_noise_colours_the_residual():
+    # Angle noise through the impedance K - M w^2 + i w D grows towards the band's top, while
+    # the deflection left after partialling sits at its lowest tone: the residual's power
+    # overstates the noise at the deflection's frequency, so the interval covers more often than
+    # stated (measured: 99.8 %, median |z| 0.46), never less.
+    t, q, tau = _impedance_response(20.0, 0.3, 0.02, seed=24, n=1500, n_trials=1000)
+    series = estimate_stiffness_series(t, q, tau, **IMPEDANCE)
+    low, high = series.stiffness_low[-1], series.stiffness_high[-1]
+    assert np.mean((low <= 20.0) & (20.0 <= high)) >= 0.95
+
+
+def test_statistical_bandwidth_closed_forms():
+    # An ideal band of width B has B_s = B; a single-pole low-pass (RC) with corner f_c has
+    # integral |H|^2 = pi f_c / 2 and integral |H|^4 = pi f_c / 4, so B_s = pi f_c (Bendat and
+    # Piersol, from memory; the integrals are closed forms). The digital low-pass from the
+    # bilinear transform with f_c far below the rate: within 1 %.
+    rate, corner = 10000.0, 10.0
+    sos = signal.butter(1, corner, btype="lowpass", fs=rate, output="sos")
+    assert statistical_bandwidth(sos, rate) == pytest.approx(np.pi * corner, rel=0.01)
+    # Butterworth low-pass of order n: integral |H|^2 = f_c (pi / 2n) / sin(pi / 2n) and
+    # integral |H|^4 = (2n - 1) / 2n times that (Beta-function integrals of 1 / (1 + x^2n)),
+    # so B_s = f_c (pi / 2n) / sin(pi / 2n) * 2n / (2n - 1); n = 4: 1.1728 f_c.
+    order = 4
+    sharp = signal.butter(order, 5 * corner, btype="lowpass", fs=rate, output="sos")
+    angle = np.pi / (2 * order)
+    expected = 5 * corner * angle / np.sin(angle) * 2 * order / (2 * order - 1)
+    assert statistical_bandwidth(sharp, rate) == pytest.approx(expected, rel=0.01)
 
 
 def test_summary_flags_count_excited_windows():
