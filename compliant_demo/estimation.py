@@ -21,6 +21,7 @@ from typing import Any
 import numpy as np
 from scipy import signal, stats
 
+from compliant_demo.band_pass import BandPassMeasures, band_pass_measures, design_band_pass
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
@@ -139,7 +140,8 @@ class _WindowFit:
     nuisance: dict
 
 
-def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int, ...]):
+def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int, ...],
+                   band: tuple[BandPassMeasures, Any] | None = None):
     """Window fit from running sums; arrays broadcast.
 
     ``sums`` holds the first moments of (x, y, v, a) and their products (``_PAIRS``) over ``n``
@@ -148,9 +150,10 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int
     (Frisch-Waugh-Lovell; Fuller 1987, section 2.2, from memory); their coefficients follow by
     back substitution. ``ratio`` is var(torque noise) / var(deflection noise). The Deming slope
     std follows Fuller (1987), Theorem 1.3.1 (from memory), with ``n_effective`` independent
-    samples in place of n. ``conditioning`` is the share of the deflection's variance that the
-    nuisance regressors do not explain (1 / variance inflation factor; 1 without nuisance) and
-    ``excitation`` the standard deviation of that share, rad.
+    samples in place of n, times :func:`_colour` when ``band`` (the band-pass's measures and the
+    link inertia added back) is given. ``conditioning`` is the share of the deflection's
+    variance that the nuisance regressors do not explain (1 / variance inflation factor; 1
+    without nuisance) and ``excitation`` the standard deviation of that share, rad.
     """
     first = sums[:_N_CHANNELS]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -159,6 +162,7 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int
         moments = {}
         for k, (a, b) in enumerate(_PAIRS):
             moments[a, b] = moments[b, a] = (sums[_N_CHANNELS + k] - first[a] * mean[b]) / dof
+        raw = dict(moments)
         raw_xx = moments[_X, _X]
         stages = []
         kept = list(range(_N_CHANNELS))
@@ -173,8 +177,10 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int
         m_xx = np.maximum(moments[_X, _X], 0.0)
         m_yy = np.maximum(moments[_Y, _Y], 0.0)
         m_xy = moments[_X, _Y]
-        df_scale = dof / np.maximum(n - 2.0 - len(nuisance), 1.0)
-        samples = np.maximum(n_effective, 2.0) - 1.0
+        # n_eff (n - 1) / n sample-sized squares of deviations; the fit takes (1 + p) n / n_eff
+        # of the residual's n - 1 (n - 1 and n - 2 - p for independent samples).
+        samples = np.maximum(n_effective, 2.0) * dof / n
+        df_scale = dof / np.maximum(dof - (1.0 + len(nuisance)) * dof / samples, 1.0)
         if method == "tls":
             spread = m_yy - ratio * m_xx
             root = np.sqrt(spread * spread + 4.0 * ratio * m_xy * m_xy)
@@ -200,9 +206,34 @@ def _fit_from_sums(sums, n, ratio, n_effective, method: str, nuisance: tuple[int
         for pivot, value in coefficients.items():
             intercept = intercept - value * mean[pivot]
         conditioning = m_xx / raw_xx if nuisance else np.ones_like(raw_xx)
+        if band is not None:
+            variance = variance * _colour(raw, slope, coefficients, ratio, *band)
     return _WindowFit(
         slope, intercept, np.sqrt(np.abs(variance)), np.sqrt(m_xx), conditioning, coefficients
     )
+
+
+def _colour(raw, slope, coefficients, ratio, band: BandPassMeasures, link_inertia):
+    """Share of the residual's power at the deflection's frequencies against the band's mean.
+
+    Angle noise n enters the residual as (K + D d/dt + M_e d^2/dt^2) n (M_e the fitted inertia
+    plus the link inertia added back to the torque), torque noise as itself: with white noise of
+    ratio r, the residual's density is proportional to r + |Z(w)|^2, |Z|^2 = K^2 +
+    (D^2 - 2 K M_e) w^2 + M_e^2 w^4. The slope's error sees it at the deflection's frequencies
+    (w^2, w^4 averaged over the band-passed deflection's power: m_vv / m_xx, m_aa / m_xx), the
+    residual's power over the whole band (the filter's moments); their ratio rescales the
+    variance. A white residual gives 1.
+    """
+    damping = coefficients.get(_V, 0.0)
+    inertia = coefficients.get(_A, 0.0) + link_inertia
+    cross = damping * damping - 2.0 * slope * inertia
+
+    def impedance_sq(w2, w4):
+        return slope * slope + cross * w2 + inertia * inertia * w4
+
+    at_signal = impedance_sq(raw[_V, _V] / raw[_X, _X], raw[_A, _A] / raw[_X, _X])
+    over_band = impedance_sq(band.mean_square_omega, band.mean_fourth_omega)
+    return (ratio + at_signal) / (ratio + over_band)
 
 
 def _finite_1d(name: str, values: object, size: int | None = None) -> np.ndarray:
@@ -328,32 +359,6 @@ def ols_fit(
     return _fit_arrays(deflection, torque, extra, 1.0, "ols")
 
 
-def design_band_pass(band_hz: tuple[float, float], rate_hz: float, order: int = 2) -> np.ndarray:
-    """Butterworth band-pass in second-order sections, the filter the estimator applies.
-
-    Parameters
-    ----------
-    band_hz : (low, high), Hz
-        Pass band; must satisfy 0 < low < high < rate_hz / 2.
-    rate_hz : float, Hz
-        Sample rate.
-    order : int
-        Butterworth order of each edge.
-
-    Returns
-    -------
-    (n_sections, 6) array
-        Second-order sections for :func:`scipy.signal.sosfilt`.
-    """
-    values = np.asarray(band_hz, dtype=float).ravel()
-    low, high = (values[0], values[1]) if values.size == 2 else (np.nan, np.nan)
-    if not (0 < low < high < rate_hz / 2):
-        raise InvalidInputError(
-            f"band_hz must satisfy 0 < low < high < rate_hz/2 = {rate_hz / 2}, got {band_hz!r}"
-        )
-    return signal.butter(order, [low, high], btype="bandpass", fs=rate_hz, output="sos")
-
-
 class SlidingStiffnessEstimator:
     """Online sliding-window joint impedance estimate per joint with constant cost per sample.
 
@@ -418,10 +423,13 @@ class SlidingStiffnessEstimator:
     in M, not in K. Bearing friction on that side is viscous and is partialled out with the
     rate. All channels refer to the sample before the newest, so the estimate lags the input
     by one sample. With a band-pass the filtered samples are correlated: the reported std uses
-    ``n_eff = min(n, 2 * (high - low) * window_s)`` independent samples (noise-bandwidth rule,
-    common practice) and the interval Student's t with ``n_eff - p`` degrees of freedom (p the
-    number of fitted parameters). Running sums are recomputed from the window buffer once per
-    window length so that rounding does not accumulate.
+    ``n_eff = min(n, 2 * B_s * window_s)`` independent samples, B_s the filter's statistical
+    bandwidth (:func:`~compliant_demo.band_pass.band_pass_measures`), for the
+    slope and for the residual's degrees of freedom, and rescales the residual's power to the
+    deflection's frequencies (angle noise through the impedance rises with frequency; see
+    ``_colour``); the interval is Student's t with ``n_eff - p`` degrees of freedom (p the
+    number of fitted parameters). Running sums are recomputed from
+    the window buffer once per window length so that rounding does not accumulate.
     """
 
     def __init__(
@@ -498,7 +506,9 @@ class SlidingStiffnessEstimator:
             self.n_effective = float(window)
         else:
             self._sos = design_band_pass(band_hz, rate_hz, order)
-            self.n_effective = min(float(window), 2.0 * (band_hz[1] - band_hz[0]) * window_s)
+            self._band = band_pass_measures(self._sos, rate_hz)
+            bandwidth = self._band.statistical_bandwidth_hz
+            self.n_effective = min(float(window), 2.0 * bandwidth * window_s)
         n_params = 2 + len(self.nuisance)
         self.interval_quantile = float(
             stats.t.ppf(0.5 + 0.5 * confidence, max(self.n_effective - n_params, 1.0))
@@ -653,6 +663,8 @@ class SlidingStiffnessEstimator:
             np.minimum(n_in, self.n_effective),
             self.method,
             self.nuisance,
+            None if self._sos is None else (
+                self._band, 0.0 if self.link_inertia is None else self.link_inertia),
         )
         settled = seen >= window + self.settle
         # A spring cannot have a non-positive stiffness: such a slope (a noisy window about a

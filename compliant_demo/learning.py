@@ -31,7 +31,11 @@ from compliant_demo.models import model_from_mapping
 from compliant_demo.phase_basis import FitMethod
 from compliant_demo.primitives import DampingPolicy, Formulation, Skill, fit_skill
 from compliant_demo.store.records import SkillRecord
-from compliant_demo.variability import stiffness_from_variability
+from compliant_demo.variability import (
+    VARIABILITY_BANDWIDTH,
+    pooled_variance,
+    stiffness_from_variability,
+)
 
 __all__ = [
     "DEFAULT_MAX_SAMPLES",
@@ -193,8 +197,8 @@ def _normalise_demo(item: object, index: int, joints: Sequence[str]) -> _Demo:
 
 def _align(
     demos: list[_Demo], alignment: AlignmentMethod, band: float | None, n_samples: int | None
-) -> tuple[NDArray, NDArray, NDArray | None, NDArray, dict[str, Any]]:
-    """Common time (n,), positions (d, n, j), stiffness (d, n, j) or None, variance (n, j)."""
+) -> tuple[NDArray, NDArray, NDArray | None, dict[str, Any]]:
+    """Common time (n,), positions (d, n, j), stiffness (d, n, j) or None, summary."""
     with_stiffness = all(d.stiffness is not None for d in demos)
     durations = [float(d.t[-1]) for d in demos]
     # One demonstration has nothing to be aligned with: it is only resampled onto a uniform grid.
@@ -212,7 +216,7 @@ def _align(
         summary.update(band=band, reference_index=aligned.reference_index,
                        dtw_costs=aligned.dtw_costs.tolist(), n_samples=aligned.time.size)
         stiffness = aligned.warped_channels["stiffness"] if with_stiffness else None
-        return aligned.time, aligned.warped_position, stiffness, aligned.variance, summary
+        return aligned.time, aligned.warped_position, stiffness, summary
     if alignment == "none":
         for index, demo in enumerate(demos[1:], start=1):
             if demo.t.shape != demos[0].t.shape or not np.allclose(demo.t, demos[0].t):
@@ -243,9 +247,7 @@ def _align(
         raise InvalidInputError(
             f"alignment: expected 'dtw', 'resample' or 'none', got {alignment!r}"
         )
-    variance = (positions.var(axis=0, ddof=1) if len(demos) > 1
-                else np.full(positions.shape[1:], np.nan))
-    return time, positions, stiffness, variance, summary
+    return time, positions, stiffness, summary
 
 
 def learn_skill(
@@ -265,6 +267,7 @@ def learn_skill(
     position_limits: ArrayLike | None = None,
     variance_floor: float | None = None,
     variability_reference: tuple[float, float] | None = None,
+    variability_bandwidth: float = VARIABILITY_BANDWIDTH,
     smoothing_window: int | None = None,
     name: str = "skill",
 ) -> Skill:
@@ -306,6 +309,9 @@ def learn_skill(
     variability_reference : (std rad, stiffness N*m/rad), the anchor of
         ``stiffness_from_variability``: demonstrations that vary by this spread give this
         stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
+    variability_bandwidth : fraction of the phase, std of the kernel that pools the variance of
+        the aligned demonstrations along the phase (:func:`~compliant_demo.variability.
+        pooled_variance`); 0 takes each sample's own variance
     smoothing_window : odd sample count of the Savitzky-Golay derivative filter of
         :func:`~compliant_demo.primitives.fit_skill`. Default: about 10 % of the samples after DTW
         alignment (whose warped time has plateaus and steps), none otherwise
@@ -353,15 +359,17 @@ def learn_skill(
                                     "target joint's (k_min, k_max), got None")
         k_range = ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
 
-    time, positions, recorded, variance, summary = _align(normalised, alignment, band, n_samples)
+    time, positions, recorded, summary = _align(normalised, alignment, band, n_samples)
     stiffness: NDArray[np.float64] | None = recorded
     if source == "variability":
         anchor = {} if variability_reference is None else {
             "reference_std": variability_reference[0],
             "reference_stiffness": variability_reference[1]}
-        profile = stiffness_from_variability(variance, k_range[:, 0], k_range[:, 1],
-                                             n_demos=len(normalised),
-                                             variance_floor=variance_floor, **anchor)
+        pooled = pooled_variance(positions, variability_bandwidth)
+        profile = stiffness_from_variability(
+            pooled.variance, k_range[:, 0], k_range[:, 1], n_demos=len(normalised),
+            degrees_of_freedom=pooled.degrees_of_freedom, variance_floor=variance_floor,
+            **anchor)
         stiffness = np.broadcast_to(profile, positions.shape)
     if smoothing_window is None and summary.get("dtw_costs") is not None:
         # About 10 % of the samples: the warped mean moves in steps (several demonstration

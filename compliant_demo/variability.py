@@ -1,24 +1,140 @@
 """Stiffness from the spread of aligned demonstrations: stiff where the operator varied least.
 
 One law, from per-sample variance across demonstrations to a stiffness schedule, with levels
-anchored at a stated reference spread and stiffness rather than stretched over the range.
+anchored at a stated reference spread and stiffness rather than stretched over the range, and
+the variance it takes pooled over a stated neighbourhood of the phase, with the degrees of
+freedom that pooling buys.
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
+from scipy.ndimage import gaussian_filter1d
 
 from compliant_demo.exceptions import InvalidInputError
 
-__all__ = ["VARIABILITY_REFERENCE_STD", "stiffness_from_variability"]
+__all__ = [
+    "VARIABILITY_BANDWIDTH",
+    "VARIABILITY_REFERENCE_STD",
+    "PooledVariance",
+    "pooled_variance",
+    "stiffness_from_variability",
+]
+
+VARIABILITY_BANDWIDTH = 0.03
+"""Default std of the Gaussian pooling kernel of :func:`pooled_variance`, fraction of the phase.
+
+Our own choice: a third of the shortest stiffness change worth resolving (about a tenth of a
+movement), so a change keeps most of its height while each level pools over a few times more
+independent deviation than one sample gives.
+"""
 
 VARIABILITY_REFERENCE_STD = 0.02
 """Default spread, rad, at which :func:`stiffness_from_variability` gives its reference stiffness.
 
 Our own choice: about the spread of a relaxed operator's repeated guiding motions on a bench arm.
 """
+
+
+@dataclass(frozen=True)
+class PooledVariance:
+    """Variance across demonstrations pooled along the phase, with its degrees of freedom.
+
+    Attributes
+    ----------
+    variance : (n_samples, n_joints) array, rad^2
+        Kernel-weighted mean of the per-sample variances (ddof=1).
+    degrees_of_freedom : (n_joints,) array
+        Effective degrees of freedom of ``variance`` away from the ends (Satterthwaite), at
+        least ``n_demos - 1``.
+    correlation_length : (n_joints,) array, fraction of the phase
+        Lag at which the deviations' estimated correlation along the phase first drops below
+        1/e (a description of how much independent deviation the kernel pools).
+    """
+
+    variance: np.ndarray
+    degrees_of_freedom: np.ndarray
+    correlation_length: np.ndarray
+
+
+def pooled_variance(positions: object, bandwidth: float = VARIABILITY_BANDWIDTH) -> PooledVariance:
+    """Variance across aligned demonstrations, pooled over a neighbourhood of the phase.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+    bandwidth : float, fraction of the phase
+        Std of the Gaussian kernel (default :data:`VARIABILITY_BANDWIDTH`); 0 gives the
+        per-sample variance with ``n_demos - 1`` degrees of freedom.
+
+    Returns
+    -------
+    PooledVariance
+
+    Notes
+    -----
+    ``V(t) = sum_k w(t, t_k) s^2(t_k)`` with Gaussian weights normalised over the samples inside
+    the phase (Nadaraya-Watson, so the ends pool one-sided). For normal deviations with a
+    locally constant spread, ``cov(s_k^2, s_l^2) = 2 sigma^4 rho_kl^2 / (n - 1)``, so
+    Satterthwaite's approximation (Biometrics Bulletin 2(6), 110-114, 1946) gives
+    ``nu = 2 E[V]^2 / var V = (n - 1) / sum_lag rho(lag)^2 (w * w)(lag)``, ``w * w`` the
+    kernel's autocorrelation (a Gaussian of std sqrt(2) * bandwidth). ``rho(lag)`` is the
+    correlation along the phase of the deviations from the aligned mean, each scaled by its
+    sample's spread, averaged over demonstrations and phase. Deviations that are correlated
+    over the whole kernel add no degrees of freedom; independent ones add about
+    ``1 / (2 sqrt(pi) bandwidth)`` per sample interval covered. Kernel smoothing of a
+    variance function along the index is common practice (e.g. Fan and Yao, Biometrika
+    85(3), 645-660, 1998, from memory).
+    """
+    x = np.asarray(positions, dtype=float)
+    if x.ndim != 3 or x.shape[0] < 2 or x.shape[1] < 2:
+        raise InvalidInputError(
+            "positions must be an (n_demos, n_samples, n_joints) array with at least 2 "
+            f"demonstrations and 2 samples, got shape {x.shape}"
+        )
+    if not np.isfinite(x).all():
+        index = tuple(int(i) for i in np.argwhere(~np.isfinite(x))[0])
+        raise InvalidInputError(f"positions{list(index)} = {x[index]} is not finite")
+    if not (math.isfinite(bandwidth) and 0 <= bandwidth <= 1):
+        raise InvalidInputError(f"bandwidth must lie in [0, 1], got {bandwidth!r}")
+    n_demos, n_samples, n_joints = x.shape
+    deviation = x - x.mean(axis=0)
+    variance = (deviation**2).sum(axis=0) / (n_demos - 1)
+    base_dof = float(n_demos - 1)
+    sigma = bandwidth * (n_samples - 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scaled = np.where(variance > 0, deviation / np.sqrt(variance), 0.0)
+    rho = _phase_correlation(scaled)
+    below = rho < math.exp(-1.0)
+    first = np.where(below.any(axis=0), below.argmax(axis=0), n_samples - 1)
+    length = first / (n_samples - 1)
+    if sigma < 0.5:
+        return PooledVariance(variance, np.full(n_joints, base_dof), length)
+    pooled = gaussian_filter1d(variance, sigma, axis=0, mode="constant", cval=0.0)
+    pooled /= gaussian_filter1d(np.ones(n_samples), sigma, mode="constant", cval=0.0)[:, None]
+    lags = np.arange(-(n_samples - 1), n_samples)
+    kernel = np.exp(-0.25 * (lags / sigma) ** 2)
+    kernel /= kernel.sum()
+    rho_sq = np.concatenate([rho[:0:-1], rho]) ** 2
+    dof = base_dof / np.maximum(kernel @ rho_sq, 1.0 / n_samples)
+    return PooledVariance(pooled, np.maximum(dof, base_dof), length)
+
+
+def _phase_correlation(scaled: np.ndarray) -> np.ndarray:
+    """(n_samples, n_joints) correlation of scaled deviations at lags 0, 1, ... (FFT)."""
+    n_samples = scaled.shape[1]
+    size = 1 << int(2 * n_samples - 1).bit_length()
+    spectrum = np.fft.rfft(scaled, n=size, axis=1)
+    products = np.fft.irfft(spectrum * spectrum.conj(), n=size, axis=1)[:, :n_samples]
+    overlap = (n_samples - np.arange(n_samples))[:, None]
+    mean_product = products.sum(axis=0) / overlap
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rho = np.where(mean_product[:1] > 0, mean_product / mean_product[:1], 0.0)
+    return np.clip(rho, -1.0, 1.0)
 
 
 def stiffness_from_variability(
@@ -31,14 +147,15 @@ def stiffness_from_variability(
     reference_stiffness: float | np.ndarray | None = None,
     exponent: float = 1.0,
     variance_floor: float | None = None,
+    degrees_of_freedom: float | np.ndarray | None = None,
 ) -> np.ndarray:
     """Stiffness schedule from the spread of aligned demonstrations: stiff where they agree.
 
     Parameters
     ----------
     variance : (n_samples, n_joints) array, rad^2
-        Per-sample sample variance (ddof=1) across aligned demonstrations
-        (``AlignedSet.variance``).
+        Sample variance (ddof=1) across aligned demonstrations, per sample
+        (``AlignedSet.variance``) or pooled along the phase (:func:`pooled_variance`).
     k_min, k_max : float or (n_joints,) array, N*m/rad
         Target joint's stiffness range; the schedule is clipped to it.
     n_demos : int
@@ -54,12 +171,15 @@ def stiffness_from_variability(
     variance_floor : float, rad^2, optional
         Lower bound on the variance before inversion; default none (a zero variance gives
         ``k_max`` through the clipping).
+    degrees_of_freedom : float or (n_joints,) array, optional
+        Degrees of freedom of ``variance``; default ``n_demos - 1`` (per-sample variance).
+        Give ``PooledVariance.degrees_of_freedom`` for a pooled variance.
 
     Returns
     -------
     (n_samples, n_joints) array, N*m/rad
         ``clip(K_ref * (c * reference_std^2 / variance)^p, k_min, k_max)`` per joint, with
-        ``c = (n - 3) / (n - 1)`` for n > 3 demonstrations and 1 otherwise.
+        ``c = (nu - 2) / nu`` for nu > 2 degrees of freedom and 1 otherwise.
 
     Notes
     -----
@@ -70,8 +190,9 @@ def stiffness_from_variability(
     the minimum-intervention principle of optimal feedback control (Todorov and Jordan, Nature
     Neuroscience 5(11), 1226-1235, 2002): an operator corrects deviations, so varies least,
     where the task needs stiffness. ``c`` makes ``c / s^2`` an unbiased estimate of
-    ``1 / sigma^2`` for normal deviations, since ``(n - 1) s^2 / sigma^2`` is chi-square with
-    n - 1 degrees of freedom and ``E[1 / chi^2_k] = 1 / (k - 2)`` (common practice).
+    ``1 / sigma^2`` for normal deviations, since ``nu s^2 / sigma^2`` is (approximately, for a
+    pooled variance) chi-square with nu degrees of freedom and ``E[nu / chi^2_nu] =
+    nu / (nu - 2)`` (common practice); nu = n - 1 for a per-sample variance.
     """
     var = np.asarray(variance, dtype=float)
     if var.ndim == 1:
@@ -110,7 +231,14 @@ def stiffness_from_variability(
         if not (math.isfinite(variance_floor) and variance_floor > 0):
             raise InvalidInputError(f"variance_floor must be positive, got {variance_floor!r}")
         var = np.maximum(var, variance_floor)
-    unbiased = (n_demos - 3) / (n_demos - 1) if n_demos > 3 else 1.0
+    dof = np.broadcast_to(
+        np.asarray(n_demos - 1 if degrees_of_freedom is None else degrees_of_freedom,
+                   dtype=float), (var.shape[1],))
+    if not (np.isfinite(dof).all() and (dof > 0).all()):
+        raise InvalidInputError(
+            f"degrees_of_freedom must be positive and finite, got {degrees_of_freedom!r}"
+        )
+    unbiased = np.where(dof > 2, (dof - 2) / dof, 1.0)
     with np.errstate(divide="ignore"):
         ratio = unbiased * reference_std**2 / var
     return np.clip(reference * ratio**exponent, low, high)

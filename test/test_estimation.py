@@ -7,7 +7,9 @@ import odrpack
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scipy import signal
 
+from compliant_demo.band_pass import band_pass_measures
 from compliant_demo.estimation import (
     SlidingStiffnessEstimator,
     estimate_stiffness_series,
@@ -482,7 +484,7 @@ IMPEDANCE = dict(window_s=0.5, noise_variance_ratio=(0.005 / 2e-5) ** 2, band_hz
 
 
 def _impedance_response(stiffness, damping, inertia, seed, n=3000, n_trials=1, rate=1000.0,
-                        tones=(0.7, 1.0, 1.4)):
+                        tones=(0.7, 1.0, 1.4), angle_noise=2e-5):
     """Deflection as a sum of dither tones about 8 Hz and the torque of a mass-spring-damper
     that produces it (exact derivatives), with seeded sensor noise; columns are trials."""
     rng = np.random.default_rng(seed)
@@ -494,7 +496,7 @@ def _impedance_response(stiffness, damping, inertia, seed, n=3000, n_trials=1, r
     dx = 1e-3 * (w[:, None, None] * np.cos(angle)).sum(axis=0)
     ddx = -1e-3 * (w[:, None, None] ** 2 * np.sin(angle)).sum(axis=0)
     tau = stiffness * x + damping * dx + inertia * ddx
-    q = -x + rng.normal(0, 2e-5, x.shape)
+    q = -x + rng.normal(0, angle_noise, x.shape)
     return t, q, tau + rng.normal(0, 0.005, x.shape)
 
 
@@ -559,6 +561,65 @@ def test_interval_contains_the_truth_at_the_stated_rate():
     np.testing.assert_allclose(
         (high - low) / 2, estimator.interval_quantile * series.stiffness_std[-1], rtol=1e-9
     )
+
+
+@pytest.mark.parametrize(("stiffness", "damping", "inertia"),
+                         [(20.0, 0.3, 0.02), (150.0, 1.5, 0.0), (5.0, 0.1, 0.0)])
+def test_interval_is_calibrated_when_the_residual_is_white_in_the_band(stiffness, damping, inertia):
+    # 1,000 seeded windows (independent trials, last window each) whose residual is the torque
+    # sensor's white noise through the band-pass (angle noise 2e-6 rad: its share through the
+    # impedance is negligible). A calibrated 95 % interval covers K in 95 % of them: within
+    # 0.93 to 0.975 (binomial standard error 0.7 %; the statistical bandwidth, Bendat and
+    # Piersol, from memory, is an approximation for a three-tone dither). A calibrated std
+    # gives a median |z| of 0.674 (normal quantile at 0.75; common practice; 0.71 for Student's
+    # t with the interval's 7.8 degrees of freedom): within 0.6-0.8.
+    t, q, tau = _impedance_response(stiffness, damping, inertia, seed=23, n=1500,
+                                    n_trials=1000, angle_noise=2e-6)
+    settings = dict(IMPEDANCE, noise_variance_ratio=(0.005 / 2e-6) ** 2)
+    series = estimate_stiffness_series(t, q, tau, **settings)
+    assert series.excited[-1].all()
+    low, high = series.stiffness_low[-1], series.stiffness_high[-1]
+    coverage = np.mean((low <= stiffness) & (stiffness <= high))
+    assert 0.93 <= coverage <= 0.975
+    z = (series.stiffness[-1] - stiffness) / series.stiffness_std[-1]
+    assert 0.6 <= np.median(np.abs(z)) <= 0.8
+
+
+def test_interval_follows_the_residual_coloured_by_angle_noise():
+    # Angle noise 2e-5 rad through the impedance K - M w^2 + i w D grows towards the band's top,
+    # while the deflection sits lower: the residual's power over the band overstates the noise
+    # at the deflection's frequencies. Rescaled by the impedance at the deflection's spectral
+    # moments against the band's, the 95 % interval covers K in 0.93 to 0.99 of 1,000 seeded
+    # windows (without the rescaling: 99.8 %, median |z| 0.46); the deflection's moments are
+    # taken before the rate and acceleration are partialled out, which errs slightly on the safe
+    # side (measured 97-98 %).
+    t, q, tau = _impedance_response(20.0, 0.3, 0.02, seed=24, n=1500, n_trials=1000)
+    series = estimate_stiffness_series(t, q, tau, **IMPEDANCE)
+    low, high = series.stiffness_low[-1], series.stiffness_high[-1]
+    assert 0.93 <= np.mean((low <= 20.0) & (20.0 <= high)) <= 0.99
+    z = (series.stiffness[-1] - 20.0) / series.stiffness_std[-1]
+    assert 0.55 <= np.median(np.abs(z)) <= 0.8
+
+
+def test_band_pass_measures_closed_forms():
+    # Butterworth low-pass of order n, corner w_c (Beta-function integrals of x^2k / (1 + x^2n),
+    # common practice): integral |H|^2 = f_c (pi / 2n) / sin(pi / 2n), integral |H|^4 =
+    # (2n - 1) / 2n times that, so the statistical bandwidth (Bendat and Piersol, from memory)
+    # is f_c (pi / 2n) / sin(pi / 2n) * 2n / (2n - 1); power-weighted mean of
+    # w^2 w_c^2 sin(pi / 2n) / sin(3 pi / 2n), of w^4 w_c^4 sin(pi / 2n) / sin(5 pi / 2n).
+    # Digital filter (bilinear transform) with the corner far below the rate: within 1 %.
+    rate, corner = 10000.0, 50.0
+    for order in (2, 4):
+        measures = band_pass_measures(
+            signal.butter(order, corner, btype="lowpass", fs=rate, output="sos"), rate)
+        angle = np.pi / (2 * order)
+        assert measures.statistical_bandwidth_hz == pytest.approx(
+            corner * angle / np.sin(angle) * 2 * order / (2 * order - 1), rel=0.01)
+    w_c = 2 * np.pi * corner
+    assert measures.mean_square_omega == pytest.approx(
+        w_c**2 * np.sin(angle) / np.sin(3 * angle), rel=0.01)
+    assert measures.mean_fourth_omega == pytest.approx(
+        w_c**4 * np.sin(angle) / np.sin(5 * angle), rel=0.01)
 
 
 def test_summary_flags_count_excited_windows():

@@ -457,8 +457,10 @@ def test_variability_profile_is_stiff_where_the_simulated_teacher_is(seed):
     # The simulated teacher varies between demonstrations with a variance inversely proportional
     # to its stiffness (minimum-intervention idea: Todorov and Jordan, Nature Neuroscience 5(11),
     # 2002; the law is our own choice): 6 / 4 N*m/rad in the approach and retreat, 40 / 30 in the
-    # press. From 8 demonstrations the sample variance has 7 degrees of freedom (its 90 % range
-    # spans a factor of 6, as wide as the teacher's own range), so the stated bound is modest:
+    # press. From 8 demonstrations the sample variance has 7 degrees of freedom per sample (its
+    # 90 % range spans a factor of 6, as wide as the teacher's own range) and about 9-10 pooled
+    # along the phase (the deviations stay correlated over a tenth of the movement), so the
+    # stated bound is modest:
     # the learned profile's median in the press exceeds its medians in the approach and in the
     # retreat by at least 1.3 on both joints.
     from compliant_demo.teaching import cork_seat_scenario, teaching_series

@@ -132,8 +132,8 @@ def test_estimator_recovers_hand_stiffness(seed, sensor):
     assert np.percentile(error, 95) < 0.15
     # The reported standard deviation is of the right size or conservative: at least 90 % of
     # the errors lie within three reported standard deviations, and the median z-score is
-    # between 0.1 and 2 (0.67 for a calibrated normal; the noise-bandwidth count of independent
-    # samples errs on the safe side with the band-passed channels).
+    # between 0.1 and 2 (0.67 for a calibrated normal; the coverage of the interval is tested
+    # in test_estimation).
     z = np.abs(series.stiffness[steady] - truth[steady]) / series.stiffness_std[steady]
     assert np.mean(z < 3) > 0.9
     assert 0.1 < np.median(z) < 2
