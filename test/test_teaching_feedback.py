@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from types import SimpleNamespace
 
 import numpy as np
@@ -204,3 +205,15 @@ def test_earlier_demonstrations_come_from_the_store_by_skill_tags_and_status(tmp
         np.testing.assert_array_equal(found[0][1][:, 0], ids[0][1][::10, 1])
         np.testing.assert_array_equal(found[1][1][:, 0], ids[3][1][::10, 1])
         assert len(earlier_demonstrations(store, "cork_seat", ["bench"], ["elbow"], 1)) == 1
+
+
+@pytest.mark.parametrize(("option", "value", "match"), [
+    ("--timeout", "0", r"--timeout: '0' is not a number of seconds in \(0, 1e7\]"),
+    ("--demos", "0", r"--demos: 0 is out of range \(1..1000000\)"),
+    ("--domain-id", "300", r"--domain-id: 300 is out of range \(0..232\)"),
+])
+def test_teaching_watch_refuses_bad_bounds_before_starting_anything(capsys, option, value, match):
+    from compliant_demo.cli import main
+
+    assert main(["teaching-watch", option, value]) == 2
+    assert re.search(match, capsys.readouterr().err)
