@@ -12,7 +12,9 @@ On ROS the motor angles travel as ``sensor_msgs/JointState`` on ``motor_states``
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -21,7 +23,7 @@ from compliant_demo.models import AntagonisticParams
 from compliant_demo.sim.mechanisms import antagonistic_motor_angles, antagonistic_stiffness
 
 __all__ = ["model_stiffness", "motor_joint_names", "held_model_stiffness",
-           "teaching_motor_angles"]
+           "teaching_motor_angles", "compare_with_estimate"]
 
 
 def motor_joint_names(joints: Sequence[str]) -> list[str]:
@@ -135,3 +137,56 @@ def model_stiffness(
         antagonistic_stiffness(params, q[:, j], motors[:, j, 0], motors[:, j, 1])
         for j, params in enumerate(joints)
     ])
+
+
+def compare_with_estimate(
+    t: object, position: object, torque: object, model: object,
+    estimator_settings: Mapping[str, Any],
+) -> list[dict[str, float]]:
+    """The model-based stiffness of a demonstration against the estimate from its own samples.
+
+    Parameters
+    ----------
+    t : (n,) array, s
+    position : (n, n_joints) array, rad
+    torque : (n, n_joints) array, N*m
+    model : (n, n_joints) array, N*m/rad; the stored model channel (NaN: unknown)
+    estimator_settings : keyword arguments of
+        :class:`compliant_demo.estimation.SlidingStiffnessEstimator` (as the recorder's)
+
+    Returns
+    -------
+    list of dict, one per joint
+        ``compared`` (share of samples where both exist), ``model_median`` and
+        ``estimate_median`` (N*m/rad), ``relative_difference_median`` (median of
+        (estimate - model) / model) and ``rms_difference`` (N*m/rad), over those samples; NaN
+        where there are none.
+
+    Notes
+    -----
+    The sliding-window estimate (:func:`compliant_demo.estimation.estimate_stiffness_series`)
+    describes the stiffness its latency earlier, so it is moved back by
+    :attr:`SlidingStiffnessEstimator.latency_s` before the samples are paired.
+    """
+    from compliant_demo.estimation import SlidingStiffnessEstimator, estimate_stiffness_series
+
+    times = np.asarray(t, dtype=float)
+    k_model = np.asarray(model, dtype=float)
+    series = estimate_stiffness_series(times, position, torque, **estimator_settings)
+    rate = 1.0 / float(np.median(np.diff(times)))
+    latency = SlidingStiffnessEstimator(k_model.shape[1], rate_hz=rate,
+                                        **estimator_settings).latency_s
+    rows = []
+    for j in range(k_model.shape[1]):
+        estimate = np.interp(times + latency, times, series.stiffness[:, j], right=np.nan)
+        both = np.isfinite(estimate) & np.isfinite(k_model[:, j])
+        m, e = k_model[both, j], estimate[both]
+        nan = math.nan
+        rows.append({
+            "compared": float(both.mean()),
+            "model_median": float(np.median(m)) if both.any() else nan,
+            "estimate_median": float(np.median(e)) if both.any() else nan,
+            "relative_difference_median": float(np.median((e - m) / m)) if both.any() else nan,
+            "rms_difference": float(np.sqrt(np.mean((e - m) ** 2))) if both.any() else nan,
+        })
+    return rows

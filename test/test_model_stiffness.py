@@ -88,3 +88,26 @@ def test_teaching_motor_angles_give_back_the_clamped_stiffness_at_the_link():
                                0.0, atol=1e-10)
     with pytest.raises(InvalidInputError, match=r"expected \(n, 2\) arrays, got \(50, 2\) and"):
         teaching_motor_angles([params, params], q, wanted[:3])
+
+
+def test_comparison_with_the_estimate_on_the_simulated_teacher():
+    """Reference: the simulated teacher's hand stiffness (ground truth of the simulation). As
+    the model channel it must agree with the estimate within the recorder's 5 % median bound
+    (test_e2e_pipeline); clamped to a range above the soft hand, the model stays above."""
+    from compliant_demo.model_stiffness import compare_with_estimate
+    from compliant_demo.teaching import cork_seat_scenario, simulate_teaching
+
+    scenario = cork_seat_scenario()
+    record = simulate_teaching(scenario, 3)
+    settings = scenario.estimator_settings()
+    exact = compare_with_estimate(record.t, record.position, record.torque,
+                                  record.hand_stiffness_truth, settings)
+    for row in exact:
+        assert row["compared"] > 0.5
+        assert abs(row["relative_difference_median"]) <= 0.05
+    clamped = compare_with_estimate(record.t, record.position, record.torque,
+                                    np.clip(record.hand_stiffness_truth, 15.0, 180.0), settings)
+    for row, same in zip(clamped, exact, strict=True):
+        assert row["model_median"] == 15.0  # the hand is softer than 15 N*m/rad most of the time
+        assert row["estimate_median"] == pytest.approx(same["estimate_median"])
+        assert row["relative_difference_median"] < -0.5
