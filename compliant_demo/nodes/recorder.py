@@ -377,9 +377,6 @@ def _model_channel(p: dict):
 def _check_parameters(values: dict) -> str | None:
     if not values["skill"]:
         return "skill must not be empty"
-    if values["stiffness_channel"] not in ("estimate", "reference", "model", "none"):
-        return (f"stiffness_channel = {values['stiffness_channel']!r}: must be estimate, "
-                "reference, model or none")
     sensor, inertia = values["estimator_torque_sensor"], list(values["estimator_link_inertia"])
     if sensor not in ("hand", "joint"):
         return f"estimator_torque_sensor must be hand or joint, got {sensor!r}"
