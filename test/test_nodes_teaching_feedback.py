@@ -82,9 +82,10 @@ def test_the_model_channel_stores_the_springs_stiffness_the_teacher_set(tmp_path
     default plant's range [15, 180] N*m/rad (``teaching_motor_angles``); the recorder stores
     the springs' stiffness from the motor angles it receives (held per sample)."""
     store, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
-    arguments = {"store": str(store), "demos": "1", "truth": str(truth_path)}
+    arguments = {"store": str(store), "demos": "1", "truth": str(truth_path),
+                 "stiffness_channel": "model"}
     with launched("record.launch.xml", arguments, DOMAIN_ID, tmp_path,
-                  {"teacher": TEACHER, "recorder": {"stiffness_channel": "model"}}) as nodes:
+                  {"teacher": TEACHER}) as nodes:
         assert nodes.wait("teacher", 90.0) == 0, nodes.all_logs()
     truth = np.load(truth_path)
     with DemoStore(store, read_only=True) as db:
