@@ -378,7 +378,8 @@ class ChunkWriter:
     observer : object with ``chunk(demonstration_id, request, t, position, estimator)`` and
         ``finished(status)``, optional
         Told in this thread about each stored chunk (t in s from the demonstration's start) and
-        each finished demonstration (e.g. :class:`compliant_demo.teaching_feedback.LiveFeedback`).
+        each finished demonstration that stored any samples (e.g.
+        :class:`compliant_demo.teaching_feedback.LiveFeedback`).
     """
 
     def __init__(
@@ -549,7 +550,7 @@ class ChunkWriter:
                 self.last_error = demonstration.write_error
                 status = "incomplete"
         demonstration.final_status = status
-        if self._observer is not None:
+        if self._observer is not None and demonstration.demonstration_id is not None:
             self._observer.finished(status)
         demonstration.finished.set()
 

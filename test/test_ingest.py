@@ -396,6 +396,8 @@ def test_model_channel_stores_the_springs_stiffness_from_the_held_motor_angles(t
             assert session.set_reference([0.3, -0.1, 2.0, 1.7])
         session.ingest(*_message(i, position=[0.1, 1.85]))
     assert session.stop(wait_s=5.0)[0]
+    session.start()  # a demonstration that stores nothing tells the observer nothing
+    assert session.stop(wait_s=5.0) == (False, "nothing stored: 0 samples accepted of 0 received")
     session.shutdown()
     with DemoStore(path, read_only=True) as store:
         (info,) = store.find_demonstrations(skill="cork_seat")
