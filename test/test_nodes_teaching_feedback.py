@@ -9,7 +9,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import ROOT, DiagnosticsOf, TestClient, launched, ros_env
+from nodes_support import ROOT, DiagnosticsOf, TestClient, launched, ros_env, start_module
 
 from compliant_demo.app.supervisor import start_child, stop_children
 from compliant_demo.ingest import STIFFNESS_MODEL_FLAG
@@ -98,3 +98,48 @@ def test_the_model_channel_stores_the_springs_stiffness_the_teacher_set(tmp_path
     # Held from the newest motor message: at most a few samples old; the hand's stiffness
     # changes by well under 1 % per sample.
     np.testing.assert_allclose(demo.stiffness[known], expected[known], rtol=0.02)
+
+
+def test_motor_states_the_recorder_cannot_use_are_counted_and_ignored(tmp_path: Path) -> None:
+    from sensor_msgs.msg import JointState
+
+    from compliant_demo.nodes._common import recorded_qos
+
+    nodes = start_module("compliant_demo.nodes.recorder",
+                         [f"store_path:={tmp_path / 'store.sqlite'}", "stiffness_channel:=model",
+                          "diagnostics_period_s:=0.2"], DOMAIN_ID, tmp_path / "recorder.log",
+                         "recorder")
+    client = TestClient(DOMAIN_ID, "motor_states_test_client")
+    diagnostics = DiagnosticsOf(client, "recorder")
+    try:
+        publisher = client.node.create_publisher(JointState, "motor_states", recorded_qos(10))
+        client.spin_until(lambda: publisher.get_subscription_count() >= 1, 30.0, "the recorder")
+        names = ["shoulder_motor_1", "shoulder_motor_2", "elbow_motor_1", "elbow_motor_2"]
+        for message in (JointState(name=names[:2], position=[0.1, 0.2]),
+                        JointState(name=names, position=[0.1, 0.2]),
+                        JointState(name=names, position=[0.1, float("nan"), 0.0, 0.0])):
+            publisher.publish(message)
+        client.spin_until(lambda: diagnostics.latest.get("rejected") == "3", 30.0,
+                          "three rejected motor states")
+        values = diagnostics.latest
+        assert values["rejected/motor_states/missing_motors"] == "1"
+        assert values["rejected/motor_states/wrong_length"] == "1"
+        assert values["rejected/motor_states/non_finite"] == "1"
+        assert nodes.interrupt("recorder") == 0, nodes.log("recorder")
+    finally:
+        diagnostics.close()
+        client.close()
+        nodes.close()
+
+
+def test_the_model_channel_needs_antagonistic_springs(tmp_path: Path) -> None:
+    nodes = start_module("compliant_demo.nodes.recorder",
+                         [f"store_path:={tmp_path / 'store.sqlite'}", "stiffness_channel:=model",
+                          f"plant_file:={ROOT / 'config' / 'joint_cork_seat_ideal.yaml'}"],
+                         DOMAIN_ID, tmp_path / "recorder.log", "recorder")
+    try:
+        assert nodes.wait("recorder", 60.0) == 2
+    finally:
+        nodes.close()
+    assert ("model stiffness needs one antagonistic mechanism per joint, got ['ideal', 'ideal']"
+            in nodes.log("recorder")), nodes.log("recorder")
