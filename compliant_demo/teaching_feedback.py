@@ -25,7 +25,7 @@ import json
 import math
 import threading
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -427,7 +427,7 @@ class LiveFeedback:
                                           if reference is not None else None),
                 settings=self.settings)
             tracked_s = tracker.count / TRACK_RATE_HZ if tracker is not None else 0.0
-        return FeedbackReport(**{**report.__dict__, "reasons": _reasons(report, tracked_s)})
+        return replace(report, reasons=_reasons(report, tracked_s))
 
 
 def advice(values: Mapping[str, str], *, as_json: bool = False) -> str | None:
