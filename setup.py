@@ -67,6 +67,7 @@ setup(
             "recorder_node = compliant_demo.nodes.recorder:main",
             "learner_node = compliant_demo.nodes.learner:main",
             "replay_node = compliant_demo.nodes.replay:main",
+            "teaching_watch_node = compliant_demo.nodes.teaching_watch:main",
         ],
     },
 )

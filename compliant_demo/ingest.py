@@ -22,6 +22,7 @@ from typing import Any, Literal
 import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.motion_trigger import MotionTrigger
 
 __all__ = [
     "IngestCounters",
@@ -33,10 +34,13 @@ __all__ = [
     "ChunkWriter",
     "RecordingSession",
     "StiffnessChannel",
+    "STIFFNESS_MODEL_FLAG",
 ]
 
-StiffnessChannel = Literal["estimate", "reference", "none"]
-_STIFFNESS_CHANNELS = ("estimate", "reference", "none")
+StiffnessChannel = Literal["estimate", "reference", "model", "none"]
+_STIFFNESS_CHANNELS = ("estimate", "reference", "model", "none")
+#: Demonstration flag set when the stiffness channel holds the mechanism's model stiffness.
+STIFFNESS_MODEL_FLAG = "stiffness_from_model"
 
 
 @dataclass
@@ -215,8 +219,9 @@ def _as_float64(values: Sequence[float]) -> array:
 class Chunk:
     """Samples taken from the buffer in one flush.
 
-    t : (n,) array, s, absolute stamps; position, velocity, torque, reference : (n, n_joints)
-    arrays in rad, rad/s, N*m, N*m/rad (reference is NaN where no reference had arrived).
+    t : (n,) array, s, absolute stamps; position, velocity, torque : (n, n_joints) arrays in rad,
+    rad/s, N*m; reference : (n, held_width) array, the values held when each sample arrived (the
+    stiffness reference, N*m/rad, or the motor angles, rad; NaN before the first arrived).
     """
 
     t: np.ndarray
@@ -237,6 +242,8 @@ class ChunkBuffer:
     n_joints : int
     capacity : int
         Most samples held between two flushes; beyond it samples are refused (and counted).
+    held_width : int, optional
+        Values of the held channel per sample (default ``n_joints``).
 
     Notes
     -----
@@ -246,13 +253,14 @@ class ChunkBuffer:
     per sample.
     """
 
-    def __init__(self, n_joints: int, capacity: int):
+    def __init__(self, n_joints: int, capacity: int, held_width: int | None = None):
         if n_joints < 1:
             raise InvalidInputError(f"n_joints: must be at least 1, got {n_joints}")
         if capacity < 1:
             raise InvalidInputError(f"capacity: must be at least 1, got {capacity}")
         self.n_joints = n_joints
         self.capacity = capacity
+        self.held_width = n_joints if held_width is None else held_width
         self._lock = threading.Lock()
         self._channels = self._empty()
 
@@ -279,10 +287,10 @@ class ChunkBuffer:
         """Add one sample (sequences of n_joints floats); False when full and not kept."""
         values = (_as_float64(position), _as_float64(velocity), _as_float64(torque),
                   _as_float64(reference))
-        if any(len(v) != self.n_joints for v in values):
+        if [len(v) for v in values] != [self.n_joints] * 3 + [self.held_width]:
             raise InvalidInputError(
-                f"sample at stamp {stamp}: expected {self.n_joints} values per channel, got "
-                f"{[len(v) for v in values]}"
+                f"sample at stamp {stamp}: expected {self.n_joints} values per channel and "
+                f"{self.held_width} held, got {[len(v) for v in values]}"
             )
         with self._lock:
             stamps, *channels = self._channels
@@ -301,9 +309,10 @@ class ChunkBuffer:
         if not stamps:
             return None
         shape = (len(stamps), self.n_joints)
-        position, velocity, torque, reference = (
-            np.frombuffer(channel, dtype=np.float64).reshape(shape) for channel in channels
+        position, velocity, torque = (
+            np.frombuffer(channel, dtype=np.float64).reshape(shape) for channel in channels[:3]
         )
+        reference = np.frombuffer(channels[3], dtype=np.float64).reshape(len(stamps), -1)
         return Chunk(
             t=np.frombuffer(stamps, dtype=np.float64).copy(),
             position=position,
@@ -311,46 +320,6 @@ class ChunkBuffer:
             torque=torque,
             reference=reference,
         )
-
-
-class MotionTrigger:
-    """Start a demonstration when any joint moves, stop it when all have been still for a while.
-
-    Parameters
-    ----------
-    start_speed : float, rad/s
-        A sample with any joint faster than this starts a demonstration.
-    stop_speed : float, rad/s
-        All joints slower than this count as still (must not exceed ``start_speed``).
-    stop_hold_s : float, s
-        How long the joints must stay still before the demonstration stops.
-    """
-
-    def __init__(self, start_speed: float, stop_speed: float, stop_hold_s: float):
-        if not 0 < stop_speed <= start_speed:
-            raise InvalidInputError(
-                f"stop_speed: must be in (0, start_speed={start_speed}], got {stop_speed}"
-            )
-        if not stop_hold_s > 0:
-            raise InvalidInputError(f"stop_hold_s: must be positive, got {stop_hold_s}")
-        self.start_speed = start_speed
-        self.stop_speed = stop_speed
-        self.stop_hold_s = stop_hold_s
-        self._still_since: float | None = None
-
-    def should_start(self, velocity: Sequence[float]) -> bool:
-        """True when this sample's motion (rad/s per joint) should start a demonstration."""
-        self._still_since = None
-        return max(map(abs, velocity)) > self.start_speed
-
-    def should_stop(self, stamp: float, velocity: Sequence[float]) -> bool:
-        """True once every joint has stayed below ``stop_speed`` for ``stop_hold_s``."""
-        if max(map(abs, velocity)) >= self.stop_speed:
-            self._still_since = None
-            return False
-        if self._still_since is None:
-            self._still_since = stamp
-        return stamp - self._still_since >= self.stop_hold_s
 
 
 @dataclass(frozen=True)
@@ -404,6 +373,13 @@ class ChunkWriter:
         for each demonstration whose stiffness source is "estimate".
     flush_interval_s : float, s
         Longest time a sample waits in memory before it is written (0 < value <= 0.2).
+    model_stiffness : callable (position (n, n_joints), held (n, 2 n_joints)) -> (n, n_joints)
+        The "model" channel: stiffness from the link and the held motor angles, N*m/rad.
+    observer : object with ``chunk(demonstration_id, request, t, position, estimator)`` and
+        ``finished(status)``, optional
+        Told in this thread about each stored chunk (t in s from the demonstration's start) and
+        each finished demonstration that stored any samples (e.g.
+        :class:`compliant_demo.teaching_feedback.LiveFeedback`).
     """
 
     def __init__(
@@ -411,6 +387,8 @@ class ChunkWriter:
         open_store: Callable[[], Any],
         make_estimator: Callable[[int], Any] | None,
         flush_interval_s: float = 0.1,
+        model_stiffness: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None,
+        observer: Any = None,
     ):
         if not 0 < flush_interval_s <= 0.2:
             raise InvalidInputError(
@@ -419,6 +397,8 @@ class ChunkWriter:
         self.flush_interval_s = flush_interval_s
         self._open_store = open_store
         self._make_estimator = make_estimator
+        self._model_stiffness = model_stiffness
+        self._observer = observer
         self._commands: queue.Queue[tuple[str, Any]] = queue.Queue()
         self._active: _Demonstration | None = None
         self._closing: list[_Demonstration] = []
@@ -525,6 +505,8 @@ class ChunkWriter:
         stiffness = None
         if request.stiffness_channel == "reference":
             stiffness = chunk.reference
+        elif request.stiffness_channel == "model" and self._model_stiffness is not None:
+            stiffness = self._model_stiffness(chunk.position, chunk.reference)
         elif demonstration.estimator is not None:
             stiffness = np.asarray(demonstration.estimator.update(chunk.position, chunk.torque)[0])
         store.append_chunk(
@@ -536,6 +518,10 @@ class ChunkWriter:
             stiffness=stiffness,
         )
         demonstration.stored_samples += len(chunk)
+        if self._observer is not None:
+            self._observer.chunk(demonstration.demonstration_id, request,
+                                 chunk.t - demonstration.first_stamp, chunk.position,
+                                 demonstration.estimator)
 
     def _finish(
         self, store: Any, demonstration: _Demonstration, status: str, flags: dict[str, Any]
@@ -550,6 +536,8 @@ class ChunkWriter:
                 # Learners and reports advance the stored estimate by its latency to undo its
                 # lag; the excited share and interval width say how far to trust it.
                 flags.update(summary())
+            if demonstration.request.stiffness_channel == "model":
+                flags[STIFFNESS_MODEL_FLAG] = 1
             if demonstration.write_error is not None:
                 flags["store_write_failed"] = 1  # the error text is logged and in diagnostics
             try:
@@ -562,6 +550,8 @@ class ChunkWriter:
                 self.last_error = demonstration.write_error
                 status = "incomplete"
         demonstration.final_status = status
+        if self._observer is not None and demonstration.demonstration_id is not None:
+            self._observer.finished(status)
         demonstration.finished.set()
 
 
@@ -580,6 +570,9 @@ class RecordingSession:
         When given, demonstrations start and stop on motion (service calls still work).
     request : DemonstrationRequest
         Metadata for the next demonstration; replace it with :meth:`configure`.
+    held_width : int, optional
+        Values :meth:`set_reference` holds (default: one per joint; two motor angles per joint
+        for the "model" channel).
     """
 
     def __init__(
@@ -589,6 +582,7 @@ class RecordingSession:
         request: DemonstrationRequest,
         buffer_capacity: int,
         trigger: MotionTrigger | None = None,
+        held_width: int | None = None,
     ):
         self.writer = writer
         self.checker = checker
@@ -598,7 +592,7 @@ class RecordingSession:
         self.idle_counters = IngestCounters()
         self.current: _Demonstration | None = None
         self.last_finished: _Demonstration | None = None
-        self.reference = array("d", [math.nan] * len(checker.joints))
+        self.reference = array("d", [math.nan] * (held_width or len(checker.joints)))
         self.reference_rejected = 0
         self.messages_seen = 0
         self._seen_at_last_health = 0
@@ -631,7 +625,8 @@ class RecordingSession:
         self.request = request
 
     def set_reference(self, values: Sequence[float]) -> bool:
-        """Hold an external stiffness reference, one value per joint, N*m/rad; False if refused."""
+        """Hold values for the following samples (a stiffness reference, N*m/rad, or the motor
+        angles, rad, of the "model" channel); False if refused."""
         held = array("d", values)
         if len(held) != len(self.reference) or not _all_finite(held):
             self.reference_rejected += 1
@@ -648,7 +643,8 @@ class RecordingSession:
                 return False, f"store unavailable: {self.writer.open_error}"
             self.current = _Demonstration(
                 request=self.request,
-                buffer=ChunkBuffer(len(self.checker.joints), self.buffer_capacity),
+                buffer=ChunkBuffer(len(self.checker.joints), self.buffer_capacity,
+                                   len(self.reference)),
                 counters=IngestCounters(),
             )
             self.checker.reset()

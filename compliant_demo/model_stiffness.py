@@ -4,19 +4,96 @@ For a mechanism whose stiffness follows from measured positions and a known spri
 antagonistic tension-only springs on two motors), the stiffness channel needs no estimate at
 all: it is the derivative of the spring torque at the measured link and motor angles. The
 spring law itself has one home, :func:`compliant_demo.sim.mechanisms.antagonistic_stiffness`.
+
+On ROS the motor angles travel as ``sensor_msgs/JointState`` on ``motor_states``, named
+:func:`motor_joint_names` (``<joint>_motor_1`` for theta1, ``<joint>_motor_2`` for theta2);
+:func:`teaching_motor_angles` gives them for the simulated teacher's arm.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import AntagonisticParams
-from compliant_demo.sim.mechanisms import antagonistic_stiffness
+from compliant_demo.sim.mechanisms import antagonistic_motor_angles, antagonistic_stiffness
 
-__all__ = ["model_stiffness"]
+__all__ = ["model_stiffness", "motor_joint_names", "held_model_stiffness",
+           "teaching_motor_angles", "compare_with_estimate"]
+
+
+def motor_joint_names(joints: Sequence[str]) -> list[str]:
+    """Names of the motor angles of ``joints``: ``<joint>_motor_1``, ``<joint>_motor_2``, ...
+    (theta1 and theta2 of :class:`AntagonisticParams`), in joint order."""
+    return [f"{joint}_motor_{motor}" for joint in joints for motor in (1, 2)]
+
+
+def _antagonistic(mechanisms: Sequence[object]) -> list[AntagonisticParams]:
+    joints = list(mechanisms)
+    if not joints or not all(isinstance(m, AntagonisticParams) for m in joints):
+        kinds = [getattr(m, "kind", type(m).__name__) for m in joints]
+        raise InvalidInputError(
+            f"mechanisms: model stiffness needs one antagonistic mechanism per joint, got {kinds}"
+        )
+    return joints  # type: ignore[return-value]
+
+
+def held_model_stiffness(mechanisms: Sequence[object]):
+    """The recorder's "model" channel: ``f(position (n, n_joints), held (n, 2 n_joints))`` ->
+    stiffness (n, n_joints), N*m/rad, NaN for samples taken before any motor angle arrived."""
+    joints = _antagonistic(mechanisms)
+
+    def stiffness(position: np.ndarray, held: np.ndarray) -> np.ndarray:
+        q = np.asarray(position, dtype=float)
+        motors = np.asarray(held, dtype=float).reshape(len(q), len(joints), 2)
+        known = np.isfinite(motors).all(axis=(1, 2))
+        result = np.full(q.shape, np.nan)
+        if known.any():
+            result[known] = model_stiffness(joints, q[known], motors[known])
+        return result
+
+    return stiffness
+
+
+def teaching_motor_angles(
+    mechanisms: Sequence[object], position: object, stiffness: object
+) -> np.ndarray:
+    """Motor angles of an arm whose springs follow the guided link at a given stiffness, rad.
+
+    Parameters
+    ----------
+    mechanisms : one AntagonisticParams per joint
+    position : (n, n_joints) array, rad; link angles, taken as the springs' equilibrium
+    stiffness : (n, n_joints) array, N*m/rad; set stiffness (clamped to the mechanism's range)
+
+    Returns
+    -------
+    (n, n_joints, 2) array, rad
+        theta1, theta2 from the inverse map
+        :func:`compliant_demo.sim.mechanisms.antagonistic_motor_angles`.
+
+    Notes
+    -----
+    The simulated teacher's arm in teaching mode: the motors keep the springs' equilibrium at
+    the link, so the springs put no torque on it, and set the stiffness the operator's hand
+    holds (a robot mirroring the hand, as from a grip or muscle-activity reference). The spring
+    torque is not part of the teaching simulation's link dynamics.
+    """
+    joints = _antagonistic(mechanisms)
+    q = np.atleast_2d(np.asarray(position, dtype=float))
+    k = np.atleast_2d(np.asarray(stiffness, dtype=float))
+    if q.shape != k.shape or q.shape[1] != len(joints):
+        raise InvalidInputError(f"position and stiffness: expected (n, {len(joints)}) arrays, "
+                                f"got {q.shape} and {k.shape}")
+    angles = np.empty((*q.shape, 2))
+    for j, params in enumerate(joints):
+        theta1, theta2, _, _ = antagonistic_motor_angles(params, q[:, j], k[:, j])
+        angles[:, j, 0], angles[:, j, 1] = theta1, theta2
+    return angles
 
 
 def model_stiffness(
@@ -41,12 +118,7 @@ def model_stiffness(
         ``phi`` (``2 k1 + 2 k2 (theta1 - theta2 + 2 d0)`` while both are taut; Migliore, Brown
         and DeWeerth, ICRA 2005), nothing for a slack one.
     """
-    joints = list(mechanisms)
-    if not joints or not all(isinstance(m, AntagonisticParams) for m in joints):
-        kinds = [getattr(m, "kind", type(m).__name__) for m in joints]
-        raise InvalidInputError(
-            f"mechanisms: model stiffness needs one antagonistic mechanism per joint, got {kinds}"
-        )
+    joints = _antagonistic(mechanisms)
     q = np.asarray(position, dtype=float)
     motors = np.asarray(motor_position, dtype=float)
     if q.ndim == 1:
@@ -65,3 +137,56 @@ def model_stiffness(
         antagonistic_stiffness(params, q[:, j], motors[:, j, 0], motors[:, j, 1])
         for j, params in enumerate(joints)
     ])
+
+
+def compare_with_estimate(
+    t: object, position: object, torque: object, model: object,
+    estimator_settings: Mapping[str, Any],
+) -> list[dict[str, float]]:
+    """The model-based stiffness of a demonstration against the estimate from its own samples.
+
+    Parameters
+    ----------
+    t : (n,) array, s
+    position : (n, n_joints) array, rad
+    torque : (n, n_joints) array, N*m
+    model : (n, n_joints) array, N*m/rad; the stored model channel (NaN: unknown)
+    estimator_settings : keyword arguments of
+        :class:`compliant_demo.estimation.SlidingStiffnessEstimator` (as the recorder's)
+
+    Returns
+    -------
+    list of dict, one per joint
+        ``compared`` (share of samples where both exist), ``model_median`` and
+        ``estimate_median`` (N*m/rad), ``relative_difference_median`` (median of
+        (estimate - model) / model) and ``rms_difference`` (N*m/rad), over those samples; NaN
+        where there are none.
+
+    Notes
+    -----
+    The sliding-window estimate (:func:`compliant_demo.estimation.estimate_stiffness_series`)
+    describes the stiffness its latency earlier, so it is moved back by
+    :attr:`SlidingStiffnessEstimator.latency_s` before the samples are paired.
+    """
+    from compliant_demo.estimation import SlidingStiffnessEstimator, estimate_stiffness_series
+
+    times = np.asarray(t, dtype=float)
+    k_model = np.asarray(model, dtype=float)
+    series = estimate_stiffness_series(times, position, torque, **estimator_settings)
+    rate = 1.0 / float(np.median(np.diff(times)))
+    latency = SlidingStiffnessEstimator(k_model.shape[1], rate_hz=rate,
+                                        **estimator_settings).latency_s
+    rows = []
+    for j in range(k_model.shape[1]):
+        estimate = np.interp(times + latency, times, series.stiffness[:, j], right=np.nan)
+        both = np.isfinite(estimate) & np.isfinite(k_model[:, j])
+        m, e = k_model[both, j], estimate[both]
+        nan = math.nan
+        rows.append({
+            "compared": float(both.mean()),
+            "model_median": float(np.median(m)) if both.any() else nan,
+            "estimate_median": float(np.median(e)) if both.any() else nan,
+            "relative_difference_median": float(np.median((e - m) / m)) if both.any() else nan,
+            "rms_difference": float(np.sqrt(np.mean((e - m) ** 2))) if both.any() else nan,
+        })
+    return rows

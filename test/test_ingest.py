@@ -364,3 +364,49 @@ def test_estimated_stiffness_is_stored_with_the_estimators_latency(tmp_path) -> 
     assert demo.stiffness is not None and demo.stiffness.shape == (300, 2)
     assert info.flags["stiffness_latency_s"] == make_estimator(2).latency_s
     assert 0.0 <= info.flags["stiffness_excited_fraction"] <= 1.0
+
+
+def test_model_channel_stores_the_springs_stiffness_from_the_held_motor_angles(tmp_path) -> None:
+    from compliant_demo.ingest import STIFFNESS_MODEL_FLAG
+    from compliant_demo.model_stiffness import held_model_stiffness
+    from compliant_demo.models import AntagonisticParams
+
+    springs = [AntagonisticParams(k1=10.0, k2=100.0, pretension_offset=0.05)] * 2
+    path = tmp_path / "store.sqlite"
+    seen: list[tuple] = []
+
+    class Observer:
+        def chunk(self, demo_id, request, t, position, estimator):
+            seen.append((demo_id, float(t[0]), len(t)))
+
+        def finished(self, status):
+            seen.append(("finished", status))
+
+    writer = ChunkWriter(lambda: DemoStore(path), None, flush_interval_s=0.05,
+                         model_stiffness=held_model_stiffness(springs), observer=Observer())
+    writer.start()
+    request = DemonstrationRequest(skill="cork_seat", joints=JOINTS, nominal_rate_hz=RATE,
+                                   stiffness_channel="model")
+    session = RecordingSession(writer, SampleChecker(JOINTS, RATE), request, 10_000,
+                               held_width=4)
+    assert not session.set_reference([0.3, -0.1])  # two angles per joint wanted
+    session.start()
+    for i in range(100):
+        if i == 40:
+            assert session.set_reference([0.3, -0.1, 2.0, 1.7])
+        session.ingest(*_message(i, position=[0.1, 1.85]))
+    assert session.stop(wait_s=5.0)[0]
+    session.start()  # a demonstration that stores nothing tells the observer nothing
+    assert session.stop(wait_s=5.0) == (False, "nothing stored: 0 samples accepted of 0 received")
+    session.shutdown()
+    with DemoStore(path, read_only=True) as store:
+        (info,) = store.find_demonstrations(skill="cork_seat")
+        demo = store.load_demonstration(info.id)
+    # Both springs taut (elongations 0.25 and 0.2 rad): K = 2 k1 + 2 k2 (theta1 - theta2 + 2 d0)
+    # (Migliore, Brown and DeWeerth, ICRA 2005), NaN before the first motor angles arrived.
+    assert np.isnan(demo.stiffness[:40]).all()
+    np.testing.assert_allclose(demo.stiffness[40:, 0], 20 + 200 * (0.4 + 0.1), rtol=1e-12)
+    np.testing.assert_allclose(demo.stiffness[40:, 1], 20 + 200 * (0.3 + 0.1), rtol=1e-12)
+    assert info.flags[STIFFNESS_MODEL_FLAG] == 1
+    assert seen[0][:2] == (info.id, 0.0) and seen[-1] == ("finished", "complete")
+    assert sum(item[2] for item in seen[:-1]) == 100

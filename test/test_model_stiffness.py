@@ -54,3 +54,60 @@ def test_bad_input():
         model_stiffness(SPRINGS, np.zeros((3, 2)), np.zeros((3, 2)))
     with pytest.raises(InvalidInputError, match=r"motor_position\[0, 1, 0\] = nan is not finite"):
         model_stiffness(SPRINGS, np.zeros((1, 2)), np.array([[[0.0, 0.0], [np.nan, 0.0]]]))
+
+
+def test_motor_names_and_the_held_channel_before_any_motor_angle():
+    from compliant_demo.model_stiffness import held_model_stiffness, motor_joint_names
+
+    assert motor_joint_names(["shoulder", "elbow"]) == [
+        "shoulder_motor_1", "shoulder_motor_2", "elbow_motor_1", "elbow_motor_2"]
+    channel = held_model_stiffness(SPRINGS)
+    held = np.array([[np.nan] * 4, [0.3, -0.1, 0.0, -0.4]])
+    k = channel(np.array([[0.1, -0.2], [0.1, -0.2]]), held)
+    assert np.isnan(k[0]).all()
+    # K = 2 k1 + 2 k2 (theta1 - theta2 + 2 d0) while both are taut (Migliore et al., ICRA 2005)
+    np.testing.assert_allclose(k[1], [20 + 200 * 0.5, 10 + 80 * 0.4], rtol=1e-12)
+    with pytest.raises(InvalidInputError, match="one antagonistic mechanism per joint"):
+        held_model_stiffness([IdealImpedanceParams()])
+
+
+def test_teaching_motor_angles_give_back_the_clamped_stiffness_at_the_link():
+    from compliant_demo.model_stiffness import teaching_motor_angles
+
+    params = AntagonisticParams(k1=6.0, k2=90.0, pretension_offset=0.02, stiffness_min=15.0,
+                                stiffness_max=180.0)
+    rng = np.random.default_rng(11)
+    q = rng.uniform(-1.0, 1.5, size=(50, 2))
+    wanted = rng.uniform(5.0, 250.0, size=(50, 2))
+    motors = teaching_motor_angles([params, params], q, wanted)
+    # The inverse map's round trip: the springs' stiffness at the link is the wanted one,
+    # clamped to [stiffness_min, stiffness_max]; their torque there is zero.
+    np.testing.assert_allclose(model_stiffness([params, params], q, motors),
+                               np.clip(wanted, 15.0, 180.0), rtol=1e-10)
+    np.testing.assert_allclose(antagonistic_torque(params, q, motors[..., 0], motors[..., 1]),
+                               0.0, atol=1e-10)
+    with pytest.raises(InvalidInputError, match=r"expected \(n, 2\) arrays, got \(50, 2\) and"):
+        teaching_motor_angles([params, params], q, wanted[:3])
+
+
+def test_comparison_with_the_estimate_on_the_simulated_teacher():
+    """Reference: the simulated teacher's hand stiffness (ground truth of the simulation). As
+    the model channel it must agree with the estimate within the recorder's 5 % median bound
+    (test_e2e_pipeline); clamped to a range above the soft hand, the model stays above."""
+    from compliant_demo.model_stiffness import compare_with_estimate
+    from compliant_demo.teaching import cork_seat_scenario, simulate_teaching
+
+    scenario = cork_seat_scenario()
+    record = simulate_teaching(scenario, 3)
+    settings = scenario.estimator_settings()
+    exact = compare_with_estimate(record.t, record.position, record.torque,
+                                  record.hand_stiffness_truth, settings)
+    for row in exact:
+        assert row["compared"] > 0.5
+        assert abs(row["relative_difference_median"]) <= 0.05
+    clamped = compare_with_estimate(record.t, record.position, record.torque,
+                                    np.clip(record.hand_stiffness_truth, 15.0, 180.0), settings)
+    for row, same in zip(clamped, exact, strict=True):
+        assert row["model_median"] == 15.0  # the hand is softer than 15 N*m/rad most of the time
+        assert row["estimate_median"] == pytest.approx(same["estimate_median"])
+        assert row["relative_difference_median"] < -0.5

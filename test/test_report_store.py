@@ -122,3 +122,27 @@ def test_report_errors_name_what_is_missing(tmp_path):
                                    campaign_id=first_campaign)
     with pytest.raises(InvalidInputError, match=r"truth = '.*nothing.npz': not a teacher truth"):
         GroundTruth.from_npz(tmp_path / "nothing.npz")
+
+
+def test_report_compares_the_model_channel_with_the_estimate(tmp_path):
+    from compliant_demo.ingest import STIFFNESS_MODEL_FLAG
+
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path, durable=False) as store:
+        ids = [store.add_demonstration(
+            skill="cork_seat", joints=list(JOINTS), t=r.t, position=r.position,
+            velocity=r.velocity, torque=r.torque, flags={STIFFNESS_MODEL_FLAG: 1},
+            stiffness=np.clip(r.hand_stiffness_truth, 15.0, 180.0), source="simulated")
+            for r in cork_seat_records()]
+        skill = cork_seat_skill().model_copy(deep=True)
+        skill.provenance.demonstration_ids = ids
+        save_skill(store, skill)
+        content = collect_report_content(store, "cork_seat")
+    assert "stiffness_estimate" not in [f.stem for f in content.figures]
+    table = next(t for t in content.tables if t.title == "Model-based stiffness against the "
+                                                          "estimate")
+    assert [row[0] for row in table.rows] == list(JOINTS)
+    for _joint, compared, model, estimate, relative, _rms in table.rows:
+        # the soft hand (4 to 6 N*m/rad most of the time) below the springs' 15 N*m/rad floor
+        assert float(compared) > 50 and model == "15" and float(estimate) < 10
+        assert float(relative) < -30

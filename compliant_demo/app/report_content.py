@@ -21,7 +21,9 @@ from compliant_demo.campaign import ReplayCampaign
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG
 from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.ingest import STIFFNESS_MODEL_FLAG
 from compliant_demo.learning import load_skill
+from compliant_demo.model_stiffness import compare_with_estimate
 from compliant_demo.plant import ReplayPlant, load_plant
 from compliant_demo.plant_variation import campaign_failure_drivers
 from compliant_demo.readiness import (
@@ -44,7 +46,8 @@ from compliant_demo.report import (
     plot_schedule_checks,
     plot_stiffness_estimate,
 )
-from compliant_demo.store import DemoStore, ReplayResultInfo
+from compliant_demo.store import Demonstration, DemoStore, ReplayResultInfo
+from compliant_demo.teaching import cork_seat_scenario
 from compliant_demo.tracking import DemonstrationBand, band_from_aligned, tracking_metrics
 
 __all__ = ["CAMPAIGN_METRICS", "GroundTruth", "collect_report_content"]
@@ -184,6 +187,26 @@ def _representative_traces(
     return traces
 
 
+def _model_table(demo: Demonstration, joints: Sequence[str]) -> ReportTable:
+    """The model-based stiffness of a demonstration against the estimate from its samples."""
+    rows = compare_with_estimate(demo.t, demo.position, demo.torque, demo.stiffness,
+                                 cork_seat_scenario().estimator_settings())
+    return ReportTable(
+        "Model-based stiffness against the estimate",
+        ("joint", "compared [%]", "model median [N*m/rad]", "estimate median [N*m/rad]",
+         "median (estimate - model) / model [%]", "RMS difference [N*m/rad]"),
+        tuple((joint, f"{100 * r['compared']:.0f}", f"{r['model_median']:.3g}",
+               f"{r['estimate_median']:.3g}", f"{100 * r['relative_difference_median']:.1f}",
+               f"{r['rms_difference']:.3g}") for joint, r in zip(joints, rows, strict=True)),
+        caption="The first demonstration recorded with the model channel (stiffness of the "
+                "mechanism's springs from its motor angles) against the sliding-window estimate "
+                "computed from the same samples with the simulated teacher's estimator settings "
+                "(those of config/recorder.yaml), moved back by its latency; over the samples "
+                "where both exist. The simulated arm sets its springs to the hand's stiffness "
+                "within the mechanism's range, so where the hand is softer than the springs can "
+                "be the model stays above the estimate.")
+
+
 def collect_report_content(
     store: DemoStore,
     skill_name: str,
@@ -246,7 +269,9 @@ def collect_report_content(
             "dynamic time warping (dashed, markers) and +-2 standard deviations (hatched).",
             plot_demonstrations([(d.t, d.position) for d in demos], aligned.time, aligned.mean,
                                 np.sqrt(aligned.variance), joints)))
-    with_stiffness = [(i, d, d.stiffness) for i, d in enumerate(demos) if d.stiffness is not None]
+    from_model = [d for d in demos if d.info.flags.get(STIFFNESS_MODEL_FLAG)]
+    with_stiffness = [(i, d, d.stiffness) for i, d in enumerate(demos) if d.stiffness is not None
+                      and not d.info.flags.get(STIFFNESS_MODEL_FLAG)]
     if with_stiffness:
         index, demo, estimate = with_stiffness[0]
         truth_k = None
@@ -269,6 +294,7 @@ def collect_report_content(
         summary.append(("estimate coverage",
                         f"{100 * excited.mean():.0f} % of samples excited enough"))
 
+    tables = [_model_table(from_model[0], joints)] if from_model else []
     rollout = (job.setup if job else ReplaySetup(skill, plant)).rollout
     checks = schedule_report(rollout, plant, criteria)
     figures.append(ReportFigure(
@@ -280,7 +306,7 @@ def collect_report_content(
         "passivity tank would run empty), rate-limited or out of range.",
         plot_schedule_checks(checks.t, checks.stiffness, checks.damping_ratio,
                              _flag_masks(checks), joints, damping_ratio_floor=min_damping_ratio)))
-    tables = [ReportTable(
+    tables.insert(0, ReportTable(
         "Flagged stretches of the schedule", ("joint", "check", "from [s]", "to [s]",
                                               "duration [s]", "worst", "unit"),
         tuple((s.joint, s.kind, s.t_start, s.t_end, s.t_end - s.t_start, s.worst, s.unit)
@@ -288,7 +314,7 @@ def collect_report_content(
         caption=f"Checks: {', '.join(FLAG_KINDS)}. The verdict counts stretches at least "
                 f"{criteria.thresholds.min_stretch_duration.value:g} s long.",
         empty_text="no stretch flagged",
-        row_ids=tuple(stretch_anchor(i) for i in range(len(checks.stretches))))]
+        row_ids=tuple(stretch_anchor(i) for i in range(len(checks.stretches)))))
     results: list[ReplayResultInfo] = []
 
     if campaign is not None and job is not None:

@@ -32,6 +32,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "compliant_demo.cli.store_cmds",
     "compliant_demo.cli.tour_cmds",
     "compliant_demo.cli.teaching_cmds",
+    "compliant_demo.cli.watch_cmds",
     "compliant_demo.cli.learn_cmds",
     "compliant_demo.cli.replay_cmds",
     "compliant_demo.cli.campaign_cmds",

@@ -5,7 +5,13 @@ N*m; header stamps in s) and ``stiffness_reference`` (std_msgs/Float64MultiArray
 joint in ``joints`` order, N*m/rad); publishes ``diagnostics`` (diagnostic_msgs/DiagnosticArray,
 keys: the counters of :class:`compliant_demo.ingest.IngestCounters`, rate_hz, buffer_fill,
 recording, demonstration_id, store_write_errors, reference_rejected, and ``rejected`` plus
-``rejected/<topic>/<reason>`` for messages refused before they reach the session). Services
+``rejected/<topic>/<reason>`` for messages refused before they reach the session), and a second
+status ``recorder/teaching_feedback`` (:mod:`compliant_demo.teaching_feedback`: excitation share,
+deviation from the earlier demonstrations, advice), also published on ``teaching_feedback``
+(diagnostic_msgs/DiagnosticArray, reliable, keep last 10, volatile) every
+``feedback_period_s`` and at once after ``stop``. With ``stiffness_channel`` ``model`` it
+subscribes ``motor_states`` (sensor_msgs/JointState, ``<joint>_motor_1``/``_motor_2`` angles in
+rad) and stores the stiffness of the ``plant_file`` mechanism's springs. Services
 (std_srvs/Trigger): ``start``, ``stop``, ``discard`` (refused unless the read-only
 ``allow_discard`` is true). The sample checks, counters, bounded buffer and background writer
 live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received, accepted,
@@ -26,7 +32,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
-from compliant_demo.exceptions import CompliantDemoError
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.ingest import (
     ChunkWriter,
     DemonstrationRequest,
@@ -34,6 +40,7 @@ from compliant_demo.ingest import (
     RecordingSession,
     SampleChecker,
 )
+from compliant_demo.model_stiffness import held_model_stiffness, motor_joint_names
 from compliant_demo.nodes._common import (
     RejectCounter,
     check_parameter_changes,
@@ -47,7 +54,9 @@ from compliant_demo.nodes._common import (
     text_problem,
 )
 from compliant_demo.nodes._common import stamp_seconds as _seconds
+from compliant_demo.nodes._files import load_file_parameter
 from compliant_demo.store.location import default_store_path
+from compliant_demo.teaching_feedback import FeedbackSettings, LiveFeedback, earlier_demonstrations
 
 __all__ = ["RecorderNode", "main"]
 
@@ -63,10 +72,17 @@ class RecorderNode(Node):
     def __init__(self) -> None:
         super().__init__("recorder")
         p = self._declare_parameters()
+        check_parameter_changes(self, _check_parameters)
+        self.feedback = LiveFeedback(_reference_loader(p["store_path"]), FeedbackSettings(
+            p["feedback_min_excited_fraction"], p["feedback_max_deviation_rad"],
+            p["feedback_max_references"]))
+        model = _model_channel(p) if p["stiffness_channel"] == "model" else None
         writer = ChunkWriter(
             open_store=lambda: open_store(p["store_path"]),
             make_estimator=_estimator_factory(p),
             flush_interval_s=p["flush_interval_s"],
+            model_stiffness=model,
+            observer=self.feedback,
         )
         writer.start()
         trigger = None
@@ -80,6 +96,7 @@ class RecorderNode(Node):
             self._request(),
             buffer_capacity=p["buffer_capacity"],
             trigger=trigger,
+            held_width=2 * len(p["joints"]) if model else None,
         )
         self._settings = p
         self.rejects = RejectCounter(self)
@@ -93,8 +110,14 @@ class RecorderNode(Node):
         for service, callback in (("start", self._on_start), ("stop", self._on_stop),
                                   ("discard", self._on_discard)):
             self.create_service(Trigger, service, guarded_service(self, service, callback))
+        if model:
+            self._motor_names = motor_joint_names(p["joints"])
+            self.create_subscription(JointState, "motor_states",
+                                     guard("motor_states", self._on_motor_states), qos)
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
-        check_parameter_changes(self, _check_parameters)
+        # Reliable, shallow, volatile: advice a watcher must not miss, read only while it runs.
+        self._feedback = self.create_publisher(DiagnosticArray, "teaching_feedback", 10)
+        self.create_timer(p["feedback_period_s"], self._publish_feedback)
         self._last_health = time.monotonic()
         self.create_timer(p["diagnostics_period_s"], self._publish_diagnostics)
         self.get_logger().info(
@@ -125,7 +148,25 @@ class RecorderNode(Node):
                              "History depth of the reliable joint_states subscription.",
                              low=10, high=100000),
             "stiffness_channel": d(self, "stiffness_channel", "estimate",
-                                  "Stored stiffness: estimate, reference (topic) or none."),
+                                  "Stored stiffness: estimate, reference (topic), model "
+                                  "(motor_states and plant_file springs) or none."),
+            "plant_file": d(self, "plant_file", "", "Plant YAML in an allowed config folder "
+                            "whose antagonistic springs give the model channel; empty = the "
+                            "package's default plant."),
+            "feedback_period_s": d(self, "feedback_period_s", 0.5,
+                                   "Period of the teaching_feedback topic, s.",
+                                   low=0.05, high=60.0),
+            "feedback_min_excited_fraction": d(
+                self, "feedback_min_excited_fraction", 0.6,
+                "Least share of estimator windows with an estimate before advising a retake.",
+                low=0.0, high=1.0),
+            "feedback_max_deviation_rad": d(
+                self, "feedback_max_deviation_rad", 0.05,
+                "Largest RMS deviation from the earlier demonstrations' aligned mean, rad.",
+                low=1e-4, high=10.0),
+            "feedback_max_references": d(self, "feedback_max_references", 10,
+                                         "Most earlier demonstrations in the aligned mean.",
+                                         low=1, high=100),
             "estimator_window_s": d(self, "estimator_window_s", 0.5,
                                     "Sliding estimation window, s.", low=0.01, high=10.0),
             "estimator_noise_variance_ratio": d(
@@ -227,6 +268,23 @@ class RecorderNode(Node):
         else:
             self.session.set_reference(values)
 
+    def _on_motor_states(self, msg: JointState) -> None:
+        position = dict(zip(msg.name, msg.position, strict=False))
+        if len(msg.position) != len(msg.name):
+            self.rejects.reject("motor_states", "wrong_length",
+                                f"{len(msg.position)} positions for {len(msg.name)} names")
+        elif any(name not in position for name in self._motor_names):
+            self.rejects.reject("motor_states", "missing_motors",
+                                f"needs {self._motor_names[:4]}...")
+        elif not self.session.set_reference([position[name] for name in self._motor_names]):
+            self.rejects.reject("motor_states", "non_finite", "NaN or infinite angle")
+
+    def _publish_feedback(self, topic: str = "teaching_feedback") -> None:
+        report = self.feedback.report()
+        array = diagnostic_array(self, "recorder/teaching_feedback", report.level,
+                                 report.message, report.values())
+        (self._diagnostics if topic == "diagnostics" else self._feedback).publish(array)
+
     def _on_start(self, _request: Trigger.Request, response: Trigger.Response):
         try:
             self.session.configure(self._request())
@@ -240,6 +298,7 @@ class RecorderNode(Node):
     def _on_stop(self, _request: Trigger.Request, response: Trigger.Response):
         response.success, response.message = self.session.stop("complete", wait_s=_STOP_WAIT_S)
         self.get_logger().info(f"stop: {response.message}")
+        self._publish_feedback()
         return response
 
     def _on_discard(self, _request: Trigger.Request, response: Trigger.Response):
@@ -263,6 +322,7 @@ class RecorderNode(Node):
         if level == "ok" and self.rejects.total:
             level, message = "warn", f"{self.rejects.total} messages ignored"
         self._diagnostics.publish(diagnostic_array(self, "recorder", level, message, values))
+        self._publish_feedback("diagnostics")
         if level == "error":
             self.get_logger().error(message, throttle_duration_sec=10.0)
 
@@ -292,6 +352,26 @@ def _estimator_factory(p: dict):
         model_inertia=p["estimator_model_inertia"],
         min_conditioning=p["estimator_min_conditioning"],
     )
+
+
+def _reference_loader(store_path: str):
+    def load(skill: str, tags, joints, limit: int):
+        with open_store(store_path, read_only=True) as store:
+            return earlier_demonstrations(store, skill, tags, joints, limit)
+
+    return load
+
+
+def _model_channel(p: dict):
+    from compliant_demo.plant import load_plant
+
+    plant = (load_file_parameter("plant_file", p["plant_file"], load_plant) if p["plant_file"]
+             else load_plant())
+    try:
+        return held_model_stiffness(plant.mechanisms_for(p["joints"]))
+    except InvalidInputError as exc:
+        raise InvalidInputError(f"stiffness_channel model, plant_file = {p['plant_file']!r}: "
+                                f"{exc}") from None
 
 
 def _check_parameters(values: dict) -> str | None:

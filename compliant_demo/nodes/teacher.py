@@ -1,5 +1,10 @@
 """Teacher node: a simulated operator guides the joints; publishes joint states and stiffness.
 
+With ``publish_motor_states`` it also publishes ``motor_states`` (sensor_msgs/JointState,
+``<joint>_motor_1``/``_motor_2`` angles in rad, same stamps): the ``plant_file`` arm's
+antagonistic motors set to the hand's stiffness about the guided link
+(:func:`compliant_demo.model_stiffness.teaching_motor_angles`), for the recorder's model channel.
+
 It reads the recorder's ``diagnostics`` (any participant can publish there): a status that is
 not well formed is ignored and counted in the teacher's own ``diagnostics`` status.
 """
@@ -17,6 +22,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
+from compliant_demo.model_stiffness import motor_joint_names, teaching_motor_angles
 from compliant_demo.models import load_yaml_model, model_from_mapping
 from compliant_demo.nodes._common import (
     RejectCounter,
@@ -75,12 +81,18 @@ class TeacherNode(Node):
                              "ground-truth stiffness per demonstration.")
         depth = d(self, "queue_depth", 5000, "History depth of the reliable publishers.",
                   low=10, high=100000)
+        plant_file = d(self, "plant_file", "", "Plant YAML in an allowed config folder whose "
+                       "antagonistic motors motor_states reports; empty = the default plant.")
+        motors = d(self, "publish_motor_states", True, "Publish the arm's motor angles.")
         check_parameter_changes(self)  # every parameter is read-only; use_sim_time too
         self.session = TeachingSession(self._scenario(scenario_file), n_demos, seed)
         self._joints = list(self.session.scenario.joint_names)
         qos = recorded_qos(depth)  # reliable: every published sample is meant to be recorded
         self._joint_states = self.create_publisher(JointState, "joint_states", qos)
         self._truth = self.create_publisher(Float64MultiArray, "stiffness_truth", qos)
+        self._mechanisms = self._motor_mechanisms(plant_file) if motors else None
+        self._motor_states = self.create_publisher(JointState, "motor_states", qos)
+        self._motor_names = motor_joint_names(self._joints)
         self._start: Client = self.create_client(Trigger, "start")
         self._stop: Client = self.create_client(Trigger, "stop")
         self.done = False
@@ -114,6 +126,16 @@ class TeacherNode(Node):
             return model_from_mapping(TeachingScenario, {**base, **changes}, source=str(path))
 
         return load_file_parameter("scenario_file", scenario_file, load)
+
+    def _motor_mechanisms(self, plant_file: str) -> list:
+        from compliant_demo.plant import load_plant
+
+        plant = (load_file_parameter("plant_file", plant_file, load_plant) if plant_file
+                 else load_plant())
+        mechanisms = plant.mechanisms_for(self._joints)
+        teaching_motor_angles(mechanisms, [[0.0] * len(self._joints)],
+                              [[mechanisms[0].stiffness_min] * len(self._joints)])
+        return mechanisms
 
     def _enter(self, state: str) -> None:
         self._state = state
@@ -201,7 +223,13 @@ class TeacherNode(Node):
             self._demo_start_wall = time.time()
 
     def _publish_due(self, elapsed: float) -> None:
-        for t, position, velocity, torque, stiffness in self.session.due(elapsed):
+        due = list(self.session.due(elapsed))
+        motors: list = [None] * len(due)
+        if self._mechanisms is not None and due:
+            angles = teaching_motor_angles(self._mechanisms, [s[1] for s in due],
+                                           [s[4] for s in due])
+            motors = angles.reshape(len(due), -1).tolist()
+        for (t, position, velocity, torque, stiffness), motor in zip(due, motors, strict=True):
             message = JointState()
             message.header.stamp = to_stamp(self._demo_start_wall + t)
             message.name = self._joints
@@ -210,6 +238,9 @@ class TeacherNode(Node):
             message.effort = torque
             self._joint_states.publish(message)
             self._truth.publish(float_array(stiffness))
+            if motor is not None:
+                self._motor_states.publish(JointState(
+                    header=message.header, name=self._motor_names, position=motor))
         if self.session.current_finished:
             self.get_logger().info(f"published {self.session.current_published} samples")
             self._recorder_received = -1
