@@ -439,21 +439,33 @@ class ChainKernel:
         return self._heights(q) - self._rest_heights
 
     def _heights(self, q: np.ndarray) -> np.ndarray:
-        n, n_scen = q.shape
-        rot = np.broadcast_to(np.eye(3), (n_scen, 3, 3))
-        origin = np.zeros((n_scen, 3))
-        out = np.empty((n, n_scen))
-        for i in range(n):
-            angle = q[i][:, None, None]
-            k = self._axis[i]
-            skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-            turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
-                    + (1 - np.cos(angle)) * np.outer(k, k))
-            origin = origin + rot @ self._pos[i]
-            rot = rot @ self._place[i] @ turn
+        out = np.empty(q.shape)
+        frames = link_frames(self._place, self._pos, self._axis, q)
+        for i, (origin, rot) in enumerate(frames):
             centre = origin + rot @ self._com[i]
             out[i] = -self._mass[i] * (centre @ self._gravity)
         return out
+
+
+def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray
+                ) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Origin ``(n, 3)``, m, and rotation ``(n, 3, 3)`` in the base frame of every joint frame
+    after its joint turned, for ``(n_joints, n)`` angles q (rad); place, pos, axis as in
+    :class:`ChainKernel` (forward kinematics, Rodrigues' rotation formula)."""
+    n_joints, n = q.shape
+    rot = np.broadcast_to(np.eye(3), (n, 3, 3))
+    origin = np.zeros((n, 3))
+    frames = []
+    for i in range(n_joints):
+        angle = q[i][:, None, None]
+        k = axis[i]
+        skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
+        turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
+                + (1 - np.cos(angle)) * np.outer(k, k))
+        origin = origin + rot @ pos[i]
+        rot = rot @ place[i] @ turn
+        frames.append((origin, rot))
+    return frames
 
 
 def chain_kernel(chain: ChainParams, joints: Sequence[JointParams], parallel: bool = False
