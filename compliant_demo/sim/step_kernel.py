@@ -18,7 +18,7 @@ from collections.abc import Callable
 import numba
 import numpy as np
 
-from compliant_demo.sim.rigid_body import _BLOCK, _block_forward, _lane, _sincos
+from compliant_demo.sim.rigid_body import _block_forward, _lane, _sincos
 
 __all__ = [
     "CONTACT_DAMPING_DEPTH",
@@ -157,9 +157,10 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
 def _rhs_blocks(x, tg, ext, has_ext, prm, walls, kind, coupled, free, accel_scale, model, ws,
                 zero, torques, mech, grav, f):
     n_s = x.shape[2]
-    for b in range((n_s + _BLOCK - 1) // _BLOCK):
-        s0 = b * _BLOCK
-        _block_rhs(s0, min(_BLOCK, n_s - s0), b, x, tg, ext, 0, has_ext, prm, walls, kind,
+    block = ws[1].shape[2]  # from the workspace: a cached build never sees a stale block size
+    for b in range((n_s + block - 1) // block):
+        s0 = b * block
+        _block_rhs(s0, min(block, n_s - s0), b, x, tg, ext, 0, has_ext, prm, walls, kind,
                    coupled, free, accel_scale, model, ws, zero, torques, mech, grav, f)
 
 
@@ -167,9 +168,10 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
                  model, ws, zero, stages, ys, acc, torques, mech, grav, deflection, injection):
     n_rows, n_j, n_s = y.shape
     n_dyn = 4
-    for b in numba.prange((n_s + _BLOCK - 1) // _BLOCK):
-        s0 = b * _BLOCK
-        nb = min(_BLOCK, n_s - s0)
+    block = ws[1].shape[2]
+    for b in numba.prange((n_s + block - 1) // block):
+        s0 = b * block
+        nb = min(block, n_s - s0)
         _block_rhs(s0, nb, b, y, tg, ext, 0, has_ext, prm, walls, kind, coupled, free,
                    accel_scale, model, ws, zero, torques, mech, grav, stages[0])
         for j in range(n_j):
