@@ -79,12 +79,22 @@ def _block_rotations(q, s0, nb, place, axis, rot):
     for i in range(n):
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
         p = place[i]
+        # most URDF joints sit unrotated in their parent: the product with I is skipped (it
+        # would give the same numbers)
+        plain = (p[0, 0] == 1.0 and p[1, 1] == 1.0 and p[2, 2] == 1.0 and p[0, 1] == 0.0
+                 and p[0, 2] == 0.0 and p[1, 0] == 0.0 and p[1, 2] == 0.0 and p[2, 0] == 0.0
+                 and p[2, 1] == 0.0)
         for k in range(nb):
             sn, c = _sincos(q[i, _lane(s0, k)])
             t = 1.0 - c
             r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
             r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
             r20, r21, r22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
+            if plain:
+                rot[i, 0, k], rot[i, 1, k], rot[i, 2, k] = r00, r01, r02
+                rot[i, 3, k], rot[i, 4, k], rot[i, 5, k] = r10, r11, r12
+                rot[i, 6, k], rot[i, 7, k], rot[i, 8, k] = r20, r21, r22
+                continue
             for a in range(3):
                 p0, p1, p2 = p[a, 0], p[a, 1], p[a, 2]
                 rot[i, 3 * a, k] = p0 * r00 + p1 * r10 + p2 * r20
