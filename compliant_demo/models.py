@@ -289,6 +289,14 @@ class ChainParams(_Record):
         (0.0, 0.0, -9.80665), description="Gravity in the base frame, m/s^2 (ISO 80000-3)."
     )
     source: str = Field("", description="Where the model came from (a URDF file name).")
+    tip_xyz: Vector3 = Field(
+        (0.0, 0.0, 0.0),
+        description="End-effector point in the last joint's frame, m (a URDF's tool frame).",
+    )
+
+    @model_serializer(mode="wrap")
+    def _drop_unset_tip(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        return _without_defaults(handler(self), self, ("tip_xyz",))
 
     @property
     def joint_names(self) -> tuple[str, ...]:

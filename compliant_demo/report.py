@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 from cycler import cycler
 from matplotlib.figure import Figure
+from matplotlib.patches import Ellipse
 
 from compliant_demo import __version__
 from compliant_demo.cautions import SAFETY_CAUTION
@@ -38,6 +39,7 @@ __all__ = [
     "plot_demonstrations",
     "plot_stiffness_estimate",
     "plot_schedule_checks",
+    "plot_task_space",
     "plot_replay_traces",
     "plot_metric_distributions",
     "write_report",
@@ -251,6 +253,68 @@ def plot_schedule_checks(
     _label(ax_k, "time along the skill [s]", "stiffness [N*m/rad]")
     _label(ax_z, "time along the skill [s]", "damping ratio [-]")
     figure.suptitle("Learned stiffness and damping ratio along the skill")
+    return figure
+
+
+def plot_task_space(
+    path: np.ndarray,
+    sample_index: np.ndarray,
+    stiffness: np.ndarray,
+    singular: np.ndarray,
+    *,
+    axis_names: tuple[str, str] = ("first plane axis", "second plane axis"),
+) -> Figure:
+    """End-effector path and, at samples along it, the Cartesian stiffness ellipse.
+
+    Parameters
+    ----------
+    path : (n_samples, 2) array, m, in the plane of motion
+    sample_index : (n_ellipses,) int array, samples of ``path`` that carry an ellipse
+    stiffness : (n_ellipses, 2, 2) array, N/m (NaN where singular)
+    singular : (n_ellipses,) bool; drawn as a cross with a note instead of an ellipse
+    axis_names : the plane's axes, for the axis labels
+
+    Notes
+    -----
+    Each ellipse's semi-axes lie along the eigenvectors of K_x and are proportional to its
+    eigenvalues (the force for a unit displacement in that direction), on one scale for all
+    (the median ellipse's long axis a tenth of the path's extent); an ellipse longer than a
+    quarter of the extent (near a singular configuration) is shrunk to that, its shape kept.
+    """
+    path = np.asarray(path, dtype=float)
+    index = np.asarray(sample_index, dtype=int)
+    stiffness = np.asarray(stiffness, dtype=float)
+    singular = np.asarray(singular, dtype=bool)
+    if path.ndim != 2 or path.shape[1] != 2:
+        raise InvalidInputError(f"path: expected (n_samples, 2), got shape {path.shape}")
+    if stiffness.shape != (index.size, 2, 2) or singular.shape != (index.size,):
+        raise InvalidInputError(
+            f"stiffness: shape {stiffness.shape} and singular: shape {singular.shape}, "
+            f"expected ({index.size}, 2, 2) and ({index.size},) for {index.size} samples"
+        )
+    figure, axes = _new_figure(1, row_height=5.0, width=6.5)
+    ax = axes[0, 0]
+    ax.plot(path[:, 0], path[:, 1], color="0.0", linestyle="-", marker="",
+            label="end-effector path")
+    ax.plot(path[0, 0], path[0, 1], color="0.0", linestyle="", marker="o", label="start")
+    extent = float(np.ptp(path, axis=0).max()) or 0.05
+    regular = ~singular
+    if regular.any():
+        eigen = [np.linalg.eigh(k) for k in stiffness[regular]]
+        scale = 0.1 * extent / float(np.median([w[1] for w, _ in eigen]))
+        for number, (i, (w, v)) in enumerate(zip(index[regular], eigen, strict=True)):
+            angle = float(np.degrees(np.arctan2(v[1, 1], v[0, 1])))
+            size = min(scale, 0.25 * extent / w[1])
+            ax.add_patch(Ellipse(tuple(path[i]), 2 * size * w[1], 2 * size * w[0],
+                                 angle=angle, facecolor="none", edgecolor="0.3", hatch="..",
+                                 label="stiffness ellipse K_x" if number == 0 else None))
+    if singular.any():
+        ax.plot(path[index[singular], 0], path[index[singular], 1], color="0.0", linestyle="",
+                marker="x", markersize=9,
+                label="singular: J^-1 does not exist, no ellipse")
+    ax.set_aspect("equal", adjustable="datalim")
+    _label(ax, f"{axis_names[0]} [m]", f"{axis_names[1]} [m]")
+    figure.suptitle("End-effector path and stiffness ellipses K_x = J^-T K_q J^-1")
     return figure
 
 

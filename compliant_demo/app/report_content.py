@@ -45,7 +45,9 @@ from compliant_demo.report import (
     plot_replay_traces,
     plot_schedule_checks,
     plot_stiffness_estimate,
+    plot_task_space,
 )
+from compliant_demo.sim.task_space import task_space_view
 from compliant_demo.store import Demonstration, DemoStore, ReplayResultInfo
 from compliant_demo.teaching import cork_seat_scenario
 from compliant_demo.tracking import DemonstrationBand, band_from_aligned, tracking_metrics
@@ -306,6 +308,20 @@ def collect_report_content(
         "passivity tank would run empty), rate-limited or out of range.",
         plot_schedule_checks(checks.t, checks.stiffness, checks.damping_ratio,
                              _flag_masks(checks), joints, damping_ratio_floor=min_damping_ratio)))
+    if plant.chain is not None and set(plant.chain.joint_names) <= set(joints):
+        columns = [joints.index(name) for name in plant.chain.joint_names]
+        view = task_space_view(plant.chain, rollout.position[:, columns],
+                               checks.stiffness[:, columns])
+        figures.append(ReportFigure(
+            "task_space", "End-effector path and stiffness ellipses",
+            "The skill's path of the end effector (the arm's tool point) in its plane of motion, "
+            "and at points along it the stiffness the joint stiffness gives there, "
+            "K_x = J^-T K_q J^-1 (Siciliano et al., Robotics: Modelling, Planning and Control, "
+            "stiffness mapping): each ellipse is long where the arm is stiff (near a stretched "
+            "or folded arm very long ones are shrunk, their shape kept). Where the arm is "
+            "stretched or folded J^-1 does not exist; those points carry a cross, no ellipse.",
+            plot_task_space(view.path, view.sample_index, view.stiffness, view.singular,
+                            axis_names=view.axis_names)))
     tables.insert(0, ReportTable(
         "Flagged stretches of the schedule", ("joint", "check", "from [s]", "to [s]",
                                               "duration [s]", "worst", "unit"),

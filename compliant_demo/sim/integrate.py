@@ -1,8 +1,9 @@
 """Batched fixed-step simulation of variable-stiffness joints with energy bookkeeping.
 
 All scenarios and joints advance together: the state is one ``(rows, n_joints, n_scenarios)``
-array (angle, velocity, actuator states, then three work integrals), and each step is a fixed
-sequence of in-place numpy operations on it, with no Python loop over scenarios. Commands are
+array (angle, velocity, actuator states, then three work integrals), and each step is one call
+of the compiled step (:mod:`.step_kernel`), with no Python loop over scenarios; events, commands
+and recording stay here. Commands are
 held constant over a step (zero-order hold, as a digital controller applies them). Work
 integrals are integrated by the same method as the state, so the energy balance closes to the
 method's accuracy; :class:`Simulator` steps one command at a time for a real-time replay node,
@@ -25,26 +26,31 @@ from compliant_demo.models import ChainParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.sim.mechanisms import MechanismLike, make_mechanism
 from compliant_demo.sim.results import EnergyTraces, SimResult, StepState
-from compliant_demo.sim.rigid_body import apparent_inertia, chain_kernel
+from compliant_demo.sim.rigid_body import apparent_inertia, block_workspace, chain_kernel
 from compliant_demo.sim.schedule import compile_schedules
 from compliant_demo.sim.stability import METHODS, check_step_stability
+from compliant_demo.sim.step_kernel import (
+    CONTACT_DAMPING_DEPTH,
+    METHOD_CODES,
+    N_PARAMS,
+    PARAM_ROWS,
+    rhs_batch,
+    step_batch,
+)
 
 __all__ = [
     "GRAVITY",
     "CONTACT_DAMPING_DEPTH",
-    "contact_force",
     "Simulator",
     "simulate",
 ]
 
 GRAVITY = 9.80665  # standard gravity, m/s^2 (ISO 80000-3)
-CONTACT_DAMPING_DEPTH = 2e-3  # rad of penetration over which contact damping ramps in
 _CHUNK_STEPS = 256
 # rows of the three work integrals after the dynamic rows, and of the torque groups they
 # integrate: mechanism springs, passive (friction, mechanism damping, end stops), perturbations
 _SPRING, _PASSIVE, _EXTERNAL = range(3)
 _N_WORK = 3
-_min, _max = np.minimum.reduce, np.maximum.reduce  # skip ndarray.min's Python-level wrapper
 
 
 # channels recorded per sample, (J, S) each, in the order of _observe's dictionary
@@ -56,33 +62,6 @@ _CHANNELS = (
     "stiffness_injection", "spring_tension", "motor_torque",
 )
 _BOOLEAN = ("commands_clamped", "held", "in_contact")
-
-
-def contact_force(
-    penetration: np.ndarray, rate: np.ndarray, stiffness, damping
-) -> np.ndarray:
-    """Force of a one-sided spring-damper contact (end stop or wall), >= 0, pushing out.
-
-    Parameters
-    ----------
-    penetration : array, rad; depth into the contact (<= 0: no contact)
-    rate : array, rad/s; d(penetration)/dt
-    stiffness : N*m/rad; damping : N*m*s/rad
-
-    Notes
-    -----
-    ``max(k*x + b*dx/dt * clip(x/x_d, 0, 1), 0)`` with x_d = CONTACT_DAMPING_DEPTH: the damping
-    ramps in over the first x_d of penetration so the force is continuous at impact (a plain
-    Kelvin-Voigt contact jumps by b*dx/dt there, which costs a fixed-step method an O(h) error
-    per impact), in the spirit of Hunt and Crossley, J. Appl. Mech. 42(2), 1975. It never pulls.
-    """
-    ramp = penetration * (1.0 / CONTACT_DAMPING_DEPTH)
-    np.maximum(ramp, 0.0, out=ramp)
-    np.minimum(ramp, 1.0, out=ramp)
-    ramp *= rate
-    ramp *= damping
-    ramp += stiffness * penetration
-    return np.maximum(ramp, 0.0, out=ramp)
 
 
 def _column(joints: Sequence[JointParams], value) -> np.ndarray:
@@ -186,6 +165,7 @@ class Simulator:
         if not joints or not all(isinstance(j, JointParams) for j in joints):
             raise InvalidInputError("joints: expected a non-empty sequence of JointParams")
         self._chain = None if chain is None else chain_kernel(chain, joints, parallel)
+        self._parallel = bool(parallel)
         if method not in METHODS:
             raise InvalidInputError(f"method = {method!r}: expected one of {', '.join(METHODS)}")
         if not isinstance(n_scenarios, int) or n_scenarios < 1:
@@ -234,14 +214,6 @@ class Simulator:
     # ----------------------------------------------------------------- set-up
     def _setup_joints(self, joints: Sequence[JointParams]) -> None:
         self._inertia = _column(joints, lambda j: j.inertia)
-        self._neg_viscous = _column(joints, lambda j: -j.viscous_damping)
-        # friction and gravity only on the joints that have them: tanh and sin are the most
-        # expensive operations of a step
-        self._coulomb_joints = [
-            (i, 1.0 / j.friction_smoothing_velocity, -j.coulomb_friction)
-            for i, j in enumerate(joints)
-            if j.coulomb_friction > 0
-        ]
         self._gravity_joints = [
             (i, -j.gravity_mass * GRAVITY * j.com_distance, j.gravity_offset)
             for i, j in enumerate(joints)
@@ -249,23 +221,33 @@ class Simulator:
         ]
         self._lower = _column(joints, lambda j: j.lower_limit)
         self._upper = _column(joints, lambda j: j.upper_limit)
-        # no end stop can touch while every angle lies in [highest lower, lowest upper] limit
-        self._free_band = (float(self._lower.max()), float(self._upper.min()))
         self._k_stop = _column(joints, lambda j: j.limit_stiffness)
-        self._b_stop = _column(joints, lambda j: j.limit_damping)
         self._noise = _column(joints, lambda j: j.torque_noise_std)
         self._resolution = _column(joints, lambda j: j.encoder_resolution)
+        rows = {
+            "neg_viscous": [-j.viscous_damping for j in joints],
+            "neg_coulomb": [-j.coulomb_friction for j in joints],
+            "inv_smoothing": [1.0 / j.friction_smoothing_velocity for j in joints],
+            "neg_mgl": [-j.gravity_mass * GRAVITY * j.com_distance for j in joints],
+            "gravity_offset": [j.gravity_offset for j in joints],
+            "lower": self._lower[:, 0],
+            "upper": self._upper[:, 0],
+            "stop_stiffness": self._k_stop[:, 0],
+            "stop_damping": [j.limit_damping for j in joints],
+            **self._kernel.step_constants(),
+        }
+        # the compiled step's per-joint constants, one row each (step_kernel.PARAM_ROWS)
+        self._params = np.array([rows[name] for name in PARAM_ROWS], dtype=float)
+        assert self._params.shape == (N_PARAMS, len(joints))
 
     def _setup_state(self, n_joints: int, n_scen: int, q0, dq0) -> None:
         n_act = self._kernel.n_actuators
         self._n_dyn = 2 + n_act
         rows = self._n_dyn + _N_WORK
         shape = (n_joints, n_scen)
-        self._kernel.expand(n_scen)
         self._has_damping = bool(self._kernel.damping_range()[1].any())
         self._inv_inertia_full = np.broadcast_to(1.0 / self._inertia, shape).copy()
         self._accel_scale = self._inv_inertia_full.copy()
-        self._neg_viscous_full = np.broadcast_to(self._neg_viscous, shape).copy()
         self._y = np.zeros((rows, *shape))
         self._q0 = None if q0 is None else _per_scenario("q0", q0, n_scen, n_joints)
         self._y[1] = _per_scenario("dq0", dq0, n_scen, n_joints)
@@ -273,15 +255,24 @@ class Simulator:
         self._stage_state = np.zeros((self._n_dyn, *shape))
         self._acc = np.zeros((rows, *shape))
         self._torques = np.zeros((_N_WORK, *shape))
-        self._torque_rows = tuple(self._torques)  # views of the spring, passive, external rows
         self._mech_damping = np.zeros(shape)
-        self._scratch = np.zeros(shape)
+        self._gravity_torque = np.zeros(shape)  # independent joints only
+        self._deflection = np.zeros(shape)
+        self._zero = np.zeros(shape)
+        self._no_external = np.zeros((3, 1, 1))
         self._free = np.ones(shape)
         self._jumps = np.zeros(shape)  # perturbation work done in jumps (impulses, hold onsets)
         self._injection = np.zeros(shape)
         self._step_index = 0
         self._events_applied = -1
         self._started = False
+        if self._chain is not None:
+            model = self._chain.model
+        else:  # arrays of the chain's types that the compiled step never reads
+            model = (np.zeros((0, 3, 3)), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0),
+                     np.zeros((0, 3)), np.zeros((0, 3, 3)), np.zeros(3))
+        self._model = model
+        self._workspace = block_workspace(n_joints, n_scen if self._chain is not None else 0)
 
     def _setup_events(self) -> None:
         events: dict[int, list[tuple]] = {}
@@ -295,12 +286,12 @@ class Simulator:
             events.setdefault(w.stop, []).append((0, "wall_off", w))
         # releases first, then impulses, then new holds and walls
         self._events = {k: sorted(v, key=lambda e: e[0]) for k, v in events.items()}
-        self._active_walls: list[dict[int, tuple]] = [
-            {} for _ in range(self._perturb.n_wall_layers)
-        ]
-        # active walls of all layers as flat-index arrays (index, position, side, stiffness,
-        # damping) and whether an index repeats (walls of two layers on one joint), or None
-        self._walls: tuple | None = None
+        # active walls per layer, joint and scenario: (position, side, stiffness, damping); an
+        # inactive slot has side 1 and no stiffness or damping, so it pushes with zero force
+        layers = (self._perturb.n_wall_layers, *self._y.shape[1:])
+        self._walls = np.zeros((4, *layers))
+        self._walls[1] = 1.0
+        self._wall_on = np.zeros(layers, dtype=bool)
 
     def _start(self, targets: np.ndarray) -> None:
         """Put actuators at the first targets and the link at rest there (or at q0)."""
@@ -319,18 +310,6 @@ class Simulator:
         self._started = True
 
     # ----------------------------------------------------------------- model
-    def _add_gravity(self, q: np.ndarray, out: np.ndarray) -> None:
-        """Add the gravity torque -m*g*l*sin(q - offset) into ``out``."""
-        for i, neg_mgl, offset in self._gravity_joints:
-            row = self._scratch[i]
-            if offset:
-                np.subtract(q[i], offset, out=row)
-                np.sin(row, out=row)
-            else:
-                np.sin(q[i], out=row)
-            row *= neg_mgl
-            out[i] += row
-
     def _kinetic(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
         if self._chain is not None:
             return self._chain.kinetic_split(q, dq)
@@ -349,109 +328,31 @@ class Simulator:
         above = np.maximum(q - self._upper, 0.0)
         return 0.5 * self._k_stop * (below**2 + above**2)
 
-    def _end_stops(self, q: np.ndarray, dq: np.ndarray, out: np.ndarray) -> None:
-        """Add the torque of the stiff, damped end stops (they push, never pull) into ``out``."""
-        # two reductions decide the common case: every joint far from every stop
-        if _min(q, axis=None) >= self._free_band[0] and _max(q, axis=None) <= self._free_band[1]:
-            return
-        out += contact_force(self._lower - q, -dq, self._k_stop, self._b_stop)
-        out -= contact_force(q - self._upper, dq, self._k_stop, self._b_stop)
-
-    def _wall_torque(
-        self, walls: tuple, q: np.ndarray, dq: np.ndarray, out: np.ndarray
-    ) -> None:
-        """Add wall contact torques into ``out`` (via flat views of the joint-major arrays)."""
-        q_flat, dq_flat, out_flat = q.reshape(-1), dq.reshape(-1), out.reshape(-1)
-        index, position, side, stiffness, damping, repeated = walls
-        penetration = (q_flat[index] - position) * side
-        force = contact_force(penetration, side * dq_flat[index], stiffness, damping)
-        force *= side
-        if repeated:
-            np.subtract.at(out_flat, index, force)
-        else:
-            out_flat[index] -= force
+    def _compiled_arguments(self) -> tuple:
+        """What the compiled step reads after the targets and external torques, in its order."""
+        return (self._params, self._walls, self._kernel.kind, self._chain is not None,
+                self._free, self._accel_scale, self._model, self._workspace, self._zero)
 
     def _rhs(
         self, y: np.ndarray, targets: np.ndarray, ext: np.ndarray | None, f: np.ndarray
     ) -> None:
-        """State derivative ``f`` at ``y`` (rows: q, dq, actuators, three work rates)."""
-        n_dyn = self._n_dyn
-        q, dq, act = y[0], y[1], y[2:n_dyn]
-        torques = self._torques
-        spring, passive, external = self._torque_rows
-        has_damping = self._kernel.link_torque(q, dq, act, targets, spring, self._mech_damping)
-        np.multiply(self._neg_viscous_full, dq, out=passive)
-        if has_damping:
-            passive += self._mech_damping
-        scratch = self._scratch
-        for i, inv_smoothing, neg_coulomb in self._coulomb_joints:
-            row = scratch[i]
-            np.multiply(dq[i], inv_smoothing, out=row)
-            np.tanh(row, out=row)
-            row *= neg_coulomb
-            passive[i] += row
-        self._end_stops(q, dq, passive)
-        if ext is None:
-            external.fill(0.0)
-        else:
-            np.copyto(external, ext)
-        if self._walls is not None:
-            self._wall_torque(self._walls, q, dq, external)
-        accel = f[1]
-        np.add(spring, passive, out=accel)
-        accel += external
-        if self._chain is not None:
-            self._chain.forward(q, dq, accel, self._free, accel)
-        else:
-            if self._gravity_joints:
-                self._add_gravity(q, accel)
-            accel *= self._accel_scale  # 1/I, or 0 where a hold blocks the link
-        np.copyto(f[0], dq)
-        self._kernel.actuator_rates(act, targets, f[2:n_dyn])
-        np.multiply(torques, dq, out=f[n_dyn:])
+        """State derivative ``f`` at ``y`` (rows: q, dq, actuators, three work rates); leaves
+        the torques in ``_torques``, ``_mech_damping`` and ``_gravity_torque``."""
+        external = self._no_external if ext is None else np.ascontiguousarray(ext)[None]
+        rhs_batch(y, targets, external, ext is not None,
+                  *self._compiled_arguments(), self._torques, self._mech_damping,
+                  self._gravity_torque, f)
 
     # ----------------------------------------------------------------- stepping
-    def _advance(self, targets: np.ndarray, ext: np.ndarray | None, have_first: bool) -> None:
-        """One step of the chosen method; ``ext`` is (3, J, S) stage torques or None."""
-        y, stages, h = self._y, self._stages, self.dt
-        e0, e1, e2 = (None, None, None) if ext is None else (ext[0], ext[1], ext[2])
-        if not have_first:
-            self._rhs(y, targets, e0, stages[0])
-        act = y[2 : self._n_dyn]
-        deflection_before = y[0] - self._kernel.equilibrium(act, targets)
-        if self.method == "rk4":
-            n, ys = self._n_dyn, self._stage_state
-            for i, (fraction, e) in enumerate(((0.5, e1), (0.5, e1), (1.0, e2))):
-                np.multiply(stages[i, :n], fraction * h, out=ys)
-                ys += y[:n]
-                self._rhs(ys, targets, e, stages[i + 1])
-            acc = self._acc
-            np.add(stages[1], stages[2], out=acc)
-            acc *= 2.0
-            acc += stages[0]
-            acc += stages[3]
-            acc *= h / 6.0
-            y += acc
-        elif self.method == "symplectic_euler":
-            np.multiply(stages[0], h, out=self._acc)
-            y[1] += self._acc[1]
-            np.multiply(y[1], h, out=self._acc[0])
-            y[0] += self._acc[0]
-            y[2:] += self._acc[2:]
-        else:
-            np.multiply(stages[0], h, out=self._acc)
-            y += self._acc
-        # midpoint rule for 1/2 * dK/dt * deflection^2 over the step, from the step's increments
-        # (left in self._acc by every method): deflection at mid-step is the one before plus
-        # half the change of angle minus half the change of the set equilibrium
-        increment = self._acc
-        middle = increment[0] - self._kernel.equilibrium_change(increment[2 : self._n_dyn])
-        middle *= 0.5
-        middle += deflection_before
-        middle *= middle
-        middle *= self._kernel.set_stiffness_change(increment[2 : self._n_dyn])
-        middle *= 0.5
-        self._injection += middle
+    def _advance(self, targets: np.ndarray, ext: np.ndarray | None) -> None:
+        """One step of the chosen method; ``targets`` is (n_targets, J, S) and contiguous,
+        ``ext`` (3, J, S) stage torques or None."""
+        step_batch[self._parallel](
+            METHOD_CODES[self.method], self.dt, self._y, targets,
+            self._no_external if ext is None else np.ascontiguousarray(ext), ext is not None,
+            *self._compiled_arguments(), self._stages, self._stage_state, self._acc,
+            self._torques, self._mech_damping, self._gravity_torque, self._deflection,
+            self._injection)
         self._step_index += 1
 
     def _apply_events(self, step: int) -> None:
@@ -459,7 +360,6 @@ class Simulator:
             return
         self._events_applied = step
         y = self._y
-        walls_changed = False
         for event in self._events.get(step, ()):
             name = event[1]
             if name == "impulse" and self._chain is not None:
@@ -481,28 +381,16 @@ class Simulator:
                 self._free[event[2], event[3]] = 1.0
             else:
                 wall = event[2]
-                flat = wall.joint * self.n_scenarios + wall.scenario
-                layer = self._active_walls[wall.layer]
-                if name == "wall_on":
+                slot = (slice(None), wall.layer, wall.joint, wall.scenario)
+                on = name == "wall_on"
+                if on:
                     here = y[0, wall.joint, wall.scenario] if wall.relative else 0.0
-                    surface = wall.position + here
-                    layer[flat] = (surface, wall.side, wall.stiffness, wall.damping)
+                    self._walls[slot] = (wall.position + here, wall.side, wall.stiffness,
+                                         wall.damping)
                 else:
-                    layer.pop(flat, None)
-                walls_changed = True
-        self._accel_scale = self._inv_inertia_full * self._free
-        if walls_changed:
-            entries = [(flat, *v) for layer in self._active_walls for flat, v in layer.items()]
-            if entries:
-                columns = list(zip(*entries, strict=True))
-                index = np.array(columns[0], dtype=np.intp)
-                self._walls = (
-                    index,
-                    *(np.array(c, dtype=float) for c in columns[1:]),
-                    len(set(columns[0])) < index.size,
-                )
-            else:
-                self._walls = None
+                    self._walls[slot] = (0.0, 1.0, 0.0, 0.0)
+                self._wall_on[slot[1:]] = on
+        np.multiply(self._inv_inertia_full, self._free, out=self._accel_scale)
 
     def _chain_impulse(self, j: int, s: int, impulse: float) -> None:
         """Velocity jump M^-1 * impulse on the free joints of scenario s (none if j is held)."""
@@ -534,7 +422,7 @@ class Simulator:
             if self._chain is not None:
                 net -= self._chain.inverse(q, dq, self._stages[0][1])
             else:
-                self._add_gravity(q, net)
+                net += self._gravity_torque
             tau_external = tau_external - np.where(held, net, 0.0)
         tau_mech = torques[_SPRING] + self._mech_damping if self._has_damping else torques[_SPRING]
         tau_measured = tau_mech
@@ -550,9 +438,8 @@ class Simulator:
         tension, motor_torque = kernel.loads(q, act, self._stages[0][2 : self._n_dyn])
         works = y[self._n_dyn :]
         contact = (q < self._lower) | (q > self._upper)
-        if self._walls is not None:
-            index, position, side = self._walls[:3]
-            contact.reshape(-1)[index] |= (q.reshape(-1)[index] - position) * side > 0
+        position, side = self._walls[:2]
+        contact |= (self._wall_on & ((q - position) * side > 0)).any(axis=0)
         shape = q.shape
         return {
             "q": q,
@@ -620,6 +507,7 @@ class Simulator:
             )
         ]
         targets, flags = self._targets(*cmd)
+        targets = np.ascontiguousarray(np.broadcast_to(targets, (*targets.shape[:3], n_scen)))
         clamped = np.logical_or.reduce(list(flags.values()))[0]
         live = (None if external_torque is None
                 else _per_scenario("external_torque", external_torque, n_scen, n_joints))
@@ -631,7 +519,7 @@ class Simulator:
         if not self._started:
             self._start(targets[0])
         self._apply_events(self._step_index)
-        self._advance(targets[0], ext[0] if touched else None, have_first=False)
+        self._advance(targets[0], ext[0] if touched else None)
         self._apply_events(self._step_index)
         observed = ext[0, 2] if touched else None
         if self._step_index != self._horizon_steps:
@@ -686,13 +574,15 @@ class Simulator:
                   for name in self._kernel.clamp_names}
         ext_chunk = np.zeros((_CHUNK_STEPS, 3, n_joints, n_scen))
         first = self._step_index
-        have_first = False
         targets = ext = clamped = None
         for k0 in range(0, n_steps, _CHUNK_STEPS):
             k1 = min(k0 + _CHUNK_STEPS, n_steps)
             chunk_targets, flags = self._targets(
                 *(_chunk_commands(arr, k0, k1) for arr in commands)
             )
+            # targets for every scenario, contiguous: what the compiled step reads
+            chunk_targets = np.ascontiguousarray(
+                np.broadcast_to(chunk_targets, (*chunk_targets.shape[:3], n_scen)))
             any_clamped = np.logical_or.reduce(list(flags.values()))
             for name, flag in flags.items():
                 counts[name] += np.broadcast_to(flag.sum(axis=0), (n_joints, n_scen)).T
@@ -705,11 +595,10 @@ class Simulator:
                 targets, clamped = chunk_targets[c], any_clamped[c]
                 ext = ext_chunk[c] if touched else None
                 self._apply_events(first + k)
-                have_first = k % decimation == 0
-                if have_first:
+                if k % decimation == 0:
                     stage = None if ext is None else ext[0]
                     self._record(record, actuators, k // decimation, targets, stage, clamped)
-                self._advance(targets, ext, have_first)
+                self._advance(targets, ext)
         if n_steps % decimation == 0:
             self._apply_events(first + n_steps)
             stage = None if ext is None else ext[2]

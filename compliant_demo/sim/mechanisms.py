@@ -1,8 +1,9 @@
 """Stiffness mechanisms: from (equilibrium, stiffness, damping) commands to torque on the link.
 
 Each mechanism turns commands into actuator targets (clamping what it cannot realise and saying
-so), moves its actuator states towards them (first-order lag with a rate limit), and gives the
-torque it puts on the link, its spring energy and the stiffness it realises at the current state.
+so), hands the compiled step (:mod:`.step_kernel`, which moves the actuators towards the targets
+with a first-order lag and a rate limit and puts the springs' torque on the link) its constants,
+and gives its spring energy and the stiffness it realises at the current state for recording.
 Arrays are laid out joint-major, ``(..., n_joints, n_scenarios)``, with per-joint parameters as
 ``(n_joints, 1)`` columns, so every operation broadcasts along the long scenario axis. The
 antagonistic closed forms are public for tests and tools.
@@ -17,6 +18,7 @@ import numpy as np
 
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import AntagonisticParams, IdealImpedanceParams
+from compliant_demo.sim.step_kernel import ANTAGONISTIC, IDEAL
 
 __all__ = [
     "antagonistic_motor_angles",
@@ -118,6 +120,9 @@ class Mechanism:
 
     n_actuators = 0
     n_targets = 0
+    kind = -1  # the compiled step's code for it (step_kernel.IDEAL, ANTAGONISTIC)
+    time_constant: np.ndarray  # (J, 1), s
+    rate_limit: np.ndarray  # (n_actuators, J, 1), per second
     clamp_names: tuple[str, ...] = ()
 
     def __init__(self, records: Sequence[MechanismLike]) -> None:
@@ -127,18 +132,17 @@ class Mechanism:
     def has_damping_input(self) -> bool:
         """Whether a damping command means anything to it (a fact of its records' kind)."""
         return self.records[0].has_damping_input
-        self.time_constant: np.ndarray = np.zeros((len(self.records), 1))
-        self.rate_limit: np.ndarray = np.zeros((self.n_actuators, len(self.records), 1))
 
-    def expand(self, n_scenarios: int) -> None:
-        """Lay out the parameters the integration loop reads as full ``(J, S)`` arrays.
-
-        Same-shape operations run about twice as fast as ones broadcasting a ``(J, 1)`` column.
-        """
-        shape = (self.n_actuators, len(self.records), n_scenarios)
-        self._inv_time_constant = np.broadcast_to(1.0 / self.time_constant, shape).copy()
-        self._rate = np.broadcast_to(self.rate_limit, shape).copy()
-        self._neg_rate = -self._rate
+    def step_constants(self) -> dict[str, np.ndarray]:
+        """Per-joint constants of the compiled step (:mod:`.step_kernel`): the actuators' lag
+        ``inv_time_constant_i`` (1/s) and rate limits ``rate_limit_i``, and the spring
+        coefficients ``k1``, ``k2`` (zero for a mechanism without springs)."""
+        n = len(self.records)
+        constants = {"k1": np.zeros(n), "k2": np.zeros(n)}
+        for i in range(self.n_actuators):
+            constants[f"inv_time_constant_{i}"] = 1.0 / self.time_constant[:, 0]
+            constants[f"rate_limit_{i}"] = self.rate_limit[i, :, 0]
+        return constants
 
     def command_targets(
         self, equilibrium: np.ndarray, stiffness: np.ndarray, damping: np.ndarray | None
@@ -147,25 +151,6 @@ class Mechanism:
 
         Inputs are ``(C, J, S)`` (S may be 1 for commands shared by all scenarios).
         """
-        raise NotImplementedError
-
-    def actuator_rates(self, act: np.ndarray, targets: np.ndarray, out: np.ndarray) -> None:
-        """First-order lag towards the targets with a rate limit, written into ``out``."""
-        np.subtract(targets[: self.n_actuators], act, out=out)
-        out *= self._inv_time_constant
-        np.minimum(out, self._rate, out=out)
-        np.maximum(out, self._neg_rate, out=out)
-
-    def link_torque(
-        self,
-        q: np.ndarray,
-        dq: np.ndarray,
-        act: np.ndarray,
-        targets: np.ndarray,
-        spring_out: np.ndarray,
-        damping_out: np.ndarray,
-    ) -> bool:
-        """Write the spring and damping torques on the link; return False if damping is zero."""
         raise NotImplementedError
 
     def potential(self, q: np.ndarray, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
@@ -228,6 +213,7 @@ class IdealImpedance(Mechanism):
     n_actuators = 2
     n_targets = 3
     clamp_names = ("stiffness", "damping")
+    kind = IDEAL
 
     def __init__(self, records: Sequence[IdealImpedanceParams]) -> None:
         super().__init__(records)
@@ -239,7 +225,6 @@ class IdealImpedance(Mechanism):
         self.rate_limit = np.stack(
             [_column(records, "stiffness_rate_limit"), _column(records, "damping_rate_limit")]
         )
-        self._deflection = np.empty(0)
 
     def command_targets(self, equilibrium, stiffness, damping):
         if damping is None:
@@ -251,13 +236,6 @@ class IdealImpedance(Mechanism):
         targets[:, 0], targets[:, 1], targets[:, 2] = k, d, equilibrium
         flags = {"stiffness": k != stiffness, "damping": d != damping}
         return targets, flags
-
-    def link_torque(self, q, dq, act, targets, spring_out, damping_out):
-        np.subtract(targets[2], q, out=spring_out)
-        spring_out *= act[0]
-        np.multiply(act[1], dq, out=damping_out)
-        np.negative(damping_out, out=damping_out)
-        return True
 
     def potential(self, q, act, targets):
         return 0.5 * act[0] * (q - targets[2]) ** 2
@@ -294,6 +272,7 @@ class Antagonistic(Mechanism):
     n_actuators = 2
     n_targets = 2
     clamp_names = ("equilibrium", "stiffness")
+    kind = ANTAGONISTIC
 
     def __init__(self, records: Sequence[AntagonisticParams]) -> None:
         super().__init__(records)
@@ -311,12 +290,8 @@ class Antagonistic(Mechanism):
         self.motor_torque_limit = _column(records, "motor_torque_limit")
         self.motor_inertia = _column(records, "motor_inertia")
 
-    def expand(self, n_scenarios: int) -> None:
-        super().expand(n_scenarios)
-        shape = (len(self.records), n_scenarios)
-        self._k1 = np.broadcast_to(self.k1, shape).copy()
-        self._k2 = np.broadcast_to(self.k2, shape).copy()
-        self._phi1, self._phi2 = np.empty(shape), np.empty(shape)
+    def step_constants(self) -> dict[str, np.ndarray]:
+        return {**super().step_constants(), "k1": self.k1[:, 0], "k2": self.k2[:, 0]}
 
     def motor_targets(
         self, equilibrium: np.ndarray, stiffness: np.ndarray
@@ -334,20 +309,6 @@ class Antagonistic(Mechanism):
     def command_targets(self, equilibrium, stiffness, damping):
         s1, s2, eq_flag, k_flag = self.motor_targets(equilibrium, stiffness)
         return np.stack([s1, s2], axis=1), {"equilibrium": eq_flag, "stiffness": k_flag}
-
-    def link_torque(self, q, dq, act, targets, spring_out, damping_out):
-        # t(p1) - t(p2) = (p1 - p2) * (k1 + k2*(p1 + p2)) for t(p) = k1*p + k2*p^2: fewer passes
-        phi1, phi2 = self._phi1, self._phi2
-        np.subtract(act[0], q, out=phi1)
-        np.maximum(phi1, 0.0, out=phi1)
-        np.subtract(q, act[1], out=phi2)
-        np.maximum(phi2, 0.0, out=phi2)
-        np.add(phi1, phi2, out=spring_out)
-        spring_out *= self._k2
-        spring_out += self._k1
-        phi1 -= phi2
-        spring_out *= phi1
-        return False
 
     def _elongations(self, q, act):
         return np.maximum(act[0] - q, 0.0), np.maximum(q - act[1], 0.0)

@@ -44,7 +44,7 @@ def _targets(mechanism, eq: np.ndarray, k: np.ndarray, d: np.ndarray | None) -> 
 
 
 def _ramp(penetration: np.ndarray) -> np.ndarray:
-    """Share of the contact damping acting at this penetration (ramps in, see contact_force)."""
+    """Share of the contact damping acting at this penetration (see step_kernel.contact_force)."""
     return np.minimum(penetration / CONTACT_DAMPING_DEPTH, 1.0)
 
 

@@ -65,18 +65,36 @@ def _sincos(x):
 
 
 @_kernel
+def _lane(s0, k):
+    """Scenario s0 + k of a block as an unsigned index: numba then leaves out the wrap-around of
+    negative indices, which would turn a vectorised loop's loads and stores into gathers and
+    scatters."""
+    return np.uint64(s0) + np.uint64(k)
+
+
+@_kernel
 def _block_rotations(q, s0, nb, place, axis, rot):
     """rot[i, 3*a + b, k] for scenarios s0 + k, k < nb."""
     n = q.shape[0]
     for i in range(n):
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
         p = place[i]
+        # most URDF joints sit unrotated in their parent: the product with I is skipped (it
+        # would give the same numbers)
+        plain = (p[0, 0] == 1.0 and p[1, 1] == 1.0 and p[2, 2] == 1.0 and p[0, 1] == 0.0
+                 and p[0, 2] == 0.0 and p[1, 0] == 0.0 and p[1, 2] == 0.0 and p[2, 0] == 0.0
+                 and p[2, 1] == 0.0)
         for k in range(nb):
-            sn, c = _sincos(q[i, s0 + k])
+            sn, c = _sincos(q[i, _lane(s0, k)])
             t = 1.0 - c
             r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
             r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
             r20, r21, r22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
+            if plain:
+                rot[i, 0, k], rot[i, 1, k], rot[i, 2, k] = r00, r01, r02
+                rot[i, 3, k], rot[i, 4, k], rot[i, 5, k] = r10, r11, r12
+                rot[i, 6, k], rot[i, 7, k], rot[i, 8, k] = r20, r21, r22
+                continue
             for a in range(3):
                 p0, p1, p2 = p[a, 0], p[a, 1], p[a, 2]
                 rot[i, 3 * a, k] = p0 * r00 + p1 * r10 + p2 * r20
@@ -126,8 +144,8 @@ def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia,
             v0 = r00 * dw0 + r10 * dw1 + r20 * dw2
             v1 = r01 * dw0 + r11 * dw1 + r21 * dw2
             v2 = r02 * dw0 + r12 * dw1 + r22 * dw2
-            qd = dq[i, s0 + k]
-            qdd = ddq[i, s0 + k]
+            qd = dq[i, _lane(s0, k)]
+            qdd = ddq[i, _lane(s0, k)]
             x0 = (u1 * k2 - u2 * k1) * qd
             x1 = (u2 * k0 - u0 * k2) * qd
             x2 = (u0 * k1 - u1 * k0) * qd
@@ -258,7 +276,7 @@ def _block_solve(mm, rhs, free, s0, nb, out):
     n = mm.shape[0]
     for i in range(n):
         for k in range(nb):
-            if free[i, s0 + k] == 0.0:
+            if free[i, _lane(s0, k)] == 0.0:
                 for j in range(n):
                     mm[i, j, k] = 0.0
                     mm[j, i, k] = 0.0
@@ -288,7 +306,32 @@ def _block_solve(mm, rhs, free, s0, nb, out):
             for c in range(i + 1, n):
                 v -= mm[c, i, k] * rhs[c, k]
             rhs[i, k] = v / mm[i, i, k]
-            out[i, s0 + k] = rhs[i, k]
+            out[i, _lane(s0, k)] = rhs[i, k]
+
+
+@_kernel
+def _block_forward(q, dq, tau, free, zero, s0, nb, place, pos, axis, mass, com, inertia, gravity,
+                   rot, st, fm, vec, comp, mm, fn, out):
+    """out[:, s0 + k] = M^-1 (tau - h) of scenarios s0 + k, k < nb, over their free joints;
+    zero is (n, n_scen) zeros, the rest (block-sized) scratch."""
+    n = q.shape[0]
+    _block_rotations(q, s0, nb, place, axis, rot)
+    _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity, st, fm, vec)
+    for i in range(n):
+        for k in range(nb):
+            vec[i, k] = tau[i, _lane(s0, k)] - vec[i, k]
+    _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, fn)
+    _block_solve(mm, vec, free, s0, nb, out)
+
+
+def block_workspace(n_joints: int, n_scenarios: int) -> tuple[np.ndarray, ...]:
+    """Scratch of :func:`_block_forward` for every block of ``n_scenarios`` (leading axis, so
+    blocks on different threads never share it): rot, st, fm, vec, comp, mm, fn."""
+    n_blocks = -(-n_scenarios // _BLOCK)
+    return (np.empty((n_blocks, n_joints, 9, _BLOCK)), np.empty((n_blocks, 9, _BLOCK)),
+            np.empty((n_blocks, n_joints, 6, _BLOCK)), np.empty((n_blocks, n_joints, _BLOCK)),
+            np.empty((n_blocks, n_joints, 13, _BLOCK)),
+            np.empty((n_blocks, n_joints, n_joints, _BLOCK)), np.empty((n_blocks, 6, _BLOCK)))
 
 
 def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
@@ -296,19 +339,11 @@ def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, grav
     zero = np.zeros((n, n_scen))
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
         s0 = b * _BLOCK
-        nb = min(_BLOCK, n_scen - s0)
-        rot = np.empty((n, 9, _BLOCK))
-        vec = np.empty((n, _BLOCK))
-        mm = np.empty((n, n, _BLOCK))
-        _block_rotations(q, s0, nb, place, axis, rot)
-        _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity,
-                    np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
-        for i in range(n):
-            for k in range(nb):
-                vec[i, k] = tau[i, s0 + k] - vec[i, k]
-        _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
-                    np.empty((6, _BLOCK)))
-        _block_solve(mm, vec, free, s0, nb, out)
+        _block_forward(q, dq, tau, free, zero, s0, min(_BLOCK, n_scen - s0), place, pos, axis,
+                       mass, com, inertia, gravity, np.empty((n, 9, _BLOCK)),
+                       np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), np.empty((n, _BLOCK)),
+                       np.empty((n, 13, _BLOCK)), np.empty((n, n, _BLOCK)),
+                       np.empty((6, _BLOCK)), out)
 
 
 def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
@@ -324,7 +359,7 @@ def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia
                     np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
         for i in range(n):
             for k in range(nb):
-                out[i, s0 + k] = vec[i, k]
+                out[i, _lane(s0, k)] = vec[i, k]
 
 
 def _mass_blocks(q, place, pos, axis, mass, com, inertia, out):
@@ -340,7 +375,7 @@ def _mass_blocks(q, place, pos, axis, mass, com, inertia, out):
         for k in range(nb):
             for i in range(n):
                 for j in range(n):
-                    out[s0 + k, i, j] = mm[i, j, k]
+                    out[_lane(s0, k), i, j] = mm[i, j, k]
 
 
 # Serial builds by default: campaigns already run one process per core, and GNU OpenMP (numba's
@@ -376,6 +411,8 @@ class ChainKernel:
         self._gravity = np.array(chain.gravity, dtype=float)
         self._model = (self._place, self._pos, self._axis, self._mass, self._com,
                        self._inertia)
+        self.model = (*self._model, self._gravity)  # the arrays the compiled step reads
+        self._rest_heights = self._heights(np.zeros((self.n_joints, 1)))
 
     def forward(self, q: np.ndarray, dq: np.ndarray, tau: np.ndarray, free: np.ndarray,
                 out: np.ndarray) -> None:
@@ -409,24 +446,36 @@ class ChainKernel:
     def gravity_potential(self, q: np.ndarray) -> np.ndarray:
         """``-m_i g . (c_i(q) - c_i(0))`` of the link each joint moves, J, ``(n_joints, n_scen)``:
         sums over joints to the potential energy, zero at q = 0."""
-        return self._heights(q) - self._heights(np.zeros_like(q))
+        return self._heights(q) - self._rest_heights
 
     def _heights(self, q: np.ndarray) -> np.ndarray:
-        n, n_scen = q.shape
-        rot = np.broadcast_to(np.eye(3), (n_scen, 3, 3))
-        origin = np.zeros((n_scen, 3))
-        out = np.empty((n, n_scen))
-        for i in range(n):
-            angle = q[i][:, None, None]
-            k = self._axis[i]
-            skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-            turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
-                    + (1 - np.cos(angle)) * np.outer(k, k))
-            origin = origin + rot @ self._pos[i]
-            rot = rot @ self._place[i] @ turn
+        out = np.empty(q.shape)
+        frames = link_frames(self._place, self._pos, self._axis, q)
+        for i, (origin, rot) in enumerate(frames):
             centre = origin + rot @ self._com[i]
             out[i] = -self._mass[i] * (centre @ self._gravity)
         return out
+
+
+def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray
+                ) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Origin ``(n, 3)``, m, and rotation ``(n, 3, 3)`` in the base frame of every joint frame
+    after its joint turned, for ``(n_joints, n)`` angles q (rad); place, pos, axis as in
+    :class:`ChainKernel` (forward kinematics, Rodrigues' rotation formula)."""
+    n_joints, n = q.shape
+    rot = np.broadcast_to(np.eye(3), (n, 3, 3))
+    origin = np.zeros((n, 3))
+    frames = []
+    for i in range(n_joints):
+        angle = q[i][:, None, None]
+        k = axis[i]
+        skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
+        turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
+                + (1 - np.cos(angle)) * np.outer(k, k))
+        origin = origin + rot @ pos[i]
+        rot = rot @ place[i] @ turn
+        frames.append((origin, rot))
+    return frames
 
 
 def chain_kernel(chain: ChainParams, joints: Sequence[JointParams], parallel: bool = False

@@ -136,6 +136,9 @@ def read_urdf(path: str | Path) -> tuple[ChainParams, list[UrdfJoint]]:
         ))
     if not bodies:
         raise InvalidInputError(f"urdf = {str(path)!r}: no moving joint")
+    # the end effector: the last frame fixed to the last moving link (a tool link on a fixed
+    # joint), else that link's own frame at the joint origin
+    tip = [f for f in model.frames if f.parentJoint == model.njoints - 1][-1]
     chain = ChainParams(bodies=tuple(bodies), gravity=_vector(model.gravity.linear),
-                        source=path.name)
+                        source=path.name, tip_xyz=_vector(tip.placement.translation))
     return chain, joints

@@ -1,0 +1,241 @@
+"""The simulator's step, compiled: every torque, the dynamics and the integration of a batch.
+
+One call advances all scenarios by one step of the chosen method: the mechanism's spring and
+damping torques, viscous and Coulomb friction, end stops, walls, external torques, the link
+dynamics (independent pendulums, or the coupled arm's forward dynamics of :mod:`.rigid_body`),
+the actuators' lag, the three work integrals and the stiffness-injection integral. Scenarios go
+through in the blocks of :mod:`.rigid_body`, each block through all stages of the step before the
+next (its arrays stay in cache), every innermost loop running over the scenarios of a block so it
+compiles to SIMD instructions; ``parallel=True`` spreads the blocks over numba's threads. The
+Python side (:class:`~compliant_demo.sim.integrate.Simulator`) keeps events, commands and
+recording; per-joint constants come packed in one ``(N_PARAMS, n_joints)`` array.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numba
+import numpy as np
+
+from compliant_demo.sim.rigid_body import _block_forward, _lane, _sincos
+
+__all__ = [
+    "CONTACT_DAMPING_DEPTH",
+    "IDEAL",
+    "ANTAGONISTIC",
+    "METHOD_CODES",
+    "N_PARAMS",
+    "PARAM_ROWS",
+    "contact_force",
+    "rhs_batch",
+    "step_batch",
+]
+
+CONTACT_DAMPING_DEPTH = 2e-3  # rad of penetration over which contact damping ramps in
+IDEAL, ANTAGONISTIC = 0, 1  # mechanism kinds
+METHOD_CODES = {"rk4": 0, "symplectic_euler": 1, "explicit_euler": 2}
+# rows of the packed per-joint constants
+PARAM_ROWS = ("neg_viscous", "neg_coulomb", "inv_smoothing", "neg_mgl", "gravity_offset",
+              "lower", "upper", "stop_stiffness", "stop_damping", "k1", "k2",
+              "inv_time_constant_0", "inv_time_constant_1", "rate_limit_0", "rate_limit_1")
+N_PARAMS = len(PARAM_ROWS)
+(_NEG_VISCOUS, _NEG_COULOMB, _INV_SMOOTHING, _NEG_MGL, _OFFSET, _LOWER, _UPPER, _K_STOP,
+ _B_STOP, _K1, _K2, _INV_TC, _, _RATE, _) = range(N_PARAMS)
+_INV_DEPTH = 1.0 / CONTACT_DAMPING_DEPTH
+_compiled = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
+_parallel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True, parallel=True)
+
+
+@_compiled
+def contact_force(penetration, rate, stiffness, damping):
+    """Force of a one-sided spring-damper contact (end stop or wall), >= 0, pushing out.
+
+    Parameters
+    ----------
+    penetration : float, rad; depth into the contact (<= 0: no contact)
+    rate : float, rad/s; d(penetration)/dt
+    stiffness : N*m/rad; damping : N*m*s/rad
+
+    Notes
+    -----
+    ``max(k*x + b*dx/dt * clip(x/x_d, 0, 1), 0)`` with x_d = CONTACT_DAMPING_DEPTH: the damping
+    ramps in over the first x_d of penetration so the force is continuous at impact (a plain
+    Kelvin-Voigt contact jumps by b*dx/dt there, which costs a fixed-step method an O(h) error
+    per impact), in the spirit of Hunt and Crossley, J. Appl. Mech. 42(2), 1975. It never pulls.
+    """
+    ramp = min(max(penetration * _INV_DEPTH, 0.0), 1.0)
+    return max(ramp * rate * damping + stiffness * penetration, 0.0)
+
+
+@_compiled
+def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, free, accel_scale,
+               model, ws, zero, torques, mech, grav, f):
+    """State derivative ``f`` at the state rows ``x`` (q, dq, two actuator rows) for scenarios
+    s0 + k, k < nb, of block b; torques (spring, passive, external), the mechanism's damping
+    torque and (independent joints) gravity are left in ``torques``, ``mech`` and ``grav``.
+
+    Every branch sits outside the loops over scenarios, so each of those compiles to SIMD."""
+    n_j = x.shape[1]
+    for j in range(n_j):
+        neg_viscous, k1, k2 = prm[_NEG_VISCOUS, j], prm[_K1, j], prm[_K2, j]
+        inv_tc0, inv_tc1 = prm[_INV_TC, j], prm[_INV_TC + 1, j]
+        rate0, rate1 = prm[_RATE, j], prm[_RATE + 1, j]
+        # one array written per loop: fewer pointers to check for overlap, so loops vectorise
+        if kind == IDEAL:
+            for k in range(nb):
+                s = _lane(s0, k)
+                torques[0, j, s] = x[2, j, s] * (tg[2, j, s] - x[0, j, s])
+            for k in range(nb):
+                s = _lane(s0, k)
+                mech[j, s] = -(x[3, j, s] * x[1, j, s])
+        else:
+            for k in range(nb):
+                s = _lane(s0, k)
+                # t(p1) - t(p2) = (p1 - p2) * (k1 + k2*(p1 + p2)) for t(p) = k1*p + k2*p^2
+                q = x[0, j, s]
+                p1, p2 = max(x[2, j, s] - q, 0.0), max(q - x[3, j, s], 0.0)
+                torques[0, j, s] = ((p1 + p2) * k2 + k1) * (p1 - p2)
+            for k in range(nb):
+                mech[j, _lane(s0, k)] = 0.0
+        for k in range(nb):
+            s = _lane(s0, k)
+            torques[1, j, s] = neg_viscous * x[1, j, s] + mech[j, s]
+        for k in range(nb):
+            s = _lane(s0, k)
+            dq = x[1, j, s]
+            f[0, j, s] = dq
+            f[2, j, s] = min(max((tg[0, j, s] - x[2, j, s]) * inv_tc0, -rate0), rate0)
+            f[3, j, s] = min(max((tg[1, j, s] - x[3, j, s]) * inv_tc1, -rate1), rate1)
+        neg_coulomb, inv_smoothing = prm[_NEG_COULOMB, j], prm[_INV_SMOOTHING, j]
+        if neg_coulomb != 0.0:  # tanh is a library call: only on joints that have friction
+            for k in range(nb):
+                s = _lane(s0, k)
+                torques[1, j, s] += neg_coulomb * np.tanh(x[1, j, s] * inv_smoothing)
+        lower, upper = prm[_LOWER, j], prm[_UPPER, j]
+        k_stop, b_stop = prm[_K_STOP, j], prm[_B_STOP, j]
+        for k in range(nb):
+            s = _lane(s0, k)
+            q, dq = x[0, j, s], x[1, j, s]
+            torques[1, j, s] += (contact_force(lower - q, -dq, k_stop, b_stop)
+                                 - contact_force(q - upper, dq, k_stop, b_stop))
+        if has_ext:
+            for k in range(nb):
+                s = _lane(s0, k)
+                torques[2, j, s] = ext[e, j, s]
+        else:
+            for k in range(nb):
+                torques[2, j, _lane(s0, k)] = 0.0
+        for layer in range(walls.shape[1]):
+            for k in range(nb):
+                s = _lane(s0, k)
+                side = walls[1, layer, j, s]
+                force = contact_force((x[0, j, s] - walls[0, layer, j, s]) * side,
+                                      side * x[1, j, s], walls[2, layer, j, s],
+                                      walls[3, layer, j, s])
+                torques[2, j, s] -= force * side
+        for k in range(nb):
+            s = _lane(s0, k)
+            dq = x[1, j, s]
+            f[4, j, s] = torques[0, j, s] * dq
+            f[5, j, s] = torques[1, j, s] * dq
+            f[6, j, s] = torques[2, j, s] * dq
+            f[1, j, s] = (torques[0, j, s] + torques[1, j, s]) + torques[2, j, s]
+        if not coupled:
+            neg_mgl, offset = prm[_NEG_MGL, j], prm[_OFFSET, j]
+            for k in range(nb):
+                s = _lane(s0, k)
+                grav[j, s] = neg_mgl * _sincos(x[0, j, s] - offset)[0]
+            for k in range(nb):
+                s = _lane(s0, k)
+                f[1, j, s] = (f[1, j, s] + grav[j, s]) * accel_scale[j, s]
+    if coupled:
+        _block_forward(x[0], x[1], f[1], free, zero, s0, nb, *model, ws[0][b], ws[1][b],
+                       ws[2][b], ws[3][b], ws[4][b], ws[5][b], ws[6][b], f[1])
+
+
+def _rhs_blocks(x, tg, ext, has_ext, prm, walls, kind, coupled, free, accel_scale, model, ws,
+                zero, torques, mech, grav, f):
+    n_s = x.shape[2]
+    block = ws[1].shape[2]  # from the workspace: a cached build never sees a stale block size
+    for b in range((n_s + block - 1) // block):
+        s0 = b * block
+        _block_rhs(s0, min(block, n_s - s0), b, x, tg, ext, 0, has_ext, prm, walls, kind,
+                   coupled, free, accel_scale, model, ws, zero, torques, mech, grav, f)
+
+
+def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free, accel_scale,
+                 model, ws, zero, stages, ys, acc, torques, mech, grav, deflection, injection):
+    n_rows, n_j, n_s = y.shape
+    n_dyn = 4
+    block = ws[1].shape[2]
+    for b in numba.prange((n_s + block - 1) // block):
+        s0 = b * block
+        nb = min(block, n_s - s0)
+        _block_rhs(s0, nb, b, y, tg, ext, 0, has_ext, prm, walls, kind, coupled, free,
+                   accel_scale, model, ws, zero, torques, mech, grav, stages[0])
+        for j in range(n_j):
+            if kind == IDEAL:
+                for k in range(nb):
+                    s = _lane(s0, k)
+                    deflection[j, s] = y[0, j, s] - tg[2, j, s]
+            else:
+                for k in range(nb):
+                    s = _lane(s0, k)
+                    deflection[j, s] = y[0, j, s] - 0.5 * (y[2, j, s] + y[3, j, s])
+        if method == 0:
+            for i in range(3):
+                step = 0.5 * h if i < 2 else h
+                for r in range(n_dyn):
+                    for j in range(n_j):
+                        for k in range(nb):
+                            s = _lane(s0, k)
+                            ys[r, j, s] = stages[i, r, j, s] * step + y[r, j, s]
+                _block_rhs(s0, nb, b, ys, tg, ext, 1 if i < 2 else 2, has_ext, prm, walls, kind,
+                           coupled, free, accel_scale, model, ws, zero, torques, mech, grav,
+                           stages[i + 1])
+            sixth = h / 6.0
+            for r in range(n_rows):
+                for j in range(n_j):
+                    for k in range(nb):
+                        s = _lane(s0, k)
+                        acc[r, j, s] = (((stages[1, r, j, s] + stages[2, r, j, s]) * 2.0
+                                         + stages[0, r, j, s]) + stages[3, r, j, s]) * sixth
+                        y[r, j, s] += acc[r, j, s]
+        else:
+            for r in range(n_rows):
+                for j in range(n_j):
+                    for k in range(nb):
+                        s = _lane(s0, k)
+                        acc[r, j, s] = stages[0, r, j, s] * h
+                        if method == 2 or r != 0:
+                            y[r, j, s] += acc[r, j, s]
+            if method == 1:  # symplectic: the angle moves with the new velocity
+                for j in range(n_j):
+                    for k in range(nb):
+                        s = _lane(s0, k)
+                        acc[0, j, s] = y[1, j, s] * h
+                        y[0, j, s] += acc[0, j, s]
+        # midpoint rule for 1/2 * dK/dt * deflection^2 over the step, from the step's increments:
+        # deflection at mid-step is the one before plus half the change of angle minus half the
+        # change of the set equilibrium
+        for j in range(n_j):
+            k2 = prm[_K2, j]
+            for k in range(nb):
+                s = _lane(s0, k)
+                d0, d1 = acc[2, j, s], acc[3, j, s]
+                if kind == IDEAL:
+                    middle, stiffening = acc[0, j, s], d0
+                else:
+                    middle, stiffening = acc[0, j, s] - (d0 + d1) * 0.5, (d0 - d1) * k2 * 2.0
+                middle = middle * 0.5 + deflection[j, s]
+                injection[j, s] += middle * middle * stiffening * 0.5
+
+
+# the state derivative of a whole batch (see _block_rhs), on one thread: what recording reads
+rhs_batch: Callable[..., None] = _compiled(_rhs_blocks)
+# one step of a whole batch: [0] on one thread (the default: campaigns already run one process
+# per core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it
+# started, as campaign workers are), [1] over numba's threads
+step_batch: tuple[Callable[..., None], Callable[..., None]] = (
+    _compiled(_step_blocks), _parallel(_step_blocks))
