@@ -109,6 +109,9 @@ class Thresholds(BaseModel):
     max_failed_recovery: Threshold
     max_unsettled: Threshold
     max_safety_stops: Threshold
+    tank_initial_energy: Threshold
+    tank_max_energy: Threshold
+    expected_interaction_torque: Threshold
 
 
 class Criteria(BaseModel):
@@ -229,11 +232,16 @@ class Verdict:
 
 
 def schedule_report(rollout: Rollout, plant: ReplayPlant, criteria: Criteria) -> ScheduleReport:
-    """The schedule checks of a rollout on a plant with the criteria's damping ratio floor
+    """The schedule checks of a rollout on a plant with the criteria's damping ratio floor,
+    energy tank and expected interaction torque
     (:func:`compliant_demo.evaluation.check_schedule`)."""
     joints = list(rollout.joints)
+    limits = criteria.thresholds
     return check_schedule(rollout, plant.for_joints(joints), plant.mechanisms_for(joints),
-                          min_damping_ratio=criteria.thresholds.min_damping_ratio.value,
+                          min_damping_ratio=limits.min_damping_ratio.value,
+                          energy_budget=limits.tank_initial_energy.value,
+                          tank_max_energy=limits.tank_max_energy.value,
+                          interaction_torque=limits.expected_interaction_torque.value,
                           chain=plant.chain)
 
 

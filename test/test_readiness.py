@@ -256,6 +256,17 @@ def test_an_undamped_hold_is_not_ready_with_the_damping_ratio_first():
     assert [r.check for r in verdict.reasons] == ["under_damped", "stiffness_range"]
 
 
+def test_the_criteria_set_the_energy_tank_and_the_expected_push_of_the_schedule_checks(tmp_path):
+    data = load_criteria().model_dump(mode="json")
+    data["thresholds"]["tank_initial_energy"]["value"] = 0.02
+    data["thresholds"]["tank_max_energy"]["value"] = 0.3
+    data["thresholds"]["expected_interaction_torque"]["value"] = 1.5
+    criteria = load_criteria(_write(tmp_path, data))
+    thresholds = schedule_report(_hold(100.0, 2.4), PLANT, criteria).summary["thresholds"]
+    assert thresholds["energy_budget_J"] == 0.02 and thresholds["tank_max_energy_J"] == 0.3
+    assert thresholds["interaction_torque_Nm"] == [1.5]
+
+
 def test_a_well_damped_hold_with_a_clean_campaign_is_ready():
     criteria = load_criteria()
     # zeta = 2.0 / (2 sqrt(100 * 0.04)) = 0.5 exactly on the floor is not below it; take 2.4
