@@ -21,6 +21,7 @@ from compliant_demo.comparison import (
     summarise_side,
 )
 from compliant_demo.learning import load_skill, save_skill
+from compliant_demo.plant import load_plant
 from compliant_demo.primitives import DampingPolicy
 from compliant_demo.store import DemoStore
 
@@ -99,6 +100,17 @@ def test_compare_replays_two_versions_on_the_same_scenarios(two_versions, capsys
         assert every["passed"] == sum(r.status == "ok" for r in stored)
         assert every["goal_error_max_rad"] == pytest.approx(
             np.median([r.metrics["goal_error_max_rad"] for r in stored]), rel=1e-12)
+    # each side's verdict is stored for its skill version, plant, criteria and campaign
+    with DemoStore(path, read_only=True) as store:
+        for side, campaign in zip(data["skills"], campaigns, strict=True):
+            record = store.latest_verdict(campaign.skill_id, plant_digest=load_plant(plant).digest,
+                                          criteria_digest=data["criteria_digest"])
+            assert record is not None and record.campaign_id == side["campaign_id"]
+            assert record.verdict == side["verdict"] in ("ready", "not_ready")
+            assert record.reasons == side["reasons"]
+            assert side["first_reason"] == (None if not record.reasons else
+                                            f"{record.reasons[0]['check']} "
+                                            f"({record.reasons[0]['joint']})")
     status, out, err = run_cli(capsys, "compare", "cork_seat:1", "cork_seat:2", "--store", path,
                                "--plant", plant, "--scenarios", "7", "--duration", "1.5",
                                "--settle", "0.3", "--workers", "0", "--quiet")
@@ -108,6 +120,8 @@ def test_compare_replays_two_versions_on_the_same_scenarios(two_versions, capsys
     assert re.match(r"kind\s+skill\s+scenarios\s+passed\s+failed", lines[1])
     assert re.match(r"all\s+cork_seat:1\s+7\s+", lines[2])
     assert lines[-1].startswith("Simulation does not certify a robot as safe")
+    assert [line.split(" verdict: ")[0] for line in lines if " verdict: " in line] == [
+        "cork_seat:1:", "cork_seat:2:"]
 
 
 @pytest.mark.parametrize(

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import re
 import sys
+from dataclasses import replace
 from pathlib import Path
 
 from compliant_demo.app.progress import campaign_progress
@@ -21,6 +22,7 @@ from compliant_demo.cli._job_options import (
     read_spec,
     show_progress,
 )
+from compliant_demo.cli._verdict import add_criteria_option, print_verdict, read_criteria
 from compliant_demo.cli.common import (
     add_json_option,
     add_store_option,
@@ -38,6 +40,7 @@ from compliant_demo.comparison import (
 from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.learning import StoredSkill, load_skill
+from compliant_demo.readiness import Verdict, assess_replays, record_verdict
 from compliant_demo.replay import ReplaySetup
 from compliant_demo.store import DemoStore
 
@@ -56,7 +59,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "duration (so scenario i is the same perturbation for both), store both, and print "
             "one table: per perturbation kind, scenarios passed and failed (a limit left), "
             "scenarios not recovered, and the median goal error (rad), peak deviation (rad), "
-            "recovery time (s), peak interaction torque (N*m) and injected energy (J)."
+            "recovery time (s), peak interaction torque (N*m) and injected energy (J), and each "
+            "skill's readiness verdict (stored) with its first reason."
         ),
     )
     parser.add_argument("skills", nargs=2, metavar="SKILL[:VERSION]",
@@ -71,6 +75,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--seed", type=non_negative_int, default=0,
                         help="campaign seed, the same for both skills (default: 0)")
     add_target_options(parser)
+    add_criteria_option(parser)
     add_backend_options(parser)
     add_progress_option(parser)
     add_json_option(parser)
@@ -90,7 +95,9 @@ def _stored(store: DemoStore, text: str) -> tuple[str, StoredSkill]:
 
 def _run(args: argparse.Namespace) -> int:
     plant = read_plant(args)
+    criteria = read_criteria(args)
     sides: list[SideSummary] = []
+    verdicts: list[Verdict] = []
     with DemoStore(store_path_of(args), create=False, durable=False) as store:
         chosen = [_stored(store, text) for text in args.skills]
         if chosen[0][1].record.id == chosen[1][1].record.id:
@@ -111,16 +118,29 @@ def _run(args: argparse.Namespace) -> int:
                 summary = run_campaign(store, job, skill_id=stored.record.id,
                                        workers=args.workers, scheduler=args.scheduler,
                                        on_start=progress.on_start, on_batch=progress.on_batch)
-            results = store.find_replay_results(campaign_id=summary.campaign_id)
-            sides.append(summarise_side(label, stored.record.id, summary.campaign_id, results))
+            results = list(store.find_replay_results(campaign_id=summary.campaign_id))
+            verdict = assess_replays(criteria, setup, results)
+            record_verdict(store, verdict, skill_id=stored.record.id, plant=setup.plant,
+                           criteria=criteria, campaign_id=summary.campaign_id)
+            verdicts.append(verdict)
+            first = (f"{verdict.reasons[0].check} ({verdict.reasons[0].joint})"
+                     if verdict.reasons else None)
+            sides.append(replace(
+                summarise_side(label, stored.record.id, summary.campaign_id, results),
+                extra={"verdict": verdict.verdict, "first_reason": first}))
     if args.json:
         emit_json({"plant": plant.describe(), "seed": args.seed, "scenarios": args.scenarios,
                    "spec": spec.model_dump(mode="json"),
-                   "skills": [side.to_dict() for side in sides]})
+                   "criteria_digest": criteria.digest,
+                   "skills": [{**side.to_dict(), "reasons": verdict.to_dict()["reasons"]}
+                              for side, verdict in zip(sides, verdicts, strict=True)]})
         return 0
     print(f"{sides[0].label} against {sides[1].label} on the {plant.describe()}: "
           f"{args.scenarios} scenarios each, seed {args.seed}, campaigns "
           f"{sides[0].campaign_id} and {sides[1].campaign_id}")
     emit_table(comparison_rows(sides), comparison_columns(sides))
+    for side, verdict in zip(sides, verdicts, strict=True):
+        print(f"{side.label}:", end=" ")
+        print_verdict(verdict)
     emit_caution()
     return 0
