@@ -498,7 +498,7 @@ def ros_environment(domain_id: int) -> dict[str, str]:
 
 def _diagnostic_values(msg: Any) -> dict[str, str] | None:
     for status in msg.status:
-        if "recorder" in status.name:
+        if status.name == "recorder":  # not its "recorder/teaching_feedback" status
             return {kv.key: kv.value for kv in status.values}
     return None
 
