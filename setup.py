@@ -13,6 +13,7 @@ ROS_WHEELS = [
     "ros-sensor-msgs",
     "ros-std-srvs",
     "ros-diagnostic-msgs",
+    "ros-trajectory-msgs",
 ]
 
 setup(
@@ -67,6 +68,7 @@ setup(
             "recorder_node = compliant_demo.nodes.recorder:main",
             "learner_node = compliant_demo.nodes.learner:main",
             "replay_node = compliant_demo.nodes.replay:main",
+            "fake_hardware_node = compliant_demo.nodes.fake_hardware:main",
         ],
     },
 )

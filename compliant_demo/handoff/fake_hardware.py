@@ -98,11 +98,14 @@ class FakeHardware:
         Stiffness held before the first stiffness command, equilibrium at ``q0``.
     seed : int
         Seed of the simulator's sensor noise.
+    armed : bool
+        Faults act from the start; False: only from :meth:`arm_faults` on, their times counted
+        from then.
     """
 
     def __init__(self, plant: ReplayPlant, joints: list[str], dt: float, faults: Faults,
                  q0: NDArray[np.float64] | None = None, initial_stiffness: float = 20.0,
-                 seed: int = 0) -> None:
+                 seed: int = 0, armed: bool = True) -> None:
         records = plant.for_joints(joints)
         if q0 is None:
             q0 = np.array([0.5 * (j.lower_limit + j.upper_limit) if math.isfinite(
@@ -121,6 +124,8 @@ class FakeHardware:
         self._frozen: JointSample | None = None
         self._last_given: JointSample | None = None
         self.t = 0.0
+        self.armed = bool(armed)
+        self._fault_origin = 0.0
         self.true_q = self.equilibrium.copy()
         self.commands_taken = 0
 
@@ -141,10 +146,19 @@ class FakeHardware:
             setattr(self, name, array.copy())
         self.commands_taken += 1
 
+    def arm_faults(self) -> None:
+        """Let the faults act from now on, their times counted from now."""
+        self.armed, self._fault_origin = True, self.t
+
+    @property
+    def frozen_sample(self) -> JointSample | None:
+        """The sample given out again and again while the feedback is frozen, else None."""
+        return self._frozen
+
     def step(self) -> list[JointSample]:
         """Advance one period under the held commands; the samples due now (after the faults)."""
-        faults = self.faults
-        t0 = self.t
+        faults = self.faults if self.armed else _NO_FAULTS
+        t0 = self.t - self._fault_origin
         spike = faults.spike_at_s <= t0 < faults.spike_at_s + faults.spike_for_s
         torque = np.full(len(self.joints), faults.spike_torque) if spike else None
         state = self._simulator.step(self.equilibrium, self.stiffness, self.damping,
@@ -158,7 +172,8 @@ class FakeHardware:
         due: list[JointSample] = []
         while self._queue and self._queue[0][0] <= self.t + 1e-12:
             due.append(self._queue.popleft()[1])
-        frozen = faults.freeze_at_s <= self.t < faults.freeze_at_s + faults.freeze_for_s
+        elapsed = self.t - self._fault_origin
+        frozen = faults.freeze_at_s <= elapsed < faults.freeze_at_s + faults.freeze_for_s
         if frozen:
             if self._frozen is None:
                 self._frozen = self._last_given
@@ -167,3 +182,6 @@ class FakeHardware:
         if due:
             self._last_given = due[-1]
         return due
+
+
+_NO_FAULTS = Faults()
