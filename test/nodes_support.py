@@ -110,13 +110,16 @@ def launched(
 
 
 def start_module(
-    module: str, parameters: Sequence[str], domain_id: int, log: Path, name: str
+    module: str, parameters: Sequence[str], domain_id: int, log: Path, name: str,
+    remaps: Sequence[str] = (),
 ) -> Nodes:
-    """``python -m module --ros-args -p ...`` as one node."""
+    """``python -m module --ros-args -p ... -r ...`` as one node."""
     handle = log.open("wb")
     command = [sys.executable, "-m", module, "--ros-args"]
     for parameter in parameters:
         command += ["-p", parameter]
+    for remap in remaps:
+        command += ["-r", remap]
     child = start_child(name, command, env=ros_env(domain_id), stdout=handle,
                         stderr=subprocess.STDOUT)
     handle.close()

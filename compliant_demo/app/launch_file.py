@@ -49,6 +49,7 @@ NODE_MODULES: dict[str, str] = {
     "recorder_node": "compliant_demo.nodes.recorder",
     "learner_node": "compliant_demo.nodes.learner",
     "replay_node": "compliant_demo.nodes.replay",
+    "fake_hardware_node": "compliant_demo.nodes.fake_hardware",
 }
 
 #: Parameters (with the node's own defaults) that make a node end by itself once its work is
