@@ -11,6 +11,7 @@ import pytest
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.handoff.fake_hardware import FakeHardware, Faults
 from compliant_demo.handoff.gate import gate_decision
+from compliant_demo.nodes._periodic import PeriodicThread
 from compliant_demo.plant import ReplayPlant, load_plant
 from compliant_demo.teaching import cork_seat_scenario
 
@@ -134,3 +135,24 @@ def test_the_bench_override_lets_it_through_and_says_so() -> None:
     assert decision.reason == "bench-test override: s: verdict not_ready (x)"
     assert decision.as_dict() == {"allowed": True, "reason": decision.reason,
                                   "overridden": True}
+
+
+# -- the deadline thread of the command stream ------------------------------------------------
+
+
+def test_the_periodic_thread_ends_when_its_work_says_so_and_keeps_an_error() -> None:
+    calls: list[float] = []
+    thread = PeriodicThread(0.002, lambda now: calls.append(now) or len(calls) < 5, "test")
+    assert thread.jitter_ms() == 0.0
+    thread.start()
+    thread.stop_when_done(timeout_s=10.0)
+    assert len(calls) == 5 and not thread.running and thread.error is None
+    assert list(thread.tick_times) == calls and calls == sorted(calls)
+
+    def failing(_now: float) -> bool:
+        raise RuntimeError("boom")
+
+    broken = PeriodicThread(0.002, failing, "test_error")
+    broken.start()
+    broken.stop_when_done(timeout_s=10.0)
+    assert isinstance(broken.error, RuntimeError) and not broken.running

@@ -147,10 +147,16 @@ class HardwareMode:
             name: node.create_publisher(Float64MultiArray, topic, COMMAND_QOS)
             for name, topic in self.topics.items() if topic and name != "trajectory"
         }
+        self.limits()  # refuses inconsistent limits at start, with the reason
+        list_parameter(node, "command_joints", str)
         self._trajectory = None
         if self.topics["trajectory"]:
-            from trajectory_msgs.msg import JointTrajectory
-
+            try:
+                from trajectory_msgs.msg import JointTrajectory
+            except ImportError:
+                raise InvalidInputError(
+                    "trajectory_topic is set but the trajectory_msgs package is not installed"
+                ) from None
             self._trajectory = node.create_publisher(JointTrajectory, self.topics["trajectory"],
                                                      COMMAND_QOS)
         self._feedback = _Feedback()
@@ -425,7 +431,4 @@ class HardwareMode:
         self.request_stop("shutdown", "the node is ending")
         limits = self.limits()
         ramp_s = abs(limits.stiffness_max - limits.safe_stiffness) / limits.max_stiffness_rate
-        deadline = time.monotonic() + _START_FEEDBACK_AGE_S + ramp_s + 1.0
-        while thread.running and time.monotonic() < deadline:
-            time.sleep(self.dt)
-        thread.stop()
+        thread.stop_when_done(timeout_s=_START_FEEDBACK_AGE_S + ramp_s + 1.0)

@@ -50,6 +50,11 @@ class PeriodicThread:
         if self._thread.is_alive() and threading.current_thread() is not self._thread:
             self._thread.join(timeout_s)
 
+    def stop_when_done(self, timeout_s: float) -> None:
+        """Wait (at most ``timeout_s``) for the work to end by itself, then stop the thread."""
+        self._thread.join(timeout_s)
+        self.stop()
+
     @property
     def running(self) -> bool:
         """True while the thread runs."""

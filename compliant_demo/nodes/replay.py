@@ -329,10 +329,11 @@ class ReplayNode(Node):
             self.get_logger().error(f"replay result not stored: {exc}")
             self.exit_status = 1
         else:
+            goal = ("" if "goal_error_max_rad" not in metrics
+                    else f"goal error {metrics['goal_error_max_rad']:.3g} rad; ")
             self.get_logger().info(
                 f"replay {status} after {metrics['steps']} of {metrics['steps_planned']} steps: "
-                f"goal error {metrics.get('goal_error_max_rad', float('nan')):.3g} rad; "
-                f"result {result_id}"
+                f"{goal}result {result_id}"
             )
             if status != "ok":
                 self.exit_status = 1
