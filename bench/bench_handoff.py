@@ -14,7 +14,8 @@ Over loopback DDS with real processes (``python -m compliant_demo.nodes.replay``
   command at exactly the frozen angles (the stop) reaches the fake hardware, measured there; the
   worst of ``--stale-trials`` trials (default timeout: 1.5 periods). A trial that the watchdog
   stopped before the freeze (a real gap in the loaded machine's feedback) is counted in
-  ``stale_trials_stopped_before_freeze`` and not measured.
+  ``stale_trials_stopped_before_freeze`` and not measured (so is a run that found no fresh joint
+  state within 0.5 s of the call and never started).
 - ``ungated_refused``: 1 when the node refuses, naming the missing verdict, a skill version with
   no verdict for the plant and criteria (no override).
 
@@ -187,7 +188,7 @@ def replay_parameters(store: Path, extra: list[str]) -> list[str]:
 
 
 def dds_run(store: Path, log_dir: Path, tag: str, fake: list[str], replay: list[str],
-            wait_s: float = 60.0) -> dict:
+            wait_s: float = 30.0) -> dict:
     """One run: fake hardware and replay node as processes, ``run`` called once; what the
     equilibrium reader, the replay node's stops and the fake hardware's diagnostics saw."""
     from std_msgs.msg import Float64MultiArray
@@ -213,8 +214,11 @@ def dds_run(store: Path, log_dir: Path, tag: str, fake: list[str], replay: list[
         reply = client.call_trigger("run", timeout_s=30.0)
         if not reply.success:
             return {"refused": reply.message}
-        client.spin_until(lambda: any(s.get("stop_reason") for s in replay_diagnostics.seen),
-                          wait_s, "a stop")
+        try:
+            client.spin_until(lambda: any(s.get("stop_reason") for s in replay_diagnostics.seen),
+                              wait_s, "a stop")
+        except AssertionError:  # the run never started: no joint state after the call
+            return {"not_started": replay_node.log("replay")[-300:]}
         client.spin_for(0.6)
         stops = [s for s in replay_diagnostics.seen if "stop_reason" in s]
         return {"received": received, "stops": stops, "fake": fake_diagnostics.latest}
@@ -271,6 +275,10 @@ def main(argv: list[str] | None = None) -> int:
             outcome = dds_run(store_path, work, f"stale{trial}",
                               [f"freeze_at_s:={FREEZE_AT_S}"], [])
             value = outcome.get("fake", {}).get("freeze_to_stop_ms", "none")
+            if "not_started" in outcome:
+                emit({"measure": "stale_feedback", "trial": trial, "not_started": True})
+                early += 1
+                continue
             if value == "none":
                 early += 1
             else:

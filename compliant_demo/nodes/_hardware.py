@@ -70,7 +70,7 @@ COMMAND_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
 _COMMANDER_CHECK_PERIOD_S = 0.1
 # A run starts from a joint state at most this old (or the stale timeout, if longer), s: the
 # service call waits in the same executor as the feedback, so the very last sample may be queued.
-_START_FEEDBACK_AGE_S = 0.2
+_START_FEEDBACK_AGE_S = 0.5
 
 HardwareOutcome = tuple[str, "str | None", dict[str, Any], dict[str, np.ndarray]]
 
