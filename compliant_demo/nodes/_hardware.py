@@ -58,7 +58,7 @@ from compliant_demo.nodes._common import (
     list_parameter,
     stamp_seconds,
 )
-from compliant_demo.nodes._periodic import PeriodicThread
+from compliant_demo.nodes._periodic import PeriodicThread, use_realtime_priority
 from compliant_demo.replay import ReplaySetup
 
 __all__ = ["COMMAND_QOS", "HardwareMode", "HardwareOutcome", "hardware_gate"]
@@ -141,6 +141,8 @@ class HardwareMode:
           low=0.0, high=1e4)
         self._check_s = d(node, "commander_check_s", 1.0, "Time the node watches the graph for "
                           "other commanders before a run may start, s.", low=0.1, high=60.0)
+        self._priority = d(node, "realtime_priority", 0, "SCHED_FIFO priority of the node's "
+                           "threads (1-98); 0 = the normal scheduler.", low=0, high=98)
         self.bench_override = d(node, "bench_override", False, "Bench test only: send a skill "
                                 "without a ready verdict (logged and stored with the run).")
         self._publishers = {
@@ -177,6 +179,9 @@ class HardwareMode:
         self._early_stop: tuple[str, str] | None = None
         self.jitter_p99_ms = 0.0
         node.create_timer(_COMMANDER_CHECK_PERIOD_S, self._check_commanders)
+        failure = use_realtime_priority(self._priority)
+        if failure is not None:
+            node.get_logger().warning(f"realtime_priority {self._priority} not taken: {failure}")
 
     # -- starting a run --------------------------------------------------------------------
 
@@ -249,7 +254,8 @@ class HardwareMode:
                                   commands.damping, q, max_steps=max_steps)
 
         self._make_envelope = envelope
-        self._thread = PeriodicThread(self.dt, self._command_period, "hardware_commands")
+        self._thread = PeriodicThread(self.dt, self._command_period, "hardware_commands",
+                                      priority=self._priority)
         self._thread.start()
         if gate.overridden:
             self._node.get_logger().warning(gate.reason)

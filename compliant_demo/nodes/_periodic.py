@@ -11,6 +11,7 @@ deadline comes (the default 5 ms would be longer than two periods).
 
 from __future__ import annotations
 
+import os
 import sys
 import threading
 import time
@@ -19,24 +20,58 @@ from collections.abc import Callable
 
 import numpy as np
 
-__all__ = ["SWITCH_INTERVAL_S", "PeriodicThread"]
+__all__ = ["SWITCH_INTERVAL_S", "PeriodicThread", "use_realtime_priority"]
 
 #: Python's thread switch interval in a node that runs a periodic thread, s.
 SWITCH_INTERVAL_S = 2e-4
 
 
+def use_realtime_priority(priority: int) -> str | None:
+    """Put every thread of this process (DDS's own included; threads started later inherit it)
+    on the SCHED_FIFO policy at ``priority`` (1-98; 0: leave all as they are).
+
+    On a shared or non-real-time machine the normal scheduler can leave a thread waiting longer
+    than a command period; a fixed real-time priority (with the kernel's real-time throttling as
+    the backstop) is common practice for control loops. Returns None, or why it failed (no
+    permission: CAP_SYS_NICE or an rtprio limit is needed).
+    """
+    if priority <= 0:
+        return None
+    for thread_id in os.listdir("/proc/self/task"):
+        failure = _fifo(int(thread_id), priority)
+        if failure is not None:
+            return failure
+    return None
+
+
+def _fifo(thread_id: int, priority: int) -> str | None:
+    """SCHED_FIFO at ``priority`` for ``thread_id`` (0: the calling thread); None or why not."""
+    try:
+        os.sched_setscheduler(thread_id, os.SCHED_FIFO, os.sched_param(priority))
+    except (OSError, AttributeError) as exc:
+        return f"{type(exc).__name__}: {exc}"
+    return None
+
+
 class PeriodicThread:
     """Call ``work(now)`` (``now``: time.monotonic(), s) once per ``period_s`` until it returns
-    False or :meth:`stop` is called; ``tick_times`` keeps the last ``keep`` wake-up times."""
+    False or :meth:`stop` is called; ``tick_times`` keeps the last ``keep`` wake-up times.
+
+    With ``priority`` above 0 the thread runs on SCHED_FIFO one level above it, so it preempts
+    the process's other threads (set to ``priority`` by :func:`use_realtime_priority`) when its
+    deadline comes; ``priority_failure`` says why that was refused, if it was.
+    """
 
     def __init__(self, period_s: float, work: Callable[[float], bool], name: str,
-                 keep: int = 100_000) -> None:
+                 keep: int = 100_000, priority: int = 0) -> None:
         self.period_s = float(period_s)
         self._work = work
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name=name, daemon=True)
         self.missed = 0
         self.error: BaseException | None = None
+        self.priority_failure: str | None = None
+        self._priority = int(priority)
         self.tick_times: deque[float] = deque(maxlen=keep)
         sys.setswitchinterval(min(sys.getswitchinterval(), SWITCH_INTERVAL_S))
 
@@ -69,6 +104,8 @@ class PeriodicThread:
 
     def _loop(self) -> None:
         period = self.period_s
+        if self._priority > 0:
+            self.priority_failure = _fifo(0, self._priority + 1)
         deadline = time.monotonic() + period
         try:
             while not self._stop.is_set():

@@ -37,7 +37,7 @@ from compliant_demo.nodes._common import (
 )
 from compliant_demo.nodes._files import load_file_parameter
 from compliant_demo.nodes._hardware import COMMAND_QOS
-from compliant_demo.nodes._periodic import PeriodicThread
+from compliant_demo.nodes._periodic import PeriodicThread, use_realtime_priority
 from compliant_demo.plant import load_plant
 
 __all__ = ["FakeHardwareNode", "main"]
@@ -81,6 +81,8 @@ class FakeHardwareNode(Node):
             seed=d(self, "fault_seed", 0, "Seed of dropped samples.", low=0, high=2**31 - 1),
         )
         seed = d(self, "seed", 0, "Seed of the sensor noise.", low=0, high=2**31 - 1)
+        priority = d(self, "realtime_priority", 0, "SCHED_FIFO priority of the node's threads "
+                     "(1-98); 0 = the normal scheduler.", low=0, high=98)
         diagnostics_period = d(self, "diagnostics_period_s", 1.0, "Diagnostics period, s.",
                                low=0.05, high=60.0)
         check_parameter_changes(self)
@@ -110,7 +112,11 @@ class FakeHardwareNode(Node):
                     self.rejects.guard(topic, functools.partial(self._on_command, name, topic)),
                     COMMAND_QOS)
         self.create_timer(diagnostics_period, self._publish_diagnostics)
-        self._thread = PeriodicThread(1.0 / rate, self._step, "fake_hardware")
+        failure = use_realtime_priority(priority)
+        if failure is not None:
+            self.get_logger().warning(f"realtime_priority {priority} not taken: {failure}")
+        self._thread = PeriodicThread(1.0 / rate, self._step, "fake_hardware",
+                                      priority=priority)
         self._thread.start()
 
     def _on_command(self, name: str, topic: str, message: Float64MultiArray) -> None:
