@@ -360,6 +360,10 @@ def _check_parameters(values: dict) -> str | None:
 
     if not values["skill"]:
         return "skill must not be empty"
+    if values["mode"] == "hardware" and values["run_when_available"]:
+        return "run_when_available is refused in hardware mode: a person starts a hardware run"
+    if values["mode"] == "hardware" and values["schedule_file"]:
+        return "schedule_file is refused in hardware mode: perturbations are simulated only"
     if values["method"] not in METHODS:
         return f"method must be one of {', '.join(METHODS)}, got {values['method'][:40]!r}"
     goal = values["goal"]
