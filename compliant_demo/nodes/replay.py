@@ -166,10 +166,11 @@ class ReplayNode(Node):
                 gate = None if hardware is None else hardware_gate(
                     store, record, self._plant, self._criteria, hardware.bench_override)
             duration_s = self._value("duration_s") or skill.duration_s
-            rate = self._value("control_rate_hz") if hardware is None else 1.0 / hardware.dt
+            rate_name = "control_rate_hz" if hardware is None else "command_rate_hz"
+            rate = self._value(rate_name)
             steps = (duration_s + self._value("settle_s")) * rate
             if steps > self._max_steps:
-                return False, (f"{steps:.0f} steps ((duration_s + settle_s) x control rate) "
+                return False, (f"{steps:.0f} steps ((duration_s + settle_s) x {rate_name}) "
                                f"exceed max_steps = {self._max_steps}")
             goal = list_parameter(self, "goal", float)
             setup = ReplaySetup(
