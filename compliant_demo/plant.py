@@ -14,6 +14,8 @@ read that way (``compliant_demo/data/arm_cork_seat.urdf``); it is not the defaul
 
 from __future__ import annotations
 
+import hashlib
+import json
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -73,6 +75,10 @@ class ReplayPlant(BaseModel):
     chain: ChainParams | None = Field(
         None, description="Coupled rigid-body model of the joints, or None: independent joints."
     )
+    urdf_sha256: str | None = Field(
+        None, pattern="^[0-9a-f]{64}$",
+        description="SHA-256 (hex) of the URDF file's bytes the chain was read from, or None.",
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> ReplayPlant:
@@ -97,7 +103,7 @@ class ReplayPlant(BaseModel):
     def _drop_unset(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
         # plants without a chain serialise as before, so stored campaign configs still match
         data = handler(self)
-        for key in ("mechanisms", "chain"):
+        for key in ("mechanisms", "chain", "urdf_sha256"):
             if data.get(key) is None:
                 data.pop(key, None)
         return data
@@ -127,6 +133,14 @@ class ReplayPlant(BaseModel):
             return [self.mechanism] * len(names)
         by_name = {j.name: m for j, m in zip(self.joints, self.mechanisms, strict=True)}
         return [by_name[name] for name in names]
+
+    @property
+    def digest(self) -> str:
+        """SHA-256 (hex) of the plant's canonical JSON (sorted keys, no spaces): every parameter,
+        and for a plant read from a URDF the file's content (``urdf_sha256``). Two loads of the
+        same files give the same digest; any parameter change gives another."""
+        text = json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
     def describe(self) -> str:
         """One line for summaries: joints and mechanism kind (and the URDF of a chain)."""
@@ -175,6 +189,7 @@ def plant_from_urdf(urdf: str | Path, actuators: object, *, source: str = "actua
     from compliant_demo.sim.urdf import read_urdf
 
     chain, urdf_joints = read_urdf(urdf)
+    urdf_sha256 = hashlib.sha256(Path(urdf).read_bytes()).hexdigest()
     if not isinstance(actuators, dict):
         raise InvalidInputError(f"{source}: expected a mapping joint name -> actuator")
     names = [joint.name for joint in urdf_joints]
@@ -200,7 +215,8 @@ def plant_from_urdf(urdf: str | Path, actuators: object, *, source: str = "actua
     )
     mechanisms = tuple(a.mechanism for a in records)
     return model_from_mapping(ReplayPlant, {"joints": joints, "mechanism": mechanisms[0],
-                                            "mechanisms": mechanisms, "chain": chain},
+                                            "mechanisms": mechanisms, "chain": chain,
+                                            "urdf_sha256": urdf_sha256},
                               source=source)
 
 

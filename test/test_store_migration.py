@@ -91,7 +91,7 @@ def _schema_of(path):
 def test_version_one_store_is_migrated(tmp_path):
     path = tmp_path / "v1.sqlite"
     data = write_v1_store(path)
-    assert SCHEMA_VERSION == 6 and set(MIGRATIONS) == {1, 2, 3, 4, 5}
+    assert SCHEMA_VERSION == 7 and set(MIGRATIONS) == {1, 2, 3, 4, 5, 6}
     with DemoStore(path) as store:
         assert store.schema_version == SCHEMA_VERSION
         versions = store.db.execute(f"SELECT version FROM {VERSION_TABLE} ORDER BY version")
@@ -147,15 +147,7 @@ def test_failed_migration_leaves_version_one_intact(tmp_path):
 
 def _migrate_to(path, version: int) -> None:
     """Bring a version-1 store to ``version`` with the registered migrations (as older code did)."""
-    conn = sqlite3.connect(path, isolation_level=None)
-    conn.execute("PRAGMA foreign_keys = OFF")
-    for start in range(1, version):
-        conn.execute("BEGIN")
-        MIGRATIONS[start][1](conn)
-        table = VERSION_TABLE if start + 1 >= 5 else "schema_migrations"  # renamed at 5
-        conn.execute(f"INSERT INTO {table} VALUES (?, 1700000000.0, 'older')", (start + 1,))
-        conn.execute("COMMIT")
-    conn.close()
+    _migrate_to_from(path, 1, version)
 
 
 SKILL_ID = "7d1e4a3b-2c5f-4e6a-9b8c-0d1e2f3a4b5c"
@@ -293,3 +285,35 @@ def test_checksums_become_digests_and_damaged_chunks_are_flagged(tmp_path):
         ]
         digests = store.db.execute("SELECT length(digest) FROM chunks ORDER BY demo_id, seq")
         assert [row[0] for row in digests] == [32, 0, 32, 32]
+
+
+def test_version_six_store_gets_a_verdict_table(tmp_path):
+    path = tmp_path / "v6.sqlite"
+    write_v3_store(path)
+    _migrate_to_from(path, 3, 6)
+    conn = sqlite3.connect(path)
+    assert "verdicts" not in {row[0] for row in conn.execute(
+        "SELECT name FROM sqlite_master WHERE type = 'table'")}
+    conn.close()
+    with DemoStore(path) as store:
+        assert store.schema_version == 7
+        history = store.db.execute(f"SELECT version, description FROM {VERSION_TABLE}").fetchall()
+        assert history[-1] == (7, "readiness verdicts")
+        assert len(list(store.find_replay_results())) == len(OLD_PARAMETERS)
+        assert store.db.execute("SELECT count(*) FROM verdicts").fetchone() == (0,)
+    fresh = tmp_path / "fresh.sqlite"
+    DemoStore(fresh).close()
+    assert _schema_of(path) == _schema_of(fresh)
+
+
+def _migrate_to_from(path, start: int, version: int) -> None:
+    """Bring a store at ``start`` to ``version`` with the registered migrations."""
+    conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA foreign_keys = OFF")
+    for step in range(start, version):
+        conn.execute("BEGIN")
+        MIGRATIONS[step][1](conn)
+        table = VERSION_TABLE if step + 1 >= 5 else "schema_migrations"  # renamed at 5
+        conn.execute(f"INSERT INTO {table} VALUES (?, 1700000000.0, 'older')", (step + 1,))
+        conn.execute("COMMIT")
+    conn.close()

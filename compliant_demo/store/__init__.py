@@ -19,6 +19,7 @@ from compliant_demo.store.records import (
     ReplayResult,
     ReplayResultInfo,
     SkillRecord,
+    VerdictRecord,
 )
 
 __all__ = [
@@ -35,4 +36,5 @@ __all__ = [
     "ReplayResult",
     "MergeConflict",
     "MergeReport",
+    "VerdictRecord",
 ]

@@ -28,13 +28,13 @@ __all__ = [
     "schema_version",
 ]
 
-SCHEMA_VERSION = 6
+SCHEMA_VERSION = 7
 VERSION_TABLE = "store_schema_history"
 # The version table's name up to version 4, a name web frameworks use for their own tables.
 _OLD_VERSION_TABLE = "schema_migrations"
 _VERSION_COLUMNS = ["version", "applied_at", "description"]
 
-# Current (version 6) layout. A migration creates a table from these statements only when its
+# Current (version 7) layout. A migration creates a table from these statements only when its
 # layout is the current one; older layouts a migration still needs are kept beside it
 # (``_CHUNKS_V2``).
 _TABLES: dict[str, str] = {
@@ -153,7 +153,22 @@ _TABLES: dict[str, str] = {
             data BLOB NOT NULL,
             PRIMARY KEY (result_id, channel)
         )""",
+    "verdicts": """
+        CREATE TABLE verdicts (
+            id TEXT PRIMARY KEY,
+            skill_id TEXT NOT NULL REFERENCES skills(id),
+            campaign_id TEXT REFERENCES campaigns(id),
+            plant_digest TEXT NOT NULL,
+            criteria_digest TEXT NOT NULL,
+            verdict TEXT NOT NULL CHECK (verdict IN ('ready', 'not_ready')),
+            reasons TEXT NOT NULL,
+            criteria TEXT NOT NULL,
+            created REAL NOT NULL
+        )""",
 }
+
+# Tables later versions added (their migrations create them).
+_TABLES_SINCE_7 = ("verdicts",)
 
 # Older chunk layouts: version 2 without any check column, versions 3 to 5 with an additive
 # checksum in its place.
@@ -185,6 +200,11 @@ _INDEXES: tuple[str, ...] = (
     "CREATE INDEX idx_replay_results_skill ON replay_results (skill_id, created)",
     "CREATE INDEX idx_replay_results_campaign ON replay_results (campaign_id, scenario_index)",
 )
+# Indexes of version 7's verdict table, created by its migration too.
+_VERDICT_INDEXES: tuple[str, ...] = (
+    "CREATE INDEX idx_verdicts_lookup ON verdicts "
+    "(skill_id, plant_digest, criteria_digest, created)",
+)
 
 
 def _record_version(conn: sqlite3.Connection, version: int, description: str) -> None:
@@ -198,7 +218,7 @@ def _record_version(conn: sqlite3.Connection, version: int, description: str) ->
 def _create_latest(conn: sqlite3.Connection) -> None:
     for ddl in _TABLES.values():
         conn.execute(ddl)
-    for ddl in _INDEXES:
+    for ddl in _INDEXES + _VERDICT_INDEXES:
         conn.execute(ddl)
     _record_version(conn, SCHEMA_VERSION, "created")
 
@@ -209,7 +229,7 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
     conn.execute("ALTER TABLE demonstrations RENAME TO demonstrations_v1")
     conn.execute("ALTER TABLE chunks RENAME TO chunks_v1")
     for name, ddl in _TABLES.items():
-        if name != VERSION_TABLE:
+        if name not in (VERSION_TABLE, *_TABLES_SINCE_7):
             conn.execute(_CHUNKS_V2 if name == "chunks" else ddl)
     conn.execute(
         """INSERT INTO demonstrations (
@@ -328,6 +348,14 @@ def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
         )
 
 
+def _migrate_6_to_7(conn: sqlite3.Connection) -> None:
+    """Version 7 keeps readiness verdicts: a skill on a plant (by digest) under criteria (by
+    digest), with the reasons, the criteria themselves and the campaign it came from."""
+    conn.execute(_TABLES["verdicts"])
+    for ddl in _VERDICT_INDEXES:
+        conn.execute(ddl)
+
+
 # from-version -> (description, migration to from-version + 1)
 MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
     1: ("summaries, tag index, writer leases, skills and replay results", _migrate_1_to_2),
@@ -335,6 +363,7 @@ MIGRATIONS: dict[int, tuple[str, Callable[[sqlite3.Connection], None]]] = {
     3: ("one typed record for replay parameters", _migrate_3_to_4),
     4: ("version table renamed store_schema_history", _migrate_4_to_5),
     5: ("SHA-256 chunk digests", _migrate_5_to_6),
+    6: ("readiness verdicts", _migrate_6_to_7),
 }
 
 

@@ -4,8 +4,8 @@ provenance, and replay results with their traces. Built on sqlite-utils (``store
 
 ``DemoStore`` is the public face; each concern lives in its own module and works on the store's
 :class:`~compliant_demo.store._session.StoreSession`: ``_recording`` (writer leases, recording),
-``_queries``, ``_curation`` (with ``merge``), ``_results`` (skills, campaigns, replay results)
-and ``_rows`` (row builders and validators).
+``_queries``, ``_curation`` (with ``merge``), ``_results`` (skills, campaigns, replay results),
+``_verdicts`` (readiness verdicts) and ``_rows`` (row builders and validators).
 """
 
 from __future__ import annotations
@@ -21,7 +21,15 @@ import numpy as np
 import sqlite_utils
 
 from compliant_demo.exceptions import NotFoundError, StoreError
-from compliant_demo.store import _codec, _curation, _ids, _queries, _recording, _results
+from compliant_demo.store import (
+    _codec,
+    _curation,
+    _ids,
+    _queries,
+    _recording,
+    _results,
+    _verdicts,
+)
 from compliant_demo.store._recording import CHUNK_SAMPLES, FINAL_STATUSES
 from compliant_demo.store._rows import choice, finite, parameters_document
 from compliant_demo.store._session import StoreSession
@@ -35,10 +43,13 @@ from compliant_demo.store.records import (
     ReplayResult,
     ReplayResultInfo,
     SkillRecord,
+    VerdictRecord,
 )
 
 if TYPE_CHECKING:
     import pandas
+
+    from compliant_demo.readiness import Verdict
 
 __all__ = ["DemoStore", "CHUNK_SAMPLES"]
 
@@ -578,3 +589,41 @@ class DemoStore:
     def completed_scenarios(self, campaign_id: str) -> set[int]:
         """Scenario indices of a campaign that already have a result (to resume a campaign)."""
         return _results.completed_scenarios(self._session, campaign_id)
+
+    # -- readiness verdicts -----------------------------------------------------------------
+
+    def save_verdict(
+        self,
+        verdict: Verdict,
+        *,
+        skill_id: str,
+        plant_digest: str,
+        criteria_digest: str,
+        campaign_id: str | None,
+        criteria: dict[str, Any],
+    ) -> str:
+        """Store a readiness verdict of a skill version on a plant; its id.
+
+        Parameters
+        ----------
+        verdict : :class:`compliant_demo.readiness.Verdict`
+        skill_id : id of the skill version judged
+        plant_digest : :attr:`compliant_demo.plant.ReplayPlant.digest` of the plant
+        criteria_digest : :attr:`compliant_demo.readiness.Criteria.digest`; must be the digest
+            of ``criteria`` (InvalidInputError otherwise)
+        campaign_id : campaign of that skill whose scenarios the verdict counts, or None
+        criteria : the criteria as JSON (``Criteria.model_dump(mode="json")``)
+        """
+        return _verdicts.save_verdict(
+            self._session, verdict, skill_id=skill_id, plant_digest=plant_digest,
+            criteria_digest=criteria_digest, campaign_id=campaign_id, criteria=criteria,
+        )  # fmt: skip
+
+    def latest_verdict(
+        self, skill_id: str, *, plant_digest: str, criteria_digest: str
+    ) -> VerdictRecord | None:
+        """The newest stored verdict of ``skill_id`` on the plant and criteria with these
+        digests, or None when there is none."""
+        return _verdicts.latest_verdict(
+            self._session, skill_id, plant_digest=plant_digest, criteria_digest=criteria_digest
+        )

@@ -23,6 +23,7 @@ __all__ = [
     "ReplayResult",
     "MergeConflict",
     "MergeReport",
+    "VerdictRecord",
 ]
 
 DEMO_SOURCES: tuple[str, ...] = ("recorded", "imported", "simulated")
@@ -300,6 +301,46 @@ class ReplayResult:
     def parameters(self) -> ReplayParameters:
         """What the replay was run with (``info.parameters``)."""
         return self.info.parameters
+
+
+@dataclass(frozen=True, slots=True)
+class VerdictRecord:
+    """A stored readiness verdict of one skill version on one plant under one set of criteria.
+
+    Attributes
+    ----------
+    id : str
+        UUID4 of the verdict.
+    verdict : {"ready", "not_ready"}
+    reasons : list of dict
+        ``Reason.to_dict()`` of each reason, most severe first.
+    skill_id : str
+    skill_version : int
+        Version of the skill ``skill_id`` names.
+    plant_digest, criteria_digest : str
+        SHA-256 (hex) of the plant and of the criteria the verdict was reached on.
+    campaign_id : str or None
+        Campaign whose scenarios it counts, None when it rests on the schedule checks alone.
+    criteria : dict
+        The criteria themselves, as JSON.
+    created_at : float
+        Unix time, s.
+    """
+
+    id: str
+    verdict: str
+    reasons: list[dict[str, Any]]
+    skill_id: str
+    skill_version: int
+    plant_digest: str
+    criteria_digest: str
+    campaign_id: str | None
+    criteria: dict[str, Any]
+    created_at: float
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-ready dict."""
+        return asdict(self)
 
 
 @dataclass(frozen=True, slots=True)
