@@ -253,14 +253,14 @@ def set_parameter(client: TestClient, node: str, name: str, value: Any) -> Any:
 class DiagnosticsOf:
     """The latest diagnostics status named ``name``, as key -> value, from a subscription."""
 
-    def __init__(self, client: TestClient, name: str):
+    def __init__(self, client: TestClient, name: str, topic: str = "diagnostics"):
         from diagnostic_msgs.msg import DiagnosticArray
 
         self.name = name
         self.seen: list[dict[str, str]] = []
         self.levels: list[int] = []
         self._subscription = client.node.create_subscription(
-            DiagnosticArray, "diagnostics", self._on_message, 10
+            DiagnosticArray, topic, self._on_message, 10
         )
         self._client = client
 

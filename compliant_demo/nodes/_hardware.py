@@ -68,6 +68,8 @@ COMMAND_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                          history=HistoryPolicy.KEEP_LAST, durability=DurabilityPolicy.VOLATILE)
 
 _COMMANDER_CHECK_PERIOD_S = 0.1
+# What rmw reports as the name of a publisher whose node DDS discovery has not described yet.
+_UNNAMED = "_NODE_NAME_UNKNOWN_"
 # A run starts from a joint state at most this old (or the stale timeout, if longer), s: the
 # service call waits in the same executor as the feedback, so the very last sample may be queued.
 _START_FEEDBACK_AGE_S = 0.5
@@ -346,7 +348,8 @@ class HardwareMode:
         for publisher in self._publishers.values():
             for info in self._node.get_publishers_info_by_topic(publisher.topic_name):
                 if (info.node_name, info.node_namespace) != own:
-                    where = info.node_namespace.rstrip("/") + "/" + info.node_name
+                    where = ("a node discovery has not named yet" if info.node_name == _UNNAMED
+                             else info.node_namespace.rstrip("/") + "/" + info.node_name)
                     found.append(f"{where} on {publisher.topic_name}")
         return ", ".join(sorted(set(found)))
 
