@@ -12,11 +12,10 @@ Over loopback DDS with real processes (``python -m compliant_demo.nodes.replay``
 - ``stale_feedback_stop_ms``: the fake hardware freezes its joint states (the last sample sent
   again and again) 0.8 s into a run; the time from the first frozen sample until an equilibrium
   command at exactly the frozen angles (the stop) reaches the fake hardware, measured there; the
-  worst of ``--stale-trials`` trials (default timeout: 1.5 periods), with both nodes' threads on
-  SCHED_FIFO priority 20 (``realtime_priority``; the jitter runs use the normal scheduler). A
-  trial that the watchdog stopped before the freeze (a real gap in the loaded machine's feedback)
-  is counted in ``stale_trials_unmeasured`` and not measured (so is a run that found no fresh joint
-  state within 0.5 s of the call and never started).
+  worst of ``--stale-trials`` trials (default timeout: 1.5 periods). A trial that the watchdog
+  stopped before the freeze (a real gap in the loaded machine's feedback) is counted in
+  ``stale_trials_unmeasured`` and not measured (so is a run that found no fresh joint state within
+  0.5 s of the call and never started).
 - ``ungated_refused``: 1 when the node refuses, naming the missing verdict, a skill version with
   no verdict for the plant and criteria (no override).
 
@@ -27,8 +26,9 @@ spikes, alone and together), and ``envelope_violations``: commands outside the e
 them (:func:`compliant_demo.handoff.envelope.envelope_violations`), with the stops by reason and
 the worst stale-feedback stop in simulated periods.
 
-Every process gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST and ROS_DOMAIN_ID 141; every child dies
-with the benchmark. Prints one JSON object per measurement; the last line is
+Both nodes run with ``realtime_priority:=20`` (SCHED_FIFO for their threads, the deadline threads
+one above). Every process gets ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST and ROS_DOMAIN_ID 141; every
+child dies with the benchmark. Prints one JSON object per measurement; the last line is
 ``{"bench": "handoff", ...}``.
 """
 
@@ -69,11 +69,10 @@ RATE_HZ = 500.0
 DT = 1.0 / RATE_HZ
 JOINTS = ["shoulder", "elbow"]
 FREEZE_AT_S = 0.8
-# The stale-feedback trials put both nodes' threads on SCHED_FIFO (realtime_priority): on this
-# shared machine the normal scheduler leaves a thread waiting longer than the 3 ms timeout when the
-# load average is several times the cores, and the watchdog then stops the run before the freeze.
-# The jitter runs use the normal scheduler, which gave the steadier command period here.
-STALE_PRIORITY = 20
+# Both nodes' threads on SCHED_FIFO (realtime_priority): on this shared machine the normal
+# scheduler leaves a thread waiting longer than the 3 ms timeout often enough that the watchdog
+# stopped every stale-feedback trial before the freeze (measured: 5 of 5 at a load average of 2).
+PRIORITY = 20
 EQUILIBRIUM_TOPIC = "joint_equilibrium_controller/commands"
 
 
@@ -190,7 +189,7 @@ def fault_runs(skill, n_runs: int, seed: int) -> dict:
 def replay_parameters(store: Path, extra: list[str]) -> list[str]:
     return [f"store_path:={store}", "mode:=hardware", f"command_rate_hz:={RATE_HZ}",
             "soft_start_s:=0.5", "settle_s:=0.2", "max_stiffness_rate:=400.0",
-            "commander_check_s:=0.5", *extra]
+            "commander_check_s:=0.5", f"realtime_priority:={PRIORITY}", *extra]
 
 
 def dds_run(store: Path, log_dir: Path, tag: str, fake: list[str], replay: list[str],
@@ -200,7 +199,8 @@ def dds_run(store: Path, log_dir: Path, tag: str, fake: list[str], replay: list[
     from std_msgs.msg import Float64MultiArray
 
     fake_node = start_module("compliant_demo.nodes.fake_hardware",
-                             [f"rate_hz:={RATE_HZ}", "diagnostics_period_s:=0.2", *fake],
+                             [f"rate_hz:={RATE_HZ}", "diagnostics_period_s:=0.2",
+                              f"realtime_priority:={PRIORITY}", *fake],
                              DOMAIN_ID, log_dir / f"fake_{tag}.log", "fake_hardware")
     replay_node = start_module("compliant_demo.nodes.replay",
                                replay_parameters(store, replay), DOMAIN_ID,
@@ -278,9 +278,8 @@ def main(argv: list[str] | None = None) -> int:
         summary["source_jitter_p99_ms"] = round(max(source), 3)
         stale, early = [], 0
         for trial in range(args.stale_trials):
-            priority = f"realtime_priority:={STALE_PRIORITY}"
             outcome = dds_run(store_path, work, f"stale{trial}",
-                              [f"freeze_at_s:={FREEZE_AT_S}", priority], [priority])
+                              [f"freeze_at_s:={FREEZE_AT_S}"], [])
             value = outcome.get("fake", {}).get("freeze_to_stop_ms", "none")
             if "not_started" in outcome:
                 emit({"measure": "stale_feedback", "trial": trial, "not_started": True})
@@ -296,7 +295,7 @@ def main(argv: list[str] | None = None) -> int:
         summary["stale_feedback_stop_ms_median"] = (round(statistics.median(stale), 3)
                                                     if stale else None)
         summary["stale_trials_unmeasured"] = early
-        summary["stale_trials_realtime_priority"] = STALE_PRIORITY
+        summary["realtime_priority"] = PRIORITY
     summary["load_average_1min"] = round(os.getloadavg()[0], 2)
     emit(summary)
     return 0
