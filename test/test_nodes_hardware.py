@@ -140,11 +140,16 @@ def test_gate_run_stop_service_and_read_only_limits(store: Path, tmp_path: Path)
 
 
 def test_frozen_feedback_stops_a_bench_override_run(store: Path, tmp_path: Path) -> None:
+    from trajectory_msgs.msg import JointTrajectory  # ROS messages load inside the tests
+
     fake = start_module("compliant_demo.nodes.fake_hardware", [*FAKE, "freeze_at_s:=0.5"],
                         DOMAIN_ID, tmp_path / "fake.log", "fake_hardware")
-    replay = start_replay(store, tmp_path, "b", "skill:=unjudged", "bench_override:=true")
+    replay = start_replay(store, tmp_path, "b", "skill:=unjudged", "bench_override:=true",
+                          "trajectory_topic:=/arm/trajectory")
     client = TestClient(DOMAIN_ID, "hardware_freeze_client")
     diagnostics = DiagnosticsOf(client, "replay", "/b/diagnostics")
+    trajectories: list = []
+    client.node.create_subscription(JointTrajectory, "/arm/trajectory", trajectories.append, 10)
     fake_diagnostics = DiagnosticsOf(client, "fake_hardware")
     try:
         client.spin_until(lambda: diagnostics.latest.get("feedback_received", "0") != "0", 60.0,
@@ -162,6 +167,11 @@ def test_frozen_feedback_stops_a_bench_override_run(store: Path, tmp_path: Path)
         assert result.info.reason.startswith("stale_feedback: no fresh joint state for")
         assert result.info.metrics["bench_override"] is True
         assert result.info.metrics["gate"]["overridden"] is True
+        # the optional trajectory: the equilibrium as one point, one period ahead
+        last = trajectories[-1]
+        assert list(last.joint_names) == ["shoulder", "elbow"] and len(last.points) == 1
+        assert last.points[0].time_from_start.nanosec == 10_000_000
+        assert len(last.points[0].positions) == 2
         entry = int(np.flatnonzero(result.trace["stop_entry"])[0])
         np.testing.assert_array_equal(result.trace["equilibrium"][entry],
                                       result.trace["measured"][entry])
