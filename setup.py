@@ -13,6 +13,7 @@ ROS_WHEELS = [
     "ros-sensor-msgs",
     "ros-std-srvs",
     "ros-diagnostic-msgs",
+    "ros-trajectory-msgs",
 ]
 
 setup(
@@ -68,6 +69,7 @@ setup(
             "learner_node = compliant_demo.nodes.learner:main",
             "replay_node = compliant_demo.nodes.replay:main",
             "teaching_watch_node = compliant_demo.nodes.teaching_watch:main",
+            "fake_hardware_node = compliant_demo.nodes.fake_hardware:main",
         ],
     },
 )

@@ -110,13 +110,16 @@ def launched(
 
 
 def start_module(
-    module: str, parameters: Sequence[str], domain_id: int, log: Path, name: str
+    module: str, parameters: Sequence[str], domain_id: int, log: Path, name: str,
+    remaps: Sequence[str] = (),
 ) -> Nodes:
-    """``python -m module --ros-args -p ...`` as one node."""
+    """``python -m module --ros-args -p ... -r ...`` as one node."""
     handle = log.open("wb")
     command = [sys.executable, "-m", module, "--ros-args"]
     for parameter in parameters:
         command += ["-p", parameter]
+    for remap in remaps:
+        command += ["-r", remap]
     child = start_child(name, command, env=ros_env(domain_id), stdout=handle,
                         stderr=subprocess.STDOUT)
     handle.close()
@@ -250,14 +253,14 @@ def set_parameter(client: TestClient, node: str, name: str, value: Any) -> Any:
 class DiagnosticsOf:
     """The latest diagnostics status named ``name``, as key -> value, from a subscription."""
 
-    def __init__(self, client: TestClient, name: str):
+    def __init__(self, client: TestClient, name: str, topic: str = "diagnostics"):
         from diagnostic_msgs.msg import DiagnosticArray
 
         self.name = name
         self.seen: list[dict[str, str]] = []
         self.levels: list[int] = []
         self._subscription = client.node.create_subscription(
-            DiagnosticArray, "diagnostics", self._on_message, 10
+            DiagnosticArray, topic, self._on_message, 10
         )
         self._client = client
 

@@ -92,7 +92,8 @@ def test_reader_resolves_arguments_files_and_executables(tmp_path: Path) -> None
          "</node></launch>", {}, r"unsupported element <remap>"),
         ("<launch><node pkg='compliant_demo' exec='no_such_node'/></launch>", {},
          r"<node exec='no_such_node'>: not a node; only the package's own executables run "
-         r"\(learner_node, recorder_node, replay_node, teacher_node\)"),
+         r"\(fake_hardware_node, learner_node, recorder_node, replay_node, teacher_node, "
+         r"teaching_watch_node\)"),
         ("<launch><node pkg='compliant_demo' exec='../../bin/teacher_node'/></launch>", {},
          r"<node exec='../../bin/teacher_node'>: a path; only the package's own executables"),
         ("<launch><node pkg='compliant_demo' exec='/bin/sh'/></launch>", {},

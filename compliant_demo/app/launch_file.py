@@ -49,6 +49,8 @@ NODE_MODULES: dict[str, str] = {
     "recorder_node": "compliant_demo.nodes.recorder",
     "learner_node": "compliant_demo.nodes.learner",
     "replay_node": "compliant_demo.nodes.replay",
+    "fake_hardware_node": "compliant_demo.nodes.fake_hardware",
+    "teaching_watch_node": "compliant_demo.nodes.teaching_watch",
 }
 
 #: Parameters (with the node's own defaults) that make a node end by itself once its work is

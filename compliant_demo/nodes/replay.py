@@ -1,9 +1,15 @@
-"""Replay node: a stored skill on the simulated joint, with scheduled and live perturbations.
+"""Replay node: a stored skill on the simulated joint, or on hardware through the envelope.
 
-Safety limits (``max_stiffness_rate``, ``max_live_torque``, ``max_steps``) and files
-(``store_path``, ``plant_file``, ``schedule_file``) are read-only: set at launch, never by a
-participant at run time. The plant and schedule are loaded once at start, from the places
-:func:`compliant_demo.nodes._files.allowed_config_dirs` names. A live torque on
+``mode`` (read-only) chooses: ``simulation`` (default) steps the plant of ``plant_file`` with
+scheduled and live perturbations and publishes its joint states; ``hardware`` sends the skill to a
+joint impedance controller through the safety envelope (:mod:`compliant_demo.nodes._hardware`),
+only when the gate lets it (:mod:`compliant_demo.handoff.gate`), and never publishes
+``joint_states`` itself.
+
+Safety limits (``max_stiffness_rate``, ``max_live_torque``, ``max_steps`` and the envelope's) and
+files (``store_path``, ``plant_file``, ``schedule_file``, ``criteria_file``) are read-only: set at
+launch, never by a participant at run time. The plant and schedule are loaded once at start, from
+the places :func:`compliant_demo.nodes._files.allowed_config_dirs` names. A live torque on
 ``perturbation_command`` that is not one finite value per joint within ``max_live_torque`` is
 ignored and counted in ``diagnostics``.
 """
@@ -19,7 +25,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
-from compliant_demo.exceptions import CompliantDemoError
+from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 from compliant_demo.nodes._common import (
     RejectCounter,
     check_parameter_changes,
@@ -35,11 +41,15 @@ from compliant_demo.nodes._common import (
     to_stamp,
 )
 from compliant_demo.nodes._files import load_file_parameter
+from compliant_demo.nodes._hardware import HardwareMode, hardware_gate
 from compliant_demo.plant import load_plant
 from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
 from compliant_demo.store import ReplayParameters
 
-__all__ = ["ReplayNode", "main"]
+__all__ = ["MODES", "ReplayNode", "main"]
+
+#: What the replay node drives: the simulated plant or a joint impedance controller.
+MODES = ("simulation", "hardware")
 
 
 class ReplayNode(Node):
@@ -49,6 +59,11 @@ class ReplayNode(Node):
     def __init__(self) -> None:
         super().__init__("replay")
         d = declare
+        mode = d(self, "mode", "simulation", "simulation: replay on the simulated plant; "
+                 "hardware: command a joint impedance controller through the safety envelope.")
+        if mode not in MODES:
+            raise InvalidInputError(f"parameter mode = {str(mode)[:40]!r}: expected one of "
+                                    f"{', '.join(MODES)}")
         self._store_path = d(self, "store_path", "", "Store file; empty = the default store.")
         d(self, "skill", "cork_seat", "Skill to replay.", read_only=False)
         d(self, "skill_version", 0, "Skill version; 0 = the latest.", low=0, high=1000000,
@@ -95,18 +110,30 @@ class ReplayNode(Node):
 
             self._schedule = load_file_parameter("schedule_file", schedule_file,
                                                  load_schedule_yaml)
+        criteria_file = d(self, "criteria_file", "", "Hardware: acceptance criteria YAML of the "
+                          "verdict the gate asks for, in an allowed config folder; empty = the "
+                          "shipped criteria.")
+        self._criteria = None
+        if mode == "hardware":
+            from compliant_demo.readiness import load_criteria
+
+            self._criteria = (load_file_parameter("criteria_file", criteria_file, load_criteria)
+                              if criteria_file else load_criteria())
         self.rejects = RejectCounter(self)
         # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
-        self._joint_states = self.create_publisher(JointState, "joint_states", 100)
-        self._commanded = self.create_publisher(Float64MultiArray, "stiffness_commanded", 100)
-        self._realised = self.create_publisher(Float64MultiArray, "stiffness_realised", 100)
-        self._perturbation = self.create_publisher(Float64MultiArray, "perturbation", 100)
-        # Live pushes are commands: keep only the latest, reliably.
-        self.create_subscription(
-            Float64MultiArray, "perturbation_command",
-            self.rejects.guard("perturbation_command", self._on_live_torque), 10,
-        )
+        self._hardware = HardwareMode(self, self.rejects) if mode == "hardware" else None
+        if self._hardware is None:  # the simulated joint's own topics
+            self._joint_states = self.create_publisher(JointState, "joint_states", 100)
+            self._commanded = self.create_publisher(Float64MultiArray, "stiffness_commanded",
+                                                    100)
+            self._realised = self.create_publisher(Float64MultiArray, "stiffness_realised", 100)
+            self._perturbation = self.create_publisher(Float64MultiArray, "perturbation", 100)
+            # Live pushes are commands: keep only the latest, reliably.
+            self.create_subscription(
+                Float64MultiArray, "perturbation_command",
+                self.rejects.guard("perturbation_command", self._on_live_torque), 10,
+            )
         check_parameter_changes(self, _check_parameters)
         self.create_service(Trigger, "run", guarded_service(self, "run", self._on_run))
         self.done = False
@@ -130,43 +157,56 @@ class ReplayNode(Node):
 
         version = self._value("skill_version") or None
         name = self._value("skill")
+        hardware = self._hardware
+        requested_at = time.monotonic()
         try:
             with open_store(self._store_path, read_only=True) as store:
                 stored = load_skill(store, name, version)
-            record, skill = stored.record, stored.skill
+                record, skill = stored.record, stored.skill
+                gate = None if hardware is None else hardware_gate(
+                    store, record, self._plant, self._criteria, hardware.bench_override)
             duration_s = self._value("duration_s") or skill.duration_s
-            steps = (duration_s + self._value("settle_s")) * self._value("control_rate_hz")
+            rate_name = "control_rate_hz" if hardware is None else "command_rate_hz"
+            rate = self._value(rate_name)
+            steps = (duration_s + self._value("settle_s")) * rate
             if steps > self._max_steps:
-                return False, (f"{steps:.0f} steps ((duration_s + settle_s) x control_rate_hz) "
+                return False, (f"{steps:.0f} steps ((duration_s + settle_s) x {rate_name}) "
                                f"exceed max_steps = {self._max_steps}")
             goal = list_parameter(self, "goal", float)
             setup = ReplaySetup(
                 skill,
                 self._plant,
-                dt=1.0 / self._value("control_rate_hz"),
+                dt=1.0 / rate,
                 duration_s=self._value("duration_s") or None,
                 settle_s=self._value("settle_s"),
                 goal=tuple(goal) if goal else None,
                 method=self._value("method"),
                 max_stiffness_rate=self._value("max_stiffness_rate"),
             )
-            self._run = ReplayRun(setup, self._schedule, seed=self._value("seed"))
+            if hardware is not None and gate is not None:
+                message = hardware.start(setup, gate, requested_at)
+            else:
+                self._run = ReplayRun(setup, self._schedule, seed=self._value("seed"))
         except CompliantDemoError as exc:
             return False, str(exc)
         self._skill_id = record.id
+        simulated = hardware is None
         self._replay_parameters = setup.parameters(
-            "node", self._schedule, self._value("seed"), skill_version=record.version,
-            plant_file=self._value("plant_file"), schedule_file=self._value("schedule_file"),
-            real_time=self._value("real_time"),
+            "node", self._schedule if simulated else None, self._value("seed"),
+            skill_version=record.version, plant_file=self._value("plant_file"),
+            schedule_file=self._value("schedule_file") if simulated else None,
+            real_time=self._value("real_time") if simulated else True,
         )
+        if hardware is not None:
+            return True, f"{name!r} version {record.version} to hardware: {message}"
         self._started_wall = time.monotonic()
         self._stamp_origin = time.time()
         self._live = None
         return True, (f"replaying {name!r} version {record.version}: "
-                      f"{self._run.n_steps} steps of {self._run.dt * 1e3:.3g} ms")
+                      f"{setup.n_steps} steps of {setup.dt * 1e3:.3g} ms")
 
     def _on_run(self, _request: Trigger.Request, response: Trigger.Response):
-        if self._run is not None:
+        if self._run is not None or (self._hardware is not None and self._hardware.running):
             response.success, response.message = False, "a replay is already running"
         else:
             response.success, response.message = self._prepare()
@@ -199,9 +239,15 @@ class ReplayNode(Node):
                   **self.rejects.values()}
         level, message = ("warn", f"{self.rejects.total} messages ignored") if (
             self.rejects.total) else ("ok", "replaying" if run is not None else "idle")
+        if self._hardware is not None:
+            values.update(self._hardware.values())
+            if self._hardware.running:
+                message = "commanding hardware"
         self._diagnostics.publish(diagnostic_array(self, "replay", level, message, values))
 
     def _tick(self) -> None:
+        if self._hardware is not None:
+            self._tick_hardware(self._hardware)
         if self._run is None:
             if self._waiting_for_skill:
                 self._try_auto_start()
@@ -237,6 +283,29 @@ class ReplayNode(Node):
         self._realised.publish(float_array(state.stiffness_realised[0]))
         self._perturbation.publish(float_array(state.tau_external[0]))
 
+    def _tick_hardware(self, hardware: HardwareMode) -> None:
+        """Report each new stop at once (log and diagnostics) and store a finished run."""
+        for stop in hardware.new_stops():
+            text = f"stop ({stop['reason']}) at {stop['t_s']:.4f} s: {stop['detail']}"
+            if stop["reason"] == "completed":
+                self.get_logger().info(text)
+            else:
+                self.get_logger().warning(text)
+            level = "ok" if stop["reason"] == "completed" else "warn"
+            self._diagnostics.publish(diagnostic_array(
+                self, "replay", level, text, {"stop_reason": str(stop["reason"]),
+                                              "stop_t_s": f"{stop['t_s']:.6f}",
+                                              "stop_detail": str(stop["detail"])}))
+        outcome = hardware.poll()
+        if outcome is not None:
+            self._store(*outcome)
+
+    def close(self) -> None:
+        """End a hardware run with its stop ramp and store it (node shutdown)."""
+        if self._hardware is not None and self._hardware.running:
+            self._hardware.close()
+            self._tick_hardware(self._hardware)
+
     def _finish(self, run: ReplayRun) -> None:
         self._run = None
         try:
@@ -246,6 +315,9 @@ class ReplayNode(Node):
             self.exit_status = 1
             self.done = self._end_after_run
             return
+        self._store(status, reason, metrics, trace)
+
+    def _store(self, status: str, reason: str | None, metrics: dict, trace: dict) -> None:
         if reason:
             self.get_logger().warning(f"replay {status}: {reason}")
         try:
@@ -258,10 +330,11 @@ class ReplayNode(Node):
             self.get_logger().error(f"replay result not stored: {exc}")
             self.exit_status = 1
         else:
+            goal = ("" if "goal_error_max_rad" not in metrics
+                    else f"goal error {metrics['goal_error_max_rad']:.3g} rad; ")
             self.get_logger().info(
                 f"replay {status} after {metrics['steps']} of {metrics['steps_planned']} steps: "
-                f"goal error {metrics.get('goal_error_max_rad', float('nan')):.3g} rad; "
-                f"result {result_id}"
+                f"{goal}result {result_id}"
             )
             if status != "ok":
                 self.exit_status = 1
@@ -288,6 +361,10 @@ def _check_parameters(values: dict) -> str | None:
 
     if not values["skill"]:
         return "skill must not be empty"
+    if values["mode"] == "hardware" and values["run_when_available"]:
+        return "run_when_available is refused in hardware mode: a person starts a hardware run"
+    if values["mode"] == "hardware" and values["schedule_file"]:
+        return "schedule_file is refused in hardware mode: perturbations are simulated only"
     if values["method"] not in METHODS:
         return f"method must be one of {', '.join(METHODS)}, got {values['method'][:40]!r}"
     goal = values["goal"]
