@@ -395,7 +395,8 @@ def collect_report_content(
     # scenarios count only on the plant they ran on (a --plant other than the campaign's judges
     # the schedule alone)
     same_plant = job is not None and job.plant.digest == plant.digest
-    verdict = assess(criteria, plant, checks, results if same_plant else [])
+    verdict = assess(criteria, plant, checks, results if same_plant else [], skill=skill,
+                     movement_s=job.setup.movement_s if job else None)
     if results and not same_plant:
         summary.append(("verdict basis", "schedule checks only: the campaign ran on another "
                                          "plant"))
