@@ -353,22 +353,16 @@ class DampingPolicy(BaseModel):
 
 
 class ClampedStretch(BaseModel):
-    """A stretch of the skill where the teacher's stiffness lay outside the target's range.
-
-    Times are in the skill's own (demonstrated) time, s from its start.
-    """
+    """A stretch of the skill where the teacher's stiffness lay outside the target's range;
+    times in the skill's own (demonstrated) time, s from its start."""
 
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
 
     joint: str = Field(..., min_length=1)
     from_s: float = Field(..., ge=0, description="First sample outside the range, s.")
     to_s: float = Field(..., ge=0, description="Last sample outside the range, s.")
-    teacher_stiffness: float = Field(
-        ..., description="The teacher's most extreme stiffness in the stretch, N*m/rad."
-    )
-    clamped_to: float = Field(
-        ..., gt=0, description="The range bound the skill commands instead, N*m/rad."
-    )
+    teacher_stiffness: float = Field(..., description="The teacher's extreme there, N*m/rad.")
+    clamped_to: float = Field(..., gt=0, description="The bound commanded instead, N*m/rad.")
 
     @model_validator(mode="after")
     def _ordered(self) -> ClampedStretch:

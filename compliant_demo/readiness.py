@@ -49,7 +49,7 @@ __all__ = [
     "scenario_anchor",
     "stretch_anchor",
     "CLAMPED_CHECK",
-    "SCHEDULE_FIGURE_ANCHOR",
+    "clamped_anchor",
 ]
 
 #: The shipped acceptance criteria (in ``config/``).
@@ -58,8 +58,6 @@ CRITERIA_FILE = "readiness_criteria.yaml"
 VERDICTS: tuple[str, ...] = ("ready", "not_ready")
 #: Check name of a stretch where the skill commands a clamped version of the teacher's stiffness.
 CLAMPED_CHECK = "teacher_stiffness_clamped"
-#: HTML id of the report's figure of the learned stiffness along the skill.
-SCHEDULE_FIGURE_ANCHOR = "fig-schedule_checks"
 
 
 def _one_line(value: str, name: str) -> str:
@@ -256,6 +254,11 @@ def stretch_anchor(index: int) -> str:
     return f"stretch-{index}"
 
 
+def clamped_anchor(index: int) -> str:
+    """HTML id of stretch ``index`` of a skill's ``teacher_stiffness_clamped`` (in the report)."""
+    return f"clamped-{index}"
+
+
 def scenario_anchor(result: ReplayResultInfo) -> str:
     """HTML id of a replay result in the report: its campaign scenario, else its id."""
     if result.scenario_index is not None:
@@ -365,7 +368,7 @@ def _clamped_reasons(
     span = float(schedule.t[-1] - schedule.t[0]) or 1.0
     shortest = criteria.thresholds.min_stretch_duration.value
     reasons = []
-    for stretch in stretches:
+    for index, stretch in enumerate(stretches):
         if stretch.joint not in schedule.joints:
             raise InvalidInputError(f"skill provenance {CLAMPED_CHECK}: joint {stretch.joint!r} "
                                     f"is not one of the schedule's {list(schedule.joints)}")
@@ -379,7 +382,7 @@ def _clamped_reasons(
             value=stretch.teacher_stiffness, threshold=stretch.clamped_to, unit="N*m/rad",
             severity=(_relative_excess(stretch.teacher_stiffness, stretch.clamped_to)
                       * min(duration / span, 1.0)),
-            link=SCHEDULE_FIGURE_ANCHOR,
+            link=clamped_anchor(index),
             detail=(f"the teacher was {side} than the mechanism allows on {stretch.joint} for "
                     f"{duration:.3g} s ({start:.3g} to {end:.3g} s): taught "
                     f"{stretch.teacher_stiffness:.3g}, commanded {stretch.clamped_to:.3g} "

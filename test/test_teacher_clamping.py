@@ -16,9 +16,9 @@ from compliant_demo.plant import ReplayPlant
 from compliant_demo.primitives import ClampedStretch, Skill
 from compliant_demo.readiness import (
     CLAMPED_CHECK,
-    SCHEDULE_FIGURE_ANCHOR,
     assess,
     assess_replays,
+    clamped_anchor,
     load_criteria,
     schedule_report,
 )
@@ -76,7 +76,7 @@ def test_the_verdict_names_the_clamped_stretch_with_times_scaled_to_the_replay()
     assert (reason.joint, reason.from_s, reason.to_s) == ("elbow", stretch.from_s, stretch.to_s)
     assert (reason.value, reason.threshold, reason.unit) == (
         stretch.teacher_stiffness, 10.0, "N*m/rad")
-    assert reason.link == SCHEDULE_FIGURE_ANCHOR
+    assert reason.link == clamped_anchor(0)
     # severity: (10 - 5) / 10 times the stretch's share of movement plus settling
     assert reason.severity == pytest.approx(0.5 * (stretch.to_s - stretch.from_s) / span)
     slow = ReplaySetup(skill, PLANT, duration_s=2 * DURATION)
