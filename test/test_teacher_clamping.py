@@ -65,6 +65,24 @@ def test_a_stiffness_inside_the_range_records_no_stretch_and_above_gives_the_upp
     assert (above.teacher_stiffness, above.clamped_to) == (pytest.approx(230.0), RANGE[1])
 
 
+def test_stiffness_from_variability_records_both_sides_of_the_range():
+    # Invented demonstrations spread by a bump around mid-skill: the law is soft where they
+    # differ (below k_min there) and stiff where they agree (above k_max at both ends); the
+    # spread is symmetric about T/2, so are the stretches (within one sample).
+    bump = np.exp(-0.5 * ((T - DURATION / 2) / 0.2) ** 2)[:, None]
+    demos = [(T, cork_seat(T, DURATION) + offset * bump) for offset in (-0.2, -0.1, 0, 0.1, 0.2)]
+    skill = learn_skill(demos, joints=["shoulder", "elbow"], stiffness_source="variability",
+                        stiffness_range=RANGE, alignment="none")
+    found = [s for s in skill.provenance.teacher_stiffness_clamped if s.joint == "shoulder"]
+    assert [s.clamped_to for s in found] == [RANGE[1], RANGE[0], RANGE[1]]
+    start, soft, end = found
+    assert start.from_s == 0.0 and end.to_s == pytest.approx(DURATION)
+    assert soft.teacher_stiffness < RANGE[0] and min(start.teacher_stiffness,
+                                                     end.teacher_stiffness) > RANGE[1]
+    assert abs(soft.from_s - (DURATION - soft.to_s)) <= DT
+    assert abs(start.to_s - (DURATION - end.from_s)) <= DT
+
+
 def test_the_verdict_names_the_clamped_stretch_with_times_scaled_to_the_replay():
     criteria = load_criteria()
     skill = _soft_skill()
