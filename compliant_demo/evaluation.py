@@ -46,6 +46,7 @@ __all__ = [
     "Stretch",
     "ScheduleReport",
     "check_schedule",
+    "range_stretches",
     "outcome_metrics",
     "SETTLING_WINDOW_S",
     "SETTLING_TOLERANCE_RAD",
@@ -163,6 +164,20 @@ def _stretches(
 def _outside(value: NDArray[np.float64], low: ArrayLike, high: ArrayLike) -> NDArray[np.float64]:
     """Distance beyond [low, high], positive outside, negative inside."""
     return np.maximum(np.asarray(low) - value, value - np.asarray(high))
+
+
+def range_stretches(
+    t: NDArray[np.float64],
+    joints: Sequence[str],
+    kind: str,
+    value: NDArray[np.float64],
+    low: ArrayLike,
+    high: ArrayLike,
+    unit: str,
+) -> list[Stretch]:
+    """Stretches where ``value`` (n_samples, n_joints) lies outside [low, high] per joint;
+    ``worst`` is the value farthest outside, in ``unit``."""
+    return _stretches(t, joints, kind, value, _outside(value, low, high), unit)
 
 
 def _mechanism_limits(

@@ -25,11 +25,18 @@ from numpy.typing import ArrayLike, NDArray
 from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.arrays import finite_array, ranges, time_axis
 from compliant_demo.estimation import STIFFNESS_LATENCY_FLAG as LATENCY_FLAG
+from compliant_demo.evaluation import range_stretches
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.generalisation import choose_formulations
 from compliant_demo.models import model_from_mapping
 from compliant_demo.phase_basis import FitMethod
-from compliant_demo.primitives import DampingPolicy, Formulation, Skill, fit_skill
+from compliant_demo.primitives import (
+    ClampedStretch,
+    DampingPolicy,
+    Formulation,
+    Skill,
+    fit_skill,
+)
 from compliant_demo.store.records import SkillRecord
 from compliant_demo.variability import (
     VARIABILITY_BANDWIDTH,
@@ -41,6 +48,7 @@ __all__ = [
     "DEFAULT_MAX_SAMPLES",
     "StiffnessSource",
     "learn_skill",
+    "clamped_stretches",
     "save_skill",
     "StoredSkill",
     "skill_from_record",
@@ -61,6 +69,9 @@ AlignmentMethod = Literal["dtw", "resample", "none"]
 # fit's (n_samples x n_basis) work arrays near 8 MB however long the recording (a 6-minute one at
 # 1 kHz on the full base needed 20x its own size).
 DEFAULT_MAX_SAMPLES = 20_000
+# Bounds that leave the variability law unclamped, N*m/rad (positive and finite, as it requires).
+_TINY_STIFFNESS = float(np.finfo(float).tiny)
+_HUGE_STIFFNESS = float(np.finfo(float).max)
 
 
 class _SkillStore(Protocol):
@@ -340,14 +351,6 @@ def learn_skill(
         reason = normalised[missing[0]].stiffness_gap
         raise InvalidInputError(f"demos[{missing[0]}].stiffness: {reason}; use "
                                 "stiffness_source='variability'")
-    if source == "recorded" and stiffness_range is not None:
-        # A sliding-window estimate can stray outside any physical range in a noisy window (even
-        # to zero or below); the learned profile is clamped to this range anyway, so clamp the
-        # samples first: the log is then defined and no stray sample refuses the fit.
-        k_range = ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
-        normalised = [d if d.stiffness is None else
-                      replace(d, stiffness=np.clip(d.stiffness, k_range[:, 0], k_range[:, 1]))
-                      for d in normalised]
     if source == "variability":
         if len(normalised) < 2:
             raise InvalidInputError(
@@ -357,20 +360,43 @@ def learn_skill(
         if stiffness_range is None:
             raise InvalidInputError("stiffness_range: stiffness from variability needs the "
                                     "target joint's (k_min, k_max), got None")
-        k_range = ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True)
+    k_range = (None if stiffness_range is None else
+               ranges(stiffness_range, len(joint_names), "stiffness_range", positive=True))
+    clamp_recorded = source == "recorded" and k_range is not None
+    if clamp_recorded:
+        assert k_range is not None
+        # A sliding-window estimate can stray outside any physical range in a noisy window (even
+        # to zero or below); the learned profile is clamped to this range anyway, so clamp the
+        # samples first: the log is then defined and no stray sample refuses the fit. The
+        # unclamped samples ride along as extra columns, warped the same way, for the provenance.
+        normalised = [d if d.stiffness is None else replace(d, stiffness=np.hstack(
+            [np.clip(d.stiffness, k_range[:, 0], k_range[:, 1]), d.stiffness]))
+            for d in normalised]
 
     time, positions, recorded, summary = _align(normalised, alignment, band, n_samples)
     stiffness: NDArray[np.float64] | None = recorded
+    teacher: NDArray[np.float64] | None = None
+    if clamp_recorded and recorded is not None:
+        stiffness, teacher = recorded[..., :len(joint_names)], recorded[..., len(joint_names):]
+        teacher = teacher.mean(axis=0)
     if source == "variability":
-        anchor = {} if variability_reference is None else {
+        assert k_range is not None
+        anchor: dict[str, Any] = {} if variability_reference is None else {
             "reference_std": variability_reference[0],
             "reference_stiffness": variability_reference[1]}
         pooled = pooled_variance(positions, variability_bandwidth)
-        profile = stiffness_from_variability(
-            pooled.variance, k_range[:, 0], k_range[:, 1], n_demos=len(normalised),
-            degrees_of_freedom=pooled.degrees_of_freedom, variance_floor=variance_floor,
-            **anchor)
+        law: dict[str, Any] = dict(n_demos=len(normalised), variance_floor=variance_floor,
+                                   degrees_of_freedom=pooled.degrees_of_freedom)
+        profile = stiffness_from_variability(pooled.variance, k_range[:, 0], k_range[:, 1],
+                                             **law, **anchor)
+        # the same law without the target's range (a vanishing variance gives the largest
+        # float instead of infinity)
+        teacher = stiffness_from_variability(
+            pooled.variance, _TINY_STIFFNESS, _HUGE_STIFFNESS, **law,
+            **{"reference_stiffness": k_range[:, 0], **anchor})
         stiffness = np.broadcast_to(profile, positions.shape)
+    clamped = ([] if teacher is None or k_range is None else
+               clamped_stretches(time, teacher, k_range, joint_names))
     if smoothing_window is None and summary.get("dtw_costs") is not None:
         # About 10 % of the samples: the warped mean moves in steps (several demonstration
         # samples averaged onto one reference sample), worst where a demonstration starts or
@@ -388,8 +414,44 @@ def learn_skill(
         target_inertia=target_inertia, position_limits=position_limits,
         smoothing_window=smoothing_window, name=name,
         provenance={"demonstration_ids": ids, "alignment": summary, "stiffness_source": source,
-                    "formulation_choice": choice},
+                    "formulation_choice": choice,
+                    "teacher_stiffness_clamped": [c.model_dump() for c in clamped]},
     )
+
+
+def clamped_stretches(
+    time: ArrayLike, teacher_stiffness: ArrayLike, stiffness_range: ArrayLike,
+    joints: Sequence[str],
+) -> list[ClampedStretch]:
+    """Stretches where the teacher's stiffness lies outside the target's range.
+
+    Parameters
+    ----------
+    time : (n_samples,) array, s, strictly increasing; the skill's own time
+    teacher_stiffness : (n_samples, n_joints) array, N*m/rad, before any clamping
+    stiffness_range : (k_min, k_max) or (n_joints, 2), N*m/rad
+    joints : joint names, one per column
+
+    Returns
+    -------
+    list of ClampedStretch, per joint in time order: first and last sample outside the range
+    (times from the first sample), the teacher's most extreme value there and the bound the
+    skill commands instead.
+    """
+    times = time_axis(time, "time")
+    teacher = finite_array(teacher_stiffness, "teacher_stiffness")
+    names = list(joints)
+    if teacher.shape != (times.size, len(names)):
+        raise InvalidInputError(f"teacher_stiffness: expected shape ({times.size}, "
+                                f"{len(names)}), got {teacher.shape}")
+    k_range = ranges(stiffness_range, len(names), "stiffness_range", positive=True)
+    found = range_stretches(times - times[0], names, "teacher_stiffness_clamped", teacher,
+                            k_range[:, 0], k_range[:, 1], "N*m/rad")
+    bounds = dict(zip(names, k_range.tolist(), strict=True))
+    return [ClampedStretch(
+        joint=s.joint, from_s=s.t_start, to_s=s.t_end, teacher_stiffness=s.worst,
+        clamped_to=bounds[s.joint][0] if s.worst < bounds[s.joint][0] else bounds[s.joint][1])
+        for s in found]
 
 
 def save_skill(

@@ -48,6 +48,7 @@ from compliant_demo.phase_basis import (
 
 __all__ = [
     "DMP",
+    "ClampedStretch",
     "DampingPolicy",
     "FitMethod",
     "Formulation",
@@ -351,6 +352,25 @@ class DampingPolicy(BaseModel):
     zeta: float = Field(default=0.7, gt=0, allow_inf_nan=False, description="Damping ratio, 1.")
 
 
+class ClampedStretch(BaseModel):
+    """A stretch of the skill where the teacher's stiffness lay outside the target's range;
+    times in the skill's own (demonstrated) time, s from its start."""
+
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
+
+    joint: str = Field(..., min_length=1)
+    from_s: float = Field(..., ge=0, description="First sample outside the range, s.")
+    to_s: float = Field(..., ge=0, description="Last sample outside the range, s.")
+    teacher_stiffness: float = Field(..., description="The teacher's extreme there, N*m/rad.")
+    clamped_to: float = Field(..., gt=0, description="The bound commanded instead, N*m/rad.")
+
+    @model_validator(mode="after")
+    def _ordered(self) -> ClampedStretch:
+        if self.to_s < self.from_s:
+            raise ValueError(f"to_s = {self.to_s} is before from_s = {self.from_s}")
+        return self
+
+
 class Provenance(BaseModel):
     """Where a skill came from: demonstrations, alignment, fit quality, software version."""
 
@@ -381,6 +401,11 @@ class Provenance(BaseModel):
     formulation_choice: list[dict[str, Any]] | None = Field(
         None, description="Per joint: the DMP form, whether the criterion or an override chose "
         "it, and the criterion's figures (see compliant_demo.generalisation)."
+    )
+    teacher_stiffness_clamped: list[ClampedStretch] | None = Field(
+        None, description="Stretches where the teacher's stiffness (recorded, or from the "
+        "demonstrations' variability) lay outside the target's range and was clamped to it; "
+        "None for skills learned before this was recorded."
     )
     package_version: str = __version__
     created_utc: str = Field(default_factory=lambda: datetime.now(UTC).isoformat())

@@ -27,7 +27,7 @@ from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, Stretch, check
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import JointParams, MechanismParams, model_from_mapping, read_yaml
 from compliant_demo.plant import ReplayPlant
-from compliant_demo.primitives import Rollout
+from compliant_demo.primitives import Rollout, Skill
 from compliant_demo.replay import ReplaySetup
 from compliant_demo.resources import package_file
 from compliant_demo.store.core import DemoStore
@@ -48,12 +48,16 @@ __all__ = [
     "record_verdict",
     "scenario_anchor",
     "stretch_anchor",
+    "CLAMPED_CHECK",
+    "clamped_anchor",
 ]
 
 #: The shipped acceptance criteria (in ``config/``).
 CRITERIA_FILE = "readiness_criteria.yaml"
 #: The two verdicts.
 VERDICTS: tuple[str, ...] = ("ready", "not_ready")
+#: Check name of a stretch where the skill commands a clamped version of the teacher's stiffness.
+CLAMPED_CHECK = "teacher_stiffness_clamped"
 
 
 def _one_line(value: str, name: str) -> str:
@@ -250,6 +254,11 @@ def stretch_anchor(index: int) -> str:
     return f"stretch-{index}"
 
 
+def clamped_anchor(index: int) -> str:
+    """HTML id of stretch ``index`` of a skill's ``teacher_stiffness_clamped`` (in the report)."""
+    return f"clamped-{index}"
+
+
 def scenario_anchor(result: ReplayResultInfo) -> str:
     """HTML id of a replay result in the report: its campaign scenario, else its id."""
     if result.scenario_index is not None:
@@ -331,6 +340,53 @@ def _schedule_reasons(
             detail=(f"{stretch.kind.replace('_', ' ')} on {stretch.joint} for {duration:.3g} s "
                     f"({stretch.t_start:.3g} to {stretch.t_end:.3g} s): worst {stretch.worst:.3g} "
                     f"against {threshold:.3g} {stretch.unit}"),
+        ))
+    return reasons
+
+
+def _clamped_reasons(
+    criteria: Criteria, schedule: ScheduleReport, skill: Skill, movement_s: float | None
+) -> list[Reason]:
+    """One reason per stretch of the skill's provenance where the teacher's stiffness was
+    clamped to the target's range, its times scaled from the demonstrated duration to the
+    replayed movement's."""
+    stretches = skill.provenance.teacher_stiffness_clamped or []
+    if not stretches:
+        return []
+    rule = criteria.schedule_checks.get(CLAMPED_CHECK)
+    if rule is None:
+        raise InvalidInputError(f"criteria schedule_checks: no entry for check(s) "
+                                f"{[CLAMPED_CHECK]}; every check the schedule can flag needs one")
+    if rule.threshold is not None:
+        raise InvalidInputError(f"criteria schedule_checks.{CLAMPED_CHECK}.threshold: the "
+                                "threshold is the range bound the stiffness was clamped to, "
+                                f"got {rule.threshold!r}")
+    scale = skill.duration_s if movement_s is None else movement_s
+    if not (math.isfinite(scale) and scale > 0):
+        raise InvalidInputError(f"movement_s: must be a positive duration in s, got {movement_s!r}")
+    scale /= skill.duration_s
+    span = float(schedule.t[-1] - schedule.t[0]) or 1.0
+    shortest = criteria.thresholds.min_stretch_duration.value
+    reasons = []
+    for index, stretch in enumerate(stretches):
+        if stretch.joint not in schedule.joints:
+            raise InvalidInputError(f"skill provenance {CLAMPED_CHECK}: joint {stretch.joint!r} "
+                                    f"is not one of the schedule's {list(schedule.joints)}")
+        start, end = stretch.from_s * scale, stretch.to_s * scale
+        duration = end - start
+        if duration < shortest:
+            continue
+        side = "softer" if stretch.teacher_stiffness < stretch.clamped_to else "stiffer"
+        reasons.append(Reason(
+            check=CLAMPED_CHECK, joint=stretch.joint, from_s=start, to_s=end,
+            value=stretch.teacher_stiffness, threshold=stretch.clamped_to, unit="N*m/rad",
+            severity=(_relative_excess(stretch.teacher_stiffness, stretch.clamped_to)
+                      * min(duration / span, 1.0)),
+            link=clamped_anchor(index),
+            detail=(f"the teacher was {side} than the mechanism allows on {stretch.joint} for "
+                    f"{duration:.3g} s ({start:.3g} to {end:.3g} s): taught "
+                    f"{stretch.teacher_stiffness:.3g}, commanded {stretch.clamped_to:.3g} "
+                    "N*m/rad"),
         ))
     return reasons
 
@@ -446,6 +502,9 @@ def assess(
     plant: ReplayPlant,
     schedule: ScheduleReport,
     scenarios: Sequence[ReplayResultInfo] = (),
+    *,
+    skill: Skill | None = None,
+    movement_s: float | None = None,
 ) -> Verdict:
     """The readiness verdict of a skill on a plant.
 
@@ -456,13 +515,18 @@ def assess(
     schedule : the skill's schedule checks on that plant (:func:`schedule_report`)
     scenarios : replay results on that plant (a campaign's, or one replay), with the metrics of
         :meth:`compliant_demo.replay.ReplaySetup.metrics`
+    skill : the skill; its provenance's stretches where the teacher's stiffness was clamped to
+        the target's range (``teacher_stiffness_clamped``) become reasons. None: not checked
+    movement_s : the replayed movement's duration, s; the clamped stretches' times (recorded in
+        the demonstrated duration) are scaled to it. None: the demonstrated duration
 
     Returns
     -------
     Verdict
         Not ready when any criterion fails, with one reason per flagged stretch at least
         ``min_stretch_duration`` long and per failing campaign criterion (per joint where it
-        has one), most severe first.
+        has one) and per clamped stretch of the teacher's stiffness at least that long, most
+        severe first.
 
     Notes
     -----
@@ -473,6 +537,8 @@ def assess(
     severity 0.98; a 1 ms stretch, next to none.
     """
     reasons = _schedule_reasons(criteria, plant, schedule)
+    if skill is not None:
+        reasons += _clamped_reasons(criteria, schedule, skill, movement_s)
     if scenarios:
         reasons += _campaign_reasons(criteria, schedule.joints, scenarios)
     return Verdict.from_reasons(reasons)
@@ -484,7 +550,8 @@ def assess_replays(
     """The verdict of the skill ``setup`` replays on its plant: its schedule checks
     (:func:`schedule_report`) and ``results``, the replays it ran (see :func:`assess`)."""
     schedule = schedule_report(setup.rollout, setup.plant, criteria)
-    return assess(criteria, setup.plant, schedule, results)
+    return assess(criteria, setup.plant, schedule, results, skill=setup.skill,
+                  movement_s=setup.movement_s)
 
 
 def record_verdict(

@@ -57,7 +57,9 @@ def test_report_from_recorded_demonstrations_and_truth_opens_cleanly(tmp_path):
     # on another plant than the campaign's, its scenarios do not count in the verdict
     assert dict(elsewhere.summary)["verdict basis"].startswith("schedule checks only")
     assert elsewhere.verdict is not None
-    assert all(r.link.startswith("stretch-") for r in elsewhere.verdict.reasons)
+    assert all(r.link.startswith(("stretch-", "clamped-")) for r in elsewhere.verdict.reasons)
+    # the soft phases the teacher showed below the mechanism's range are a reason with a row
+    assert "teacher_stiffness_clamped" in [r.check for r in elsewhere.verdict.reasons]
     summary = dict(content.summary)
     coverage = float(summary["estimate coverage"].split(" %")[0])
     assert 50 < coverage < 100  # the first window and the settling of the band-pass have no value

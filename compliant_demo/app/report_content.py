@@ -30,6 +30,7 @@ from compliant_demo.readiness import (
     Criteria,
     Verdict,
     assess,
+    clamped_anchor,
     load_criteria,
     scenario_anchor,
     schedule_report,
@@ -331,6 +332,16 @@ def collect_report_content(
                 f"{criteria.thresholds.min_stretch_duration.value:g} s long.",
         empty_text="no stretch flagged",
         row_ids=tuple(stretch_anchor(i) for i in range(len(checks.stretches)))))
+    clamped = skill.provenance.teacher_stiffness_clamped or []
+    tables.insert(1, ReportTable(
+        "The teacher's stiffness clamped to the mechanism's range",
+        ("joint", "from [s]", "to [s]", "taught [N*m/rad]", "commanded [N*m/rad]"),
+        tuple((c.joint, c.from_s, c.to_s, c.teacher_stiffness, c.clamped_to) for c in clamped),
+        caption="Where the skill is stiffer or softer than taught, in the demonstrated duration "
+                "(the verdict scales the times to the replayed one).",
+        empty_text=("none" if skill.provenance.teacher_stiffness_clamped is not None
+                    else "not recorded when this skill was learned"),
+        row_ids=tuple(clamped_anchor(i) for i in range(len(clamped)))))
     results: list[ReplayResultInfo] = []
 
     if campaign is not None and job is not None:
@@ -395,7 +406,8 @@ def collect_report_content(
     # scenarios count only on the plant they ran on (a --plant other than the campaign's judges
     # the schedule alone)
     same_plant = job is not None and job.plant.digest == plant.digest
-    verdict = assess(criteria, plant, checks, results if same_plant else [])
+    verdict = assess(criteria, plant, checks, results if same_plant else [], skill=skill,
+                     movement_s=job.setup.movement_s if job else None)
     if results and not same_plant:
         summary.append(("verdict basis", "schedule checks only: the campaign ran on another "
                                          "plant"))
