@@ -248,15 +248,7 @@ def record_demonstrations(settings: TourSettings, plan: RunPlan, progress: bool)
                         raise TourError(f"{child.name} node exited with {child.returncode} during "
                                         f"recording; log {log_path}: {_tail(log_path)}")
                 if teacher_done:
-                    # The teacher stops the recorder before it exits; give the writer a moment.
-                    time.sleep(0.5)
-                    recorded = _complete_with_tag(settings.store, tag)
-                    if len(recorded) < settings.n_demonstrations:
-                        raise TourError(
-                            f"teacher finished but {len(recorded)} of "
-                            f"{settings.n_demonstrations} demonstrations are complete in "
-                            f"{settings.store}; log {log_path}: {_tail(log_path)}")
-                    break
+                    break  # counted again once the recorder has shut down (below)
                 if time.monotonic() > deadline:
                     raise TourError(
                         f"recording took longer than {settings.record_timeout_s} s "
@@ -269,6 +261,13 @@ def record_demonstrations(settings: TourSettings, plan: RunPlan, progress: bool)
         # truth file) must not cut their shutdown short.
         with deferred_signals():
             stop_children(children)
+    # The teacher stops the recorder before it exits; on a busy machine the store may show the
+    # last demonstration complete only once the recorder has shut down, so count after that.
+    recorded = _complete_with_tag(settings.store, tag)
+    if len(recorded) < settings.n_demonstrations:
+        raise TourError(f"teacher finished but {len(recorded)} of {settings.n_demonstrations} "
+                        f"demonstrations are complete in {settings.store}; log {log_path}: "
+                        f"{_tail(log_path)}")
     return recorded[: settings.n_demonstrations]
 
 
