@@ -562,25 +562,63 @@ class ChainKernel:
         return out
 
 
+@_kernel
+def _frames(q, place, pos, axis, origins, rots):
+    """origins[i, s] and rots[i, s] (row-major) of joint frame i after it turned, base frame."""
+    n, n_scen = q.shape
+    for s in range(n_scen):
+        w00, w01, w02, w10, w11, w12, w20, w21, w22 = 1.0, 0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 1.0
+        o0, o1, o2 = 0.0, 0.0, 0.0
+        for i in range(n):
+            p0, p1, p2 = pos[i, 0], pos[i, 1], pos[i, 2]
+            o0 += w00 * p0 + w01 * p1 + w02 * p2
+            o1 += w10 * p0 + w11 * p1 + w12 * p2
+            o2 += w20 * p0 + w21 * p1 + w22 * p2
+            k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+            c, sn = math.cos(q[i, s]), math.sin(q[i, s])
+            t = 1.0 - c
+            u00, u01, u02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
+            u10, u11, u12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
+            u20, u21, u22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
+            # w <- w @ place[i] @ turn
+            a = place[i]
+            v00 = w00 * a[0, 0] + w01 * a[1, 0] + w02 * a[2, 0]
+            v01 = w00 * a[0, 1] + w01 * a[1, 1] + w02 * a[2, 1]
+            v02 = w00 * a[0, 2] + w01 * a[1, 2] + w02 * a[2, 2]
+            v10 = w10 * a[0, 0] + w11 * a[1, 0] + w12 * a[2, 0]
+            v11 = w10 * a[0, 1] + w11 * a[1, 1] + w12 * a[2, 1]
+            v12 = w10 * a[0, 2] + w11 * a[1, 2] + w12 * a[2, 2]
+            v20 = w20 * a[0, 0] + w21 * a[1, 0] + w22 * a[2, 0]
+            v21 = w20 * a[0, 1] + w21 * a[1, 1] + w22 * a[2, 1]
+            v22 = w20 * a[0, 2] + w21 * a[1, 2] + w22 * a[2, 2]
+            w00 = v00 * u00 + v01 * u10 + v02 * u20
+            w01 = v00 * u01 + v01 * u11 + v02 * u21
+            w02 = v00 * u02 + v01 * u12 + v02 * u22
+            w10 = v10 * u00 + v11 * u10 + v12 * u20
+            w11 = v10 * u01 + v11 * u11 + v12 * u21
+            w12 = v10 * u02 + v11 * u12 + v12 * u22
+            w20 = v20 * u00 + v21 * u10 + v22 * u20
+            w21 = v20 * u01 + v21 * u11 + v22 * u21
+            w22 = v20 * u02 + v21 * u12 + v22 * u22
+            origins[i, s, 0], origins[i, s, 1], origins[i, s, 2] = o0, o1, o2
+            r = rots[i, s]
+            r[0, 0], r[0, 1], r[0, 2] = w00, w01, w02
+            r[1, 0], r[1, 1], r[1, 2] = w10, w11, w12
+            r[2, 0], r[2, 1], r[2, 2] = w20, w21, w22
+
+
 def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray
                 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Origin ``(n, 3)``, m, and rotation ``(n, 3, 3)`` in the base frame of every joint frame
     after its joint turned, for ``(n_joints, n)`` angles q (rad); place, pos, axis as in
-    :class:`ChainKernel` (forward kinematics, Rodrigues' rotation formula)."""
+    :class:`ChainKernel` (forward kinematics, Rodrigues' rotation formula; compiled)."""
+    q = np.ascontiguousarray(q, dtype=float)
     n_joints, n = q.shape
-    rot = np.broadcast_to(np.eye(3), (n, 3, 3))
-    origin = np.zeros((n, 3))
-    frames = []
-    for i in range(n_joints):
-        angle = q[i][:, None, None]
-        k = axis[i]
-        skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-        turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
-                + (1 - np.cos(angle)) * np.outer(k, k))
-        origin = origin + rot @ pos[i]
-        rot = rot @ place[i] @ turn
-        frames.append((origin, rot))
-    return frames
+    origins = np.empty((n_joints, n, 3))
+    rots = np.empty((n_joints, n, 3, 3))
+    _frames(q, np.ascontiguousarray(place, dtype=float), np.ascontiguousarray(pos, dtype=float),
+            np.ascontiguousarray(axis, dtype=float), origins, rots)
+    return [(origins[i], rots[i]) for i in range(n_joints)]
 
 
 def chain_kernel(chain: ChainParams, joints: Sequence[JointParams], parallel: bool = False

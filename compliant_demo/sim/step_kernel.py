@@ -18,7 +18,12 @@ from collections.abc import Callable
 import numba
 import numpy as np
 
-from compliant_demo.sim.rigid_body import _block_forward, _lane, _sincos
+from compliant_demo.sim.rigid_body import (
+    _block_forward,
+    _DistinctArgumentsCompiler,
+    _lane,
+    _sincos,
+)
 
 __all__ = [
     "CONTACT_DAMPING_DEPTH",
@@ -45,6 +50,9 @@ N_PARAMS = len(PARAM_ROWS)
 _INV_DEPTH = 1.0 / CONTACT_DAMPING_DEPTH
 _compiled = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 _parallel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True, parallel=True)
+# the batch's arrays never overlap: declared so (see rigid_body), the scenario loops vectorise
+_distinct = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+                       pipeline_class=_DistinctArgumentsCompiler)
 
 
 @_compiled
@@ -68,7 +76,7 @@ def contact_force(penetration, rate, stiffness, damping):
     return max(ramp * rate * damping + stiffness * penetration, 0.0)
 
 
-@_compiled
+@_distinct
 def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, free, accel_scale,
                model, ws, zero, torques, mech, grav, f):
     """State derivative ``f`` at the state rows ``x`` (q, dq, two actuator rows) for scenarios
@@ -233,9 +241,9 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
 
 
 # the state derivative of a whole batch (see _block_rhs), on one thread: what recording reads
-rhs_batch: Callable[..., None] = _compiled(_rhs_blocks)
+rhs_batch: Callable[..., None] = _distinct(_rhs_blocks)
 # one step of a whole batch: [0] on one thread (the default: campaigns already run one process
 # per core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it
 # started, as campaign workers are), [1] over numba's threads
 step_batch: tuple[Callable[..., None], Callable[..., None]] = (
-    _compiled(_step_blocks), _parallel(_step_blocks))
+    _distinct(_step_blocks), _parallel(_step_blocks))
