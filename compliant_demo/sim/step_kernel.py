@@ -177,34 +177,39 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
         nb = min(block, n_s - s0)
         _block_rhs(s0, nb, b, y, tg, ext, 0, has_ext, prm, walls, kind, coupled, free,
                    accel_scale, model, ws, zero, torques, mech, grav, stages[0])
+        e0 = s0 + nb
         for j in range(n_j):
+            q, out = y[0, j, s0:e0], deflection[j, s0:e0]
             if kind == IDEAL:
+                target = tg[2, j, s0:e0]
                 for k in range(nb):
-                    s = _lane(s0, k)
-                    deflection[j, s] = y[0, j, s] - tg[2, j, s]
+                    out[k] = q[k] - target[k]
             else:
+                act0, act1 = y[2, j, s0:e0], y[3, j, s0:e0]
                 for k in range(nb):
-                    s = _lane(s0, k)
-                    deflection[j, s] = y[0, j, s] - 0.5 * (y[2, j, s] + y[3, j, s])
+                    out[k] = q[k] - 0.5 * (act0[k] + act1[k])
         if method == 0:
             for i in range(3):
                 step = 0.5 * h if i < 2 else h
                 for r in range(n_dyn):
                     for j in range(n_j):
+                        rate, start, into = (stages[i, r, j, s0:e0], y[r, j, s0:e0],
+                                             ys[r, j, s0:e0])
                         for k in range(nb):
-                            s = _lane(s0, k)
-                            ys[r, j, s] = stages[i, r, j, s] * step + y[r, j, s]
+                            into[k] = rate[k] * step + start[k]
                 _block_rhs(s0, nb, b, ys, tg, ext, 1 if i < 2 else 2, has_ext, prm, walls, kind,
                            coupled, free, accel_scale, model, ws, zero, torques, mech, grav,
                            stages[i + 1])
             sixth = h / 6.0
             for r in range(n_rows):
                 for j in range(n_j):
+                    k1, k2, k3, k4 = (stages[0, r, j, s0:e0], stages[1, r, j, s0:e0],
+                                      stages[2, r, j, s0:e0], stages[3, r, j, s0:e0])
+                    increment, state = acc[r, j, s0:e0], y[r, j, s0:e0]
                     for k in range(nb):
-                        s = _lane(s0, k)
-                        acc[r, j, s] = (((stages[1, r, j, s] + stages[2, r, j, s]) * 2.0
-                                         + stages[0, r, j, s]) + stages[3, r, j, s]) * sixth
-                        y[r, j, s] += acc[r, j, s]
+                        increment[k] = ((k2[k] + k3[k]) * 2.0 + k1[k] + k4[k]) * sixth
+                    for k in range(nb):
+                        state[k] += increment[k]
         else:
             for r in range(n_rows):
                 for j in range(n_j):
@@ -224,15 +229,16 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
         # change of the set equilibrium
         for j in range(n_j):
             k2 = prm[_K2, j]
-            for k in range(nb):
-                s = _lane(s0, k)
-                d0, d1 = acc[2, j, s], acc[3, j, s]
-                if kind == IDEAL:
-                    middle, stiffening = acc[0, j, s], d0
-                else:
-                    middle, stiffening = acc[0, j, s] - (d0 + d1) * 0.5, (d0 - d1) * k2 * 2.0
-                middle = middle * 0.5 + deflection[j, s]
-                injection[j, s] += middle * middle * stiffening * 0.5
+            d_q, d0, d1 = acc[0, j, s0:e0], acc[2, j, s0:e0], acc[3, j, s0:e0]
+            before, into = deflection[j, s0:e0], injection[j, s0:e0]
+            if kind == IDEAL:
+                for k in range(nb):
+                    middle = d_q[k] * 0.5 + before[k]
+                    into[k] += middle * middle * d0[k] * 0.5
+            else:
+                for k in range(nb):
+                    middle = (d_q[k] - (d0[k] + d1[k]) * 0.5) * 0.5 + before[k]
+                    into[k] += middle * middle * ((d0[k] - d1[k]) * k2 * 2.0) * 0.5
 
 
 # the state derivative of a whole batch (see _block_rhs), on one thread: what recording reads
