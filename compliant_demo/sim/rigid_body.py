@@ -10,7 +10,9 @@ Featherstone, Rigid Body Dynamics Algorithms, 2008, ch. 6, from memory); forward
 ``M(q) qdd = tau - h(q, dq)`` by Cholesky. Held joints are locked: their rows and columns leave
 the system and their acceleration is zero. Scenarios are processed in blocks laid out
 scenario-last, so each arithmetic loop runs over the scenarios of a block and compiles to SIMD
-instructions (``fastmath`` lets the compiler fuse multiply-adds); on request
+instructions (``fastmath`` lets the compiler fuse multiply-adds; the block kernels are compiled
+with their array arguments declared non-overlapping, see ``_DistinctArgumentsCompiler``); on
+request
 (``ChainKernel(parallel=True)``) blocks run in parallel over the cores (``numba.prange``). The
 tests check every function against Pinocchio.
 """
