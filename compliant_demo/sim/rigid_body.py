@@ -10,7 +10,9 @@ Featherstone, Rigid Body Dynamics Algorithms, 2008, ch. 6, from memory); forward
 ``M(q) qdd = tau - h(q, dq)`` by Cholesky. Held joints are locked: their rows and columns leave
 the system and their acceleration is zero. Scenarios are processed in blocks laid out
 scenario-last, so each arithmetic loop runs over the scenarios of a block and compiles to SIMD
-instructions (``fastmath`` lets the compiler fuse multiply-adds); on request
+instructions (``fastmath`` lets the compiler fuse multiply-adds; the block kernels are compiled
+with their array arguments declared non-overlapping, see ``_DistinctArgumentsCompiler``); on
+request
 (``ChainKernel(parallel=True)``) blocks run in parallel over the cores (``numba.prange``). The
 tests check every function against Pinocchio.
 """
@@ -22,6 +24,7 @@ from collections.abc import Sequence
 
 import numba
 import numpy as np
+from numba.core.compiler import CompilerBase, DefaultPassBuilder
 
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import ChainParams, JointParams
@@ -32,8 +35,24 @@ __all__ = ["ChainKernel", "chain_kernel", "apparent_inertia"]
 
 # Scenarios go through in blocks: every loop over a block's scenarios is the innermost one, so
 # the compiler vectorises it (one SIMD lane per scenario); blocks run in parallel.
-_BLOCK = 64
+_BLOCK = 128
 _kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
+
+
+class _DistinctArgumentsCompiler(CompilerBase):
+    """numba's nopython pipeline with every argument's memory declared not to overlap any
+    other's (LLVM ``noalias``): without it the compiler must assume a store through one array
+    may change what another reads, and keeps the block loops scalar (about seven times slower
+    here). Only for functions that are never given two overlapping arrays of which one is
+    written."""
+
+    def define_pipelines(self):
+        self.state.flags.noalias = True
+        return [DefaultPassBuilder.define_nopython_pipeline(self.state)]
+
+
+_vector_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+                            pipeline_class=_DistinctArgumentsCompiler)
 _parallel_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
                               parallel=True)
 
@@ -72,47 +91,66 @@ def _lane(s0, k):
     return np.uint64(s0) + np.uint64(k)
 
 
-@_kernel
+# Every loop over a block's scenarios reads one- or two-dimensional views taken outside it and
+# writes into one array that it does not read at another index (values carried from joint to
+# joint go back and forth between two scratch arrays), and holds no branch: otherwise the
+# compiler cannot rule out that a store changes a later load, and keeps the loop scalar.
+
+
+@_vector_kernel
 def _block_rotations(q, s0, nb, place, axis, rot):
     """rot[i, 3*a + b, k] for scenarios s0 + k, k < nb."""
     n = q.shape[0]
     for i in range(n):
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        qi = q[i, s0:s0 + nb]
+        r = rot[i]
+        for k in range(nb):
+            sn, c = _sincos(qi[k])
+            t = 1.0 - c
+            r[0, k], r[1, k] = c + t * k0 * k0, t * k0 * k1 - sn * k2
+            r[2, k], r[3, k] = t * k0 * k2 + sn * k1, t * k1 * k0 + sn * k2
+            r[4, k], r[5, k] = c + t * k1 * k1, t * k1 * k2 - sn * k0
+            r[6, k], r[7, k] = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0
+            r[8, k] = c + t * k2 * k2
         p = place[i]
         # most URDF joints sit unrotated in their parent: the product with I is skipped (it
         # would give the same numbers)
-        plain = (p[0, 0] == 1.0 and p[1, 1] == 1.0 and p[2, 2] == 1.0 and p[0, 1] == 0.0
-                 and p[0, 2] == 0.0 and p[1, 0] == 0.0 and p[1, 2] == 0.0 and p[2, 0] == 0.0
-                 and p[2, 1] == 0.0)
+        if (p[0, 0] == 1.0 and p[1, 1] == 1.0 and p[2, 2] == 1.0 and p[0, 1] == 0.0
+                and p[0, 2] == 0.0 and p[1, 0] == 0.0 and p[1, 2] == 0.0 and p[2, 0] == 0.0
+                and p[2, 1] == 0.0):
+            continue
+        p00, p01, p02 = p[0, 0], p[0, 1], p[0, 2]
+        p10, p11, p12 = p[1, 0], p[1, 1], p[1, 2]
+        p20, p21, p22 = p[2, 0], p[2, 1], p[2, 2]
         for k in range(nb):
-            sn, c = _sincos(q[i, _lane(s0, k)])
-            t = 1.0 - c
-            r00, r01, r02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
-            r10, r11, r12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
-            r20, r21, r22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
-            if plain:
-                rot[i, 0, k], rot[i, 1, k], rot[i, 2, k] = r00, r01, r02
-                rot[i, 3, k], rot[i, 4, k], rot[i, 5, k] = r10, r11, r12
-                rot[i, 6, k], rot[i, 7, k], rot[i, 8, k] = r20, r21, r22
-                continue
-            for a in range(3):
-                p0, p1, p2 = p[a, 0], p[a, 1], p[a, 2]
-                rot[i, 3 * a, k] = p0 * r00 + p1 * r10 + p2 * r20
-                rot[i, 3 * a + 1, k] = p0 * r01 + p1 * r11 + p2 * r21
-                rot[i, 3 * a + 2, k] = p0 * r02 + p1 * r12 + p2 * r22
+            r00, r01, r02 = r[0, k], r[1, k], r[2, k]
+            r10, r11, r12 = r[3, k], r[4, k], r[5, k]
+            r20, r21, r22 = r[6, k], r[7, k], r[8, k]
+            r[0, k] = p00 * r00 + p01 * r10 + p02 * r20
+            r[1, k] = p00 * r01 + p01 * r11 + p02 * r21
+            r[2, k] = p00 * r02 + p01 * r12 + p02 * r22
+            r[3, k] = p10 * r00 + p11 * r10 + p12 * r20
+            r[4, k] = p10 * r01 + p11 * r11 + p12 * r21
+            r[5, k] = p10 * r02 + p11 * r12 + p12 * r22
+            r[6, k] = p20 * r00 + p21 * r10 + p22 * r20
+            r[7, k] = p20 * r01 + p21 * r11 + p22 * r21
+            r[8, k] = p20 * r02 + p21 * r12 + p22 * r22
 
 
-@_kernel
-def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity, st,
-                fm, tau):
-    """tau[i, k] = inverse dynamics of scenarios s0 + k at (rot, dq, ddq); st (9, B) and
-    fm (n, 6, B) scratch."""
+@_vector_kernel
+def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity, sa,
+                fm, sb, tau):
+    """tau[i, k] = inverse dynamics of scenarios s0 + k at (rot, dq, ddq); sa, sb (15, B) and
+    fm (n, 15, B) scratch.
+
+    fm[i] holds link i's force and moment about its joint origin (rows 0-5) and its angular
+    velocity, angular acceleration and the acceleration of its origin (rows 6-14), frame i."""
     n = dq.shape[0]
     g0, g1, g2 = (-gravity[0], -gravity[1], -gravity[2]) if gravity_on else (0.0, 0.0, 0.0)
-    for k in range(nb):
-        for c in range(6):
-            st[c, k] = 0.0
-        st[6, k], st[7, k], st[8, k] = g0, g1, g2
+    for c in range(6):
+        sa[c, :nb] = 0.0
+    sa[6, :nb], sa[7, :nb], sa[8, :nb] = g0, g1, g2
     for i in range(n):
         p0, p1, p2 = pos[i, 0], pos[i, 1], pos[i, 2]
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
@@ -121,10 +159,13 @@ def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia,
         i00, i01, i02 = inertia[i, 0, 0], inertia[i, 0, 1], inertia[i, 0, 2]
         i11, i12, i22 = inertia[i, 1, 1], inertia[i, 1, 2], inertia[i, 2, 2]
         r = rot[i]
+        f = fm[i]
+        dqi = dq[i, s0:s0 + nb]
+        ddqi = ddq[i, s0:s0 + nb]
         for k in range(nb):
-            w0, w1, w2 = st[0, k], st[1, k], st[2, k]
-            dw0, dw1, dw2 = st[3, k], st[4, k], st[5, k]
-            a0, a1, a2 = st[6, k], st[7, k], st[8, k]
+            w0, w1, w2 = sa[0, k], sa[1, k], sa[2, k]
+            dw0, dw1, dw2 = sa[3, k], sa[4, k], sa[5, k]
+            a0, a1, a2 = sa[6, k], sa[7, k], sa[8, k]
             # parent's point at the joint origin
             e0 = w1 * p2 - w2 * p1
             e1 = w2 * p0 - w0 * p2
@@ -144,8 +185,8 @@ def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia,
             v0 = r00 * dw0 + r10 * dw1 + r20 * dw2
             v1 = r01 * dw0 + r11 * dw1 + r21 * dw2
             v2 = r02 * dw0 + r12 * dw1 + r22 * dw2
-            qd = dq[i, _lane(s0, k)]
-            qdd = ddq[i, _lane(s0, k)]
+            qd = dqi[k]
+            qdd = ddqi[k]
             x0 = (u1 * k2 - u2 * k1) * qd
             x1 = (u2 * k0 - u0 * k2) * qd
             x2 = (u0 * k1 - u1 * k0) * qd
@@ -160,178 +201,243 @@ def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia,
             h0 = i00 * w0 + i01 * w1 + i02 * w2
             h1 = i01 * w0 + i11 * w1 + i12 * w2
             h2 = i02 * w0 + i12 * w1 + i22 * w2
-            fm[i, 0, k], fm[i, 1, k], fm[i, 2, k] = fx, fy, fz
-            fm[i, 3, k] = (i00 * dw0 + i01 * dw1 + i02 * dw2 + w1 * h2 - w2 * h1
-                           + cc1 * fz - cc2 * fy)
-            fm[i, 4, k] = (i01 * dw0 + i11 * dw1 + i12 * dw2 + w2 * h0 - w0 * h2
-                           + cc2 * fx - cc0 * fz)
-            fm[i, 5, k] = (i02 * dw0 + i12 * dw1 + i22 * dw2 + w0 * h1 - w1 * h0
-                           + cc0 * fy - cc1 * fx)
-            st[0, k], st[1, k], st[2, k] = w0, w1, w2
-            st[3, k], st[4, k], st[5, k] = dw0, dw1, dw2
-            st[6, k], st[7, k], st[8, k] = a0, a1, a2
+            f[0, k], f[1, k], f[2, k] = fx, fy, fz
+            f[3, k] = (i00 * dw0 + i01 * dw1 + i02 * dw2 + w1 * h2 - w2 * h1
+                       + cc1 * fz - cc2 * fy)
+            f[4, k] = (i01 * dw0 + i11 * dw1 + i12 * dw2 + w2 * h0 - w0 * h2
+                       + cc2 * fx - cc0 * fz)
+            f[5, k] = (i02 * dw0 + i12 * dw1 + i22 * dw2 + w0 * h1 - w1 * h0
+                       + cc0 * fy - cc1 * fx)
+            f[6, k], f[7, k], f[8, k] = w0, w1, w2
+            f[9, k], f[10, k], f[11, k] = dw0, dw1, dw2
+            f[12, k], f[13, k], f[14, k] = a0, a1, a2
+        _copy_rows(f, 6, sa, 9, nb)
+    # sb: force and moment of the links i + 1.. on link i, frame i + 1
     for i in range(n - 1, -1, -1):
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        f = fm[i]
         if i + 1 < n:
             r = rot[i + 1]
             p0, p1, p2 = pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2]
             for k in range(nb):
-                cf0, cf1, cf2 = fm[i + 1, 0, k], fm[i + 1, 1, k], fm[i + 1, 2, k]
-                cn0, cn1, cn2 = fm[i + 1, 3, k], fm[i + 1, 4, k], fm[i + 1, 5, k]
+                cf0, cf1, cf2 = sb[0, k], sb[1, k], sb[2, k]
+                cn0, cn1, cn2 = sb[3, k], sb[4, k], sb[5, k]
                 f0 = r[0, k] * cf0 + r[1, k] * cf1 + r[2, k] * cf2
                 f1 = r[3, k] * cf0 + r[4, k] * cf1 + r[5, k] * cf2
                 f2 = r[6, k] * cf0 + r[7, k] * cf1 + r[8, k] * cf2
-                fm[i, 0, k] += f0
-                fm[i, 1, k] += f1
-                fm[i, 2, k] += f2
-                fm[i, 3, k] += r[0, k] * cn0 + r[1, k] * cn1 + r[2, k] * cn2 + p1 * f2 - p2 * f1
-                fm[i, 4, k] += r[3, k] * cn0 + r[4, k] * cn1 + r[5, k] * cn2 + p2 * f0 - p0 * f2
-                fm[i, 5, k] += r[6, k] * cn0 + r[7, k] * cn1 + r[8, k] * cn2 + p0 * f1 - p1 * f0
+                sa[0, k] = f[0, k] + f0
+                sa[1, k] = f[1, k] + f1
+                sa[2, k] = f[2, k] + f2
+                sa[3, k] = f[3, k] + (r[0, k] * cn0 + r[1, k] * cn1 + r[2, k] * cn2
+                                      + p1 * f2 - p2 * f1)
+                sa[4, k] = f[4, k] + (r[3, k] * cn0 + r[4, k] * cn1 + r[5, k] * cn2
+                                      + p2 * f0 - p0 * f2)
+                sa[5, k] = f[5, k] + (r[6, k] * cn0 + r[7, k] * cn1 + r[8, k] * cn2
+                                      + p0 * f1 - p1 * f0)
+        else:
+            _copy_rows(f, 0, sa, 6, nb)
+        ti = tau[i]
         for k in range(nb):
-            tau[i, k] = k0 * fm[i, 3, k] + k1 * fm[i, 4, k] + k2 * fm[i, 5, k]
+            ti[k] = k0 * sa[3, k] + k1 * sa[4, k] + k2 * sa[5, k]
+        _copy_rows(sa, 0, sb, 6, nb)
 
 
-@_kernel
-def _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, fn):
-    """mm[i, j, k] mass matrix of scenarios k < nb; comp (n, 13, B), fn (6, B) scratch."""
+@_vector_kernel
+def _copy_rows(src, first, dst, count, nb):
+    """dst[c, :nb] = src[first + c, :nb] for c < count."""
+    for c in range(count):
+        row, into = src[first + c], dst[c]
+        for k in range(nb):
+            into[k] = row[k]
+
+
+@_vector_kernel
+def _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, sa, sb):
+    """mm[i, j, k] mass matrix of scenarios k < nb; comp (n, 13, B), sa and sb (15, B) scratch.
+
+    comp[i] is the composite body of links i.. about joint i's origin in frame i: mass, first
+    moment (3) and rotational inertia (3 x 3, row-major)."""
     n = rot.shape[0]
-    for i in range(n):
+    for i in range(n - 1, -1, -1):
         m = mass[i]
         c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
         cc = c0 * c0 + c1 * c1 + c2 * c2
-        own = np.empty(13)
-        own[0], own[1], own[2], own[3] = m, m * c0, m * c1, m * c2
-        cv = (c0, c1, c2)
-        for a in range(3):
-            for b in range(3):
-                own[4 + 3 * a + b] = inertia[i, a, b] + m * ((cc if a == b else 0.0)
-                                                            - cv[a] * cv[b])
-        for c in range(13):
-            v = own[c]
+        # link i alone about its joint origin (parallel axes)
+        o00 = inertia[i, 0, 0] + m * (cc - c0 * c0)
+        o11 = inertia[i, 1, 1] + m * (cc - c1 * c1)
+        o22 = inertia[i, 2, 2] + m * (cc - c2 * c2)
+        o01 = inertia[i, 0, 1] - m * c0 * c1
+        o02 = inertia[i, 0, 2] - m * c0 * c2
+        o12 = inertia[i, 1, 2] - m * c1 * c2
+        ci = comp[i]
+        if i == n - 1:
+            ci[0, :nb], ci[1, :nb], ci[2, :nb], ci[3, :nb] = m, m * c0, m * c1, m * c2
+            ci[4, :nb], ci[5, :nb], ci[6, :nb] = o00, o01, o02
+            ci[7, :nb], ci[8, :nb], ci[9, :nb] = o01, o11, o12
+            ci[10, :nb], ci[11, :nb], ci[12, :nb] = o02, o12, o22
+        else:
+            # add subtree i + 1 (sa) carried into frame i: h' = R h, I' = R I R^T, then shifted
+            # to origin i by m*(|p|^2 1 - p p^T) + 2 (p.h') 1 - h' p^T - p h'^T
+            r = rot[i + 1]
+            p0, p1, p2 = pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2]
+            pp = p0 * p0 + p1 * p1 + p2 * p2
             for k in range(nb):
-                comp[i, c, k] = v
-    for i in range(n - 1, 0, -1):
-        # carry subtree i into frame i - 1: h' = R h, I' = R I R^T, then shift to origin i - 1
-        # by m*(|p|^2 1 - p p^T) + 2 (p.h') 1 - h' p^T - p h'^T
-        r = rot[i]
-        pp = pos[i, 0] ** 2 + pos[i, 1] ** 2 + pos[i, 2] ** 2
-        for a in range(3):
-            for k in range(nb):
-                fn[a, k] = (r[3 * a, k] * comp[i, 1, k] + r[3 * a + 1, k] * comp[i, 2, k]
-                            + r[3 * a + 2, k] * comp[i, 3, k])
-        for k in range(nb):
-            fn[3, k] = pos[i, 0] * fn[0, k] + pos[i, 1] * fn[1, k] + pos[i, 2] * fn[2, k]
-        for a in range(3):
-            for b in range(3):
-                pa, pb = pos[i, a], pos[i, b]
-                diag = 1.0 if a == b else 0.0
-                for k in range(nb):
-                    turned = 0.0
-                    for c in range(3):
-                        for d in range(3):
-                            turned += r[3 * a + c, k] * comp[i, 4 + 3 * c + d, k] * r[3 * b + d, k]
-                    comp[i - 1, 4 + 3 * a + b, k] += (
-                        turned + comp[i, 0, k] * (diag * pp - pa * pb)
-                        + diag * 2.0 * fn[3, k] - fn[a, k] * pb - pa * fn[b, k])
-        for k in range(nb):
-            comp[i - 1, 0, k] += comp[i, 0, k]
-        for a in range(3):
-            for k in range(nb):
-                comp[i - 1, 1 + a, k] += comp[i, 0, k] * pos[i, a] + fn[a, k]
+                ms, h0, h1, h2 = sa[0, k], sa[1, k], sa[2, k], sa[3, k]
+                r00, r01, r02 = r[0, k], r[1, k], r[2, k]
+                r10, r11, r12 = r[3, k], r[4, k], r[5, k]
+                r20, r21, r22 = r[6, k], r[7, k], r[8, k]
+                g0 = r00 * h0 + r01 * h1 + r02 * h2
+                g1 = r10 * h0 + r11 * h1 + r12 * h2
+                g2 = r20 * h0 + r21 * h1 + r22 * h2
+                ph2 = 2.0 * (p0 * g0 + p1 * g1 + p2 * g2)
+                j00, j01, j02 = sa[4, k], sa[5, k], sa[6, k]
+                j11, j12, j22 = sa[8, k], sa[9, k], sa[12, k]
+                # t = R I (I symmetric), then R I R^T = t R^T
+                t00 = r00 * j00 + r01 * j01 + r02 * j02
+                t01 = r00 * j01 + r01 * j11 + r02 * j12
+                t02 = r00 * j02 + r01 * j12 + r02 * j22
+                t10 = r10 * j00 + r11 * j01 + r12 * j02
+                t11 = r10 * j01 + r11 * j11 + r12 * j12
+                t12 = r10 * j02 + r11 * j12 + r12 * j22
+                t20 = r20 * j00 + r21 * j01 + r22 * j02
+                t21 = r20 * j01 + r21 * j11 + r22 * j12
+                t22 = r20 * j02 + r21 * j12 + r22 * j22
+                u00 = t00 * r00 + t01 * r01 + t02 * r02 + ms * (pp - p0 * p0) + ph2 - 2.0 * g0 * p0
+                u11 = t10 * r10 + t11 * r11 + t12 * r12 + ms * (pp - p1 * p1) + ph2 - 2.0 * g1 * p1
+                u22 = t20 * r20 + t21 * r21 + t22 * r22 + ms * (pp - p2 * p2) + ph2 - 2.0 * g2 * p2
+                u01 = t00 * r10 + t01 * r11 + t02 * r12 - ms * p0 * p1 - g0 * p1 - p0 * g1
+                u02 = t00 * r20 + t01 * r21 + t02 * r22 - ms * p0 * p2 - g0 * p2 - p0 * g2
+                u12 = t10 * r20 + t11 * r21 + t12 * r22 - ms * p1 * p2 - g1 * p2 - p1 * g2
+                ci[0, k] = m + ms
+                ci[1, k] = m * c0 + (ms * p0 + g0)
+                ci[2, k] = m * c1 + (ms * p1 + g1)
+                ci[3, k] = m * c2 + (ms * p2 + g2)
+                ci[4, k], ci[5, k], ci[6, k] = o00 + u00, o01 + u01, o02 + u02
+                ci[7, k], ci[8, k], ci[9, k] = o01 + u01, o11 + u11, o12 + u12
+                ci[10, k], ci[11, k], ci[12, k] = o02 + u02, o12 + u12, o22 + u22
+        _copy_rows(ci, 0, sa, 13, nb)
     for i in range(n):
+        # force and moment (rows 0-5) the unit acceleration of joint i asks of subtree i, and
+        # their projection on the joint's axis (row 6), carried down the chain
         k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+        ci = comp[i]
         for k in range(nb):
-            hx, hy, hz = comp[i, 1, k], comp[i, 2, k], comp[i, 3, k]
-            fn[0, k] = k1 * hz - k2 * hy
-            fn[1, k] = k2 * hx - k0 * hz
-            fn[2, k] = k0 * hy - k1 * hx
-            n0 = comp[i, 4, k] * k0 + comp[i, 5, k] * k1 + comp[i, 6, k] * k2
-            n1 = comp[i, 7, k] * k0 + comp[i, 8, k] * k1 + comp[i, 9, k] * k2
-            n2 = comp[i, 10, k] * k0 + comp[i, 11, k] * k1 + comp[i, 12, k] * k2
-            fn[3, k], fn[4, k], fn[5, k] = n0, n1, n2
-            mm[i, i, k] = k0 * n0 + k1 * n1 + k2 * n2
+            hx, hy, hz = ci[1, k], ci[2, k], ci[3, k]
+            sb[0, k] = k1 * hz - k2 * hy
+            sb[1, k] = k2 * hx - k0 * hz
+            sb[2, k] = k0 * hy - k1 * hx
+            n0 = ci[4, k] * k0 + ci[5, k] * k1 + ci[6, k] * k2
+            n1 = ci[7, k] * k0 + ci[8, k] * k1 + ci[9, k] * k2
+            n2 = ci[10, k] * k0 + ci[11, k] * k1 + ci[12, k] * k2
+            sb[3, k], sb[4, k], sb[5, k] = n0, n1, n2
+            sb[6, k] = k0 * n0 + k1 * n1 + k2 * n2
+        _copy_rows(sb, 6, mm[i, i:i + 1], 1, nb)
+        src, dst = sb, sa
         for j in range(i - 1, -1, -1):
             r = rot[j + 1]
             p0, p1, p2 = pos[j + 1, 0], pos[j + 1, 1], pos[j + 1, 2]
             a0, a1, a2 = axis[j, 0], axis[j, 1], axis[j, 2]
             for k in range(nb):
-                f0, f1, f2 = fn[0, k], fn[1, k], fn[2, k]
-                n0, n1, n2 = fn[3, k], fn[4, k], fn[5, k]
+                f0, f1, f2 = src[0, k], src[1, k], src[2, k]
+                n0, n1, n2 = src[3, k], src[4, k], src[5, k]
                 g0 = r[0, k] * f0 + r[1, k] * f1 + r[2, k] * f2
                 g1 = r[3, k] * f0 + r[4, k] * f1 + r[5, k] * f2
                 g2 = r[6, k] * f0 + r[7, k] * f1 + r[8, k] * f2
                 e0 = r[0, k] * n0 + r[1, k] * n1 + r[2, k] * n2 + p1 * g2 - p2 * g1
                 e1 = r[3, k] * n0 + r[4, k] * n1 + r[5, k] * n2 + p2 * g0 - p0 * g2
                 e2 = r[6, k] * n0 + r[7, k] * n1 + r[8, k] * n2 + p0 * g1 - p1 * g0
-                fn[0, k], fn[1, k], fn[2, k] = g0, g1, g2
-                fn[3, k], fn[4, k], fn[5, k] = e0, e1, e2
-                value = a0 * e0 + a1 * e1 + a2 * e2
-                mm[i, j, k] = value
-                mm[j, i, k] = value
+                dst[0, k], dst[1, k], dst[2, k] = g0, g1, g2
+                dst[3, k], dst[4, k], dst[5, k] = e0, e1, e2
+                dst[6, k] = a0 * e0 + a1 * e1 + a2 * e2
+            _copy_rows(dst, 6, mm[i, j:j + 1], 1, nb)
+            _copy_rows(dst, 6, mm[j, i:i + 1], 1, nb)
+            src, dst = dst, src
 
 
-@_kernel
+@_vector_kernel
 def _block_solve(mm, rhs, free, s0, nb, out):
-    """Cholesky solve of mm x = rhs per scenario over its free joints; out[:, s0 + k] = x."""
+    """Cholesky solve of mm x = rhs per scenario over its free joints; out[:, s0 + k] = x.
+
+    A held joint (free 0) gets the row and column of the identity and a zero right-hand side,
+    as products with free (exact for 0 and 1), so no loop over scenarios branches."""
     n = mm.shape[0]
     for i in range(n):
+        fi = free[i, s0:s0 + nb]
+        ri = rhs[i]
+        for j in range(n):
+            fj = free[j, s0:s0 + nb]
+            mij = mm[i, j]
+            if i == j:
+                for k in range(nb):
+                    mij[k] = mij[k] * fi[k] + (1.0 - fi[k])
+            else:
+                for k in range(nb):
+                    mij[k] = mij[k] * fi[k] * fj[k]
         for k in range(nb):
-            if free[i, _lane(s0, k)] == 0.0:
-                for j in range(n):
-                    mm[i, j, k] = 0.0
-                    mm[j, i, k] = 0.0
-                mm[i, i, k] = 1.0
-                rhs[i, k] = 0.0
+            ri[k] = ri[k] * fi[k]
     for j in range(n):
-        for k in range(nb):
-            d = mm[j, j, k]
-            for c in range(j):
-                d -= mm[j, c, k] * mm[j, c, k]
-            mm[j, j, k] = math.sqrt(d)
-        for i in range(j + 1, n):
+        djj = mm[j, j]
+        for c in range(j):
+            mjc = mm[j, c]
             for k in range(nb):
-                v = mm[i, j, k]
-                for c in range(j):
-                    v -= mm[i, c, k] * mm[j, c, k]
-                mm[i, j, k] = v / mm[j, j, k]
+                djj[k] -= mjc[k] * mjc[k]
+        for k in range(nb):
+            djj[k] = math.sqrt(djj[k])
+        for i in range(j + 1, n):
+            mij = mm[i, j]
+            for c in range(j):
+                mic, mjc = mm[i, c], mm[j, c]
+                for k in range(nb):
+                    mij[k] -= mic[k] * mjc[k]
+            for k in range(nb):
+                mij[k] = mij[k] / djj[k]
     for i in range(n):
+        ri = rhs[i]
+        for c in range(i):
+            mic, rc = mm[i, c], rhs[c]
+            for k in range(nb):
+                ri[k] -= mic[k] * rc[k]
+        dii = mm[i, i]
         for k in range(nb):
-            v = rhs[i, k]
-            for c in range(i):
-                v -= mm[i, c, k] * rhs[c, k]
-            rhs[i, k] = v / mm[i, i, k]
+            ri[k] = ri[k] / dii[k]
     for i in range(n - 1, -1, -1):
+        ri = rhs[i]
+        for c in range(i + 1, n):
+            mci, rc = mm[c, i], rhs[c]
+            for k in range(nb):
+                ri[k] -= mci[k] * rc[k]
+        dii = mm[i, i]
+        oi = out[i, s0:s0 + nb]
         for k in range(nb):
-            v = rhs[i, k]
-            for c in range(i + 1, n):
-                v -= mm[c, i, k] * rhs[c, k]
-            rhs[i, k] = v / mm[i, i, k]
-            out[i, _lane(s0, k)] = rhs[i, k]
+            ri[k] = ri[k] / dii[k]
+            oi[k] = ri[k]
 
 
 @_kernel
 def _block_forward(q, dq, tau, free, zero, s0, nb, place, pos, axis, mass, com, inertia, gravity,
-                   rot, st, fm, vec, comp, mm, fn, out):
+                   rot, sa, fm, vec, comp, mm, sb, out):
     """out[:, s0 + k] = M^-1 (tau - h) of scenarios s0 + k, k < nb, over their free joints;
-    zero is (n, n_scen) zeros, the rest (block-sized) scratch."""
+    zero is (n, n_scen) zeros, the rest (block-sized) scratch (see :func:`block_workspace`)."""
     n = q.shape[0]
     _block_rotations(q, s0, nb, place, axis, rot)
-    _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity, st, fm, vec)
+    _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity, sa, fm, sb,
+                vec)
     for i in range(n):
+        ti, vi = tau[i, s0:s0 + nb], vec[i]
         for k in range(nb):
-            vec[i, k] = tau[i, _lane(s0, k)] - vec[i, k]
-    _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, fn)
+            vi[k] = ti[k] - vi[k]
+    _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, sa, sb)
     _block_solve(mm, vec, free, s0, nb, out)
 
 
 def block_workspace(n_joints: int, n_scenarios: int) -> tuple[np.ndarray, ...]:
     """Scratch of :func:`_block_forward` for every block of ``n_scenarios`` (leading axis, so
-    blocks on different threads never share it): rot, st, fm, vec, comp, mm, fn."""
+    blocks on different threads never share it): rot, sa, fm, vec, comp, mm, sb."""
     n_blocks = -(-n_scenarios // _BLOCK)
-    return (np.empty((n_blocks, n_joints, 9, _BLOCK)), np.empty((n_blocks, 9, _BLOCK)),
-            np.empty((n_blocks, n_joints, 6, _BLOCK)), np.empty((n_blocks, n_joints, _BLOCK)),
+    return (np.empty((n_blocks, n_joints, 9, _BLOCK)), np.empty((n_blocks, 15, _BLOCK)),
+            np.empty((n_blocks, n_joints, 15, _BLOCK)), np.empty((n_blocks, n_joints, _BLOCK)),
             np.empty((n_blocks, n_joints, 13, _BLOCK)),
-            np.empty((n_blocks, n_joints, n_joints, _BLOCK)), np.empty((n_blocks, 6, _BLOCK)))
+            np.empty((n_blocks, n_joints, n_joints, _BLOCK)), np.empty((n_blocks, 15, _BLOCK)))
 
 
 def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
@@ -341,9 +447,9 @@ def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, grav
         s0 = b * _BLOCK
         _block_forward(q, dq, tau, free, zero, s0, min(_BLOCK, n_scen - s0), place, pos, axis,
                        mass, com, inertia, gravity, np.empty((n, 9, _BLOCK)),
-                       np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), np.empty((n, _BLOCK)),
+                       np.empty((15, _BLOCK)), np.empty((n, 15, _BLOCK)), np.empty((n, _BLOCK)),
                        np.empty((n, 13, _BLOCK)), np.empty((n, n, _BLOCK)),
-                       np.empty((6, _BLOCK)), out)
+                       np.empty((15, _BLOCK)), out)
 
 
 def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
@@ -356,7 +462,8 @@ def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia
         vec = np.empty((n, _BLOCK))
         _block_rotations(q, s0, nb, place, axis, rot)
         _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity,
-                    np.empty((9, _BLOCK)), np.empty((n, 6, _BLOCK)), vec)
+                    np.empty((15, _BLOCK)), np.empty((n, 15, _BLOCK)), np.empty((15, _BLOCK)),
+                    vec)
         for i in range(n):
             for k in range(nb):
                 out[i, _lane(s0, k)] = vec[i, k]
@@ -371,7 +478,7 @@ def _mass_blocks(q, place, pos, axis, mass, com, inertia, out):
         mm = np.empty((n, n, _BLOCK))
         _block_rotations(q, s0, nb, place, axis, rot)
         _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
-                    np.empty((6, _BLOCK)))
+                    np.empty((15, _BLOCK)), np.empty((15, _BLOCK)))
         for k in range(nb):
             for i in range(n):
                 for j in range(n):
@@ -457,25 +564,63 @@ class ChainKernel:
         return out
 
 
+@_kernel
+def _frames(q, place, pos, axis, origins, rots):
+    """origins[i, s] and rots[i, s] (row-major) of joint frame i after it turned, base frame."""
+    n, n_scen = q.shape
+    for s in range(n_scen):
+        w00, w01, w02, w10, w11, w12, w20, w21, w22 = 1.0, 0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 1.0
+        o0, o1, o2 = 0.0, 0.0, 0.0
+        for i in range(n):
+            p0, p1, p2 = pos[i, 0], pos[i, 1], pos[i, 2]
+            o0 += w00 * p0 + w01 * p1 + w02 * p2
+            o1 += w10 * p0 + w11 * p1 + w12 * p2
+            o2 += w20 * p0 + w21 * p1 + w22 * p2
+            k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
+            c, sn = math.cos(q[i, s]), math.sin(q[i, s])
+            t = 1.0 - c
+            u00, u01, u02 = c + t * k0 * k0, t * k0 * k1 - sn * k2, t * k0 * k2 + sn * k1
+            u10, u11, u12 = t * k1 * k0 + sn * k2, c + t * k1 * k1, t * k1 * k2 - sn * k0
+            u20, u21, u22 = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0, c + t * k2 * k2
+            # w <- w @ place[i] @ turn
+            a = place[i]
+            v00 = w00 * a[0, 0] + w01 * a[1, 0] + w02 * a[2, 0]
+            v01 = w00 * a[0, 1] + w01 * a[1, 1] + w02 * a[2, 1]
+            v02 = w00 * a[0, 2] + w01 * a[1, 2] + w02 * a[2, 2]
+            v10 = w10 * a[0, 0] + w11 * a[1, 0] + w12 * a[2, 0]
+            v11 = w10 * a[0, 1] + w11 * a[1, 1] + w12 * a[2, 1]
+            v12 = w10 * a[0, 2] + w11 * a[1, 2] + w12 * a[2, 2]
+            v20 = w20 * a[0, 0] + w21 * a[1, 0] + w22 * a[2, 0]
+            v21 = w20 * a[0, 1] + w21 * a[1, 1] + w22 * a[2, 1]
+            v22 = w20 * a[0, 2] + w21 * a[1, 2] + w22 * a[2, 2]
+            w00 = v00 * u00 + v01 * u10 + v02 * u20
+            w01 = v00 * u01 + v01 * u11 + v02 * u21
+            w02 = v00 * u02 + v01 * u12 + v02 * u22
+            w10 = v10 * u00 + v11 * u10 + v12 * u20
+            w11 = v10 * u01 + v11 * u11 + v12 * u21
+            w12 = v10 * u02 + v11 * u12 + v12 * u22
+            w20 = v20 * u00 + v21 * u10 + v22 * u20
+            w21 = v20 * u01 + v21 * u11 + v22 * u21
+            w22 = v20 * u02 + v21 * u12 + v22 * u22
+            origins[i, s, 0], origins[i, s, 1], origins[i, s, 2] = o0, o1, o2
+            r = rots[i, s]
+            r[0, 0], r[0, 1], r[0, 2] = w00, w01, w02
+            r[1, 0], r[1, 1], r[1, 2] = w10, w11, w12
+            r[2, 0], r[2, 1], r[2, 2] = w20, w21, w22
+
+
 def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray
                 ) -> list[tuple[np.ndarray, np.ndarray]]:
     """Origin ``(n, 3)``, m, and rotation ``(n, 3, 3)`` in the base frame of every joint frame
     after its joint turned, for ``(n_joints, n)`` angles q (rad); place, pos, axis as in
-    :class:`ChainKernel` (forward kinematics, Rodrigues' rotation formula)."""
+    :class:`ChainKernel` (forward kinematics, Rodrigues' rotation formula; compiled)."""
+    q = np.ascontiguousarray(q, dtype=float)
     n_joints, n = q.shape
-    rot = np.broadcast_to(np.eye(3), (n, 3, 3))
-    origin = np.zeros((n, 3))
-    frames = []
-    for i in range(n_joints):
-        angle = q[i][:, None, None]
-        k = axis[i]
-        skew = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-        turn = (np.cos(angle) * np.eye(3) + np.sin(angle) * skew
-                + (1 - np.cos(angle)) * np.outer(k, k))
-        origin = origin + rot @ pos[i]
-        rot = rot @ place[i] @ turn
-        frames.append((origin, rot))
-    return frames
+    origins = np.empty((n_joints, n, 3))
+    rots = np.empty((n_joints, n, 3, 3))
+    _frames(q, np.ascontiguousarray(place, dtype=float), np.ascontiguousarray(pos, dtype=float),
+            np.ascontiguousarray(axis, dtype=float), origins, rots)
+    return [(origins[i], rots[i]) for i in range(n_joints)]
 
 
 def chain_kernel(chain: ChainParams, joints: Sequence[JointParams], parallel: bool = False

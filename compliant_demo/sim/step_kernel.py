@@ -18,7 +18,12 @@ from collections.abc import Callable
 import numba
 import numpy as np
 
-from compliant_demo.sim.rigid_body import _block_forward, _lane, _sincos
+from compliant_demo.sim.rigid_body import (
+    _block_forward,
+    _DistinctArgumentsCompiler,
+    _lane,
+    _sincos,
+)
 
 __all__ = [
     "CONTACT_DAMPING_DEPTH",
@@ -45,6 +50,9 @@ N_PARAMS = len(PARAM_ROWS)
 _INV_DEPTH = 1.0 / CONTACT_DAMPING_DEPTH
 _compiled = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 _parallel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True, parallel=True)
+# the batch's arrays never overlap: declared so (see rigid_body), the scenario loops vectorise
+_distinct = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+                       pipeline_class=_DistinctArgumentsCompiler)
 
 
 @_compiled
@@ -68,7 +76,7 @@ def contact_force(penetration, rate, stiffness, damping):
     return max(ramp * rate * damping + stiffness * penetration, 0.0)
 
 
-@_compiled
+@_distinct
 def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, free, accel_scale,
                model, ws, zero, torques, mech, grav, f):
     """State derivative ``f`` at the state rows ``x`` (q, dq, two actuator rows) for scenarios
@@ -77,78 +85,73 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
 
     Every branch sits outside the loops over scenarios, so each of those compiles to SIMD."""
     n_j = x.shape[1]
+    e0 = s0 + nb
     for j in range(n_j):
         neg_viscous, k1, k2 = prm[_NEG_VISCOUS, j], prm[_K1, j], prm[_K2, j]
         inv_tc0, inv_tc1 = prm[_INV_TC, j], prm[_INV_TC + 1, j]
         rate0, rate1 = prm[_RATE, j], prm[_RATE + 1, j]
-        # one array written per loop: fewer pointers to check for overlap, so loops vectorise
+        # one-row views of this joint's block (see rigid_body), one array written per loop
+        q, dq, act0, act1 = x[0, j, s0:e0], x[1, j, s0:e0], x[2, j, s0:e0], x[3, j, s0:e0]
+        spring, passive, external = (torques[0, j, s0:e0], torques[1, j, s0:e0],
+                                     torques[2, j, s0:e0])
+        damping = mech[j, s0:e0]
         if kind == IDEAL:
+            target = tg[2, j, s0:e0]
             for k in range(nb):
-                s = _lane(s0, k)
-                torques[0, j, s] = x[2, j, s] * (tg[2, j, s] - x[0, j, s])
+                spring[k] = act0[k] * (target[k] - q[k])
             for k in range(nb):
-                s = _lane(s0, k)
-                mech[j, s] = -(x[3, j, s] * x[1, j, s])
+                damping[k] = -(act1[k] * dq[k])
         else:
             for k in range(nb):
-                s = _lane(s0, k)
                 # t(p1) - t(p2) = (p1 - p2) * (k1 + k2*(p1 + p2)) for t(p) = k1*p + k2*p^2
-                q = x[0, j, s]
-                p1, p2 = max(x[2, j, s] - q, 0.0), max(q - x[3, j, s], 0.0)
-                torques[0, j, s] = ((p1 + p2) * k2 + k1) * (p1 - p2)
-            for k in range(nb):
-                mech[j, _lane(s0, k)] = 0.0
+                p1, p2 = max(act0[k] - q[k], 0.0), max(q[k] - act1[k], 0.0)
+                spring[k] = ((p1 + p2) * k2 + k1) * (p1 - p2)
+            damping[:] = 0.0
         for k in range(nb):
-            s = _lane(s0, k)
-            torques[1, j, s] = neg_viscous * x[1, j, s] + mech[j, s]
+            passive[k] = neg_viscous * dq[k] + damping[k]
+        f[0, j, s0:e0] = dq
+        target0, target1 = tg[0, j, s0:e0], tg[1, j, s0:e0]
+        rate_0, rate_1 = f[2, j, s0:e0], f[3, j, s0:e0]
         for k in range(nb):
-            s = _lane(s0, k)
-            dq = x[1, j, s]
-            f[0, j, s] = dq
-            f[2, j, s] = min(max((tg[0, j, s] - x[2, j, s]) * inv_tc0, -rate0), rate0)
-            f[3, j, s] = min(max((tg[1, j, s] - x[3, j, s]) * inv_tc1, -rate1), rate1)
+            rate_0[k] = min(max((target0[k] - act0[k]) * inv_tc0, -rate0), rate0)
+        for k in range(nb):
+            rate_1[k] = min(max((target1[k] - act1[k]) * inv_tc1, -rate1), rate1)
         neg_coulomb, inv_smoothing = prm[_NEG_COULOMB, j], prm[_INV_SMOOTHING, j]
         if neg_coulomb != 0.0:  # tanh is a library call: only on joints that have friction
             for k in range(nb):
-                s = _lane(s0, k)
-                torques[1, j, s] += neg_coulomb * np.tanh(x[1, j, s] * inv_smoothing)
+                passive[k] += neg_coulomb * np.tanh(dq[k] * inv_smoothing)
         lower, upper = prm[_LOWER, j], prm[_UPPER, j]
         k_stop, b_stop = prm[_K_STOP, j], prm[_B_STOP, j]
         for k in range(nb):
-            s = _lane(s0, k)
-            q, dq = x[0, j, s], x[1, j, s]
-            torques[1, j, s] += (contact_force(lower - q, -dq, k_stop, b_stop)
-                                 - contact_force(q - upper, dq, k_stop, b_stop))
+            passive[k] += (contact_force(lower - q[k], -dq[k], k_stop, b_stop)
+                           - contact_force(q[k] - upper, dq[k], k_stop, b_stop))
         if has_ext:
-            for k in range(nb):
-                s = _lane(s0, k)
-                torques[2, j, s] = ext[e, j, s]
+            external[:] = ext[e, j, s0:e0]
         else:
-            for k in range(nb):
-                torques[2, j, _lane(s0, k)] = 0.0
+            external[:] = 0.0
         for layer in range(walls.shape[1]):
+            position, side, stiffness, wall_damping = (
+                walls[0, layer, j, s0:e0], walls[1, layer, j, s0:e0], walls[2, layer, j, s0:e0],
+                walls[3, layer, j, s0:e0])
             for k in range(nb):
-                s = _lane(s0, k)
-                side = walls[1, layer, j, s]
-                force = contact_force((x[0, j, s] - walls[0, layer, j, s]) * side,
-                                      side * x[1, j, s], walls[2, layer, j, s],
-                                      walls[3, layer, j, s])
-                torques[2, j, s] -= force * side
+                force = contact_force((q[k] - position[k]) * side[k], side[k] * dq[k],
+                                      stiffness[k], wall_damping[k])
+                external[k] -= force * side[k]
+        power_spring, power_passive, power_external = (f[4, j, s0:e0], f[5, j, s0:e0],
+                                                       f[6, j, s0:e0])
+        accel = f[1, j, s0:e0]
         for k in range(nb):
-            s = _lane(s0, k)
-            dq = x[1, j, s]
-            f[4, j, s] = torques[0, j, s] * dq
-            f[5, j, s] = torques[1, j, s] * dq
-            f[6, j, s] = torques[2, j, s] * dq
-            f[1, j, s] = (torques[0, j, s] + torques[1, j, s]) + torques[2, j, s]
+            power_spring[k] = spring[k] * dq[k]
+            power_passive[k] = passive[k] * dq[k]
+            power_external[k] = external[k] * dq[k]
+            accel[k] = (spring[k] + passive[k]) + external[k]
         if not coupled:
             neg_mgl, offset = prm[_NEG_MGL, j], prm[_OFFSET, j]
+            gravity, scale = grav[j, s0:e0], accel_scale[j, s0:e0]
             for k in range(nb):
-                s = _lane(s0, k)
-                grav[j, s] = neg_mgl * _sincos(x[0, j, s] - offset)[0]
+                gravity[k] = neg_mgl * _sincos(q[k] - offset)[0]
             for k in range(nb):
-                s = _lane(s0, k)
-                f[1, j, s] = (f[1, j, s] + grav[j, s]) * accel_scale[j, s]
+                accel[k] = (accel[k] + gravity[k]) * scale[k]
     if coupled:
         _block_forward(x[0], x[1], f[1], free, zero, s0, nb, *model, ws[0][b], ws[1][b],
                        ws[2][b], ws[3][b], ws[4][b], ws[5][b], ws[6][b], f[1])
@@ -174,34 +177,39 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
         nb = min(block, n_s - s0)
         _block_rhs(s0, nb, b, y, tg, ext, 0, has_ext, prm, walls, kind, coupled, free,
                    accel_scale, model, ws, zero, torques, mech, grav, stages[0])
+        e0 = s0 + nb
         for j in range(n_j):
+            q, out = y[0, j, s0:e0], deflection[j, s0:e0]
             if kind == IDEAL:
+                target = tg[2, j, s0:e0]
                 for k in range(nb):
-                    s = _lane(s0, k)
-                    deflection[j, s] = y[0, j, s] - tg[2, j, s]
+                    out[k] = q[k] - target[k]
             else:
+                act0, act1 = y[2, j, s0:e0], y[3, j, s0:e0]
                 for k in range(nb):
-                    s = _lane(s0, k)
-                    deflection[j, s] = y[0, j, s] - 0.5 * (y[2, j, s] + y[3, j, s])
+                    out[k] = q[k] - 0.5 * (act0[k] + act1[k])
         if method == 0:
             for i in range(3):
                 step = 0.5 * h if i < 2 else h
                 for r in range(n_dyn):
                     for j in range(n_j):
+                        rate, start, into = (stages[i, r, j, s0:e0], y[r, j, s0:e0],
+                                             ys[r, j, s0:e0])
                         for k in range(nb):
-                            s = _lane(s0, k)
-                            ys[r, j, s] = stages[i, r, j, s] * step + y[r, j, s]
+                            into[k] = rate[k] * step + start[k]
                 _block_rhs(s0, nb, b, ys, tg, ext, 1 if i < 2 else 2, has_ext, prm, walls, kind,
                            coupled, free, accel_scale, model, ws, zero, torques, mech, grav,
                            stages[i + 1])
             sixth = h / 6.0
             for r in range(n_rows):
                 for j in range(n_j):
+                    k1, k2, k3, k4 = (stages[0, r, j, s0:e0], stages[1, r, j, s0:e0],
+                                      stages[2, r, j, s0:e0], stages[3, r, j, s0:e0])
+                    increment, state = acc[r, j, s0:e0], y[r, j, s0:e0]
                     for k in range(nb):
-                        s = _lane(s0, k)
-                        acc[r, j, s] = (((stages[1, r, j, s] + stages[2, r, j, s]) * 2.0
-                                         + stages[0, r, j, s]) + stages[3, r, j, s]) * sixth
-                        y[r, j, s] += acc[r, j, s]
+                        increment[k] = ((k2[k] + k3[k]) * 2.0 + k1[k] + k4[k]) * sixth
+                    for k in range(nb):
+                        state[k] += increment[k]
         else:
             for r in range(n_rows):
                 for j in range(n_j):
@@ -221,21 +229,22 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
         # change of the set equilibrium
         for j in range(n_j):
             k2 = prm[_K2, j]
-            for k in range(nb):
-                s = _lane(s0, k)
-                d0, d1 = acc[2, j, s], acc[3, j, s]
-                if kind == IDEAL:
-                    middle, stiffening = acc[0, j, s], d0
-                else:
-                    middle, stiffening = acc[0, j, s] - (d0 + d1) * 0.5, (d0 - d1) * k2 * 2.0
-                middle = middle * 0.5 + deflection[j, s]
-                injection[j, s] += middle * middle * stiffening * 0.5
+            d_q, d0, d1 = acc[0, j, s0:e0], acc[2, j, s0:e0], acc[3, j, s0:e0]
+            before, into = deflection[j, s0:e0], injection[j, s0:e0]
+            if kind == IDEAL:
+                for k in range(nb):
+                    middle = d_q[k] * 0.5 + before[k]
+                    into[k] += middle * middle * d0[k] * 0.5
+            else:
+                for k in range(nb):
+                    middle = (d_q[k] - (d0[k] + d1[k]) * 0.5) * 0.5 + before[k]
+                    into[k] += middle * middle * ((d0[k] - d1[k]) * k2 * 2.0) * 0.5
 
 
 # the state derivative of a whole batch (see _block_rhs), on one thread: what recording reads
-rhs_batch: Callable[..., None] = _compiled(_rhs_blocks)
+rhs_batch: Callable[..., None] = _distinct(_rhs_blocks)
 # one step of a whole batch: [0] on one thread (the default: campaigns already run one process
 # per core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it
 # started, as campaign workers are), [1] over numba's threads
 step_batch: tuple[Callable[..., None], Callable[..., None]] = (
-    _compiled(_step_blocks), _parallel(_step_blocks))
+    _distinct(_step_blocks), _parallel(_step_blocks))
