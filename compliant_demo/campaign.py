@@ -305,18 +305,18 @@ class ReplayCampaign:
         """Scenario ``index`` on its own target and drawn plant, with its unperturbed twin."""
         setup = self.setup if target is None else replace(
             self.setup, goal=target.goal, duration_s=target.duration_s)
-        if not self.spec.plant_variation:
-            result = setup.simulate([schedule, UNPERTURBED], scenario_seed(self.seed, index),
-                                    decimation=self.decimation)
-            return self._outcome(setup, result, 0, 1, index, schedule, target)
-        plant, factors = self.drawn_plant(index)
+        plant, factors = self.drawn_plant(index) if self.spec.plant_variation else (None, None)
         try:
             result = setup.simulate([schedule, UNPERTURBED], scenario_seed(self.seed, index),
                                     decimation=self.decimation, plant=plant)
         except UnstableStepError as exc:
+            if plant is None:
+                raise
             raise UnstableStepError(
                 f"scenario {index} on its drawn plant (factors {factors}): {exc}") from None
         outcome = self._outcome(setup, result, 0, 1, index, schedule, target)
+        if plant is None:
+            return outcome
         return replace(outcome, metrics={**outcome.metrics, "plant_factors": factors},
                        plant=plant.model_dump(mode="json"))
 
