@@ -571,6 +571,21 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
     msg.name = list(FLOOD_JOINTS)
     tick = 0
 
+    def publish_retrying(msg: Any) -> None:
+        """Publish ``msg``; a reliable writer whose history is full refuses for a moment on a
+        loaded machine ("cannot publish data"), so the same message is offered again, bounded."""
+        from rclpy._rclpy_pybind11 import RCLError
+
+        deadline = time.monotonic() + 2.0
+        while True:
+            try:
+                publisher.publish(msg)
+                return
+            except RCLError:
+                if time.monotonic() >= deadline:
+                    raise
+                rclpy.spin_once(node, timeout_sec=0.001)
+
     def publish_at(rate: float, seconds: float) -> int:
         nonlocal tick
         start = time.perf_counter()
@@ -586,7 +601,7 @@ def flood_driver_main(result_path: str, flood_s: float, rate_hz: float, slow_s: 
                 msg.header.stamp.nanosec = int(round(rest * 1e9 / rate_hz))
                 value = [1e-4 * tick] * len(FLOOD_JOINTS)
                 msg.position, msg.velocity, msg.effort = value, value, value
-                publisher.publish(msg)
+                publish_retrying(msg)
                 tick += 1
                 sent += 1
             if sent % 200 == 0 or rate < 1000:
