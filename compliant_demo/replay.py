@@ -50,6 +50,7 @@ __all__ = [
     "ReplaySetup",
     "ReplayRun",
     "damping_command",
+    "warm_up",
 ]
 
 #: Time simulated after the movement to watch it settle, s: the same for every replay.
@@ -294,6 +295,27 @@ class ReplaySetup:
             ),
         })
         return metrics
+
+
+def warm_up(plant: ReplayPlant, method: str = "rk4") -> None:
+    """Compile, or load from numba's cache, the simulator kernels a replay on ``plant`` runs.
+
+    A first compile takes tens of seconds and a cached load a fraction of one: a caller that
+    steps in real time (the replay node) calls this before it takes requests, so neither its
+    first step, nor a live push, nor the whole-run simulation at the end stalls it.
+
+    Parameters
+    ----------
+    plant : the simulated target
+    method : integrator of :class:`compliant_demo.sim.Simulator`
+    """
+    names = [joint.name for joint in plant.joints]
+    zeros = np.zeros(len(names))
+    simulator = Simulator(list(plant.joints), plant.mechanisms_for(names), n_scenarios=1,
+                          method=method, horizon_steps=4, chain=plant.chain)
+    simulator.step(zeros, zeros)
+    simulator.step(zeros, zeros, external_torque=zeros)
+    simulator.run(np.zeros((2, len(names))), np.zeros((2, len(names))))
 
 
 class ReplayRun:

@@ -27,6 +27,9 @@ from compliant_demo.app.supervisor import (
 
 ROOT = Path(__file__).resolve().parent.parent
 LAUNCH = ROOT / "launch"
+#: How long a test waits for a node's service to appear, s: a node on a fresh machine first
+#: compiles its simulator (about 30 s, :func:`compliant_demo.replay.warm_up`).
+SERVICE_WAIT_S = 120.0
 
 
 def ros_env(domain_id: int) -> dict[str, str]:
@@ -173,6 +176,7 @@ class TestClient:
         self.executor = SingleThreadedExecutor(context=self.context)
         self.executor.add_node(self.node)
         self._clients: dict[str, Any] = {}
+        self._resent: set[str] = set()
 
     def spin_for(self, seconds: float) -> None:
         deadline = time.monotonic() + seconds
@@ -183,7 +187,16 @@ class TestClient:
         return wait_for(predicate, timeout_s, what,
                         lambda: self.executor.spin_once(timeout_sec=0.02))
 
-    def call_trigger(self, service: str, timeout_s: float = 10.0) -> Any:
+    def call_trigger(self, service: str, timeout_s: float = 10.0,
+                     resend_after_s: float | None = None) -> Any:
+        """Call Trigger ``service``; wait up to :data:`SERVICE_WAIT_S` for it to exist, then up to
+        ``timeout_s`` for the reply.
+
+        A reply can be lost while the server's response writer has not yet matched this client's
+        reader (``service_is_ready`` only sees the request side). With ``resend_after_s``, a
+        request unanswered that long is sent again, until ``timeout_s``; :meth:`resent` then says
+        so, and the reply may be the server's answer to a request it already took.
+        """
         from std_srvs.srv import Trigger
 
         # One client per service for the whole test: a fresh client's response reader may not be
@@ -191,15 +204,44 @@ class TestClient:
         client = self._clients.get(service)
         if client is None:
             client = self._clients[service] = self.node.create_client(Trigger, service)
-        self.spin_until(client.service_is_ready, timeout_s, f"service {service}")
-        future = client.call_async(Trigger.Request())
-        self.spin_until(future.done, timeout_s, f"response of {service}")
-        return future.result()
+        self.spin_until(client.service_is_ready, SERVICE_WAIT_S, f"service {service}")
+        deadline = time.monotonic() + timeout_s
+        self._resent.discard(service)
+        while True:
+            future = client.call_async(Trigger.Request())
+            wait = deadline - time.monotonic()
+            if resend_after_s is not None:
+                wait = min(wait, resend_after_s)
+            try:
+                self.spin_until(future.done, max(wait, 0.0), f"response of {service}")
+                return future.result()
+            except AssertionError:
+                client.remove_pending_request(future)
+                if time.monotonic() >= deadline:
+                    raise AssertionError(
+                        f"timed out after {timeout_s} s waiting for response of {service}"
+                    ) from None
+                self._resent.add(service)
+
+    def resent(self, service: str) -> bool:
+        """True if the last :meth:`call_trigger` of ``service`` had to send its request again."""
+        return service in self._resent
 
     def close(self) -> None:
         self.executor.shutdown()
         self.node.destroy_node()
         self.rclpy.try_shutdown(context=self.context)
+
+
+def start_replay(client: TestClient, nodes: Any, service: str = "run") -> str:
+    """Start a replay by its Trigger ``service`` and return the reply's message; fail with the
+    nodes' logs if it does not start. A reply lost in transit is asked for again: the second
+    request then finds the first replay running, which counts as started."""
+    reply = client.call_trigger(service, timeout_s=30.0, resend_after_s=5.0)
+    started = reply.success or (client.resent(service)
+                                and reply.message == "a replay is already running")
+    assert started, reply.message + nodes.all_logs()
+    return reply.message
 
 
 def parameter_value(value: Any) -> Any:
@@ -232,7 +274,8 @@ def set_parameter(client: TestClient, node: str, name: str, value: Any) -> Any:
     service = client._clients.get(key)
     if service is None:
         service = client._clients[key] = client.node.create_client(SetParameters, key)
-    client.spin_until(service.service_is_ready, 30.0, f"the parameter service of {node}")
+    client.spin_until(service.service_is_ready, SERVICE_WAIT_S,
+                     f"the parameter service of {node}")
     request = SetParameters.Request(parameters=[Parameter(name=name,
                                                           value=parameter_value(value))])
     # A response can be lost while the node's response writer has not yet matched this fresh

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import LAUNCH, ROOT, TestClient, launched, run_cli
+from nodes_support import LAUNCH, ROOT, TestClient, launched, run_cli, start_replay
 
 from compliant_demo.learning import load_skill
 from compliant_demo.perturbation import load_schedule_yaml
@@ -217,8 +217,7 @@ def test_replay_run_service_publishes_and_takes_live_pushes(learned, tmp_path: P
         arguments = {"store": str(store), "schedule": ""}
         with launched("replay.launch.xml", arguments, DOMAIN_ID, tmp_path,
                       {"replay": {"duration_s": "1.5", "settle_s": "0.3"}}) as nodes:
-            reply = client.call_trigger("run", timeout_s=30.0)
-            assert reply.success, reply.message + nodes.all_logs()
+            start_replay(client, nodes)
             assert client.call_trigger("run").success is False  # one replay at a time
             client.spin_until(lambda: len(received["joint_states"]) > 20, 20.0, "joint states")
             push.publish(Float64MultiArray(data=[0.5, 0.0]))

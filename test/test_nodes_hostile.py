@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import DiagnosticsOf, TestClient, start_module
+from nodes_support import DiagnosticsOf, TestClient, start_module, start_replay
 
 from compliant_demo.nodes._common import recorded_qos, to_stamp
 from compliant_demo.store import DemoStore
@@ -193,8 +193,7 @@ def test_replay_survives_every_bad_live_torque_and_stores_its_result(
         client.spin_until(ignored_before_a_run, 20.0, "a push ignored")
         client.spin_for(0.5)  # the last push counted too
         idle_rejects = int(diagnostics.latest["rejected/perturbation_command/no_replay"])
-        reply = client.call_trigger("run", timeout_s=30.0)
-        assert reply.success, reply.message + nodes.all_logs()
+        start_replay(client, nodes)
         for data, _reason in hostile:
             push.publish(Float64MultiArray(data=data))
             client.spin_for(0.05)

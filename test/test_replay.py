@@ -14,7 +14,7 @@ from compliant_demo.learning import learn_skill
 from compliant_demo.models import JointParams
 from compliant_demo.perturbation import schedule_from_mapping
 from compliant_demo.plant import ReplayPlant, load_plant
-from compliant_demo.replay import ReplayRun, ReplaySetup
+from compliant_demo.replay import ReplayRun, ReplaySetup, warm_up
 from compliant_demo.teaching import cork_seat_scenario, teaching_series
 
 JOINTS = ["shoulder", "elbow"]
@@ -362,3 +362,12 @@ def test_limit_messages_tell_the_reached_value_from_its_limit() -> None:
     assert rate == ("stiffness rate: shoulder commanded at 120 N*m/rad/s beyond the 100 "
                     "N*m/rad/s limit at t = 0.200 s")
     assert first_limit_violation([0.1], [[0.5]], [[9.99]], joints) is None
+
+
+@pytest.mark.parametrize("plant_file", [None, "arm_cork_seat.yaml"], ids=["joints", "urdf_arm"])
+def test_warm_up_steps_every_simulator_path_a_replay_takes(plant_file) -> None:
+    config = Path(__file__).resolve().parent.parent / "config"
+    plant = load_plant() if plant_file is None else load_plant(config / plant_file)
+    warm_up(plant, "symplectic_euler")  # a step, a step with a live push, a whole run
+    with pytest.raises(InvalidInputError, match="method = 'euler'"):
+        warm_up(plant, "euler")

@@ -43,7 +43,7 @@ from compliant_demo.nodes._common import (
 from compliant_demo.nodes._files import load_file_parameter
 from compliant_demo.nodes._hardware import HardwareMode, hardware_gate
 from compliant_demo.plant import load_plant
-from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplayRun, ReplaySetup, warm_up
 from compliant_demo.store import ReplayParameters
 
 __all__ = ["MODES", "ReplayNode", "main"]
@@ -119,6 +119,12 @@ class ReplayNode(Node):
 
             self._criteria = (load_file_parameter("criteria_file", criteria_file, load_criteria)
                               if criteria_file else load_criteria())
+        if mode != "hardware":
+            # Before any service exists: a first compile takes tens of seconds, which would
+            # otherwise stall the executor in the first run (no diagnostics, no live pushes).
+            started = time.monotonic()
+            warm_up(self._plant, self._value("method"))
+            self.get_logger().info(f"simulator ready in {time.monotonic() - started:.1f} s")
         self.rejects = RejectCounter(self)
         # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
