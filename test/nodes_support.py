@@ -27,9 +27,10 @@ from compliant_demo.app.supervisor import (
 
 ROOT = Path(__file__).resolve().parent.parent
 LAUNCH = ROOT / "launch"
-#: How long a test waits for a node's service to appear, s: a node on a fresh machine first
-#: compiles its simulator (about 30 s, :func:`compliant_demo.replay.warm_up`).
-SERVICE_WAIT_S = 120.0
+#: How long a test waits for a node to come up (its services, its subscriptions), s: a replay
+#: node on a fresh machine first compiles its simulator (about 30 s,
+#: :func:`compliant_demo.replay.warm_up`).
+NODE_READY_S = 120.0
 
 
 def ros_env(domain_id: int) -> dict[str, str]:
@@ -189,7 +190,7 @@ class TestClient:
 
     def call_trigger(self, service: str, timeout_s: float = 10.0,
                      resend_after_s: float | None = None) -> Any:
-        """Call Trigger ``service``; wait up to :data:`SERVICE_WAIT_S` for it to exist, then up to
+        """Call Trigger ``service``; wait up to :data:`NODE_READY_S` for it to exist, then up to
         ``timeout_s`` for the reply.
 
         A reply can be lost while the server's response writer has not yet matched this client's
@@ -204,7 +205,7 @@ class TestClient:
         client = self._clients.get(service)
         if client is None:
             client = self._clients[service] = self.node.create_client(Trigger, service)
-        self.spin_until(client.service_is_ready, SERVICE_WAIT_S, f"service {service}")
+        self.spin_until(client.service_is_ready, NODE_READY_S, f"service {service}")
         deadline = time.monotonic() + timeout_s
         self._resent.discard(service)
         while True:
@@ -274,7 +275,7 @@ def set_parameter(client: TestClient, node: str, name: str, value: Any) -> Any:
     service = client._clients.get(key)
     if service is None:
         service = client._clients[key] = client.node.create_client(SetParameters, key)
-    client.spin_until(service.service_is_ready, SERVICE_WAIT_S,
+    client.spin_until(service.service_is_ready, NODE_READY_S,
                      f"the parameter service of {node}")
     request = SetParameters.Request(parameters=[Parameter(name=name,
                                                           value=parameter_value(value))])

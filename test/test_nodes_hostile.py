@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from nodes_support import DiagnosticsOf, TestClient, start_module, start_replay
+from nodes_support import NODE_READY_S, DiagnosticsOf, TestClient, start_module, start_replay
 
 from compliant_demo.nodes._common import recorded_qos, to_stamp
 from compliant_demo.store import DemoStore
@@ -183,7 +183,8 @@ def test_replay_survives_every_bad_live_torque_and_stores_its_result(
     ]
     try:
         push = client.node.create_publisher(Float64MultiArray, "perturbation_command", 10)
-        client.spin_until(lambda: push.get_subscription_count() >= 1, 20.0, "the replay node")
+        client.spin_until(lambda: push.get_subscription_count() >= 1, NODE_READY_S,
+                          "the replay node")
 
         def ignored_before_a_run():  # the first messages may go before the reader matched
             push.publish(Float64MultiArray(data=[1.0, 0.0]))
