@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d
+from scipy.stats import chi2
 
 from compliant_demo.exceptions import InvalidInputError
 
@@ -179,7 +180,8 @@ def stiffness_from_variability(
     -------
     (n_samples, n_joints) array, N*m/rad
         ``clip(K_ref * (c * reference_std^2 / variance)^p, k_min, k_max)`` per joint, with
-        ``c = (nu - 2) / nu`` for nu > 2 degrees of freedom and 1 otherwise.
+        ``c = m(nu) / nu``, ``m(nu)`` the median of the chi-square distribution with nu
+        degrees of freedom (0.455 for nu = 1, ln 2 for nu = 2, 0.907 for nu = 7, towards 1).
 
     Notes
     -----
@@ -189,10 +191,23 @@ def stiffness_from_variability(
     after the inverse-variance weighting of Calinon, Sardellitti and Caldwell (IROS 2010) and
     the minimum-intervention principle of optimal feedback control (Todorov and Jordan, Nature
     Neuroscience 5(11), 1226-1235, 2002): an operator corrects deviations, so varies least,
-    where the task needs stiffness. ``c`` makes ``c / s^2`` an unbiased estimate of
-    ``1 / sigma^2`` for normal deviations, since ``nu s^2 / sigma^2`` is (approximately, for a
-    pooled variance) chi-square with nu degrees of freedom and ``E[nu / chi^2_nu] =
-    nu / (nu - 2)`` (common practice); nu = n - 1 for a per-sample variance.
+    where the task needs stiffness.
+
+    ``c`` makes the schedule median-unbiased: half of the schedules learned from independent
+    sets of demonstrations lie above the law's stiffness at the true spread, half below, for
+    any number of demonstrations and any ``p``. For normal deviations ``nu s^2 / sigma^2`` is
+    chi-square with nu degrees of freedom (nu = n - 1 for a per-sample variance: Casella and
+    Berger, Statistical Inference, 2nd ed., Theorem 5.3.1; approximately, with Satterthwaite's
+    nu, for a pooled one), so ``P(c / s^2 <= 1 / sigma^2) = P(chi^2_nu <= m(nu)) = 1/2``; the
+    schedule and its clipping are increasing functions of ``c / s^2``, and a median passes
+    through increasing functions (median-unbiased estimation: Brown, Annals of Mathematical
+    Statistics 18(4), 582-585, 1947, from memory). The same ``c / s^2`` is the posterior
+    median of the precision under the usual non-informative prior ``p(mu, sigma^2) ~
+    1 / sigma^2``, whose posterior of ``sigma^2`` is scaled-inverse-chi-square(nu, s^2)
+    (Gelman et al., Bayesian Data Analysis, 3rd ed., Section 3.2, from memory). The
+    mean-unbiased ``(nu - 2) / nu`` used before has no value at nu <= 2 and vanishes as nu
+    falls to 2 (three demonstrations put the whole schedule at ``k_min``); ``m(nu) / nu`` is
+    smooth and positive for every nu > 0.
     """
     var = np.asarray(variance, dtype=float)
     if var.ndim == 1:
@@ -238,7 +253,7 @@ def stiffness_from_variability(
         raise InvalidInputError(
             f"degrees_of_freedom must be positive and finite, got {degrees_of_freedom!r}"
         )
-    unbiased = np.where(dof > 2, (dof - 2) / dof, 1.0)
+    median_factor = chi2.median(dof) / dof
     with np.errstate(divide="ignore"):
-        ratio = unbiased * reference_std**2 / var
+        ratio = median_factor * reference_std**2 / var
     return np.clip(reference * ratio**exponent, low, high)

@@ -476,3 +476,31 @@ def test_variability_profile_is_stiff_where_the_simulated_teacher_is(seed):
     approach = np.median(k[int(0.05 * n):int(0.3 * n)], axis=0)
     retreat = np.median(k[int(0.8 * n):int(0.95 * n)], axis=0)
     assert np.all(press > 1.3 * approach) and np.all(press > 1.3 * retreat)
+
+
+@pytest.mark.parametrize("n_demos", [2, 3, 4, 8])
+def test_few_demonstrations_give_a_profile_inside_the_range(n_demos):
+    # Three demonstrations once put the whole profile at k_min (the mean-unbiased factor
+    # (nu - 2) / nu of the precision vanished as the pooled degrees of freedom fell towards 2);
+    # the chi-square median factor is positive for any number. Simulated teacher, seed 101:
+    # finite, inside [2, 200] N*m/rad, not pinned to a bound (median above 2.2 and a span of at
+    # least a factor 3 on each joint), and from 3 demonstrations on the press median above the
+    # median of the soft approach and retreat on both joints (held on 10 of 10 seeds, 101 to
+    # 1010, for 3, 4 and 8; with 2 demonstrations, one degree of freedom per sample, only on 8
+    # or 9 of 10, so not asserted).
+    from compliant_demo.teaching import cork_seat_scenario, teaching_series
+
+    scenario = cork_seat_scenario()
+    demos = [(r.t - r.t[0], r.position) for r in teaching_series(scenario, n_demos, 101)]
+    skill = learn_skill(demos, joints=list(scenario.joint_names), alignment="resample",
+                        stiffness_source="variability", stiffness_range=(2.0, 200.0),
+                        variability_reference=(0.02, 6.0), target_inertia=[0.08, 0.03])
+    k = skill.rollout(dt=0.002).stiffness
+    assert np.isfinite(k).all() and k.min() >= 2.0 and k.max() <= 200.0
+    assert np.all(np.median(k, axis=0) > 2.2) and np.all(k.max(axis=0) > 3 * k.min(axis=0))
+    if n_demos >= 3:
+        n = len(k)
+        press = np.median(k[int(0.5 * n):int(0.6 * n)], axis=0)
+        soft = np.median(np.vstack([k[int(0.05 * n):int(0.3 * n)], k[int(0.8 * n):int(0.95 * n)]]),
+                         axis=0)
+        assert np.all(press > soft)
