@@ -8,7 +8,13 @@ from scipy.ndimage import gaussian_filter1d
 from scipy.stats import chi2
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.variability import pooled_variance, stiffness_from_variability
+from compliant_demo.variability import (
+    VARIABILITY_BANDWIDTH,
+    VARIABILITY_BANDWIDTH_CANDIDATES,
+    pooled_variance,
+    select_bandwidth,
+    stiffness_from_variability,
+)
 
 
 def _correlated_deviations(n_reps, n_demos, n_samples, length, seed):
@@ -143,6 +149,47 @@ def test_pooled_schedule_is_about_median_unbiased_and_ordered(n_demos):
         below.append([np.mean(k[part] <= truth[part]) for part in (slice(60, 140),
                                                                     slice(260, 340))])
     np.testing.assert_allclose(np.mean(below, axis=0), 0.5, atol=0.08)
+
+
+def test_a_constant_spread_takes_the_widest_bandwidth():
+    # Independent deviations of one constant spread: a wider kernel adds no bias and only
+    # removes noise from the held-out likelihood, so the widest candidate wins (seeded, 8
+    # demonstrations, 1,000 samples, 2 joints).
+    rng = np.random.default_rng(5)
+    chosen = select_bandwidth(0.01 * rng.normal(size=(8, 1000, 2)))
+    assert chosen == max(VARIABILITY_BANDWIDTH_CANDIDATES)
+
+
+def test_a_spread_that_changes_every_fiftieth_of_the_phase_takes_the_narrowest():
+    # The spread alternates between 0.02 and 0.002 rad every 20 of 1,000 samples: any kernel
+    # wider than the narrowest smears a tenfold change of the spread, which the held-out
+    # likelihood punishes far more than the noise of the narrowest kernel (20 demonstrations).
+    rng = np.random.default_rng(6)
+    sigma = np.where((np.arange(1000) // 20) % 2 == 0, 0.02, 0.002)
+    chosen = select_bandwidth(sigma[None, :, None] * rng.normal(size=(20, 1000, 1)))
+    assert chosen == min(VARIABILITY_BANDWIDTH_CANDIDATES)
+
+
+def test_too_few_or_identical_demonstrations_keep_the_default_bandwidth():
+    rng = np.random.default_rng(7)
+    assert select_bandwidth(rng.normal(size=(2, 100, 1))) == VARIABILITY_BANDWIDTH
+    assert select_bandwidth(np.ones((5, 100, 2))) == VARIABILITY_BANDWIDTH
+    # Given candidates are the only choices.
+    assert select_bandwidth(rng.normal(size=(6, 500, 1)), (0.04,)) == 0.04
+
+
+def test_error_select_bandwidth_inputs():
+    with pytest.raises(InvalidInputError, match=r"2 demonstrations .* got shape \(1, 5, 2\)"):
+        select_bandwidth(np.zeros((1, 5, 2)))
+    bad = np.zeros((3, 5, 1))
+    bad[2, 4, 0] = np.nan
+    with pytest.raises(InvalidInputError, match=r"positions\[2, 4, 0\] = nan is not finite"):
+        select_bandwidth(bad)
+    with pytest.raises(InvalidInputError,
+                       match=r"candidates must be bandwidths in \(0, 1\], got \(\)"):
+        select_bandwidth(np.zeros((3, 5, 1)), ())
+    with pytest.raises(InvalidInputError, match=r"candidates .* got \(0.05, 0.0\)"):
+        select_bandwidth(np.zeros((3, 5, 1)), (0.05, 0.0))
 
 
 def test_error_pooled_variance_inputs():
