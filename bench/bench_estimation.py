@@ -15,14 +15,16 @@
 - variability: for each of 10 seeds, 8 cork_seat demonstrations of the default simulated
   teacher (variance between demonstrations inversely proportional to its stiffness), one skill
   learned from their variability (``stiffness_source="variability"``, anchored at the teacher's
-  own reference: 0.02 rad at 6 N*m/rad; variance pooled along the phase with the default
-  bandwidth) and one from the true stiffness (``"recorded"``, the same alignment, so both
-  profiles sit on the same phase), both with the learner's defaults otherwise. Spearman
-  correlation along the phase between the two profiles per joint: median, quartiles and
-  minimum over seeds and joints; main key with ``alignment="resample"``, also with DTW (which
-  explains much of the variation as timing, see
-  ``compliant_demo.alignment.align_demonstrations``) and with the per-sample variance
-  (``variability_bandwidth=0``, the former method). ``variability_pair_concordance``: share of
+  own reference: 0.02 rad at 6 N*m/rad; variance pooled along the phase with the learner's
+  default bandwidth, chosen per set by ``compliant_demo.variability.select_bandwidth``) and one
+  from the true stiffness (``"recorded"``, the same alignment, so both profiles sit on the
+  same phase), both with the learner's defaults otherwise. Spearman correlation along the
+  phase between the two profiles per joint: median, quartiles and minimum over seeds and
+  joints; main key with ``alignment="resample"``, also with DTW (which explains much of the
+  variation as timing, see ``compliant_demo.alignment.align_demonstrations``), with the fixed
+  bandwidth ``VARIABILITY_BANDWIDTH`` (``_fixed_bandwidth``, the former default) and with the
+  per-sample variance (``variability_bandwidth=0``); ``variability_bandwidth_median``: the
+  median chosen bandwidth (resample). ``variability_pair_concordance``: share of
   pairs of phases (200-point grid) whose true stiffness differs by at least a factor 2 that
   the learned profile orders the same way. ``variability_rank_correlation_ceiling_10pct``:
   Spearman correlation of the true profile with itself times a smooth seeded error of 10 %
@@ -30,7 +32,8 @@
   truth is flat over most of the phase. ``variability_truth_rank_correlation``: the true
   skill's profile against the teacher's stiffness resampled directly (the phase mapping of the
   ground truth). Levels: median over seeds of the median ratio of the law's stiffness on the
-  resampled pooled variance to the resampled true stiffness, in the press and in the soft
+  resampled pooled variance (bandwidth chosen by ``select_bandwidth``, as the learner does) to
+  the resampled true stiffness, in the press and in the soft
   approach (1 is right); baseline: the former min-max scaling of the precision over the range
   (2 to 200 N*m/rad) on the per-sample variance.
 - throughput: online estimator cost per sample, 2 joints in 10-sample chunks.
@@ -69,6 +72,7 @@ from compliant_demo.teaching import (  # noqa: E402
 from compliant_demo.variability import (  # noqa: E402
     VARIABILITY_BANDWIDTH,
     pooled_variance,
+    select_bandwidth,
     stiffness_from_variability,
 )
 
@@ -175,8 +179,10 @@ def _variability(seeds: list[int]) -> dict:
     scenario = cork_seat_scenario()
     joints = list(scenario.joint_names)
     inertia = [joint.inertia for joint in scenario.joints]
-    rho: dict[str, list[float]] = {"resample": [], "dtw": [], "per_sample": []}
-    extra: dict[str, list[float]] = {"pair": [], "ceiling": [], "truth": []}
+    rho: dict[str, list[float]] = {"resample": [], "dtw": [], "fixed_bandwidth": [],
+                                   "per_sample": []}
+    bandwidths = {"fixed_bandwidth": VARIABILITY_BANDWIDTH, "per_sample": 0.0}
+    extra: dict[str, list[float]] = {"pair": [], "ceiling": [], "truth": [], "bandwidth": []}
     levels: dict[str, list[float]] = {"press": [], "press_min_max": [], "soft": [],
                                       "soft_min_max": []}
     for seed in seeds:
@@ -186,7 +192,7 @@ def _variability(seeds: list[int]) -> dict:
                  for r in demos]
         for name in rho:
             alignment = "dtw" if name == "dtw" else "resample"
-            bandwidth = 0.0 if name == "per_sample" else VARIABILITY_BANDWIDTH
+            bandwidth = bandwidths.get(name)
             common = dict(joints=joints, stiffness_range=STIFFNESS_RANGE, alignment=alignment,
                           target_inertia=inertia)
             learned = learn_skill(plain, stiffness_source="variability",
@@ -197,6 +203,7 @@ def _variability(seeds: list[int]) -> dict:
             n = min(len(a), len(b))
             rho[name] += [float(stats.spearmanr(a[:n, j], b[:n, j])[0]) for j in range(2)]
             if name == "resample":
+                extra["bandwidth"].append(learned.provenance.alignment["variability_bandwidth"])
                 extra["pair"] += [_pair_concordance(a[:n, j], b[:n, j]) for j in range(2)]
                 extra["ceiling"] += [_ceiling(b[:n, j], seed + j) for j in range(2)]
                 direct = _resampled(demos, "hand_stiffness_truth", n).mean(axis=0)
@@ -205,7 +212,7 @@ def _variability(seeds: list[int]) -> dict:
         # Levels on the resampled set itself, before any profile fit.
         n_out = int(np.median([r.t.size for r in demos]))
         positions = _resampled(demos, "position", n_out)
-        pooled = pooled_variance(positions)
+        pooled = pooled_variance(positions, select_bandwidth(positions))
         k_true = _resampled(demos, "hand_stiffness_truth", n_out).mean(axis=0)
         laws = {
             "": stiffness_from_variability(
@@ -225,6 +232,8 @@ def _variability(seeds: list[int]) -> dict:
         "variability_rank_correlation_q75": float(np.quantile(main, 0.75)),
         "variability_rank_correlation_per_sample": float(np.median(rho["per_sample"])),
         "variability_rank_correlation_dtw": float(np.median(rho["dtw"])),
+        "variability_rank_correlation_fixed_bandwidth": float(np.median(rho["fixed_bandwidth"])),
+        "variability_bandwidth_median": float(np.median(extra["bandwidth"])),
         "variability_pair_concordance": float(np.median(extra["pair"])),
         "variability_pair_concordance_min": float(np.min(extra["pair"])),
         "variability_rank_correlation_ceiling_10pct": float(np.median(extra["ceiling"])),

@@ -39,8 +39,8 @@ from compliant_demo.primitives import (
 )
 from compliant_demo.store.records import SkillRecord
 from compliant_demo.variability import (
-    VARIABILITY_BANDWIDTH,
     pooled_variance,
+    select_bandwidth,
     stiffness_from_variability,
 )
 
@@ -278,7 +278,7 @@ def learn_skill(
     position_limits: ArrayLike | None = None,
     variance_floor: float | None = None,
     variability_reference: tuple[float, float] | None = None,
-    variability_bandwidth: float = VARIABILITY_BANDWIDTH,
+    variability_bandwidth: float | None = None,
     smoothing_window: int | None = None,
     name: str = "skill",
 ) -> Skill:
@@ -322,7 +322,10 @@ def learn_skill(
         stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
     variability_bandwidth : fraction of the phase, std of the kernel that pools the variance of
         the aligned demonstrations along the phase (:func:`~compliant_demo.variability.
-        pooled_variance`); 0 takes each sample's own variance
+        pooled_variance`); 0 takes each sample's own variance. Default: chosen from the
+        aligned demonstrations by :func:`~compliant_demo.variability.select_bandwidth`
+        (leave-one-demonstration-out likelihood) and recorded in the provenance's alignment
+        summary as ``variability_bandwidth``
     smoothing_window : odd sample count of the Savitzky-Golay derivative filter of
         :func:`~compliant_demo.primitives.fit_skill`. Default: about 10 % of the samples after DTW
         alignment (whose warped time has plateaus and steps), none otherwise
@@ -384,6 +387,9 @@ def learn_skill(
         anchor: dict[str, Any] = {} if variability_reference is None else {
             "reference_std": variability_reference[0],
             "reference_stiffness": variability_reference[1]}
+        if variability_bandwidth is None:
+            variability_bandwidth = select_bandwidth(positions)
+        summary["variability_bandwidth"] = variability_bandwidth
         pooled = pooled_variance(positions, variability_bandwidth)
         law: dict[str, Any] = dict(n_demos=len(normalised), variance_floor=variance_floor,
                                    degrees_of_freedom=pooled.degrees_of_freedom)

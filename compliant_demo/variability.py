@@ -2,8 +2,9 @@
 
 One law, from per-sample variance across demonstrations to a stiffness schedule, with levels
 anchored at a stated reference spread and stiffness rather than stretched over the range, and
-the variance it takes pooled over a stated neighbourhood of the phase, with the degrees of
-freedom that pooling buys.
+the variance it takes pooled over a neighbourhood of the phase, with the degrees of freedom
+that pooling buys; the width of that neighbourhood is given or chosen from the demonstrations
+themselves by leave-one-demonstration-out likelihood.
 """
 
 from __future__ import annotations
@@ -13,14 +14,17 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d
+from scipy.stats import chi2
 
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
     "VARIABILITY_BANDWIDTH",
+    "VARIABILITY_BANDWIDTH_CANDIDATES",
     "VARIABILITY_REFERENCE_STD",
     "PooledVariance",
     "pooled_variance",
+    "select_bandwidth",
     "stiffness_from_variability",
 ]
 
@@ -31,6 +35,19 @@ Our own choice: a third of the shortest stiffness change worth resolving (about 
 movement), so a change keeps most of its height while each level pools over a few times more
 independent deviation than one sample gives.
 """
+
+VARIABILITY_BANDWIDTH_CANDIDATES = (0.01, 0.02, 0.03, 0.05, 0.08)
+"""Bandwidths :func:`select_bandwidth` chooses from, fraction of the phase (about x1.5 apart).
+
+Our own choice: from a tenth of the shortest stiffness change worth resolving (about a tenth of
+a movement) to a little less than that change, so no choice merges such a change into its
+surroundings. With wider candidates (0.12, 0.18) the criterion took them for 3 or 4
+demonstrations of the simulated teacher and flattened the press into the approach.
+"""
+
+# Most phase samples the bandwidth selection looks at: the deviations are smooth on this scale
+# and the criterion only compares bandwidths of at least 0.01 of the phase.
+_SELECTION_SAMPLES = 1000
 
 VARIABILITY_REFERENCE_STD = 0.02
 """Default spread, rad, at which :func:`stiffness_from_variability` gives its reference stiffness.
@@ -90,15 +107,7 @@ def pooled_variance(positions: object, bandwidth: float = VARIABILITY_BANDWIDTH)
     variance function along the index is common practice (e.g. Fan and Yao, Biometrika
     85(3), 645-660, 1998, from memory).
     """
-    x = np.asarray(positions, dtype=float)
-    if x.ndim != 3 or x.shape[0] < 2 or x.shape[1] < 2:
-        raise InvalidInputError(
-            "positions must be an (n_demos, n_samples, n_joints) array with at least 2 "
-            f"demonstrations and 2 samples, got shape {x.shape}"
-        )
-    if not np.isfinite(x).all():
-        index = tuple(int(i) for i in np.argwhere(~np.isfinite(x))[0])
-        raise InvalidInputError(f"positions{list(index)} = {x[index]} is not finite")
+    x = _aligned_positions(positions)
     if not (math.isfinite(bandwidth) and 0 <= bandwidth <= 1):
         raise InvalidInputError(f"bandwidth must lie in [0, 1], got {bandwidth!r}")
     n_demos, n_samples, n_joints = x.shape
@@ -114,14 +123,94 @@ def pooled_variance(positions: object, bandwidth: float = VARIABILITY_BANDWIDTH)
     length = first / (n_samples - 1)
     if sigma < 0.5:
         return PooledVariance(variance, np.full(n_joints, base_dof), length)
-    pooled = gaussian_filter1d(variance, sigma, axis=0, mode="constant", cval=0.0)
-    pooled /= gaussian_filter1d(np.ones(n_samples), sigma, mode="constant", cval=0.0)[:, None]
+    pooled = _kernel_mean(variance, sigma)
     lags = np.arange(-(n_samples - 1), n_samples)
     kernel = np.exp(-0.25 * (lags / sigma) ** 2)
     kernel /= kernel.sum()
     rho_sq = np.concatenate([rho[:0:-1], rho]) ** 2
     dof = base_dof / np.maximum(kernel @ rho_sq, 1.0 / n_samples)
     return PooledVariance(pooled, np.maximum(dof, base_dof), length)
+
+
+def _aligned_positions(positions: object) -> np.ndarray:
+    """``positions`` as an (n_demos >= 2, n_samples >= 2, n_joints) float array, all finite."""
+    x = np.asarray(positions, dtype=float)
+    if x.ndim != 3 or x.shape[0] < 2 or x.shape[1] < 2:
+        raise InvalidInputError(
+            "positions must be an (n_demos, n_samples, n_joints) array with at least 2 "
+            f"demonstrations and 2 samples, got shape {x.shape}"
+        )
+    if not np.isfinite(x).all():
+        index = tuple(int(i) for i in np.argwhere(~np.isfinite(x))[0])
+        raise InvalidInputError(f"positions{list(index)} = {x[index]} is not finite")
+    return x
+
+
+def _kernel_mean(values: np.ndarray, sigma: float) -> np.ndarray:
+    """Nadaraya-Watson mean of (n_samples, ...) values along axis 0, Gaussian std sigma samples."""
+    if sigma < 0.5:
+        return values
+    n_samples = values.shape[0]
+    pooled = gaussian_filter1d(values, sigma, axis=0, mode="constant", cval=0.0)
+    weight = gaussian_filter1d(np.ones(n_samples), sigma, mode="constant", cval=0.0)
+    return pooled / weight.reshape((n_samples,) + (1,) * (values.ndim - 1))
+
+
+def select_bandwidth(
+    positions: object, candidates: tuple[float, ...] = VARIABILITY_BANDWIDTH_CANDIDATES
+) -> float:
+    """Pooling bandwidth that best predicts each demonstration from the others.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+    candidates : tuple of float, fraction of the phase
+        Bandwidths to choose from, each in (0, 1] (default
+        :data:`VARIABILITY_BANDWIDTH_CANDIDATES`).
+
+    Returns
+    -------
+    float, fraction of the phase
+        The candidate with the highest leave-one-demonstration-out log-likelihood;
+        :data:`VARIABILITY_BANDWIDTH` for 2 demonstrations (leaving one out leaves no spread)
+        or demonstrations that do not differ at all.
+
+    Notes
+    -----
+    Likelihood cross-validation (Stone, JRSS B 36(2), 111-147, 1974; Silverman, Density
+    Estimation for Statistics and Data Analysis, 1986, Section 3.4.4; both from memory): for
+    each demonstration ``i`` and bandwidth ``h``, the others give the mean ``m_-i`` and the
+    pooled variance ``V_-i(h)``; demonstration ``i``'s deviation ``x_i - m_-i`` has variance
+    ``sigma^2 (1 + 1 / (n - 1))`` and is scored by its normal log-density under
+    ``V_-i(h) (1 + 1 / (n - 1))``, averaged over samples and joints and summed over ``i``.
+    A narrow kernel leaves ``V`` noisy (a log-density punishes a variance that is too small
+    more than one too large), a wide one blurs where the spread changes; the criterion
+    weighs both on the demonstrations at hand. One bandwidth serves all joints (their
+    criteria are summed). The deviations are scored on at most 1,000 evenly spaced phase
+    samples.
+    """
+    x = _aligned_positions(positions)
+    if len(candidates) == 0 or not all(math.isfinite(h) and 0 < h <= 1 for h in candidates):
+        raise InvalidInputError(f"candidates must be bandwidths in (0, 1], got {candidates!r}")
+    n_demos = x.shape[0]
+    step = max(1, -(-x.shape[1] // _SELECTION_SAMPLES))
+    x = x[:, ::step]
+    total = x.var(axis=0).mean()
+    if n_demos < 3 or not total > 0:
+        return VARIABILITY_BANDWIDTH
+    inflation = 1.0 + 1.0 / (n_demos - 1)
+    scores = np.zeros(len(candidates))
+    for i in range(n_demos):
+        others = np.delete(x, i, axis=0)
+        deviation_sq = (x[i] - others.mean(axis=0)) ** 2
+        variance = others.var(axis=0, ddof=1)
+        for k, bandwidth in enumerate(candidates):
+            pooled = _kernel_mean(variance, bandwidth * (x.shape[1] - 1))
+            # A floor far below any spread that matters keeps identical stretches finite.
+            v = inflation * np.maximum(pooled, 1e-12 * total)
+            scores[k] += float(np.mean(-0.5 * np.log(v) - 0.5 * deviation_sq / v))
+    return float(candidates[int(np.argmax(scores))])
 
 
 def _phase_correlation(scaled: np.ndarray) -> np.ndarray:
@@ -179,7 +268,8 @@ def stiffness_from_variability(
     -------
     (n_samples, n_joints) array, N*m/rad
         ``clip(K_ref * (c * reference_std^2 / variance)^p, k_min, k_max)`` per joint, with
-        ``c = (nu - 2) / nu`` for nu > 2 degrees of freedom and 1 otherwise.
+        ``c = m(nu) / nu``, ``m(nu)`` the median of the chi-square distribution with nu
+        degrees of freedom (0.455 for nu = 1, ln 2 for nu = 2, 0.907 for nu = 7, towards 1).
 
     Notes
     -----
@@ -189,10 +279,23 @@ def stiffness_from_variability(
     after the inverse-variance weighting of Calinon, Sardellitti and Caldwell (IROS 2010) and
     the minimum-intervention principle of optimal feedback control (Todorov and Jordan, Nature
     Neuroscience 5(11), 1226-1235, 2002): an operator corrects deviations, so varies least,
-    where the task needs stiffness. ``c`` makes ``c / s^2`` an unbiased estimate of
-    ``1 / sigma^2`` for normal deviations, since ``nu s^2 / sigma^2`` is (approximately, for a
-    pooled variance) chi-square with nu degrees of freedom and ``E[nu / chi^2_nu] =
-    nu / (nu - 2)`` (common practice); nu = n - 1 for a per-sample variance.
+    where the task needs stiffness.
+
+    ``c`` makes the schedule median-unbiased: half of the schedules learned from independent
+    sets of demonstrations lie above the law's stiffness at the true spread, half below, for
+    any number of demonstrations and any ``p``. For normal deviations ``nu s^2 / sigma^2`` is
+    chi-square with nu degrees of freedom (nu = n - 1 for a per-sample variance: Casella and
+    Berger, Statistical Inference, 2nd ed., Theorem 5.3.1; approximately, with Satterthwaite's
+    nu, for a pooled one), so ``P(c / s^2 <= 1 / sigma^2) = P(chi^2_nu <= m(nu)) = 1/2``; the
+    schedule and its clipping are increasing functions of ``c / s^2``, and a median passes
+    through increasing functions (median-unbiased estimation: Brown, Annals of Mathematical
+    Statistics 18(4), 582-585, 1947, from memory). The same ``c / s^2`` is the posterior
+    median of the precision under the usual non-informative prior ``p(mu, sigma^2) ~
+    1 / sigma^2``, whose posterior of ``sigma^2`` is scaled-inverse-chi-square(nu, s^2)
+    (Gelman et al., Bayesian Data Analysis, 3rd ed., Section 3.2, from memory). The
+    mean-unbiased ``(nu - 2) / nu`` used before has no value at nu <= 2 and vanishes as nu
+    falls to 2 (three demonstrations put the whole schedule at ``k_min``); ``m(nu) / nu`` is
+    smooth and positive for every nu > 0.
     """
     var = np.asarray(variance, dtype=float)
     if var.ndim == 1:
@@ -238,7 +341,7 @@ def stiffness_from_variability(
         raise InvalidInputError(
             f"degrees_of_freedom must be positive and finite, got {degrees_of_freedom!r}"
         )
-    unbiased = np.where(dof > 2, (dof - 2) / dof, 1.0)
+    median_factor = chi2.median(dof) / dof
     with np.errstate(divide="ignore"):
-        ratio = unbiased * reference_std**2 / var
+        ratio = median_factor * reference_std**2 / var
     return np.clip(reference * ratio**exponent, low, high)

@@ -5,9 +5,16 @@ import math
 import numpy as np
 import pytest
 from scipy.ndimage import gaussian_filter1d
+from scipy.stats import chi2
 
 from compliant_demo.exceptions import InvalidInputError
-from compliant_demo.variability import pooled_variance, stiffness_from_variability
+from compliant_demo.variability import (
+    VARIABILITY_BANDWIDTH,
+    VARIABILITY_BANDWIDTH_CANDIDATES,
+    pooled_variance,
+    select_bandwidth,
+    stiffness_from_variability,
+)
 
 
 def _correlated_deviations(n_reps, n_demos, n_samples, length, seed):
@@ -74,17 +81,115 @@ def test_pooling_leaves_a_step_of_the_spread_in_place():
     assert pooled[700] == pytest.approx(0.005**2, rel=0.3)
 
 
-def test_degrees_of_freedom_set_the_bias_correction():
-    # c = (nu - 2) / nu: nu = 10 gives 0.8 times the uncorrected ratio (K_ref = k_min = 1 at
-    # 0.02 rad, variance 1e-4: 4 uncorrected); nu <= 2 leaves it uncorrected.
-    variance = np.full((3, 2), 1e-4)
-    k = stiffness_from_variability(variance, 1.0, 400.0, n_demos=8,
-                                   degrees_of_freedom=np.array([10.0, 2.0]))
-    np.testing.assert_allclose(k[0], [3.2, 4.0])
-    # The default is n_demos - 1 (per-sample variance): 8 demonstrations -> 5 / 7.
-    np.testing.assert_allclose(
-        stiffness_from_variability(variance, 1.0, 400.0, n_demos=8)[0], 4.0 * 5 / 7
-    )
+def test_degrees_of_freedom_set_the_median_factor():
+    # c = m(nu) / nu with m the chi-square median. Closed forms: chi-square with 2 degrees of
+    # freedom is exponential with mean 2, so m(2) = 2 ln 2 and c = ln 2 (exact to 1e-12); for
+    # large nu the Wilson-Hilferty approximation m(nu) = nu (1 - 2 / (9 nu))^3 (Wilson and
+    # Hilferty, PNAS 17(12), 684-688, 1931), within 1e-4 at nu = 50. The variance equals the
+    # reference spread squared and K_ref = 1, so the schedule is c itself (k_min far below).
+    variance = np.full((3, 2), 0.02**2)
+    k = stiffness_from_variability(variance, 1e-3, 10.0, n_demos=8, reference_stiffness=1.0,
+                                   degrees_of_freedom=np.array([2.0, 50.0]))
+    assert k[0, 0] == pytest.approx(math.log(2.0), abs=1e-12)
+    assert k[0, 1] == pytest.approx((1 - 2 / 450) ** 3, abs=1e-4)
+    # Smooth through nu = 2, where the former (nu - 2) / nu fell to zero: three demonstrations
+    # whose pooled degrees of freedom came out just above 2 got k_min everywhere.
+    near = stiffness_from_variability(variance, 1e-3, 10.0, n_demos=3, reference_stiffness=1.0,
+                                      degrees_of_freedom=2.0 + 1e-12)
+    np.testing.assert_allclose(near, math.log(2.0), rtol=1e-9)
+    # The default is n_demos - 1 (per-sample variance): 2 demonstrations -> m(1) = 0.4549...
+    # (scipy.stats.chi2 as the reference library; 0.455 from tables of the chi-square median).
+    two = stiffness_from_variability(variance, 1e-3, 10.0, n_demos=2, reference_stiffness=1.0)
+    np.testing.assert_allclose(two, chi2.median(1.0), rtol=1e-12)
+    assert two[0, 0] == pytest.approx(0.455, abs=5e-4)
+
+
+@pytest.mark.parametrize("n_demos", [2, 3, 4, 8])
+def test_the_schedule_is_median_unbiased_for_normal_deviations(n_demos):
+    # Per-sample variance of n normal draws with known sigma = 0.01 rad: the law's stiffness at
+    # the true spread is K = 6 * (0.02 / 0.01)^2 = 24 N*m/rad. nu s^2 / sigma^2 is chi-square
+    # with nu = n - 1 (Casella and Berger, Statistical Inference, 2nd ed., Theorem 5.3.1, from
+    # memory), so exactly half of the schedules lie at or below 24, for exponent 1 and 0.5
+    # alike (a median passes through increasing maps); 40,000 seeded sets, standard error of
+    # the share 0.0025, tolerance 0.01. The mean-unbiased factor (nu - 2) / nu it replaces puts
+    # P(chi^2_3 >= 1) = 0.80 of them below at n = 4 and cannot be formed at n <= 3.
+    rng = np.random.default_rng(20 + n_demos)
+    variance = (0.01 * rng.normal(size=(n_demos, 40_000, 1))).var(axis=0, ddof=1)
+    for exponent, truth in ((1.0, 24.0), (0.5, 12.0)):
+        k = stiffness_from_variability(variance, 1e-6, 1e9, n_demos=n_demos,
+                                       reference_stiffness=6.0, exponent=exponent)
+        assert np.isfinite(k).all()
+        assert np.mean(k <= truth) == pytest.approx(0.5, abs=0.01)
+
+
+@pytest.mark.parametrize("n_demos", [2, 3, 4, 8])
+def test_pooled_schedule_is_about_median_unbiased_and_ordered(n_demos):
+    # Independent normal deviations whose spread steps from 0.02 rad (K = 6 N*m/rad at the
+    # anchor 0.02 rad / 6) to 0.0075 rad (K = 6 * (0.02 / 0.0075)^2 = 42.7) over the middle
+    # third, 600 samples, 200 seeded repetitions, pooled with the default kernel (n - 1 times
+    # 2 sqrt(pi) 0.03 * 599 = 64 degrees of freedom, Satterthwaite, so the chi-square median is
+    # an approximation): three bandwidths away from the steps the share of schedules at or
+    # below the truth is 1/2 within 0.08, every schedule is finite and inside the range
+    # [2, 200], and each repetition's median over the stiff third exceeds its medians over
+    # both soft thirds.
+    rng = np.random.default_rng(40 + n_demos)
+    phase = np.arange(600)
+    sigma = np.where((phase >= 200) & (phase < 400), 0.0075, 0.02)
+    truth = 6.0 * (0.02 / sigma) ** 2
+    below = []
+    for _ in range(200):
+        positions = sigma[None, :, None] * rng.normal(size=(n_demos, 600, 1))
+        pooled = pooled_variance(positions)
+        k = stiffness_from_variability(pooled.variance, 2.0, 200.0, n_demos=n_demos,
+                                       reference_stiffness=6.0,
+                                       degrees_of_freedom=pooled.degrees_of_freedom)[:, 0]
+        assert np.isfinite(k).all() and k.min() >= 2.0 and k.max() <= 200.0
+        stiff = np.median(k[200:400])
+        assert stiff > np.median(k[:200]) and stiff > np.median(k[400:])
+        below.append([np.mean(k[part] <= truth[part]) for part in (slice(60, 140),
+                                                                    slice(260, 340))])
+    np.testing.assert_allclose(np.mean(below, axis=0), 0.5, atol=0.08)
+
+
+def test_a_constant_spread_takes_the_widest_bandwidth():
+    # Independent deviations of one constant spread: a wider kernel adds no bias and only
+    # removes noise from the held-out likelihood, so the widest candidate wins (seeded, 8
+    # demonstrations, 1,000 samples, 2 joints).
+    rng = np.random.default_rng(5)
+    chosen = select_bandwidth(0.01 * rng.normal(size=(8, 1000, 2)))
+    assert chosen == max(VARIABILITY_BANDWIDTH_CANDIDATES)
+
+
+def test_a_spread_that_changes_every_fiftieth_of_the_phase_takes_the_narrowest():
+    # The spread alternates between 0.02 and 0.002 rad every 20 of 1,000 samples: any kernel
+    # wider than the narrowest smears a tenfold change of the spread, which the held-out
+    # likelihood punishes far more than the noise of the narrowest kernel (20 demonstrations).
+    rng = np.random.default_rng(6)
+    sigma = np.where((np.arange(1000) // 20) % 2 == 0, 0.02, 0.002)
+    chosen = select_bandwidth(sigma[None, :, None] * rng.normal(size=(20, 1000, 1)))
+    assert chosen == min(VARIABILITY_BANDWIDTH_CANDIDATES)
+
+
+def test_too_few_or_identical_demonstrations_keep_the_default_bandwidth():
+    rng = np.random.default_rng(7)
+    assert select_bandwidth(rng.normal(size=(2, 100, 1))) == VARIABILITY_BANDWIDTH
+    assert select_bandwidth(np.ones((5, 100, 2))) == VARIABILITY_BANDWIDTH
+    # Given candidates are the only choices.
+    assert select_bandwidth(rng.normal(size=(6, 500, 1)), (0.04,)) == 0.04
+
+
+def test_error_select_bandwidth_inputs():
+    with pytest.raises(InvalidInputError, match=r"2 demonstrations .* got shape \(1, 5, 2\)"):
+        select_bandwidth(np.zeros((1, 5, 2)))
+    bad = np.zeros((3, 5, 1))
+    bad[2, 4, 0] = np.nan
+    with pytest.raises(InvalidInputError, match=r"positions\[2, 4, 0\] = nan is not finite"):
+        select_bandwidth(bad)
+    with pytest.raises(InvalidInputError,
+                       match=r"candidates must be bandwidths in \(0, 1\], got \(\)"):
+        select_bandwidth(np.zeros((3, 5, 1)), ())
+    with pytest.raises(InvalidInputError, match=r"candidates .* got \(0.05, 0.0\)"):
+        select_bandwidth(np.zeros((3, 5, 1)), (0.05, 0.0))
 
 
 def test_error_pooled_variance_inputs():
