@@ -66,7 +66,7 @@ class StoreSession:
                     self.conn, writable=not self.read_only, label=self.label
                 )
         except BaseException:
-            self.conn.close()
+            _sql.disconnect(self.conn)
             raise
 
     @property
@@ -84,7 +84,7 @@ class StoreSession:
         """Close the connection (idempotent)."""
         with self.lock:
             if self.conn is not None:
-                self.conn.close()
+                _sql.disconnect(self.conn)
                 self.conn = None
 
     @contextmanager

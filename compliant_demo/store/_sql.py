@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import os
 import sqlite3
+import threading
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -26,6 +27,7 @@ __all__ = [
     "FILE_MODE",
     "PAGE_SIZE",
     "connect",
+    "disconnect",
     "folder_writable",
     "translated",
     "damaged_text",
@@ -36,6 +38,30 @@ FILE_MODE = 0o640
 # loads than the 4 KiB default); metadata rows are small either way.
 PAGE_SIZE = 65536
 _SQLITE_MAGIC = b"SQLite format 3\x00"
+
+# Store files this process holds SQLite connections to, by (device, inode), and the connections.
+# SQLite's locks are POSIX advisory locks, which belong to the process: closing *any* descriptor of
+# the file drops every lock the process holds on it (SQLite, "How To Corrupt An SQLite Database
+# File", section 2.2, from memory). Our own header check opens and closes the file, so it runs
+# only while no connection of this process holds the file. Otherwise a writer loses the shared
+# lock that marks it as a user of the WAL, another process closing its connection believes it
+# is the last, checkpoints and deletes the WAL, and the writer goes on committing into the
+# deleted file: new readers miss every later commit and the next checkpoint corrupts the store.
+_OPEN_FILES: dict[tuple[int, int], int] = {}
+_CONNECTION_FILES: dict[sqlite3.Connection, tuple[int, int]] = {}
+_OPEN_FILES_LOCK = threading.Lock()
+
+
+def _forget_open_files() -> None:
+    """In a forked child: it holds none of its parent's locks, and the lock may have been taken
+    by a parent thread that does not exist here."""
+    global _OPEN_FILES_LOCK
+    _OPEN_FILES.clear()
+    _CONNECTION_FILES.clear()
+    _OPEN_FILES_LOCK = threading.Lock()
+
+
+os.register_at_fork(after_in_child=_forget_open_files)
 
 
 @contextmanager
@@ -127,34 +153,59 @@ def connect(
             if read_only or not create:
                 raise NotFoundError(f"store file {str(resolved)!r} does not exist")
             _create_file(resolved)
-        _check_file(resolved)
+        conn = _connect_file(resolved, read_only, busy_timeout_s)
+    try:
+        with translated(str(path)):
+            _configure(conn, writable=not read_only, durable=durable, busy_timeout_s=busy_timeout_s)
+    except BaseException:
+        disconnect(conn)
+        raise
+    return conn, resolved
+
+
+def _connect_file(path: Path, read_only: bool, busy_timeout_s: float) -> sqlite3.Connection:
+    """Check the file (unless this process has it open already) and connect to it."""
+    stat = path.stat()
+    key = (stat.st_dev, stat.st_ino)
+    with _OPEN_FILES_LOCK:
+        if not _OPEN_FILES.get(key):
+            _check_file(path)
         mode = "ro" if read_only else "rw"
-        if not read_only and not os.access(resolved, os.W_OK):
+        if not read_only and not os.access(path, os.W_OK):
             raise StoreReadOnlyError(
-                f"store {str(resolved)!r} is read-only (file or file system): open it read-only"
+                f"store {str(path)!r} is read-only (file or file system): open it read-only"
             )
-        if not read_only and not folder_writable(resolved):
+        if not read_only and not folder_writable(path):
             raise StoreReadOnlyError(
-                f"store {str(resolved)!r}: its folder is not writable and SQLite keeps the "
+                f"store {str(path)!r}: its folder is not writable and SQLite keeps the "
                 "store's -wal and -shm files beside it: open it read-only"
             )
-        if read_only and _needs_immutable(resolved):
+        if read_only and _needs_immutable(path):
             mode = "ro&immutable=1"
-        with translated(str(resolved)):
+        with translated(str(path)):
             conn = sqlite3.connect(
-                f"file:{quote(str(resolved.absolute()))}?mode={mode}",
+                f"file:{quote(str(path.absolute()))}?mode={mode}",
                 uri=True,
                 isolation_level=None,
                 timeout=busy_timeout_s,
                 check_same_thread=False,
             )
-    try:
-        with translated(str(path)):
-            _configure(conn, writable=not read_only, durable=durable, busy_timeout_s=busy_timeout_s)
-    except BaseException:
-        conn.close()
-        raise
-    return conn, resolved
+        _OPEN_FILES[key] = _OPEN_FILES.get(key, 0) + 1
+        _CONNECTION_FILES[conn] = key
+    return conn
+
+
+def disconnect(conn: sqlite3.Connection) -> None:
+    """Close a connection made by :func:`connect` (idempotent)."""
+    conn.close()  # first: a file counts as held by this process until its last lock is gone
+    with _OPEN_FILES_LOCK:
+        key = _CONNECTION_FILES.pop(conn, None)
+        if key is not None:
+            remaining = _OPEN_FILES[key] - 1
+            if remaining:
+                _OPEN_FILES[key] = remaining
+            else:
+                del _OPEN_FILES[key]
 
 
 def folder_writable(path: Path) -> bool:
