@@ -12,6 +12,7 @@ from pathlib import Path
 
 import pytest
 import yaml
+from campaign_support import store_with_demos_and_skill
 from cli_support import one_line_error, run_cli
 from pydantic import BaseModel, ConfigDict, ValidationError
 from store_support import REPO, add_demo
@@ -100,6 +101,16 @@ def test_messages_name_options_not_python_parameters(tmp_path, capsys):
     assert "force=True" not in err
     status, _, err = run_cli(capsys, "list", "--store", path, "--order-by", "nothing")
     one_line_error(err, "list", r"^compliant-demo list: error: --order-by column 'nothing'")
+
+
+def test_an_unreachable_scheduler_is_named_by_its_option(tmp_path, capsys):
+    # the README's campaign on a Dask cluster, with an address where nothing listens (loopback)
+    store_with_demos_and_skill(tmp_path / "store.sqlite")
+    status, _, err = run_cli(capsys, "campaign", "--store", tmp_path / "store.sqlite",
+                             "--skill", "cork_seat", "--scheduler", "tcp://127.0.0.1:1")
+    assert status == 2
+    one_line_error(err, "campaign", r"error: --scheduler = 'tcp://127\.0\.0\.1:1': cannot "
+                                    r"connect to the Dask scheduler")
 
 
 def test_the_parameter_mapping_follows_each_commands_options():
