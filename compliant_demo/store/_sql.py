@@ -8,6 +8,7 @@ import os
 import sqlite3
 import threading
 import time
+import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -182,6 +183,7 @@ def _connect_file(path: Path, read_only: bool, busy_timeout_s: float) -> sqlite3
             )
         if read_only and _needs_immutable(path):
             mode = "ro&immutable=1"
+            _warn_unread_log(path)
         with translated(str(path)):
             conn = sqlite3.connect(
                 f"file:{quote(str(path.absolute()))}?mode={mode}",
@@ -220,6 +222,21 @@ def _needs_immutable(path: Path) -> bool:
     """A WAL store in a folder nobody may write to (a read-only file system): SQLite cannot make
     its shared-memory file there, so the file is opened as immutable (no locks, no WAL)."""
     return not os.access(path.parent, os.W_OK) and not Path(f"{path}-shm").exists()
+
+
+def _warn_unread_log(path: Path) -> None:
+    """An immutable open reads the main file alone (SQLite's ``immutable`` URI parameter): commits
+    still in a -wal file are not seen, and no reader could see them without a -shm file."""
+    log = Path(f"{path}-wal")
+    size = log.stat().st_size if log.exists() else 0
+    if size:
+        warnings.warn(
+            f"store {str(path)!r} opened without its write-ahead log: its folder is read-only and "
+            f"holds no -shm file, so the {size} bytes of {log.name} are not read and the newest "
+            "writes may be missing; copy the store with its -wal to a writable folder to read "
+            "them",
+            stacklevel=6,
+        )
 
 
 def _create_file(path: Path) -> None:
