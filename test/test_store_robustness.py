@@ -84,6 +84,19 @@ def test_a_read_only_folder_without_shm_file_warns_of_an_unread_wal(tmp_path):
             assert [info.n_samples for info in store.find_demonstrations()] == [200]
 
 
+def test_a_wal_file_deleted_while_the_store_opens_is_no_error(tmp_path, monkeypatch):
+    # the last connection of another process deletes the -wal at any moment: here just after
+    # the opener saw it exist (a reader polling the recorder's store once died of it)
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        demo_id = add_demo(store)
+    real_exists = Path.exists
+    monkeypatch.setattr(Path, "exists",
+                        lambda self: self.name.endswith("-wal") or real_exists(self))
+    with DemoStore(path, read_only=True) as store:
+        assert store.get_info(demo_id).status == "complete"
+
+
 DAMAGED_JSON = [
     ("demonstrations", "tags"),
     ("demonstrations", "flags"),

@@ -114,8 +114,7 @@ def _check_file(path: Path) -> None:
 def _check_length(path: Path) -> None:
     """Refuse a file shorter than its header says (a cut copy); SQLite would read zeros."""
     size = path.stat().st_size
-    wal = Path(f"{path}-wal")
-    if size == 0 or (wal.exists() and wal.stat().st_size > 0):
+    if size == 0 or _log_size(path) > 0:
         return  # pages still in the write-ahead log may lie beyond the end of the main file
     with path.open("rb") as handle:
         header = handle.read(100)
@@ -224,17 +223,25 @@ def _needs_immutable(path: Path) -> bool:
     return not os.access(path.parent, os.W_OK) and not Path(f"{path}-shm").exists()
 
 
+def _log_size(path: Path) -> int:
+    """Bytes in the store's -wal file, 0 without one (the last connection to close deletes it,
+    at any moment, so it is looked at once)."""
+    try:
+        return Path(f"{path}-wal").stat().st_size
+    except FileNotFoundError:
+        return 0
+
+
 def _warn_unread_log(path: Path) -> None:
     """An immutable open reads the main file alone (SQLite's ``immutable`` URI parameter): commits
     still in a -wal file are not seen, and no reader could see them without a -shm file."""
-    log = Path(f"{path}-wal")
-    size = log.stat().st_size if log.exists() else 0
+    size = _log_size(path)
     if size:
         warnings.warn(
-            f"store {str(path)!r} opened without its write-ahead log: its folder is read-only and "
-            f"holds no -shm file, so the {size} bytes of {log.name} are not read and the newest "
-            "writes may be missing; copy the store with its -wal to a writable folder to read "
-            "them",
+            f"store {str(path)!r} opened without its write-ahead log: its folder is read-only "
+            f"and holds no -shm file, so the {size} bytes of {path.name}-wal are not read and the "
+            "newest writes may be missing; copy the store with its -wal to a writable folder to "
+            "read them",
             stacklevel=6,
         )
 
