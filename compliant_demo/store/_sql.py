@@ -26,6 +26,7 @@ from compliant_demo.exceptions import (
 
 __all__ = [
     "FILE_MODE",
+    "FileKey",
     "PAGE_SIZE",
     "connect",
     "disconnect",
@@ -48,8 +49,9 @@ _SQLITE_MAGIC = b"SQLite format 3\x00"
 # lock that marks it as a user of the WAL, another process closing its connection believes it
 # is the last, checkpoints and deletes the WAL, and the writer goes on committing into the
 # deleted file: new readers miss every later commit and the next checkpoint corrupts the store.
-_OPEN_FILES: dict[tuple[int, int], int] = {}
-_CONNECTION_FILES: dict[sqlite3.Connection, tuple[int, int]] = {}
+#: A store file as the kernel knows it: (device, inode).
+FileKey = tuple[int, int]
+_OPEN_FILES: dict[FileKey, int] = {}
 _OPEN_FILES_LOCK = threading.Lock()
 
 
@@ -58,7 +60,6 @@ def _forget_open_files() -> None:
     by a parent thread that does not exist here."""
     global _OPEN_FILES_LOCK
     _OPEN_FILES.clear()
-    _CONNECTION_FILES.clear()
     _OPEN_FILES_LOCK = threading.Lock()
 
 
@@ -138,32 +139,35 @@ def connect(
     busy_timeout_s: float,
     create: bool,
     durable: bool = True,
-) -> tuple[sqlite3.Connection, Path | None]:
-    """Open (or create, mode 0o640) a store file; returns the connection and the resolved path."""
+) -> tuple[sqlite3.Connection, Path | None, FileKey | None]:
+    """Open (or create, mode 0o640) a store file; returns the connection, the resolved path and
+    the file's key for :func:`disconnect` (None in memory)."""
     if not busy_timeout_s >= 0:
         raise InvalidInputError(f"busy_timeout_s must be >= 0, got {busy_timeout_s!r}")
     if str(path) == ":memory:":
         if read_only:
             raise InvalidInputError("an in-memory store cannot be read-only")
         conn = sqlite3.connect(":memory:", isolation_level=None, check_same_thread=False)
-        resolved = None
+        resolved, key = None, None
     else:
         resolved = Path(path)
         if not resolved.exists():
             if read_only or not create:
                 raise NotFoundError(f"store file {str(resolved)!r} does not exist")
             _create_file(resolved)
-        conn = _connect_file(resolved, read_only, busy_timeout_s)
+        conn, key = _connect_file(resolved, read_only, busy_timeout_s)
     try:
         with translated(str(path)):
             _configure(conn, writable=not read_only, durable=durable, busy_timeout_s=busy_timeout_s)
     except BaseException:
-        disconnect(conn)
+        disconnect(conn, key)
         raise
-    return conn, resolved
+    return conn, resolved, key
 
 
-def _connect_file(path: Path, read_only: bool, busy_timeout_s: float) -> sqlite3.Connection:
+def _connect_file(
+    path: Path, read_only: bool, busy_timeout_s: float
+) -> tuple[sqlite3.Connection, FileKey]:
     """Check the file (unless this process has it open already) and connect to it."""
     stat = path.stat()
     key = (stat.st_dev, stat.st_ino)
@@ -192,21 +196,20 @@ def _connect_file(path: Path, read_only: bool, busy_timeout_s: float) -> sqlite3
                 check_same_thread=False,
             )
         _OPEN_FILES[key] = _OPEN_FILES.get(key, 0) + 1
-        _CONNECTION_FILES[conn] = key
-    return conn
+    return conn, key
 
 
-def disconnect(conn: sqlite3.Connection) -> None:
-    """Close a connection made by :func:`connect` (idempotent)."""
+def disconnect(conn: sqlite3.Connection, key: FileKey | None) -> None:
+    """Close a connection :func:`connect` made (once), with the file key it returned."""
     conn.close()  # first: a file counts as held by this process until its last lock is gone
+    if key is None:
+        return
     with _OPEN_FILES_LOCK:
-        key = _CONNECTION_FILES.pop(conn, None)
-        if key is not None:
-            remaining = _OPEN_FILES[key] - 1
-            if remaining:
-                _OPEN_FILES[key] = remaining
-            else:
-                del _OPEN_FILES[key]
+        remaining = _OPEN_FILES.get(key, 0) - 1
+        if remaining > 0:
+            _OPEN_FILES[key] = remaining
+        else:
+            _OPEN_FILES.pop(key, None)
 
 
 def folder_writable(path: Path) -> bool:
