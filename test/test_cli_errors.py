@@ -4,6 +4,7 @@ ends a command quietly."""
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import subprocess
@@ -12,6 +13,7 @@ from pathlib import Path
 
 import pytest
 import yaml
+from campaign_support import store_with_demos_and_skill
 from cli_support import one_line_error, run_cli
 from pydantic import BaseModel, ConfigDict, ValidationError
 from store_support import REPO, add_demo
@@ -100,6 +102,39 @@ def test_messages_name_options_not_python_parameters(tmp_path, capsys):
     assert "force=True" not in err
     status, _, err = run_cli(capsys, "list", "--store", path, "--order-by", "nothing")
     one_line_error(err, "list", r"^compliant-demo list: error: --order-by column 'nothing'")
+
+
+def test_an_unreachable_scheduler_is_named_by_its_option(tmp_path, capsys):
+    # the README's campaign on a Dask cluster, with an address where nothing listens (loopback)
+    store_with_demos_and_skill(tmp_path / "store.sqlite")
+    status, _, err = run_cli(capsys, "campaign", "--store", tmp_path / "store.sqlite",
+                             "--skill", "cork_seat", "--scheduler", "tcp://127.0.0.1:1")
+    assert status == 2
+    one_line_error(err, "campaign", r"error: --scheduler = 'tcp://127\.0\.0\.1:1': cannot "
+                                    r"connect to the Dask scheduler")
+
+
+def test_readme_config_paths_name_the_shipped_files_from_any_folder(tmp_path, capsys,
+                                                                   monkeypatch):
+    # the README's replay with --schedule config/replay_bumps.yaml, run outside the checkout
+    store_with_demos_and_skill(tmp_path / "store.sqlite")
+    monkeypatch.chdir(tmp_path)
+    status, out, err = run_cli(capsys, "replay", "--store", "store.sqlite", "--schedule",
+                               "config/replay_bumps.yaml", "--criteria",
+                               "config/readiness_criteria.yaml", "--json")
+    assert status in (0, 1), err  # 1: a limit stopped the replay, which is a result too
+    assert json.loads(out)["result_id"]
+    status, _, err = run_cli(capsys, "replay", "--store", "store.sqlite", "--schedule",
+                             "config/no_such_schedule.yaml")
+    assert status == 2
+    one_line_error(err, "replay", r"--schedule 'config/no_such_schedule.yaml': no such file$")
+    # a file of that name in the working folder is the one used
+    (tmp_path / "config").mkdir()
+    (tmp_path / "config" / "replay_bumps.yaml").write_text("name: [unclosed\n")
+    status, _, err = run_cli(capsys, "replay", "--store", "store.sqlite", "--schedule",
+                             "config/replay_bumps.yaml")
+    assert status == 2
+    one_line_error(err, "replay", r"replay_bumps\.yaml")
 
 
 def test_the_parameter_mapping_follows_each_commands_options():

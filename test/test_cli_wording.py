@@ -49,6 +49,12 @@ def test_report_help_names_the_campaigns_plant_as_default():
     assert "default: the cork_seat bench arm on the ideal" not in text
 
 
+def test_only_the_tour_seeds_a_campaign():
+    assert "and of the campaign" in _help_text("tour")
+    assert "campaign" not in _help_text("simulate-teaching").split("--seed SEED", 1)[1].split(
+        "--out", 1)[0]
+
+
 def test_show_gives_times_in_iso_8601_utc(tmp_path, capsys):
     path = tmp_path / "store.sqlite"
     with DemoStore(path) as store:

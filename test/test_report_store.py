@@ -100,6 +100,24 @@ def test_report_without_campaign_shows_what_exists(tmp_path):
     assert "planned path vs demonstrations" in dict(content.summary)
 
 
+def test_a_truth_file_of_other_demonstrations_is_left_out_with_a_warning(tmp_path):
+    # the README's report --truth of one run after learning from every demonstration: the truth
+    # of that run's first demonstration must not be drawn over another run's first one
+    path, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
+    _recorded_store(path, truth_path)
+    with np.load(truth_path) as data:
+        np.savez(tmp_path / "two.npz", **{k: data[k] for k in data.files if not k.endswith("_2")})
+    with DemoStore(path, read_only=True) as store:
+        with pytest.warns(UserWarning, match=r"truth file: 2 demonstration\(s\), but cork_seat "
+                                             r"version 1 was learned from 3; .* learn --tag"):
+            content = collect_report_content(store, "cork_seat",
+                                             truth=GroundTruth.from_npz(tmp_path / "two.npz"))
+    estimate = next(f for f in content.figures if f.stem == "stiffness_estimate")
+    assert "describes 2 other demonstration(s) and is left out" in estimate.caption
+    labels = [line.get_label() for line in estimate.figure.axes[0].get_lines()]
+    assert labels == ["estimate"]
+
+
 def test_report_errors_name_what_is_missing(tmp_path):
     path, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
     skill_id = _recorded_store(path, truth_path)

@@ -117,6 +117,58 @@ def test_live_writer_is_left_alone_and_a_dead_one_is_recovered(tmp_path):
     assert integrity(path) == "ok"
 
 
+def _in_another_process(script: str, path) -> str:
+    done = subprocess.run([PYTHON, "-c", textwrap.dedent(script), str(path)], capture_output=True,
+                          text=True, env=subprocess_env(), timeout=120, check=True)
+    return done.stdout.strip()
+
+
+def test_a_second_store_object_in_the_writers_process_keeps_its_commits_visible(tmp_path):
+    # The recorder's writer thread holds the store while its feedback thread opens it read-only
+    # at each start; another run on the same file opens and closes it. Once finish_demonstration
+    # returns, a new reader elsewhere must see the demonstration complete (it saw it
+    # "recording" until the writer closed, and a write from the other run meanwhile damaged the
+    # file, when opening a second store object dropped the writer's file locks).
+    path = tmp_path / "store.sqlite"
+    wal = tmp_path / "store.sqlite-wal"
+    t = np.arange(100) / 1000.0
+    zeros = np.zeros((100, 2))
+    with DemoStore(path) as writer:
+        demo_id = writer.begin_demonstration(skill="cork_seat", joints=JOINTS)
+        writer.append_chunk(demo_id, t, zeros, zeros, zeros, zeros)
+        with DemoStore(path, read_only=True) as feedback_reader:
+            assert feedback_reader.get_info(demo_id).status == "recording"
+        _in_another_process(
+            """
+            import sys
+            import numpy as np
+            from compliant_demo.store import DemoStore
+
+            with DemoStore(sys.argv[1]) as other_run:
+                zeros = np.zeros((10, 2))
+                other_run.add_demonstration(t=np.arange(10) / 1000.0, position=zeros,
+                                            velocity=zeros, torque=zeros, skill="other_skill",
+                                            joints=["shoulder", "elbow"])
+            """, path)  # fmt: skip
+        assert wal.exists(), "the other process checkpointed and deleted the writer's WAL"
+        writer.append_chunk(demo_id, t + 0.1, zeros, zeros, zeros, zeros)
+        assert writer.finish_demonstration(demo_id).status == "complete"
+        seen = _in_another_process(
+            """
+            import sys
+            from compliant_demo.store import DemoStore
+
+            with DemoStore(sys.argv[1], read_only=True) as reader:
+                print(sorted((i.skill, i.status, i.n_samples)
+                             for i in reader.find_demonstrations()))
+            """, path)  # fmt: skip
+        assert seen == "[('cork_seat', 'complete', 200), ('other_skill', 'complete', 10)]"
+    assert integrity(path) == "ok"
+    with DemoStore(path, read_only=True) as store:
+        assert sorted(info.skill for info in store.find_demonstrations()) == [
+            "cork_seat", "other_skill"]
+
+
 def test_closing_a_store_ends_its_own_recordings(tmp_path):
     path = tmp_path / "store.sqlite"
     with DemoStore(path) as store:

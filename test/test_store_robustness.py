@@ -21,15 +21,18 @@ from compliant_demo.store._codec import MAX_JOINTS
 
 
 @contextlib.contextmanager
-def _file_in_read_only_folder(tmp_path: Path, store: Path) -> Iterator[Path]:
+def _file_in_read_only_folder(tmp_path: Path, store: Path,
+                              copies: tuple[Path, ...] = ()) -> Iterator[Path]:
     """``store`` (still writable) bound into a read-only tmpfs folder (the tests run as root,
-    whom file modes do not stop, so the folder is a read-only mount)."""
+    whom file modes do not stop, so the folder is a read-only mount), with ``copies`` of further
+    files beside it."""
     folder = tmp_path / "ro"
     folder.mkdir()
     mounted = []
     try:
-        for command in (["mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", str(folder)],
+        for command in (["mount", "-t", "tmpfs", "-o", "size=4m", "tmpfs", str(folder)],
                         ["touch", str(folder / store.name)],
+                        *(["cp", str(copy), str(folder)] for copy in copies),
                         ["mount", "-o", "remount,ro", str(folder)],
                         ["mount", "--bind", str(store), str(folder / store.name)]):  # fmt: skip
             subprocess.run(command, check=True, capture_output=True, timeout=30)
@@ -59,6 +62,39 @@ def test_writable_store_in_a_read_only_folder_lists_and_verifies(tmp_path, capsy
         assert "its folder is not writable" in capsys.readouterr().err
         with DemoStore(path, read_only=True) as store:
             assert store.get_info(demo_id).status == "complete"
+
+
+def test_a_read_only_folder_without_shm_file_warns_of_an_unread_wal(tmp_path):
+    # the store and its -wal copied while a writer had the second demonstration in the log only
+    source, copy = tmp_path / "store.sqlite", tmp_path / "copy" / "store.sqlite"
+    copy.parent.mkdir()
+    with DemoStore(source) as store:
+        add_demo(store, seed=1)
+        store.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        add_demo(store, seed=2, n=50)
+        # copied by another process: a descriptor this process closed would drop its locks
+        subprocess.run(["cp", str(source), f"{source}-wal", str(copy.parent)], check=True,
+                       timeout=30)
+    size = Path(f"{copy}-wal").stat().st_size
+    with _file_in_read_only_folder(tmp_path, copy, copies=(Path(f"{copy}-wal"),)) as path:
+        with pytest.warns(UserWarning, match=rf"opened without its write-ahead log: .* the {size} "
+                                             r"bytes of store\.sqlite-wal are not read"):
+            store = DemoStore(path, read_only=True)
+        with store:
+            assert [info.n_samples for info in store.find_demonstrations()] == [200]
+
+
+def test_a_wal_file_deleted_while_the_store_opens_is_no_error(tmp_path, monkeypatch):
+    # the last connection of another process deletes the -wal at any moment: here just after
+    # the opener saw it exist (a reader polling the recorder's store once died of it)
+    path = tmp_path / "store.sqlite"
+    with DemoStore(path) as store:
+        demo_id = add_demo(store)
+    real_exists = Path.exists
+    monkeypatch.setattr(Path, "exists",
+                        lambda self: self.name.endswith("-wal") or real_exists(self))
+    with DemoStore(path, read_only=True) as store:
+        assert store.get_info(demo_id).status == "complete"
 
 
 DAMAGED_JSON = [

@@ -10,6 +10,7 @@ violations), and turns them into figures, tables and summary facts.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -256,6 +257,18 @@ def collect_report_content(
 
     figures = []
     demos = [store.load_demonstration(i, joints=joints) for i in record.demonstration_ids]
+    truth_note = " No ground truth was given for this store."
+    if truth is not None and len(truth.series) != len(demos):
+        # The truth file knows its demonstrations only by recording order: with another count
+        # it describes other demonstrations, and drawing it would compare the wrong hands.
+        truth_note = (f" The ground truth given describes {len(truth.series)} other "
+                      "demonstration(s) and is left out.")
+        warnings.warn(
+            f"truth file: {len(truth.series)} demonstration(s), but {skill_name} version "
+            f"{record.version} was learned from {len(demos)}; the truth is matched by recording "
+            "order, so it is left out (learn from that run's demonstrations alone, "
+            "learn --tag RUN_TAG)", stacklevel=2)
+        truth = None
     summary: list[tuple[str, str]] = [
         ("skill", f"{skill.name} version {record.version} ({record.id})"),
         ("demonstrations", str(len(demos))),
@@ -291,7 +304,7 @@ def collect_report_content(
             f"{latency:.3f} s earlier than it was recorded (the estimator's latency: window "
             "centre plus band-pass delay), at the time it describes; dotted hatching marks "
             "windows the estimator flagged as not excited enough (no estimate)."
-            + ("" if truth_k is not None else " No ground truth was given for this store."),
+            + ("" if truth_k is not None else truth_note),
             plot_stiffness_estimate(demo.t, estimate, truth_k, excited, joints,
                                     latency_s=latency)))
         summary.append(("estimate coverage",

@@ -261,8 +261,9 @@ def record_demonstrations(settings: TourSettings, plan: RunPlan, progress: bool)
         # truth file) must not cut their shutdown short.
         with deferred_signals():
             stop_children(children)
-    # The teacher stops the recorder before it exits; on a busy machine the store may show the
-    # last demonstration complete only once the recorder has shut down, so count after that.
+    # The teacher stops the recorder before it exits, but the recorder answers stop after at
+    # most 5 s: a store slower than that (another run writing to it) finishes the last
+    # demonstration only while the recorder shuts down, so count after that.
     recorded = _complete_with_tag(settings.store, tag)
     if len(recorded) < settings.n_demonstrations:
         raise TourError(f"teacher finished but {len(recorded)} of {settings.n_demonstrations} "

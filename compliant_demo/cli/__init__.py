@@ -52,6 +52,7 @@ _PARAMETER_OPTIONS: Mapping[str, str] = {
     "where_args": "arg",
     "started_after": "since",
     "started_before": "until",
+    "scheduler": "scheduler",
 }
 _IDENTIFIER = re.compile(r"(?<![\w.'\"-])([a-z][a-z0-9]*(?:_[a-z0-9]+)*)(=True\b)?(?![\w'\"-])")
 

@@ -14,9 +14,8 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from compliant_demo.campaign import default_campaign_spec
-from compliant_demo.cli.common import integer_in_range
+from compliant_demo.cli.common import existing_file, integer_in_range
 from compliant_demo.display import printable
-from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.generalisation import check_goal
 from compliant_demo.learning import StoredSkill, load_skill
 from compliant_demo.perturbation import CampaignSpec, load_campaign_yaml
@@ -119,9 +118,7 @@ def read_spec(args: argparse.Namespace, setup: ReplaySetup) -> CampaignSpec:
     """The campaign spec of ``--spec``, or the default one sized for ``setup``'s movement."""
     if args.spec is None:
         return default_campaign_spec(len(setup.skill.joints), setup.movement_s)
-    if not args.spec.is_file():
-        raise InvalidInputError(f"--spec {str(args.spec)!r}: no such file")
-    return load_campaign_yaml(args.spec)
+    return load_campaign_yaml(existing_file("--spec", args.spec))
 
 
 def read_goal(args: argparse.Namespace, plant: ReplayPlant,
@@ -156,9 +153,7 @@ def show_progress(args: argparse.Namespace) -> bool:
 
 def read_plant(args: argparse.Namespace) -> ReplayPlant:
     """The plant ``--plant`` names, or the default one."""
-    if args.plant is not None and not args.plant.is_file():
-        raise InvalidInputError(f"--plant {str(args.plant)!r}: no such file")
-    return load_plant(args.plant)
+    return load_plant(None if args.plant is None else existing_file("--plant", args.plant))
 
 
 def read_skill(store: DemoStore, args: argparse.Namespace) -> StoredSkill:

@@ -6,8 +6,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
+from compliant_demo.cli.common import existing_file
 from compliant_demo.display import format_value, printable
-from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.readiness import CRITERIA_FILE, Criteria, Reason, Verdict, load_criteria
 
 __all__ = ["add_criteria_option", "read_criteria", "print_verdict", "SHOWN_REASONS"]
@@ -26,9 +26,8 @@ def add_criteria_option(parser: argparse.ArgumentParser) -> None:
 
 def read_criteria(args: argparse.Namespace) -> Criteria:
     """The criteria ``--criteria`` names, or the shipped ones."""
-    if args.criteria is not None and not args.criteria.is_file():
-        raise InvalidInputError(f"--criteria {str(args.criteria)!r}: no such file")
-    return load_criteria(args.criteria)
+    return load_criteria(None if args.criteria is None
+                         else existing_file("--criteria", args.criteria))
 
 
 def _reason_line(number: int, reason: Reason) -> str:

@@ -13,6 +13,8 @@ from typing import Any
 
 from compliant_demo.cautions import SAFETY_CAUTION
 from compliant_demo.display import format_value, printable
+from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.resources import package_file
 from compliant_demo.store.location import STORE_ENV, default_store_path
 
 __all__ = [
@@ -22,6 +24,7 @@ __all__ = [
     "add_store_option",
     "add_json_option",
     "store_path_of",
+    "existing_file",
     "integer_in_range",
     "emit_json",
     "emit_table",
@@ -55,6 +58,20 @@ def add_json_option(parser: argparse.ArgumentParser) -> None:
 def store_path_of(args: argparse.Namespace) -> Path:
     """The store path the user chose, or the default one."""
     return args.store if args.store is not None else default_store_path()
+
+
+def existing_file(option: str, path: Path) -> Path:
+    """The file ``option`` names. A relative ``config/NAME`` or ``launch/NAME`` that is not in
+    the working directory is the file of that name the package ships (the README's examples
+    run from any folder); anything else missing is an error naming the option."""
+    if path.is_file():
+        return path
+    if not path.is_absolute() and len(path.parts) == 2 and path.parts[0] in ("config", "launch"):
+        try:
+            return package_file(*path.parts)
+        except InvalidInputError:
+            pass
+    raise InvalidInputError(f"{option} {str(path)!r}: no such file")
 
 
 def integer_in_range(low: int, high: int = INT64_MAX) -> Callable[[str], int]:

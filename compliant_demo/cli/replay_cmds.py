@@ -27,9 +27,9 @@ from compliant_demo.cli.common import (
     emit_caution,
     emit_json,
     emit_table,
+    existing_file,
     store_path_of,
 )
-from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.perturbation import load_schedule_yaml
 from compliant_demo.readiness import assess_replays
 from compliant_demo.replay import ReplayRun, ReplaySetup
@@ -79,9 +79,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def _run(args: argparse.Namespace) -> int:
     plant = read_plant(args)
     criteria = read_criteria(args)
-    if args.schedule is not None and not args.schedule.is_file():
-        raise InvalidInputError(f"--schedule {str(args.schedule)!r}: no such file")
-    schedule = None if args.schedule is None else load_schedule_yaml(args.schedule)
+    schedule = (None if args.schedule is None
+                else load_schedule_yaml(existing_file("--schedule", args.schedule)))
     with DemoStore(store_path_of(args), create=False) as store:
         stored = read_skill(store, args)
         record, skill = stored.record, stored.skill

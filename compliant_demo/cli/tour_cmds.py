@@ -34,9 +34,11 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = ["register", "add_recording_options", "recording_settings", "announce_plan"]
 
 
-def add_recording_options(parser: argparse.ArgumentParser, files: str) -> None:
+def add_recording_options(parser: argparse.ArgumentParser, files: str,
+                          with_campaign: bool = False) -> None:
     """``--demos``, ``--demo-duration``, ``--domain-id``, ``--seed`` and ``--out``: what the
-    simulated teacher records and where the run's ``files`` go."""
+    simulated teacher records (and, ``with_campaign``, what the campaign draws from ``--seed``)
+    and where the run's ``files`` go."""
     parser.add_argument("--demos", type=positive_int, default=4, metavar="N",
                         help="demonstrations to record, 2 to 50 (default: 4)")
     parser.add_argument("--demo-duration", type=positive_float, default=None, metavar="S",
@@ -47,9 +49,10 @@ def add_recording_options(parser: argparse.ArgumentParser, files: str) -> None:
                              "another run holds it (default: the first one no other run holds, "
                              f"from $ROS_DOMAIN_ID or {DEFAULT_DOMAIN_ID} upward; printed)")
     parser.add_argument("--seed", type=non_negative_int, default=None,
-                        help="seed of the first demonstration (demonstration i uses seed + i) "
-                             "and of the campaign (default: drawn afresh for each run and "
-                             "printed, so a run can be repeated)")
+                        help="seed of the first demonstration (demonstration i uses seed + i)"
+                             + (" and of the campaign" if with_campaign else "")
+                             + " (default: drawn afresh for each run and printed, so a run can "
+                               "be repeated)")
     parser.add_argument("--out", type=Path, default=None, metavar="DIR",
                         help=f"folder for {files} (default: a folder of the run's own, "
                              f"{RUNS_FOLDER}/<run tag>, printed)")
@@ -98,7 +101,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         ),
     )
     add_store_option(parser)
-    add_recording_options(parser, "the report, figures, truth file and node log")
+    add_recording_options(parser, "the report, figures, truth file and node log",
+                          with_campaign=True)
     parser.add_argument("--scenarios", type=positive_int, default=350, metavar="N",
                         help="perturbed scenarios in the campaign (default: 350, 50 per kind)")
     add_plant_option(parser, default_text="config/joint_cork_seat_antagonistic.yaml: the "

@@ -56,7 +56,7 @@ class StoreSession:
         self.lease_token: str | None = None
         self.layouts: dict[str, tuple[int, bool]] = {}
         self.conn: sqlite3.Connection | None
-        self.conn, self.path = _sql.connect(
+        self.conn, self.path, self._file_key = _sql.connect(
             path, read_only=self.read_only, busy_timeout_s=busy_timeout_s, create=create,
             durable=durable,
         )  # fmt: skip
@@ -66,7 +66,7 @@ class StoreSession:
                     self.conn, writable=not self.read_only, label=self.label
                 )
         except BaseException:
-            self.conn.close()
+            _sql.disconnect(self.conn, self._file_key)
             raise
 
     @property
@@ -84,7 +84,7 @@ class StoreSession:
         """Close the connection (idempotent)."""
         with self.lock:
             if self.conn is not None:
-                self.conn.close()
+                _sql.disconnect(self.conn, self._file_key)
                 self.conn = None
 
     @contextmanager
