@@ -5,6 +5,7 @@ campaign run says its id at start and how to resume it when interrupted."""
 from __future__ import annotations
 
 import json
+import re
 import shlex
 
 import pytest
@@ -121,6 +122,8 @@ def test_campaign_says_its_id_and_how_to_resume_after_an_interrupt(job_store, ca
     header, row = out.splitlines()
     assert header.split() == ["id", "skill", "version", "stored", "planned", "created"]
     assert row.split()[:5] == [campaign_id, "cork_seat", "1", "7", "7"]
+    # The same time format as every other listing (``list``): ISO 8601, one token.
+    assert re.fullmatch(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ", row.split()[5]), row
 
 
 def test_cli_options_take_unique_prefixes(job_store, capsys):

@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 import shlex
 import sys
-from datetime import UTC, datetime
 from pathlib import Path
 
 from compliant_demo.app.progress import campaign_progress
@@ -31,6 +30,7 @@ from compliant_demo.cli.common import (
     emit_caution,
     emit_json,
     emit_table,
+    iso_utc,
     store_path_of,
 )
 from compliant_demo.learning import load_skill_by_id
@@ -103,7 +103,7 @@ def _list(args: argparse.Namespace) -> int:
         [{"id": c.id, "skill": c.skill_name, "version": c.skill_version,
           "stored": c.scenarios_stored,
           "planned": "?" if c.scenarios_planned is None else c.scenarios_planned,
-          "created": datetime.fromtimestamp(c.created, tz=UTC).strftime("%Y-%m-%d %H:%M:%SZ")}
+          "created": iso_utc(c.created)}
          for c in campaigns],
         ("id", "skill", "version", "stored", "planned", "created"),
     )  # fmt: skip

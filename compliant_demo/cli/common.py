@@ -8,6 +8,7 @@ import json
 import re
 import sys
 from collections.abc import Callable, Iterable, Mapping, Sequence
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -29,6 +30,7 @@ __all__ = [
     "emit_json",
     "emit_table",
     "emit_caution",
+    "iso_utc",
 ]
 
 #: Largest value of an SQLite integer (signed 64 bit).
@@ -125,3 +127,8 @@ def emit_table(
 def emit_caution() -> None:
     """Print the safety caution line that closes every summary of a replay, campaign or report."""
     print(SAFETY_CAUTION)
+
+
+def iso_utc(unix_s: float) -> str:
+    """ISO 8601 in UTC to the second, as every listing prints a time: ``2026-11-30T00:53:20Z``."""
+    return datetime.fromtimestamp(unix_s, tz=UTC).strftime("%Y-%m-%dT%H:%M:%SZ")

@@ -21,6 +21,7 @@ from compliant_demo.cli.common import (
     emit_json,
     emit_table,
     integer_in_range,
+    iso_utc,
     store_path_of,
 )
 from compliant_demo.display import printable
@@ -60,13 +61,8 @@ def resolve_demo_id(store: DemoStore, prefix: str) -> str:
 _TIME_FIELDS = ("start_time", "created_at", "updated_at")
 
 
-def _iso(unix_s: float) -> str:
-    """ISO 8601 in UTC to the second: ``2026-11-30T00:53:20Z``."""
-    return datetime.fromtimestamp(unix_s, tz=UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
 def _unix_and_iso(unix_s: float) -> str:
-    return f"{unix_s:.3f} s ({_iso(unix_s)})"
+    return f"{unix_s:.3f} s ({iso_utc(unix_s)})"
 
 
 def _when(text: str) -> float:
@@ -97,7 +93,8 @@ def _cmd_list(args: argparse.Namespace) -> int:
     if args.json:
         emit_json([info.to_dict() for info in infos])
         return 0
-    rows = [{**info.to_dict(), "id": info.id[:8], "start": _iso(info.start_time)} for info in infos]
+    rows = [{**info.to_dict(), "id": info.id[:8], "start": iso_utc(info.start_time)}
+            for info in infos]
     emit_table(rows, _LIST_COLUMNS)
     return 0
 
@@ -167,7 +164,7 @@ def _cmd_import(args: argparse.Namespace) -> int:
     if args.json:
         emit_json([info.to_dict() for info in added])
     else:
-        emit_table([{**i.to_dict(), "start": _iso(i.start_time)} for i in added], _LIST_COLUMNS)
+        emit_table([{**i.to_dict(), "start": iso_utc(i.start_time)} for i in added], _LIST_COLUMNS)
     return 0
 
 
@@ -272,7 +269,7 @@ def _cmd_skills(args: argparse.Namespace) -> int:
     with _open(args, write=False) as store:
         records = store.list_skills()
     rows: list[dict[str, Any]] = [
-        {"id": r.id, "name": r.name, "version": r.version, "created": _iso(r.created),
+        {"id": r.id, "name": r.name, "version": r.version, "created": iso_utc(r.created),
          "demonstrations": len(r.demonstration_ids), "parameters": r.parameters}
         for r in records
     ]  # fmt: skip
