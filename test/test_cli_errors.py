@@ -135,6 +135,13 @@ def test_readme_config_paths_name_the_shipped_files_from_any_folder(tmp_path, ca
                              "config/replay_bumps.yaml")
     assert status == 2
     one_line_error(err, "replay", r"replay_bumps\.yaml")
+    # the README's launch files too
+    status, out, err = run_cli(capsys, "launch", "launch/replay.launch.xml", "--print")
+    assert status == 0, err
+    assert "compliant_demo.nodes.replay" in out or "replay_node" in out, out
+    status, _, err = run_cli(capsys, "launch", "launch/no_such.launch.xml")
+    assert status == 2
+    one_line_error(err, "launch", r"launch_file 'launch/no_such\.launch\.xml': no such file$")
 
 
 def test_the_parameter_mapping_follows_each_commands_options():

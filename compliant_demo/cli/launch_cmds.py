@@ -28,6 +28,7 @@ from compliant_demo.app.launch_file import (
     start_nodes,
 )
 from compliant_demo.app.supervisor import Child, describe_exit, reap, stop_children
+from compliant_demo.cli.common import existing_file
 from compliant_demo.exceptions import LaunchFileError
 
 __all__ = ["register"]
@@ -66,7 +67,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
-    description = read_launch_file(args.launch_file, parse_launch_arguments(args.arguments))
+    description = read_launch_file(existing_file("launch_file", args.launch_file),
+                                   parse_launch_arguments(args.arguments))
     until = None if args.until is None else _until_index(description, args.until)
     if args.print_only:
         for node in description.nodes:
