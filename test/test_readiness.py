@@ -83,6 +83,30 @@ def test_criteria_digest_is_the_sha256_of_canonical_json(tmp_path):
         (lambda d: d["thresholds"].update(max_speed={"value": 1, "unit": "rad/s", "why": "x"}),
          r"thresholds\.max_speed"),
         (lambda d: d.update(schedule_checks={}), r"schedule_checks"),
+        # a value in another unit would be read in the threshold's own unit
+        (lambda d: d["thresholds"]["settling_window"].update(value=500, unit="ms"),
+         r"thresholds\.settling_window.*unit 'ms': this threshold is read in 's'"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(unit="deg"),
+         r"thresholds\.max_goal_error.*unit 'deg'.*read in 'rad'"),
+        (lambda d: d["thresholds"]["max_failed_recovery"].update(value=5),
+         r"thresholds\.max_failed_recovery.*value 5\.0: a fraction of scenarios lies in \[0, 1\]"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value=float("nan")),
+         r"thresholds\.max_goal_error\.value.*nan.*finite"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value=float("inf")),
+         r"thresholds\.max_goal_error\.value.*inf.*finite"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value="0.02"),
+         r"thresholds\.max_goal_error\.value.*'0\.02'"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value=True),
+         r"thresholds\.max_goal_error\.value.*True"),
+        (lambda d: d["thresholds"]["settling_window"].update(value=0),
+         r"thresholds\.settling_window.*value 0: the settling window must be a positive"),
+        (lambda d: d["thresholds"]["tank_max_energy"].update(value=0.01),
+         r"tank_max_energy\.value = 0\.01 is below tank_initial_energy\.value = 0\.05"),
+        (lambda d: d["schedule_checks"].update(under_dampd={"why": "typo"}),
+         r"schedule_checks.*no such check \['under_dampd'\]"),
+        (lambda d: d["schedule_checks"].update(energy_tank_empty={"why": "x", "threshold": None,
+                                                                  "extra": 1}),
+         r"schedule_checks\.energy_tank_empty\.extra"),
     ],
 )
 def test_bad_criteria_file_names_field_and_value(tmp_path, edit, match):
@@ -97,6 +121,13 @@ def test_criteria_file_errors_name_the_file(tmp_path):
         load_criteria(tmp_path / "missing.yaml")
     with pytest.raises(InvalidInputError, match=r"criteria\.yaml: expected a mapping"):
         load_criteria(_write(tmp_path, [1, 2]))
+    with pytest.raises(InvalidInputError, match=r"cannot read file: Is a directory"):
+        load_criteria(tmp_path)
+    broken = tmp_path / "broken.yaml"
+    broken.write_text("thresholds: [\n", encoding="utf-8")
+    with pytest.raises(InvalidInputError, match=r"^\S*broken\.yaml: not a readable YAML "
+                                                r"document at line 2, column 1: [^\n]*$"):
+        load_criteria(broken)
 
 
 def test_verdict_orders_reasons_most_severe_first_and_is_json_ready():
