@@ -13,7 +13,7 @@ import yaml
 from store_support import add_demo
 
 from compliant_demo.cli._verdict import SHOWN_REASONS, print_verdict
-from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreCorruptError
 from compliant_demo.models import IdealImpedanceParams, JointParams
 from compliant_demo.plant import ReplayPlant, load_plant
 from compliant_demo.primitives import Rollout
@@ -238,6 +238,66 @@ def test_save_verdict_errors_store_nothing(store_with_skill):
     with pytest.raises(InvalidInputError, match="latest|criteria_digest must be a SHA-256"):
         store.latest_verdict(skill_id, plant_digest=keys["plant_digest"], criteria_digest="x")
     assert store.db.execute("SELECT count(*) FROM verdicts").fetchone() == (0,)
+
+
+class _Document:
+    """A verdict document as any caller may hand the store, bypassing Verdict's own checks."""
+
+    def __init__(self, verdict: object, reasons: object) -> None:
+        self.document = {"verdict": verdict, "reasons": reasons}
+
+    def to_dict(self) -> dict:
+        return self.document
+
+
+@pytest.mark.parametrize(
+    ("verdict", "reasons", "match"),
+    [
+        # the gate lets a stored 'ready' through: it must not carry reasons against it
+        ("ready", [{"check": "under_damped"}], r"verdict 'ready' with 1 reason\(s\)"),
+        ("not_ready", [], r"verdict 'not_ready' with 0 reason\(s\)"),
+        ("maybe", [], r"verdict must be 'ready' or 'not_ready', got 'maybe'"),
+        ("not_ready", {"check": "x"}, r"reasons must be a list of mappings"),
+        ("not_ready", [{"joint": "elbow"}], r"reason 0: 'check' must name a check, got None"),
+        ("not_ready", [{"check": "x", "value": float("nan")}], r"every number must be finite"),
+    ],
+)
+def test_the_store_refuses_an_inconsistent_verdict_document(store_with_skill, verdict, reasons,
+                                                            match):
+    store, skill_id = store_with_skill
+    criteria = load_criteria()
+    keys = {"plant_digest": load_plant().digest, "criteria_digest": criteria.digest}
+    with pytest.raises(InvalidInputError, match=match):
+        store.save_verdict(_Document(verdict, reasons), skill_id=skill_id, campaign_id=None,
+                           criteria=criteria.model_dump(mode="json"), **keys)
+    assert store.db.execute("SELECT count(*) FROM verdicts").fetchone() == (0,)
+
+
+@pytest.mark.parametrize(
+    ("column", "text", "match"),
+    [
+        ("reasons", "{broken", r"Expecting property name"),
+        ("reasons", "{}", r"reasons must be a list of mappings, got \{\}"),
+        ("reasons", "[]", r"verdict 'not_ready' with 0 reason\(s\)"),
+        ("criteria", "null", r"criteria must be a mapping, got NoneType"),
+    ],
+)
+def test_a_damaged_verdict_row_is_named_by_latest_verdict_and_verify(
+    store_with_skill, column, text, match
+):
+    store, skill_id = store_with_skill
+    criteria = load_criteria()
+    keys = {"plant_digest": load_plant().digest, "criteria_digest": criteria.digest}
+    verdict_id = store.save_verdict(Verdict.from_reasons([_reason()]), skill_id=skill_id,
+                                    campaign_id=None, criteria=criteria.model_dump(mode="json"),
+                                    **keys)
+    assert store.verify() == []
+    store.db.execute(f"UPDATE verdicts SET {column} = ?", (text,))
+    damaged = rf"verdict '{verdict_id}' has damaged stored data: .*{match}"
+    with pytest.raises(StoreCorruptError, match=damaged):
+        store.latest_verdict(skill_id, **keys)
+    (finding,) = store.verify()
+    assert finding.startswith(f"verdict {verdict_id}: damaged stored data")
 
 
 # --- assess ------------------------------------------------------------------------------------
