@@ -44,6 +44,7 @@ from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
     "DEFAULT_SETTLE_S",
+    "MAX_REPLAY_STEPS",
     "STEP_CHANNELS",
     "UNPERTURBED",
     "ReplayCommands",
@@ -55,6 +56,10 @@ __all__ = [
 
 #: Time simulated after the movement to watch it settle, s: the same for every replay.
 DEFAULT_SETTLE_S = 1.0
+
+#: Most control periods of one replay (movement plus settling): its command and trace arrays are
+#: held in memory, so a horizon of days is refused up front rather than failing to allocate.
+MAX_REPLAY_STEPS = 10_000_000
 
 #: Per-joint channels a stepped replay records, each (n_steps, n_joints).
 STEP_CHANNELS: tuple[str, ...] = (
@@ -122,6 +127,16 @@ class ReplaySetup:
             raise InvalidInputError(f"dt: must be a positive step in s, got {self.dt}")
         if not (math.isfinite(self.settle_s) and self.settle_s >= 0):
             raise InvalidInputError(f"settle_s: must be non-negative, got {self.settle_s}")
+        if self.duration_s is not None and not (
+            math.isfinite(self.duration_s) and self.duration_s >= self.dt
+        ):
+            raise InvalidInputError(f"duration_s: must be at least one control period "
+                                    f"({self.dt:g} s), got {self.duration_s!r}")
+        horizon_s = self.movement_s + self.settle_s
+        if horizon_s / self.dt > MAX_REPLAY_STEPS:
+            raise InvalidInputError(
+                f"duration_s + settle_s = {horizon_s:.6g} s: more than {MAX_REPLAY_STEPS:,} "
+                f"control periods of {self.dt:g} s (at most {MAX_REPLAY_STEPS * self.dt:g} s)")
         if not self.max_stiffness_rate > 0:
             raise InvalidInputError(
                 f"max_stiffness_rate: must be positive, got {self.max_stiffness_rate}"

@@ -48,6 +48,9 @@ def test_replay_to_a_new_goal_and_duration_stores_both(store, capsys):
         (["--goal", "0.2", "nan"], r"argument --goal: 'nan' is not finite"),
         (["--goal", "0.2", "up"], r"argument --goal: 'up' is not a number"),
         (["--duration", "0"], r"argument --duration: '0' must be > 0"),
+        (["--duration", "1e12"], r"duration_s \+ settle_s = 1e\+12 s: more than 10,000,000 "
+                                 r"control periods"),
+        (["--duration", "1e-6"], r"duration_s: must be at least one control period"),
     ],
 )
 @pytest.mark.parametrize("command", ["replay", "campaign"])
