@@ -211,6 +211,12 @@ def test_earlier_demonstrations_come_from_the_store_by_skill_tags_and_status(tmp
     ("--timeout", "0", r"--timeout: '0' is not a number of seconds in \(0, 1e7\]"),
     ("--demos", "0", r"--demos: 0 is out of range \(1..1000000\)"),
     ("--domain-id", "300", r"--domain-id: 300 is out of range \(0..232\)"),
+    # the node died with a traceback and exit status 1, which reads as "take it again"
+    ("--topic", "", r"--topic: '' is not a ROS topic name"),
+    ("--topic", "bad topic!", r"--topic: 'bad topic!' is not a ROS topic name \(parts of"),
+    ("--topic", "123", r"--topic: '123' is not a ROS topic name"),
+    ("--topic", "[1,2]", r"--topic: '\[1,2\]' is not a ROS topic name"),
+    ("--topic", "a//b", r"--topic: 'a//b' is not a ROS topic name"),
 ])
 def test_teaching_watch_refuses_bad_bounds_before_starting_anything(capsys, option, value, match):
     from compliant_demo.cli import main
