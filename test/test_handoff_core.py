@@ -93,6 +93,24 @@ def test_bad_commands_are_refused_by_name() -> None:
         hardware.command(equilibrium=np.array([0.0, math.nan]))
 
 
+@pytest.mark.parametrize(
+    ("joints", "q0", "message"),
+    [
+        # a start 8 rad beyond the stop threw the joint off it at 250 rad/s
+        (JOINTS, [10.0, 0.0], r"q0: 10\.0 rad for joint 'shoulder' is outside its range "
+                              r"\[-1\.2, 1\.6\] rad"),
+        (JOINTS, [0.1], r"q0: 1 value\(s\) \[0\.1\] for the 2 joints"),
+        (JOINTS, [0.1, math.nan], r"q0: nan for joint 'elbow' is not a finite angle"),
+        # each copy simulated on its own, and their joint states refused as repeated names
+        (["elbow", "elbow"], None, r"joints = \['elbow', 'elbow'\]: each joint may be named once"),
+    ],
+)
+def test_bad_start_settings_of_the_fake_hardware_are_refused(joints, q0, message) -> None:
+    with pytest.raises(InvalidInputError, match=message):
+        FakeHardware(load_plant(), joints, DT, Faults(),
+                     q0=None if q0 is None else np.array(q0))
+
+
 # -- the gate ------------------------------------------------------------------------------------
 
 
