@@ -50,6 +50,7 @@ __all__ = [
     "ReplayCommands",
     "ReplaySetup",
     "ReplayRun",
+    "check_horizon",
     "damping_command",
     "warm_up",
 ]
@@ -94,6 +95,28 @@ class ReplayCommands:
     stiffness_rate: NDArray[np.float64]
 
 
+def check_horizon(duration_s: float | None, settle_s: float, dt: float,
+                  movement_s: float) -> None:
+    """Refuse a movement shorter than one control period and a replay longer than
+    :data:`MAX_REPLAY_STEPS` periods, naming the value (InvalidInputError).
+
+    Parameters
+    ----------
+    duration_s : the movement duration asked for, s, or None (the demonstrated one)
+    settle_s : time simulated after the movement, s
+    dt : control period, s
+    movement_s : the movement duration the replay will have, s
+    """
+    if duration_s is not None and not (math.isfinite(duration_s) and duration_s >= dt):
+        raise InvalidInputError(f"duration_s: must be at least one control period ({dt:g} s), "
+                                f"got {duration_s!r}")
+    horizon_s = movement_s + settle_s
+    if horizon_s / dt > MAX_REPLAY_STEPS:
+        raise InvalidInputError(
+            f"duration_s + settle_s = {horizon_s:.6g} s: more than {MAX_REPLAY_STEPS:,} "
+            f"control periods of {dt:g} s (at most {MAX_REPLAY_STEPS * dt:g} s)")
+
+
 @dataclass(frozen=True)
 class ReplaySetup:
     """One skill on one plant: everything of a replay but its perturbations and seed.
@@ -127,16 +150,7 @@ class ReplaySetup:
             raise InvalidInputError(f"dt: must be a positive step in s, got {self.dt}")
         if not (math.isfinite(self.settle_s) and self.settle_s >= 0):
             raise InvalidInputError(f"settle_s: must be non-negative, got {self.settle_s}")
-        if self.duration_s is not None and not (
-            math.isfinite(self.duration_s) and self.duration_s >= self.dt
-        ):
-            raise InvalidInputError(f"duration_s: must be at least one control period "
-                                    f"({self.dt:g} s), got {self.duration_s!r}")
-        horizon_s = self.movement_s + self.settle_s
-        if horizon_s / self.dt > MAX_REPLAY_STEPS:
-            raise InvalidInputError(
-                f"duration_s + settle_s = {horizon_s:.6g} s: more than {MAX_REPLAY_STEPS:,} "
-                f"control periods of {self.dt:g} s (at most {MAX_REPLAY_STEPS * self.dt:g} s)")
+        check_horizon(self.duration_s, self.settle_s, self.dt, self.movement_s)
         if not self.max_stiffness_rate > 0:
             raise InvalidInputError(
                 f"max_stiffness_rate: must be positive, got {self.max_stiffness_rate}"
