@@ -87,10 +87,18 @@ def test_bad_faults_are_refused_by_name_and_value(changes: dict, message: str) -
 
 def test_bad_commands_are_refused_by_name() -> None:
     hardware = FakeHardware(load_plant(), JOINTS, DT, Faults())
-    with pytest.raises(InvalidInputError, match=r"stiffness: expected 2 finite values, got \[1"):
+    with pytest.raises(InvalidInputError,
+                       match=r"stiffness: expected 2 finite values >= 0, got \[1"):
         hardware.command(stiffness=np.array([1.0, 2.0, 3.0]))
     with pytest.raises(InvalidInputError, match="equilibrium: expected 2 finite values"):
         hardware.command(equilibrium=np.array([0.0, math.nan]))
+    # taken, it stopped the next step with an error: the fake hardware node's thread ended
+    with pytest.raises(InvalidInputError, match=r"stiffness: expected 2 finite values >= 0, got "
+                                                r"\[-100\.0, 20\.0\]"):
+        hardware.command(stiffness=np.array([-100.0, 20.0]))
+    with pytest.raises(InvalidInputError, match=r"damping: expected 2 finite values >= 0"):
+        hardware.command(damping=np.array([0.5, -1.0]))
+    assert hardware.step()  # still stepping under the commands held before
 
 
 @pytest.mark.parametrize(

@@ -137,16 +137,20 @@ class FakeHardware:
     def command(self, equilibrium: NDArray[np.float64] | None = None,
                 stiffness: NDArray[np.float64] | None = None,
                 damping: NDArray[np.float64] | None = None) -> None:
-        """Take the commands given (each (n_joints,), rad, N*m/rad, N*m*s/rad) and hold them."""
+        """Take the commands given (each (n_joints,), rad, N*m/rad, N*m*s/rad; stiffness and
+        damping >= 0) and hold them."""
         n = len(self.joints)
         for name, value in (("equilibrium", equilibrium), ("stiffness", stiffness),
                             ("damping", damping)):
             if value is None:
                 continue
             array = np.asarray(value, dtype=float)
-            if array.shape != (n,) or not np.isfinite(array).all():
+            if array.shape != (n,) or not np.isfinite(array).all() or (
+                name != "equilibrium" and (array < 0).any()
+            ):
+                rule = "finite values" if name == "equilibrium" else "finite values >= 0"
                 raise InvalidInputError(
-                    f"{name}: expected {n} finite values, got {np.asarray(value).tolist()!r}"
+                    f"{name}: expected {n} {rule}, got {np.asarray(value).tolist()!r}"
                 )
             setattr(self, name, array.copy())
         self.commands_taken += 1
