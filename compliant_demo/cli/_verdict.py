@@ -27,7 +27,8 @@ def add_criteria_option(parser: argparse.ArgumentParser) -> None:
 def read_criteria(args: argparse.Namespace) -> Criteria:
     """The criteria ``--criteria`` names, or the shipped ones."""
     if args.criteria is not None and not args.criteria.is_file():
-        raise InvalidInputError(f"--criteria {str(args.criteria)!r}: no such file")
+        what = "a directory, not a file" if args.criteria.is_dir() else "no such file"
+        raise InvalidInputError(f"--criteria {str(args.criteria)!r}: {what}")
     return load_criteria(args.criteria)
 
 
