@@ -53,6 +53,7 @@ from compliant_demo.sim import SimResult
 from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
+    "MAX_SCENARIOS",
     "TRACE_CHANNELS",
     "ScenarioOutcome",
     "CampaignJob",
@@ -71,6 +72,9 @@ _TARGET_STREAM = 1
 #: Third word of the seed of a scenario's plant draw: its own stream, apart from the schedule's
 #: and the target's.
 _PLANT_STREAM = 2
+
+#: Most scenarios of one campaign.
+MAX_SCENARIOS = 1_000_000
 
 #: Trace channels a campaign keeps per scenario (besides ``t``), each (n_rec, n_joints).
 TRACE_CHANNELS: tuple[str, ...] = ("q", "tau_external", "tau_mechanism", "stiffness_realised")
@@ -159,6 +163,8 @@ class ReplayCampaign:
     def __post_init__(self) -> None:
         if self.n_scenarios < 1:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
+        if self.n_scenarios > MAX_SCENARIOS:  # its batches are planned up front
+            raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: at most {MAX_SCENARIOS:,}")
         if self.decimation < 1:
             raise InvalidInputError(f"decimation = {self.decimation}: must be >= 1")
         check_plant_variation(self.setup.plant, self.spec.plant_variation)

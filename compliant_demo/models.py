@@ -381,7 +381,12 @@ def read_yaml(path: str | Path) -> object:
     except RecursionError:
         raise InvalidInputError(f"{path}: YAML nested too deeply") from None
     except (yaml.YAMLError, ValueError) as exc:
-        raise InvalidInputError(f"{path}: not a readable YAML document: {exc}") from None
+        mark = getattr(exc, "problem_mark", None)
+        where = "" if mark is None else f" at line {mark.line + 1}, column {mark.column + 1}"
+        problem = getattr(exc, "problem", None) or exc
+        raise InvalidInputError(
+            f"{path}: not a readable YAML document{where}: {' '.join(str(problem).split())}"
+        ) from None
 
 
 def load_yaml_model(model: type[ModelT], path: str | Path, *, key: str | None = None) -> ModelT:

@@ -21,7 +21,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from compliant_demo.evaluation import FLAG_KINDS, ScheduleReport, Stretch, check_schedule
 from compliant_demo.exceptions import InvalidInputError
@@ -35,6 +35,7 @@ from compliant_demo.store.records import ReplayResultInfo
 
 __all__ = [
     "CRITERIA_FILE",
+    "THRESHOLD_UNITS",
     "VERDICTS",
     "Threshold",
     "ScheduleRule",
@@ -71,7 +72,7 @@ class Threshold(BaseModel):
 
     model_config = ConfigDict(frozen=True, extra="forbid", allow_inf_nan=False)
 
-    value: float = Field(..., ge=0, description="The threshold, in `unit`.")
+    value: float = Field(..., ge=0, strict=True, description="The threshold, in `unit`.")
     unit: str = Field(..., description="Unit of `value` (SI, or '1' for a ratio).")
     why: str = Field(..., description="One line: what crossing it means and where it comes from.")
 
@@ -98,8 +99,20 @@ class ScheduleRule(BaseModel):
         return _one_line(value, "why")
 
 
+_FRACTION = "fraction of scenarios"
+#: The unit each threshold is read in: a value in another unit would be taken as this one.
+THRESHOLD_UNITS: dict[str, str] = {
+    "min_stretch_duration": "s", "min_damping_ratio": "1", "settling_window": "s",
+    "settling_tolerance": "rad", "max_goal_error": "rad", "max_interaction_torque": "N*m",
+    "max_torque_limit_scenarios": _FRACTION, "max_failed_recovery": _FRACTION,
+    "max_unsettled": _FRACTION, "max_safety_stops": _FRACTION, "tank_initial_energy": "J",
+    "tank_max_energy": "J", "expected_interaction_torque": "N*m",
+}
+
+
 class Thresholds(BaseModel):
-    """The named thresholds of the criteria (see ``config/readiness_criteria.yaml``)."""
+    """The named thresholds of the criteria (see ``config/readiness_criteria.yaml``), each in
+    its unit of :data:`THRESHOLD_UNITS`; fractions of scenarios within [0, 1]."""
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
@@ -117,6 +130,27 @@ class Thresholds(BaseModel):
     tank_max_energy: Threshold
     expected_interaction_torque: Threshold
 
+    @field_validator("*")
+    @classmethod
+    def _in_its_unit(cls, threshold: Threshold, info: Any) -> Threshold:
+        unit = THRESHOLD_UNITS[info.field_name]
+        if threshold.unit.strip() != unit:
+            raise ValueError(f"unit {threshold.unit!r}: this threshold is read in {unit!r}; "
+                             f"convert the value to {unit!r}")
+        if unit == _FRACTION and threshold.value > 1:
+            raise ValueError(f"value {threshold.value!r}: a fraction of scenarios lies in [0, 1]")
+        if info.field_name == "settling_window" and threshold.value == 0:
+            raise ValueError("value 0: the settling window must be a positive duration in s")
+        return threshold
+
+    @model_validator(mode="after")
+    def _tank_bounds(self) -> Thresholds:
+        initial, upper = self.tank_initial_energy.value, self.tank_max_energy.value
+        if upper < initial:
+            raise ValueError(f"tank_max_energy.value = {upper!r} is below "
+                             f"tank_initial_energy.value = {initial!r} J")
+        return self
+
 
 class Criteria(BaseModel):
     """Acceptance criteria of the readiness verdict.
@@ -132,6 +166,15 @@ class Criteria(BaseModel):
 
     thresholds: Thresholds
     schedule_checks: dict[str, ScheduleRule] = Field(..., min_length=1)
+
+    @field_validator("schedule_checks")
+    @classmethod
+    def _known_checks(cls, rules: dict[str, ScheduleRule]) -> dict[str, ScheduleRule]:
+        unknown = sorted(set(rules) - set(FLAG_KINDS) - {CLAMPED_CHECK})
+        if unknown:
+            raise ValueError(f"no such check {unknown}: expected names among "
+                             f"{sorted((*FLAG_KINDS, CLAMPED_CHECK))}")
+        return rules
 
     @property
     def digest(self) -> str:

@@ -44,17 +44,23 @@ from compliant_demo.store.records import ReplayParameters
 
 __all__ = [
     "DEFAULT_SETTLE_S",
+    "MAX_REPLAY_STEPS",
     "STEP_CHANNELS",
     "UNPERTURBED",
     "ReplayCommands",
     "ReplaySetup",
     "ReplayRun",
+    "check_horizon",
     "damping_command",
     "warm_up",
 ]
 
 #: Time simulated after the movement to watch it settle, s: the same for every replay.
 DEFAULT_SETTLE_S = 1.0
+
+#: Most control periods of one replay (movement plus settling): its command and trace arrays are
+#: held in memory, so a horizon of days is refused up front rather than failing to allocate.
+MAX_REPLAY_STEPS = 10_000_000
 
 #: Per-joint channels a stepped replay records, each (n_steps, n_joints).
 STEP_CHANNELS: tuple[str, ...] = (
@@ -87,6 +93,28 @@ class ReplayCommands:
     stiffness: NDArray[np.float64]
     damping: NDArray[np.float64] | None
     stiffness_rate: NDArray[np.float64]
+
+
+def check_horizon(duration_s: float | None, settle_s: float, dt: float,
+                  movement_s: float) -> None:
+    """Refuse a movement shorter than one control period and a replay longer than
+    :data:`MAX_REPLAY_STEPS` periods, naming the value (InvalidInputError).
+
+    Parameters
+    ----------
+    duration_s : the movement duration asked for, s, or None (the demonstrated one)
+    settle_s : time simulated after the movement, s
+    dt : control period, s
+    movement_s : the movement duration the replay will have, s
+    """
+    if duration_s is not None and not (math.isfinite(duration_s) and duration_s >= dt):
+        raise InvalidInputError(f"duration_s: must be at least one control period ({dt:g} s), "
+                                f"got {duration_s!r}")
+    horizon_s = movement_s + settle_s
+    if horizon_s / dt > MAX_REPLAY_STEPS:
+        raise InvalidInputError(
+            f"duration_s + settle_s = {horizon_s:.6g} s: more than {MAX_REPLAY_STEPS:,} "
+            f"control periods of {dt:g} s (at most {MAX_REPLAY_STEPS * dt:g} s)")
 
 
 @dataclass(frozen=True)
@@ -122,6 +150,7 @@ class ReplaySetup:
             raise InvalidInputError(f"dt: must be a positive step in s, got {self.dt}")
         if not (math.isfinite(self.settle_s) and self.settle_s >= 0):
             raise InvalidInputError(f"settle_s: must be non-negative, got {self.settle_s}")
+        check_horizon(self.duration_s, self.settle_s, self.dt, self.movement_s)
         if not self.max_stiffness_rate > 0:
             raise InvalidInputError(
                 f"max_stiffness_rate: must be positive, got {self.max_stiffness_rate}"

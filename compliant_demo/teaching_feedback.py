@@ -31,6 +31,7 @@ from typing import Any
 import numpy as np
 
 from compliant_demo.alignment import align_demonstrations, resample
+from compliant_demo.display import printable
 from compliant_demo.exceptions import InvalidInputError
 
 __all__ = [
@@ -430,6 +431,16 @@ class LiveFeedback:
         return replace(report, reasons=_reasons(report, tracked_s))
 
 
+# Longest published value shown on a line, characters: the values come off the network.
+_SHOWN_CHARS = 400
+
+
+def _shown(values: Mapping[str, str]) -> dict[str, str]:
+    """Every value cut to :data:`_SHOWN_CHARS` with control characters escaped, so a forged
+    message can neither write a line of its own nor send escape sequences to the terminal."""
+    return {key: printable(str(value)[:_SHOWN_CHARS]) for key, value in values.items()}
+
+
 def advice(values: Mapping[str, str], *, as_json: bool = False) -> str | None:
     """The ``teaching-watch`` line for a finished demonstration's published key-values, or None
     while it is not finished.
@@ -441,6 +452,7 @@ def advice(values: Mapping[str, str], *, as_json: bool = False) -> str | None:
     """
     if values.get("state") != "finished":
         return None
+    values = _shown(values)
     retake = values.get("retake") == "true"
     if as_json:
         fields = ("demonstration_id", "store_status", "elapsed_s", "excited_fraction",
@@ -469,6 +481,7 @@ def progress(values: Mapping[str, str]) -> str | None:
     """A line on a demonstration being recorded (``teaching-watch --live``), else None."""
     if values.get("state") != "recording":
         return None
+    values = _shown(values)
     parts = [f"recording {values.get('demonstration_id', '')}: {values.get('elapsed_s', '')} s"]
     if values.get("excited_fraction"):
         parts.append(f"estimate in {float(values['excited_fraction']):.0%} of the windows")

@@ -235,6 +235,19 @@ def test_urdf_errors_name_the_problem(tmp_path):
     massless = _robot(_joint("j1", "base", "a"), '<link name="a"/>')
     with pytest.raises(InvalidInputError, match="has mass 0.0"):
         read_urdf(_write(tmp_path, "massless.urdf", massless))
+    with pytest.raises(InvalidInputError, match="a directory, not a file"):
+        read_urdf(tmp_path)
+    # a chain whose links close a loop: Pinocchio takes the tree from the root and dropped the
+    # rest without a word, so an actuator file naming only the kept joints passed
+    looped = _robot(_joint("j1", "base", "a") + _joint("j2", "c", "b")
+                    + _joint("j3", "b", "c", "fixed"), links)
+    with pytest.raises(InvalidInputError, match=r"joint\(s\) \['j2'\] do not hang from the "
+                                                r"root link's tree \(a loop of links"):
+        read_urdf(_write(tmp_path, "looped.urdf", looped))
+    closed = _robot(_joint("j1", "base", "a") + _joint("j2", "a", "b")
+                    + _joint("j3", "b", "base", "fixed"), links)
+    with pytest.raises(InvalidInputError, match=r"\['j1', 'j2'\] do not hang from the root"):
+        read_urdf(_write(tmp_path, "closed.urdf", closed))
 
 
 def test_plant_file_errors_name_the_field(tmp_path):

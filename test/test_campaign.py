@@ -80,6 +80,9 @@ def test_scenario_schedule_does_not_depend_on_batching_and_covers_every_kind():
 def test_bad_job_settings_are_refused():
     with pytest.raises(InvalidInputError, match=r"n_scenarios = 0: must be >= 1"):
         campaign_job(n_scenarios=0)
+    # its batches are planned up front: 1e11 scenarios hung before the first one ran
+    with pytest.raises(InvalidInputError, match=r"n_scenarios = 100000000000: at most 1,000,000"):
+        campaign_job(n_scenarios=100_000_000_000)
     with pytest.raises(InvalidInputError, match=r"decimation = 0: must be >= 1"):
         campaign_job(decimation=0)
     with pytest.raises(InvalidInputError, match=r"settle_s: must be non-negative, got -1.0"):

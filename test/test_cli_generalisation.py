@@ -48,6 +48,9 @@ def test_replay_to_a_new_goal_and_duration_stores_both(store, capsys):
         (["--goal", "0.2", "nan"], r"argument --goal: 'nan' is not finite"),
         (["--goal", "0.2", "up"], r"argument --goal: 'up' is not a number"),
         (["--duration", "0"], r"argument --duration: '0' must be > 0"),
+        (["--duration", "1e12"], r"duration_s \+ settle_s = 1e\+12 s: more than 10,000,000 "
+                                 r"control periods"),
+        (["--duration", "1e-6"], r"duration_s: must be at least one control period"),
     ],
 )
 @pytest.mark.parametrize("command", ["replay", "campaign"])
@@ -142,4 +145,23 @@ def test_the_tour_refuses_a_goal_outside_the_range_before_recording(tmp_path, ca
     settings = TourSettings(store=path, out_dir=tmp_path / "run", goal=(0.2, 1.9))
     with pytest.raises(InvalidInputError, match=r"goal: 1\.9 rad for joint 'elbow' is outside"):
         run_tour(settings, progress=False)
+    assert not path.exists() and not (tmp_path / "run").exists()
+
+
+@pytest.mark.parametrize(
+    ("argv", "pattern"),
+    [
+        # each was refused only after four demonstrations were recorded and learned (45 s)
+        (["--duration", "1e12"], r"duration_s \+ settle_s = 1e\+12 s: more than 10,000,000"),
+        (["--duration", "1e-9"], r"duration_s: must be at least one control period"),
+        (["--scenarios", "100000000000"], r"n_scenarios = 100000000000: at most 1,000,000"),
+    ],
+)
+def test_the_tour_refuses_a_replay_it_cannot_run_before_recording(tmp_path, capsys, argv,
+                                                                   pattern):
+    path = tmp_path / "store.sqlite"
+    status, _, err = run_cli(capsys, "tour", "--store", path, "--out", tmp_path / "run", *argv,
+                             "--quiet")
+    assert status == 2
+    one_line_error(err, "tour", pattern)
     assert not path.exists() and not (tmp_path / "run").exists()

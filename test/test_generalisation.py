@@ -179,6 +179,23 @@ def test_goals_are_checked_against_the_plant_joint_ranges():
         ReplaySetup(cork_seat_skill(), plant(), goal=(0.1, high))
 
 
+@pytest.mark.parametrize(
+    ("duration_s", "settle_s", "match"),
+    [
+        # shorter than a control period: the rollout's linear solve was singular (a traceback)
+        (1e-12, 1.0, r"duration_s: must be at least one control period \(0\.001 s\), got 1e-12"),
+        (math.inf, 1.0, r"duration_s: must be at least one control period .* got inf"),
+        # a horizon of years: the arrays failed to allocate (a traceback after minutes)
+        (1e12, 1.0, r"duration_s \+ settle_s = 1e\+12 s: more than 10,000,000 control periods "
+                    r"of 0\.001 s \(at most 10000 s\)"),
+        (None, 1e12, r"duration_s \+ settle_s = 1e\+12 s: more than 10,000,000"),
+    ],
+)
+def test_replay_durations_outside_what_can_be_simulated_are_refused(duration_s, settle_s, match):
+    with pytest.raises(InvalidInputError, match=match):
+        ReplaySetup(cork_seat_skill(), plant(), duration_s=duration_s, settle_s=settle_s)
+
+
 def test_a_nominal_spec_serialises_without_the_generalisation_fields():
     spec = campaign_job().spec
     assert "goal_offset_rad" not in spec.model_dump(mode="json")

@@ -87,10 +87,36 @@ def test_bad_faults_are_refused_by_name_and_value(changes: dict, message: str) -
 
 def test_bad_commands_are_refused_by_name() -> None:
     hardware = FakeHardware(load_plant(), JOINTS, DT, Faults())
-    with pytest.raises(InvalidInputError, match=r"stiffness: expected 2 finite values, got \[1"):
+    with pytest.raises(InvalidInputError,
+                       match=r"stiffness: expected 2 finite values >= 0, got \[1"):
         hardware.command(stiffness=np.array([1.0, 2.0, 3.0]))
     with pytest.raises(InvalidInputError, match="equilibrium: expected 2 finite values"):
         hardware.command(equilibrium=np.array([0.0, math.nan]))
+    # taken, it stopped the next step with an error: the fake hardware node's thread ended
+    with pytest.raises(InvalidInputError, match=r"stiffness: expected 2 finite values >= 0, got "
+                                                r"\[-100\.0, 20\.0\]"):
+        hardware.command(stiffness=np.array([-100.0, 20.0]))
+    with pytest.raises(InvalidInputError, match=r"damping: expected 2 finite values >= 0"):
+        hardware.command(damping=np.array([0.5, -1.0]))
+    assert hardware.step()  # still stepping under the commands held before
+
+
+@pytest.mark.parametrize(
+    ("joints", "q0", "message"),
+    [
+        # a start 8 rad beyond the stop threw the joint off it at 250 rad/s
+        (JOINTS, [10.0, 0.0], r"q0: 10\.0 rad for joint 'shoulder' is outside its range "
+                              r"\[-1\.2, 1\.6\] rad"),
+        (JOINTS, [0.1], r"q0: 1 value\(s\) \[0\.1\] for the 2 joints"),
+        (JOINTS, [0.1, math.nan], r"q0: nan for joint 'elbow' is not a finite angle"),
+        # each copy simulated on its own, and their joint states refused as repeated names
+        (["elbow", "elbow"], None, r"joints = \['elbow', 'elbow'\]: each joint may be named once"),
+    ],
+)
+def test_bad_start_settings_of_the_fake_hardware_are_refused(joints, q0, message) -> None:
+    with pytest.raises(InvalidInputError, match=message):
+        FakeHardware(load_plant(), joints, DT, Faults(),
+                     q0=None if q0 is None else np.array(q0))
 
 
 # -- the gate ------------------------------------------------------------------------------------

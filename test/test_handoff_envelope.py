@@ -178,6 +178,25 @@ def test_bad_limits_are_refused_by_name_and_value(changes: dict, message: str) -
         limits(**changes)
 
 
+@pytest.mark.parametrize("bad", [np.array([np.nan, 0.0]), np.array([0.0, np.inf]),
+                                 np.zeros(3), np.zeros((1, 2))])
+def test_an_unusable_joint_state_stops_on_the_last_usable_pose(bad: np.ndarray) -> None:
+    # a NaN angle made the torque watchdog blind (NaN > limit is False) and the stop's
+    # equilibrium NaN: every command after it would have been NaN
+    eq, k = constant(500, [0.1, -0.1], [60.0, 60.0])
+    envelope = SafetyEnvelope(limits(soft_start_s=0.0), DT, eq, k, None, np.zeros(2))
+    run(envelope, 20)
+    last = envelope._last_measured.copy()
+    command = envelope.tick(20 * DT, bad, 20 * DT)
+    assert command.stop is not None and command.stop.reason == "stale_feedback"
+    assert command.stop.detail.startswith(f"unusable joint state: shape {bad.shape}")
+    np.testing.assert_array_equal(command.equilibrium, last)
+    for later in run(envelope, 100, bad):
+        assert np.isfinite(later.equilibrium).all() and np.isfinite(later.stiffness).all()
+    assert envelope.finished
+    assert envelope_violations(envelope.trace(), envelope.limits, DT) == []
+
+
 def test_bad_commands_and_stop_reasons_are_refused() -> None:
     eq, k = constant(5, [0.0, 0.0], [20.0, 20.0])
     with pytest.raises(InvalidInputError, match=r"stiffness: shape \(5, 1\), expected \(5, 2\)"):

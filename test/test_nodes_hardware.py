@@ -9,6 +9,8 @@ not stop a run by a gap of its own; the 500 Hz figures are measured by bench/ben
 from __future__ import annotations
 
 import re
+import signal
+import time
 from pathlib import Path
 
 import numpy as np
@@ -17,6 +19,7 @@ from nodes_support import DiagnosticsOf, TestClient, set_parameter, start_module
 
 from compliant_demo.handoff.envelope import EnvelopeLimits, envelope_violations
 from compliant_demo.learning import learn_skill, save_skill
+from compliant_demo.nodes._common import to_stamp
 from compliant_demo.plant import load_plant
 from compliant_demo.readiness import Reason, Verdict, load_criteria
 from compliant_demo.store import DemoStore
@@ -25,6 +28,7 @@ from compliant_demo.teaching import cork_seat_scenario, teaching_series
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
 
 DOMAIN_ID = 86
+HOSTILE_DOMAIN_ID = 88  # the hostile-feedback and shutdown test's own domain
 TOPICS = ["equilibrium_topic:=/arm/equilibrium", "stiffness_topic:=/arm/stiffness",
           "damping_topic:=/arm/damping", "feedback_topic:=/arm/joint_states"]
 FAKE = ["rate_hz:=100.0", "diagnostics_period_s:=0.2", *TOPICS]
@@ -212,6 +216,67 @@ def test_a_second_commander_is_refused_and_stops_a_running_one(store: Path,
         if second is not None:
             second.close()
         first.close()
+        fake.close()
+
+
+def test_future_stamped_feedback_is_refused_and_a_terminated_run_ends_with_its_stop_ramp(
+    store: Path, tmp_path: Path
+) -> None:
+    from sensor_msgs.msg import JointState  # ROS messages load inside the tests
+    from std_msgs.msg import Float64MultiArray
+
+    fake = start_module("compliant_demo.nodes.fake_hardware", FAKE, HOSTILE_DOMAIN_ID,
+                        tmp_path / "fake.log", "fake_hardware")
+    replay = start_module("compliant_demo.nodes.replay",
+                          replay_parameters(store, "skill:=ready", "settle_s:=40.0"),
+                          HOSTILE_DOMAIN_ID, tmp_path / "replay_e.log", "replay",
+                          remaps=["__ns:=/e"])
+    client = TestClient(HOSTILE_DOMAIN_ID, "hardware_hostile_client")
+    diagnostics = DiagnosticsOf(client, "replay", "/e/diagnostics")
+    stiffness: list = []
+    client.node.create_subscription(Float64MultiArray, "/arm/stiffness", stiffness.append, 10)
+    hostile = client.node.create_publisher(JointState, "/arm/joint_states", 10)
+    try:
+        client.spin_until(lambda: diagnostics.latest.get("feedback_received", "0") != "0", 60.0,
+                          "joint states at the replay node")
+        # one sample from an hour ahead, far from the true pose: before it was refused, every
+        # real sample after it looked old, and a run could start only from its pose
+        forged = JointState(name=["shoulder", "elbow"], position=[2.0, -2.0])
+        forged.header.stamp = to_stamp(time.time() + 3600.0)
+        unset = JointState(name=["shoulder", "elbow"], position=[2.0, -2.0])
+        for _ in range(5):
+            hostile.publish(forged)
+            hostile.publish(unset)
+            client.spin_for(0.05)
+        rejected = {"future_stamp": "0", "invalid_stamp": "0"}
+
+        def counted() -> bool:
+            for key, value in diagnostics.latest.items():
+                reason = key.rsplit("/", 1)[-1]
+                if key.startswith("rejected/") and reason in rejected:
+                    rejected[reason] = value
+            return "0" not in rejected.values()
+
+        client.spin_until(counted, 30.0, "the forged joint states counted as rejected")
+        started = client.call_trigger("/e/run")
+        assert started.success, started.message + replay.log("replay")
+        client.spin_until(lambda: diagnostics.latest.get("phase") == "running", 30.0,
+                          "the run past its soft start")
+        replay["replay"].send_signal(signal.SIGTERM)
+        assert replay.wait("replay", 30.0) == 0, replay.log("replay")
+        client.spin_for(0.5)
+        result = max(results(store, "ready"), key=lambda r: r.info.created)
+        assert (result.info.status, result.info.reason) == ("stopped",
+                                                            "shutdown: the node is ending")
+        limits = EnvelopeLimits(**result.info.metrics["envelope"])
+        assert envelope_violations(result.trace, limits, 0.01) == []
+        # the hardware is left holding the safe stiffness, not a command of the path
+        assert result.trace["stiffness"][-1].tolist() == [limits.safe_stiffness] * 2
+        assert list(stiffness[-1].data) == [limits.safe_stiffness] * 2
+        np.testing.assert_array_less(np.abs(result.trace["measured"]), 1.9)
+    finally:
+        client.close()
+        replay.close()
         fake.close()
 
 

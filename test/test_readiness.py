@@ -13,7 +13,7 @@ import yaml
 from store_support import add_demo
 
 from compliant_demo.cli._verdict import SHOWN_REASONS, print_verdict
-from compliant_demo.exceptions import InvalidInputError, NotFoundError
+from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreCorruptError
 from compliant_demo.models import IdealImpedanceParams, JointParams
 from compliant_demo.plant import ReplayPlant, load_plant
 from compliant_demo.primitives import Rollout
@@ -83,6 +83,30 @@ def test_criteria_digest_is_the_sha256_of_canonical_json(tmp_path):
         (lambda d: d["thresholds"].update(max_speed={"value": 1, "unit": "rad/s", "why": "x"}),
          r"thresholds\.max_speed"),
         (lambda d: d.update(schedule_checks={}), r"schedule_checks"),
+        # a value in another unit would be read in the threshold's own unit
+        (lambda d: d["thresholds"]["settling_window"].update(value=500, unit="ms"),
+         r"thresholds\.settling_window.*unit 'ms': this threshold is read in 's'"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(unit="deg"),
+         r"thresholds\.max_goal_error.*unit 'deg'.*read in 'rad'"),
+        (lambda d: d["thresholds"]["max_failed_recovery"].update(value=5),
+         r"thresholds\.max_failed_recovery.*value 5\.0: a fraction of scenarios lies in \[0, 1\]"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value=float("nan")),
+         r"thresholds\.max_goal_error\.value.*nan.*finite"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value=float("inf")),
+         r"thresholds\.max_goal_error\.value.*inf.*finite"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value="0.02"),
+         r"thresholds\.max_goal_error\.value.*'0\.02'"),
+        (lambda d: d["thresholds"]["max_goal_error"].update(value=True),
+         r"thresholds\.max_goal_error\.value.*True"),
+        (lambda d: d["thresholds"]["settling_window"].update(value=0),
+         r"thresholds\.settling_window.*value 0: the settling window must be a positive"),
+        (lambda d: d["thresholds"]["tank_max_energy"].update(value=0.01),
+         r"tank_max_energy\.value = 0\.01 is below tank_initial_energy\.value = 0\.05"),
+        (lambda d: d["schedule_checks"].update(under_dampd={"why": "typo"}),
+         r"schedule_checks.*no such check \['under_dampd'\]"),
+        (lambda d: d["schedule_checks"].update(energy_tank_empty={"why": "x", "threshold": None,
+                                                                  "extra": 1}),
+         r"schedule_checks\.energy_tank_empty\.extra"),
     ],
 )
 def test_bad_criteria_file_names_field_and_value(tmp_path, edit, match):
@@ -97,6 +121,13 @@ def test_criteria_file_errors_name_the_file(tmp_path):
         load_criteria(tmp_path / "missing.yaml")
     with pytest.raises(InvalidInputError, match=r"criteria\.yaml: expected a mapping"):
         load_criteria(_write(tmp_path, [1, 2]))
+    with pytest.raises(InvalidInputError, match=r"cannot read file: Is a directory"):
+        load_criteria(tmp_path)
+    broken = tmp_path / "broken.yaml"
+    broken.write_text("thresholds: [\n", encoding="utf-8")
+    with pytest.raises(InvalidInputError, match=r"^\S*broken\.yaml: not a readable YAML "
+                                                r"document at line 2, column 1: [^\n]*$"):
+        load_criteria(broken)
 
 
 def test_verdict_orders_reasons_most_severe_first_and_is_json_ready():
@@ -207,6 +238,66 @@ def test_save_verdict_errors_store_nothing(store_with_skill):
     with pytest.raises(InvalidInputError, match="latest|criteria_digest must be a SHA-256"):
         store.latest_verdict(skill_id, plant_digest=keys["plant_digest"], criteria_digest="x")
     assert store.db.execute("SELECT count(*) FROM verdicts").fetchone() == (0,)
+
+
+class _Document:
+    """A verdict document as any caller may hand the store, bypassing Verdict's own checks."""
+
+    def __init__(self, verdict: object, reasons: object) -> None:
+        self.document = {"verdict": verdict, "reasons": reasons}
+
+    def to_dict(self) -> dict:
+        return self.document
+
+
+@pytest.mark.parametrize(
+    ("verdict", "reasons", "match"),
+    [
+        # the gate lets a stored 'ready' through: it must not carry reasons against it
+        ("ready", [{"check": "under_damped"}], r"verdict 'ready' with 1 reason\(s\)"),
+        ("not_ready", [], r"verdict 'not_ready' with 0 reason\(s\)"),
+        ("maybe", [], r"verdict must be 'ready' or 'not_ready', got 'maybe'"),
+        ("not_ready", {"check": "x"}, r"reasons must be a list of mappings"),
+        ("not_ready", [{"joint": "elbow"}], r"reason 0: 'check' must name a check, got None"),
+        ("not_ready", [{"check": "x", "value": float("nan")}], r"every number must be finite"),
+    ],
+)
+def test_the_store_refuses_an_inconsistent_verdict_document(store_with_skill, verdict, reasons,
+                                                            match):
+    store, skill_id = store_with_skill
+    criteria = load_criteria()
+    keys = {"plant_digest": load_plant().digest, "criteria_digest": criteria.digest}
+    with pytest.raises(InvalidInputError, match=match):
+        store.save_verdict(_Document(verdict, reasons), skill_id=skill_id, campaign_id=None,
+                           criteria=criteria.model_dump(mode="json"), **keys)
+    assert store.db.execute("SELECT count(*) FROM verdicts").fetchone() == (0,)
+
+
+@pytest.mark.parametrize(
+    ("column", "text", "match"),
+    [
+        ("reasons", "{broken", r"Expecting property name"),
+        ("reasons", "{}", r"reasons must be a list of mappings, got \{\}"),
+        ("reasons", "[]", r"verdict 'not_ready' with 0 reason\(s\)"),
+        ("criteria", "null", r"criteria must be a mapping, got NoneType"),
+    ],
+)
+def test_a_damaged_verdict_row_is_named_by_latest_verdict_and_verify(
+    store_with_skill, column, text, match
+):
+    store, skill_id = store_with_skill
+    criteria = load_criteria()
+    keys = {"plant_digest": load_plant().digest, "criteria_digest": criteria.digest}
+    verdict_id = store.save_verdict(Verdict.from_reasons([_reason()]), skill_id=skill_id,
+                                    campaign_id=None, criteria=criteria.model_dump(mode="json"),
+                                    **keys)
+    assert store.verify() == []
+    store.db.execute(f"UPDATE verdicts SET {column} = ?", (text,))
+    damaged = rf"verdict '{verdict_id}' has damaged stored data: .*{match}"
+    with pytest.raises(StoreCorruptError, match=damaged):
+        store.latest_verdict(skill_id, **keys)
+    (finding,) = store.verify()
+    assert finding.startswith(f"verdict {verdict_id}: damaged stored data")
 
 
 # --- assess ------------------------------------------------------------------------------------

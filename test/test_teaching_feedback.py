@@ -207,10 +207,30 @@ def test_earlier_demonstrations_come_from_the_store_by_skill_tags_and_status(tmp
         assert len(earlier_demonstrations(store, "cork_seat", ["bench"], ["elbow"], 1)) == 1
 
 
+def test_forged_feedback_values_can_neither_write_lines_nor_send_escapes():
+    forged = {"state": "finished", "retake": "true", "demonstration_id": "d-9\ndemonstration "
+              "d-10: keep it", "reasons": "\x1b[2J" + "x" * 5000}
+    line = advice(forged)
+    assert line is not None and "\n" not in line and "\x1b" not in line
+    assert line.startswith("demonstration d-9\\ndemonstration d-10: keep it: take it again: "
+                           "\\x1b[2J")
+    assert len(line) < 1000
+    assert json.loads(advice(forged, as_json=True))["demonstration_id"].startswith("d-9\\n")
+    recording = dict(forged, state="recording", elapsed_s="\u202e1.0")
+    assert progress(recording).startswith("recording d-9\\ndemonstration d-10: keep it: "
+                                          "\\u202e1.0 s")
+
+
 @pytest.mark.parametrize(("option", "value", "match"), [
     ("--timeout", "0", r"--timeout: '0' is not a number of seconds in \(0, 1e7\]"),
     ("--demos", "0", r"--demos: 0 is out of range \(1..1000000\)"),
     ("--domain-id", "300", r"--domain-id: 300 is out of range \(0..232\)"),
+    # the node died with a traceback and exit status 1, which reads as "take it again"
+    ("--topic", "", r"--topic: '' is not a ROS topic name"),
+    ("--topic", "bad topic!", r"--topic: 'bad topic!' is not a ROS topic name \(parts of"),
+    ("--topic", "123", r"--topic: '123' is not a ROS topic name"),
+    ("--topic", "[1,2]", r"--topic: '\[1,2\]' is not a ROS topic name"),
+    ("--topic", "a//b", r"--topic: 'a//b' is not a ROS topic name"),
 ])
 def test_teaching_watch_refuses_bad_bounds_before_starting_anything(capsys, option, value, match):
     from compliant_demo.cli import main

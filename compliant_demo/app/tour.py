@@ -24,6 +24,7 @@ from compliant_demo.app.report_content import GroundTruth, collect_report_conten
 from compliant_demo.app.run_plan import RunPlan, planned_run, run_tag
 from compliant_demo.app.supervisor import deferred_signals, node_environment, stop_children
 from compliant_demo.campaign import (
+    MAX_SCENARIOS,
     CampaignSummary,
     ReplayCampaign,
     default_campaign_spec,
@@ -34,7 +35,7 @@ from compliant_demo.generalisation import check_goal
 from compliant_demo.learning import LearnRequest, learn_from_store
 from compliant_demo.plant import load_plant
 from compliant_demo.readiness import Verdict, load_criteria, record_verdict
-from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup
+from compliant_demo.replay import DEFAULT_SETTLE_S, ReplaySetup, check_horizon
 from compliant_demo.report import write_report
 from compliant_demo.resources import package_launch_file
 from compliant_demo.store import DemoStore
@@ -117,6 +118,8 @@ class TourSettings:
             raise InvalidInputError(f"operator = {self.operator!r}: must not be empty")
         if self.n_scenarios < 1:
             raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: must be >= 1")
+        if self.n_scenarios > MAX_SCENARIOS:
+            raise InvalidInputError(f"n_scenarios = {self.n_scenarios}: at most {MAX_SCENARIOS:,}")
         if self.seed is not None and not 0 <= self.seed <= 2**31 - 1 - self.n_demonstrations:
             raise InvalidInputError(
                 f"seed = {self.seed}: must be 0 to 2**31 - 1 - n_demonstrations (demonstration i "
@@ -305,6 +308,9 @@ def run_tour(
     criteria = load_criteria(settings.criteria)
     if settings.goal is not None:  # before anything is recorded
         check_goal(settings.goal, plant.joints, "goal")
+    if settings.duration_s is not None:
+        check_horizon(settings.duration_s, settings.settle_s, ReplaySetup.dt,
+                      settings.duration_s)
     with planned_run(run_tag("tour"), seed=settings.seed, domain_id=settings.domain_id,
                      out_dir=settings.out_dir) as plan:
         if announce is not None:

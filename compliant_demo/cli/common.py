@@ -73,7 +73,8 @@ def existing_file(option: str, path: Path) -> Path:
             return package_file(*path.parts)
         except InvalidInputError:
             pass
-    raise InvalidInputError(f"{option} {str(path)!r}: no such file")
+    what = "a directory, not a file" if path.is_dir() else "no such file"
+    raise InvalidInputError(f"{option} {str(path)!r}: {what}")
 
 
 def integer_in_range(low: int, high: int = INT64_MAX) -> Callable[[str], int]:

@@ -10,7 +10,9 @@ should be taken again, 3 ``--timeout`` passed before ``--demos`` verdicts, 130 i
 from __future__ import annotations
 
 import argparse
+import json
 import os
+import re
 import subprocess
 import sys
 
@@ -34,6 +36,19 @@ def _seconds(text: str) -> float:
     return value
 
 
+# A ROS 2 topic name (relative, absolute or private): parts of letters, digits and _, none
+# starting with a digit, joined by single slashes (common practice: the ROS 2 name rules).
+_TOPIC = re.compile(r"(~/?|/)?[A-Za-z_][A-Za-z0-9_]*(/[A-Za-z_][A-Za-z0-9_]*)*")
+
+
+def _topic(text: str) -> str:
+    if not _TOPIC.fullmatch(text):
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a ROS topic name (parts of letters, digits and _, each starting "
+            "with a letter or _, joined by /)")
+    return text
+
+
 def register(subparsers: argparse._SubParsersAction) -> None:
     """Add the ``teaching-watch`` subcommand."""
     parser = subparsers.add_parser(
@@ -55,7 +70,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="end after S seconds (default: no limit)")
     parser.add_argument("--live", action="store_true",
                         help="also print the figures while a demonstration is recorded")
-    parser.add_argument("--topic", default="teaching_feedback",
+    parser.add_argument("--topic", type=_topic, default="teaching_feedback",
                         help="the recorder's feedback topic (default: teaching_feedback)")
     parser.add_argument("--domain-id", type=integer_in_range(0, 232), default=None, metavar="ID",
                         help="ROS domain of the recorder (default: $ROS_DOMAIN_ID)")
@@ -67,7 +82,9 @@ def _run(args: argparse.Namespace) -> int:
     env = dict(os.environ)
     if args.domain_id is not None:
         env["ROS_DOMAIN_ID"] = str(args.domain_id)
-    parameters = {"topic": args.topic, "demonstrations": args.demos, "timeout_s": args.timeout,
+    # the topic quoted: rcl reads a value as YAML, and a topic named true or on is a string
+    parameters = {"topic": json.dumps(args.topic), "demonstrations": args.demos,
+                  "timeout_s": args.timeout,
                   "live": str(args.live).lower(), "json": str(args.json).lower()}
     command = [sys.executable, "-m", "compliant_demo.nodes.teaching_watch", "--ros-args"]
     for name, value in parameters.items():

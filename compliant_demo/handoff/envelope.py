@@ -257,12 +257,18 @@ class SafetyEnvelope:
         now_s : float, s
             Time of this period on the clock ``fresh_at_s`` uses (from the run's start).
         measured : (n_joints,) array, rad, or None
-            The latest measured joint angles (None: none since the start).
+            The latest measured joint angles (None: none since the start). Another shape or a
+            non-finite angle stops the run (``stale_feedback``) on the last usable angles.
         fresh_at_s : float or None, s
             When the latest fresh joint state (newer stamp than the one before) arrived.
         """
         if measured is not None:
-            self._last_measured = np.asarray(measured, dtype=float).copy()
+            sample = np.asarray(measured, dtype=float)
+            if sample.shape == (self.n_joints,) and np.isfinite(sample).all():
+                self._last_measured = sample.copy()
+            else:  # never a command from it: stop on the last usable pose
+                self.request_stop("stale_feedback", f"unusable joint state: shape {sample.shape}"
+                                  f", finite: {bool(np.isfinite(sample).all())}")
         stop = self._watch(now_s, fresh_at_s)
         if stop is not None:
             command = self._begin_stop(stop)

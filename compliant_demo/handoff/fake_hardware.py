@@ -18,6 +18,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from compliant_demo.exceptions import InvalidInputError
+from compliant_demo.generalisation import check_goal
 from compliant_demo.plant import ReplayPlant
 from compliant_demo.sim import Simulator
 
@@ -93,7 +94,7 @@ class FakeHardware:
     dt : float, s
         Simulation step and joint-state period.
     faults : Faults
-    q0 : (n_joints,) array, rad, or None (the middle of each joint's range)
+    q0 : (n_joints,) array, rad, inside each joint's range, or None (the middle of the range)
     initial_stiffness : float, N*m/rad
         Stiffness held before the first stiffness command, equilibrium at ``q0``.
     seed : int
@@ -106,10 +107,14 @@ class FakeHardware:
     def __init__(self, plant: ReplayPlant, joints: list[str], dt: float, faults: Faults,
                  q0: NDArray[np.float64] | None = None, initial_stiffness: float = 20.0,
                  seed: int = 0, armed: bool = True) -> None:
+        if len(set(joints)) != len(joints):
+            raise InvalidInputError(f"joints = {list(joints)!r}: each joint may be named once")
         records = plant.for_joints(joints)
         if q0 is None:
             q0 = np.array([0.5 * (j.lower_limit + j.upper_limit) if math.isfinite(
                 j.lower_limit + j.upper_limit) else 0.0 for j in records])
+        else:  # a start beyond a limit would throw the joint off its stop at once
+            check_goal(np.asarray(q0, dtype=float).ravel().tolist(), records, "q0")
         self.joints = list(joints)
         self.dt = float(dt)
         self.faults = faults
@@ -132,16 +137,20 @@ class FakeHardware:
     def command(self, equilibrium: NDArray[np.float64] | None = None,
                 stiffness: NDArray[np.float64] | None = None,
                 damping: NDArray[np.float64] | None = None) -> None:
-        """Take the commands given (each (n_joints,), rad, N*m/rad, N*m*s/rad) and hold them."""
+        """Take the commands given (each (n_joints,), rad, N*m/rad, N*m*s/rad; stiffness and
+        damping >= 0) and hold them."""
         n = len(self.joints)
         for name, value in (("equilibrium", equilibrium), ("stiffness", stiffness),
                             ("damping", damping)):
             if value is None:
                 continue
             array = np.asarray(value, dtype=float)
-            if array.shape != (n,) or not np.isfinite(array).all():
+            if array.shape != (n,) or not np.isfinite(array).all() or (
+                name != "equilibrium" and (array < 0).any()
+            ):
+                rule = "finite values" if name == "equilibrium" else "finite values >= 0"
                 raise InvalidInputError(
-                    f"{name}: expected {n} finite values, got {np.asarray(value).tolist()!r}"
+                    f"{name}: expected {n} {rule}, got {np.asarray(value).tolist()!r}"
                 )
             setattr(self, name, array.copy())
         self.commands_taken += 1

@@ -4,7 +4,9 @@ Per command interface one ``std_msgs/Float64MultiArray`` topic, one value per jo
 of ``command_joints`` (the form ros2_control's forward command controllers take): equilibrium
 (rad), stiffness (N*m/rad) and, where the skill commands one, damping (N*m*s/rad); optionally a
 ``trajectory_msgs/JointTrajectory`` with the equilibrium as its one point. Feedback is
-``sensor_msgs/JointState`` on ``feedback_topic``, joints picked by name. Every command passes the
+``sensor_msgs/JointState`` on ``feedback_topic``, joints picked by name; a sample with an unset
+or invalid stamp, or stamped more than 0.5 s ahead of the node's clock, is refused (counted in
+diagnostics). Every command passes the
 :class:`compliant_demo.handoff.envelope.SafetyEnvelope` (soft start, clamps, watchdogs, stop) in a
 thread of its own on absolute deadlines (:class:`PeriodicThread`).
 
@@ -73,6 +75,10 @@ _UNNAMED = "_NODE_NAME_UNKNOWN_"
 # A run starts from a joint state at most this old (or the stale timeout, if longer), s: the
 # service call waits in the same executor as the feedback, so the very last sample may be queued.
 _START_FEEDBACK_AGE_S = 0.5
+
+# A joint state stamped further ahead of the node's clock than this is refused, s: freshness is
+# judged by newer stamps, so one sample from the future would make every real one after it stale.
+_FUTURE_STAMP_S = 0.5
 
 HardwareOutcome = tuple[str, "str | None", dict[str, Any], dict[str, np.ndarray]]
 
@@ -325,6 +331,10 @@ class HardwareMode:
         if len(positions) != len(message.name) or not all(map(math.isfinite, message.position)):
             self._rejects.reject(topic, "non_finite_or_duplicate", "NaN, inf or a repeated name")
             return
+        problem = self._stamp_problem(message.header.stamp)
+        if problem is not None:
+            self._rejects.reject(topic, *problem)
+            return
         stamp = stamp_seconds(message.header.stamp)
         arrived = time.monotonic()
         with feedback.lock:
@@ -341,6 +351,16 @@ class HardwareMode:
             feedback.stamp, feedback.fresh_at = stamp, arrived
             if joints:
                 feedback.q = np.array([positions[name] for name in joints])
+
+    def _stamp_problem(self, stamp: Any) -> tuple[str, str] | None:
+        """(reason, detail) for a stamp freshness cannot be judged by: unset, invalid, or
+        ahead of this node's clock (one such sample would make every later one look old)."""
+        if stamp.sec < 0 or stamp.nanosec >= 1_000_000_000 or stamp.sec == stamp.nanosec == 0:
+            return "invalid_stamp", f"sec={stamp.sec}, nanosec={stamp.nanosec}"
+        ahead = stamp_seconds(stamp) - self._node.get_clock().now().nanoseconds * 1e-9
+        if ahead > _FUTURE_STAMP_S:
+            return "future_stamp", f"{ahead:+.3g} s ahead of the node's clock"
+        return None
 
     def _other_commanders(self) -> str:
         own = (self._node.get_name(), self._node.get_namespace())

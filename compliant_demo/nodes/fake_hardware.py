@@ -125,6 +125,9 @@ class FakeHardwareNode(Node):
             self.rejects.reject(topic, "wrong_length_or_non_finite",
                                 f"{len(values)} values for {len(self.joints)} joints")
             return
+        if name != "equilibrium" and (values < 0).any():  # the simulator refuses it mid-step
+            self.rejects.reject(topic, "negative", f"{name} below 0")
+            return
         arrived = time.monotonic()
         with self._lock:
             self._pending[name] = values

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from xml.etree import ElementTree
 
 import numpy as np
 
@@ -50,7 +51,8 @@ def pinocchio_model(path: str | Path):  # -> pinocchio.Model (untyped library)
 
     path = Path(path)
     if not path.is_file():
-        raise InvalidInputError(f"urdf = {str(path)!r}: no such file")
+        what = "a directory, not a file" if path.is_dir() else "no such file"
+        raise InvalidInputError(f"urdf = {str(path)!r}: {what}")
     try:
         model = pin.buildModelFromUrdf(str(path))
     except (ValueError, RuntimeError) as exc:
@@ -58,6 +60,23 @@ def pinocchio_model(path: str | Path):  # -> pinocchio.Model (untyped library)
         raise InvalidInputError(f"urdf = {str(path)!r}: not a readable URDF: {first}") from None
     model.gravity.linear = np.array([0.0, 0.0, -GRAVITY])
     return model
+
+
+def _check_every_joint_read(path: Path, read: set[str]) -> None:
+    """Refuse a file whose moving joints Pinocchio did not all take: it builds the tree from
+    one root link and drops, without a word, joints on a loop or on a second tree."""
+    try:
+        root = ElementTree.parse(path).getroot()
+    except ElementTree.ParseError as exc:
+        raise InvalidInputError(f"urdf = {str(path)!r}: not a readable URDF: {exc}") from None
+    moving = [str(joint.get("name")) for joint in root.iter("joint")
+              if joint.get("type") != "fixed"]
+    dropped = [name for name in moving if name not in read]
+    if dropped:
+        raise InvalidInputError(
+            f"urdf = {str(path)!r}: joint(s) {dropped} do not hang from the root link's tree "
+            "(a loop of links, or a second tree); only one serial chain is simulated"
+        )
 
 
 def _vector(values) -> tuple[float, float, float]:
@@ -97,6 +116,7 @@ def read_urdf(path: str | Path) -> tuple[ChainParams, list[UrdfJoint]]:
     """
     path = Path(path)
     model = pinocchio_model(path)
+    _check_every_joint_read(path, {str(name) for name in model.names})
     bodies, joints = [], []
     for index in range(1, model.njoints):
         name = str(model.names[index])

@@ -7,7 +7,7 @@ import os
 import time
 
 from compliant_demo.exceptions import InvalidInputError, NotFoundError, StoreError
-from compliant_demo.store import _codec, _samples
+from compliant_demo.store import _codec, _samples, _verdicts
 from compliant_demo.store._recording import FINAL_STATUSES, status_of
 from compliant_demo.store._rows import choice
 from compliant_demo.store._session import StoreSession
@@ -104,7 +104,8 @@ def integrity_problems(session: StoreSession) -> list[str]:
 
 def verify(session: StoreSession) -> list[str]:
     """Every finding in the store: SQLite's own checks, then every chunk of every demonstration
-    read and checked against its metadata (one line each, ``[]`` for a sound store)."""
+    read and checked against its metadata, then every verdict read back (one line each, ``[]``
+    for a sound store)."""
     problems = integrity_problems(session)
     findings = [] if problems == ["ok"] else [f"file: {problem}" for problem in problems]
     with session.snapshot() as conn:
@@ -118,4 +119,4 @@ def verify(session: StoreSession) -> list[str]:
                 continue
         found = _samples.sample_findings(rows, meta)
         findings += [f"demonstration {demo_id}: {finding}" for finding in found]
-    return findings
+    return findings + _verdicts.damaged_verdicts(session)

@@ -4,6 +4,7 @@ set of criteria (by digest), with its reasons, the criteria and the campaign it 
 from __future__ import annotations
 
 import hashlib
+import json
 import re
 import time
 import uuid
@@ -16,7 +17,7 @@ from compliant_demo.store._rows import decoded, mapping
 from compliant_demo.store._session import StoreSession
 from compliant_demo.store.records import VerdictRecord
 
-__all__ = ["VerdictDocument", "save_verdict", "latest_verdict"]
+__all__ = ["VerdictDocument", "save_verdict", "latest_verdict", "damaged_verdicts"]
 
 
 class VerdictDocument(Protocol):
@@ -41,15 +42,34 @@ def _digest(name: str, value: object) -> str:
     return value
 
 
+def _document_problem(label: object, reasons: object) -> str | None:
+    """What makes a verdict and its reasons inconsistent (the gate trusts a stored 'ready'),
+    or None."""
+    if label not in ("ready", "not_ready"):
+        return f"verdict must be 'ready' or 'not_ready', got {label!r}"
+    if not isinstance(reasons, list) or not all(isinstance(r, Mapping) for r in reasons):
+        return f"verdict reasons must be a list of mappings, got {reasons!r:.80}"
+    if (label == "ready") == bool(reasons):
+        return (f"verdict {label!r} with {len(reasons)} reason(s): 'ready' has none, "
+                "'not_ready' at least one")
+    for number, reason in enumerate(reasons):
+        check = reason.get("check")
+        if not isinstance(check, str) or not check:
+            return f"verdict reason {number}: 'check' must name a check, got {check!r}"
+    try:
+        json.dumps(reasons, allow_nan=False, default=str)
+    except ValueError:
+        return "verdict reasons: every number must be finite (NaN or inf given)"
+    return None
+
+
 def _verdict_document(verdict: VerdictDocument) -> tuple[str, list[dict[str, Any]]]:
     document = verdict.to_dict()
-    if document.get("verdict") not in ("ready", "not_ready"):
-        raise InvalidInputError(f"verdict must be 'ready' or 'not_ready', got "
-                                f"{document.get('verdict')!r}")
-    reasons = document.get("reasons")
-    if not isinstance(reasons, list) or not all(isinstance(r, Mapping) for r in reasons):
-        raise InvalidInputError(f"verdict reasons must be a list of mappings, got {reasons!r}")
-    return document["verdict"], [dict(r) for r in reasons]
+    label, reasons = document.get("verdict"), document.get("reasons")
+    problem = _document_problem(label, reasons)
+    if problem is not None or not isinstance(reasons, list):
+        raise InvalidInputError(problem)
+    return str(label), [dict(r) for r in reasons]
 
 
 def save_verdict(
@@ -100,11 +120,32 @@ def save_verdict(
 
 
 def _record(row: tuple[Any, ...]) -> VerdictRecord:
+    reasons, criteria = _codec.loads(row[2]), _codec.loads(row[8])
+    problem = _document_problem(row[1], reasons)
+    if problem is not None:
+        raise ValueError(problem)
+    if not isinstance(criteria, dict):
+        raise ValueError(f"criteria must be a mapping, got {type(criteria).__name__}")
     return VerdictRecord(
-        id=row[0], verdict=row[1], reasons=_codec.loads(row[2]), skill_id=row[3],
+        id=row[0], verdict=row[1], reasons=reasons, skill_id=row[3],
         skill_version=int(row[4]), plant_digest=row[5], criteria_digest=row[6],
-        campaign_id=row[7], criteria=_codec.loads(row[8]), created_at=float(row[9]),
+        campaign_id=row[7], criteria=criteria, created_at=float(row[9]),
     )  # fmt: skip
+
+
+def damaged_verdicts(session: StoreSession) -> list[str]:
+    """One line per stored verdict whose reasons or criteria cannot be read back (for verify)."""
+    with session.snapshot() as conn:
+        rows = conn.execute(
+            f"SELECT {_COLUMNS} FROM verdicts v LEFT JOIN skills s ON s.id = v.skill_id "
+            "ORDER BY v.id").fetchall()
+    findings = []
+    for row in rows:
+        try:
+            _record(row)
+        except (ValueError, TypeError) as exc:
+            findings.append(f"verdict {row[0]}: damaged stored data: {exc}")
+    return findings
 
 
 def latest_verdict(
