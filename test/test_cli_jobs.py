@@ -211,6 +211,11 @@ def test_a_missing_criteria_file_is_a_one_line_error(store, tmp_path, capsys, co
     assert status == 2
     one_line_error(err, command, re.escape(f"--criteria {str(tmp_path)!r}: a directory, not a "
                                            "file"))
+    if command != "report":  # the commands that take a plant file say the same of it
+        status, _, err = run_cli(capsys, command, "--store", store, "--plant", tmp_path)
+        assert status == 2
+        one_line_error(err, command, re.escape(f"--plant {str(tmp_path)!r}: a directory, not a "
+                                               "file"))
 
 
 def test_a_bad_criteria_file_names_the_field_and_value(store, tmp_path, capsys):
