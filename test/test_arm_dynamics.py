@@ -71,6 +71,22 @@ def test_inverse_dynamics_and_mass_matrix_equal_pinocchio(name):
     np.testing.assert_allclose(gravity, ref, rtol=0, atol=1e-10 * np.abs(ref).max())
 
 
+@pytest.mark.parametrize("name", sorted(ARMS))
+def test_energies_sum_to_pinocchio_kinetic_and_potential_energy(name):
+    # pin.computeKineticEnergy: 1/2 v^T M v; pin.computePotentialEnergy: -sum m_i g . c_i
+    kernel, model, data, q, dq, _ = _arm(name, 50, seed=14)
+    kinetic, potential = np.empty_like(q), np.empty_like(q)
+    kernel.energies(q, dq, kinetic, potential)
+    rest = pin.computePotentialEnergy(model, data, np.zeros(model.nq))
+    for s in range(50):
+        total = pin.computeKineticEnergy(model, data, q[:, s], dq[:, s])
+        assert kinetic[:, s].sum() == pytest.approx(total, rel=1e-12, abs=1e-14)
+        height = pin.computePotentialEnergy(model, data, q[:, s]) - rest
+        assert potential[:, s].sum() == pytest.approx(height, rel=1e-12, abs=1e-12)
+    np.testing.assert_allclose(kinetic, 0.5 * dq * kernel.inverse(q, 0 * dq, dq, gravity=False),
+                               rtol=0, atol=1e-15)
+
+
 def test_locked_joints_solve_the_reduced_system():
     kernel, model, data, q, dq, tau = _arm("arm7_example", 20, seed=13)
     free = np.ones((7, 20))

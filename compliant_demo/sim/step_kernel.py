@@ -44,10 +44,12 @@ METHOD_CODES = {"rk4": 0, "symplectic_euler": 1, "explicit_euler": 2}
 # rows of the packed per-joint constants
 PARAM_ROWS = ("neg_viscous", "neg_coulomb", "inv_smoothing", "neg_mgl", "gravity_offset",
               "lower", "upper", "stop_stiffness", "stop_damping", "k1", "k2",
-              "inv_time_constant_0", "inv_time_constant_1", "rate_limit_0", "rate_limit_1")
+              "inv_time_constant_0", "inv_time_constant_1", "rate_limit_0", "rate_limit_1",
+              # read by the recording only (observe_kernel)
+              "inertia", "encoder_resolution", "motor_inertia", "motor_offset")
 N_PARAMS = len(PARAM_ROWS)
 (_NEG_VISCOUS, _NEG_COULOMB, _INV_SMOOTHING, _NEG_MGL, _OFFSET, _LOWER, _UPPER, _K_STOP,
- _B_STOP, _K1, _K2, _INV_TC, _, _RATE, _) = range(N_PARAMS)
+ _B_STOP, _K1, _K2, _INV_TC, _, _RATE, _, _, _, _, _) = range(N_PARAMS)
 _INV_DEPTH = 1.0 / CONTACT_DAMPING_DEPTH
 # tanh in a form the compiler vectorises (libm's is an opaque call): tanh|x| = e / (e + 2) with
 # e = expm1(2|x|) (fdlibm's s_tanh.c identity), expm1 by Cody-Waite reduction by ln 2 and its
