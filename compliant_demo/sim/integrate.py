@@ -15,6 +15,7 @@ torques go through the coupled arm's compiled forward dynamics (:mod:`.rigid_bod
 
 from __future__ import annotations
 
+import bisect
 import math
 import warnings
 from collections.abc import Sequence
@@ -274,6 +275,7 @@ class Simulator:
             events.setdefault(w.stop, []).append((0, "wall_off", w))
         # releases first, then impulses, then new holds and walls
         self._events = {k: sorted(v, key=lambda e: e[0]) for k, v in events.items()}
+        self._event_steps = sorted(self._events)
         # active walls per layer, joint and scenario: (position, side, stiffness, damping); an
         # inactive slot has side 1 and no stiffness or damping, so it pushes with zero force
         layers = (self._perturb.n_wall_layers, *self._y.shape[1:])
@@ -320,16 +322,21 @@ class Simulator:
                   self._gravity_torque, f)
 
     # ----------------------------------------------------------------- stepping
-    def _advance(self, targets: np.ndarray, ext: np.ndarray | None) -> None:
-        """One step of the chosen method; ``targets`` is (n_targets, J, S) and contiguous,
-        ``ext`` (3, J, S) stage torques or None."""
+    def _advance(self, targets: np.ndarray, ext: np.ndarray | None, c0: int, c1: int) -> None:
+        """Steps c0 .. c1 - 1 of a chunk of the chosen method in one compiled call; ``targets``
+        is (C, n_targets, J, S) and contiguous, ``ext`` (C, 3, J, S) stage torques or None."""
         step_batch[self._parallel](
             METHOD_CODES[self.method], self.dt, self._y, targets,
-            self._no_external if ext is None else np.ascontiguousarray(ext), ext is not None,
+            self._no_external[None] if ext is None else ext, ext is not None, c0, c1,
             *self._compiled_arguments(), self._stages, self._stage_state, self._acc,
             self._torques, self._mech_damping, self._gravity_torque, self._deflection,
             self._injection)
-        self._step_index += 1
+        self._step_index += c1 - c0
+
+    def _next_event(self, step: int) -> int:
+        """The first step after ``step`` at which an event happens (a large number if none)."""
+        following = bisect.bisect_right(self._event_steps, step)
+        return self._event_steps[following] if following < len(self._event_steps) else 2**62
 
     def _apply_events(self, step: int) -> None:
         if step == self._events_applied:
@@ -472,7 +479,7 @@ class Simulator:
         if not self._started:
             self._start(targets[0])
         self._apply_events(self._step_index)
-        self._advance(targets[0], ext[0] if touched else None)
+        self._advance(targets, ext if touched else None, 0, 1)
         self._apply_events(self._step_index)
         observed = ext[0, 2] if touched else None
         if self._step_index != self._horizon_steps:
@@ -541,16 +548,20 @@ class Simulator:
             touched = self._perturb.fill_torque(ext_chunk[: k1 - k0], first + k0)
             if not self._started:
                 self._start(chunk_targets[0])
-            for c in range(k1 - k0):
+            c, n_chunk = 0, k1 - k0
+            while c < n_chunk:  # runs of steps without an event or a sample in one call
                 k = k0 + c
-                targets, clamped = chunk_targets[c], any_clamped[c]
-                ext = ext_chunk[c] if touched else None
                 self._apply_events(first + k)
                 if k % decimation == 0:
-                    stage = None if ext is None else ext[0]
-                    self._observe_into(floats, bools, actuators, k // decimation, targets,
-                                       stage, clamped)
-                self._advance(targets, ext)
+                    stage = ext_chunk[c, 0] if touched else None
+                    self._observe_into(floats, bools, actuators, k // decimation,
+                                       chunk_targets[c], stage, any_clamped[c])
+                stop = min(n_chunk, c + decimation - k % decimation,
+                           self._next_event(first + k) - first - k0)
+                self._advance(chunk_targets, ext_chunk if touched else None, c, stop)
+                c = stop
+            targets, clamped = chunk_targets[n_chunk - 1], any_clamped[n_chunk - 1]
+            ext = ext_chunk[n_chunk - 1] if touched else None
         if n_steps % decimation == 0:
             self._apply_events(first + n_steps)
             stage = None if ext is None else ext[2]

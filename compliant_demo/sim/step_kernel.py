@@ -269,8 +269,35 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
 
 # the state derivative of a whole batch (see _block_rhs), on one thread: what recording reads
 rhs_batch: Callable[..., None] = _distinct(_rhs_blocks)
-# one step of a whole batch: [0] on one thread (the default: campaigns already run one process
-# per core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it
-# started, as campaign workers are), [1] over numba's threads
-step_batch: tuple[Callable[..., None], Callable[..., None]] = (
-    _distinct(_step_blocks), _parallel(_step_blocks))
+# one step of a whole batch: on one thread (the default: campaigns already run one process per
+# core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it started,
+# as campaign workers are), or over numba's threads
+_step_serial = _distinct(_step_blocks)
+_step_parallel = _parallel(_step_blocks)
+
+
+@_compiled
+def _steps_serial(method, h, y, tg, ext, has_ext, c0, c1, prm, walls, kind, coupled, free,
+                  accel_scale, model, ws, zero, stages, ys, acc, torques, mech, grav, deflection,
+                  injection):
+    """Steps c0 .. c1 - 1 of a chunk in one call: targets tg[c], stage torques ext[c] (ext[0],
+    unread, without them); the rest as :func:`_step_blocks`."""
+    for c in range(c0, c1):
+        _step_serial(method, h, y, tg[c], ext[c if has_ext else 0], has_ext, prm, walls, kind,
+                     coupled, free, accel_scale, model, ws, zero, stages, ys, acc, torques, mech,
+                     grav, deflection, injection)
+
+
+@_compiled
+def _steps_parallel(method, h, y, tg, ext, has_ext, c0, c1, prm, walls, kind, coupled, free,
+                    accel_scale, model, ws, zero, stages, ys, acc, torques, mech, grav,
+                    deflection, injection):
+    """:func:`_steps_serial` with each step's blocks over numba's threads."""
+    for c in range(c0, c1):
+        _step_parallel(method, h, y, tg[c], ext[c if has_ext else 0], has_ext, prm, walls,
+                       kind, coupled, free, accel_scale, model, ws, zero, stages, ys, acc,
+                       torques, mech, grav, deflection, injection)
+
+
+# steps c0 .. c1 - 1 of a chunk of commands: [0] on one thread, [1] over numba's threads
+step_batch: tuple[Callable[..., None], Callable[..., None]] = (_steps_serial, _steps_parallel)
