@@ -385,9 +385,11 @@ class Simulator:
         mass = self._chain.mass_matrix(q)[0][np.ix_(free, free)]
         kick = np.zeros(int(free.sum()))
         kick[int(free[:j].sum())] = impulse
-        before = self._kinetic(q, dq).sum()
+        before = float(dq[j, 0])
         dq[free, 0] += np.linalg.solve(mass, kick)
-        self._jumps[j, s] += self._kinetic(q, dq).sum() - before
+        # kinetic energy gained, 1/2 (v + dv)^T M (v + dv) - 1/2 v^T M v with M dv the impulse
+        # on joint j alone: impulse * (v_j before + v_j after) / 2
+        self._jumps[j, s] += impulse * 0.5 * (before + dq[j, 0])
 
     # ----------------------------------------------------------------- observation
     def _observe(
