@@ -51,7 +51,6 @@ GRAVITY = 9.80665  # standard gravity, m/s^2 (ISO 80000-3)
 _CHUNK_STEPS = 256
 # rows of the three work integrals after the dynamic rows, and of the torque groups they
 # integrate: mechanism springs, passive (friction, mechanism damping, end stops), perturbations
-_SPRING, _PASSIVE, _EXTERNAL = range(3)
 _N_WORK = 3
 # recorded channels the Python side completes (see observe_kernel)
 _TAU_MEASURED, _TAU_EXTERNAL, _KINETIC, _GRAVITY_POTENTIAL = (
