@@ -395,11 +395,19 @@ def test_serial_kernel_leaves_forked_workers_working():
         assert pool.map_async(_child_forward, [q, q]).get(timeout=120) == [expected, expected]
 
 
-def test_parallel_kernel_equals_the_serial_one():
-    """In a separate interpreter (a parallel kernel starts numba's threads in its process)."""
+def _prints_equal_in_a_child(script: str) -> None:
+    """Run ``script`` in a separate interpreter (a parallel kernel starts numba's threads in its
+    process) and check it printed ``equal``."""
     import subprocess
     import sys
 
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          timeout=600, check=False)
+    assert done.returncode == 0 and done.stdout.strip() == "equal", done.stderr[-2000:]
+
+
+def test_parallel_kernel_equals_the_serial_one():
+    """In a separate interpreter (a parallel kernel starts numba's threads in its process)."""
     script = (
         "import numpy as np\n"
         "from compliant_demo.plant import load_plant\n"
@@ -414,18 +422,13 @@ def test_parallel_kernel_equals_the_serial_one():
         "assert np.array_equal(a, b), np.abs(a - b).max()\n"
         "print('equal')\n"
     )
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
-                          timeout=600, check=False)
-    assert done.returncode == 0 and done.stdout.strip() == "equal", done.stderr[-2000:]
+    _prints_equal_in_a_child(script)
 
 
 def test_parallel_simulation_equals_the_serial_one():
     """simulate(..., parallel=True) runs each step's blocks over numba's threads: the same
     numbers as on one thread, with perturbations of every kind (separate interpreter, as
     above)."""
-    import subprocess
-    import sys
-
     script = (
         "import numpy as np\n"
         "from compliant_demo.perturbation import (Hold, Impulse, PerturbationSchedule,\n"
@@ -446,6 +449,4 @@ def test_parallel_simulation_equals_the_serial_one():
         "assert np.array_equal(runs[0].energy.dissipated, runs[1].energy.dissipated)\n"
         "print('equal')\n"
     )
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
-                          timeout=600, check=False)
-    assert done.returncode == 0 and done.stdout.strip() == "equal", done.stderr[-2000:]
+    _prints_equal_in_a_child(script)
