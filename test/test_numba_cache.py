@@ -205,7 +205,8 @@ def test_an_edited_callee_in_another_module_is_compiled_afresh(tmp_path):
 
 
 def test_sources_directories_unused_for_a_week_are_pruned(tmp_path, monkeypatch):
-    monkeypatch.delenv(CACHE_ENV, raising=False)
+    monkeypatch.setenv(CACHE_ENV, "restored-after-the-test")  # so the value set here is undone
+    monkeypatch.delenv(CACHE_ENV)
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path))
     root = tmp_path / "compliant_demo" / "numba"
     root.mkdir(parents=True, mode=0o700)
@@ -236,7 +237,8 @@ def test_sources_directories_unused_for_a_week_are_pruned(tmp_path, monkeypatch)
 
 
 def test_a_sources_directory_that_is_not_a_directory_falls_back(tmp_path, monkeypatch):
-    monkeypatch.delenv(CACHE_ENV, raising=False)
+    monkeypatch.setenv(CACHE_ENV, "restored-after-the-test")  # so the value set here is undone
+    monkeypatch.delenv(CACHE_ENV)
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "home-cache"))
     monkeypatch.setenv("TMPDIR", str(tmp_path))
     monkeypatch.setattr(tempfile, "tempdir", None)
