@@ -5,20 +5,57 @@
 ``pip uninstall`` (the files are not in the wheel's record) and then shadows a later editable
 install as a namespace package. The package ``__init__`` imports this module first, so every
 numba import of the package sees the variable. A ``NUMBA_CACHE_DIR`` the user already set wins.
+
+numba keys a cached function on its own source file only: a kernel that calls a function of
+another module would keep the machine code of the callee as it was compiled, after an edit or
+an upgrade that keeps file times. So the cache lives in a subdirectory named after a hash of
+every package module that imports numba (:func:`compiled_sources_hash`): changed sources
+compile afresh. Subdirectories of other hashes that no import used for ``PRUNE_AFTER_S``
+(another install of the package may share the user's cache meanwhile) are removed.
 """
 
 from __future__ import annotations
 
+import hashlib
 import os
+import re
+import shutil
 import stat
 import tempfile
+import time
 from collections.abc import Callable
 from pathlib import Path
 
-__all__ = ["CACHE_ENV", "configure_numba_cache", "numba_cache_dir"]
+__all__ = ["CACHE_ENV", "PRUNE_AFTER_S", "compiled_sources_hash", "configure_numba_cache",
+           "numba_cache_dir"]
 
 CACHE_ENV = "NUMBA_CACHE_DIR"
+PRUNE_AFTER_S = 7 * 86400.0  # a sources subdirectory unused for a week is removed, s
 _SUBDIR = ("compliant_demo", "numba")
+_PACKAGE = Path(__file__).resolve().parent
+_IMPORTS_NUMBA = re.compile(rb"^[ \t]*(?:import|from)[ \t]+numba\b", re.MULTILINE)
+_HASH_NAME = re.compile(r"[0-9a-f]{16}")
+
+
+def compiled_sources_hash(package: Path = _PACKAGE) -> str:
+    """Hash of the package's modules that import numba (their paths and bytes), 16 hex digits.
+
+    Parameters
+    ----------
+    package : the package directory (default: this package)
+
+    Returns
+    -------
+    str
+        The first 16 hex digits of the SHA-256 over the sorted modules.
+    """
+    digest = hashlib.sha256()
+    for path in sorted(package.rglob("*.py")):
+        source = path.read_bytes()
+        if _IMPORTS_NUMBA.search(source):
+            digest.update(path.relative_to(package).as_posix().encode() + b"\0")
+            digest.update(len(source).to_bytes(8, "little") + source)
+    return digest.hexdigest()[:16]
 
 
 def numba_cache_dir() -> Path:
@@ -57,8 +94,40 @@ def _private_dir(locate: Callable[[], Path]) -> Path | None:
     return None
 
 
+def _prune(root: Path, keep: str, now: float) -> None:
+    """Remove the sources subdirectories of ``root`` other than ``keep`` unused for
+    ``PRUNE_AFTER_S`` (their time stamp is touched at every import that uses them)."""
+    for entry in root.iterdir():
+        if entry.name == keep or not _HASH_NAME.fullmatch(entry.name):
+            continue
+        try:
+            info = entry.lstat()
+            if stat.S_ISDIR(info.st_mode) and now - info.st_mtime > PRUNE_AFTER_S:
+                shutil.rmtree(entry)
+        except OSError:  # removed meanwhile by another process, or not ours to remove
+            continue
+
+
+def _sources_dir(root: Path) -> Path | None:
+    """``root/<compiled_sources_hash()>``, mode 0700, marked as used now; older ones pruned."""
+    try:
+        name = compiled_sources_hash()
+        path = root / name
+        path.mkdir(mode=0o700, exist_ok=True)
+        if path.is_symlink() or not path.is_dir():
+            return None
+        now = time.time()
+        os.utime(path, (now, now))
+        _prune(root, name, now)
+    except OSError:
+        return None
+    return path
+
+
 def configure_numba_cache() -> str | None:
     """Set ``NUMBA_CACHE_DIR`` to a per-user directory (mode 0700) unless it is already set.
+
+    The directory is ``<per-user cache>/<compiled_sources_hash()>``, see the module docstring.
 
     Returns
     -------
@@ -70,7 +139,8 @@ def configure_numba_cache() -> str | None:
     if preset:
         return preset
     for locate in (numba_cache_dir, _fallback_dir):
-        path = _private_dir(locate)
+        root = _private_dir(locate)
+        path = None if root is None else _sources_dir(root)
         if path is not None:
             os.environ[CACHE_ENV] = str(path)
             return str(path)

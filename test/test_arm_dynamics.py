@@ -71,6 +71,22 @@ def test_inverse_dynamics_and_mass_matrix_equal_pinocchio(name):
     np.testing.assert_allclose(gravity, ref, rtol=0, atol=1e-10 * np.abs(ref).max())
 
 
+@pytest.mark.parametrize("name", sorted(ARMS))
+def test_energies_sum_to_pinocchio_kinetic_and_potential_energy(name):
+    # pin.computeKineticEnergy: 1/2 v^T M v; pin.computePotentialEnergy: -sum m_i g . c_i
+    kernel, model, data, q, dq, _ = _arm(name, 50, seed=14)
+    kinetic, potential = np.empty_like(q), np.empty_like(q)
+    kernel.energies(q, dq, kinetic, potential)
+    rest = pin.computePotentialEnergy(model, data, np.zeros(model.nq))
+    for s in range(50):
+        total = pin.computeKineticEnergy(model, data, q[:, s], dq[:, s])
+        assert kinetic[:, s].sum() == pytest.approx(total, rel=1e-12, abs=1e-14)
+        height = pin.computePotentialEnergy(model, data, q[:, s]) - rest
+        assert potential[:, s].sum() == pytest.approx(height, rel=1e-12, abs=1e-12)
+    np.testing.assert_allclose(kinetic, 0.5 * dq * kernel.inverse(q, 0 * dq, dq, gravity=False),
+                               rtol=0, atol=1e-15)
+
+
 def test_locked_joints_solve_the_reduced_system():
     kernel, model, data, q, dq, tau = _arm("arm7_example", 20, seed=13)
     free = np.ones((7, 20))
@@ -392,11 +408,19 @@ def test_serial_kernel_leaves_forked_workers_working():
         assert pool.map_async(_child_forward, [q, q]).get(timeout=120) == [expected, expected]
 
 
-def test_parallel_kernel_equals_the_serial_one():
-    """In a separate interpreter (a parallel kernel starts numba's threads in its process)."""
+def _prints_equal_in_a_child(script: str) -> None:
+    """Run ``script`` in a separate interpreter (a parallel kernel starts numba's threads in its
+    process) and check it printed ``equal``."""
     import subprocess
     import sys
 
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          timeout=600, check=False)
+    assert done.returncode == 0 and done.stdout.strip() == "equal", done.stderr[-2000:]
+
+
+def test_parallel_kernel_equals_the_serial_one():
+    """In a separate interpreter (a parallel kernel starts numba's threads in its process)."""
     script = (
         "import numpy as np\n"
         "from compliant_demo.plant import load_plant\n"
@@ -411,6 +435,31 @@ def test_parallel_kernel_equals_the_serial_one():
         "assert np.array_equal(a, b), np.abs(a - b).max()\n"
         "print('equal')\n"
     )
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
-                          timeout=600, check=False)
-    assert done.returncode == 0 and done.stdout.strip() == "equal", done.stderr[-2000:]
+    _prints_equal_in_a_child(script)
+
+
+def test_parallel_simulation_equals_the_serial_one():
+    """simulate(..., parallel=True) runs each step's blocks over numba's threads: the same
+    numbers as on one thread, with perturbations of every kind (separate interpreter, as
+    above)."""
+    script = (
+        "import numpy as np\n"
+        "from compliant_demo.perturbation import (Hold, Impulse, PerturbationSchedule,\n"
+        "                                         TorqueStep, Wall)\n"
+        "from compliant_demo.plant import load_plant\n"
+        "from compliant_demo.sim import simulate\n"
+        f"plant = load_plant({str(ARM_PLANT)!r})\n"
+        "kinds = [Impulse(onset_s=0.05, magnitude=0.02), TorqueStep(onset_s=0.1, magnitude=1.0,\n"
+        "         duration_s=0.1), Wall(onset_s=0.02, position=0.01, magnitude=300.0,\n"
+        "         duration_s=0.2), Hold(onset_s=0.15, duration_s=0.05, joint=1)]\n"
+        "schedules = [PerturbationSchedule(perturbations=[kinds[s % 4]]) for s in range(300)]\n"
+        "eq = np.tile([[0.2, 0.4]], (300, 1)); k = np.full((300, 2), 60.0)\n"
+        "runs = [simulate(plant.joints, plant.mechanism, eq, k, schedules=schedules,\n"
+        "                 decimation=7, seed=2, chain=plant.chain, parallel=p)\n"
+        "        for p in (False, True)]\n"
+        "for name in ('q', 'dq', 'tau_external', 'motor_torque'):\n"
+        "    assert np.array_equal(getattr(runs[0], name), getattr(runs[1], name)), name\n"
+        "assert np.array_equal(runs[0].energy.dissipated, runs[1].energy.dissipated)\n"
+        "print('equal')\n"
+    )
+    _prints_equal_in_a_child(script)

@@ -12,9 +12,18 @@ import shutil
 import stat
 import subprocess
 import sys
+import tempfile
+import time
 from pathlib import Path
 
 import pytest
+
+from compliant_demo._numba_cache import (
+    CACHE_ENV,
+    PRUNE_AFTER_S,
+    compiled_sources_hash,
+    configure_numba_cache,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -65,7 +74,8 @@ def test_cache_files_go_to_the_user_cache_and_nothing_into_the_package(tmp_path,
     cache_home = tmp_path / "xdg-cache"
     env = {"HOME": str(home), "NUMBA_CACHE_DIR": None,
            "XDG_CACHE_HOME": str(cache_home) if xdg else None}
-    expected = (cache_home if xdg else home / ".cache") / "compliant_demo" / "numba"
+    root = (cache_home if xdg else home / ".cache") / "compliant_demo" / "numba"
+    expected = root / compiled_sources_hash(site / "compliant_demo")
 
     in_effect = _run(site, env, cwd=tmp_path)
 
@@ -73,6 +83,7 @@ def test_cache_files_go_to_the_user_cache_and_nothing_into_the_package(tmp_path,
     assert _files(site) == before
     assert not list(site.rglob("__pycache__"))
     assert any(p.suffix in {".nbi", ".nbc"} for p in expected.rglob("*")), "no cache written"
+    assert stat.S_IMODE(root.stat().st_mode) == 0o700
     assert stat.S_IMODE(expected.stat().st_mode) == 0o700
 
 
@@ -104,8 +115,10 @@ def test_an_unusable_home_falls_back_to_a_private_temp_dir(tmp_path):
 
     in_effect = _run(site, env, cwd=tmp_path)
 
-    expected = temp_root / f"compliant_demo-numba-{os.getuid()}"
+    root = temp_root / f"compliant_demo-numba-{os.getuid()}"
+    expected = root / compiled_sources_hash(site / "compliant_demo")
     assert Path(in_effect) == expected
+    assert stat.S_IMODE(root.stat().st_mode) == 0o700
     assert stat.S_IMODE(expected.stat().st_mode) == 0o700
     assert any(p.suffix == ".nbi" for p in expected.rglob("*"))
     assert _files(site) == before
@@ -137,4 +150,103 @@ def test_every_numba_importer_sees_the_user_cache_dir(tmp_path):
         result = subprocess.run([sys.executable, "-c", code], env=env, cwd=tmp_path,
                                 capture_output=True, text=True, timeout=120)
         assert result.returncode == 0, result.stderr
-        assert result.stdout.strip() == str(tmp_path / "cache" / "compliant_demo" / "numba")
+        assert result.stdout.strip() == str(tmp_path / "cache" / "compliant_demo" / "numba"
+                                            / compiled_sources_hash())
+
+
+def test_the_sources_hash_follows_every_numba_module_and_nothing_else(tmp_path):
+    package = _package_copy(tmp_path) / "compliant_demo"
+    original = compiled_sources_hash(package)
+    assert len(original) == 16 and int(original, 16) >= 0
+    importers = _numba_importers()
+    for module in importers:
+        path = (package.parent / module.replace(".", "/")).with_suffix(".py")
+        source = path.read_bytes()
+        os.utime(path, (0, 0))  # a new time stamp alone changes nothing
+        assert compiled_sources_hash(package) == original, module
+        path.write_bytes(source + b"# edited\n")
+        assert compiled_sources_hash(package) != original, module
+        path.write_bytes(source)
+    assert compiled_sources_hash(package) == original
+    plain = package / "exceptions.py"
+    assert "compliant_demo.exceptions" not in importers
+    plain.write_bytes(plain.read_bytes() + b"# edited\n")
+    assert compiled_sources_hash(package) == original
+
+
+_CALLEE = "import numba\n\n\n@numba.njit(cache=True)\ndef value():\n    return {}\n"
+_CALLER = ("import numba\n\nfrom compliant_demo._probe_callee import value\n\n\n"
+           "@numba.njit(cache=True)\ndef call():\n    return value() + 0.5\n")
+_RUN_PROBE = ("import os\nfrom compliant_demo._probe_caller import call\n"
+              "print(call(), os.environ['NUMBA_CACHE_DIR'])\n")
+
+
+def test_an_edited_callee_in_another_module_is_compiled_afresh(tmp_path):
+    # numba keys a cached function on its own file: without the sources hash in the cache
+    # directory the unchanged caller would load its old machine code with the old callee inlined
+    package = _package_copy(tmp_path) / "compliant_demo"
+    (package / "_probe_caller.py").write_text(_CALLER)
+    callee = package / "_probe_callee.py"
+    env = dict(os.environ, PYTHONPATH=str(package.parent), PYTHONDONTWRITEBYTECODE="1",
+               XDG_CACHE_HOME=str(tmp_path / "cache"))
+    env.pop(CACHE_ENV, None)
+    seen = []
+    for value in ("1.0", "2.0"):
+        callee.write_text(_CALLEE.format(value))
+        for _ in range(2):  # compiled, then loaded from the cache
+            result = subprocess.run([sys.executable, "-c", _RUN_PROBE], env=env, cwd=tmp_path,
+                                    capture_output=True, text=True, timeout=120)
+            assert result.returncode == 0, result.stderr
+            seen.append(result.stdout.split())
+    assert [float(v) for v, _ in seen] == [1.5, 1.5, 2.5, 2.5]
+    assert seen[0][1] == seen[1][1] != seen[2][1] == seen[3][1]
+    for _, directory in seen:
+        assert any(p.suffix == ".nbi" for p in Path(directory).rglob("*"))
+
+
+def test_sources_directories_unused_for_a_week_are_pruned(tmp_path, monkeypatch):
+    monkeypatch.setenv(CACHE_ENV, "restored-after-the-test")  # so the value set here is undone
+    monkeypatch.delenv(CACHE_ENV)
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path))
+    root = tmp_path / "compliant_demo" / "numba"
+    root.mkdir(parents=True, mode=0o700)
+    stale = time.time() - PRUNE_AFTER_S - 60.0
+    recent = time.time() - PRUNE_AFTER_S + 3600.0
+    made = {}
+    for name, when in (("0123456789abcdef", stale), ("fedcba9876543210", recent),
+                       ("not-a-hash", stale)):
+        made[name] = root / name
+        made[name].mkdir()
+        (made[name] / "kernel.nbi").write_bytes(b"index")
+        os.utime(made[name], (when, when))
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (root / "00000000000000aa").symlink_to(elsewhere, target_is_directory=True)
+    os.utime(root / "00000000000000aa", (stale, stale), follow_symlinks=False)
+    (root / "00000000000000bb").write_bytes(b"a file, not a sources directory")
+    os.utime(root / "00000000000000bb", (stale, stale))
+
+    in_effect = configure_numba_cache()
+
+    assert in_effect == os.environ[CACHE_ENV] == str(root / compiled_sources_hash())
+    assert sorted(p.name for p in root.iterdir()) == sorted(
+        ["00000000000000aa", "00000000000000bb", "fedcba9876543210", "not-a-hash",
+         compiled_sources_hash()])
+    assert elsewhere.is_dir()
+    assert time.time() - Path(in_effect).stat().st_mtime < 60.0  # marked as used
+
+
+def test_a_sources_directory_that_is_not_a_directory_falls_back(tmp_path, monkeypatch):
+    monkeypatch.setenv(CACHE_ENV, "restored-after-the-test")  # so the value set here is undone
+    monkeypatch.delenv(CACHE_ENV)
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "home-cache"))
+    monkeypatch.setenv("TMPDIR", str(tmp_path))
+    monkeypatch.setattr(tempfile, "tempdir", None)
+    root = tmp_path / "home-cache" / "compliant_demo" / "numba"
+    root.mkdir(parents=True, mode=0o700)
+    (root / compiled_sources_hash()).write_bytes(b"in the way")
+
+    in_effect = configure_numba_cache()
+
+    assert in_effect == str(tmp_path / f"compliant_demo-numba-{os.getuid()}"
+                            / compiled_sources_hash())

@@ -407,6 +407,24 @@ def test_smoothed_coulomb_friction_terminal_velocity():
     assert result.dq[-1, 0, 0] == pytest.approx(0.02 * math.atanh(0.3 / 0.5), rel=1e-6)
 
 
+def test_vectorisable_tanh_matches_libm():
+    """The friction's own tanh (expm1 identity of fdlibm's s_tanh.c, Cody-Waite reduction)
+    against the C library's (numpy.tanh): within 4 ulp from tiny to saturated arguments, odd,
+    exactly +-1 beyond 20 and at infinity."""
+    from compliant_demo.sim.step_kernel import _tanh
+
+    rng = np.random.default_rng(11)
+    magnitudes = np.concatenate([rng.uniform(0.0, 25.0, 20000), 10.0 ** rng.uniform(-300, 1, 2000),
+                                 [0.0, 0.3465, 0.3466, 19.999, 20.0, 20.001, 1e300, np.inf]])
+    for sign in (1.0, -1.0):
+        x = sign * magnitudes
+        ours = np.array([_tanh(v) for v in x])
+        reference = np.tanh(x)
+        assert np.all(np.abs(ours - reference) <= 4 * np.spacing(np.abs(reference)))
+        assert np.all(np.signbit(ours) == np.signbit(reference))
+    assert _tanh(20.5) == 1.0 and _tanh(-np.inf) == -1.0
+
+
 def test_pendulum_frequency_includes_gravity_stiffness():
     # linearised pendulum on a spring: omega = sqrt((K + m*g*l) / I) (any mechanics text,
     # e.g. Thomson, Theory of Vibration, ch. 2)

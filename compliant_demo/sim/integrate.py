@@ -15,6 +15,7 @@ torques go through the coupled arm's compiled forward dynamics (:mod:`.rigid_bod
 
 from __future__ import annotations
 
+import bisect
 import math
 import warnings
 from collections.abc import Sequence
@@ -25,6 +26,7 @@ from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import ChainParams, JointParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.sim.mechanisms import MechanismLike, make_mechanism
+from compliant_demo.sim.observe_kernel import BOOL_CHANNELS, FLOAT_CHANNELS, observe_batch
 from compliant_demo.sim.results import EnergyTraces, SimResult, StepState
 from compliant_demo.sim.rigid_body import apparent_inertia, block_workspace, chain_kernel
 from compliant_demo.sim.schedule import compile_schedules
@@ -49,19 +51,12 @@ GRAVITY = 9.80665  # standard gravity, m/s^2 (ISO 80000-3)
 _CHUNK_STEPS = 256
 # rows of the three work integrals after the dynamic rows, and of the torque groups they
 # integrate: mechanism springs, passive (friction, mechanism damping, end stops), perturbations
-_SPRING, _PASSIVE, _EXTERNAL = range(3)
 _N_WORK = 3
-
-
-# channels recorded per sample, (J, S) each, in the order of _observe's dictionary
-_CHANNELS = (
-    "q", "dq", "q_measured", "tau_mechanism", "tau_measured", "tau_external",
-    "stiffness_realised", "damping_realised", "equilibrium_realised", "commands_clamped",
-    "held", "in_contact", "kinetic", "spring_potential", "gravity_potential",
-    "end_stop_potential", "actuator_work", "perturbation_work", "dissipated",
-    "stiffness_injection", "spring_tension", "motor_torque",
-)
-_BOOLEAN = ("commands_clamped", "held", "in_contact")
+# recorded channels the Python side completes (see observe_kernel)
+_TAU_MEASURED, _TAU_EXTERNAL, _KINETIC, _GRAVITY_POTENTIAL = (
+    FLOAT_CHANNELS.index(name)
+    for name in ("tau_measured", "tau_external", "kinetic", "gravity_potential"))
+_CLAMPED = BOOL_CHANNELS.index("commands_clamped")
 
 
 def _column(joints: Sequence[JointParams], value) -> np.ndarray:
@@ -214,26 +209,19 @@ class Simulator:
     # ----------------------------------------------------------------- set-up
     def _setup_joints(self, joints: Sequence[JointParams]) -> None:
         self._inertia = _column(joints, lambda j: j.inertia)
-        self._gravity_joints = [
-            (i, -j.gravity_mass * GRAVITY * j.com_distance, j.gravity_offset)
-            for i, j in enumerate(joints)
-            if j.gravity_mass * j.com_distance > 0
-        ]
-        self._lower = _column(joints, lambda j: j.lower_limit)
-        self._upper = _column(joints, lambda j: j.upper_limit)
-        self._k_stop = _column(joints, lambda j: j.limit_stiffness)
         self._noise = _column(joints, lambda j: j.torque_noise_std)
-        self._resolution = _column(joints, lambda j: j.encoder_resolution)
         rows = {
             "neg_viscous": [-j.viscous_damping for j in joints],
             "neg_coulomb": [-j.coulomb_friction for j in joints],
             "inv_smoothing": [1.0 / j.friction_smoothing_velocity for j in joints],
             "neg_mgl": [-j.gravity_mass * GRAVITY * j.com_distance for j in joints],
             "gravity_offset": [j.gravity_offset for j in joints],
-            "lower": self._lower[:, 0],
-            "upper": self._upper[:, 0],
-            "stop_stiffness": self._k_stop[:, 0],
+            "lower": [j.lower_limit for j in joints],
+            "upper": [j.upper_limit for j in joints],
+            "stop_stiffness": [j.limit_stiffness for j in joints],
             "stop_damping": [j.limit_damping for j in joints],
+            "inertia": self._inertia[:, 0],
+            "encoder_resolution": [j.encoder_resolution for j in joints],
             **self._kernel.step_constants(),
         }
         # the compiled step's per-joint constants, one row each (step_kernel.PARAM_ROWS)
@@ -245,7 +233,6 @@ class Simulator:
         self._n_dyn = 2 + n_act
         rows = self._n_dyn + _N_WORK
         shape = (n_joints, n_scen)
-        self._has_damping = bool(self._kernel.damping_range()[1].any())
         self._inv_inertia_full = np.broadcast_to(1.0 / self._inertia, shape).copy()
         self._accel_scale = self._inv_inertia_full.copy()
         self._y = np.zeros((rows, *shape))
@@ -263,6 +250,7 @@ class Simulator:
         self._free = np.ones(shape)
         self._jumps = np.zeros(shape)  # perturbation work done in jumps (impulses, hold onsets)
         self._injection = np.zeros(shape)
+        self._potential0 = np.zeros((2, *shape))  # spring and end-stop potential at the start
         self._step_index = 0
         self._events_applied = -1
         self._started = False
@@ -286,6 +274,7 @@ class Simulator:
             events.setdefault(w.stop, []).append((0, "wall_off", w))
         # releases first, then impulses, then new holds and walls
         self._events = {k: sorted(v, key=lambda e: e[0]) for k, v in events.items()}
+        self._event_steps = sorted(self._events)
         # active walls per layer, joint and scenario: (position, side, stiffness, damping); an
         # inactive slot has side 1 and no stiffness or damping, so it pushes with zero force
         layers = (self._perturb.n_wall_layers, *self._y.shape[1:])
@@ -299,13 +288,14 @@ class Simulator:
         act[...] = np.broadcast_to(targets[: self._kernel.n_actuators], act.shape)
         equilibrium = self._kernel.equilibrium(act, targets)
         self._y[0] = equilibrium if self._q0 is None else self._q0
-        self._spring_potential0 = self._kernel.potential(self._y[0], act, targets)
-        self._stop_potential0 = self._stop_potential(self._y[0])
+        start = self._observe(targets, None, False)
+        self._potential0[0] = start["spring_potential"]
+        self._potential0[1] = start["end_stop_potential"]
         self._initial_total = (
-            self._kinetic(self._y[0], self._y[1])
-            + self._spring_potential0
-            + self._gravity_potential(self._y[0])
-            + self._stop_potential0
+            start["kinetic"]
+            + start["spring_potential"]
+            + start["gravity_potential"]
+            + start["end_stop_potential"]
         )
         self._started = True
 
@@ -314,19 +304,6 @@ class Simulator:
         if self._chain is not None:
             return self._chain.kinetic_split(q, dq)
         return 0.5 * self._inertia * dq * dq
-
-    def _gravity_potential(self, q: np.ndarray) -> np.ndarray:
-        if self._chain is not None:
-            return self._chain.gravity_potential(q)
-        potential = np.zeros_like(q)
-        for i, neg_mgl, offset in self._gravity_joints:
-            potential[i] = -neg_mgl * (1.0 - np.cos(q[i] - offset))
-        return potential
-
-    def _stop_potential(self, q: np.ndarray) -> np.ndarray:
-        below = np.maximum(self._lower - q, 0.0)
-        above = np.maximum(q - self._upper, 0.0)
-        return 0.5 * self._k_stop * (below**2 + above**2)
 
     def _compiled_arguments(self) -> tuple:
         """What the compiled step reads after the targets and external torques, in its order."""
@@ -344,16 +321,21 @@ class Simulator:
                   self._gravity_torque, f)
 
     # ----------------------------------------------------------------- stepping
-    def _advance(self, targets: np.ndarray, ext: np.ndarray | None) -> None:
-        """One step of the chosen method; ``targets`` is (n_targets, J, S) and contiguous,
-        ``ext`` (3, J, S) stage torques or None."""
+    def _advance(self, targets: np.ndarray, ext: np.ndarray | None, c0: int, c1: int) -> None:
+        """Steps c0 .. c1 - 1 of a chunk of the chosen method in one compiled call; ``targets``
+        is (C, n_targets, J, S) and contiguous, ``ext`` (C, 3, J, S) stage torques or None."""
         step_batch[self._parallel](
             METHOD_CODES[self.method], self.dt, self._y, targets,
-            self._no_external if ext is None else np.ascontiguousarray(ext), ext is not None,
+            self._no_external[None] if ext is None else ext, ext is not None, c0, c1,
             *self._compiled_arguments(), self._stages, self._stage_state, self._acc,
             self._torques, self._mech_damping, self._gravity_torque, self._deflection,
             self._injection)
-        self._step_index += 1
+        self._step_index += c1 - c0
+
+    def _next_event(self, step: int) -> int:
+        """The first step after ``step`` at which an event happens (a large number if none)."""
+        following = bisect.bisect_right(self._event_steps, step)
+        return self._event_steps[following] if following < len(self._event_steps) else 2**62
 
     def _apply_events(self, step: int) -> None:
         if step == self._events_applied:
@@ -402,69 +384,48 @@ class Simulator:
         mass = self._chain.mass_matrix(q)[0][np.ix_(free, free)]
         kick = np.zeros(int(free.sum()))
         kick[int(free[:j].sum())] = impulse
-        before = self._kinetic(q, dq).sum()
+        before = float(dq[j, 0])
         dq[free, 0] += np.linalg.solve(mass, kick)
-        self._jumps[j, s] += self._kinetic(q, dq).sum() - before
+        # kinetic energy gained, 1/2 (v + dv)^T M (v + dv) - 1/2 v^T M v with M dv the impulse
+        # on joint j alone: impulse * (v_j before + v_j after) / 2
+        self._jumps[j, s] += impulse * 0.5 * (before + dq[j, 0])
 
     # ----------------------------------------------------------------- observation
     def _observe(
-        self, targets: np.ndarray, ext: np.ndarray | None, clamped: np.ndarray
+        self, targets: np.ndarray, ext: np.ndarray | None, clamped
     ) -> dict[str, np.ndarray]:
-        """Everything recorded at the current state, (J, S) arrays; leaves stage 0 in place."""
-        y, kernel = self._y, self._kernel
+        """Everything recorded at the current state, (J, S) arrays."""
+        shape = self._y.shape[1:]
+        floats = np.zeros((len(FLOAT_CHANNELS), 1, *shape))
+        bools = np.zeros((len(BOOL_CHANNELS), 1, *shape), dtype=bool)
+        actuators = np.zeros((1, self._kernel.n_actuators, *shape))
+        self._observe_into(floats, bools, actuators, 0, targets, ext, clamped)
+        return {**{name: floats[i, 0] for i, name in enumerate(FLOAT_CHANNELS)},
+                **{name: bools[i, 0] for i, name in enumerate(BOOL_CHANNELS)}}
+
+    def _observe_into(self, floats, bools, actuators, row, targets, ext, clamped) -> None:
+        """Record row ``row`` of ``(channels, n_rec, J, S)`` records and ``(n_rec, n_actuators,
+        J, S)`` actuator outputs at the current state; leaves stage 0 in place."""
+        y = self._y
         self._rhs(y, targets, ext, self._stages[0])
-        q, dq, act = y[0], y[1], y[2 : self._n_dyn]
-        torques = self._torques
-        held = self._free == 0.0
-        tau_external = torques[_EXTERNAL]
-        if held.any():  # a hold's reaction cancels every other torque on the still link
-            net = torques.sum(axis=0)
+        observe_batch(y, targets, self._stages[0], self._torques, self._mech_damping,
+                      self._params, self._kernel.kind, self._chain is not None, self._walls,
+                      self._wall_on, self._free, self._potential0, self._jumps, self._injection,
+                      floats, bools, actuators, row)
+        bools[_CLAMPED, row] = clamped
+        q, dq = y[0], y[1]
+        if self._chain is not None:
+            self._chain.energies(q, dq, floats[_KINETIC, row], floats[_GRAVITY_POTENTIAL, row])
+        if not self._free.all():  # a hold's reaction cancels every other torque on the still link
+            net = self._torques.sum(axis=0)
             if self._chain is not None:
                 net -= self._chain.inverse(q, dq, self._stages[0][1])
             else:
                 net += self._gravity_torque
-            tau_external = tau_external - np.where(held, net, 0.0)
-        tau_mech = torques[_SPRING] + self._mech_damping if self._has_damping else torques[_SPRING]
-        tau_measured = tau_mech
+            floats[_TAU_EXTERNAL, row] -= np.where(self._free == 0.0, net, 0.0)
         if self._noise.any():
             stream = np.random.default_rng([self._noise_seed, self._step_index])
-            tau_measured = tau_mech + self._noise * stream.standard_normal(q.shape)
-        q_measured = q
-        if self._resolution.any():
-            resolution = np.where(self._resolution > 0, self._resolution, 1.0)
-            q_measured = np.where(self._resolution > 0, np.round(q / resolution) * resolution, q)
-        spring_potential = kernel.potential(q, act, targets)
-        stop_potential = self._stop_potential(q)
-        tension, motor_torque = kernel.loads(q, act, self._stages[0][2 : self._n_dyn])
-        works = y[self._n_dyn :]
-        contact = (q < self._lower) | (q > self._upper)
-        position, side = self._walls[:2]
-        contact |= (self._wall_on & ((q - position) * side > 0)).any(axis=0)
-        shape = q.shape
-        return {
-            "q": q,
-            "dq": dq,
-            "q_measured": q_measured,
-            "tau_mechanism": tau_mech,
-            "tau_measured": tau_measured,
-            "tau_external": tau_external,
-            "stiffness_realised": kernel.stiffness(q, act, targets),
-            "damping_realised": np.broadcast_to(kernel.damping(act, targets), shape),
-            "equilibrium_realised": np.broadcast_to(kernel.equilibrium(act, targets), shape),
-            "commands_clamped": np.broadcast_to(clamped, shape),
-            "held": held,
-            "in_contact": contact,
-            "kinetic": self._kinetic(q, dq),
-            "spring_potential": spring_potential,
-            "gravity_potential": self._gravity_potential(q),
-            "end_stop_potential": stop_potential,
-            "actuator_work": spring_potential - self._spring_potential0 + works[_SPRING],
-            "perturbation_work": works[_EXTERNAL] + self._jumps,
-            "dissipated": -works[_PASSIVE] - (stop_potential - self._stop_potential0),
-            "stiffness_injection": self._injection,
-            "spring_tension": tension,
-            "motor_torque": motor_torque,
-        }
+            floats[_TAU_MEASURED, row] += self._noise * stream.standard_normal(q.shape)
 
     # ----------------------------------------------------------------- public API
     @property
@@ -519,7 +480,7 @@ class Simulator:
         if not self._started:
             self._start(targets[0])
         self._apply_events(self._step_index)
-        self._advance(targets[0], ext[0] if touched else None)
+        self._advance(targets, ext if touched else None, 0, 1)
         self._apply_events(self._step_index)
         observed = ext[0, 2] if touched else None
         if self._step_index != self._horizon_steps:
@@ -564,11 +525,9 @@ class Simulator:
                     f"{n_scen} scenarios"
                 )
         n_rec = n_steps // decimation + 1
-        # recorded joint-major like the state; turned to (n_rec, n_scen, n_joints) once at the end
-        record = {
-            name: np.zeros((n_rec, n_joints, n_scen), dtype=bool if name in _BOOLEAN else float)
-            for name in _CHANNELS
-        }
+        # recorded joint-major like the state; turned to (n_rec, n_scen, n_joints) at the end
+        floats = np.zeros((len(FLOAT_CHANNELS), n_rec, n_joints, n_scen))
+        bools = np.zeros((len(BOOL_CHANNELS), n_rec, n_joints, n_scen), dtype=bool)
         actuators = np.zeros((n_rec, self._kernel.n_actuators, n_joints, n_scen))
         counts = {name: np.zeros((n_scen, n_joints), dtype=np.int64)
                   for name in self._kernel.clamp_names}
@@ -590,21 +549,27 @@ class Simulator:
             touched = self._perturb.fill_torque(ext_chunk[: k1 - k0], first + k0)
             if not self._started:
                 self._start(chunk_targets[0])
-            for c in range(k1 - k0):
+            c, n_chunk = 0, k1 - k0
+            while c < n_chunk:  # runs of steps without an event or a sample in one call
                 k = k0 + c
-                targets, clamped = chunk_targets[c], any_clamped[c]
-                ext = ext_chunk[c] if touched else None
                 self._apply_events(first + k)
                 if k % decimation == 0:
-                    stage = None if ext is None else ext[0]
-                    self._record(record, actuators, k // decimation, targets, stage, clamped)
-                self._advance(targets, ext)
+                    stage = ext_chunk[c, 0] if touched else None
+                    self._observe_into(floats, bools, actuators, k // decimation,
+                                       chunk_targets[c], stage, any_clamped[c])
+                stop = min(n_chunk, c + decimation - k % decimation,
+                           self._next_event(first + k) - first - k0)
+                self._advance(chunk_targets, ext_chunk if touched else None, c, stop)
+                c = stop
+            targets, clamped = chunk_targets[n_chunk - 1], any_clamped[n_chunk - 1]
+            ext = ext_chunk[n_chunk - 1] if touched else None
         if n_steps % decimation == 0:
             self._apply_events(first + n_steps)
             stage = None if ext is None else ext[2]
-            self._record(record, actuators, n_rec - 1, targets, stage, clamped)
+            self._observe_into(floats, bools, actuators, n_rec - 1, targets, stage, clamped)
         # transposed views: a copy would cost more than the run's recording itself
-        record = {name: arr.transpose(0, 2, 1) for name, arr in record.items()}
+        record = {**{name: floats[i].transpose(0, 2, 1) for i, name in enumerate(FLOAT_CHANNELS)},
+                  **{name: bools[i].transpose(0, 2, 1) for i, name in enumerate(BOOL_CHANNELS)}}
         actuators = actuators.transpose(0, 1, 3, 2)
         energy = EnergyTraces(
             **{name: record[name] for name in EnergyTraces.__dataclass_fields__
@@ -622,12 +587,6 @@ class Simulator:
             method=self.method,
             joint_names=tuple(j.name for j in self.joints),
         )
-
-    def _record(self, record, actuators, row, targets, ext, clamped) -> None:
-        obs = self._observe(targets, ext, clamped)
-        for name, value in obs.items():
-            record[name][row] = value
-        actuators[row] = self._kernel.actuator_output(self._y[2 : self._n_dyn])
 
 
 def simulate(

@@ -3,7 +3,8 @@
 Each mechanism turns commands into actuator targets (clamping what it cannot realise and saying
 so), hands the compiled step (:mod:`.step_kernel`, which moves the actuators towards the targets
 with a first-order lag and a rate limit and puts the springs' torque on the link) its constants,
-and gives its spring energy and the stiffness it realises at the current state for recording.
+which also serve the compiled recording (:mod:`.observe_kernel`: spring energy, realised
+stiffness, tensions and motor torques).
 Arrays are laid out joint-major, ``(..., n_joints, n_scenarios)``, with per-joint parameters as
 ``(n_joints, 1)`` columns, so every operation broadcasts along the long scenario axis. The
 antagonistic closed forms are public for tests and tools.
@@ -136,9 +137,11 @@ class Mechanism:
     def step_constants(self) -> dict[str, np.ndarray]:
         """Per-joint constants of the compiled step (:mod:`.step_kernel`): the actuators' lag
         ``inv_time_constant_i`` (1/s) and rate limits ``rate_limit_i``, and the spring
-        coefficients ``k1``, ``k2`` (zero for a mechanism without springs)."""
+        coefficients ``k1``, ``k2``; for the recording, the reflected ``motor_inertia``
+        (kg*m^2) and ``motor_offset``, rad, from the internal actuator rows to the reported
+        ones (all zero for a mechanism without springs and motors)."""
         n = len(self.records)
-        constants = {"k1": np.zeros(n), "k2": np.zeros(n)}
+        constants = {name: np.zeros(n) for name in ("k1", "k2", "motor_inertia", "motor_offset")}
         for i in range(self.n_actuators):
             constants[f"inv_time_constant_{i}"] = 1.0 / self.time_constant[:, 0]
             constants[f"rate_limit_{i}"] = self.rate_limit[i, :, 0]
@@ -153,27 +156,6 @@ class Mechanism:
         """
         raise NotImplementedError
 
-    def potential(self, q: np.ndarray, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
-        """Energy stored in the mechanism's springs, J."""
-        raise NotImplementedError
-
-    def stiffness(self, q: np.ndarray, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
-        """Stiffness realised at the state, N*m/rad."""
-        raise NotImplementedError
-
-    def set_stiffness_change(self, act_change: np.ndarray) -> np.ndarray:
-        """Change of the stiffness the actuators are set to (independent of the link angle),
-        N*m/rad, for a change ``act_change`` of the actuator rows."""
-        raise NotImplementedError
-
-    def equilibrium_change(self, act_change: np.ndarray) -> np.ndarray | float:
-        """Change of :meth:`equilibrium` within a step (commands held) for ``act_change``."""
-        raise NotImplementedError
-
-    def damping(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
-        """Damping realised, N*m*s/rad."""
-        raise NotImplementedError
-
     def equilibrium(self, act: np.ndarray, targets: np.ndarray) -> np.ndarray:
         """Link angle of zero spring torque the actuators are set to, rad."""
         raise NotImplementedError
@@ -181,17 +163,6 @@ class Mechanism:
     def highest_stiffness(self, torque_limit: np.ndarray) -> np.ndarray:
         """Stiffest realisable state per joint (n_joints,), N*m/rad, for the stability check."""
         raise NotImplementedError
-
-    def actuator_output(self, act: np.ndarray) -> np.ndarray:
-        """Actuator states as reported (``SimResult.actuators``)."""
-        return act
-
-    def loads(
-        self, q: np.ndarray, act: np.ndarray, rates: np.ndarray
-    ) -> tuple[np.ndarray, np.ndarray]:
-        """Largest spring tension and largest |motor torque| per joint, N*m, at the state with
-        actuator rates ``rates``; zero for a mechanism without separate springs and motors."""
-        return np.zeros_like(q), np.zeros_like(q)
 
     def load_limits(self) -> tuple[np.ndarray, np.ndarray]:
         """Spring-tension and motor-torque limits per joint (n_joints,), N*m (inf: none)."""
@@ -237,21 +208,6 @@ class IdealImpedance(Mechanism):
         flags = {"stiffness": k != stiffness, "damping": d != damping}
         return targets, flags
 
-    def potential(self, q, act, targets):
-        return 0.5 * act[0] * (q - targets[2]) ** 2
-
-    def stiffness(self, q, act, targets):
-        return np.broadcast_to(act[0], np.broadcast_shapes(np.shape(q), act[0].shape)).copy()
-
-    def set_stiffness_change(self, act_change):
-        return act_change[0]
-
-    def equilibrium_change(self, act_change):
-        return 0.0  # the equilibrium is the command itself, held over the step
-
-    def damping(self, act, targets):
-        return act[1].copy()
-
     def equilibrium(self, act, targets):
         return np.broadcast_to(targets[2], act[0].shape).copy()
 
@@ -291,7 +247,8 @@ class Antagonistic(Mechanism):
         self.motor_inertia = _column(records, "motor_inertia")
 
     def step_constants(self) -> dict[str, np.ndarray]:
-        return {**super().step_constants(), "k1": self.k1[:, 0], "k2": self.k2[:, 0]}
+        return {**super().step_constants(), "k1": self.k1[:, 0], "k2": self.k2[:, 0],
+                "motor_inertia": self.motor_inertia[:, 0], "motor_offset": self.d0[:, 0]}
 
     def motor_targets(
         self, equilibrium: np.ndarray, stiffness: np.ndarray
@@ -310,52 +267,8 @@ class Antagonistic(Mechanism):
         s1, s2, eq_flag, k_flag = self.motor_targets(equilibrium, stiffness)
         return np.stack([s1, s2], axis=1), {"equilibrium": eq_flag, "stiffness": k_flag}
 
-    def _elongations(self, q, act):
-        return np.maximum(act[0] - q, 0.0), np.maximum(q - act[1], 0.0)
-
-    def potential(self, q, act, targets):
-        total = 0.0
-        for phi in self._elongations(q, act):
-            total = total + phi**2 * (0.5 * self.k1 + self.k2 / 3.0 * phi)
-        return total
-
-    def stiffness(self, q, act, targets):
-        total = 0.0
-        for phi in self._elongations(q, act):
-            total = total + np.where(phi > 0, self.k1 + 2 * self.k2 * phi, 0.0)
-        return total
-
-    def set_stiffness_change(self, act_change):
-        change = act_change[0] - act_change[1]
-        change *= self._k2
-        change *= 2.0
-        return change
-
-    def equilibrium_change(self, act_change):
-        change = act_change[0] + act_change[1]
-        change *= 0.5
-        return change
-
-    def damping(self, act, targets):
-        return np.zeros_like(act[0])
-
     def equilibrium(self, act, targets):
         return 0.5 * (act[0] + act[1])
-
-    def actuator_output(self, act: np.ndarray) -> np.ndarray:
-        """Motor angles (theta1, theta2) from the internal rows, rad."""
-        return np.stack([act[0] - self.d0, act[1] + self.d0])
-
-    def loads(self, q, act, rates):
-        """Tensions t(phi) of the two springs; motor i gives J_m * dd(theta_i) plus the tension
-        of its spring (motor 1 pulls, motor 2 pushes, see :func:`antagonistic_torque`). Within a
-        step the commands are held, so a motor off its rate limit accelerates at
-        -d(theta)/dt / T (derivative of the first-order lag) and one on it not at all."""
-        t1, t2 = (_spring_tension(phi, self.k1, self.k2) for phi in self._elongations(q, act))
-        free = np.abs(rates) < self.rate_limit
-        accel = np.where(free, -rates / self.time_constant, 0.0) * self.motor_inertia
-        motor = np.maximum(np.abs(accel[0] + t1), np.abs(accel[1] - t2))
-        return np.maximum(t1, t2), motor
 
     def load_limits(self):
         return self.tension_limit[:, 0], self.motor_torque_limit[:, 0]

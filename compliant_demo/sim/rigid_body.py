@@ -519,7 +519,11 @@ class ChainKernel:
         self._model = (self._place, self._pos, self._axis, self._mass, self._com,
                        self._inertia)
         self.model = (*self._model, self._gravity)  # the arrays the compiled step reads
-        self._rest_heights = self._heights(np.zeros((self.n_joints, 1)))
+        rest = np.zeros((self.n_joints, 1))
+        heights = np.empty_like(rest)
+        _chain_energies(rest, rest, *self.model, np.zeros(self.n_joints), np.empty_like(rest),
+                        heights)
+        self._rest_heights = heights[:, 0]
 
     def forward(self, q: np.ndarray, dq: np.ndarray, tau: np.ndarray, free: np.ndarray,
                 out: np.ndarray) -> None:
@@ -550,18 +554,13 @@ class ChainKernel:
         momentum = self.inverse(q, np.zeros_like(q), dq, gravity=False)
         return 0.5 * dq * momentum
 
-    def gravity_potential(self, q: np.ndarray) -> np.ndarray:
-        """``-m_i g . (c_i(q) - c_i(0))`` of the link each joint moves, J, ``(n_joints, n_scen)``:
-        sums over joints to the potential energy, zero at q = 0."""
-        return self._heights(q) - self._rest_heights
-
-    def _heights(self, q: np.ndarray) -> np.ndarray:
-        out = np.empty(q.shape)
-        frames = link_frames(self._place, self._pos, self._axis, q)
-        for i, (origin, rot) in enumerate(frames):
-            centre = origin + rot @ self._com[i]
-            out[i] = -self._mass[i] * (centre @ self._gravity)
-        return out
+    def energies(self, q: np.ndarray, dq: np.ndarray, kinetic: np.ndarray,
+                 potential: np.ndarray) -> None:
+        """Into ``kinetic`` as :meth:`kinetic_split` and into ``potential`` the gravity energy
+        ``-m_i g . (c_i(q) - c_i(0))`` of the link each joint moves, J; all ``(n_joints,
+        n_scen)`` contiguous. Each sums over joints to the arm's energy (zero potential at
+        q = 0)."""
+        _chain_energies(q, dq, *self.model, self._rest_heights, kinetic, potential)
 
 
 @_kernel
@@ -607,6 +606,31 @@ def _frames(q, place, pos, axis, origins, rots):
             r[0, 0], r[0, 1], r[0, 2] = w00, w01, w02
             r[1, 0], r[1, 1], r[1, 2] = w10, w11, w12
             r[2, 0], r[2, 1], r[2, 2] = w20, w21, w22
+
+
+_inverse_serial = _SERIAL[1]
+
+
+@_kernel
+def _chain_energies(q, dq, place, pos, axis, mass, com, inertia, gravity, rest, kinetic,
+                    potential):
+    """See :meth:`ChainKernel.energies`; ``rest`` (n,) the links' heights term at q = 0."""
+    n, n_scen = q.shape
+    _inverse_serial(q, np.zeros((n, n_scen)), dq, False, place, pos, axis, mass, com, inertia,
+                    gravity, kinetic)
+    origins = np.empty((n, n_scen, 3))
+    rots = np.empty((n, n_scen, 3, 3))
+    _frames(q, place, pos, axis, origins, rots)
+    g0, g1, g2 = gravity[0], gravity[1], gravity[2]
+    for i in range(n):
+        c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
+        for s in range(n_scen):
+            kinetic[i, s] = 0.5 * dq[i, s] * kinetic[i, s]
+            o, r = origins[i, s], rots[i, s]
+            x = o[0] + (r[0, 0] * c0 + r[0, 1] * c1 + r[0, 2] * c2)
+            y = o[1] + (r[1, 0] * c0 + r[1, 1] * c1 + r[1, 2] * c2)
+            z = o[2] + (r[2, 0] * c0 + r[2, 1] * c1 + r[2, 2] * c2)
+            potential[i, s] = -mass[i] * (x * g0 + y * g1 + z * g2) - rest[i]
 
 
 def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray

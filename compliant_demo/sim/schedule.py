@@ -87,6 +87,9 @@ class CompiledSchedules:
     holds: list[tuple[int, int, int, int]] = field(default_factory=list)
     impulses: list[tuple[int, int, int, float]] = field(default_factory=list)
     starts: list[tuple[int, int, int]] = field(default_factory=list)
+    # [start, stop) of every term, for picking those a chunk overlaps
+    _spans: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64),
+                               repr=False, compare=False)
 
     def starts_at_or_after(self, step: int) -> list[str]:
         """Names ``schedules[s].perturbations[i]`` of those starting at or after ``step``."""
@@ -114,11 +117,14 @@ class CompiledSchedules:
         """
         n_chunk = out.shape[0]
         last = first_step + n_chunk
+        if len(self._spans) != len(self.terms):
+            self._spans = np.array([(term.start, term.stop) for term in self.terms],
+                                   dtype=np.int64).reshape(-1, 2)
         touched = False
-        for term in self.terms:
+        overlapping = (self._spans[:, 0] < last) & (self._spans[:, 1] > first_step)
+        for index in np.flatnonzero(overlapping):
+            term = self.terms[index]
             a, b = max(term.start, first_step), min(term.stop, last)
-            if a >= b:
-                continue
             t = (np.arange(a, b)[:, None] - term.start + STAGE_OFFSETS) * self.dt
             out[a - first_step : b - first_step, :, term.joint, term.scenario] += term.profile(t)
             touched = True

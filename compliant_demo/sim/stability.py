@@ -11,6 +11,7 @@ step and raises :class:`UnstableStepError` stating it.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 
 import numpy as np
@@ -50,8 +51,10 @@ def _one_step_matrices(method: str, h: np.ndarray, omega2: float, c: float) -> n
     )
 
 
+@functools.lru_cache(maxsize=1024)
 def _largest_step(method: str, omega2: float, c: float) -> float:
-    """Largest h with spectral radius <= 1, by a scan then bisection."""
+    """Largest h with spectral radius <= 1, by a scan then bisection (remembered: a campaign
+    checks the same plant for every batch)."""
     scale = max(np.sqrt(omega2), c, 1e-12)
     grid = np.linspace(0.0, 4.0 / scale, 4001)[1:]
     radius = np.abs(np.linalg.eigvals(_one_step_matrices(method, grid, omega2, c))).max(axis=1)

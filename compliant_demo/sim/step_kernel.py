@@ -13,6 +13,7 @@ recording; per-joint constants come packed in one ``(N_PARAMS, n_joints)`` array
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 
 import numba
@@ -43,11 +44,19 @@ METHOD_CODES = {"rk4": 0, "symplectic_euler": 1, "explicit_euler": 2}
 # rows of the packed per-joint constants
 PARAM_ROWS = ("neg_viscous", "neg_coulomb", "inv_smoothing", "neg_mgl", "gravity_offset",
               "lower", "upper", "stop_stiffness", "stop_damping", "k1", "k2",
-              "inv_time_constant_0", "inv_time_constant_1", "rate_limit_0", "rate_limit_1")
+              "inv_time_constant_0", "inv_time_constant_1", "rate_limit_0", "rate_limit_1",
+              # read by the recording only (observe_kernel)
+              "inertia", "encoder_resolution", "motor_inertia", "motor_offset")
 N_PARAMS = len(PARAM_ROWS)
 (_NEG_VISCOUS, _NEG_COULOMB, _INV_SMOOTHING, _NEG_MGL, _OFFSET, _LOWER, _UPPER, _K_STOP,
- _B_STOP, _K1, _K2, _INV_TC, _, _RATE, _) = range(N_PARAMS)
+ _B_STOP, _K1, _K2, _INV_TC, _, _RATE, _, _, _, _, _) = range(N_PARAMS)
 _INV_DEPTH = 1.0 / CONTACT_DAMPING_DEPTH
+# tanh in a form the compiler vectorises (libm's is an opaque call): tanh|x| = e / (e + 2) with
+# e = expm1(2|x|) (fdlibm's s_tanh.c identity), expm1 by Cody-Waite reduction by ln 2 and its
+# Taylor series to r^13/13! on |r| <= ln2/2 (next term below 5e-18 relative); a few ulp
+_LN2_HI, _LN2_LO = 6.93147180369123816490e-01, 1.90821492927058770002e-10
+_EXPM1_TAYLOR = tuple(1.0 / math.factorial(n) for n in range(13, 1, -1))
+_TANH_SATURATED = 20.0  # tanh(20) rounds to 1.0 in double precision
 _compiled = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 _parallel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True, parallel=True)
 # the batch's arrays never overlap: declared so (see rigid_body), the scenario loops vectorise
@@ -74,6 +83,23 @@ def contact_force(penetration, rate, stiffness, damping):
     """
     ramp = min(max(penetration * _INV_DEPTH, 0.0), 1.0)
     return max(ramp * rate * damping + stiffness * penetration, 0.0)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy",
+            fastmath={"nnan", "ninf", "nsz", "contract"})
+def _tanh(x):
+    """tanh(x) without a library call (see ``_EXPM1_TAYLOR``); no reassociation is allowed
+    here, the reduction and ``2^k p + (2^k - 1)`` depend on the order of their operations."""
+    y = 2.0 * min(abs(x), _TANH_SATURATED)
+    turns = np.rint(y * (1.0 / math.log(2.0)))
+    r = (y - turns * _LN2_HI) - turns * _LN2_LO
+    poly = _EXPM1_TAYLOR[0]
+    for c in _EXPM1_TAYLOR[1:]:
+        poly = poly * r + c
+    poly = (poly * r * r) + r  # expm1(r)
+    scale = float(np.int64(1) << np.int64(turns))  # 2^k, k <= 58: exact
+    e = scale * poly + (scale - 1.0)
+    return math.copysign(e / (e + 2.0), x)
 
 
 @_distinct
@@ -117,9 +143,9 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
         for k in range(nb):
             rate_1[k] = min(max((target1[k] - act1[k]) * inv_tc1, -rate1), rate1)
         neg_coulomb, inv_smoothing = prm[_NEG_COULOMB, j], prm[_INV_SMOOTHING, j]
-        if neg_coulomb != 0.0:  # tanh is a library call: only on joints that have friction
+        if neg_coulomb != 0.0:  # only on joints that have friction
             for k in range(nb):
-                passive[k] += neg_coulomb * np.tanh(dq[k] * inv_smoothing)
+                passive[k] += neg_coulomb * _tanh(dq[k] * inv_smoothing)
         lower, upper = prm[_LOWER, j], prm[_UPPER, j]
         k_stop, b_stop = prm[_K_STOP, j], prm[_B_STOP, j]
         for k in range(nb):
@@ -243,8 +269,35 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
 
 # the state derivative of a whole batch (see _block_rhs), on one thread: what recording reads
 rhs_batch: Callable[..., None] = _distinct(_rhs_blocks)
-# one step of a whole batch: [0] on one thread (the default: campaigns already run one process
-# per core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it
-# started, as campaign workers are), [1] over numba's threads
-step_batch: tuple[Callable[..., None], Callable[..., None]] = (
-    _distinct(_step_blocks), _parallel(_step_blocks))
+# one step of a whole batch: on one thread (the default: campaigns already run one process per
+# core, and GNU OpenMP, numba's threading layer here, aborts a process forked after it started,
+# as campaign workers are), or over numba's threads
+_step_serial = _distinct(_step_blocks)
+_step_parallel = _parallel(_step_blocks)
+
+
+@_compiled
+def _steps_serial(method, h, y, tg, ext, has_ext, c0, c1, prm, walls, kind, coupled, free,
+                  accel_scale, model, ws, zero, stages, ys, acc, torques, mech, grav, deflection,
+                  injection):
+    """Steps c0 .. c1 - 1 of a chunk in one call: targets tg[c], stage torques ext[c] (ext[0],
+    unread, without them); the rest as :func:`_step_blocks`."""
+    for c in range(c0, c1):
+        _step_serial(method, h, y, tg[c], ext[c if has_ext else 0], has_ext, prm, walls, kind,
+                     coupled, free, accel_scale, model, ws, zero, stages, ys, acc, torques, mech,
+                     grav, deflection, injection)
+
+
+@_compiled
+def _steps_parallel(method, h, y, tg, ext, has_ext, c0, c1, prm, walls, kind, coupled, free,
+                    accel_scale, model, ws, zero, stages, ys, acc, torques, mech, grav,
+                    deflection, injection):
+    """:func:`_steps_serial` with each step's blocks over numba's threads."""
+    for c in range(c0, c1):
+        _step_parallel(method, h, y, tg[c], ext[c if has_ext else 0], has_ext, prm, walls,
+                       kind, coupled, free, accel_scale, model, ws, zero, stages, ys, acc,
+                       torques, mech, grav, deflection, injection)
+
+
+# steps c0 .. c1 - 1 of a chunk of commands: [0] on one thread, [1] over numba's threads
+step_batch: tuple[Callable[..., None], Callable[..., None]] = (_steps_serial, _steps_parallel)
