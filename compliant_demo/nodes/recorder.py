@@ -18,13 +18,16 @@ live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry re
 stored_samples and every non-zero anomaly counter. Here, before that: messages larger than
 ``max_message_joints``, with repeated joint names or an invalid stamp, or (``stamp_tolerance_s``
 > 0) a stamp that far from the node's clock, and stiffness references that are not one finite,
-non-negative value per joint.
+non-negative value per joint; and motor_states that :class:`compliant_demo.model_stiffness.
+MotorAngleGate` refuses (oversized, wrong_length, duplicate_names, missing_motors, non_finite,
+out_of_range of the plant's motor range, invalid_stamp, out_of_order within a demonstration).
 """
 
 from __future__ import annotations
 
 import math
 import time
+from collections.abc import Callable
 
 from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.node import Node
@@ -40,7 +43,7 @@ from compliant_demo.ingest import (
     RecordingSession,
     SampleChecker,
 )
-from compliant_demo.model_stiffness import held_model_stiffness, motor_joint_names
+from compliant_demo.model_stiffness import MotorAngleGate, held_model_stiffness
 from compliant_demo.nodes._common import (
     RejectCounter,
     check_parameter_changes,
@@ -76,7 +79,7 @@ class RecorderNode(Node):
         self.feedback = LiveFeedback(_reference_loader(p["store_path"]), FeedbackSettings(
             p["feedback_min_excited_fraction"], p["feedback_max_deviation_rad"],
             p["feedback_max_references"]))
-        model = _model_channel(p) if p["stiffness_channel"] == "model" else None
+        mechanisms, model = _model_channel(p) if p["stiffness_channel"] == "model" else ([], None)
         writer = ChunkWriter(
             open_store=lambda: open_store(p["store_path"]),
             make_estimator=_estimator_factory(p),
@@ -99,6 +102,9 @@ class RecorderNode(Node):
             held_width=2 * len(p["joints"]) if model else None,
         )
         self._settings = p
+        # Demonstrations that motion starts have no start call to read the metadata then.
+        self.add_post_set_parameters_callback(lambda _changed: self.session.configure(
+            self._request()))
         self.rejects = RejectCounter(self)
         qos = recorded_qos(p["queue_depth"])
         guard = self.rejects.guard
@@ -111,7 +117,8 @@ class RecorderNode(Node):
                                   ("discard", self._on_discard)):
             self.create_service(Trigger, service, guarded_service(self, service, callback))
         if model:
-            self._motor_names = motor_joint_names(p["joints"])
+            self._motor_gate = MotorAngleGate(p["joints"], mechanisms, p["max_message_joints"])
+            self._motor_demonstration: object = None
             self.create_subscription(JointState, "motor_states",
                                      guard("motor_states", self._on_motor_states), qos)
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
@@ -269,15 +276,17 @@ class RecorderNode(Node):
             self.session.set_reference(values)
 
     def _on_motor_states(self, msg: JointState) -> None:
-        position = dict(zip(msg.name, msg.position, strict=False))
-        if len(msg.position) != len(msg.name):
-            self.rejects.reject("motor_states", "wrong_length",
-                                f"{len(msg.position)} positions for {len(msg.name)} names")
-        elif any(name not in position for name in self._motor_names):
-            self.rejects.reject("motor_states", "missing_motors",
-                                f"needs {self._motor_names[:4]}...")
-        elif not self.session.set_reference([position[name] for name in self._motor_names]):
-            self.rejects.reject("motor_states", "non_finite", "NaN or infinite angle")
+        # Each demonstration orders its motor stamps afresh (a publisher may have restarted).
+        if self.session.current is not self._motor_demonstration:
+            self._motor_demonstration = self.session.current
+            self._motor_gate.restart()
+        stamp = msg.header.stamp
+        angles, problem = self._motor_gate.check(stamp.sec, stamp.nanosec, msg.name,
+                                                 msg.position)
+        if problem is not None:
+            self.rejects.reject("motor_states", *problem)
+        elif angles is not None:
+            self.session.set_reference(angles)
 
     def _publish_feedback(self, topic: str = "teaching_feedback") -> None:
         report = self.feedback.report()
@@ -362,13 +371,15 @@ def _reference_loader(store_path: str):
     return load
 
 
-def _model_channel(p: dict):
+def _model_channel(p: dict) -> tuple[list, Callable]:
+    """The joints' mechanisms and the channel's stiffness function (held_model_stiffness)."""
     from compliant_demo.plant import load_plant
 
     plant = (load_file_parameter("plant_file", p["plant_file"], load_plant) if p["plant_file"]
              else load_plant())
     try:
-        return held_model_stiffness(plant.mechanisms_for(p["joints"]))
+        mechanisms = plant.mechanisms_for(p["joints"])
+        return mechanisms, held_model_stiffness(mechanisms)
     except InvalidInputError as exc:
         raise InvalidInputError(f"stiffness_channel model, plant_file = {p['plant_file']!r}: "
                                 f"{exc}") from None
