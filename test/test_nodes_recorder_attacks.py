@@ -107,12 +107,17 @@ def test_hostile_motor_states_and_parameters_while_recording_leave_a_sound_demon
             assert not result.successful and reason in result.reason, (name, result.reason)
         assert set_parameter(client, "/recorder", "skill", "").reason == "skill must not be empty"
         assert set_parameter(client, "/recorder", "skill", "bottle_cap").successful
+        # A finite angle no joint has: its square would overflow the estimator's sums.
+        implausible = _joint_state(N_BEFORE_MOTORS)
+        implausible.position = [1e200, -0.2]
+        joint_states.publish(implausible)
         for index in range(N_BEFORE_MOTORS, N_SAMPLES):
             joint_states.publish(_joint_state(index))
         client.spin_until(lambda: diagnostics.latest.get("accepted") == str(N_SAMPLES), 30.0,
                           "every sample")
         expected = {f"rejected/motor_states/{reason}": "1" for reason in hostile}
         expected["rejected/motor_states/out_of_order"] = str(FLOOD)
+        expected["rejected/joint_states/implausible"] = "1"
         client.spin_until(lambda: all(diagnostics.latest.get(key) == value
                                       for key, value in expected.items()), 30.0,
                           f"the rejections counted as {expected}")

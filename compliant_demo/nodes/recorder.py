@@ -16,7 +16,8 @@ rad) and stores the stiffness of the ``plant_file`` mechanism's springs. Service
 ``allow_discard`` is true). The sample checks, counters, bounded buffer and background writer
 live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received, accepted,
 stored_samples and every non-zero anomaly counter. Here, before that: messages larger than
-``max_message_joints``, with repeated joint names or an invalid stamp, or (``stamp_tolerance_s``
+``max_message_joints``, with repeated joint names, a finite value above 1e6 (rad, rad/s, N*m)
+or an invalid stamp, or (``stamp_tolerance_s``
 > 0) a stamp that far from the node's clock, and stiffness references that are not one finite,
 non-negative value per joint; and motor_states that :class:`compliant_demo.model_stiffness.
 MotorAngleGate` refuses (oversized, wrong_length, duplicate_names, missing_motors, non_finite,
@@ -28,6 +29,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
+from itertools import chain
 
 from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.node import Node
@@ -67,6 +69,10 @@ __all__ = ["RecorderNode", "main"]
 # reliable subscription's history holds the messages that arrive meanwhile.
 _STOP_WAIT_S = 5.0
 _MAX_NOTES_CHARS = 4000
+# Largest position (rad), velocity (rad/s) or effort (N*m) a joint state may carry: far beyond
+# any joint, and small enough that its square cannot overflow the estimator's running sums and
+# band-pass state (one value near 1e200 left the estimate NaN for the rest of a demonstration).
+_MAX_ABS_VALUE = 1e6
 
 
 class RecorderNode(Node):
@@ -252,6 +258,10 @@ class RecorderNode(Node):
             return "oversized", f"{largest} entries, at most {self._settings['max_message_joints']}"
         if len(set(msg.name)) != len(msg.name):
             return "duplicate_names", f"{len(msg.name)} names, {len(set(msg.name))} distinct"
+        largest_value = max((abs(v) for v in chain(msg.position, msg.velocity, msg.effort)
+                             if math.isfinite(v)), default=0.0)  # not finite: the session's count
+        if largest_value > _MAX_ABS_VALUE:
+            return "implausible", f"|value| = {largest_value:.3g}, at most {_MAX_ABS_VALUE:g}"
         stamp = msg.header.stamp
         if stamp.sec < 0 or stamp.nanosec >= 1_000_000_000 or stamp.sec == stamp.nanosec == 0:
             return "invalid_stamp", f"sec={stamp.sec}, nanosec={stamp.nanosec}"
