@@ -634,6 +634,10 @@ class RecordingSession:
         self.reference = held
         return True
 
+    def forget_reference(self) -> None:
+        """Hold NaN (unknown) for the following samples until :meth:`set_reference` again."""
+        self.reference = array("d", [math.nan] * len(self.reference))
+
     def start(self) -> tuple[bool, str]:
         """Open a demonstration; returns (success, message)."""
         with self._lock:

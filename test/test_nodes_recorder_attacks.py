@@ -21,6 +21,7 @@ MOTORS = ["shoulder_motor_1", "shoulder_motor_2", "elbow_motor_1", "elbow_motor_
 T0 = 1000.0  # first stamp, s (replayed stamps: the recorder's stamp_tolerance_s is 0)
 RATE_HZ = 100.0
 N_BEFORE_MOTORS, N_SAMPLES = 20, 200
+STALE_FROM, N_STALE = 260, 20  # samples 0.6 s and more after the last motor angles
 HELD = [0.3, -0.1, 0.2, -0.2]  # the one valid set of motor angles, rad
 FLOOD = 300
 
@@ -113,8 +114,13 @@ def test_hostile_motor_states_and_parameters_while_recording_leave_a_sound_demon
         joint_states.publish(implausible)
         for index in range(N_BEFORE_MOTORS, N_SAMPLES):
             joint_states.publish(_joint_state(index))
-        client.spin_until(lambda: diagnostics.latest.get("accepted") == str(N_SAMPLES), 30.0,
-                          "every sample")
+            motor_states.publish(_motors(T0 + (index + 1) / RATE_HZ))
+        # Then motor_states stop: samples stamped over motor_states_max_age_s (0.5 s) after the
+        # last motor angles get NaN, not those angles.
+        for index in range(STALE_FROM, STALE_FROM + N_STALE):
+            joint_states.publish(_joint_state(index))
+        client.spin_until(lambda: diagnostics.latest.get("accepted") == str(N_SAMPLES + N_STALE),
+                          30.0, "every sample")
         expected = {f"rejected/motor_states/{reason}": "1" for reason in hostile}
         expected["rejected/motor_states/out_of_order"] = str(FLOOD)
         expected["rejected/joint_states/implausible"] = "1"
@@ -135,15 +141,16 @@ def test_hostile_motor_states_and_parameters_while_recording_leave_a_sound_demon
         demo = store.load_demonstration(info.id)
     # The open demonstration keeps the metadata it started with.
     assert (info.status, info.skill) == ("complete", "cork_seat")
-    assert demo.stiffness.shape == (N_SAMPLES, 2)
-    np.testing.assert_allclose(demo.position, np.tile([0.1, -0.2], (N_SAMPLES, 1)))
+    assert demo.stiffness.shape == (N_SAMPLES + N_STALE, 2)
+    np.testing.assert_allclose(demo.position, np.tile([0.1, -0.2], (N_SAMPLES + N_STALE, 1)))
     assert np.isnan(demo.stiffness[:N_BEFORE_MOTORS]).all()
+    assert np.isnan(demo.stiffness[N_SAMPLES:]).all()
     # K = 2 k1 + 2 k2 (theta1 - theta2 + 2 d0) while both springs are taut (Migliore, Brown and
-    # DeWeerth, ICRA 2005): only the first, valid motor angles were ever held.
+    # DeWeerth, ICRA 2005): only the valid angles HELD were ever held.
     springs = load_plant().mechanisms_for(JOINTS)
     truth = [2 * p.k1 + 2 * p.k2 * (HELD[2 * j] - HELD[2 * j + 1] + 2 * p.pretension_offset)
              for j, p in enumerate(springs)]
-    np.testing.assert_allclose(demo.stiffness[N_BEFORE_MOTORS:],
+    np.testing.assert_allclose(demo.stiffness[N_BEFORE_MOTORS:N_SAMPLES],
                                np.tile(truth, (N_SAMPLES - N_BEFORE_MOTORS, 1)), rtol=1e-12)
 
 

@@ -11,7 +11,8 @@ deviation from the earlier demonstrations, advice), also published on ``teaching
 (diagnostic_msgs/DiagnosticArray, reliable, keep last 10, volatile) every
 ``feedback_period_s`` and at once after ``stop``. With ``stiffness_channel`` ``model`` it
 subscribes ``motor_states`` (sensor_msgs/JointState, ``<joint>_motor_1``/``_motor_2`` angles in
-rad) and stores the stiffness of the ``plant_file`` mechanism's springs. Services
+rad) and stores the stiffness of the ``plant_file`` mechanism's springs (NaN for samples stamped
+more than ``motor_states_max_age_s`` after the last accepted motor angles). Services
 (std_srvs/Trigger): ``start``, ``stop``, ``discard`` (refused unless the read-only
 ``allow_discard`` is true). The sample checks, counters, bounded buffer and background writer
 live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received, accepted,
@@ -122,6 +123,7 @@ class RecorderNode(Node):
         for service, callback in (("start", self._on_start), ("stop", self._on_stop),
                                   ("discard", self._on_discard)):
             self.create_service(Trigger, service, guarded_service(self, service, callback))
+        self._motor_gate: MotorAngleGate | None = None
         if model:
             self._motor_gate = MotorAngleGate(p["joints"], mechanisms, p["max_message_joints"])
             self._motor_demonstration: object = None
@@ -163,6 +165,11 @@ class RecorderNode(Node):
             "stiffness_channel": d(self, "stiffness_channel", "estimate",
                                   "Stored stiffness: estimate, reference (topic), model "
                                   "(motor_states and plant_file springs) or none."),
+            "motor_states_max_age_s": d(
+                self, "motor_states_max_age_s", 0.5,
+                "Model channel: a joint state stamped this long after the last accepted "
+                "motor_states stamp gets NaN stiffness (the motor angles are unknown), s.",
+                low=0.001, high=60.0),
             "plant_file": d(self, "plant_file", "", "Plant YAML in an allowed config folder "
                             "whose antagonistic springs give the model channel; empty = the "
                             "package's default plant."),
@@ -247,9 +254,11 @@ class RecorderNode(Node):
         if problem is not None:
             self.rejects.reject("joint_states", *problem)
             return
-        self.session.ingest(
-            _seconds(msg.header.stamp), msg.name, msg.position, msg.velocity, msg.effort
-        )
+        stamp = _seconds(msg.header.stamp)
+        if (self._motor_gate is not None and stamp - self._motor_gate.last_stamp
+                > self._settings["motor_states_max_age_s"]):
+            self.session.forget_reference()  # motor_states stopped: stiffness unknown, not stale
+        self.session.ingest(stamp, msg.name, msg.position, msg.velocity, msg.effort)
 
     def _joint_state_problem(self, msg: JointState) -> tuple[str, str] | None:
         """(reason, detail) when a message must not reach the session at all."""
@@ -286,13 +295,15 @@ class RecorderNode(Node):
             self.session.set_reference(values)
 
     def _on_motor_states(self, msg: JointState) -> None:
+        gate = self._motor_gate
+        if gate is None:  # subscribed only with the model channel
+            return
         # Each demonstration orders its motor stamps afresh (a publisher may have restarted).
         if self.session.current is not self._motor_demonstration:
             self._motor_demonstration = self.session.current
-            self._motor_gate.restart()
+            gate.restart()
         stamp = msg.header.stamp
-        angles, problem = self._motor_gate.check(stamp.sec, stamp.nanosec, msg.name,
-                                                 msg.position)
+        angles, problem = gate.check(stamp.sec, stamp.nanosec, msg.name, msg.position)
         if problem is not None:
             self.rejects.reject("motor_states", *problem)
         elif angles is not None:
