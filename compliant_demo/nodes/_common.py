@@ -16,6 +16,7 @@ from rcl_interfaces.msg import (
     IntegerRange,
     ParameterDescriptor,
 )
+from rclpy.exceptions import ParameterException
 from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.parameter import Parameter
@@ -372,7 +373,8 @@ def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> in
             status = int(getattr(node, "exit_status", 0))
     except (KeyboardInterrupt, ExternalShutdownException):
         pass
-    except CompliantDemoError as exc:
+    except (CompliantDemoError, ParameterException) as exc:
+        # ParameterException: rclpy refused a launch value (its type, its declared range).
         rclpy.logging.get_logger("compliant_demo").fatal(f"{type(exc).__name__}: {exc}")
         status = 2
     finally:
