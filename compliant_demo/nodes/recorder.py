@@ -4,11 +4,12 @@ Topics: subscribes ``joint_states`` (sensor_msgs/JointState: position rad, veloc
 N*m; header stamps in s) and ``stiffness_reference`` (std_msgs/Float64MultiArray, one value per
 joint in ``joints`` order, N*m/rad); publishes ``diagnostics`` (diagnostic_msgs/DiagnosticArray,
 keys: the counters of :class:`compliant_demo.ingest.IngestCounters`, rate_hz, buffer_fill,
-recording, demonstration_id, store_write_errors, reference_rejected, and ``rejected`` plus
-``rejected/<topic>/<reason>`` for messages refused before they reach the session), and a second
-status ``recorder/teaching_feedback`` (:mod:`compliant_demo.teaching_feedback`: excitation share,
-deviation from the earlier demonstrations, advice), also published on ``teaching_feedback``
-(diagnostic_msgs/DiagnosticArray, reliable, keep last 10, volatile) every
+recording, demonstration_id, store_write_errors, reference_rejected, feedback_errors, and
+``rejected`` plus ``rejected/<topic>/<reason>`` for messages refused before they reach the
+session), and a second status ``recorder/teaching_feedback``
+(:mod:`compliant_demo.teaching_feedback`: excitation share, deviation from the earlier
+demonstrations, advice), also published on ``teaching_feedback`` (diagnostic_msgs/DiagnosticArray,
+reliable, keep last 10, volatile) every
 ``feedback_period_s`` and at once after ``stop``. With ``stiffness_channel`` ``model`` it
 subscribes ``motor_states`` (sensor_msgs/JointState, ``<joint>_motor_1``/``_motor_2`` angles in
 rad) and stores the stiffness of the ``plant_file`` mechanism's springs (NaN for samples stamped
