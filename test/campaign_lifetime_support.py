@@ -18,6 +18,7 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import psutil
@@ -98,11 +99,13 @@ def _alive(pid: int) -> bool:
 
 
 def sigkill_mid_run(argv: list[str], path: Path, min_children: int = 1,
-                    env: dict[str, str] | None = None) -> tuple[list[int], list[int]]:
+                    env: dict[str, str] | None = None,
+                    ready: Callable[[Path], bool] = lambda path: _stored(path) > 0,
+                    ) -> tuple[list[int], list[int]]:
     """Run ``compliant-demo ARGV`` on the store at ``path``, SIGKILL its process alone (not its
-    group) once it has ``min_children`` descendants and a replay result stored, and wait at most
-    :data:`WORKER_GONE_WITHIN_S` for them to end; returns (descendants, those still alive).
-    Survivors are killed by pid afterwards."""
+    group) once it has ``min_children`` descendants and ``ready(path)`` (default: a replay result
+    is stored), and wait at most :data:`WORKER_GONE_WITHIN_S` for them to end; returns
+    (descendants, those still alive). Survivors are killed by pid afterwards."""
     entry = "import sys; from compliant_demo.cli import main; sys.exit(main(sys.argv[1:]))"
     process = subprocess.Popen([sys.executable, "-c", entry, *argv], env=env or _env(),
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
@@ -115,7 +118,7 @@ def sigkill_mid_run(argv: list[str], path: Path, min_children: int = 1,
                 children = [c.pid for c in psutil.Process(process.pid).children(recursive=True)]
             except psutil.NoSuchProcess:
                 continue
-            if len(children) >= min_children and path.exists() and _stored(path) > 0:
+            if len(children) >= min_children and path.exists() and ready(path):
                 break
         else:
             raise RuntimeError(f"{argv[0]} never stored a scenario (exit {process.poll()})")

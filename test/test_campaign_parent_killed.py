@@ -2,7 +2,8 @@
 the store they wrote to is sound, with the unfinished campaign shown as unfinished.
 
 Covers what test_campaign_lifetime (campaign, one worker) and test_launch_supervision (tour while
-it records) leave open: a pool of two workers, ``compare``, and ``tour`` killed in its campaign.
+it records) leave open: a pool of two workers, ``compare``, ``tour`` killed in its campaign, and
+what a tour killed while it records leaves in the store.
 """
 
 from __future__ import annotations
@@ -90,3 +91,28 @@ def test_a_tour_killed_in_its_campaign_leaves_no_worker_and_no_node(tmp_path: Pa
     assert len(campaigns) == 1 and 0 < campaigns[0].scenarios_stored < 2000
     with DemoStore(path, read_only=True) as store:
         assert {info.status for info in store.find_demonstrations()} == {"complete"}
+
+
+@pytest.mark.ros
+def test_a_tour_killed_while_recording_leaves_no_node_and_no_open_demonstration(
+    tmp_path: Path,
+) -> None:
+    from nodes_support import ros_env
+
+    path = tmp_path / "store.sqlite"
+
+    def recording(path: Path) -> bool:
+        with DemoStore(path, read_only=True) as store:
+            return any(True for _ in store.find_demonstrations())
+
+    argv = ["tour", "--demos", "3", "--scenarios", "7", "--store", str(path), "--out",
+            str(tmp_path / "out"), "--domain-id", str(TOUR_DOMAIN_ID), "--quiet"]
+    nodes, survivors = sigkill_mid_run(argv, path, min_children=2, env=ros_env(TOUR_DOMAIN_ID),
+                                       ready=recording)
+    assert len(nodes) >= 2 and survivors == []
+    # The recorder, told to end by the kernel when its parent died, finished what was open.
+    with DemoStore(path) as store:
+        assert store.verify() == []
+        statuses = [info.status for info in store.find_demonstrations()]
+        assert statuses and set(statuses) <= {"complete", "incomplete"}, statuses
+        assert store.list_campaigns() == []
