@@ -406,6 +406,7 @@ class ChunkWriter:
         self._ready = threading.Event()
         self.open_error: BaseException | None = None
         self.write_errors = 0
+        self.observer_errors = 0
         self.last_error: str | None = None
         self._thread = threading.Thread(target=self._run, name="chunk-writer", daemon=True)
 
@@ -518,10 +519,18 @@ class ChunkWriter:
             stiffness=stiffness,
         )
         demonstration.stored_samples += len(chunk)
-        if self._observer is not None:
-            self._observer.chunk(demonstration.demonstration_id, request,
-                                 chunk.t - demonstration.first_stamp, chunk.position,
-                                 demonstration.estimator)
+        self._tell_observer("chunk", demonstration.demonstration_id, request,
+                            chunk.t - demonstration.first_stamp, chunk.position,
+                            demonstration.estimator)
+
+    def _tell_observer(self, method: str, *arguments: Any) -> None:
+        # The observer only advises: its failure is counted, never the stored data's.
+        if self._observer is None:
+            return
+        try:
+            getattr(self._observer, method)(*arguments)
+        except Exception:  # counted in diagnostics (feedback_errors); the writer goes on
+            self.observer_errors += 1
 
     def _finish(
         self, store: Any, demonstration: _Demonstration, status: str, flags: dict[str, Any]
@@ -550,8 +559,8 @@ class ChunkWriter:
                 self.last_error = demonstration.write_error
                 status = "incomplete"
         demonstration.final_status = status
-        if self._observer is not None and demonstration.demonstration_id is not None:
-            self._observer.finished(status)
+        if demonstration.demonstration_id is not None:
+            self._tell_observer("finished", status)
         demonstration.finished.set()
 
 
@@ -633,6 +642,10 @@ class RecordingSession:
             return False
         self.reference = held
         return True
+
+    def forget_reference(self) -> None:
+        """Hold NaN (unknown) for the following samples until :meth:`set_reference` again."""
+        self.reference = array("d", [math.nan] * len(self.reference))
 
     def start(self) -> tuple[bool, str]:
         """Open a demonstration; returns (success, message)."""
@@ -758,6 +771,7 @@ class RecordingSession:
             recording=str(current is not None).lower(),
             demonstration_id=(current.demonstration_id or "") if current is not None else "",
             store_write_errors=str(self.writer.write_errors),
+            feedback_errors=str(self.writer.observer_errors),
             reference_rejected=str(self.reference_rejected),
         )
         if self.writer.write_errors or self.writer.open_error is not None:

@@ -22,7 +22,7 @@ from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import AntagonisticParams
 from compliant_demo.sim.mechanisms import antagonistic_motor_angles, antagonistic_stiffness
 
-__all__ = ["model_stiffness", "motor_joint_names", "held_model_stiffness",
+__all__ = ["model_stiffness", "motor_joint_names", "held_model_stiffness", "MotorAngleGate",
            "teaching_motor_angles", "compare_with_estimate"]
 
 
@@ -57,6 +57,68 @@ def held_model_stiffness(mechanisms: Sequence[object]):
         return result
 
     return stiffness
+
+
+class MotorAngleGate:
+    """What the "model" channel holds from one ``motor_states`` message, or why it holds nothing.
+
+    A message is refused (reason, detail) when it has more than ``max_entries`` names or
+    positions, a position count unlike its name count, a repeated name, lacks a motor of the
+    recorder's joints, has an angle that is not finite or outside the mechanism's motor range
+    ``[motor_lower, motor_upper]`` (a motor cannot be there, and the spring law would turn it into
+    a stiffness far beyond the mechanism's), has an invalid stamp, or a stamp not after the last
+    accepted one since :meth:`restart` (an older message would replace newer angles).
+
+    Parameters
+    ----------
+    joints : sequence of str
+        The recorder's joints; their motors are named by :func:`motor_joint_names`.
+    mechanisms : one AntagonisticParams per joint
+    max_entries : int
+        Most names or positions one message may carry.
+    """
+
+    def __init__(self, joints: Sequence[str], mechanisms: Sequence[object], max_entries: int):
+        springs = _antagonistic(mechanisms)
+        self.motor_names = motor_joint_names(joints)
+        self._ranges = [(p.motor_lower, p.motor_upper) for p in springs for _ in (1, 2)]
+        self.max_entries = max_entries
+        self.last_stamp = -math.inf
+
+    def restart(self) -> None:
+        """Accept any valid stamp next (a new demonstration; a restarted publisher)."""
+        self.last_stamp = -math.inf
+
+    def check(
+        self, sec: int, nanosec: int, names: Sequence[str], position: Sequence[float]
+    ) -> tuple[list[float] | None, tuple[str, str] | None]:
+        """``(angles in motor_names order, rad, None)`` or ``(None, (reason, detail))``."""
+        largest = max(len(names), len(position))
+        if largest > self.max_entries:
+            return None, ("oversized", f"{largest} entries, at most {self.max_entries}")
+        if len(position) != len(names):
+            return None, ("wrong_length", f"{len(position)} positions for {len(names)} names")
+        if len(set(names)) != len(names):
+            return None, ("duplicate_names", f"{len(names)} names, {len(set(names))} distinct")
+        given = dict(zip(names, position, strict=True))
+        missing = [name for name in self.motor_names if name not in given]
+        if missing:
+            return None, ("missing_motors", f"no {', '.join(missing[:4])}")
+        angles = [float(given[name]) for name in self.motor_names]
+        for name, angle, (low, high) in zip(self.motor_names, angles, self._ranges, strict=True):
+            if not math.isfinite(angle):
+                return None, ("non_finite", f"{name} = {angle}")
+            if not low <= angle <= high:
+                return None, ("out_of_range",
+                              f"{name} = {angle:.6g} rad, motor range [{low}, {high}] rad")
+        if sec < 0 or not 0 <= nanosec < 1_000_000_000 or sec == nanosec == 0:
+            return None, ("invalid_stamp", f"sec={sec}, nanosec={nanosec}")
+        stamp = sec + nanosec * 1e-9
+        if stamp <= self.last_stamp:
+            return None, ("out_of_order",
+                          f"stamp {stamp:.9f} s not after {self.last_stamp:.9f} s")
+        self.last_stamp = stamp
+        return angles, None
 
 
 def teaching_motor_angles(

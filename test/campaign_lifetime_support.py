@@ -5,7 +5,8 @@
   stored scenarios after a warm-up (least-squares slope, KiB per scenario).
 * :func:`sigkill_orphans` starts ``compliant-demo campaign`` on one pool worker, SIGKILLs the
   command's process alone (not its group) once scenarios are being stored, and counts the pool
-  workers still alive after a bounded wait. Survivors are killed by pid afterwards.
+  workers still alive after a bounded wait (:func:`sigkill_mid_run`, any command). Survivors are
+  killed by pid afterwards.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import psutil
@@ -24,7 +26,8 @@ from campaign_support import store_with_demos_and_skill
 
 from compliant_demo.store import DemoStore
 
-__all__ = ["template_store", "rss_growth_kib_per_scenario", "sigkill_orphans"]
+__all__ = ["template_store", "rss_growth_kib_per_scenario", "sigkill_orphans",
+           "sigkill_mid_run"]
 
 ROOT = Path(__file__).resolve().parents[1]
 TEST_DIR = Path(__file__).resolve().parent
@@ -95,38 +98,52 @@ def _alive(pid: int) -> bool:
         return False
 
 
-def _one_kill(template: Path, path: Path) -> int:
-    shutil.copy(template, path)
-    argv = ["campaign", "--store", str(path), "--scenarios", "2000", "--seed", "9",
-            "--batch-size", "2", "--workers", "1", "--duration", "1.5", "--settle", "0.3",
-            "--quiet"]
+def sigkill_mid_run(argv: list[str], path: Path, min_children: int = 1,
+                    env: dict[str, str] | None = None,
+                    ready: Callable[[Path], bool] = lambda path: _stored(path) > 0,
+                    ) -> tuple[list[int], list[int]]:
+    """Run ``compliant-demo ARGV`` on the store at ``path``, SIGKILL its process alone (not its
+    group) once it has ``min_children`` descendants and ``ready(path)`` (default: a replay result
+    is stored), and wait at most :data:`WORKER_GONE_WITHIN_S` for them to end; returns
+    (descendants, those still alive). Survivors are killed by pid afterwards."""
     entry = "import sys; from compliant_demo.cli import main; sys.exit(main(sys.argv[1:]))"
-    process = subprocess.Popen([sys.executable, "-c", entry, *argv], env=_env(),
+    process = subprocess.Popen([sys.executable, "-c", entry, *argv], env=env or _env(),
                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    workers: list[int] = []
+    children: list[int] = []
     try:
         deadline = time.monotonic() + _START_TIMEOUT_S
         while time.monotonic() < deadline and process.poll() is None:
             time.sleep(0.1)
             try:
-                workers = [c.pid for c in psutil.Process(process.pid).children(recursive=True)]
+                children = [c.pid for c in psutil.Process(process.pid).children(recursive=True)]
             except psutil.NoSuchProcess:
                 continue
-            if workers and path.exists() and _stored(path) > 0:
+            if len(children) >= min_children and path.exists() and ready(path):
                 break
         else:
-            raise RuntimeError(f"campaign never stored a scenario (exit {process.poll()})")
+            raise RuntimeError(f"{argv[0]} never stored a scenario (exit {process.poll()})")
+        # Every descendant at the moment of the kill, pool workers started since included.
+        children = sorted({*children, *(c.pid for c in
+                                        psutil.Process(process.pid).children(recursive=True))})
         os.kill(process.pid, signal.SIGKILL)
         process.wait(timeout=30)
         deadline = time.monotonic() + WORKER_GONE_WITHIN_S
-        while time.monotonic() < deadline and any(_alive(pid) for pid in workers):
+        while time.monotonic() < deadline and any(_alive(pid) for pid in children):
             time.sleep(0.05)
-        return sum(_alive(pid) for pid in workers)
+        return children, [pid for pid in children if _alive(pid)]
     finally:
-        for pid in [process.pid, *workers]:
+        for pid in [process.pid, *children]:
             if _alive(pid):
                 os.kill(pid, signal.SIGKILL)
         process.wait(timeout=30)
+
+
+def _one_kill(template: Path, path: Path) -> int:
+    shutil.copy(template, path)
+    argv = ["campaign", "--store", str(path), "--scenarios", "2000", "--seed", "9",
+            "--batch-size", "2", "--workers", "1", "--duration", "1.5", "--settle", "0.3",
+            "--quiet"]
+    return len(sigkill_mid_run(argv, path)[1])
 
 
 def sigkill_orphans(folder: Path, trials: int) -> list[int]:

@@ -246,9 +246,12 @@ def start_replay(client: TestClient, nodes: Any, service: str = "run") -> str:
 
 
 def parameter_value(value: Any) -> Any:
-    """``value`` (bool, int, float, str, or a list of one of them) as an rcl ParameterValue."""
+    """``value`` (bool, int, float, str, or a list of one of them) as an rcl ParameterValue;
+    None gives the type "not set", which asks a node to undeclare the parameter."""
     from rcl_interfaces.msg import ParameterType, ParameterValue
 
+    if value is None:
+        return ParameterValue(type=ParameterType.PARAMETER_NOT_SET)
     if isinstance(value, bool):
         return ParameterValue(type=ParameterType.PARAMETER_BOOL, bool_value=value)
     if isinstance(value, int):

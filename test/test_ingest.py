@@ -410,3 +410,35 @@ def test_model_channel_stores_the_springs_stiffness_from_the_held_motor_angles(t
     assert info.flags[STIFFNESS_MODEL_FLAG] == 1
     assert seen[0][:2] == (info.id, 0.0) and seen[-1] == ("finished", "complete")
     assert sum(item[2] for item in seen[:-1]) == 100
+
+
+def test_a_failing_observer_neither_loses_nor_downgrades_the_demonstration(tmp_path) -> None:
+    class Failing:
+        def chunk(self, *_arguments):
+            raise RuntimeError("feedback broke")
+
+        def finished(self, _status):
+            raise RuntimeError("feedback broke again")
+
+    path = tmp_path / "store.sqlite"
+    writer = ChunkWriter(lambda: DemoStore(path), None, flush_interval_s=0.05, observer=Failing())
+    writer.start()
+    request = DemonstrationRequest(skill="cork_seat", joints=JOINTS, nominal_rate_hz=RATE,
+                                   stiffness_channel="none")
+    session = RecordingSession(writer, SampleChecker(JOINTS, RATE), request, 10_000)
+    session.start()
+    for i in range(300):
+        session.ingest(*_message(i))
+        if i == 150:
+            time.sleep(0.15)  # a flush in between: the observer fails more than once
+    assert session.stop(wait_s=5.0) == (True, "complete: 300 stored, 300 samples accepted of "
+                                              "300 received")
+    level, _message_text, values = session.health(1.0)
+    assert level == "ok" and values["store_write_errors"] == "0"
+    assert int(values["feedback_errors"]) >= 3  # two chunks or more, and the finish
+    assert session.shutdown()
+    with DemoStore(path, read_only=True) as store:
+        (info,) = store.find_demonstrations()
+        assert store.verify() == []
+    assert info.status == "complete" and info.n_samples == 300
+    assert "store_write_failed" not in info.flags

@@ -111,3 +111,49 @@ def test_comparison_with_the_estimate_on_the_simulated_teacher():
         assert row["model_median"] == 15.0  # the hand is softer than 15 N*m/rad most of the time
         assert row["estimate_median"] == pytest.approx(same["estimate_median"])
         assert row["relative_difference_median"] < -0.5
+
+
+MOTORS = ["shoulder_motor_1", "shoulder_motor_2", "elbow_motor_1", "elbow_motor_2"]
+
+
+@pytest.mark.parametrize(("names", "position", "stamp", "reason", "detail"), [
+    (MOTORS * 2, [0.0] * 8, (1, 0), "oversized", "8 entries, at most 6"),
+    (MOTORS, [0.0] * 3, (1, 0), "wrong_length", "3 positions for 4 names"),
+    (MOTORS[:3] + MOTORS[:1], [0.0] * 4, (1, 0), "duplicate_names", "4 names, 3 distinct"),
+    (MOTORS[:2] + ["wrist_motor_1", "elbow_motor_2"], [0.0] * 4, (1, 0), "missing_motors",
+     "no elbow_motor_1"),
+    (MOTORS, [0.0, float("inf"), 0.0, 0.0], (1, 0), "non_finite", "shoulder_motor_2 = inf"),
+    (MOTORS, [0.0, 0.0, 1e300, 0.0], (1, 0), "out_of_range",
+     "elbow_motor_1 = 1e+300 rad, motor range [-3.5, 3.5] rad"),
+    (MOTORS, [0.0, -3.5001, 0.0, 0.0], (1, 0), "out_of_range", "shoulder_motor_2 = -3.5001"),
+    (MOTORS, [0.0] * 4, (0, 0), "invalid_stamp", "sec=0, nanosec=0"),
+    (MOTORS, [0.0] * 4, (-1, 5), "invalid_stamp", "sec=-1, nanosec=5"),
+    (MOTORS, [0.0] * 4, (1, 1_000_000_000), "invalid_stamp", "nanosec=1000000000"),
+])
+def test_the_motor_gate_refuses_what_the_model_channel_cannot_hold(names, position, stamp,
+                                                                      reason, detail):
+    from compliant_demo.model_stiffness import MotorAngleGate
+
+    gate = MotorAngleGate(["shoulder", "elbow"], SPRINGS, max_entries=6)
+    angles, problem = gate.check(*stamp, names, position)
+    assert angles is None and problem is not None
+    assert problem[0] == reason and detail in problem[1], problem
+    assert gate.last_stamp == -np.inf  # nothing refused moves the order
+
+
+def test_the_motor_gate_keeps_stamps_in_order_until_restarted():
+    from compliant_demo.model_stiffness import MotorAngleGate
+
+    gate = MotorAngleGate(["shoulder", "elbow"], SPRINGS, max_entries=6)
+    # names in any order; angles come back in motor_joint_names order, at the range's edges
+    angles, problem = gate.check(5, 0, MOTORS[::-1], [0.4, -3.5, 3.5, 0.1])
+    assert problem is None and angles == [0.1, 3.5, -3.5, 0.4]
+    for sec, nanosec in ((5, 0), (4, 999_999_999)):  # duplicated, then older
+        assert gate.check(sec, nanosec, MOTORS, [0.0] * 4) == (
+            None, ("out_of_order", f"stamp {sec + nanosec * 1e-9:.9f} s not after "
+                                   "5.000000000 s"))
+    assert gate.check(5, 1, MOTORS, [0.0] * 4)[1] is None
+    gate.restart()
+    assert gate.check(1, 0, MOTORS, [0.0] * 4)[1] is None
+    with pytest.raises(InvalidInputError, match="one antagonistic mechanism per joint"):
+        MotorAngleGate(["shoulder"], [IdealImpedanceParams()], max_entries=6)

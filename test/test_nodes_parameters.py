@@ -24,6 +24,14 @@ DOMAIN_ID = 45
          "stiffness_channel: must be one of"),
         ("compliant_demo.nodes.recorder", ["flush_interval_s:=0.5", "store_path:={store}"],
          "flush_interval_s"),
+        # rclpy's own refusals of launch values: one line, not a traceback
+        ("compliant_demo.nodes.recorder", ["nominal_rate_hz:=1000", "store_path:={store}"],
+         "Trying to set parameter 'nominal_rate_hz' to '1000' of type 'INTEGER', expecting "
+         "type 'DOUBLE'"),
+        ("compliant_demo.nodes.recorder", ["buffer_capacity:=10", "store_path:={store}"],
+         "Parameter buffer_capacity out of range. Min: 1000, Max: 10000000, value: 10"),
+        ("compliant_demo.nodes.recorder", ["skill:=5", "store_path:={store}"],
+         "node recorder: skill = 5: expected text, got an integer"),
     ],
 )
 def test_a_node_refuses_bad_start_values_and_exits(
@@ -36,8 +44,9 @@ def test_a_node_refuses_bad_start_values_and_exits(
         status = nodes.wait("node", 60.0)
     finally:
         nodes.close()
-    assert status != 0
-    assert message in nodes.log("node"), nodes.log("node")
+    log = nodes.log("node")
+    assert status == 2 and "Traceback" not in log, log
+    assert message in log, log
 
 
 def test_a_running_learner_refuses_bad_changes_with_their_reasons(tmp_path: Path) -> None:

@@ -166,3 +166,32 @@ def test_report_compares_the_model_channel_with_the_estimate(tmp_path):
         # the soft hand (4 to 6 N*m/rad most of the time) below the springs' 15 N*m/rad floor
         assert float(compared) > 50 and model == "15" and float(estimate) < 10
         assert float(relative) < -30
+
+
+class _Interrupted(Exception):
+    """Stands for the command's death after its first stored batch."""
+
+
+def test_report_of_an_unfinished_campaign_says_so_until_it_is_resumed(tmp_path):
+    path, truth_path = tmp_path / "store.sqlite", tmp_path / "truth.npz"
+    skill_id = _recorded_store(path, truth_path)
+    job = campaign_job(n_scenarios=7)
+    started: list[str] = []
+
+    def stop_after_the_first_batch(_outcomes) -> None:
+        raise _Interrupted
+
+    with DemoStore(path, durable=False) as store:
+        with pytest.raises(_Interrupted):
+            run_campaign(store, job, skill_id=skill_id, workers=0, batch_size=2,
+                         on_start=lambda campaign_id, _todo: started.append(campaign_id),
+                         on_batch=stop_after_the_first_batch)
+        (campaign_id,) = started
+        partial = dict(collect_report_content(store, "cork_seat").summary)["campaign"]
+        run_campaign(store, job, skill_id=skill_id, workers=0, batch_size=2,
+                     campaign_id=campaign_id)
+        resumed = dict(collect_report_content(store, "cork_seat").summary)["campaign"]
+    assert partial.startswith(f"{campaign_id}: 2 scenarios over ")
+    assert partial.endswith(f" (unfinished: 7 planned; compliant-demo campaign --resume "
+                            f"{campaign_id})")
+    assert resumed.startswith(f"{campaign_id}: 7 scenarios over ") and "unfinished" not in resumed

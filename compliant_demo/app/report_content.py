@@ -392,10 +392,13 @@ def collect_report_content(
                           for r in results])
         recovered = (f"{100 * np.isfinite(metrics['recovery_time_max_s'][acted]).mean():.0f} %"
                      if acted.any() else "no perturbation acted")
+        # A campaign whose command was killed holds only some of its scenarios: say so.
+        unfinished = (f" (unfinished: {job.n_scenarios} planned; compliant-demo campaign "
+                      f"--resume {campaign_id})" if len(results) < job.n_scenarios else "")
         summary += [
             ("campaign", f"{campaign_id}: {len(results)} scenarios over "
                          f"{len(set(kinds.tolist()))} perturbation kinds, seed "
-                         f"{campaign.config.get('seed')}"),
+                         f"{campaign.config.get('seed')}{unfinished}"),
             ("within limits", f"{len(results) - len(violations)} of {len(results)}"),
             ("recovered within the band",
              f"{recovered} (band {campaign.config.get('recovery_band')} rad)"),

@@ -16,8 +16,10 @@ from rcl_interfaces.msg import (
     IntegerRange,
     ParameterDescriptor,
 )
+from rclpy.exceptions import ParameterException
 from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
+from rclpy.parameter import Parameter
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 from rclpy.signals import SignalHandlerOptions
 from std_msgs.msg import Float64MultiArray
@@ -65,7 +67,15 @@ def declare(
     """Declare one parameter with a descriptor (range where given) and return its value.
 
     An empty list default gets dynamic typing (rclpy would otherwise fix it to a byte array and
-    refuse a later list of strings or numbers); read it back with :func:`list_parameter`.
+    refuse a later list of strings or numbers); read it back with :func:`list_parameter`. So does
+    a parameter settable at run time, so that a value of another type is refused by
+    :func:`check_parameter_changes` with a reason naming the parameter and the value (rclpy's own
+    refusal names neither).
+
+    Raises
+    ------
+    InvalidInputError
+        A run-time parameter was given (at launch) a value of another type than its default.
     """
     descriptor = ParameterDescriptor(description=description, read_only=read_only)
     if low is not None and high is not None:
@@ -75,10 +85,38 @@ def declare(
             descriptor.integer_range = [IntegerRange(from_value=int(low), to_value=int(high))]
         else:
             descriptor.floating_point_range = [FloatingPointRange(from_value=low, to_value=high)]
-    if isinstance(default, list) and not default:
+    if (isinstance(default, list) and not default) or not read_only:
         descriptor.dynamic_typing = True
-    return node.declare_parameter(name, default, descriptor).value
+    parameter = node.declare_parameter(name, default, descriptor)
+    problem = _type_change(parameter, Parameter.Type.from_parameter_value(default))
+    if problem is not None:
+        raise InvalidInputError(f"node {node.get_name()}: {problem}")
+    return parameter.value
 
+
+def _type_change(parameter: Parameter, expected: Parameter.Type) -> str | None:
+    """Why ``parameter`` may not take a value of another type than ``expected``; None if it may.
+
+    A list may become a list of another item type (an empty list's type is not even known); the
+    node's own check looks at the items (:func:`text_problem`, :func:`list_parameter`).
+    """
+    if parameter.type_ == expected or {parameter.type_, expected} <= _LIST_TYPES:
+        return None
+    shown = repr(parameter.value)
+    shown = shown if len(shown) <= 60 else shown[:57] + "..."
+    return f"{parameter.name} = {shown}: expected {_kind(expected)}, got {_kind(parameter.type_)}"
+
+
+def _kind(parameter_type: Parameter.Type) -> str:
+    if parameter_type in _LIST_TYPES:
+        return "a list"
+    return {Parameter.Type.STRING: "text", Parameter.Type.INTEGER: "an integer",
+            Parameter.Type.DOUBLE: "a floating-point number",
+            Parameter.Type.BOOL: "true or false"}.get(parameter_type, "no value")
+
+
+_LIST_TYPES = {Parameter.Type.BYTE_ARRAY, Parameter.Type.BOOL_ARRAY, Parameter.Type.INTEGER_ARRAY,
+               Parameter.Type.DOUBLE_ARRAY, Parameter.Type.STRING_ARRAY}
 
 # Declared by rclpy itself without read_only; switching a running node to a clock any participant
 # can publish (/clock) would move its stamp checks, so it is fixed once the node runs.
@@ -113,9 +151,13 @@ def check_parameter_changes(
 
     def on_set(parameters: list) -> SetParametersResult:
         fixed = [p.name for p in parameters if p.name in _FIXED_AT_LAUNCH]
+        retyped = [problem for p in parameters
+                   if (problem := _type_change(p, node.get_parameter(p.name).type_)) is not None]
         refusal: str | None = None
         if fixed:
             refusal = f"{fixed[0]} is fixed once the node runs (set it at launch)"
+        elif retyped:
+            refusal = retyped[0]
         elif check is not None:
             refusal = check(values_after(parameters))
         return SetParametersResult(successful=refusal is None, reason=refusal or "")
@@ -138,7 +180,7 @@ def text_problem(
             return f"{name}: at most {MAX_LIST_ITEMS} items, got {len(items)}"
         for item in items:
             if not isinstance(item, str):
-                return f"{name}: expected text, got {type(item).__name__}"
+                return f"{name}: expected text, got {type(item).__name__} {str(item)[:40]!r}"
             if len(item) > max_chars:
                 return f"{name}: at most {max_chars} characters, got {len(item)}"
     return None
@@ -331,7 +373,8 @@ def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> in
             status = int(getattr(node, "exit_status", 0))
     except (KeyboardInterrupt, ExternalShutdownException):
         pass
-    except CompliantDemoError as exc:
+    except (CompliantDemoError, ParameterException) as exc:
+        # ParameterException: rclpy refused a launch value (its type, its declared range).
         rclpy.logging.get_logger("compliant_demo").fatal(f"{type(exc).__name__}: {exc}")
         status = 2
     finally:

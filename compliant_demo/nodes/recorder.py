@@ -4,27 +4,34 @@ Topics: subscribes ``joint_states`` (sensor_msgs/JointState: position rad, veloc
 N*m; header stamps in s) and ``stiffness_reference`` (std_msgs/Float64MultiArray, one value per
 joint in ``joints`` order, N*m/rad); publishes ``diagnostics`` (diagnostic_msgs/DiagnosticArray,
 keys: the counters of :class:`compliant_demo.ingest.IngestCounters`, rate_hz, buffer_fill,
-recording, demonstration_id, store_write_errors, reference_rejected, and ``rejected`` plus
-``rejected/<topic>/<reason>`` for messages refused before they reach the session), and a second
-status ``recorder/teaching_feedback`` (:mod:`compliant_demo.teaching_feedback`: excitation share,
-deviation from the earlier demonstrations, advice), also published on ``teaching_feedback``
-(diagnostic_msgs/DiagnosticArray, reliable, keep last 10, volatile) every
+recording, demonstration_id, store_write_errors, reference_rejected, feedback_errors, and
+``rejected`` plus ``rejected/<topic>/<reason>`` for messages refused before they reach the
+session), and a second status ``recorder/teaching_feedback``
+(:mod:`compliant_demo.teaching_feedback`: excitation share, deviation from the earlier
+demonstrations, advice), also published on ``teaching_feedback`` (diagnostic_msgs/DiagnosticArray,
+reliable, keep last 10, volatile) every
 ``feedback_period_s`` and at once after ``stop``. With ``stiffness_channel`` ``model`` it
 subscribes ``motor_states`` (sensor_msgs/JointState, ``<joint>_motor_1``/``_motor_2`` angles in
-rad) and stores the stiffness of the ``plant_file`` mechanism's springs. Services
+rad) and stores the stiffness of the ``plant_file`` mechanism's springs (NaN for samples stamped
+more than ``motor_states_max_age_s`` after the last accepted motor angles). Services
 (std_srvs/Trigger): ``start``, ``stop``, ``discard`` (refused unless the read-only
 ``allow_discard`` is true). The sample checks, counters, bounded buffer and background writer
 live in :mod:`compliant_demo.ingest`; the demonstration's flags on stop carry received, accepted,
 stored_samples and every non-zero anomaly counter. Here, before that: messages larger than
-``max_message_joints``, with repeated joint names or an invalid stamp, or (``stamp_tolerance_s``
+``max_message_joints``, with repeated joint names, a finite value above 1e6 (rad, rad/s, N*m)
+or an invalid stamp, or (``stamp_tolerance_s``
 > 0) a stamp that far from the node's clock, and stiffness references that are not one finite,
-non-negative value per joint.
+non-negative value per joint; and motor_states that :class:`compliant_demo.model_stiffness.
+MotorAngleGate` refuses (oversized, wrong_length, duplicate_names, missing_motors, non_finite,
+out_of_range of the plant's motor range, invalid_stamp, out_of_order within a demonstration).
 """
 
 from __future__ import annotations
 
 import math
 import time
+from collections.abc import Callable
+from itertools import chain
 
 from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.node import Node
@@ -40,7 +47,7 @@ from compliant_demo.ingest import (
     RecordingSession,
     SampleChecker,
 )
-from compliant_demo.model_stiffness import held_model_stiffness, motor_joint_names
+from compliant_demo.model_stiffness import MotorAngleGate, held_model_stiffness
 from compliant_demo.nodes._common import (
     RejectCounter,
     check_parameter_changes,
@@ -64,6 +71,10 @@ __all__ = ["RecorderNode", "main"]
 # reliable subscription's history holds the messages that arrive meanwhile.
 _STOP_WAIT_S = 5.0
 _MAX_NOTES_CHARS = 4000
+# Largest position (rad), velocity (rad/s) or effort (N*m) a joint state may carry: far beyond
+# any joint, and small enough that its square cannot overflow the estimator's running sums and
+# band-pass state (one value near 1e200 left the estimate NaN for the rest of a demonstration).
+_MAX_ABS_VALUE = 1e6
 
 
 class RecorderNode(Node):
@@ -76,7 +87,7 @@ class RecorderNode(Node):
         self.feedback = LiveFeedback(_reference_loader(p["store_path"]), FeedbackSettings(
             p["feedback_min_excited_fraction"], p["feedback_max_deviation_rad"],
             p["feedback_max_references"]))
-        model = _model_channel(p) if p["stiffness_channel"] == "model" else None
+        mechanisms, model = _model_channel(p) if p["stiffness_channel"] == "model" else ([], None)
         writer = ChunkWriter(
             open_store=lambda: open_store(p["store_path"]),
             make_estimator=_estimator_factory(p),
@@ -99,6 +110,9 @@ class RecorderNode(Node):
             held_width=2 * len(p["joints"]) if model else None,
         )
         self._settings = p
+        # Demonstrations that motion starts have no start call to read the metadata then.
+        self.add_post_set_parameters_callback(lambda _changed: self.session.configure(
+            self._request()))
         self.rejects = RejectCounter(self)
         qos = recorded_qos(p["queue_depth"])
         guard = self.rejects.guard
@@ -110,8 +124,10 @@ class RecorderNode(Node):
         for service, callback in (("start", self._on_start), ("stop", self._on_stop),
                                   ("discard", self._on_discard)):
             self.create_service(Trigger, service, guarded_service(self, service, callback))
+        self._motor_gate: MotorAngleGate | None = None
         if model:
-            self._motor_names = motor_joint_names(p["joints"])
+            self._motor_gate = MotorAngleGate(p["joints"], mechanisms, p["max_message_joints"])
+            self._motor_demonstration: object = None
             self.create_subscription(JointState, "motor_states",
                                      guard("motor_states", self._on_motor_states), qos)
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
@@ -150,6 +166,11 @@ class RecorderNode(Node):
             "stiffness_channel": d(self, "stiffness_channel", "estimate",
                                   "Stored stiffness: estimate, reference (topic), model "
                                   "(motor_states and plant_file springs) or none."),
+            "motor_states_max_age_s": d(
+                self, "motor_states_max_age_s", 0.5,
+                "Model channel: a joint state stamped this long after the last accepted "
+                "motor_states stamp gets NaN stiffness (the motor angles are unknown), s.",
+                low=0.001, high=60.0),
             "plant_file": d(self, "plant_file", "", "Plant YAML in an allowed config folder "
                             "whose antagonistic springs give the model channel; empty = the "
                             "package's default plant."),
@@ -234,9 +255,11 @@ class RecorderNode(Node):
         if problem is not None:
             self.rejects.reject("joint_states", *problem)
             return
-        self.session.ingest(
-            _seconds(msg.header.stamp), msg.name, msg.position, msg.velocity, msg.effort
-        )
+        stamp = _seconds(msg.header.stamp)
+        if (self._motor_gate is not None and stamp - self._motor_gate.last_stamp
+                > self._settings["motor_states_max_age_s"]):
+            self.session.forget_reference()  # motor_states stopped: stiffness unknown, not stale
+        self.session.ingest(stamp, msg.name, msg.position, msg.velocity, msg.effort)
 
     def _joint_state_problem(self, msg: JointState) -> tuple[str, str] | None:
         """(reason, detail) when a message must not reach the session at all."""
@@ -245,6 +268,10 @@ class RecorderNode(Node):
             return "oversized", f"{largest} entries, at most {self._settings['max_message_joints']}"
         if len(set(msg.name)) != len(msg.name):
             return "duplicate_names", f"{len(msg.name)} names, {len(set(msg.name))} distinct"
+        largest_value = max((abs(v) for v in chain(msg.position, msg.velocity, msg.effort)
+                             if math.isfinite(v)), default=0.0)  # not finite: the session's count
+        if largest_value > _MAX_ABS_VALUE:
+            return "implausible", f"|value| = {largest_value:.3g}, at most {_MAX_ABS_VALUE:g}"
         stamp = msg.header.stamp
         if stamp.sec < 0 or stamp.nanosec >= 1_000_000_000 or stamp.sec == stamp.nanosec == 0:
             return "invalid_stamp", f"sec={stamp.sec}, nanosec={stamp.nanosec}"
@@ -269,15 +296,19 @@ class RecorderNode(Node):
             self.session.set_reference(values)
 
     def _on_motor_states(self, msg: JointState) -> None:
-        position = dict(zip(msg.name, msg.position, strict=False))
-        if len(msg.position) != len(msg.name):
-            self.rejects.reject("motor_states", "wrong_length",
-                                f"{len(msg.position)} positions for {len(msg.name)} names")
-        elif any(name not in position for name in self._motor_names):
-            self.rejects.reject("motor_states", "missing_motors",
-                                f"needs {self._motor_names[:4]}...")
-        elif not self.session.set_reference([position[name] for name in self._motor_names]):
-            self.rejects.reject("motor_states", "non_finite", "NaN or infinite angle")
+        gate = self._motor_gate
+        if gate is None:  # subscribed only with the model channel
+            return
+        # Each demonstration orders its motor stamps afresh (a publisher may have restarted).
+        if self.session.current is not self._motor_demonstration:
+            self._motor_demonstration = self.session.current
+            gate.restart()
+        stamp = msg.header.stamp
+        angles, problem = gate.check(stamp.sec, stamp.nanosec, msg.name, msg.position)
+        if problem is not None:
+            self.rejects.reject("motor_states", *problem)
+        elif angles is not None:
+            self.session.set_reference(angles)
 
     def _publish_feedback(self, topic: str = "teaching_feedback") -> None:
         report = self.feedback.report()
@@ -362,13 +393,15 @@ def _reference_loader(store_path: str):
     return load
 
 
-def _model_channel(p: dict):
+def _model_channel(p: dict) -> tuple[list, Callable]:
+    """The joints' mechanisms and the channel's stiffness function (held_model_stiffness)."""
     from compliant_demo.plant import load_plant
 
     plant = (load_file_parameter("plant_file", p["plant_file"], load_plant) if p["plant_file"]
              else load_plant())
     try:
-        return held_model_stiffness(plant.mechanisms_for(p["joints"]))
+        mechanisms = plant.mechanisms_for(p["joints"])
+        return mechanisms, held_model_stiffness(mechanisms)
     except InvalidInputError as exc:
         raise InvalidInputError(f"stiffness_channel model, plant_file = {p['plant_file']!r}: "
                                 f"{exc}") from None

@@ -119,6 +119,8 @@ class ReplayNode(Node):
 
             self._criteria = (load_file_parameter("criteria_file", criteria_file, load_criteria)
                               if criteria_file else load_criteria())
+        # Refused values end the node before the simulator's first compile, not within it.
+        check_parameter_changes(self, _check_parameters)
         if mode != "hardware":
             # Before any service exists: a first compile takes tens of seconds, which would
             # otherwise stall the executor in the first run (no diagnostics, no live pushes).
@@ -140,7 +142,6 @@ class ReplayNode(Node):
                 Float64MultiArray, "perturbation_command",
                 self.rejects.guard("perturbation_command", self._on_live_torque), 10,
             )
-        check_parameter_changes(self, _check_parameters)
         self.create_service(Trigger, "run", guarded_service(self, "run", self._on_run))
         self.done = False
         self.exit_status = 0
