@@ -136,13 +136,15 @@ _FAILING_LAUNCH = """<launch>
 
 @pytest.mark.ros
 def test_a_node_that_fails_during_recording_is_a_clear_tour_error(tmp_path):
-    # n_demonstrations = 0 is outside the teacher's declared range: its process exits non-zero.
+    # n_demonstrations = 0 is outside the teacher's declared range: its process exits 2, a bad
+    # setting, with one FATAL line naming it.
     launch = tmp_path / "failing.launch.xml"
     launch.write_text(_FAILING_LAUNCH, encoding="utf-8")
     settings = TourSettings(store=tmp_path / "s.sqlite", out_dir=tmp_path / "out",
                             n_demonstrations=2, n_scenarios=7, domain_id=DOMAIN_ID + 1,
                             launch_file=launch, record_timeout_s=60.0)
-    with pytest.raises(TourError, match=r"teacher node exited with 1 during recording; log "):
+    with pytest.raises(TourError, match=r"teacher node exited with 2 during recording; log .*"
+                                        r"Parameter n_demonstrations out of range"):
         run_tour(settings, progress=False)
     (log,) = (tmp_path / "out").glob("nodes_tour-*.log")
     assert log.stat().st_size > 0

@@ -119,18 +119,19 @@ class ReplayNode(Node):
 
             self._criteria = (load_file_parameter("criteria_file", criteria_file, load_criteria)
                               if criteria_file else load_criteria())
-        # Refused values end the node before the simulator's first compile, not within it.
-        check_parameter_changes(self, _check_parameters)
-        if mode != "hardware":
-            # Before any service exists: a first compile takes tens of seconds, which would
-            # otherwise stall the executor in the first run (no diagnostics, no live pushes).
-            started = time.monotonic()
-            warm_up(self._plant, self._value("method"))
-            self.get_logger().info(f"simulator ready in {time.monotonic() - started:.1f} s")
         self.rejects = RejectCounter(self)
         # Diagnostics: reliable, a few deep; only the latest status matters to a reader.
         self._diagnostics = self.create_publisher(DiagnosticArray, "diagnostics", 10)
         self._hardware = HardwareMode(self, self.rejects) if mode == "hardware" else None
+        # Every parameter is declared now (hardware mode declares its own). Refused values end
+        # the node before the simulator's first compile, not within it.
+        check_parameter_changes(self, _check_parameters)
+        if self._hardware is None:
+            # Before any topic or service exists: a first compile takes tens of seconds, which
+            # would otherwise stall the executor in the first run (no diagnostics, no live pushes).
+            started = time.monotonic()
+            warm_up(self._plant, self._value("method"))
+            self.get_logger().info(f"simulator ready in {time.monotonic() - started:.1f} s")
         if self._hardware is None:  # the simulated joint's own topics
             self._joint_states = self.create_publisher(JointState, "joint_states", 100)
             self._commanded = self.create_publisher(Float64MultiArray, "stiffness_commanded",
