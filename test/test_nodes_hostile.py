@@ -192,8 +192,14 @@ def test_replay_survives_every_bad_live_torque_and_stores_its_result(
             return diagnostics.latest.get("rejected/perturbation_command/no_replay")
 
         client.spin_until(ignored_before_a_run, 20.0, "a push ignored")
-        client.spin_for(0.5)  # the last push counted too
-        idle_rejects = int(diagnostics.latest["rejected/perturbation_command/no_replay"])
+
+        def idle_count_settled():  # every push sent so far counted: unchanged over 3 periods
+            before = diagnostics.latest["rejected/perturbation_command/no_replay"]
+            client.spin_for(0.6)
+            after = diagnostics.latest["rejected/perturbation_command/no_replay"]
+            return after if after == before else None
+
+        idle_rejects = int(client.spin_until(idle_count_settled, 20.0, "the idle pushes counted"))
         start_replay(client, nodes)
         for data, _reason in hostile:
             push.publish(Float64MultiArray(data=data))
