@@ -21,6 +21,7 @@ import numpy as np
 from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.models import AntagonisticParams
 from compliant_demo.sim.mechanisms import antagonistic_motor_angles, antagonistic_stiffness
+from compliant_demo.stamps import invalid_stamp
 
 __all__ = ["model_stiffness", "motor_joint_names", "held_model_stiffness", "MotorAngleGate",
            "teaching_motor_angles", "compare_with_estimate"]
@@ -111,8 +112,9 @@ class MotorAngleGate:
             if not low <= angle <= high:
                 return None, ("out_of_range",
                               f"{name} = {angle:.6g} rad, motor range [{low}, {high}] rad")
-        if sec < 0 or not 0 <= nanosec < 1_000_000_000 or sec == nanosec == 0:
-            return None, ("invalid_stamp", f"sec={sec}, nanosec={nanosec}")
+        refused = invalid_stamp(sec, nanosec)
+        if refused is not None:
+            return None, refused
         stamp = sec + nanosec * 1e-9
         if stamp <= self.last_stamp:
             return None, ("out_of_order",

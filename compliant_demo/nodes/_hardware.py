@@ -62,6 +62,7 @@ from compliant_demo.nodes._common import (
 )
 from compliant_demo.nodes._periodic import PeriodicThread, use_realtime_priority
 from compliant_demo.replay import ReplaySetup
+from compliant_demo.stamps import invalid_stamp
 
 __all__ = ["COMMAND_QOS", "HardwareMode", "HardwareOutcome", "hardware_gate"]
 
@@ -355,8 +356,9 @@ class HardwareMode:
     def _stamp_problem(self, stamp: Any) -> tuple[str, str] | None:
         """(reason, detail) for a stamp freshness cannot be judged by: unset, invalid, or
         ahead of this node's clock (one such sample would make every later one look old)."""
-        if stamp.sec < 0 or stamp.nanosec >= 1_000_000_000 or stamp.sec == stamp.nanosec == 0:
-            return "invalid_stamp", f"sec={stamp.sec}, nanosec={stamp.nanosec}"
+        refused = invalid_stamp(stamp.sec, stamp.nanosec)
+        if refused is not None:
+            return refused
         ahead = stamp_seconds(stamp) - self._node.get_clock().now().nanoseconds * 1e-9
         if ahead > _FUTURE_STAMP_S:
             return "future_stamp", f"{ahead:+.3g} s ahead of the node's clock"

@@ -62,6 +62,7 @@ from compliant_demo.nodes._common import (
 )
 from compliant_demo.nodes._common import stamp_seconds as _seconds
 from compliant_demo.nodes._files import load_file_parameter
+from compliant_demo.stamps import invalid_stamp
 from compliant_demo.store.location import default_store_path
 from compliant_demo.teaching_feedback import FeedbackSettings, LiveFeedback, earlier_demonstrations
 
@@ -273,8 +274,9 @@ class RecorderNode(Node):
         if largest_value > _MAX_ABS_VALUE:
             return "implausible", f"|value| = {largest_value:.3g}, at most {_MAX_ABS_VALUE:g}"
         stamp = msg.header.stamp
-        if stamp.sec < 0 or stamp.nanosec >= 1_000_000_000 or stamp.sec == stamp.nanosec == 0:
-            return "invalid_stamp", f"sec={stamp.sec}, nanosec={stamp.nanosec}"
+        refused = invalid_stamp(stamp.sec, stamp.nanosec)
+        if refused is not None:
+            return refused
         tolerance = self._settings["stamp_tolerance_s"]
         if tolerance > 0:
             offset = _seconds(stamp) - self.get_clock().now().nanoseconds * 1e-9
