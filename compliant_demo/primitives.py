@@ -16,7 +16,6 @@ import math
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime
 from typing import Any, Literal
 
 import numpy as np
@@ -24,7 +23,6 @@ from numpy.typing import ArrayLike, NDArray
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 from scipy.signal import lfilter
 
-from compliant_demo import __version__
 from compliant_demo.arrays import (
     as_demo_stack,
     channel_stack,
@@ -45,6 +43,7 @@ from compliant_demo.phase_basis import (
     on_basis,
     solve_weights,
 )
+from compliant_demo.skill_provenance import ClampedStretch, Provenance
 
 __all__ = [
     "DMP",
@@ -52,6 +51,7 @@ __all__ = [
     "DampingPolicy",
     "FitMethod",
     "Formulation",
+    "MAX_ROLLOUT_SAMPLES",
     "Provenance",
     "Rollout",
     "Skill",
@@ -68,6 +68,10 @@ ALPHA_X = ALPHA_Z / 3.0
 # Amplitude |g - y0| below this fraction of a joint's range of motion makes the classic scaling
 # x*(g - y0) meaningless; the joint is then fitted and rolled out without amplitude scaling.
 _DEGENERATE_AMPLITUDE = 1e-3
+
+MAX_ROLLOUT_SAMPLES = 10_000_000
+"""Most samples one rollout takes (about 2.8 h at 1 kHz; a rollout holds about a dozen channels
+of this length per joint, so more would exhaust memory before it finished)."""
 
 
 @dataclass(frozen=True)
@@ -352,65 +356,6 @@ class DampingPolicy(BaseModel):
     zeta: float = Field(default=0.7, gt=0, allow_inf_nan=False, description="Damping ratio, 1.")
 
 
-class ClampedStretch(BaseModel):
-    """A stretch of the skill where the teacher's stiffness lay outside the target's range;
-    times in the skill's own (demonstrated) time, s from its start."""
-
-    model_config = ConfigDict(extra="forbid", allow_inf_nan=False, frozen=True)
-
-    joint: str = Field(..., min_length=1)
-    from_s: float = Field(..., ge=0, description="First sample outside the range, s.")
-    to_s: float = Field(..., ge=0, description="Last sample outside the range, s.")
-    teacher_stiffness: float = Field(..., description="The teacher's extreme there, N*m/rad.")
-    clamped_to: float = Field(..., gt=0, description="The bound commanded instead, N*m/rad.")
-
-    @model_validator(mode="after")
-    def _ordered(self) -> ClampedStretch:
-        if self.to_s < self.from_s:
-            raise ValueError(f"to_s = {self.to_s} is before from_s = {self.from_s}")
-        return self
-
-
-class Provenance(BaseModel):
-    """Where a skill came from: demonstrations, alignment, fit quality, software version."""
-
-    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
-
-    demonstration_ids: list[str] = Field(default_factory=list)
-    n_demonstrations: int = Field(1, ge=1)
-    alignment: dict[str, Any] = Field(
-        default_factory=dict, description="Summary of the time alignment (method, band, costs)."
-    )
-    stiffness_source: Literal["recorded", "variability", "constant"] = "recorded"
-    n_basis: int = Field(..., ge=2)
-    fit_rmse: list[float] = Field(
-        ...,
-        description="Position RMSE per joint of the primitive (rolled out from the mean start to "
-        "the mean goal over the demonstrated duration) against the mean of the aligned "
-        "demonstrations on their common time base, rad.",
-    )
-    demo_spread_rmse: list[float] | None = Field(
-        None,
-        description="RMS spread per joint of the aligned demonstrations about their mean, rad "
-        "(None for one demonstration); RMSE against each demonstration is "
-        "sqrt(fit_rmse^2 + demo_spread_rmse^2).",
-    )
-    stiffness_fit_rmse: list[float] | None = Field(
-        None, description="RMSE of the learned stiffness per joint, N*m/rad."
-    )
-    formulation_choice: list[dict[str, Any]] | None = Field(
-        None, description="Per joint: the DMP form, whether the criterion or an override chose "
-        "it, and the criterion's figures (see compliant_demo.generalisation)."
-    )
-    teacher_stiffness_clamped: list[ClampedStretch] | None = Field(
-        None, description="Stretches where the teacher's stiffness (recorded, or from the "
-        "demonstrations' variability) lay outside the target's range and was clamped to it; "
-        "None for skills learned before this was recorded."
-    )
-    package_version: str = __version__
-    created_utc: str = Field(default_factory=lambda: datetime.now(UTC).isoformat())
-
-
 class Skill(BaseModel):
     """A learned skill: movement primitive, stiffness profile, damping policy and provenance.
 
@@ -428,9 +373,9 @@ class Skill(BaseModel):
     )
     method: FitMethod = "lwr"
     n_basis: int = Field(..., ge=2)
-    alpha_z: float = ALPHA_Z
-    beta_z: float = BETA_Z
-    alpha_x: float = ALPHA_X
+    alpha_z: float = Field(ALPHA_Z, gt=0, description="Attractor damping gain, 1/s (scaled).")
+    beta_z: float = Field(BETA_Z, gt=0, description="Attractor stiffness ratio, dimensionless.")
+    alpha_x: float = Field(ALPHA_X, gt=0, description="Phase decay rate over the movement.")
     duration_s: float = Field(..., gt=0, description="Demonstrated duration, s.")
     start: list[float] = Field(..., description="Demonstrated start per joint, rad.")
     goal: list[float] = Field(..., description="Demonstrated goal per joint, rad.")
@@ -535,8 +480,34 @@ class Skill(BaseModel):
         k_range = ranges(self.stiffness_range if stiffness_range is None else stiffness_range,
                           n_joints, "stiffness_range", positive=True)
 
+        if horizon / dt > MAX_ROLLOUT_SAMPLES:
+            raise InvalidInputError(
+                f"horizon_s: {horizon} s at dt = {dt} s would be {horizon / dt:.3g} samples, more "
+                f"than {MAX_ROLLOUT_SAMPLES:,} (check duration_s, horizon_s and dt)"
+            )
         n_samples = int(round(horizon / dt)) + 1
         goal_arr = self._goal(goal, n_samples)
+        # Gains and weights a hostile skill file carries can overflow; the result is checked below
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            rollout = self._sampled(start_arr, goal_arr, tau, dt, n_samples, k_range,
+                                    target_inertia)
+        for name in ("position", "velocity", "acceleration", "stiffness", "damping"):
+            values = getattr(rollout, name)
+            bad = ~np.isfinite(values)
+            if bad.any():
+                row, j = (int(i) for i in np.argwhere(bad)[0])
+                raise InvalidInputError(
+                    f"skill {self.name!r}: its rollout's {name} of joint {self.joints[j]!r} is "
+                    f"{values[row, j]} at t = {rollout.t[row]:.6g} s; its gains or weights are "
+                    "out of any usable range"
+                )
+        return rollout
+
+    def _sampled(self, start_arr: NDArray[np.float64], goal_arr: NDArray[np.float64], tau: float,
+                 dt: float, n_samples: int, k_range: NDArray[np.float64],
+                 target_inertia: ArrayLike | None) -> Rollout:
+        """The rollout of :meth:`rollout` from its checked arguments."""
+        n_joints = len(self.joints)
         t = np.asarray(np.arange(n_samples) * dt, dtype=np.float64)
         dmp = self.dmp
         x = dmp.basis.phase(t / tau)

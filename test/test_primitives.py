@@ -2,10 +2,13 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from pydantic import ValidationError
 
 from compliant_demo import __version__
 from compliant_demo.exceptions import InvalidInputError
@@ -432,6 +435,51 @@ def test_bad_step_and_shapes(demo):
         skill.rollout(goal=[0.0, 0.1, 0.2])
     with pytest.raises(InvalidInputError, match=r"position: expected shape \(1001, n_joints\)"):
         fit_skill(demo[0], demo[1][:500], None, joints=JOINTS, stiffness_range=(1, 2))
+
+
+@pytest.mark.parametrize(
+    ("field", "value", "message"),
+    [
+        ("alpha_z", -1.0, r"alpha_z\n  Input should be greater than 0"),
+        ("alpha_x", 0.0, r"alpha_x\n  Input should be greater than 0"),
+        ("duration_s", 1e308, r"horizon_s: 1e\+308 s at dt = 0\.01 s would be inf samples"),
+        ("goal", 1e308, r"rollout's position of joint 'shoulder' is (-?inf|nan)"),
+        ("start", 1e308, r"rollout's position of joint 'shoulder' is (-?inf|nan)"),
+        ("alpha_x", 1e-300, r"rollout's \w+ of joint 'shoulder' is (-?inf|nan)"),
+        ("beta_z", 1e308, r"rollout's position of joint 'shoulder' is (-?inf|nan)"),
+    ],
+)
+def test_hostile_skill_file_is_refused_by_name(demo, field, value, message):
+    """A skill file from anywhere: values that would overflow the rollout are refused with a
+    named error, without numpy's overflow warnings on the way."""
+    data = _skill(demo).model_dump(mode="json")
+    if isinstance(data[field], list):
+        row = data[field][0]
+        if isinstance(row, list):
+            row[:] = [value] * len(row)
+        else:
+            data[field][0] = value
+    else:
+        data[field] = value
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises((InvalidInputError, ValidationError), match=message):
+            Skill.model_validate(data).rollout(dt=0.01)
+
+
+def test_overflowing_log_stiffness_is_clamped_to_the_range_silently(demo):
+    data = _skill(demo).model_dump(mode="json")
+    data["stiffness_log_weights"][0] = [1e308] * len(data["stiffness_log_weights"][0])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        rollout = Skill.model_validate(data).rollout(dt=0.01)
+    assert np.all(rollout.stiffness[:, 0] == data["stiffness_range"][0][1])
+
+
+def test_rollout_longer_than_the_sample_limit(demo):
+    message = r"horizon_s: 2000000\.0 s at dt = 0\.001 s would be 2e\+09 samples, more than 10,0"
+    with pytest.raises(InvalidInputError, match=message):
+        _skill(demo).rollout(horizon_s=2e6)
 
 
 @pytest.mark.parametrize("method", ["lwr", "ridge"])
