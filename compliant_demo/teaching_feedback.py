@@ -24,6 +24,7 @@ from __future__ import annotations
 import json
 import math
 import threading
+from collections import OrderedDict
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -43,6 +44,7 @@ __all__ = [
     "earlier_demonstrations",
     "FeedbackReport",
     "LiveFeedback",
+    "RecentIds",
     "advice",
     "progress",
 ]
@@ -490,3 +492,31 @@ def progress(values: Mapping[str, str]) -> str | None:
                      f"{float(values.get('deviation_rad') or 'nan'):.3f} rad")
     line = ", ".join(parts)
     return f"{line}; {values['reasons']}" if values.get("reasons") else line
+
+
+class RecentIds:
+    """The last ``capacity`` distinct ids seen, oldest forgotten first: remembers which
+    demonstrations were judged without growing under a flood of forged ids off the network.
+
+    Parameters
+    ----------
+    capacity : ids remembered, at least 1
+    """
+
+    def __init__(self, capacity: int) -> None:
+        if capacity < 1:
+            raise InvalidInputError(f"capacity: need at least 1 id, got {capacity!r}")
+        self.capacity = capacity
+        self._ids: OrderedDict[str, None] = OrderedDict()
+
+    def add(self, item: str) -> bool:
+        """Remember ``item``; True when it was not among the remembered ids."""
+        if item in self._ids:
+            return False
+        self._ids[item] = None
+        if len(self._ids) > self.capacity:
+            self._ids.popitem(last=False)
+        return True
+
+    def __len__(self) -> int:
+        return len(self._ids)

@@ -80,6 +80,25 @@ def test_the_watch_says_which_demonstrations_to_take_again_and_why(tmp_path: Pat
     assert float(last["phase"]) > 0.9
 
 
+def test_a_timeout_before_the_verdicts_says_so_and_a_fault_is_no_verdict(tmp_path: Path) -> None:
+    """No recorder on this domain: the watch ends after --timeout with status 3 and a line."""
+    watch = _watch("--demos", "2", "--timeout", "1")
+    try:
+        _, stderr = watch.process.communicate(timeout=120)
+    finally:
+        stop_children([watch])
+    assert watch.returncode == 3, stderr
+    assert "timeout_s = 1.0 s passed after 0 of 2 verdicts" in stderr
+    # A node that raises ends with its own status, apart from the watch's verdicts 0, 1 and 3.
+    script = ("from compliant_demo.nodes._common import run_node\n"
+              "def broken():\n    raise RuntimeError('a fault of ours')\n"
+              "raise SystemExit(run_node(broken))")
+    failed = subprocess.run([sys.executable, "-c", script], env=ros_env(DOMAIN_ID), cwd=ROOT,
+                            capture_output=True, text=True, timeout=120)
+    assert failed.returncode == 70, failed.stderr
+    assert "RuntimeError: a fault of ours" in failed.stderr
+
+
 def test_the_model_channel_stores_the_springs_stiffness_the_teacher_set(tmp_path: Path) -> None:
     """Reference: the teacher's arm sets its springs to the hand's stiffness clamped to the
     default plant's range [15, 180] N*m/rad (``teaching_motor_angles``); the recorder stores

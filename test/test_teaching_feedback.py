@@ -17,6 +17,7 @@ from compliant_demo.teaching_feedback import (
     FeedbackSettings,
     LiveFeedback,
     OpenEndTracker,
+    RecentIds,
     advice,
     earlier_demonstrations,
     progress,
@@ -237,3 +238,15 @@ def test_teaching_watch_refuses_bad_bounds_before_starting_anything(capsys, opti
 
     assert main(["teaching-watch", option, value]) == 2
     assert re.search(match, capsys.readouterr().err)
+
+
+def test_recent_ids_judge_each_id_once_and_forget_the_oldest_beyond_capacity():
+    ids = RecentIds(3)
+    assert [ids.add(i) for i in ("a", "b", "a", "c")] == [True, True, False, True]
+    assert ids.add("d") and len(ids) == 3  # "a" forgotten
+    assert ids.add("a") and not ids.add("d")
+    for k in range(10_000):  # a flood of forged ids stays bounded
+        ids.add(f"forged-{k}")
+    assert len(ids) == 3
+    with pytest.raises(InvalidInputError, match=r"capacity: need at least 1 id, got 0"):
+        RecentIds(0)

@@ -4,7 +4,9 @@ to keep it or take it again, and why.
 Runs the teaching watch node (:mod:`compliant_demo.nodes.teaching_watch`) as a child process
 (:mod:`compliant_demo.app.supervisor`), on this shell's ROS domain or ``--domain-id``; its lines
 go straight to stdout. Exit status: 0 every watched demonstration can be kept, 1 at least one
-should be taken again, 3 ``--timeout`` passed before ``--demos`` verdicts, 130 interrupted.
+should be taken again, 2 a setting was refused, 3 ``--timeout`` passed before ``--demos``
+verdicts, 130 interrupted; any other is the watch's own failure (70 when it raised), never a
+verdict, and gets a line on stderr.
 """
 
 from __future__ import annotations
@@ -24,6 +26,8 @@ __all__ = ["register"]
 COMMAND = "teaching-watch"
 # Beyond its own --timeout the node gets this long to end by itself before it is stopped, s.
 _END_GRACE_S = 20.0
+# Exit statuses of the watch node that are its answer: kept, take again, refused setting, timeout
+_VERDICTS = (0, 1, 2, 3)
 
 
 def _seconds(text: str) -> float:
@@ -61,7 +65,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "feedback_min_excited_fraction) or far from the others (RMS deviation in rad from "
             "the aligned mean of the earlier demonstrations of the skill and tags, by open-end "
             "DTW, above feedback_max_deviation_rad). Start it before the demonstrations. Exit "
-            "status 0: all kept, 1: one or more to take again, 3: --timeout before --demos."
+            "status 0: all kept, 1: one or more to take again, 2: a setting refused, 3: "
+            "--timeout before --demos; any other: the watch failed."
         ),
     )
     parser.add_argument("--demos", type=integer_in_range(1, 1000000), default=0, metavar="N",
@@ -95,9 +100,15 @@ def _run(args: argparse.Namespace) -> int:
         child.process.wait(args.timeout + _END_GRACE_S if args.timeout else None)
     except subprocess.TimeoutExpired:
         stop_children([child])
+        print(f"compliant-demo {COMMAND}: --timeout {args.timeout} s passed and the watch did not "
+              f"end within {_END_GRACE_S:g} s more; stopped", file=sys.stderr)
         return 3
     except KeyboardInterrupt:
         stop_children([child])
         print(f"compliant-demo {COMMAND}: interrupted", file=sys.stderr)
         return 130
-    return child.process.returncode
+    status = child.process.returncode
+    if status not in _VERDICTS:
+        print(f"compliant-demo {COMMAND}: the watch failed with exit status {status} (not a "
+              "verdict; its log above says why)", file=sys.stderr)
+    return status

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import signal
+import traceback
 from array import array
 from collections.abc import Callable, Sequence
 from typing import Any
@@ -28,6 +29,7 @@ from compliant_demo.exceptions import CompliantDemoError, InvalidInputError
 
 __all__ = [
     "MAX_TEXT_CHARS",
+    "NODE_FAILED",
     "RejectCounter",
     "guarded_service",
     "text_problem",
@@ -45,6 +47,9 @@ __all__ = [
 ]
 
 MAX_TEXT_CHARS = 200
+NODE_FAILED = 70
+"""Exit status of a node that raised an unexpected exception (EX_SOFTWARE of the BSD
+``sysexits.h``, common practice), apart from the statuses nodes give as their verdict."""
 MAX_LIST_ITEMS = 64
 
 _LEVELS = {
@@ -357,7 +362,8 @@ def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> in
     A node with a ``close()`` method gets it called before it is destroyed (to finish its
     work, e.g. flush a demonstration to the store), also after Ctrl-C. A node sets ``done`` to
     end on its own and ``exit_status`` to report failure. Returns the process exit status: 0, the
-    node's ``exit_status``, or 2 when a parameter or file was refused (the reason is logged).
+    node's ``exit_status``, 2 when a parameter or file was refused (the reason is logged), or
+    :data:`NODE_FAILED` when the node raised anything else (the traceback is logged).
     """
     rclpy.init(args=args, signal_handler_options=SignalHandlerOptions.NO)
     stop_signals = _stop_on_signals()
@@ -377,6 +383,10 @@ def run_node(make_node: Callable[[], Node], args: list[str] | None = None) -> in
         # ParameterException: rclpy refused a launch value (its type, its declared range).
         rclpy.logging.get_logger("compliant_demo").fatal(f"{type(exc).__name__}: {exc}")
         status = 2
+    except Exception:
+        # A fault of ours: its own status, so no caller takes it for the node's verdict
+        rclpy.logging.get_logger("compliant_demo").fatal(traceback.format_exc())
+        status = NODE_FAILED
     finally:
         # A second Ctrl-C or a SIGTERM while the node finishes its work (flushing a
         # demonstration, writing a file) must not undo a clean finish; a supervisor that runs out

@@ -7,11 +7,13 @@ and prints one line per finished demonstration on stdout (:func:`compliant_demo.
 advice`; JSON with ``json``), and with ``live`` a line per update while recording. It ends after
 ``demonstrations`` verdicts or ``timeout_s`` seconds (0: neither); the exit status is 0 when every
 watched demonstration can be kept, 1 when one should be taken again, 3 when the time ran out
-before ``demonstrations`` verdicts.
+before ``demonstrations`` verdicts (with a line on stderr), 70 when the node failed (see
+:func:`compliant_demo.nodes._common.run_node`).
 """
 
 from __future__ import annotations
 
+import sys
 import time
 
 from diagnostic_msgs.msg import DiagnosticArray
@@ -24,12 +26,14 @@ from compliant_demo.nodes._common import (
     recorded_qos,
     run_node,
 )
-from compliant_demo.teaching_feedback import advice, progress
+from compliant_demo.teaching_feedback import RecentIds, advice, progress
 
 __all__ = ["TeachingWatchNode", "main"]
 
 _STATUS = "recorder/teaching_feedback"
 _MAX_VALUES = 64
+# Demonstration ids remembered as judged (a repeat of an older one is judged again).
+_REMEMBERED_IDS = 10_000
 
 
 class TeachingWatchNode(Node):
@@ -46,8 +50,10 @@ class TeachingWatchNode(Node):
         self._live = d(self, "live", False, "Also print a line per update while recording.")
         self._json = d(self, "json", False, "Print verdicts as JSON objects.")
         check_parameter_changes(self)
+        self._timeout = timeout
         self._deadline = time.monotonic() + timeout if timeout > 0 else None
-        self._judged: set[str] = set()
+        self._judged = RecentIds(_REMEMBERED_IDS)
+        self._verdicts = 0
         self._retake = False
         self.done = False
         self.exit_status = 0
@@ -65,12 +71,12 @@ class TeachingWatchNode(Node):
                 print(line, flush=True)
             demo = values.get("demonstration_id", "")
             line = advice(values, as_json=self._json)
-            if line is None or not demo or demo in self._judged:
+            if line is None or not demo or not self._judged.add(demo):
                 continue
-            self._judged.add(demo)
+            self._verdicts += 1
             self._retake |= values.get("retake") == "true"
             print(line, flush=True)
-            if self._limit and len(self._judged) >= self._limit:
+            if self._limit and self._verdicts >= self._limit:
                 self._finish(timed_out=False)
 
     def _check_deadline(self) -> None:
@@ -78,6 +84,9 @@ class TeachingWatchNode(Node):
             self._finish(timed_out=bool(self._limit))
 
     def _finish(self, timed_out: bool) -> None:
+        if timed_out:
+            print(f"teaching watch: timeout_s = {self._timeout} s passed after "
+                  f"{self._verdicts} of {self._limit} verdicts", file=sys.stderr, flush=True)
         self.exit_status = 3 if timed_out else int(self._retake)
         self.done = True
 
