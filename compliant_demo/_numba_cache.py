@@ -11,7 +11,9 @@ another module would keep the machine code of the callee as it was compiled, aft
 an upgrade that keeps file times. So the cache lives in a subdirectory named after a hash of
 every package module that imports numba (:func:`compiled_sources_hash`): changed sources
 compile afresh. Subdirectories of other hashes that no import used for ``PRUNE_AFTER_S``
-(another install of the package may share the user's cache meanwhile) are removed.
+(another install of the package may share the user's cache meanwhile) are removed, as are
+numba's folders of the layout before them (``<folder>_<SHA-1>`` directly in the root) once
+unchanged that long.
 """
 
 from __future__ import annotations
@@ -35,6 +37,9 @@ _SUBDIR = ("compliant_demo", "numba")
 _PACKAGE = Path(__file__).resolve().parent
 _IMPORTS_NUMBA = re.compile(rb"^[ \t]*(?:import|from)[ \t]+numba\b", re.MULTILINE)
 _HASH_NAME = re.compile(r"[0-9a-f]{16}")
+# numba's own folder per source directory (its name and the SHA-1 of its path), which this
+# package's caches used directly under the root before the sources subdirectories
+_OLD_LAYOUT_NAME = re.compile(r"\w+_[0-9a-f]{40}")
 
 
 def compiled_sources_hash(package: Path = _PACKAGE) -> str:
@@ -95,10 +100,12 @@ def _private_dir(locate: Callable[[], Path]) -> Path | None:
 
 
 def _prune(root: Path, keep: str, now: float) -> None:
-    """Remove the sources subdirectories of ``root`` other than ``keep`` unused for
-    ``PRUNE_AFTER_S`` (their time stamp is touched at every import that uses them)."""
+    """Remove the sources subdirectories of ``root`` other than ``keep``, and the folders of the
+    layout before them, unused for ``PRUNE_AFTER_S`` (a sources subdirectory's time stamp is
+    touched at every import that uses it)."""
     for entry in root.iterdir():
-        if entry.name == keep or not _HASH_NAME.fullmatch(entry.name):
+        if entry.name == keep or not (_HASH_NAME.fullmatch(entry.name)
+                                      or _OLD_LAYOUT_NAME.fullmatch(entry.name)):
             continue
         try:
             info = entry.lstat()

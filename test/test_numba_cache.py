@@ -213,8 +213,10 @@ def test_sources_directories_unused_for_a_week_are_pruned(tmp_path, monkeypatch)
     stale = time.time() - PRUNE_AFTER_S - 60.0
     recent = time.time() - PRUNE_AFTER_S + 3600.0
     made = {}
+    old_layout = "sim_" + "0123456789" * 4  # numba's folder per source directory, before
+    old_recent = "compliant_demo_" + "abcdef0123" * 4
     for name, when in (("0123456789abcdef", stale), ("fedcba9876543210", recent),
-                       ("not-a-hash", stale)):
+                       ("not-a-hash", stale), (old_layout, stale), (old_recent, recent)):
         made[name] = root / name
         made[name].mkdir()
         (made[name] / "kernel.nbi").write_bytes(b"index")
@@ -231,7 +233,7 @@ def test_sources_directories_unused_for_a_week_are_pruned(tmp_path, monkeypatch)
     assert in_effect == os.environ[CACHE_ENV] == str(root / compiled_sources_hash())
     assert sorted(p.name for p in root.iterdir()) == sorted(
         ["00000000000000aa", "00000000000000bb", "fedcba9876543210", "not-a-hash",
-         compiled_sources_hash()])
+         old_recent, compiled_sources_hash()])
     assert elsewhere.is_dir()
     assert time.time() - Path(in_effect).stat().st_mtime < 60.0  # marked as used
 
