@@ -74,8 +74,10 @@ VARIABILITY_LEVEL_PENALTIES = (0.0, 0.02, 0.04, 0.08)
 """Penalties per distinct level :func:`select_level_penalties` chooses from (same units).
 
 Our own choice: 0 keeps every stretch at its own level; 0.08 fuses two stretches of a fifth of
-the phase each whose variances differ by up to about 2.5 (twice the change penalty, since
-stretches apart in the phase share a level only if the operator returned to the same hold).
+the phase each whose variances differ by up to about 3.7, a ratio that two variances with 5
+degrees of freedom each do not establish (the 95 % point of F(5, 5) is 5.05; the simulated
+teacher's 8 demonstrations hold about 5-7 effective degrees of freedom per fifth of the
+movement, as their deviations stay correlated over about a quarter of it).
 """
 
 VARIABILITY_MIN_STRETCH = 0.02
