@@ -15,27 +15,32 @@
 - variability: for each of 10 seeds, 8 cork_seat demonstrations of the default simulated
   teacher (variance between demonstrations inversely proportional to its stiffness), one skill
   learned from their variability (``stiffness_source="variability"``, anchored at the teacher's
-  own reference: 0.02 rad at 6 N*m/rad; variance pooled along the phase with the learner's
-  default bandwidth, chosen per set by ``compliant_demo.variability.select_bandwidth``) and one
-  from the true stiffness (``"recorded"``, the same alignment, so both profiles sit on the
-  same phase), both with the learner's defaults otherwise. Spearman correlation along the
-  phase between the two profiles per joint: median, quartiles and minimum over seeds and
-  joints; main key with ``alignment="resample"``, also with DTW (which explains much of the
-  variation as timing, see ``compliant_demo.alignment.align_demonstrations``), with the fixed
-  bandwidth ``VARIABILITY_BANDWIDTH`` (``_fixed_bandwidth``, the former default) and with the
-  per-sample variance (``variability_bandwidth=0``); ``variability_bandwidth_median``: the
-  median chosen bandwidth (resample). ``variability_pair_concordance``: share of
-  pairs of phases (200-point grid) whose true stiffness differs by at least a factor 2 that
-  the learned profile orders the same way. ``variability_rank_correlation_ceiling_10pct``:
-  Spearman correlation of the true profile with itself times a smooth seeded error of 10 %
-  (correlation length 0.05 of the phase): what a nearly perfect estimate scores where the
-  truth is flat over most of the phase. ``variability_truth_rank_correlation``: the true
-  skill's profile against the teacher's stiffness resampled directly (the phase mapping of the
-  ground truth). Levels: median over seeds of the median ratio of the law's stiffness on the
-  resampled pooled variance (bandwidth chosen by ``select_bandwidth``, as the learner does) to
-  the resampled true stiffness, in the press and in the soft
-  approach (1 is right); baseline: the former min-max scaling of the precision over the range
-  (2 to 200 N*m/rad) on the per-sample variance.
+  own reference: 0.02 rad at 6 N*m/rad; the learner's default ``variability_model="auto"``:
+  variance held in levels or pooled with a kernel, whichever predicts left-out demonstrations
+  better, ``compliant_demo.variability.select_variability_model``) and one from the true
+  stiffness (``"recorded"``, the same alignment, so both profiles sit on the same phase), both
+  with the learner's defaults otherwise. Spearman correlation along the phase between the two
+  profiles per joint: median, quartiles and minimum over seeds and joints; main key with
+  ``alignment="resample"``, also with DTW (which explains much of the variation as timing,
+  see ``compliant_demo.alignment.align_demonstrations``), with held levels always
+  (``variability_model="levels"``, penalties chosen by ``select_level_penalties``; median
+  number of levels ``variability_levels_median``), with the kernel always (``"kernel"``, the
+  former default, bandwidth chosen by ``select_bandwidth``; median chosen bandwidth
+  ``variability_bandwidth_median``), with the fixed bandwidth ``VARIABILITY_BANDWIDTH``
+  (``_fixed_bandwidth``) and with the per-sample variance (``variability_bandwidth=0``);
+  ``variability_levels_chosen_share``: share of the sets for which the default chose held
+  levels. ``variability_pair_concordance``: share of pairs of phases (200-point grid) whose
+  true stiffness differs by at least a factor 2 that the learned profile orders the same way
+  (also for the kernel). ``variability_rank_correlation_ceiling_10pct``: Spearman correlation
+  of the true profile with itself times a smooth seeded error of 10 % (correlation length
+  0.05 of the phase): what a nearly perfect estimate scores where the truth is flat over most
+  of the phase. ``variability_truth_rank_correlation``: the true skill's profile against the
+  teacher's stiffness resampled directly (the phase mapping of the ground truth). Levels:
+  median over seeds of the median ratio of the law's stiffness on the resampled set's
+  variance (the model the learner's default chooses, and each model alone: ``_levels``,
+  ``_kernel``) to the resampled true stiffness, in the press and in the soft approach (1 is
+  right); baseline: the former min-max scaling of the precision over the range (2 to
+  200 N*m/rad) on the per-sample variance.
 - throughput: online estimator cost per sample, 2 joints in 10-sample chunks.
 
 Prints one JSON object per line; the last line is ``{"bench": "estimation", ...}``.
@@ -71,8 +76,11 @@ from compliant_demo.teaching import (  # noqa: E402
 )
 from compliant_demo.variability import (  # noqa: E402
     VARIABILITY_BANDWIDTH,
+    held_level_variance,
     pooled_variance,
     select_bandwidth,
+    select_level_penalties,
+    select_variability_model,
     stiffness_from_variability,
 )
 
@@ -179,12 +187,14 @@ def _variability(seeds: list[int]) -> dict:
     scenario = cork_seat_scenario()
     joints = list(scenario.joint_names)
     inertia = [joint.inertia for joint in scenario.joints]
-    rho: dict[str, list[float]] = {"resample": [], "dtw": [], "fixed_bandwidth": [],
-                                   "per_sample": []}
+    rho: dict[str, list[float]] = {"resample": [], "dtw": [], "kernel": [], "levels": [],
+                                   "fixed_bandwidth": [], "per_sample": []}
     bandwidths = {"fixed_bandwidth": VARIABILITY_BANDWIDTH, "per_sample": 0.0}
-    extra: dict[str, list[float]] = {"pair": [], "ceiling": [], "truth": [], "bandwidth": []}
-    levels: dict[str, list[float]] = {"press": [], "press_min_max": [], "soft": [],
-                                      "soft_min_max": []}
+    extra: dict[str, list[float]] = {"pair": [], "pair_kernel": [], "ceiling": [], "truth": [],
+                                     "bandwidth": [], "levels": [], "chose_levels": []}
+    levels: dict[str, list[float]] = {
+        phase + suffix: [] for phase in ("press", "soft")
+        for suffix in ("", "_levels", "_kernel", "_min_max")}
     for seed in seeds:
         demos = teaching_series(scenario, 8, seed)
         plain = [(r.t - r.t[0], r.position) for r in demos]
@@ -192,18 +202,24 @@ def _variability(seeds: list[int]) -> dict:
                  for r in demos]
         for name in rho:
             alignment = "dtw" if name == "dtw" else "resample"
-            bandwidth = bandwidths.get(name)
+            model = {"resample": "auto", "dtw": "auto", "levels": "levels"}.get(name, "kernel")
             common = dict(joints=joints, stiffness_range=STIFFNESS_RANGE, alignment=alignment,
                           target_inertia=inertia)
             learned = learn_skill(plain, stiffness_source="variability",
-                                  variability_reference=(0.02, 6.0),
-                                  variability_bandwidth=bandwidth, **common)
+                                  variability_reference=(0.02, 6.0), variability_model=model,
+                                  variability_bandwidth=bandwidths.get(name), **common)
             reference = learn_skill(truth, stiffness_source="recorded", **common)
             a, b = learned.rollout(dt=0.002).stiffness, reference.rollout(dt=0.002).stiffness
             n = min(len(a), len(b))
             rho[name] += [float(stats.spearmanr(a[:n, j], b[:n, j])[0]) for j in range(2)]
-            if name == "resample":
+            if name == "kernel":
                 extra["bandwidth"].append(learned.provenance.alignment["variability_bandwidth"])
+                extra["pair_kernel"] += [_pair_concordance(a[:n, j], b[:n, j]) for j in range(2)]
+            if name == "levels":
+                extra["levels"] += learned.provenance.alignment["variability_levels"]
+            if name == "resample":
+                extra["chose_levels"].append(
+                    learned.provenance.alignment["variability_model"] == "levels")
                 extra["pair"] += [_pair_concordance(a[:n, j], b[:n, j]) for j in range(2)]
                 extra["ceiling"] += [_ceiling(b[:n, j], seed + j) for j in range(2)]
                 direct = _resampled(demos, "hand_stiffness_truth", n).mean(axis=0)
@@ -212,12 +228,18 @@ def _variability(seeds: list[int]) -> dict:
         # Levels on the resampled set itself, before any profile fit.
         n_out = int(np.median([r.t.size for r in demos]))
         positions = _resampled(demos, "position", n_out)
-        pooled = pooled_variance(positions, select_bandwidth(positions))
+        estimates = {
+            "_levels": held_level_variance(positions, *select_level_penalties(positions)),
+            "_kernel": pooled_variance(positions, select_bandwidth(positions)),
+        }
+        estimates[""] = estimates["_" + select_variability_model(positions)]
         k_true = _resampled(demos, "hand_stiffness_truth", n_out).mean(axis=0)
+        anchor = dict(n_demos=8, reference_std=0.02, reference_stiffness=6.0)
         laws = {
-            "": stiffness_from_variability(
-                pooled.variance, *STIFFNESS_RANGE, n_demos=8, reference_std=0.02,
-                reference_stiffness=6.0, degrees_of_freedom=pooled.degrees_of_freedom),
+            suffix: stiffness_from_variability(estimate.variance, *STIFFNESS_RANGE, **anchor,
+                                               degrees_of_freedom=estimate.degrees_of_freedom)
+            for suffix, estimate in estimates.items()
+        } | {
             "_min_max": _min_max_profile(positions.var(axis=0, ddof=1), *STIFFNESS_RANGE),
         }
         for phase, (low, high) in (("press", PRESS), ("soft", SOFT)):
@@ -232,10 +254,20 @@ def _variability(seeds: list[int]) -> dict:
         "variability_rank_correlation_q75": float(np.quantile(main, 0.75)),
         "variability_rank_correlation_per_sample": float(np.median(rho["per_sample"])),
         "variability_rank_correlation_dtw": float(np.median(rho["dtw"])),
+        "variability_rank_correlation_kernel": float(np.median(rho["kernel"])),
+        "variability_rank_correlation_kernel_q25": float(np.quantile(rho["kernel"], 0.25)),
+        "variability_rank_correlation_kernel_min": float(np.min(rho["kernel"])),
+        "variability_rank_correlation_levels": float(np.median(rho["levels"])),
+        "variability_rank_correlation_levels_q25": float(np.quantile(rho["levels"], 0.25)),
+        "variability_rank_correlation_levels_min": float(np.min(rho["levels"])),
         "variability_rank_correlation_fixed_bandwidth": float(np.median(rho["fixed_bandwidth"])),
+        "variability_levels_chosen_share": float(np.mean(extra["chose_levels"])),
         "variability_bandwidth_median": float(np.median(extra["bandwidth"])),
+        "variability_levels_median": float(np.median(extra["levels"])),
         "variability_pair_concordance": float(np.median(extra["pair"])),
         "variability_pair_concordance_min": float(np.min(extra["pair"])),
+        "variability_pair_concordance_kernel": float(np.median(extra["pair_kernel"])),
+        "variability_pair_concordance_kernel_min": float(np.min(extra["pair_kernel"])),
         "variability_rank_correlation_ceiling_10pct": float(np.median(extra["ceiling"])),
         "variability_truth_rank_correlation": float(np.median(extra["truth"])),
         **{f"variability_{name}_level_ratio": float(np.median(values))

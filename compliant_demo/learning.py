@@ -39,14 +39,20 @@ from compliant_demo.primitives import (
 )
 from compliant_demo.store.records import SkillRecord
 from compliant_demo.variability import (
+    HeldLevels,
+    PooledVariance,
+    held_level_variance,
     pooled_variance,
     select_bandwidth,
+    select_level_penalties,
+    select_variability_model,
     stiffness_from_variability,
 )
 
 __all__ = [
     "DEFAULT_MAX_SAMPLES",
     "StiffnessSource",
+    "VariabilityModel",
     "learn_skill",
     "clamped_stretches",
     "save_skill",
@@ -63,6 +69,7 @@ __all__ = [
 
 StiffnessSource = Literal["auto", "recorded", "variability"]
 AlignmentMethod = Literal["dtw", "resample", "none"]
+VariabilityModel = Literal["auto", "levels", "kernel"]
 
 # Default cap of the common time base. With 50 basis functions each spans about 1/50 of the
 # samples: 20,000 leave 400 per basis function, far more than the regression needs, and keep the
@@ -278,6 +285,7 @@ def learn_skill(
     position_limits: ArrayLike | None = None,
     variance_floor: float | None = None,
     variability_reference: tuple[float, float] | None = None,
+    variability_model: VariabilityModel = "auto",
     variability_bandwidth: float | None = None,
     smoothing_window: int | None = None,
     name: str = "skill",
@@ -320,12 +328,20 @@ def learn_skill(
     variability_reference : (std rad, stiffness N*m/rad), the anchor of
         ``stiffness_from_variability``: demonstrations that vary by this spread give this
         stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
-    variability_bandwidth : fraction of the phase, std of the kernel that pools the variance of
-        the aligned demonstrations along the phase (:func:`~compliant_demo.variability.
-        pooled_variance`); 0 takes each sample's own variance. Default: chosen from the
-        aligned demonstrations by :func:`~compliant_demo.variability.select_bandwidth`
-        (leave-one-demonstration-out likelihood) and recorded in the provenance's alignment
-        summary as ``variability_bandwidth``
+    variability_model : how the variance of the aligned demonstrations is taken along the
+        phase. "levels" (default): held constant over stretches of the phase, equal levels
+        fused (:func:`~compliant_demo.variability.held_level_variance`), with the penalties
+        chosen from the aligned demonstrations by :func:`~compliant_demo.variability.
+        select_level_penalties` (leave-one-demonstration-out likelihood) and recorded in the
+        provenance's alignment summary as ``variability_change_penalty``,
+        ``variability_level_penalty``, ``variability_stretches`` and ``variability_levels``
+        (per joint). "kernel": pooled with a Gaussian kernel
+        (:func:`~compliant_demo.variability.pooled_variance`)
+    variability_bandwidth : with ``variability_model="kernel"`` only: fraction of the phase,
+        std of the kernel; 0 takes each sample's own variance. Default: chosen by
+        :func:`~compliant_demo.variability.select_bandwidth` (leave-one-demonstration-out
+        likelihood) and recorded in the provenance's alignment summary as
+        ``variability_bandwidth``
     smoothing_window : odd sample count of the Savitzky-Golay derivative filter of
         :func:`~compliant_demo.primitives.fit_skill`. Default: about 10 % of the samples after DTW
         alignment (whose warped time has plateaus and steps), none otherwise
@@ -354,6 +370,14 @@ def learn_skill(
         reason = normalised[missing[0]].stiffness_gap
         raise InvalidInputError(f"demos[{missing[0]}].stiffness: {reason}; use "
                                 "stiffness_source='variability'")
+    if variability_model not in ("auto", "levels", "kernel"):
+        raise InvalidInputError(f"variability_model: expected 'auto', 'levels' or 'kernel', "
+                                f"got {variability_model!r}")
+    if variability_bandwidth is not None and variability_model == "auto":
+        variability_model = "kernel"
+    if variability_model == "levels" and variability_bandwidth is not None:
+        raise InvalidInputError(f"variability_bandwidth = {variability_bandwidth!r}: a kernel "
+                                "bandwidth needs variability_model='kernel'")
     if source == "variability":
         if len(normalised) < 2:
             raise InvalidInputError(
@@ -387,10 +411,21 @@ def learn_skill(
         anchor: dict[str, Any] = {} if variability_reference is None else {
             "reference_std": variability_reference[0],
             "reference_stiffness": variability_reference[1]}
-        if variability_bandwidth is None:
-            variability_bandwidth = select_bandwidth(positions)
-        summary["variability_bandwidth"] = variability_bandwidth
-        pooled = pooled_variance(positions, variability_bandwidth)
+        if variability_model == "auto":
+            variability_model = select_variability_model(positions)
+        summary["variability_model"] = variability_model
+        pooled: HeldLevels | PooledVariance
+        if variability_model == "levels":
+            pooled = held_level_variance(positions, *select_level_penalties(positions))
+            summary.update(variability_change_penalty=pooled.change_penalty,
+                           variability_level_penalty=pooled.level_penalty,
+                           variability_stretches=list(pooled.n_stretches),
+                           variability_levels=list(pooled.n_levels))
+        else:
+            if variability_bandwidth is None:
+                variability_bandwidth = select_bandwidth(positions)
+            summary["variability_bandwidth"] = variability_bandwidth
+            pooled = pooled_variance(positions, variability_bandwidth)
         law: dict[str, Any] = dict(n_demos=len(normalised), variance_floor=variance_floor,
                                    degrees_of_freedom=pooled.degrees_of_freedom)
         profile = stiffness_from_variability(pooled.variance, k_range[:, 0], k_range[:, 1],

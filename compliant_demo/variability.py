@@ -2,15 +2,19 @@
 
 One law, from per-sample variance across demonstrations to a stiffness schedule, with levels
 anchored at a stated reference spread and stiffness rather than stretched over the range, and
-the variance it takes pooled over a neighbourhood of the phase, with the degrees of freedom
-that pooling buys; the width of that neighbourhood is given or chosen from the demonstrations
-themselves by leave-one-demonstration-out likelihood.
+two estimates of the variance it takes, each with the degrees of freedom it buys: pooled over a
+Gaussian neighbourhood of the phase, or held piecewise constant over stretches of the phase with
+equal levels fused (an operator holds a few stiffness levels: soft approach, stiff press). The
+kernel's width, or the penalties of the stretches and levels, are given or chosen from the
+demonstrations themselves by leave-one-demonstration-out likelihood.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d
@@ -21,10 +25,17 @@ from compliant_demo.exceptions import InvalidInputError
 __all__ = [
     "VARIABILITY_BANDWIDTH",
     "VARIABILITY_BANDWIDTH_CANDIDATES",
+    "VARIABILITY_CHANGE_PENALTIES",
+    "VARIABILITY_LEVEL_PENALTIES",
+    "VARIABILITY_MIN_STRETCH",
     "VARIABILITY_REFERENCE_STD",
+    "HeldLevels",
     "PooledVariance",
+    "held_level_variance",
     "pooled_variance",
     "select_bandwidth",
+    "select_level_penalties",
+    "select_variability_model",
     "stiffness_from_variability",
 ]
 
@@ -48,6 +59,41 @@ demonstrations of the simulated teacher and flattened the press into the approac
 # Most phase samples the bandwidth selection looks at: the deviations are smooth on this scale
 # and the criterion only compares bandwidths of at least 0.01 of the phase.
 _SELECTION_SAMPLES = 1000
+
+VARIABILITY_CHANGE_PENALTIES = (0.01, 0.02, 0.04)
+"""Penalties per stretch that :func:`select_level_penalties` chooses from.
+
+Our own choice, in the criterion's units (negative log-likelihood per degree of freedom and per
+unit of phase): splitting a stretch of 0.4 of the phase into two halves whose variances differ
+by a factor ``r`` gains ``0.2 (2 ln((1 + r) / 2) - ln r)``, so the largest keeps a change of
+about 2.5 between such halves, the smallest one of about 1.6. Larger penalties would merge a
+stiffness change of more than twice over a fifth of the movement into its surroundings.
+"""
+
+VARIABILITY_LEVEL_PENALTIES = (0.0, 0.02, 0.04, 0.08)
+"""Penalties per distinct level :func:`select_level_penalties` chooses from (same units).
+
+Our own choice: 0 keeps every stretch at its own level; 0.08 fuses two stretches of a fifth of
+the phase each whose variances differ by up to about 3.7, a ratio that two variances with 5
+degrees of freedom each do not establish (the 95 % point of F(5, 5) is 5.05; the simulated
+teacher's 8 demonstrations hold about 5-7 effective degrees of freedom per fifth of the
+movement, as their deviations stay correlated over about a quarter of it).
+"""
+
+VARIABILITY_MIN_STRETCH = 0.02
+"""Shortest stretch of :func:`held_level_variance`, fraction of the phase.
+
+Our own choice: a fifth of the shortest stiffness change worth resolving (about a tenth of a
+movement), as the narrowest pooling bandwidth is a tenth of it.
+"""
+
+# Penalties (per stretch, per level) used where leaving one demonstration out leaves too little
+# to choose by: the middle candidates.
+_DEFAULT_PENALTIES = (0.02, 0.04)
+
+# Most blocks (equal runs of phase samples) the stretches are built from: 200 gives a
+# resolution of 0.005 of the phase, a quarter of the shortest stretch.
+_LEVEL_BLOCKS = 200
 
 VARIABILITY_REFERENCE_STD = 0.02
 """Default spread, rad, at which :func:`stiffness_from_variability` gives its reference stiffness.
@@ -115,9 +161,7 @@ def pooled_variance(positions: object, bandwidth: float = VARIABILITY_BANDWIDTH)
     variance = (deviation**2).sum(axis=0) / (n_demos - 1)
     base_dof = float(n_demos - 1)
     sigma = bandwidth * (n_samples - 1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        scaled = np.where(variance > 0, deviation / np.sqrt(variance), 0.0)
-    rho = _phase_correlation(scaled)
+    rho = _deviation_correlation(deviation, variance)
     below = rho < math.exp(-1.0)
     first = np.where(below.any(axis=0), below.argmax(axis=0), n_samples - 1)
     length = first / (n_samples - 1)
@@ -193,24 +237,325 @@ def select_bandwidth(
     x = _aligned_positions(positions)
     if len(candidates) == 0 or not all(math.isfinite(h) and 0 < h <= 1 for h in candidates):
         raise InvalidInputError(f"candidates must be bandwidths in (0, 1], got {candidates!r}")
-    n_demos = x.shape[0]
-    step = max(1, -(-x.shape[1] // _SELECTION_SAMPLES))
-    x = x[:, ::step]
-    total = x.var(axis=0).mean()
-    if n_demos < 3 or not total > 0:
+    sampled = _selection_samples(x)
+    if sampled is None:
         return VARIABILITY_BANDWIDTH
+    return float(candidates[int(np.argmax(_bandwidth_scores(sampled, candidates)))])
+
+
+def _selection_samples(x: np.ndarray) -> np.ndarray | None:
+    """At most about ``_SELECTION_SAMPLES`` evenly spaced phase samples of ``x``, or None where
+    leaving one demonstration out leaves no spread to choose by (2 demonstrations, or
+    demonstrations that do not differ)."""
+    x = x[:, :: max(1, -(-x.shape[1] // _SELECTION_SAMPLES))]
+    return None if x.shape[0] < 3 or not x.var(axis=0).mean() > 0 else x
+
+
+def _bandwidth_scores(x: np.ndarray, candidates: tuple[float, ...]) -> np.ndarray:
+    """Held-out log-likelihood of each kernel bandwidth (fraction of the phase)."""
+    sigmas = [bandwidth * (x.shape[1] - 1) for bandwidth in candidates]
+    return _held_out_scores(x, lambda variance: [_kernel_mean(variance, s) for s in sigmas])
+
+
+def _held_out_scores(
+    x: np.ndarray, estimates: Callable[[np.ndarray], list[np.ndarray]]
+) -> np.ndarray:
+    """Leave-one-demonstration-out log-likelihood of each variance estimate, summed over demos.
+
+    ``estimates`` maps the others' per-sample variance (n_samples, n_joints) to one estimate
+    of the variance per candidate; demonstration ``i``'s deviation from the others' mean is
+    scored by its normal log-density under ``estimate * (1 + 1 / (n - 1))``, averaged over
+    samples and joints.
+    """
+    n_demos = x.shape[0]
+    total = x.var(axis=0).mean()
     inflation = 1.0 + 1.0 / (n_demos - 1)
-    scores = np.zeros(len(candidates))
+    scores: np.ndarray | None = None
     for i in range(n_demos):
         others = np.delete(x, i, axis=0)
         deviation_sq = (x[i] - others.mean(axis=0)) ** 2
-        variance = others.var(axis=0, ddof=1)
-        for k, bandwidth in enumerate(candidates):
-            pooled = _kernel_mean(variance, bandwidth * (x.shape[1] - 1))
-            # A floor far below any spread that matters keeps identical stretches finite.
-            v = inflation * np.maximum(pooled, 1e-12 * total)
-            scores[k] += float(np.mean(-0.5 * np.log(v) - 0.5 * deviation_sq / v))
-    return float(candidates[int(np.argmax(scores))])
+        # A floor far below any spread that matters keeps identical stretches finite.
+        fold = np.array([
+            float(np.mean(-0.5 * np.log(v) - 0.5 * deviation_sq / v))
+            for v in (inflation * np.maximum(e, 1e-12 * total)
+                      for e in estimates(others.var(axis=0, ddof=1)))
+        ])
+        scores = fold if scores is None else scores + fold
+    assert scores is not None
+    return scores
+
+
+@dataclass(frozen=True)
+class HeldLevels:
+    """Variance across demonstrations held constant over stretches of the phase.
+
+    Attributes
+    ----------
+    variance : (n_samples, n_joints) array, rad^2
+        Each sample's level: the mean per-sample variance (ddof=1) over all the stretches
+        that share it.
+    degrees_of_freedom : (n_samples, n_joints) array
+        Satterthwaite's effective degrees of freedom of each sample's level, at least
+        ``n_demos - 1``.
+    change_penalty, level_penalty : float
+        Penalties per stretch and per level the levels were found with.
+    n_stretches, n_levels : tuple of int, one per joint
+        Stretches of the phase and distinct levels among them.
+    """
+
+    variance: np.ndarray
+    degrees_of_freedom: np.ndarray
+    change_penalty: float
+    level_penalty: float
+    n_stretches: tuple[int, ...]
+    n_levels: tuple[int, ...]
+
+
+def held_level_variance(
+    positions: object,
+    change_penalty: float = _DEFAULT_PENALTIES[0],
+    level_penalty: float = _DEFAULT_PENALTIES[1],
+) -> HeldLevels:
+    """Variance across aligned demonstrations, held constant where the data show no change.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+    change_penalty : float
+        Penalty per stretch (default 0.02, see :data:`VARIABILITY_CHANGE_PENALTIES` for its
+        units), at least 0.
+    level_penalty : float
+        Penalty per distinct level (default 0.04, see :data:`VARIABILITY_LEVEL_PENALTIES`),
+        at least 0; 0 keeps each stretch at its own level.
+
+    Returns
+    -------
+    HeldLevels
+
+    Notes
+    -----
+    Per joint, with ``s^2(t)`` the per-sample variance and ``w`` a stretch's share of the
+    phase, the Gaussian negative log-likelihood of the deviations under a variance held at
+    ``v`` over a stretch is, per degree of freedom and per unit of phase, ``w (ln v + s^2 /
+    v)`` up to a constant, least at the stretch's mean ``v = mean s^2``, where it is ``w ln v +
+    w``. First the stretches: the exact minimiser of ``sum w ln v + change_penalty *
+    (stretches)`` over partitions of the phase into stretches of at least
+    :data:`VARIABILITY_MIN_STRETCH`, by optimal partitioning on at most 200 blocks of equal
+    length (Jackson et al., IEEE Signal Processing Letters 12(2), 105-108, 2005; the exact
+    search that PELT prunes, Killick, Fearnhead and Eckley, JASA 107(500), 1590-1598, 2012;
+    both from memory). Then the levels: the two groups of stretches whose union raises ``sum W
+    ln v`` least (any two, not only neighbours: a soft approach and a soft retreat may be one
+    hold) are merged while that rise stays below ``level_penalty`` (agglomerative merging,
+    common practice). Total variation penalised likelihood of the log-variance (Tibshirani et
+    al., JRSS B 67(1), 91-108, 2005) leads to the same piecewise-constant kind of estimate.
+    Within a level the estimate carries no noise, so a stiffness profile from it does not
+    rank phases the data cannot tell apart. A level's degrees of freedom follow from
+    Satterthwaite's approximation with the deviations' correlation ``rho`` along the phase
+    (as in :func:`pooled_variance`): ``nu = (n - 1) m^2 / sum_{k, l in level} rho(k - l)^2``
+    over its ``m`` samples.
+    """
+    x = _aligned_positions(positions)
+    for name, value in (("change_penalty", change_penalty), ("level_penalty", level_penalty)):
+        if not (math.isfinite(value) and value >= 0):
+            raise InvalidInputError(f"{name} must be finite and at least 0, got {value!r}")
+    n_demos, n_samples, n_joints = x.shape
+    deviation = x - x.mean(axis=0)
+    sample_variance = (deviation**2).sum(axis=0) / (n_demos - 1)
+    rho_sq = _deviation_correlation(deviation, sample_variance) ** 2
+    edges = _block_edges(n_samples)
+    variance = np.empty_like(sample_variance)
+    dof = np.empty_like(sample_variance)
+    stretches, levels = [], []
+    for joint in range(n_joints):
+        column = sample_variance[:, joint]
+        found = _fuse(column, edges, _stretches(column, edges, change_penalty), level_penalty)
+        stretches.append(sum(len(group) for group in found))
+        levels.append(len(found))
+        variance[:, joint] = _level_values(column, edges, found)
+        for group in found:
+            inside = np.zeros(n_samples, dtype=bool)
+            for start, stop in group:
+                inside[edges[start]:edges[stop]] = True
+            dof[inside, joint] = _level_dof(inside, rho_sq[:, joint], n_demos)
+    return HeldLevels(variance, dof, float(change_penalty), float(level_penalty),
+                      tuple(stretches), tuple(levels))
+
+
+def select_level_penalties(
+    positions: object,
+    change_penalties: tuple[float, ...] = VARIABILITY_CHANGE_PENALTIES,
+    level_penalties: tuple[float, ...] = VARIABILITY_LEVEL_PENALTIES,
+) -> tuple[float, float]:
+    """Penalties of :func:`held_level_variance` that best predict each demonstration.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+    change_penalties, level_penalties : tuple of float
+        Candidates per stretch and per level, each finite and at least 0 (defaults
+        :data:`VARIABILITY_CHANGE_PENALTIES` and :data:`VARIABILITY_LEVEL_PENALTIES`).
+
+    Returns
+    -------
+    (change_penalty, level_penalty)
+        The pair with the highest leave-one-demonstration-out log-likelihood (the criterion
+        of :func:`select_bandwidth`, each demonstration scored under the others' held
+        levels); (0.02, 0.04) for 2 demonstrations or demonstrations that do not differ.
+    """
+    x = _aligned_positions(positions)
+    for name, values in (("change_penalties", change_penalties),
+                         ("level_penalties", level_penalties)):
+        if len(values) == 0 or not all(math.isfinite(v) and v >= 0 for v in values):
+            raise InvalidInputError(
+                f"{name} must be penalties, finite and at least 0, got {values!r}")
+    sampled = _selection_samples(x)
+    if sampled is None:
+        return _DEFAULT_PENALTIES
+    pairs, scores = _level_scores(sampled, change_penalties, level_penalties)
+    return pairs[int(np.argmax(scores))]
+
+
+def select_variability_model(positions: object) -> Literal["levels", "kernel"]:
+    """The variance model along the phase that best predicts each demonstration.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+
+    Returns
+    -------
+    "levels" or "kernel"
+        "levels" (:func:`held_level_variance`) where its best penalties score a higher
+        leave-one-demonstration-out log-likelihood than the kernel's best bandwidth
+        (:func:`pooled_variance`), both over their default candidates and on the one
+        criterion of :func:`select_bandwidth`; "kernel" for 2 demonstrations or
+        demonstrations that do not differ.
+
+    Notes
+    -----
+    A held-out likelihood compares models of any kind on the same footing (Stone, JRSS B
+    36(2), 111-147, 1974, from memory): a teacher who holds a few stiffness levels is better
+    predicted by held levels, one whose stiffness drifts smoothly by the kernel.
+    """
+    x = _selection_samples(_aligned_positions(positions))
+    if x is None:
+        return "kernel"
+    kernel = _bandwidth_scores(x, VARIABILITY_BANDWIDTH_CANDIDATES).max()
+    levels = _level_scores(x, VARIABILITY_CHANGE_PENALTIES, VARIABILITY_LEVEL_PENALTIES)[1].max()
+    return "levels" if levels > kernel else "kernel"
+
+
+def _level_scores(
+    x: np.ndarray, change_penalties: tuple[float, ...], level_penalties: tuple[float, ...]
+) -> tuple[list[tuple[float, float]], np.ndarray]:
+    """Held-out log-likelihood of each (change, level) penalty pair of the held levels."""
+    pairs = [(c, g) for c in change_penalties for g in level_penalties]
+    edges = _block_edges(x.shape[1])
+
+    def estimates(variance: np.ndarray) -> list[np.ndarray]:
+        held = np.empty((len(pairs),) + variance.shape)
+        for joint in range(variance.shape[1]):
+            column = variance[:, joint]
+            for c in change_penalties:
+                cuts = _stretches(column, edges, c)
+                for k, (change, level) in enumerate(pairs):
+                    if change == c:
+                        held[k, :, joint] = _level_values(column, edges, _fuse(
+                            column, edges, cuts, level))
+        return list(held)
+
+    return pairs, _held_out_scores(x, estimates)
+
+
+def _block_edges(n_samples: int) -> np.ndarray:
+    """Sample indices bounding at most ``_LEVEL_BLOCKS`` blocks of (nearly) equal length."""
+    return np.unique(np.linspace(0, n_samples, min(_LEVEL_BLOCKS, n_samples) + 1).round()
+                     ).astype(int)
+
+
+def _stretches(values: np.ndarray, edges: np.ndarray, penalty: float) -> list[tuple[int, int]]:
+    """Optimal partition of the blocks (start, stop) minimising ``sum w ln v + penalty``."""
+    n_blocks = edges.size - 1
+    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    counts = edges.astype(float)
+    floor = 1e-12 * max(float(values.mean()), 1e-300)
+    shortest = min(n_blocks, max(1, math.ceil(VARIABILITY_MIN_STRETCH * n_blocks)))
+    best = np.full(n_blocks + 1, np.inf)
+    best[0] = 0.0
+    start = np.zeros(n_blocks + 1, dtype=int)
+    for stop in range(shortest, n_blocks + 1):
+        first = np.arange(0, stop - shortest + 1)
+        first = first[np.isfinite(best[first])]
+        length = counts[stop] - counts[first]
+        mean = np.maximum((sums[stop] - sums[first]) / length, floor)
+        cost = best[first] + length / counts[-1] * np.log(mean) + penalty
+        pick = int(np.argmin(cost))
+        best[stop], start[stop] = cost[pick], first[pick]
+    if not np.isfinite(best[n_blocks]):
+        return [(0, n_blocks)]
+    cuts, stop = [], n_blocks
+    while stop > 0:
+        cuts.append((int(start[stop]), stop))
+        stop = int(start[stop])
+    return cuts[::-1]
+
+
+def _fuse(values: np.ndarray, edges: np.ndarray, stretches: list[tuple[int, int]],
+          penalty: float) -> list[list[tuple[int, int]]]:
+    """Groups of stretches sharing a level: merge the cheapest pair while its cost < penalty."""
+    floor = 1e-12 * max(float(values.mean()), 1e-300)
+    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    groups = [[stretch] for stretch in stretches]
+    totals = [(sums[b] - sums[a], float(edges[b] - edges[a])) for a, b in stretches]
+
+    def cost(total: tuple[float, float]) -> float:
+        return total[1] * math.log(max(total[0] / total[1], floor))
+
+    while len(groups) > 1:
+        rises = [(cost((totals[i][0] + totals[j][0], totals[i][1] + totals[j][1]))
+                  - cost(totals[i]) - cost(totals[j]), i, j)
+                 for i in range(len(groups)) for j in range(i + 1, len(groups))]
+        rise, i, j = min(rises)
+        if not rise / edges[-1] < penalty:
+            break
+        groups[i] += groups.pop(j)
+        merged = totals.pop(j)
+        totals[i] = (totals[i][0] + merged[0], totals[i][1] + merged[1])
+    return groups
+
+
+def _level_values(values: np.ndarray, edges: np.ndarray,
+                  groups: list[list[tuple[int, int]]]) -> np.ndarray:
+    """Per-sample level: each group's mean of ``values`` over its samples."""
+    out = np.empty_like(values)
+    for group in groups:
+        parts = [slice(edges[a], edges[b]) for a, b in group]
+        level = sum(values[p].sum() for p in parts) / sum(p.stop - p.start for p in parts)
+        for part in parts:
+            out[part] = level
+    return out
+
+
+def _level_dof(inside: np.ndarray, rho_sq: np.ndarray, n_demos: int) -> float:
+    """Satterthwaite's nu of the mean per-sample variance over the samples ``inside``."""
+    n = inside.size
+    size = 1 << int(2 * n - 1).bit_length()
+    spectrum = np.fft.rfft(inside.astype(float), n=size)
+    overlap = np.fft.irfft(spectrum * spectrum.conj(), n=size)[:n]
+    weight = overlap[0] + 2.0 * float(overlap[1:] @ rho_sq[1:])
+    nu = (n_demos - 1) * overlap[0] ** 2 / max(weight, overlap[0])
+    return float(max(nu, n_demos - 1))
+
+
+def _deviation_correlation(deviation: np.ndarray, variance: np.ndarray) -> np.ndarray:
+    """(n_samples, n_joints) correlation along the phase, lags 0, 1, ..., of the deviations
+    (n_demos, n_samples, n_joints) from the aligned mean, each scaled by its sample's spread."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scaled = np.where(variance > 0, deviation / np.sqrt(variance), 0.0)
+    return _phase_correlation(scaled)
 
 
 def _phase_correlation(scaled: np.ndarray) -> np.ndarray:
@@ -260,9 +605,10 @@ def stiffness_from_variability(
     variance_floor : float, rad^2, optional
         Lower bound on the variance before inversion; default none (a zero variance gives
         ``k_max`` through the clipping).
-    degrees_of_freedom : float or (n_joints,) array, optional
+    degrees_of_freedom : float, (n_joints,) or (n_samples, n_joints) array, optional
         Degrees of freedom of ``variance``; default ``n_demos - 1`` (per-sample variance).
-        Give ``PooledVariance.degrees_of_freedom`` for a pooled variance.
+        Give ``PooledVariance.degrees_of_freedom`` for a pooled variance or
+        ``HeldLevels.degrees_of_freedom`` for held levels.
 
     Returns
     -------
@@ -334,14 +680,20 @@ def stiffness_from_variability(
         if not (math.isfinite(variance_floor) and variance_floor > 0):
             raise InvalidInputError(f"variance_floor must be positive, got {variance_floor!r}")
         var = np.maximum(var, variance_floor)
-    dof = np.broadcast_to(
-        np.asarray(n_demos - 1 if degrees_of_freedom is None else degrees_of_freedom,
-                   dtype=float), (var.shape[1],))
+    dof = np.asarray(n_demos - 1 if degrees_of_freedom is None else degrees_of_freedom,
+                     dtype=float)
+    try:
+        dof = np.broadcast_to(dof, var.shape)
+    except ValueError:
+        raise InvalidInputError(f"degrees_of_freedom: shape {dof.shape} does not fit the "
+                                f"variance's shape {var.shape}") from None
     if not (np.isfinite(dof).all() and (dof > 0).all()):
         raise InvalidInputError(
             f"degrees_of_freedom must be positive and finite, got {degrees_of_freedom!r}"
         )
-    median_factor = chi2.median(dof) / dof
+    # a few distinct values (one per joint, or per held level) behind many samples
+    distinct, index = np.unique(dof, return_inverse=True)
+    median_factor = (chi2.median(distinct) / distinct)[index.reshape(dof.shape)]
     with np.errstate(divide="ignore"):
         ratio = median_factor * reference_std**2 / var
     return np.clip(reference * ratio**exponent, low, high)

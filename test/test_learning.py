@@ -12,6 +12,12 @@ from compliant_demo.alignment import DemoArrays, align_demonstrations
 from compliant_demo.exceptions import InvalidInputError, NotFoundError
 from compliant_demo.learning import DEFAULT_MAX_SAMPLES, learn_skill, load_skill, save_skill
 from compliant_demo.store import DemoStore
+from compliant_demo.variability import (
+    VARIABILITY_BANDWIDTH,
+    VARIABILITY_BANDWIDTH_CANDIDATES,
+    VARIABILITY_CHANGE_PENALTIES,
+    VARIABILITY_LEVEL_PENALTIES,
+)
 
 JOINTS = ["shoulder", "elbow"]
 RANGE = (10.0, 180.0)
@@ -142,21 +148,39 @@ def test_stiffness_from_variability_follows_inverse_variance():
     # Calinon, Sardellitti, Caldwell, IROS 2010: stiffness follows the inverse variance. The
     # law clips it to the range (the precision spans a factor 600 here, the range 18), so the
     # profile is compared with the clipped law, in log space (correlation above 0.98), and its
-    # ranks with the precision's (Spearman above 0.98). Each demonstration is one offset times
-    # sigma, so pooling along the phase gains nothing and the chosen bandwidth is the narrowest.
+    # ranks with the precision's (Spearman above 0.98), for the default held levels (a smooth
+    # spread becomes a staircase of many stretches, which the profile fit smooths) and the
+    # kernel. Each demonstration is one offset times sigma, so pooling along the phase gains
+    # nothing and the kernel's chosen bandwidth is the narrowest.
     law = np.clip(RANGE[0] * (0.02 / sigma) ** 2, *RANGE)
-    assert skill.provenance.alignment["variability_bandwidth"] == 0.01
-    for joint in range(2):
-        assert np.corrcoef(np.log(stiffness[:, joint]), np.log(law))[0, 1] > 0.98
-        assert stats.spearmanr(stiffness[:, joint], 1.0 / sigma)[0] > 0.98
-    assert stiffness.min() >= RANGE[0] and stiffness.max() <= RANGE[1]
-    assert np.all(np.abs(t[np.argmax(stiffness, axis=0)] - 1.0) < 0.1)
-    assert np.all(stiffness[500] > 3 * stiffness[0])
+    common = dict(joints=JOINTS, stiffness_source="variability", stiffness_range=RANGE,
+                  alignment="none", target_inertia=[0.05, 0.02])
+    assert skill.provenance.alignment["variability_model"] in ("levels", "kernel")
+    levels = learn_skill(demos, **common, variability_model="levels")
+    alignment = levels.provenance.alignment
+    assert alignment["variability_model"] == "levels"
+    assert alignment["variability_change_penalty"] in VARIABILITY_CHANGE_PENALTIES
+    assert alignment["variability_level_penalty"] in VARIABILITY_LEVEL_PENALTIES
+    assert all(s >= n >= 1 for s, n in zip(alignment["variability_stretches"],
+                                            alignment["variability_levels"], strict=True))
+    assert min(alignment["variability_stretches"]) > 5
+    assert "variability_bandwidth" not in alignment
+    kernel = learn_skill(demos, **common, variability_model="kernel")
+    assert kernel.provenance.alignment["variability_bandwidth"] == 0.01
+    assert "variability_change_penalty" not in kernel.provenance.alignment
+    for learned in (stiffness, levels.rollout(dt=t[1] - t[0]).stiffness,
+                    kernel.rollout(dt=t[1] - t[0]).stiffness):
+        for joint in range(2):
+            assert np.corrcoef(np.log(learned[:, joint]), np.log(law))[0, 1] > 0.98
+            assert stats.spearmanr(learned[:, joint], 1.0 / sigma)[0] > 0.98
+        assert learned.min() >= RANGE[0] and learned.max() <= RANGE[1]
+        assert np.all(np.abs(t[np.argmax(learned, axis=0)] - 1.0) < 0.1)
+        assert np.all(learned[500] > 3 * learned[0])
 
     # A given bandwidth is used as given and recorded the same way.
     fixed = learn_skill(demos, joints=JOINTS, stiffness_source="variability",
                         stiffness_range=RANGE, alignment="none", target_inertia=[0.05, 0.02],
-                        variability_bandwidth=0.03)
+                        variability_model="kernel", variability_bandwidth=0.03)
     assert fixed.provenance.alignment["variability_bandwidth"] == 0.03
 
 
@@ -271,6 +295,10 @@ def test_alignment_none_needs_common_time():
         ({"n_basis": 1}, r"n_basis: need an integer of at least 2, got 1"),
         ({"n_samples": 1}, r"n_samples: need an integer of at least 2, got 1"),
         ({"n_samples": 10, "n_basis": 20}, r"t: 10 samples are fewer than n_basis = 20"),
+        ({"variability_model": "spline"},
+         r"variability_model: expected 'auto', 'levels' or 'kernel', got 'spline'"),
+        ({"variability_model": "levels", "variability_bandwidth": 0.03},
+         r"variability_bandwidth = 0.03: a kernel bandwidth needs variability_model='kernel'"),
     ],
 )
 def test_bad_options(kwargs, message):
@@ -502,18 +530,22 @@ def test_few_demonstrations_give_a_profile_inside_the_range(n_demos):
     # 1010, for 3, 4 and 8; with 2 demonstrations, one degree of freedom per sample, only on 8
     # or 9 of 10, so not asserted).
     from compliant_demo.teaching import cork_seat_scenario, teaching_series
-    from compliant_demo.variability import (
-        VARIABILITY_BANDWIDTH,
-        VARIABILITY_BANDWIDTH_CANDIDATES,
-    )
 
     scenario = cork_seat_scenario()
     demos = [(r.t - r.t[0], r.position) for r in teaching_series(scenario, n_demos, 101)]
     skill = learn_skill(demos, joints=list(scenario.joint_names), alignment="resample",
                         stiffness_source="variability", stiffness_range=(2.0, 200.0),
                         variability_reference=(0.02, 6.0), target_inertia=[0.08, 0.03])
-    assert skill.provenance.alignment["variability_bandwidth"] in (
-        VARIABILITY_BANDWIDTH_CANDIDATES if n_demos >= 3 else (VARIABILITY_BANDWIDTH,))
+    alignment = skill.provenance.alignment
+    if n_demos < 3:
+        # leaving one out leaves no spread to choose by: the kernel at its default bandwidth
+        assert alignment["variability_model"] == "kernel"
+        assert alignment["variability_bandwidth"] == VARIABILITY_BANDWIDTH
+    elif alignment["variability_model"] == "kernel":
+        assert alignment["variability_bandwidth"] in VARIABILITY_BANDWIDTH_CANDIDATES
+    else:
+        assert alignment["variability_change_penalty"] in VARIABILITY_CHANGE_PENALTIES
+        assert alignment["variability_level_penalty"] in VARIABILITY_LEVEL_PENALTIES
     k = skill.rollout(dt=0.002).stiffness
     assert np.isfinite(k).all() and k.min() >= 2.0 and k.max() <= 200.0
     assert np.all(np.median(k, axis=0) > 2.2) and np.all(k.max(axis=0) > 3 * k.min(axis=0))

@@ -11,8 +11,11 @@ from compliant_demo.exceptions import InvalidInputError
 from compliant_demo.variability import (
     VARIABILITY_BANDWIDTH,
     VARIABILITY_BANDWIDTH_CANDIDATES,
+    held_level_variance,
     pooled_variance,
     select_bandwidth,
+    select_level_penalties,
+    select_variability_model,
     stiffness_from_variability,
 )
 
@@ -205,3 +208,107 @@ def test_error_pooled_variance_inputs():
         pooled_variance(np.zeros((3, 5, 2)), -0.1)
     with pytest.raises(InvalidInputError, match="degrees_of_freedom must be positive and finite"):
         stiffness_from_variability(np.ones((4, 2)), 1.0, 2.0, n_demos=3, degrees_of_freedom=0.0)
+
+
+def _held_spread(rng, n_demos=8):
+    """Independent normal deviations, 2,000 samples: 0.02 rad, 0.005 rad over [600, 1200),
+    0.02 rad again (a soft approach, a stiff hold, a soft retreat)."""
+    phase = np.arange(2000)
+    sigma = np.where((phase >= 600) & (phase < 1200), 0.005, 0.02)
+    return sigma, sigma[None, :, None] * rng.normal(size=(n_demos, 2000, 1))
+
+
+def test_held_levels_recover_known_changes_and_fuse_equal_levels():
+    # The changes lie on block edges (200 blocks of 10 samples), so the stretches are exactly
+    # [0, 600), [600, 1200), [1200, 2000) and the two soft ones share one level. Each level is
+    # the mean of its samples' variances: nu s^2 / sigma^2 is chi-square with nu = 7 m for m
+    # independent samples (Casella and Berger, Theorem 5.3.1), relative std sqrt(2 / nu) =
+    # 1.4 % (soft, m = 1,400) and 2.2 % (stiff, m = 600); tolerance 6 % and 9 % (4 std).
+    # Satterthwaite's nu for independent samples is (n - 1) m; the estimated correlations'
+    # sampling noise only lowers it (by about a fifth for the soft level here): within
+    # [0.7, 1] of (n - 1) m.
+    sigma, positions = _held_spread(np.random.default_rng(8))
+    held = held_level_variance(positions)
+    assert held.n_stretches == (3,) and held.n_levels == (2,)
+    np.testing.assert_array_equal(np.nonzero(np.diff(held.variance[:, 0]))[0], [599, 1199])
+    assert held.variance[0, 0] == held.variance[1999, 0]
+    assert held.variance[0, 0] == pytest.approx(0.02**2, rel=0.06)
+    assert held.variance[700, 0] == pytest.approx(0.005**2, rel=0.09)
+    for index, m in ((0, 1400), (700, 600)):
+        assert 0.7 <= held.degrees_of_freedom[index, 0] / (7 * m) <= 1.0
+    # Without a penalty per level every stretch keeps its own level.
+    apart = held_level_variance(positions, level_penalty=0.0)
+    assert apart.n_levels == (3,) and apart.variance[0, 0] != apart.variance[1999, 0]
+
+
+def test_held_stretches_are_the_exact_optimum():
+    # Optimal partitioning (Jackson et al., IEEE SPL 12(2), 2005) minimises
+    # sum w ln(mean s^2) + penalty * stretches exactly: against all 2^11 partitions of 12
+    # samples (12 blocks, shortest stretch 1 sample), the same levels to 1e-12, for several
+    # penalties (level_penalty 0: no fusion).
+    rng = np.random.default_rng(9)
+    positions = rng.normal(size=(4, 12, 1)) * np.exp(rng.normal(size=(1, 12, 1)))
+    sample = positions.var(axis=0, ddof=1)[:, 0]
+    for penalty in (0.0, 0.02, 0.1, 0.5):
+        best, best_levels = np.inf, None
+        for mask in range(1 << 11):
+            cuts = [0] + [i + 1 for i in range(11) if mask >> i & 1] + [12]
+            levels = np.concatenate([np.full(b - a, sample[a:b].mean())
+                                     for a, b in zip(cuts, cuts[1:], strict=False)])
+            cost = np.mean(np.log(levels)) + penalty * (len(cuts) - 1)
+            if cost < best - 1e-12:
+                best, best_levels = cost, levels
+        held = held_level_variance(positions, change_penalty=penalty, level_penalty=0.0)
+        np.testing.assert_allclose(held.variance[:, 0], best_levels, rtol=1e-12)
+
+
+def test_level_penalties_and_model_are_chosen_from_the_demonstrations():
+    # Held levels predict left-out demonstrations of a spread held in levels better than any
+    # kernel (which blurs the steps), and a kernel predicts a smoothly varying spread better
+    # (three periods of a sinusoid) on 5 seeded sets each; 2 demonstrations or identical
+    # ones leave nothing to choose by.
+    for seed in range(5):
+        rng = np.random.default_rng(100 + seed)
+        _, held = _held_spread(rng)
+        smooth = 0.01 * (1.5 + np.sin(6 * np.pi * np.arange(2000) / 2000))
+        assert select_variability_model(held) == "levels"
+        assert select_variability_model(smooth[None, :, None] * rng.normal(size=(8, 2000, 1))
+                                        ) == "kernel"
+    assert select_variability_model(np.random.default_rng(10).normal(size=(2, 50, 1))) == "kernel"
+    assert select_variability_model(np.ones((4, 50, 2))) == "kernel"
+    assert select_level_penalties(np.random.default_rng(11).normal(size=(2, 50, 1))) == (
+        0.02, 0.04)
+    assert select_level_penalties(np.ones((4, 50, 2))) == (0.02, 0.04)
+    assert select_level_penalties(held, (0.03,), (0.05,)) == (0.03, 0.05)
+
+
+def test_the_law_takes_degrees_of_freedom_per_sample():
+    # Per-sample degrees of freedom (one per held level) give each sample the factor
+    # m(nu) / nu of its own nu: the same as the law applied sample by sample.
+    variance = np.full((3, 2), 0.02**2)
+    dof = np.array([[2.0, 7.0], [50.0, 7.0], [2.0, 9.0]])
+    k = stiffness_from_variability(variance, 1e-3, 10.0, n_demos=8, reference_stiffness=1.0,
+                                   degrees_of_freedom=dof)
+    np.testing.assert_allclose(k, chi2.median(dof) / dof, rtol=1e-12)
+
+
+def test_error_held_level_inputs():
+    with pytest.raises(InvalidInputError, match=r"2 demonstrations .* got shape \(1, 5, 2\)"):
+        held_level_variance(np.zeros((1, 5, 2)))
+    with pytest.raises(InvalidInputError, match=r"change_penalty must be finite and at least 0, "
+                                                r"got -0.1"):
+        held_level_variance(np.zeros((3, 5, 1)), change_penalty=-0.1)
+    with pytest.raises(InvalidInputError, match=r"level_penalty must be .* got nan"):
+        held_level_variance(np.zeros((3, 5, 1)), level_penalty=float("nan"))
+    with pytest.raises(InvalidInputError, match=r"change_penalties must be penalties, .* got \(\)"):
+        select_level_penalties(np.zeros((3, 5, 1)), ())
+    with pytest.raises(InvalidInputError, match=r"level_penalties .* got \(0.0, -1.0\)"):
+        select_level_penalties(np.zeros((3, 5, 1)), (0.02,), (0.0, -1.0))
+    bad = np.zeros((3, 5, 1))
+    bad[0, 1, 0] = np.nan
+    with pytest.raises(InvalidInputError, match=r"positions\[0, 1, 0\] = nan is not finite"):
+        select_variability_model(bad)
+    with pytest.raises(InvalidInputError, match=r"degrees_of_freedom: shape \(3,\) does not "
+                                                r"fit the variance's shape \(4, 2\)"):
+        stiffness_from_variability(np.ones((4, 2)), 1.0, 2.0, n_demos=3,
+                                   degrees_of_freedom=np.ones(3))
