@@ -257,8 +257,9 @@ class Simulator:
         if self._chain is not None:
             model = self._chain.model
         else:  # arrays of the chain's types that the compiled step never reads
-            model = (np.zeros((0, 3, 3)), np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0),
-                     np.zeros((0, 3)), np.zeros((0, 3, 3)), np.zeros(3))
+            model = (np.zeros((0, 3, 3)), np.zeros((0, 3)), np.zeros(0, dtype=bool),
+                     np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3, 3)), np.zeros((0, 10)),
+                     np.zeros(3))
         self._model = model
         self._workspace = block_workspace(n_joints, n_scen if self._chain is not None else 0)
 

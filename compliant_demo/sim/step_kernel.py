@@ -180,7 +180,7 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
                 accel[k] = (accel[k] + gravity[k]) * scale[k]
     if coupled:
         _block_forward(x[0], x[1], f[1], free, zero, s0, nb, *model, ws[0][b], ws[1][b],
-                       ws[2][b], ws[3][b], ws[4][b], ws[5][b], ws[6][b], f[1])
+                       ws[2][b], ws[3][b], ws[4][b], ws[5][b], ws[6][b], ws[7][b], f[1])
 
 
 def _rhs_blocks(x, tg, ext, has_ext, prm, walls, kind, coupled, free, accel_scale, model, ws,
