@@ -261,7 +261,8 @@ class Simulator:
                      np.zeros(0), np.zeros((0, 3)), np.zeros((0, 3, 3)), np.zeros((0, 10)),
                      np.zeros(3))
         self._model = model
-        self._workspace = block_workspace(n_joints, n_scen if self._chain is not None else 0)
+        self._workspace = block_workspace(n_joints, n_scen if self._chain is not None else 0,
+                                          self._parallel)
 
     def _setup_events(self) -> None:
         events: dict[int, list[tuple]] = {}

@@ -439,16 +439,18 @@ def _block_forward(q, dq, tau, free, zero, s0, nb, place, offset, turned, mass, 
     _block_solve(mm, vec, free, s0, nb, out)
 
 
-def block_workspace(n_joints: int, n_scenarios: int) -> tuple[np.ndarray, ...]:
-    """Scratch of :func:`_block_forward` for every block of ``n_scenarios`` (leading axis, so
-    blocks on different threads never share it): rot, sa, fm, vec, comp, mm, sb, and a block
-    of zeros."""
-    n_blocks = -(-n_scenarios // _BLOCK)
-    return (np.empty((n_blocks, n_joints, 2, _BLOCK)), np.empty((n_blocks, 15, _BLOCK)),
-            np.empty((n_blocks, n_joints, 15, _BLOCK)), np.empty((n_blocks, n_joints, _BLOCK)),
-            np.empty((n_blocks, n_joints, 10, _BLOCK)),
-            np.empty((n_blocks, n_joints, n_joints, _BLOCK)), np.empty((n_blocks, 15, _BLOCK)),
-            np.zeros((n_blocks, 6, _BLOCK)))
+def block_workspace(n_joints: int, n_scenarios: int, parallel: bool = False
+                    ) -> tuple[np.ndarray, ...]:
+    """Scratch of :func:`_block_forward`: rot, sa, fm, vec, comp, mm, sb, and a block of
+    zeros, each with a leading slot axis. Blocks of ``n_scenarios`` that may run at once
+    (``parallel``) get a slot each, so threads never share one; one after another they all use
+    the one slot (block b uses slot ``b % n_slots``), which stays in cache."""
+    n_slots = -(-n_scenarios // _BLOCK) if parallel else min(n_scenarios, 1)
+    return (np.empty((n_slots, n_joints, 2, _BLOCK)), np.empty((n_slots, 15, _BLOCK)),
+            np.empty((n_slots, n_joints, 15, _BLOCK)), np.empty((n_slots, n_joints, _BLOCK)),
+            np.empty((n_slots, n_joints, 10, _BLOCK)),
+            np.empty((n_slots, n_joints, n_joints, _BLOCK)), np.empty((n_slots, 15, _BLOCK)),
+            np.zeros((n_slots, 6, _BLOCK)))
 
 
 def _forward_blocks(q, dq, tau, free, place, offset, turned, mass, com, inertia, links, gravity,
