@@ -600,11 +600,10 @@ class ChainKernel:
         # the arrays the compiled kernels and step read (see z_axis_model)
         self.model = z_axis_model(self._place, self._pos, self._axis, self._mass, self._com,
                                   self._inertia, self._gravity)
-        self._geometry = (self._place, self._pos, self._axis, self._com, self._gravity)
         rest = np.zeros((self.n_joints, 1))
         heights = np.empty_like(rest)
-        _chain_energies(rest, rest, self.model, self._geometry, np.zeros(self.n_joints),
-                        np.empty_like(rest), heights)
+        _chain_energies(rest, rest, self.model, np.zeros(self.n_joints), np.empty_like(rest),
+                        heights)
         self._rest_heights = heights[:, 0]
 
     def forward(self, q: np.ndarray, dq: np.ndarray, tau: np.ndarray, free: np.ndarray,
@@ -642,8 +641,7 @@ class ChainKernel:
         ``-m_i g . (c_i(q) - c_i(0))`` of the link each joint moves, J; all ``(n_joints,
         n_scen)`` contiguous. Each sums over joints to the arm's energy (zero potential at
         q = 0)."""
-        _chain_energies(q, dq, self.model, self._geometry, self._rest_heights, kinetic,
-                        potential)
+        _chain_energies(q, dq, self.model, self._rest_heights, kinetic, potential)
 
 
 @_kernel
@@ -694,28 +692,48 @@ def _frames(q, place, pos, axis, origins, rots):
 _inverse_serial = _SERIAL[1]
 
 
+@_vector_kernel
+def _link_heights(q, place, offset, turned, mass, com, gravity, rest, g0, g1, g2, height,
+                  potential):
+    """potential[i, s] = -m_i g . c_i(q) - rest[i] for each link's centre of mass c_i, in the
+    frames of :func:`z_axis_model`; g0, g1, g2, height (n_scen,) scratch: gravity in the
+    current joint's frame and its product with that joint's origin."""
+    n, n_scen = q.shape
+    g0[:], g1[:], g2[:], height[:] = gravity[0], gravity[1], gravity[2], 0.0
+    for i in range(n):
+        if turned[i]:
+            r = place[i]
+            for s in range(n_scen):
+                g0[s], g1[s], g2[s] = (
+                    r[0, 0] * g0[s] + r[1, 0] * g1[s] + r[2, 0] * g2[s],
+                    r[0, 1] * g0[s] + r[1, 1] * g1[s] + r[2, 1] * g2[s],
+                    r[0, 2] * g0[s] + r[1, 2] * g1[s] + r[2, 2] * g2[s])
+        d0, d1, d2 = offset[i, 0], offset[i, 1], offset[i, 2]
+        c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
+        m, base = mass[i], rest[i]
+        qi, out = q[i], potential[i]
+        for s in range(n_scen):
+            h = height[s] + g0[s] * d0 + g1[s] * d1 + g2[s] * d2
+            height[s] = h
+            sine, cosine = _sincos(qi[s])
+            x0, x1, x2 = g0[s], g1[s], g2[s]
+            x0, x1 = cosine * x0 + sine * x1, cosine * x1 - sine * x0
+            g0[s], g1[s] = x0, x1
+            out[s] = -m * (h + x0 * c0 + x1 * c1 + x2 * c2) - base
+
+
 @_kernel
-def _chain_energies(q, dq, model, geometry, rest, kinetic, potential):
+def _chain_energies(q, dq, model, rest, kinetic, potential):
     """See :meth:`ChainKernel.energies`; ``model`` the kernels' arrays (:func:`z_axis_model`),
-    ``geometry`` the chain's own place, pos, axis, com and gravity, ``rest`` (n,) the links'
-    heights term at q = 0."""
+    ``rest`` (n,) the links' heights term at q = 0."""
     n, n_scen = q.shape
     _inverse_serial(q, np.zeros((n, n_scen)), dq, False, *model, kinetic)
-    place, pos, axis, com, gravity = geometry
-    mass = model[3]
-    origins = np.empty((n, n_scen, 3))
-    rots = np.empty((n, n_scen, 3, 3))
-    _frames(q, place, pos, axis, origins, rots)
-    g0, g1, g2 = gravity[0], gravity[1], gravity[2]
     for i in range(n):
-        c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
         for s in range(n_scen):
             kinetic[i, s] = 0.5 * dq[i, s] * kinetic[i, s]
-            o, r = origins[i, s], rots[i, s]
-            x = o[0] + (r[0, 0] * c0 + r[0, 1] * c1 + r[0, 2] * c2)
-            y = o[1] + (r[1, 0] * c0 + r[1, 1] * c1 + r[1, 2] * c2)
-            z = o[2] + (r[2, 0] * c0 + r[2, 1] * c1 + r[2, 2] * c2)
-            potential[i, s] = -mass[i] * (x * g0 + y * g1 + z * g2) - rest[i]
+    place, offset, turned, mass, com, _, _, gravity = model
+    _link_heights(q, place, offset, turned, mass, com, gravity, rest, np.empty(n_scen),
+                  np.empty(n_scen), np.empty(n_scen), np.empty(n_scen), potential)
 
 
 def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray
