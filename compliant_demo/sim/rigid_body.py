@@ -35,7 +35,7 @@ __all__ = ["ChainKernel", "chain_kernel", "apparent_inertia"]
 
 # Scenarios go through in blocks: every loop over a block's scenarios is the innermost one, so
 # the compiler vectorises it (one SIMD lane per scenario); blocks run in parallel.
-_BLOCK = 128
+_BLOCK = 256
 _kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 
 
