@@ -21,9 +21,10 @@ import numpy as np
 
 from compliant_demo.sim.rigid_body import (
     _block_forward,
-    _DistinctArgumentsCompiler,
+    _DistinctUncountedCompiler,
     _lane,
     _sincos,
+    _UncountedCompiler,
 )
 
 __all__ = [
@@ -59,9 +60,10 @@ _EXPM1_TAYLOR = tuple(1.0 / math.factorial(n) for n in range(13, 1, -1))
 _TANH_SATURATED = 20.0  # tanh(20) rounds to 1.0 in double precision
 _compiled = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 _parallel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True, parallel=True)
-# the batch's arrays never overlap: declared so (see rigid_body), the scenario loops vectorise
+# the batch's arrays never overlap: declared so, and without reference counting (the kernels
+# allocate nothing; see rigid_body)
 _distinct = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
-                       pipeline_class=_DistinctArgumentsCompiler)
+                       pipeline_class=_DistinctUncountedCompiler)
 
 
 @_compiled
@@ -150,7 +152,9 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
             for k in range(nb):
                 passive[k] += neg_coulomb * _tanh(dq[k] * inv_smoothing)
         if has_ext:
-            external[:] = ext[e, j, s0:e0]
+            given = ext[e, j, s0:e0]
+            for k in range(nb):
+                external[k] = given[k]
         else:
             external[:] = 0.0
         for layer in range(walls.shape[1]):
@@ -276,7 +280,8 @@ _step_serial = _distinct(_step_blocks)
 _step_parallel = _parallel(_step_blocks)
 
 
-@_compiled
+@numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+            pipeline_class=_UncountedCompiler)
 def _steps_serial(method, h, y, tg, ext, has_ext, c0, c1, prm, walls, kind, coupled, free,
                   accel_scale, model, ws, zero, stages, ys, acc, torques, mech, grav, deflection,
                   injection):
