@@ -242,13 +242,6 @@ def _add_force(base, k, f0, f1, f2, n0, n1, n2, into, axial):
     axial[k] = moment
 
 
-@_vector_kernel
-def _copy_row(src, dst, nb):
-    """dst[:nb] = src[:nb]."""
-    for k in range(nb):
-        dst[k] = src[k]
-
-
 @_view_kernel
 def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, place, offset, turned, mass, com, inertia,
                 gravity, sa, fm, sb, zero_rows, tau):
@@ -270,7 +263,8 @@ def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, place, offset, turned, mass, c
                    mass[i], com[i], inertia[i], fm[i])
     # the links i + 1.. pull on link i: their sum goes back and forth between two arrays
     child, spare = fm[n - 1], sa
-    _copy_row(child[5], tau[n - 1], nb)
+    for k in range(nb):
+        tau[n - 1, k] = child[5, k]
     for i in range(n - 2, -1, -1):
         if turned[i + 1]:
             _force_to_parent(child, rot[i + 1], nb, offset[i + 1], zero_rows, spare, tau[i])
