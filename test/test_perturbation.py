@@ -20,6 +20,7 @@ from compliant_demo.perturbation import (
     Normal,
     PerturbationSchedule,
     RandomTorque,
+    Sinusoid,
     TorqueStep,
     TorqueWindow,
     Uniform,
@@ -182,6 +183,29 @@ def test_window_and_pulse_profiles():
     assert shape[0] == 0 and shape[-1] == pytest.approx(0, abs=1e-12)
     # a pulse of duration d carries the impulse: height * d = magnitude
     assert compiled.terms[1].profile(np.array([0.01]))[0] * 0.02 == pytest.approx(0.03)
+
+
+@pytest.mark.parametrize("chunk", [1, 7, 256, 5000])
+def test_torque_filled_chunk_by_chunk_equals_the_sinusoid(chunk):
+    """A sinusoid without end over 5,000 steps (more than one stretch of evaluated torques),
+    and a step ending inside a chunk, filled chunk by chunk at the stage times k*dt, (k+1/2)*dt
+    and (k+1)*dt: the closed form a*sin(2*pi*f*t + phase) (the kind's definition) and the
+    step's constant height, whatever the chunk size."""
+    dt, n_steps = 1e-3, 5000
+    wave = Sinusoid(onset_s=0.0, magnitude=0.7, frequency_hz=3.0, phase_rad=0.4)
+    step = TorqueStep(onset_s=0.0102, duration_s=0.0301, magnitude=1.5, joint=1, sign=-1)
+    compiled = compile_schedules([PerturbationSchedule(perturbations=[wave, step])], 1,
+                                 [0.05, 0.05], dt, seed=0)
+    filled = np.zeros((n_steps, 3, 2, 1))
+    for k0 in range(0, n_steps, chunk):
+        assert compiled.fill_torque(filled[k0:k0 + chunk], k0)
+    t = (np.arange(n_steps)[:, None] + np.array([0.0, 0.5, 1.0])) * dt
+    np.testing.assert_allclose(filled[:, :, 0, 0], 0.7 * np.sin(2 * np.pi * 3.0 * t + 0.4),
+                               rtol=0, atol=1e-12)
+    start, stop = step_span(step, dt)
+    expected = np.zeros(n_steps)
+    expected[start:stop] = -1.5
+    np.testing.assert_array_equal(filled[:, :, 1, 0], np.repeat(expected[:, None], 3, axis=1))
 
 
 def test_draw_scenarios_is_deterministic_and_follows_the_spec():

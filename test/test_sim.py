@@ -433,3 +433,26 @@ def test_pendulum_frequency_includes_gravity_stiffness():
     result = simulate([joint], _ideal(), _constant(0.0, n), _constant(STIFFNESS, n), q0=0.005)
     expected_hz = math.sqrt((STIFFNESS + 0.5 * GRAVITY * 0.2) / INERTIA) / (2 * math.pi)
     assert _spectral_peak_hz(result.q[:, 0, 0], result.dt) == pytest.approx(expected_hz, rel=1e-3)
+
+
+def test_record_in_its_own_memory_outlives_the_run_and_pickles():
+    """The record's arrays live in anonymous memory maps (see integrate._record_zeros): they
+    start at zero, stay valid and writable after the run, and pickle by value."""
+    import gc
+    import pickle
+
+    from compliant_demo.sim.integrate import _record_zeros
+
+    zeros = _record_zeros((3, 4, 5), dtype=bool)
+    assert zeros.shape == (3, 4, 5) and zeros.dtype == bool and not zeros.any()
+    other = _record_zeros((3, 4, 5))
+    other[...] = 1.0
+    assert not np.shares_memory(zeros, other) and other.sum() == 60.0
+    result = simulate([_joint()], _ideal(), _constant(0.2, 200), _constant(40.0, 200),
+                      decimation=10)
+    gc.collect()
+    angles = np.array(result.q)
+    assert np.all(np.isfinite(angles)) and angles[-1, 0, 0] != 0.0
+    result.q[0, 0, 0] = 1.5  # the caller owns its record
+    again = pickle.loads(pickle.dumps(result))
+    assert again.q[0, 0, 0] == 1.5 and np.array_equal(again.q[1:], angles[1:])

@@ -124,8 +124,10 @@ def observe_batch(y, tg, f0, torques, mech, prm, kind, coupled, walls, wall_on, 
             floats[_DISSIPATED, row, j, s] = -y[5, j, s] - (stop - start[1, j, s])
             floats[_INJECTION, row, j, s] = injection[j, s]
             bools[_HELD, row, j, s] = free[j, s] == 0.0
-            contact = q < lower or q > upper
-            for layer in range(n_layers):
-                contact |= wall_on[layer, j, s] and (
-                    (q - walls[0, layer, j, s]) * walls[1, layer, j, s] > 0.0)
-            bools[_CONTACT, row, j, s] = contact
+            bools[_CONTACT, row, j, s] = q < lower or q > upper
+        # walls in passes of their own: the loop over scenarios stays the innermost one
+        contact = bools[_CONTACT, row, j]
+        for layer in range(n_layers):
+            for s in range(n_s):
+                contact[s] |= wall_on[layer, j, s] and (
+                    (y[0, j, s] - walls[0, layer, j, s]) * walls[1, layer, j, s] > 0.0)

@@ -35,7 +35,7 @@ __all__ = ["ChainKernel", "chain_kernel", "apparent_inertia"]
 
 # Scenarios go through in blocks: every loop over a block's scenarios is the innermost one, so
 # the compiler vectorises it (one SIMD lane per scenario); blocks run in parallel.
-_BLOCK = 128
+_BLOCK = 256
 _kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 
 
@@ -51,8 +51,29 @@ class _DistinctArgumentsCompiler(CompilerBase):
         return [DefaultPassBuilder.define_nopython_pipeline(self.state)]
 
 
+class _UncountedCompiler(CompilerBase):
+    """numba's nopython pipeline without its reference counting of arrays (NRT), for kernels
+    that allocate nothing: the views they take and pass on then cost no atomic counter
+    updates, which were about half of a step's cost per block of scenarios (a two-scenario
+    step took 11 us instead of 6). A kernel that allocates fails to compile ("NRT required but
+    not enabled")."""
+
+    def __init__(self, typingctx, targetctx, library, args, return_type, flags, locals):
+        flags.nrt = False  # the flags of this compilation, before its target context is made
+        super().__init__(typingctx, targetctx, library, args, return_type, flags, locals)
+
+    def define_pipelines(self):
+        return [DefaultPassBuilder.define_nopython_pipeline(self.state)]
+
+
+class _DistinctUncountedCompiler(_DistinctArgumentsCompiler, _UncountedCompiler):
+    """Both: arguments that never overlap, no reference counting."""
+
+
 _vector_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
-                            pipeline_class=_DistinctArgumentsCompiler)
+                            pipeline_class=_DistinctUncountedCompiler)
+_view_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+                          pipeline_class=_UncountedCompiler)
 _parallel_kernel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
                               parallel=True)
 
@@ -67,7 +88,7 @@ _C = (4.16666666666666019037e-02, -1.38888888888741095749e-03, 2.480158728947672
       -2.75573143513906633035e-07, 2.08757232129817482790e-09, -1.13596475577881948265e-11)
 
 
-@_kernel
+@_view_kernel
 def _sincos(x):
     turns = np.rint(x * (2.0 / math.pi))
     r = (x - turns * _PIO2_HI) - turns * _PIO2_LO
@@ -83,7 +104,7 @@ def _sincos(x):
             c_sign * (odd * sine + (1.0 - odd) * cosine))
 
 
-@_kernel
+@_view_kernel
 def _lane(s0, k):
     """Scenario s0 + k of a block as an unsigned index: numba then leaves out the wrap-around of
     negative indices, which would turn a vectorised loop's loads and stores into gathers and
@@ -92,271 +113,274 @@ def _lane(s0, k):
 
 
 # Every loop over a block's scenarios reads one- or two-dimensional views taken outside it and
-# writes into one array that it does not read at another index (values carried from joint to
-# joint go back and forth between two scratch arrays), and holds no branch: otherwise the
-# compiler cannot rule out that a store changes a later load, and keeps the loop scalar.
+# writes into arrays it does not read (values carried from joint to joint go through per-joint
+# helpers given the parent's and the child's rows as distinct arguments), and branches only on
+# values that stay the same over the loop: otherwise the compiler cannot rule out that a store
+# changes a later load, and keeps the loop scalar.
+#
+# The kernels work in joint frames turned at model build so that every joint turns about its
+# own z axis (see :func:`z_axis_model`): a joint's rotation is then Rz(q) (a cosine and a sine,
+# two components mix), the axis' cross products and projections pick components, and the
+# constant placement rotation between two frames is applied only where it is not the identity
+# (``turned``; never on a planar arm).
 
 
 @_vector_kernel
-def _block_rotations(q, s0, nb, place, axis, rot):
-    """rot[i, 3*a + b, k] for scenarios s0 + k, k < nb."""
-    n = q.shape[0]
-    for i in range(n):
-        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        qi = q[i, s0:s0 + nb]
-        r = rot[i]
+def _block_rotations(q, s0, nb, rot):
+    """rot[i, 0, k], rot[i, 1, k]: cosine and sine of joint i's angle in scenario s0 + k."""
+    for i in range(q.shape[0]):
+        qi, cosine, sine = q[i, s0:s0 + nb], rot[i, 0], rot[i, 1]
         for k in range(nb):
-            sn, c = _sincos(qi[k])
-            t = 1.0 - c
-            r[0, k], r[1, k] = c + t * k0 * k0, t * k0 * k1 - sn * k2
-            r[2, k], r[3, k] = t * k0 * k2 + sn * k1, t * k1 * k0 + sn * k2
-            r[4, k], r[5, k] = c + t * k1 * k1, t * k1 * k2 - sn * k0
-            r[6, k], r[7, k] = t * k2 * k0 - sn * k1, t * k2 * k1 + sn * k0
-            r[8, k] = c + t * k2 * k2
-        p = place[i]
-        # most URDF joints sit unrotated in their parent: the product with I is skipped (it
-        # would give the same numbers)
-        if (p[0, 0] == 1.0 and p[1, 1] == 1.0 and p[2, 2] == 1.0 and p[0, 1] == 0.0
-                and p[0, 2] == 0.0 and p[1, 0] == 0.0 and p[1, 2] == 0.0 and p[2, 0] == 0.0
-                and p[2, 1] == 0.0):
-            continue
-        p00, p01, p02 = p[0, 0], p[0, 1], p[0, 2]
-        p10, p11, p12 = p[1, 0], p[1, 1], p[1, 2]
-        p20, p21, p22 = p[2, 0], p[2, 1], p[2, 2]
-        for k in range(nb):
-            r00, r01, r02 = r[0, k], r[1, k], r[2, k]
-            r10, r11, r12 = r[3, k], r[4, k], r[5, k]
-            r20, r21, r22 = r[6, k], r[7, k], r[8, k]
-            r[0, k] = p00 * r00 + p01 * r10 + p02 * r20
-            r[1, k] = p00 * r01 + p01 * r11 + p02 * r21
-            r[2, k] = p00 * r02 + p01 * r12 + p02 * r22
-            r[3, k] = p10 * r00 + p11 * r10 + p12 * r20
-            r[4, k] = p10 * r01 + p11 * r11 + p12 * r21
-            r[5, k] = p10 * r02 + p11 * r12 + p12 * r22
-            r[6, k] = p20 * r00 + p21 * r10 + p22 * r20
-            r[7, k] = p20 * r01 + p21 * r11 + p22 * r21
-            r[8, k] = p20 * r02 + p21 * r12 + p22 * r22
+            sine[k], cosine[k] = _sincos(qi[k])
 
 
 @_vector_kernel
-def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity, sa,
-                fm, sb, tau):
+def _rnea_link(parent, turn, qd, qdd, nb, offset, m, com, inertia, f):
+    """Forward pass of one link: from the parent's angular velocity, angular acceleration and
+    origin acceleration (parent rows 6-14, in the joint's frame before it turns) into f the
+    link's (rows 6-14) and the force and moment it needs about its joint origin (rows 0-5),
+    its own frame."""
+    d0, d1, d2 = offset[0], offset[1], offset[2]
+    cc0, cc1, cc2 = com[0], com[1], com[2]
+    i00, i01, i02 = inertia[0, 0], inertia[0, 1], inertia[0, 2]
+    i11, i12, i22 = inertia[1, 1], inertia[1, 2], inertia[2, 2]
+    cos_q, sin_q = turn[0], turn[1]
+    for k in range(nb):
+        w0, w1, w2 = parent[6, k], parent[7, k], parent[8, k]
+        dw0, dw1, dw2 = parent[9, k], parent[10, k], parent[11, k]
+        a0, a1, a2 = parent[12, k], parent[13, k], parent[14, k]
+        # the parent's point at the joint origin, in the joint's frame before it turns
+        e0 = w1 * d2 - w2 * d1
+        e1 = w2 * d0 - w0 * d2
+        e2 = w0 * d1 - w1 * d0
+        b0 = a0 + dw1 * d2 - dw2 * d1 + w1 * e2 - w2 * e1
+        b1 = a1 + dw2 * d0 - dw0 * d2 + w2 * e0 - w0 * e2
+        b2 = a2 + dw0 * d1 - dw1 * d0 + w0 * e1 - w1 * e0
+        c, s = cos_q[k], sin_q[k]
+        q_d, q_dd = qd[k], qdd[k]
+        # Rz(q)^T, then the joint's own rate about z
+        u0, u1 = c * w0 + s * w1, c * w1 - s * w0
+        v0, v1 = c * dw0 + s * dw1, c * dw1 - s * dw0
+        a0, a1 = c * b0 + s * b1, c * b1 - s * b0
+        a2 = b2
+        w0, w1, w2 = u0, u1, w2 + q_d
+        dw0, dw1, dw2 = v0 + u1 * q_d, v1 - u0 * q_d, dw2 + q_dd
+        e0 = w1 * cc2 - w2 * cc1
+        e1 = w2 * cc0 - w0 * cc2
+        e2 = w0 * cc1 - w1 * cc0
+        fx = m * (a0 + dw1 * cc2 - dw2 * cc1 + w1 * e2 - w2 * e1)
+        fy = m * (a1 + dw2 * cc0 - dw0 * cc2 + w2 * e0 - w0 * e2)
+        fz = m * (a2 + dw0 * cc1 - dw1 * cc0 + w0 * e1 - w1 * e0)
+        h0 = i00 * w0 + i01 * w1 + i02 * w2
+        h1 = i01 * w0 + i11 * w1 + i12 * w2
+        h2 = i02 * w0 + i12 * w1 + i22 * w2
+        f[0, k], f[1, k], f[2, k] = fx, fy, fz
+        f[3, k] = i00 * dw0 + i01 * dw1 + i02 * dw2 + w1 * h2 - w2 * h1 + cc1 * fz - cc2 * fy
+        f[4, k] = i01 * dw0 + i11 * dw1 + i12 * dw2 + w2 * h0 - w0 * h2 + cc2 * fx - cc0 * fz
+        f[5, k] = i02 * dw0 + i12 * dw1 + i22 * dw2 + w0 * h1 - w1 * h0 + cc0 * fy - cc1 * fx
+        f[6, k], f[7, k], f[8, k] = w0, w1, w2
+        f[9, k], f[10, k], f[11, k] = dw0, dw1, dw2
+        f[12, k], f[13, k], f[14, k] = a0, a1, a2
+
+
+@_vector_kernel
+def _motion_to_placed(parent, place, nb, into):
+    """Rows 6-14 of into: the three vectors in rows 6-14 of parent turned by place^T (from the
+    parent's frame into a joint's frame before it turns; a separate pass, so the common loop
+    of :func:`_rnea_link` holds no branch)."""
+    for k in range(nb):
+        for v in range(6, 15, 3):
+            x0, x1, x2 = parent[v, k], parent[v + 1, k], parent[v + 2, k]
+            into[v, k] = place[0, 0] * x0 + place[1, 0] * x1 + place[2, 0] * x2
+            into[v + 1, k] = place[0, 1] * x0 + place[1, 1] * x1 + place[2, 1] * x2
+            into[v + 2, k] = place[0, 2] * x0 + place[1, 2] * x1 + place[2, 2] * x2
+
+
+@_view_kernel
+def _turn(r, x0, x1, x2):
+    """r x for a constant 3 x 3 rotation r."""
+    return (r[0, 0] * x0 + r[0, 1] * x1 + r[0, 2] * x2, r[1, 0] * x0 + r[1, 1] * x1
+            + r[1, 2] * x2, r[2, 0] * x0 + r[2, 1] * x1 + r[2, 2] * x2)
+
+
+@_vector_kernel
+def _force_to_parent(child, turn, nb, offset, base, into, axial):
+    """into = base + the force and moment about its joint origin of rows 0-5 of ``child`` (the
+    child's frame) moved to the parent's joint origin, in the child's joint frame before it
+    turns (the parent's frame unless the joint is ``turned``, see :func:`_force_turned`);
+    axial = its moment about z (row 5 of into)."""
+    d0, d1, d2 = offset[0], offset[1], offset[2]
+    cos_q, sin_q = turn[0], turn[1]
+    for k in range(nb):
+        c, s = cos_q[k], sin_q[k]
+        f0, f1, f2 = child[0, k], child[1, k], child[2, k]
+        n0, n1, n2 = child[3, k], child[4, k], child[5, k]
+        g0, g1, g2 = c * f0 - s * f1, s * f0 + c * f1, f2
+        e0 = c * n0 - s * n1 + d1 * g2 - d2 * g1
+        e1 = s * n0 + c * n1 + d2 * g0 - d0 * g2
+        e2 = n2 + d0 * g1 - d1 * g0
+        _add_force(base, k, g0, g1, g2, e0, e1, e2, into, axial)
+
+
+@_vector_kernel
+def _force_turned(moved, place, nb, base, into, axial):
+    """into = base + rows 0-5 of ``moved`` (force and moment) turned by the constant ``place``;
+    axial = row 5 of into. A pass of its own, so the loops of the common case hold no branch."""
+    for k in range(nb):
+        f0, f1, f2 = _turn(place, moved[0, k], moved[1, k], moved[2, k])
+        n0, n1, n2 = _turn(place, moved[3, k], moved[4, k], moved[5, k])
+        _add_force(base, k, f0, f1, f2, n0, n1, n2, into, axial)
+
+
+@_view_kernel
+def _add_force(base, k, f0, f1, f2, n0, n1, n2, into, axial):
+    """Column k of into = base + (force f, moment n); axial[k] = the moment's z."""
+    into[0, k], into[1, k], into[2, k] = base[0, k] + f0, base[1, k] + f1, base[2, k] + f2
+    into[3, k], into[4, k] = base[3, k] + n0, base[4, k] + n1
+    moment = base[5, k] + n2
+    into[5, k] = moment
+    axial[k] = moment
+
+
+@_view_kernel
+def _block_rnea(dq, ddq, s0, nb, gravity_on, rot, place, offset, turned, mass, com, inertia,
+                gravity, sa, fm, sb, zero_rows, tau):
     """tau[i, k] = inverse dynamics of scenarios s0 + k at (rot, dq, ddq); sa, sb (15, B) and
-    fm (n, 15, B) scratch.
-
-    fm[i] holds link i's force and moment about its joint origin (rows 0-5) and its angular
-    velocity, angular acceleration and the acceleration of its origin (rows 6-14), frame i."""
+    fm (n, 15, B) scratch, zero_rows (6, B) zeros: fm[i] holds link i's force and moment about
+    its joint origin (rows 0-5, then with the links after it) and its angular velocity, angular
+    acceleration and the acceleration of its origin (rows 6-14), frame i."""
     n = dq.shape[0]
     g0, g1, g2 = (-gravity[0], -gravity[1], -gravity[2]) if gravity_on else (0.0, 0.0, 0.0)
-    for c in range(6):
+    for c in range(6, 12):
         sa[c, :nb] = 0.0
-    sa[6, :nb], sa[7, :nb], sa[8, :nb] = g0, g1, g2
+    sa[12, :nb], sa[13, :nb], sa[14, :nb] = g0, g1, g2
     for i in range(n):
-        p0, p1, p2 = pos[i, 0], pos[i, 1], pos[i, 2]
-        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        m = mass[i]
-        cc0, cc1, cc2 = com[i, 0], com[i, 1], com[i, 2]
-        i00, i01, i02 = inertia[i, 0, 0], inertia[i, 0, 1], inertia[i, 0, 2]
-        i11, i12, i22 = inertia[i, 1, 1], inertia[i, 1, 2], inertia[i, 2, 2]
-        r = rot[i]
-        f = fm[i]
-        dqi = dq[i, s0:s0 + nb]
-        ddqi = ddq[i, s0:s0 + nb]
-        for k in range(nb):
-            w0, w1, w2 = sa[0, k], sa[1, k], sa[2, k]
-            dw0, dw1, dw2 = sa[3, k], sa[4, k], sa[5, k]
-            a0, a1, a2 = sa[6, k], sa[7, k], sa[8, k]
-            # parent's point at the joint origin
-            e0 = w1 * p2 - w2 * p1
-            e1 = w2 * p0 - w0 * p2
-            e2 = w0 * p1 - w1 * p0
-            b0 = a0 + dw1 * p2 - dw2 * p1 + w1 * e2 - w2 * e1
-            b1 = a1 + dw2 * p0 - dw0 * p2 + w2 * e0 - w0 * e2
-            b2 = a2 + dw0 * p1 - dw1 * p0 + w0 * e1 - w1 * e0
-            r00, r01, r02 = r[0, k], r[1, k], r[2, k]
-            r10, r11, r12 = r[3, k], r[4, k], r[5, k]
-            r20, r21, r22 = r[6, k], r[7, k], r[8, k]
-            a0 = r00 * b0 + r10 * b1 + r20 * b2
-            a1 = r01 * b0 + r11 * b1 + r21 * b2
-            a2 = r02 * b0 + r12 * b1 + r22 * b2
-            u0 = r00 * w0 + r10 * w1 + r20 * w2
-            u1 = r01 * w0 + r11 * w1 + r21 * w2
-            u2 = r02 * w0 + r12 * w1 + r22 * w2
-            v0 = r00 * dw0 + r10 * dw1 + r20 * dw2
-            v1 = r01 * dw0 + r11 * dw1 + r21 * dw2
-            v2 = r02 * dw0 + r12 * dw1 + r22 * dw2
-            qd = dqi[k]
-            qdd = ddqi[k]
-            x0 = (u1 * k2 - u2 * k1) * qd
-            x1 = (u2 * k0 - u0 * k2) * qd
-            x2 = (u0 * k1 - u1 * k0) * qd
-            w0, w1, w2 = u0 + k0 * qd, u1 + k1 * qd, u2 + k2 * qd
-            dw0, dw1, dw2 = v0 + k0 * qdd + x0, v1 + k1 * qdd + x1, v2 + k2 * qdd + x2
-            e0 = w1 * cc2 - w2 * cc1
-            e1 = w2 * cc0 - w0 * cc2
-            e2 = w0 * cc1 - w1 * cc0
-            fx = m * (a0 + dw1 * cc2 - dw2 * cc1 + w1 * e2 - w2 * e1)
-            fy = m * (a1 + dw2 * cc0 - dw0 * cc2 + w2 * e0 - w0 * e2)
-            fz = m * (a2 + dw0 * cc1 - dw1 * cc0 + w0 * e1 - w1 * e0)
-            h0 = i00 * w0 + i01 * w1 + i02 * w2
-            h1 = i01 * w0 + i11 * w1 + i12 * w2
-            h2 = i02 * w0 + i12 * w1 + i22 * w2
-            f[0, k], f[1, k], f[2, k] = fx, fy, fz
-            f[3, k] = (i00 * dw0 + i01 * dw1 + i02 * dw2 + w1 * h2 - w2 * h1
-                       + cc1 * fz - cc2 * fy)
-            f[4, k] = (i01 * dw0 + i11 * dw1 + i12 * dw2 + w2 * h0 - w0 * h2
-                       + cc2 * fx - cc0 * fz)
-            f[5, k] = (i02 * dw0 + i12 * dw1 + i22 * dw2 + w0 * h1 - w1 * h0
-                       + cc0 * fy - cc1 * fx)
-            f[6, k], f[7, k], f[8, k] = w0, w1, w2
-            f[9, k], f[10, k], f[11, k] = dw0, dw1, dw2
-            f[12, k], f[13, k], f[14, k] = a0, a1, a2
-        _copy_rows(f, 6, sa, 9, nb)
-    # sb: force and moment of the links i + 1.. on link i, frame i + 1
-    for i in range(n - 1, -1, -1):
-        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        f = fm[i]
-        if i + 1 < n:
-            r = rot[i + 1]
-            p0, p1, p2 = pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2]
-            for k in range(nb):
-                cf0, cf1, cf2 = sb[0, k], sb[1, k], sb[2, k]
-                cn0, cn1, cn2 = sb[3, k], sb[4, k], sb[5, k]
-                f0 = r[0, k] * cf0 + r[1, k] * cf1 + r[2, k] * cf2
-                f1 = r[3, k] * cf0 + r[4, k] * cf1 + r[5, k] * cf2
-                f2 = r[6, k] * cf0 + r[7, k] * cf1 + r[8, k] * cf2
-                sa[0, k] = f[0, k] + f0
-                sa[1, k] = f[1, k] + f1
-                sa[2, k] = f[2, k] + f2
-                sa[3, k] = f[3, k] + (r[0, k] * cn0 + r[1, k] * cn1 + r[2, k] * cn2
-                                      + p1 * f2 - p2 * f1)
-                sa[4, k] = f[4, k] + (r[3, k] * cn0 + r[4, k] * cn1 + r[5, k] * cn2
-                                      + p2 * f0 - p0 * f2)
-                sa[5, k] = f[5, k] + (r[6, k] * cn0 + r[7, k] * cn1 + r[8, k] * cn2
-                                      + p0 * f1 - p1 * f0)
+        parent = sa if i == 0 else fm[i - 1]
+        if turned[i]:
+            _motion_to_placed(parent, place[i], nb, sb)
+            parent = sb
+        _rnea_link(parent, rot[i], dq[i, s0:s0 + nb], ddq[i, s0:s0 + nb], nb, offset[i],
+                   mass[i], com[i], inertia[i], fm[i])
+    # the links i + 1.. pull on link i: their sum goes back and forth between two arrays
+    child, spare = fm[n - 1], sa
+    for k in range(nb):
+        tau[n - 1, k] = child[5, k]
+    for i in range(n - 2, -1, -1):
+        if turned[i + 1]:
+            _force_to_parent(child, rot[i + 1], nb, offset[i + 1], zero_rows, spare, tau[i])
+            _force_turned(spare, place[i + 1], nb, fm[i], child, tau[i])
         else:
-            _copy_rows(f, 0, sa, 6, nb)
-        ti = tau[i]
-        for k in range(nb):
-            ti[k] = k0 * sa[3, k] + k1 * sa[4, k] + k2 * sa[5, k]
-        _copy_rows(sa, 0, sb, 6, nb)
+            _force_to_parent(child, rot[i + 1], nb, offset[i + 1], fm[i], spare, tau[i])
+            child, spare = spare, child
 
 
 @_vector_kernel
-def _copy_rows(src, first, dst, count, nb):
-    """dst[c, :nb] = src[first + c, :nb] for c < count."""
-    for c in range(count):
-        row, into = src[first + c], dst[c]
-        for k in range(nb):
-            into[k] = row[k]
+def _composite_to_parent(child, turn, nb, offset, link, into):
+    """into = link + the composite body ``child`` (rows: mass, first moment, rotational
+    inertia 00, 01, 02, 11, 12, 22 about the child's joint origin, child's frame) carried about
+    the parent's joint origin, in the child's joint frame before it turns (see
+    :func:`_composite_turned`): h' = Rz h, I' = Rz I Rz^T, shifted by
+    m (|d|^2 1 - d d^T) + 2 (d.h') 1 - h' d^T - d h'^T (parallel axes)."""
+    d0, d1, d2 = offset[0], offset[1], offset[2]
+    dd = d0 * d0 + d1 * d1 + d2 * d2
+    cos_q, sin_q = turn[0], turn[1]
+    for k in range(nb):
+        c, s = cos_q[k], sin_q[k]
+        ms, h0, h1, h2 = child[0, k], child[1, k], child[2, k], child[3, k]
+        j00, j01, j02 = child[4, k], child[5, k], child[6, k]
+        j11, j12, j22 = child[7, k], child[8, k], child[9, k]
+        # Rz I Rz^T
+        cc, ss, cs = c * c, s * s, c * s
+        t00 = cc * j00 - 2.0 * cs * j01 + ss * j11
+        t11 = ss * j00 + 2.0 * cs * j01 + cc * j11
+        t01 = cs * (j00 - j11) + (cc - ss) * j01
+        t02, t12 = c * j02 - s * j12, s * j02 + c * j12
+        g0, g1, g2 = c * h0 - s * h1, s * h0 + c * h1, h2
+        dh2 = 2.0 * (d0 * g0 + d1 * g1 + d2 * g2)
+        u00 = t00 + ms * (dd - d0 * d0) + dh2 - 2.0 * g0 * d0
+        u11 = t11 + ms * (dd - d1 * d1) + dh2 - 2.0 * g1 * d1
+        u22 = j22 + ms * (dd - d2 * d2) + dh2 - 2.0 * g2 * d2
+        u01 = t01 - ms * d0 * d1 - g0 * d1 - d0 * g1
+        u02 = t02 - ms * d0 * d2 - g0 * d2 - d0 * g2
+        u12 = t12 - ms * d1 * d2 - g1 * d2 - d1 * g2
+        g0, g1, g2 = g0 + ms * d0, g1 + ms * d1, g2 + ms * d2
+        into[0, k], into[1, k] = link[0] + ms, link[1] + g0
+        into[2, k], into[3, k] = link[2] + g1, link[3] + g2
+        into[4, k], into[5, k], into[6, k] = link[4] + u00, link[5] + u01, link[6] + u02
+        into[7, k], into[8, k], into[9, k] = link[7] + u11, link[8] + u12, link[9] + u22
 
 
 @_vector_kernel
-def _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, sa, sb):
-    """mm[i, j, k] mass matrix of scenarios k < nb; comp (n, 13, B), sa and sb (15, B) scratch.
+def _composite_turned(body, place, nb, link, into):
+    """into = link + the composite ``body`` turned by the constant ``place`` (P h, P I P^T)."""
+    for k in range(nb):
+        g0, g1, g2 = _turn(place, body[1, k], body[2, k], body[3, k])
+        u00, u01, u02 = body[4, k], body[5, k], body[6, k]
+        u11, u12, u22 = body[7, k], body[8, k], body[9, k]
+        x0, x1, x2 = _turn(place, u00, u01, u02)  # P I, column by column
+        y0, y1, y2 = _turn(place, u01, u11, u12)
+        z0, z1, z2 = _turn(place, u02, u12, u22)
+        u00, u01, u02 = _turn(place, x0, y0, z0)  # (P I) P^T, row by row
+        u11, u12 = _turn(place, x1, y1, z1)[1:]
+        u22 = _turn(place, x2, y2, z2)[2]
+        into[0, k], into[1, k] = link[0] + body[0, k], link[1] + g0
+        into[2, k], into[3, k] = link[2] + g1, link[3] + g2
+        into[4, k], into[5, k], into[6, k] = link[4] + u00, link[5] + u01, link[6] + u02
+        into[7, k], into[8, k], into[9, k] = link[7] + u11, link[8] + u12, link[9] + u22
 
-    comp[i] is the composite body of links i.. about joint i's origin in frame i: mass, first
-    moment (3) and rotational inertia (3 x 3, row-major)."""
+
+@_vector_kernel
+def _unit_column(body, nb, into, diagonal):
+    """Force and moment (rows 0-5) the composite ``body`` needs for a unit acceleration of its
+    joint (z), about its joint origin; diagonal = their moment about z."""
+    for k in range(nb):
+        into[0, k], into[1, k], into[2, k] = -body[2, k], body[1, k], 0.0
+        into[3, k], into[4, k], into[5, k] = body[6, k], body[8, k], body[9, k]
+        diagonal[k] = body[9, k]
+
+
+@_vector_kernel
+def _fill_rows(values, nb, into):
+    """into[c, :nb] = values[c]."""
+    for c in range(values.shape[0]):
+        row, value = into[c], values[c]
+        for k in range(nb):
+            row[k] = value
+
+
+@_view_kernel
+def _block_crba(nb, rot, place, offset, turned, links, comp, mm, sa, sb, zero):
+    """Lower triangle mm[i, j, k] (i >= j) of the mass matrix of scenarios k < nb; comp (n, 10,
+    B), sa and sb (15, B) scratch, zero (6, B) zeros; links (n, 10): each link alone as a
+    composite body (see :func:`_composite_to_parent`).
+
+    comp[i] is the composite body of links i.. about joint i's origin in frame i."""
     n = rot.shape[0]
-    for i in range(n - 1, -1, -1):
-        m = mass[i]
-        c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
-        cc = c0 * c0 + c1 * c1 + c2 * c2
-        # link i alone about its joint origin (parallel axes)
-        o00 = inertia[i, 0, 0] + m * (cc - c0 * c0)
-        o11 = inertia[i, 1, 1] + m * (cc - c1 * c1)
-        o22 = inertia[i, 2, 2] + m * (cc - c2 * c2)
-        o01 = inertia[i, 0, 1] - m * c0 * c1
-        o02 = inertia[i, 0, 2] - m * c0 * c2
-        o12 = inertia[i, 1, 2] - m * c1 * c2
-        ci = comp[i]
-        if i == n - 1:
-            ci[0, :nb], ci[1, :nb], ci[2, :nb], ci[3, :nb] = m, m * c0, m * c1, m * c2
-            ci[4, :nb], ci[5, :nb], ci[6, :nb] = o00, o01, o02
-            ci[7, :nb], ci[8, :nb], ci[9, :nb] = o01, o11, o12
-            ci[10, :nb], ci[11, :nb], ci[12, :nb] = o02, o12, o22
+    _fill_rows(links[n - 1], nb, comp[n - 1])
+    for i in range(n - 2, -1, -1):
+        if turned[i + 1]:
+            # zero[0]: a row of zeros as the link, then the turn and the link in a pass
+            _composite_to_parent(comp[i + 1], rot[i + 1], nb, offset[i + 1], zero[0], sb)
+            _composite_turned(sb, place[i + 1], nb, links[i], comp[i])
         else:
-            # add subtree i + 1 (sa) carried into frame i: h' = R h, I' = R I R^T, then shifted
-            # to origin i by m*(|p|^2 1 - p p^T) + 2 (p.h') 1 - h' p^T - p h'^T
-            r = rot[i + 1]
-            p0, p1, p2 = pos[i + 1, 0], pos[i + 1, 1], pos[i + 1, 2]
-            pp = p0 * p0 + p1 * p1 + p2 * p2
-            for k in range(nb):
-                ms, h0, h1, h2 = sa[0, k], sa[1, k], sa[2, k], sa[3, k]
-                r00, r01, r02 = r[0, k], r[1, k], r[2, k]
-                r10, r11, r12 = r[3, k], r[4, k], r[5, k]
-                r20, r21, r22 = r[6, k], r[7, k], r[8, k]
-                g0 = r00 * h0 + r01 * h1 + r02 * h2
-                g1 = r10 * h0 + r11 * h1 + r12 * h2
-                g2 = r20 * h0 + r21 * h1 + r22 * h2
-                ph2 = 2.0 * (p0 * g0 + p1 * g1 + p2 * g2)
-                j00, j01, j02 = sa[4, k], sa[5, k], sa[6, k]
-                j11, j12, j22 = sa[8, k], sa[9, k], sa[12, k]
-                # t = R I (I symmetric), then R I R^T = t R^T
-                t00 = r00 * j00 + r01 * j01 + r02 * j02
-                t01 = r00 * j01 + r01 * j11 + r02 * j12
-                t02 = r00 * j02 + r01 * j12 + r02 * j22
-                t10 = r10 * j00 + r11 * j01 + r12 * j02
-                t11 = r10 * j01 + r11 * j11 + r12 * j12
-                t12 = r10 * j02 + r11 * j12 + r12 * j22
-                t20 = r20 * j00 + r21 * j01 + r22 * j02
-                t21 = r20 * j01 + r21 * j11 + r22 * j12
-                t22 = r20 * j02 + r21 * j12 + r22 * j22
-                u00 = t00 * r00 + t01 * r01 + t02 * r02 + ms * (pp - p0 * p0) + ph2 - 2.0 * g0 * p0
-                u11 = t10 * r10 + t11 * r11 + t12 * r12 + ms * (pp - p1 * p1) + ph2 - 2.0 * g1 * p1
-                u22 = t20 * r20 + t21 * r21 + t22 * r22 + ms * (pp - p2 * p2) + ph2 - 2.0 * g2 * p2
-                u01 = t00 * r10 + t01 * r11 + t02 * r12 - ms * p0 * p1 - g0 * p1 - p0 * g1
-                u02 = t00 * r20 + t01 * r21 + t02 * r22 - ms * p0 * p2 - g0 * p2 - p0 * g2
-                u12 = t10 * r20 + t11 * r21 + t12 * r22 - ms * p1 * p2 - g1 * p2 - p1 * g2
-                ci[0, k] = m + ms
-                ci[1, k] = m * c0 + (ms * p0 + g0)
-                ci[2, k] = m * c1 + (ms * p1 + g1)
-                ci[3, k] = m * c2 + (ms * p2 + g2)
-                ci[4, k], ci[5, k], ci[6, k] = o00 + u00, o01 + u01, o02 + u02
-                ci[7, k], ci[8, k], ci[9, k] = o01 + u01, o11 + u11, o12 + u12
-                ci[10, k], ci[11, k], ci[12, k] = o02 + u02, o12 + u12, o22 + u22
-        _copy_rows(ci, 0, sa, 13, nb)
+            _composite_to_parent(comp[i + 1], rot[i + 1], nb, offset[i + 1], links[i], comp[i])
     for i in range(n):
-        # force and moment (rows 0-5) the unit acceleration of joint i asks of subtree i, and
-        # their projection on the joint's axis (row 6), carried down the chain
-        k0, k1, k2 = axis[i, 0], axis[i, 1], axis[i, 2]
-        ci = comp[i]
-        for k in range(nb):
-            hx, hy, hz = ci[1, k], ci[2, k], ci[3, k]
-            sb[0, k] = k1 * hz - k2 * hy
-            sb[1, k] = k2 * hx - k0 * hz
-            sb[2, k] = k0 * hy - k1 * hx
-            n0 = ci[4, k] * k0 + ci[5, k] * k1 + ci[6, k] * k2
-            n1 = ci[7, k] * k0 + ci[8, k] * k1 + ci[9, k] * k2
-            n2 = ci[10, k] * k0 + ci[11, k] * k1 + ci[12, k] * k2
-            sb[3, k], sb[4, k], sb[5, k] = n0, n1, n2
-            sb[6, k] = k0 * n0 + k1 * n1 + k2 * n2
-        _copy_rows(sb, 6, mm[i, i:i + 1], 1, nb)
-        src, dst = sb, sa
+        # force and moment the unit acceleration of joint i asks of subtree i, carried down
+        # the chain; their moment about each joint's axis is a row of the mass matrix
+        column, spare = sa, sb
+        _unit_column(comp[i], nb, column, mm[i, i])
         for j in range(i - 1, -1, -1):
-            r = rot[j + 1]
-            p0, p1, p2 = pos[j + 1, 0], pos[j + 1, 1], pos[j + 1, 2]
-            a0, a1, a2 = axis[j, 0], axis[j, 1], axis[j, 2]
-            for k in range(nb):
-                f0, f1, f2 = src[0, k], src[1, k], src[2, k]
-                n0, n1, n2 = src[3, k], src[4, k], src[5, k]
-                g0 = r[0, k] * f0 + r[1, k] * f1 + r[2, k] * f2
-                g1 = r[3, k] * f0 + r[4, k] * f1 + r[5, k] * f2
-                g2 = r[6, k] * f0 + r[7, k] * f1 + r[8, k] * f2
-                e0 = r[0, k] * n0 + r[1, k] * n1 + r[2, k] * n2 + p1 * g2 - p2 * g1
-                e1 = r[3, k] * n0 + r[4, k] * n1 + r[5, k] * n2 + p2 * g0 - p0 * g2
-                e2 = r[6, k] * n0 + r[7, k] * n1 + r[8, k] * n2 + p0 * g1 - p1 * g0
-                dst[0, k], dst[1, k], dst[2, k] = g0, g1, g2
-                dst[3, k], dst[4, k], dst[5, k] = e0, e1, e2
-                dst[6, k] = a0 * e0 + a1 * e1 + a2 * e2
-            _copy_rows(dst, 6, mm[i, j:j + 1], 1, nb)
-            _copy_rows(dst, 6, mm[j, i:i + 1], 1, nb)
-            src, dst = dst, src
+            _force_to_parent(column, rot[j + 1], nb, offset[j + 1], zero, spare, mm[i, j])
+            if turned[j + 1]:
+                _force_turned(spare, place[j + 1], nb, zero, column, mm[i, j])
+            else:
+                column, spare = spare, column
 
 
 @_vector_kernel
 def _block_solve(mm, rhs, free, s0, nb, out):
-    """Cholesky solve of mm x = rhs per scenario over its free joints; out[:, s0 + k] = x.
+    """Cholesky solve of mm x = rhs per scenario over its free joints (mm's lower triangle is
+    read and overwritten); out[:, s0 + k] = x.
 
     A held joint (free 0) gets the row and column of the identity and a zero right-hand side,
     as products with free (exact for 0 and 1), so no loop over scenarios branches."""
@@ -364,7 +388,7 @@ def _block_solve(mm, rhs, free, s0, nb, out):
     for i in range(n):
         fi = free[i, s0:s0 + nb]
         ri = rhs[i]
-        for j in range(n):
+        for j in range(i + 1):
             fj = free[j, s0:s0 + nb]
             mij = mm[i, j]
             if i == j:
@@ -413,82 +437,154 @@ def _block_solve(mm, rhs, free, s0, nb, out):
             oi[k] = ri[k]
 
 
-@_kernel
-def _block_forward(q, dq, tau, free, zero, s0, nb, place, pos, axis, mass, com, inertia, gravity,
-                   rot, sa, fm, vec, comp, mm, sb, out):
+@_view_kernel
+def _block_forward(q, dq, tau, free, zero, s0, nb, place, offset, turned, mass, com, inertia,
+                   links, gravity, rot, sa, fm, vec, comp, mm, sb, zero_block, out):
     """out[:, s0 + k] = M^-1 (tau - h) of scenarios s0 + k, k < nb, over their free joints;
     zero is (n, n_scen) zeros, the rest (block-sized) scratch (see :func:`block_workspace`)."""
     n = q.shape[0]
-    _block_rotations(q, s0, nb, place, axis, rot)
-    _block_rnea(dq, zero, s0, nb, True, rot, pos, axis, mass, com, inertia, gravity, sa, fm, sb,
-                vec)
+    _block_rotations(q, s0, nb, rot)
+    _block_rnea(dq, zero, s0, nb, True, rot, place, offset, turned, mass, com, inertia, gravity,
+                sa, fm, sb, zero_block, vec)
     for i in range(n):
         ti, vi = tau[i, s0:s0 + nb], vec[i]
         for k in range(nb):
             vi[k] = ti[k] - vi[k]
-    _block_crba(nb, rot, pos, axis, mass, com, inertia, comp, mm, sa, sb)
+    _block_crba(nb, rot, place, offset, turned, links, comp, mm, sa, sb, zero_block)
     _block_solve(mm, vec, free, s0, nb, out)
 
 
-def block_workspace(n_joints: int, n_scenarios: int) -> tuple[np.ndarray, ...]:
-    """Scratch of :func:`_block_forward` for every block of ``n_scenarios`` (leading axis, so
-    blocks on different threads never share it): rot, sa, fm, vec, comp, mm, sb."""
-    n_blocks = -(-n_scenarios // _BLOCK)
-    return (np.empty((n_blocks, n_joints, 9, _BLOCK)), np.empty((n_blocks, 15, _BLOCK)),
-            np.empty((n_blocks, n_joints, 15, _BLOCK)), np.empty((n_blocks, n_joints, _BLOCK)),
-            np.empty((n_blocks, n_joints, 13, _BLOCK)),
-            np.empty((n_blocks, n_joints, n_joints, _BLOCK)), np.empty((n_blocks, 15, _BLOCK)))
+def block_workspace(n_joints: int, n_scenarios: int, parallel: bool = False
+                    ) -> tuple[np.ndarray, ...]:
+    """Scratch of :func:`_block_forward`: rot, sa, fm, vec, comp, mm, sb, and a block of
+    zeros, each with a leading slot axis. Blocks of ``n_scenarios`` that may run at once
+    (``parallel``) get a slot each, so threads never share one; one after another they all use
+    the one slot (block b uses slot ``b % n_slots``), which stays in cache."""
+    n_slots = -(-n_scenarios // _BLOCK) if parallel else min(n_scenarios, 1)
+    return (np.empty((n_slots, n_joints, 2, _BLOCK)), np.empty((n_slots, 15, _BLOCK)),
+            np.empty((n_slots, n_joints, 15, _BLOCK)), np.empty((n_slots, n_joints, _BLOCK)),
+            np.empty((n_slots, n_joints, 10, _BLOCK)),
+            np.empty((n_slots, n_joints, n_joints, _BLOCK)), np.empty((n_slots, 15, _BLOCK)),
+            np.zeros((n_slots, 6, _BLOCK)))
 
 
-def _forward_blocks(q, dq, tau, free, place, pos, axis, mass, com, inertia, gravity, out):
+def _forward_blocks(q, dq, tau, free, place, offset, turned, mass, com, inertia, links, gravity,
+                    out):
     n, n_scen = q.shape
     zero = np.zeros((n, n_scen))
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
         s0 = b * _BLOCK
-        _block_forward(q, dq, tau, free, zero, s0, min(_BLOCK, n_scen - s0), place, pos, axis,
-                       mass, com, inertia, gravity, np.empty((n, 9, _BLOCK)),
+        _block_forward(q, dq, tau, free, zero, s0, min(_BLOCK, n_scen - s0), place, offset,
+                       turned, mass, com, inertia, links, gravity, np.empty((n, 2, _BLOCK)),
                        np.empty((15, _BLOCK)), np.empty((n, 15, _BLOCK)), np.empty((n, _BLOCK)),
-                       np.empty((n, 13, _BLOCK)), np.empty((n, n, _BLOCK)),
-                       np.empty((15, _BLOCK)), out)
+                       np.empty((n, 10, _BLOCK)), np.empty((n, n, _BLOCK)),
+                       np.empty((15, _BLOCK)), np.zeros((6, _BLOCK)), out)
 
 
-def _inverse_blocks(q, dq, ddq, gravity_on, place, pos, axis, mass, com, inertia, gravity,
-                   out):
+def _inverse_blocks(q, dq, ddq, gravity_on, place, offset, turned, mass, com, inertia, links,
+                    gravity, out):
     n, n_scen = q.shape
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
         s0 = b * _BLOCK
         nb = min(_BLOCK, n_scen - s0)
-        rot = np.empty((n, 9, _BLOCK))
+        rot = np.empty((n, 2, _BLOCK))
         vec = np.empty((n, _BLOCK))
-        _block_rotations(q, s0, nb, place, axis, rot)
-        _block_rnea(dq, ddq, s0, nb, gravity_on, rot, pos, axis, mass, com, inertia, gravity,
-                    np.empty((15, _BLOCK)), np.empty((n, 15, _BLOCK)), np.empty((15, _BLOCK)),
-                    vec)
+        _block_rotations(q, s0, nb, rot)
+        _block_rnea(dq, ddq, s0, nb, gravity_on, rot, place, offset, turned, mass, com, inertia,
+                    gravity, np.empty((15, _BLOCK)), np.empty((n, 15, _BLOCK)),
+                    np.empty((15, _BLOCK)), np.zeros((6, _BLOCK)), vec)
         for i in range(n):
             for k in range(nb):
                 out[i, _lane(s0, k)] = vec[i, k]
 
 
-def _mass_blocks(q, place, pos, axis, mass, com, inertia, out):
+def _mass_blocks(q, place, offset, turned, mass, com, inertia, links, gravity, out):
     n, n_scen = q.shape
     for b in numba.prange((n_scen + _BLOCK - 1) // _BLOCK):
         s0 = b * _BLOCK
         nb = min(_BLOCK, n_scen - s0)
-        rot = np.empty((n, 9, _BLOCK))
+        rot = np.empty((n, 2, _BLOCK))
         mm = np.empty((n, n, _BLOCK))
-        _block_rotations(q, s0, nb, place, axis, rot)
-        _block_crba(nb, rot, pos, axis, mass, com, inertia, np.empty((n, 13, _BLOCK)), mm,
-                    np.empty((15, _BLOCK)), np.empty((15, _BLOCK)))
+        _block_rotations(q, s0, nb, rot)
+        _block_crba(nb, rot, place, offset, turned, links, np.empty((n, 10, _BLOCK)), mm,
+                    np.empty((15, _BLOCK)), np.empty((15, _BLOCK)), np.zeros((6, _BLOCK)))
         for k in range(nb):
             for i in range(n):
                 for j in range(n):
-                    out[_lane(s0, k), i, j] = mm[i, j, k]
+                    out[_lane(s0, k), i, j] = mm[max(i, j), min(i, j), k]
 
 
 # Serial builds by default: campaigns already run one process per core, and GNU OpenMP (numba's
 # threading layer here) aborts a process forked after it started, as campaign workers are.
 _SERIAL = tuple(_kernel(f) for f in (_forward_blocks, _inverse_blocks, _mass_blocks))
 _PARALLEL = tuple(_parallel_kernel(f) for f in (_forward_blocks, _inverse_blocks, _mass_blocks))
+
+
+def _frame_about(axis: np.ndarray) -> np.ndarray:
+    """A rotation whose third column is the unit vector ``axis``."""
+    helper = np.array([0.0, 1.0, 0.0]) if abs(axis[0]) > 0.9 else np.array([1.0, 0.0, 0.0])
+    first = helper - (helper @ axis) * axis
+    first /= np.linalg.norm(first)
+    return np.column_stack([first, np.cross(axis, first), axis])
+
+
+def z_axis_model(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, mass: np.ndarray,
+                 com: np.ndarray, inertia: np.ndarray, gravity: np.ndarray
+                 ) -> tuple[np.ndarray, ...]:
+    """The chain in joint frames turned by constant rotations so every joint turns about z.
+
+    Parameters
+    ----------
+    place, pos, axis, mass, com, inertia, gravity : the chain as :class:`ChainKernel` holds it
+        (``(n, 3, 3)``, ``(n, 3)`` m, ``(n, 3)``, ``(n,)`` kg, ``(n, 3)`` m, ``(n, 3, 3)``
+        kg*m^2, ``(3,)`` m/s^2)
+
+    Returns
+    -------
+    place : (n, 3, 3); the constant rotation of joint frame i at zero angle in frame i - 1
+    offset : (n, 3) m; joint i's origin from joint i - 1's, in joint i's frame at zero angle
+    turned : (n,) bool; place is not the identity
+    mass, com, inertia : the links in their turned frames
+    links : (n, 10); each link alone as a composite body about its joint origin: mass, first
+        moment (3), rotational inertia 00, 01, 02, 11, 12, 22 (parallel axes)
+    gravity : (3,) m/s^2 in the turned base frame
+
+    Notes
+    -----
+    Frame i' = frame i turned by C_i, whose third column is joint i's axis, so that
+    Rot(axis_i, q) C_i = C_i Rz(q); joint i' sits in frame (i-1)' turned by
+    C_{i-1}^T P_i C_i. C_i = P_i^T C_{i-1} when that already has the axis as third column
+    (parallel joints: the placement becomes the identity), and the base frame is turned by
+    P_0 C_0, so the first joint's placement is the identity too. Vectors move as x = C x',
+    inertias as I = C I' C^T (common practice).
+    """
+    n = len(mass)
+    new_place = np.empty((n, 3, 3))
+    offset = np.empty((n, 3))
+    turned = np.zeros(n, dtype=bool)
+    new_com, new_inertia = np.empty((n, 3)), np.empty((n, 3, 3))
+    links = np.empty((n, 10))
+    frame = _frame_about(axis[0])
+    parent = place[0] @ frame  # the turned base frame
+    base = parent
+    for i in range(n):
+        follow = place[i].T @ parent
+        if i > 0 and not np.allclose(follow[:, 2], axis[i], rtol=0.0, atol=1e-12):
+            frame = _frame_about(axis[i])
+            new_place[i] = parent.T @ place[i] @ frame
+            turned[i] = True
+        else:
+            frame = follow if i > 0 else frame
+            new_place[i] = np.eye(3)
+        offset[i] = new_place[i].T @ (parent.T @ pos[i])
+        c = frame.T @ com[i]
+        rotated = frame.T @ inertia[i] @ frame
+        new_com[i], new_inertia[i] = c, rotated
+        about_origin = rotated + mass[i] * ((c @ c) * np.eye(3) - np.outer(c, c))
+        links[i] = (mass[i], *(mass[i] * c), *about_origin[np.triu_indices(3)])
+        parent = frame
+    return (new_place, offset, turned, mass.copy(), new_com, new_inertia, links,
+            base.T @ gravity)
 
 
 class ChainKernel:
@@ -516,12 +612,12 @@ class ChainKernel:
              [b.inertia[1], b.inertia[3], b.inertia[4]],
              [b.inertia[2], b.inertia[4], b.inertia[5]]] for b in bodies])
         self._gravity = np.array(chain.gravity, dtype=float)
-        self._model = (self._place, self._pos, self._axis, self._mass, self._com,
-                       self._inertia)
-        self.model = (*self._model, self._gravity)  # the arrays the compiled step reads
+        # the arrays the compiled kernels and step read (see z_axis_model)
+        self.model = z_axis_model(self._place, self._pos, self._axis, self._mass, self._com,
+                                  self._inertia, self._gravity)
         rest = np.zeros((self.n_joints, 1))
         heights = np.empty_like(rest)
-        _chain_energies(rest, rest, *self.model, np.zeros(self.n_joints), np.empty_like(rest),
+        _chain_energies(rest, rest, self.model, np.zeros(self.n_joints), np.empty_like(rest),
                         heights)
         self._rest_heights = heights[:, 0]
 
@@ -531,7 +627,7 @@ class ChainKernel:
 
         q (rad), dq (rad/s), tau (N*m), free (1 free, 0 locked), out: ``(n_joints, n_scen)``.
         """
-        self._kernels[0](q, dq, tau, free, *self._model, self._gravity, out)
+        self._kernels[0](q, dq, tau, free, *self.model, out)
 
     def inverse(self, q: np.ndarray, dq: np.ndarray, ddq: np.ndarray,
                 gravity: bool = True) -> np.ndarray:
@@ -539,14 +635,14 @@ class ChainKernel:
         for ``(n_joints, n_scen)`` arrays."""
         q, dq, ddq = (np.ascontiguousarray(x, dtype=float) for x in (q, dq, ddq))
         out = np.empty_like(q)
-        self._kernels[1](q, dq, ddq, gravity, *self._model, self._gravity, out)
+        self._kernels[1](q, dq, ddq, gravity, *self.model, out)
         return out
 
     def mass_matrix(self, q: np.ndarray) -> np.ndarray:
         """Mass matrices ``(n_scen, n_joints, n_joints)``, kg*m^2, at ``(n_joints, n_scen)`` q."""
         q = np.ascontiguousarray(q, dtype=float)
         out = np.zeros((q.shape[1], self.n_joints, self.n_joints))
-        self._kernels[2](q, *self._model, out)
+        self._kernels[2](q, *self.model, out)
         return out
 
     def kinetic_split(self, q: np.ndarray, dq: np.ndarray) -> np.ndarray:
@@ -560,7 +656,7 @@ class ChainKernel:
         ``-m_i g . (c_i(q) - c_i(0))`` of the link each joint moves, J; all ``(n_joints,
         n_scen)`` contiguous. Each sums over joints to the arm's energy (zero potential at
         q = 0)."""
-        _chain_energies(q, dq, *self.model, self._rest_heights, kinetic, potential)
+        _chain_energies(q, dq, self.model, self._rest_heights, kinetic, potential)
 
 
 @_kernel
@@ -611,26 +707,48 @@ def _frames(q, place, pos, axis, origins, rots):
 _inverse_serial = _SERIAL[1]
 
 
-@_kernel
-def _chain_energies(q, dq, place, pos, axis, mass, com, inertia, gravity, rest, kinetic,
-                    potential):
-    """See :meth:`ChainKernel.energies`; ``rest`` (n,) the links' heights term at q = 0."""
+@_vector_kernel
+def _link_heights(q, place, offset, turned, mass, com, gravity, rest, g0, g1, g2, height,
+                  potential):
+    """potential[i, s] = -m_i g . c_i(q) - rest[i] for each link's centre of mass c_i, in the
+    frames of :func:`z_axis_model`; g0, g1, g2, height (n_scen,) scratch: gravity in the
+    current joint's frame and its product with that joint's origin."""
     n, n_scen = q.shape
-    _inverse_serial(q, np.zeros((n, n_scen)), dq, False, place, pos, axis, mass, com, inertia,
-                    gravity, kinetic)
-    origins = np.empty((n, n_scen, 3))
-    rots = np.empty((n, n_scen, 3, 3))
-    _frames(q, place, pos, axis, origins, rots)
-    g0, g1, g2 = gravity[0], gravity[1], gravity[2]
+    g0[:], g1[:], g2[:], height[:] = gravity[0], gravity[1], gravity[2], 0.0
     for i in range(n):
+        if turned[i]:
+            r = place[i]
+            for s in range(n_scen):
+                g0[s], g1[s], g2[s] = (
+                    r[0, 0] * g0[s] + r[1, 0] * g1[s] + r[2, 0] * g2[s],
+                    r[0, 1] * g0[s] + r[1, 1] * g1[s] + r[2, 1] * g2[s],
+                    r[0, 2] * g0[s] + r[1, 2] * g1[s] + r[2, 2] * g2[s])
+        d0, d1, d2 = offset[i, 0], offset[i, 1], offset[i, 2]
         c0, c1, c2 = com[i, 0], com[i, 1], com[i, 2]
+        m, base = mass[i], rest[i]
+        qi, out = q[i], potential[i]
+        for s in range(n_scen):
+            h = height[s] + g0[s] * d0 + g1[s] * d1 + g2[s] * d2
+            height[s] = h
+            sine, cosine = _sincos(qi[s])
+            x0, x1, x2 = g0[s], g1[s], g2[s]
+            x0, x1 = cosine * x0 + sine * x1, cosine * x1 - sine * x0
+            g0[s], g1[s] = x0, x1
+            out[s] = -m * (h + x0 * c0 + x1 * c1 + x2 * c2) - base
+
+
+@_kernel
+def _chain_energies(q, dq, model, rest, kinetic, potential):
+    """See :meth:`ChainKernel.energies`; ``model`` the kernels' arrays (:func:`z_axis_model`),
+    ``rest`` (n,) the links' heights term at q = 0."""
+    n, n_scen = q.shape
+    _inverse_serial(q, np.zeros((n, n_scen)), dq, False, *model, kinetic)
+    for i in range(n):
         for s in range(n_scen):
             kinetic[i, s] = 0.5 * dq[i, s] * kinetic[i, s]
-            o, r = origins[i, s], rots[i, s]
-            x = o[0] + (r[0, 0] * c0 + r[0, 1] * c1 + r[0, 2] * c2)
-            y = o[1] + (r[1, 0] * c0 + r[1, 1] * c1 + r[1, 2] * c2)
-            z = o[2] + (r[2, 0] * c0 + r[2, 1] * c1 + r[2, 2] * c2)
-            potential[i, s] = -mass[i] * (x * g0 + y * g1 + z * g2) - rest[i]
+    place, offset, turned, mass, com, _, _, gravity = model
+    _link_heights(q, place, offset, turned, mass, com, gravity, rest, np.empty(n_scen),
+                  np.empty(n_scen), np.empty(n_scen), np.empty(n_scen), potential)
 
 
 def link_frames(place: np.ndarray, pos: np.ndarray, axis: np.ndarray, q: np.ndarray

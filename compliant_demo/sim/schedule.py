@@ -32,6 +32,8 @@ __all__ = ["TorqueTerm", "WallSpec", "CompiledSchedules", "compile_schedules", "
 
 # stage times of one step as fractions of the step, shared by all methods (RK4 needs all three)
 STAGE_OFFSETS = np.array([0.0, 0.5, 1.0])
+_PROFILE_STEPS = 2048  # steps of a term's torques evaluated at once (see CompiledSchedules)
+_NO_VALUES = np.zeros((0, len(STAGE_OFFSETS)))
 
 
 @dataclass(frozen=True)
@@ -90,6 +92,11 @@ class CompiledSchedules:
     # [start, stop) of every term, for picking those a chunk overlaps
     _spans: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64),
                                repr=False, compare=False)
+    # a term's torques (steps, stages) from its first step in a chunk over up to
+    # _PROFILE_STEPS steps (a term may last indefinitely), kept until a chunk goes past them
+    # or the term ends: its profile is evaluated once for several chunks
+    _profiles: dict[int, tuple[int, np.ndarray]] = field(default_factory=dict, repr=False,
+                                                         compare=False)
 
     def starts_at_or_after(self, step: int) -> list[str]:
         """Names ``schedules[s].perturbations[i]`` of those starting at or after ``step``."""
@@ -122,11 +129,19 @@ class CompiledSchedules:
                                    dtype=np.int64).reshape(-1, 2)
         touched = False
         overlapping = (self._spans[:, 0] < last) & (self._spans[:, 1] > first_step)
-        for index in np.flatnonzero(overlapping):
+        for index in np.flatnonzero(overlapping).tolist():
             term = self.terms[index]
             a, b = max(term.start, first_step), min(term.stop, last)
-            t = (np.arange(a, b)[:, None] - term.start + STAGE_OFFSETS) * self.dt
-            out[a - first_step : b - first_step, :, term.joint, term.scenario] += term.profile(t)
+            first, values = self._profiles.get(index, (a, _NO_VALUES))
+            if not first <= a <= b <= first + len(values):
+                first, end = a, min(term.stop, a + max(b - a, _PROFILE_STEPS))
+                t = (np.arange(first, end)[:, None] - term.start + STAGE_OFFSETS) * self.dt
+                values = term.profile(t)
+                self._profiles[index] = (first, values)
+            out[a - first_step : b - first_step, :, term.joint, term.scenario] += (
+                values[a - first : b - first])
+            if b == term.stop:
+                del self._profiles[index]
             touched = True
         return touched
 

@@ -21,9 +21,10 @@ import numpy as np
 
 from compliant_demo.sim.rigid_body import (
     _block_forward,
-    _DistinctArgumentsCompiler,
+    _DistinctUncountedCompiler,
     _lane,
     _sincos,
+    _UncountedCompiler,
 )
 
 __all__ = [
@@ -59,9 +60,10 @@ _EXPM1_TAYLOR = tuple(1.0 / math.factorial(n) for n in range(13, 1, -1))
 _TANH_SATURATED = 20.0  # tanh(20) rounds to 1.0 in double precision
 _compiled = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True)
 _parallel = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True, parallel=True)
-# the batch's arrays never overlap: declared so (see rigid_body), the scenario loops vectorise
+# the batch's arrays never overlap: declared so, and without reference counting (the kernels
+# allocate nothing; see rigid_body)
 _distinct = numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
-                       pipeline_class=_DistinctArgumentsCompiler)
+                       pipeline_class=_DistinctUncountedCompiler)
 
 
 @_compiled
@@ -125,34 +127,34 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
             target = tg[2, j, s0:e0]
             for k in range(nb):
                 spring[k] = act0[k] * (target[k] - q[k])
-            for k in range(nb):
                 damping[k] = -(act1[k] * dq[k])
         else:
             for k in range(nb):
                 # t(p1) - t(p2) = (p1 - p2) * (k1 + k2*(p1 + p2)) for t(p) = k1*p + k2*p^2
                 p1, p2 = max(act0[k] - q[k], 0.0), max(q[k] - act1[k], 0.0)
                 spring[k] = ((p1 + p2) * k2 + k1) * (p1 - p2)
-            damping[:] = 0.0
-        for k in range(nb):
-            passive[k] = neg_viscous * dq[k] + damping[k]
-        f[0, j, s0:e0] = dq
+                damping[k] = 0.0
         target0, target1 = tg[0, j, s0:e0], tg[1, j, s0:e0]
-        rate_0, rate_1 = f[2, j, s0:e0], f[3, j, s0:e0]
+        angle_rate, rate_0, rate_1 = f[0, j, s0:e0], f[2, j, s0:e0], f[3, j, s0:e0]
+        lower, upper = prm[_LOWER, j], prm[_UPPER, j]
+        k_stop, b_stop = prm[_K_STOP, j], prm[_B_STOP, j]
+        # everything else but friction and perturbations in one pass
         for k in range(nb):
+            qk, dqk = q[k], dq[k]
+            passive[k] = (neg_viscous * dqk + damping[k]
+                          + (contact_force(lower - qk, -dqk, k_stop, b_stop)
+                             - contact_force(qk - upper, dqk, k_stop, b_stop)))
+            angle_rate[k] = dqk
             rate_0[k] = min(max((target0[k] - act0[k]) * inv_tc0, -rate0), rate0)
-        for k in range(nb):
             rate_1[k] = min(max((target1[k] - act1[k]) * inv_tc1, -rate1), rate1)
         neg_coulomb, inv_smoothing = prm[_NEG_COULOMB, j], prm[_INV_SMOOTHING, j]
         if neg_coulomb != 0.0:  # only on joints that have friction
             for k in range(nb):
                 passive[k] += neg_coulomb * _tanh(dq[k] * inv_smoothing)
-        lower, upper = prm[_LOWER, j], prm[_UPPER, j]
-        k_stop, b_stop = prm[_K_STOP, j], prm[_B_STOP, j]
-        for k in range(nb):
-            passive[k] += (contact_force(lower - q[k], -dq[k], k_stop, b_stop)
-                           - contact_force(q[k] - upper, dq[k], k_stop, b_stop))
         if has_ext:
-            external[:] = ext[e, j, s0:e0]
+            given = ext[e, j, s0:e0]
+            for k in range(nb):
+                external[k] = given[k]
         else:
             external[:] = 0.0
         for layer in range(walls.shape[1]):
@@ -179,8 +181,10 @@ def _block_rhs(s0, nb, b, x, tg, ext, e, has_ext, prm, walls, kind, coupled, fre
             for k in range(nb):
                 accel[k] = (accel[k] + gravity[k]) * scale[k]
     if coupled:
-        _block_forward(x[0], x[1], f[1], free, zero, s0, nb, *model, ws[0][b], ws[1][b],
-                       ws[2][b], ws[3][b], ws[4][b], ws[5][b], ws[6][b], f[1])
+        slot = b % ws[1].shape[0]  # see rigid_body.block_workspace
+        _block_forward(x[0], x[1], f[1], free, zero, s0, nb, *model, ws[0][slot], ws[1][slot],
+                       ws[2][slot], ws[3][slot], ws[4][slot], ws[5][slot], ws[6][slot],
+                       ws[7][slot], f[1])
 
 
 def _rhs_blocks(x, tg, ext, has_ext, prm, walls, kind, coupled, free, accel_scale, model, ws,
@@ -233,9 +237,9 @@ def _step_blocks(method, h, y, tg, ext, has_ext, prm, walls, kind, coupled, free
                                       stages[2, r, j, s0:e0], stages[3, r, j, s0:e0])
                     increment, state = acc[r, j, s0:e0], y[r, j, s0:e0]
                     for k in range(nb):
-                        increment[k] = ((k2[k] + k3[k]) * 2.0 + k1[k] + k4[k]) * sixth
-                    for k in range(nb):
-                        state[k] += increment[k]
+                        change = ((k2[k] + k3[k]) * 2.0 + k1[k] + k4[k]) * sixth
+                        increment[k] = change
+                        state[k] += change
         else:
             for r in range(n_rows):
                 for j in range(n_j):
@@ -276,7 +280,8 @@ _step_serial = _distinct(_step_blocks)
 _step_parallel = _parallel(_step_blocks)
 
 
-@_compiled
+@numba.njit(cache=True, nogil=True, error_model="numpy", fastmath=True,
+            pipeline_class=_UncountedCompiler)
 def _steps_serial(method, h, y, tg, ext, has_ext, c0, c1, prm, walls, kind, coupled, free,
                   accel_scale, model, ws, zero, stages, ys, acc, torques, mech, grav, deflection,
                   injection):
