@@ -11,7 +11,10 @@ chain, compiled kernel) on one numba thread, times a per-scenario RK4 loop calli
 ``aba`` at every stage on a sample of those scenarios (torques and walls only: that loop has no
 impulses or holds), runs a seven-joint example arm, checks accelerations against ``pin.aba``,
 and times the coupled batch split over two worker processes forked as the campaign's pool
-forks them (each half on one thread) against the whole batch in one process. CPU times come
+forks them (each half on one thread) against the whole batch in one process; beside it,
+``machine_scaling_2_cores``: the same split of a pure-Python CPU loop, what the machine's two
+cores give at that moment (a virtual machine whose second core is shared gives less than 2,
+and the batch cannot scale better). CPU times come
 from ``time.process_time``; the machine is shared, so the load average is reported beside them.
 One JSON object per line; the last line is ``{"bench": "sim", ...}``.
 """
@@ -171,7 +174,8 @@ def _pool_half(bounds: tuple[int, int]) -> float:
 def two_process_wall(plant, equilibrium: np.ndarray, stiffness: np.ndarray,
                      schedules: list) -> float:
     """Wall time of the batch split in two halves over two forked worker processes, s (best of
-    two; the workers load the compiled kernels on a short warm-up batch first)."""
+    REPEATS, as the one-process time it is compared with; the workers load the compiled kernels
+    on a short warm-up batch first)."""
     _POOL_JOB.update(plant=plant, equilibrium=equilibrium, stiffness=stiffness,
                      schedules=schedules)
     half = len(schedules) // 2
@@ -179,11 +183,39 @@ def two_process_wall(plant, equilibrium: np.ndarray, stiffness: np.ndarray,
                                 mp_context=multiprocessing.get_context("fork")) as pool:
         list(pool.map(_pool_half, [(0, 2), (2, 4)]))
         walls = []
-        for _ in range(2):
+        for _ in range(REPEATS):
             start = time.perf_counter()
             list(pool.map(_pool_half, [(0, half), (half, len(schedules))]))
             walls.append(time.perf_counter() - start)
     return min(walls)
+
+
+def _spin(count: int) -> int:
+    """Pure-Python integer work: CPU only, no memory traffic to speak of."""
+    total = 0
+    for i in range(count):
+        total += i * i
+    return total
+
+
+def machine_scaling(count: int = 5_000_000) -> float:
+    """What two cores of this machine give now: ``_spin`` twice in this process against once in
+    each of two forked workers, wall times, best of REPEATS each (the ceiling of
+    ``parallel_scaling_2_cores`` at that moment; a shared or virtual machine gives less than
+    2)."""
+    one, two = [], []
+    with cf.ProcessPoolExecutor(max_workers=2,
+                                mp_context=multiprocessing.get_context("fork")) as pool:
+        list(pool.map(_spin, [1000, 1000]))
+        for _ in range(REPEATS):
+            start = time.perf_counter()
+            _spin(count)
+            _spin(count)
+            one.append(time.perf_counter() - start)
+            start = time.perf_counter()
+            list(pool.map(_spin, [count, count]))
+            two.append(time.perf_counter() - start)
+    return min(one) / min(two)
 
 
 def coupled(equilibrium: np.ndarray, stiffness: np.ndarray, schedules: list) -> dict:
@@ -201,10 +233,11 @@ def coupled(equilibrium: np.ndarray, stiffness: np.ndarray, schedules: list) -> 
     # warm-up: compiled kernels load from the cache
     simulate(plant.joints, plant.mechanism, equilibrium[:200], stiffness[:200],
              chain=plant.chain)
-    runs = [_timed(batch) for _ in range(2)]
+    runs = [_timed(batch) for _ in range(REPEATS)]
     result = runs[0][0]
     wall_1, cpu_1 = min(r[1] for r in runs), min(r[2] for r in runs)
     wall_2 = two_process_wall(plant, equilibrium, stiffness, schedules)
+    machine = machine_scaling()
     simulated_s = N_SCENARIOS * DURATION_S
     emit({"bench": "sim_coupled", "n_scenarios": N_SCENARIOS, "threads": 1,
           "wall_s": round(wall_1, 3), "cpu_s": round(cpu_1, 3), "wall_2_processes_s":
@@ -240,6 +273,7 @@ def coupled(equilibrium: np.ndarray, stiffness: np.ndarray, schedules: list) -> 
         "arm7_realtime_factor_cpu": round(N_ARM7 * DURATION_S / cpu7, 1),
         "max_rel_accel_error_vs_pinocchio": max_rel_accel_error(),
         "parallel_scaling_2_cores": round(wall_1 / wall_2, 2),
+        "machine_scaling_2_cores": round(machine, 2),
         "load_average_1_5_15_min": [round(x, 2) for x in os.getloadavg()],
     }
 
