@@ -37,7 +37,7 @@ from compliant_demo.generalisation import check_goal
 from compliant_demo.models import JointParams, MechanismParams
 from compliant_demo.perturbation import PerturbationSchedule
 from compliant_demo.plant import ReplayPlant
-from compliant_demo.primitives import Rollout, Skill
+from compliant_demo.primitives import MAX_ROLLOUT_SAMPLES, Rollout, Skill
 from compliant_demo.sim import SimResult, Simulator, StepState
 from compliant_demo.sim.feedforward import feedforward_equilibrium, inverse_dynamics
 from compliant_demo.store.records import ReplayParameters
@@ -58,9 +58,9 @@ __all__ = [
 #: Time simulated after the movement to watch it settle, s: the same for every replay.
 DEFAULT_SETTLE_S = 1.0
 
-#: Most control periods of one replay (movement plus settling): its command and trace arrays are
-#: held in memory, so a horizon of days is refused up front rather than failing to allocate.
-MAX_REPLAY_STEPS = 10_000_000
+#: Most control periods of one replay (movement plus settling): the skill's own rollout limit
+#: (its command and trace arrays are held in memory), checked up front with the replay's names.
+MAX_REPLAY_STEPS = MAX_ROLLOUT_SAMPLES
 
 #: Per-joint channels a stepped replay records, each (n_steps, n_joints).
 STEP_CHANNELS: tuple[str, ...] = (
