@@ -329,16 +329,20 @@ def learn_skill(
         ``stiffness_from_variability``: demonstrations that vary by this spread give this
         stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
     variability_model : how the variance of the aligned demonstrations is taken along the
-        phase. "levels" (default): held constant over stretches of the phase, equal levels
-        fused (:func:`~compliant_demo.variability.held_level_variance`), with the penalties
-        chosen from the aligned demonstrations by :func:`~compliant_demo.variability.
+        phase, recorded in the provenance's alignment summary as ``variability_model``.
+        "auto" (default): "levels" or "kernel", whichever
+        :func:`~compliant_demo.variability.select_variability_model` finds predicts left-out
+        demonstrations better ("kernel" where ``variability_bandwidth`` is given). "levels":
+        held constant over stretches of the phase, equal levels fused
+        (:func:`~compliant_demo.variability.held_level_variance`), with the penalties chosen
+        from the aligned demonstrations by :func:`~compliant_demo.variability.
         select_level_penalties` (leave-one-demonstration-out likelihood) and recorded in the
         provenance's alignment summary as ``variability_change_penalty``,
         ``variability_level_penalty``, ``variability_stretches`` and ``variability_levels``
         (per joint). "kernel": pooled with a Gaussian kernel
         (:func:`~compliant_demo.variability.pooled_variance`)
-    variability_bandwidth : with ``variability_model="kernel"`` only: fraction of the phase,
-        std of the kernel; 0 takes each sample's own variance. Default: chosen by
+    variability_bandwidth : with ``variability_model`` "kernel" or "auto" only: fraction of
+        the phase, std of the kernel; 0 takes each sample's own variance. Default: chosen by
         :func:`~compliant_demo.variability.select_bandwidth` (leave-one-demonstration-out
         likelihood) and recorded in the provenance's alignment summary as
         ``variability_bandwidth``
