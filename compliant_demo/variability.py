@@ -589,7 +589,8 @@ def stiffness_from_variability(
     ----------
     variance : (n_samples, n_joints) array, rad^2
         Sample variance (ddof=1) across aligned demonstrations, per sample
-        (``AlignedSet.variance``) or pooled along the phase (:func:`pooled_variance`).
+        (``AlignedSet.variance``), pooled along the phase (:func:`pooled_variance`) or held
+        in levels (:func:`held_level_variance`).
     k_min, k_max : float or (n_joints,) array, N*m/rad
         Target joint's stiffness range; the schedule is clipped to it.
     n_demos : int
