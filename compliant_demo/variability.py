@@ -476,12 +476,17 @@ def _block_edges(n_samples: int) -> np.ndarray:
                      ).astype(int)
 
 
+def _block_sums(values: np.ndarray, edges: np.ndarray) -> tuple[np.ndarray, float]:
+    """Sums of ``values`` up to each block edge, and the floor that keeps a mean's log finite."""
+    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    return sums, 1e-12 * max(float(values.mean()), 1e-300)
+
+
 def _stretches(values: np.ndarray, edges: np.ndarray, penalty: float) -> list[tuple[int, int]]:
     """Optimal partition of the blocks (start, stop) minimising ``sum w ln v + penalty``."""
     n_blocks = edges.size - 1
-    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    sums, floor = _block_sums(values, edges)
     counts = edges.astype(float)
-    floor = 1e-12 * max(float(values.mean()), 1e-300)
     shortest = min(n_blocks, max(1, math.ceil(VARIABILITY_MIN_STRETCH * n_blocks)))
     best = np.full(n_blocks + 1, np.inf)
     best[0] = 0.0
@@ -506,8 +511,7 @@ def _stretches(values: np.ndarray, edges: np.ndarray, penalty: float) -> list[tu
 def _fuse(values: np.ndarray, edges: np.ndarray, stretches: list[tuple[int, int]],
           penalty: float) -> list[list[tuple[int, int]]]:
     """Groups of stretches sharing a level: merge the cheapest pair while its cost < penalty."""
-    floor = 1e-12 * max(float(values.mean()), 1e-300)
-    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    sums, floor = _block_sums(values, edges)
     groups = [[stretch] for stretch in stretches]
     totals = [(sums[b] - sums[a], float(edges[b] - edges[a])) for a, b in stretches]
 
