@@ -30,6 +30,7 @@ __all__ = [
     "VARIABILITY_MIN_STRETCH",
     "VARIABILITY_REFERENCE_STD",
     "HeldLevels",
+    "choose_variability_model",
     "PooledVariance",
     "held_level_variance",
     "pooled_variance",
@@ -440,12 +441,33 @@ def select_variability_model(positions: object) -> Literal["levels", "kernel"]:
     36(2), 111-147, 1974, from memory): a teacher who holds a few stiffness levels is better
     predicted by held levels, one whose stiffness drifts smoothly by the kernel.
     """
+    return choose_variability_model(positions)[0]
+
+
+def choose_variability_model(
+    positions: object,
+) -> tuple[Literal["levels", "kernel"], tuple[float, ...]]:
+    """:func:`select_variability_model` with the winner's parameters from the same scores.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+
+    Returns
+    -------
+    ("kernel", (bandwidth,)) or ("levels", (change_penalty, level_penalty))
+        What :func:`select_bandwidth` or :func:`select_level_penalties` would choose over
+        their default candidates, without scoring the candidates a second time.
+    """
     x = _selection_samples(_aligned_positions(positions))
     if x is None:
-        return "kernel"
-    kernel = _bandwidth_scores(x, VARIABILITY_BANDWIDTH_CANDIDATES).max()
-    levels = _level_scores(x, VARIABILITY_CHANGE_PENALTIES, VARIABILITY_LEVEL_PENALTIES)[1].max()
-    return "levels" if levels > kernel else "kernel"
+        return "kernel", (VARIABILITY_BANDWIDTH,)
+    kernel = _bandwidth_scores(x, VARIABILITY_BANDWIDTH_CANDIDATES)
+    pairs, levels = _level_scores(x, VARIABILITY_CHANGE_PENALTIES, VARIABILITY_LEVEL_PENALTIES)
+    if levels.max() > kernel.max():
+        return "levels", pairs[int(np.argmax(levels))]
+    return "kernel", (float(VARIABILITY_BANDWIDTH_CANDIDATES[int(np.argmax(kernel))]),)
 
 
 def _level_scores(
