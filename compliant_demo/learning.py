@@ -41,11 +41,11 @@ from compliant_demo.store.records import SkillRecord
 from compliant_demo.variability import (
     HeldLevels,
     PooledVariance,
+    choose_variability_model,
     held_level_variance,
     pooled_variance,
     select_bandwidth,
     select_level_penalties,
-    select_variability_model,
     stiffness_from_variability,
 )
 
@@ -329,16 +329,20 @@ def learn_skill(
         ``stiffness_from_variability``: demonstrations that vary by this spread give this
         stiffness. Default: ``VARIABILITY_REFERENCE_STD`` and the range's ``k_min``
     variability_model : how the variance of the aligned demonstrations is taken along the
-        phase. "levels" (default): held constant over stretches of the phase, equal levels
-        fused (:func:`~compliant_demo.variability.held_level_variance`), with the penalties
-        chosen from the aligned demonstrations by :func:`~compliant_demo.variability.
+        phase, recorded in the provenance's alignment summary as ``variability_model``.
+        "auto" (default): "levels" or "kernel", whichever
+        :func:`~compliant_demo.variability.select_variability_model` finds predicts left-out
+        demonstrations better ("kernel" where ``variability_bandwidth`` is given). "levels":
+        held constant over stretches of the phase, equal levels fused
+        (:func:`~compliant_demo.variability.held_level_variance`), with the penalties chosen
+        from the aligned demonstrations by :func:`~compliant_demo.variability.
         select_level_penalties` (leave-one-demonstration-out likelihood) and recorded in the
         provenance's alignment summary as ``variability_change_penalty``,
         ``variability_level_penalty``, ``variability_stretches`` and ``variability_levels``
         (per joint). "kernel": pooled with a Gaussian kernel
         (:func:`~compliant_demo.variability.pooled_variance`)
-    variability_bandwidth : with ``variability_model="kernel"`` only: fraction of the phase,
-        std of the kernel; 0 takes each sample's own variance. Default: chosen by
+    variability_bandwidth : with ``variability_model`` "kernel" or "auto" only: fraction of
+        the phase, std of the kernel; 0 takes each sample's own variance. Default: chosen by
         :func:`~compliant_demo.variability.select_bandwidth` (leave-one-demonstration-out
         likelihood) and recorded in the provenance's alignment summary as
         ``variability_bandwidth``
@@ -411,19 +415,20 @@ def learn_skill(
         anchor: dict[str, Any] = {} if variability_reference is None else {
             "reference_std": variability_reference[0],
             "reference_stiffness": variability_reference[1]}
+        chosen: tuple[float, ...] | None = None
         if variability_model == "auto":
-            variability_model = select_variability_model(positions)
+            variability_model, chosen = choose_variability_model(positions)
         summary["variability_model"] = variability_model
         pooled: HeldLevels | PooledVariance
         if variability_model == "levels":
-            pooled = held_level_variance(positions, *select_level_penalties(positions))
+            pooled = held_level_variance(positions, *(chosen or select_level_penalties(positions)))
             summary.update(variability_change_penalty=pooled.change_penalty,
                            variability_level_penalty=pooled.level_penalty,
                            variability_stretches=list(pooled.n_stretches),
                            variability_levels=list(pooled.n_levels))
         else:
             if variability_bandwidth is None:
-                variability_bandwidth = select_bandwidth(positions)
+                variability_bandwidth = chosen[0] if chosen else select_bandwidth(positions)
             summary["variability_bandwidth"] = variability_bandwidth
             pooled = pooled_variance(positions, variability_bandwidth)
         law: dict[str, Any] = dict(n_demos=len(normalised), variance_floor=variance_floor,

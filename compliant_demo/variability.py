@@ -30,6 +30,7 @@ __all__ = [
     "VARIABILITY_MIN_STRETCH",
     "VARIABILITY_REFERENCE_STD",
     "HeldLevels",
+    "choose_variability_model",
     "PooledVariance",
     "held_level_variance",
     "pooled_variance",
@@ -440,12 +441,33 @@ def select_variability_model(positions: object) -> Literal["levels", "kernel"]:
     36(2), 111-147, 1974, from memory): a teacher who holds a few stiffness levels is better
     predicted by held levels, one whose stiffness drifts smoothly by the kernel.
     """
+    return choose_variability_model(positions)[0]
+
+
+def choose_variability_model(
+    positions: object,
+) -> tuple[Literal["levels", "kernel"], tuple[float, ...]]:
+    """:func:`select_variability_model` with the winner's parameters from the same scores.
+
+    Parameters
+    ----------
+    positions : (n_demos, n_samples, n_joints) array, rad
+        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+
+    Returns
+    -------
+    ("kernel", (bandwidth,)) or ("levels", (change_penalty, level_penalty))
+        What :func:`select_bandwidth` or :func:`select_level_penalties` would choose over
+        their default candidates, without scoring the candidates a second time.
+    """
     x = _selection_samples(_aligned_positions(positions))
     if x is None:
-        return "kernel"
-    kernel = _bandwidth_scores(x, VARIABILITY_BANDWIDTH_CANDIDATES).max()
-    levels = _level_scores(x, VARIABILITY_CHANGE_PENALTIES, VARIABILITY_LEVEL_PENALTIES)[1].max()
-    return "levels" if levels > kernel else "kernel"
+        return "kernel", (VARIABILITY_BANDWIDTH,)
+    kernel = _bandwidth_scores(x, VARIABILITY_BANDWIDTH_CANDIDATES)
+    pairs, levels = _level_scores(x, VARIABILITY_CHANGE_PENALTIES, VARIABILITY_LEVEL_PENALTIES)
+    if levels.max() > kernel.max():
+        return "levels", pairs[int(np.argmax(levels))]
+    return "kernel", (float(VARIABILITY_BANDWIDTH_CANDIDATES[int(np.argmax(kernel))]),)
 
 
 def _level_scores(
@@ -476,12 +498,17 @@ def _block_edges(n_samples: int) -> np.ndarray:
                      ).astype(int)
 
 
+def _block_sums(values: np.ndarray, edges: np.ndarray) -> tuple[np.ndarray, float]:
+    """Sums of ``values`` up to each block edge, and the floor that keeps a mean's log finite."""
+    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    return sums, 1e-12 * max(float(values.mean()), 1e-300)
+
+
 def _stretches(values: np.ndarray, edges: np.ndarray, penalty: float) -> list[tuple[int, int]]:
     """Optimal partition of the blocks (start, stop) minimising ``sum w ln v + penalty``."""
     n_blocks = edges.size - 1
-    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    sums, floor = _block_sums(values, edges)
     counts = edges.astype(float)
-    floor = 1e-12 * max(float(values.mean()), 1e-300)
     shortest = min(n_blocks, max(1, math.ceil(VARIABILITY_MIN_STRETCH * n_blocks)))
     best = np.full(n_blocks + 1, np.inf)
     best[0] = 0.0
@@ -506,8 +533,7 @@ def _stretches(values: np.ndarray, edges: np.ndarray, penalty: float) -> list[tu
 def _fuse(values: np.ndarray, edges: np.ndarray, stretches: list[tuple[int, int]],
           penalty: float) -> list[list[tuple[int, int]]]:
     """Groups of stretches sharing a level: merge the cheapest pair while its cost < penalty."""
-    floor = 1e-12 * max(float(values.mean()), 1e-300)
-    sums = np.concatenate([[0.0], np.cumsum(values)])[edges]
+    sums, floor = _block_sums(values, edges)
     groups = [[stretch] for stretch in stretches]
     totals = [(sums[b] - sums[a], float(edges[b] - edges[a])) for a, b in stretches]
 
@@ -589,7 +615,8 @@ def stiffness_from_variability(
     ----------
     variance : (n_samples, n_joints) array, rad^2
         Sample variance (ddof=1) across aligned demonstrations, per sample
-        (``AlignedSet.variance``) or pooled along the phase (:func:`pooled_variance`).
+        (``AlignedSet.variance``), pooled along the phase (:func:`pooled_variance`) or held
+        in levels (:func:`held_level_variance`).
     k_min, k_max : float or (n_joints,) array, N*m/rad
         Target joint's stiffness range; the schedule is clipped to it.
     n_demos : int
