@@ -31,7 +31,7 @@ BOOL_CHANNELS = ("commands_clamped", "held", "in_contact")
 (_Q, _DQ, _Q_MEASURED, _TAU_MECH, _TAU_MEASURED, _TAU_EXT, _STIFFNESS, _DAMPING, _EQUILIBRIUM,
  _KINETIC, _SPRING_POT, _GRAVITY_POT, _STOP_POT, _ACTUATOR_WORK, _PERTURBATION_WORK,
  _DISSIPATED, _INJECTION, _TENSION, _MOTOR) = range(len(FLOAT_CHANNELS))
-_HELD, _CONTACT = 1, 2
+_HELD, _CONTACT = (BOOL_CHANNELS.index(name) for name in ("held", "in_contact"))
 _ROW = {name: PARAM_ROWS.index(name) for name in PARAM_ROWS}
 _INERTIA, _RESOLUTION, _NEG_MGL, _OFFSET = (
     _ROW[n] for n in ("inertia", "encoder_resolution", "neg_mgl", "gravity_offset"))

@@ -602,19 +602,18 @@ class ChainKernel:
         bodies = chain.bodies
         self.chain = chain
         self.n_joints = len(bodies)
-        self._place = np.array([np.reshape(b.placement_rotation, (3, 3)) for b in bodies])
-        self._pos = np.array([b.placement_xyz for b in bodies], dtype=float)
-        self._axis = np.array([b.axis for b in bodies], dtype=float)
-        self._mass = np.array([b.mass for b in bodies], dtype=float)
-        self._com = np.array([b.com for b in bodies], dtype=float)
-        self._inertia = np.array([
+        place = np.array([np.reshape(b.placement_rotation, (3, 3)) for b in bodies])
+        pos = np.array([b.placement_xyz for b in bodies], dtype=float)
+        axis = np.array([b.axis for b in bodies], dtype=float)
+        mass = np.array([b.mass for b in bodies], dtype=float)
+        com = np.array([b.com for b in bodies], dtype=float)
+        inertia = np.array([
             [[b.inertia[0], b.inertia[1], b.inertia[2]],
              [b.inertia[1], b.inertia[3], b.inertia[4]],
              [b.inertia[2], b.inertia[4], b.inertia[5]]] for b in bodies])
-        self._gravity = np.array(chain.gravity, dtype=float)
+        gravity = np.array(chain.gravity, dtype=float)
         # the arrays the compiled kernels and step read (see z_axis_model)
-        self.model = z_axis_model(self._place, self._pos, self._axis, self._mass, self._com,
-                                  self._inertia, self._gravity)
+        self.model = z_axis_model(place, pos, axis, mass, com, inertia, gravity)
         rest = np.zeros((self.n_joints, 1))
         heights = np.empty_like(rest)
         _chain_energies(rest, rest, self.model, np.zeros(self.n_joints), np.empty_like(rest),
