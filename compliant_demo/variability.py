@@ -447,12 +447,8 @@ def select_variability_model(positions: object) -> Literal["levels", "kernel"]:
 def choose_variability_model(
     positions: object,
 ) -> tuple[Literal["levels", "kernel"], tuple[float, ...]]:
-    """:func:`select_variability_model` with the winner's parameters from the same scores.
-
-    Parameters
-    ----------
-    positions : (n_demos, n_samples, n_joints) array, rad
-        Aligned demonstrations on one uniform phase grid (at least 2 demonstrations).
+    """:func:`select_variability_model` (same ``positions``) with the winner's parameters from
+    the same scores.
 
     Returns
     -------
